@@ -1,0 +1,162 @@
+package calibration
+
+import (
+	"encoding/csv"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"strconv"
+	"strings"
+)
+
+// Pair is one calibration observation: what the prototype measured beside
+// what the reference said at the same time.
+type Pair struct {
+	// Ratio is the prototype's ratio of ratios R (dimensionless), finite and
+	// in (0, 10].
+	Ratio float64
+	// ReferencePct is the reference saturation (reference oximeter or blood
+	// gas SaO2) in percent, 0..100.
+	ReferencePct float64
+	// Subject identifies the person (or session) the pair came from; empty
+	// when unknown. Leave-one-subject-out scoring needs at least two.
+	Subject string
+}
+
+// Bounds a pair must meet; they match what a Curve accepts.
+const (
+	maxRatio = 10.0
+)
+
+func (p Pair) validate() error {
+	if math.IsNaN(p.Ratio) || math.IsInf(p.Ratio, 0) || p.Ratio <= 0 || p.Ratio > maxRatio {
+		return fmt.Errorf("ratio: %v, want a finite number in (0, %v]", p.Ratio, maxRatio)
+	}
+	if math.IsNaN(p.ReferencePct) || p.ReferencePct < 0 || p.ReferencePct > 100 {
+		return fmt.Errorf("reference_pct: %v, want 0..100", p.ReferencePct)
+	}
+	return nil
+}
+
+// ReadPairs reads the calibrate pairs CSV (CONTRACT): a header row naming
+// the columns ratio and reference_pct, optionally subject; other columns are
+// ignored. Every row must carry both numbers; an error names the line and the
+// field. An input with no rows is an error.
+func ReadPairs(r io.Reader) ([]Pair, error) {
+	cr := csv.NewReader(r)
+	cr.FieldsPerRecord = -1
+	cr.TrimLeadingSpace = true
+	cr.Comment = '#'
+	header, err := cr.Read()
+	if errors.Is(err, io.EOF) {
+		return nil, errors.New("pairs: empty input, want a header row with ratio,reference_pct[,subject]")
+	}
+	if err != nil {
+		return nil, fmt.Errorf("pairs: header: %w", err)
+	}
+	col := map[string]int{}
+	for i, h := range header {
+		col[strings.TrimSpace(strings.ToLower(strings.TrimPrefix(h, "\ufeff")))] = i
+	}
+	ri, ok1 := col["ratio"]
+	pi, ok2 := col["reference_pct"]
+	if !ok1 || !ok2 {
+		return nil, fmt.Errorf("pairs: header %q: want columns ratio and reference_pct (and optionally subject)", strings.Join(header, ","))
+	}
+	si, hasSubject := col["subject"]
+	var pairs []Pair
+	for {
+		rec, err := cr.Read()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		line, _ := cr.FieldPos(0)
+		if err != nil {
+			return nil, fmt.Errorf("pairs: %w", err)
+		}
+		cell := func(i int) string {
+			if i < len(rec) {
+				return strings.TrimSpace(rec[i])
+			}
+			return ""
+		}
+		var p Pair
+		if p.Ratio, err = parseCell(cell(ri)); err != nil {
+			return nil, fmt.Errorf("pairs: line %d: ratio: %w", line, err)
+		}
+		if p.ReferencePct, err = parseCell(cell(pi)); err != nil {
+			return nil, fmt.Errorf("pairs: line %d: reference_pct: %w", line, err)
+		}
+		if hasSubject {
+			p.Subject = cell(si)
+		}
+		if err := p.validate(); err != nil {
+			return nil, fmt.Errorf("pairs: line %d: %w", line, err)
+		}
+		pairs = append(pairs, p)
+	}
+	if len(pairs) == 0 {
+		return nil, errors.New("pairs: no rows after the header")
+	}
+	return pairs, nil
+}
+
+func parseCell(s string) (float64, error) {
+	if s == "" {
+		return 0, errors.New("empty cell, want a number")
+	}
+	v, err := strconv.ParseFloat(s, 64)
+	if err != nil {
+		return 0, fmt.Errorf("%q is not a number", s)
+	}
+	return v, nil
+}
+
+// WritePairs writes pairs in the format ReadPairs reads. The subject column
+// is written when any pair has a subject.
+func WritePairs(w io.Writer, pairs []Pair) error {
+	withSubject := false
+	for _, p := range pairs {
+		if p.Subject != "" {
+			withSubject = true
+			break
+		}
+	}
+	cw := csv.NewWriter(w)
+	header := []string{"ratio", "reference_pct"}
+	if withSubject {
+		header = append(header, "subject")
+	}
+	if err := cw.Write(header); err != nil {
+		return fmt.Errorf("write pairs: %w", err)
+	}
+	for _, p := range pairs {
+		rec := []string{strconv.FormatFloat(p.Ratio, 'g', -1, 64), strconv.FormatFloat(p.ReferencePct, 'g', -1, 64)}
+		if withSubject {
+			rec = append(rec, p.Subject)
+		}
+		if err := cw.Write(rec); err != nil {
+			return fmt.Errorf("write pairs: %w", err)
+		}
+	}
+	cw.Flush()
+	if err := cw.Error(); err != nil {
+		return fmt.Errorf("write pairs: %w", err)
+	}
+	return nil
+}
+
+// subjects returns the distinct non-empty subjects in order of first
+// appearance.
+func subjects(pairs []Pair) []string {
+	seen := map[string]bool{}
+	var out []string
+	for _, p := range pairs {
+		if p.Subject != "" && !seen[p.Subject] {
+			seen[p.Subject] = true
+			out = append(out, p.Subject)
+		}
+	}
+	return out
+}

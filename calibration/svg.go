@@ -1,0 +1,148 @@
+package calibration
+
+import (
+	"bytes"
+	"encoding/xml"
+	"fmt"
+	"io"
+	"math"
+)
+
+// A small, dependency-free SVG chart: one plot area with ticked, labelled
+// axes, scatter series, lines and a legend. Enough for the calibration curve
+// and the Bland-Altman plot; not a plotting library.
+
+const (
+	svgW, svgH                         = 780, 440
+	padLeft, padRight, padTop, padBott = 70, 200, 40, 60
+)
+
+// palette is colour-blind-safe (Okabe-Ito order), one colour per subject.
+var palette = []string{"#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000"}
+
+type point struct{ x, y float64 }
+
+type series struct {
+	name   string
+	color  string
+	points []point
+	line   bool   // draw as a polyline instead of dots
+	dash   string // stroke-dasharray for lines
+}
+
+type chart struct {
+	title, xLabel, yLabel  string
+	xMin, xMax, yMin, yMax float64
+	series                 []series
+	notes                  []string // text lines drawn at the top right of the plot area
+}
+
+// niceTicks returns ticks at 1, 2 or 5 times a power of ten covering
+// [lo, hi] with about n intervals, and the rounded bounds.
+func niceTicks(lo, hi float64, n int) (ticks []float64, nlo, nhi float64) {
+	if !(hi > lo) {
+		lo, hi = lo-1, hi+1
+	}
+	raw := (hi - lo) / float64(n)
+	p := math.Pow(10, math.Floor(math.Log10(raw)))
+	step := p
+	for _, m := range []float64{1, 2, 5, 10} {
+		if m*p >= raw {
+			step = m * p
+			break
+		}
+	}
+	nlo = math.Floor(lo/step) * step
+	nhi = math.Ceil(hi/step) * step
+	for v := nlo; v <= nhi+step/2; v += step {
+		ticks = append(ticks, math.Round(v/step)*step)
+	}
+	return ticks, nlo, nhi
+}
+
+func xmlEscape(s string) string {
+	var b bytes.Buffer
+	_ = xml.EscapeText(&b, []byte(s))
+	return b.String()
+}
+
+func fmtTick(v float64) string {
+	s := fmt.Sprintf("%.6g", v)
+	if s == "-0" {
+		return "0"
+	}
+	return s
+}
+
+// write renders the chart as a standalone SVG document.
+func (c *chart) write(w io.Writer) error {
+	xt, x0, x1 := niceTicks(c.xMin, c.xMax, 6)
+	yt, y0, y1 := niceTicks(c.yMin, c.yMax, 6)
+	pw := float64(svgW - padLeft - padRight)
+	ph := float64(svgH - padTop - padBott)
+	px := func(x float64) float64 { return padLeft + (x-x0)/(x1-x0)*pw }
+	py := func(y float64) float64 { return padTop + (y1-y)/(y1-y0)*ph }
+	var b bytes.Buffer
+	fmt.Fprintf(&b, `<svg xmlns="http://www.w3.org/2000/svg" width="%d" height="%d" viewBox="0 0 %d %d" font-family="sans-serif" font-size="12">`+"\n", svgW, svgH, svgW, svgH)
+	fmt.Fprintf(&b, `<title>%s</title>`+"\n", xmlEscape(c.title))
+	fmt.Fprintf(&b, `<rect width="100%%" height="100%%" fill="#fff"/>`+"\n")
+	fmt.Fprintf(&b, `<text x="%d" y="22" font-size="15" font-weight="bold">%s</text>`+"\n", padLeft, xmlEscape(c.title))
+	// grid and ticks
+	for _, t := range xt {
+		x := px(t)
+		fmt.Fprintf(&b, `<line x1="%.1f" y1="%d" x2="%.1f" y2="%.1f" stroke="#e4e4e4"/>`, x, padTop, x, padTop+ph)
+		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f" text-anchor="middle">%s</text>`+"\n", x, padTop+ph+16, fmtTick(t))
+	}
+	for _, t := range yt {
+		y := py(t)
+		fmt.Fprintf(&b, `<line x1="%d" y1="%.1f" x2="%.1f" y2="%.1f" stroke="#e4e4e4"/>`, padLeft, y, padLeft+pw, y)
+		fmt.Fprintf(&b, `<text x="%d" y="%.1f" text-anchor="end">%s</text>`+"\n", padLeft-6, y+4, fmtTick(t))
+	}
+	fmt.Fprintf(&b, `<rect x="%d" y="%d" width="%.1f" height="%.1f" fill="none" stroke="#333"/>`+"\n", padLeft, padTop, pw, ph)
+	fmt.Fprintf(&b, `<text x="%.1f" y="%d" text-anchor="middle">%s</text>`+"\n", padLeft+pw/2, svgH-18, xmlEscape(c.xLabel))
+	fmt.Fprintf(&b, `<text x="16" y="%.1f" text-anchor="middle" transform="rotate(-90 16 %.1f)">%s</text>`+"\n", padTop+ph/2, padTop+ph/2, xmlEscape(c.yLabel))
+	// data, clipped to the plot area
+	fmt.Fprintf(&b, `<clipPath id="area"><rect x="%d" y="%d" width="%.1f" height="%.1f"/></clipPath><g clip-path="url(#area)">`+"\n", padLeft, padTop, pw, ph)
+	for _, s := range c.series {
+		if s.line {
+			fmt.Fprintf(&b, `<polyline fill="none" stroke="%s" stroke-width="2"`, s.color)
+			if s.dash != "" {
+				fmt.Fprintf(&b, ` stroke-dasharray="%s"`, s.dash)
+			}
+			b.WriteString(` points="`)
+			for _, p := range s.points {
+				fmt.Fprintf(&b, "%.1f,%.1f ", px(p.x), py(p.y))
+			}
+			b.WriteString(`"/>` + "\n")
+			continue
+		}
+		fmt.Fprintf(&b, `<g fill="%s" fill-opacity="0.6">`, s.color)
+		for _, p := range s.points {
+			fmt.Fprintf(&b, `<circle cx="%.1f" cy="%.1f" r="2.5"/>`, px(p.x), py(p.y))
+		}
+		b.WriteString("</g>\n")
+	}
+	b.WriteString("</g>\n")
+	// legend and notes, right of the plot area
+	ly := float64(padTop) + 14
+	for _, s := range c.series {
+		if s.name == "" {
+			continue
+		}
+		lx := padLeft + pw + 12
+		if s.line {
+			fmt.Fprintf(&b, `<line x1="%.1f" y1="%.1f" x2="%.1f" y2="%.1f" stroke="%s" stroke-width="2" stroke-dasharray="%s"/>`, lx, ly-4, lx+18, ly-4, s.color, s.dash)
+		} else {
+			fmt.Fprintf(&b, `<circle cx="%.1f" cy="%.1f" r="3.5" fill="%s"/>`, lx+9, ly-4, s.color)
+		}
+		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f">%s</text>`+"\n", lx+24, ly, xmlEscape(s.name))
+		ly += 16
+	}
+	for _, n := range c.notes {
+		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f">%s</text>`+"\n", padLeft+pw+12, ly, xmlEscape(n))
+		ly += 16
+	}
+	b.WriteString("</svg>\n")
+	_, err := w.Write(b.Bytes())
+	return err
+}
