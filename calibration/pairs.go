@@ -71,10 +71,10 @@ func ReadPairs(r io.Reader) ([]Pair, error) {
 		if errors.Is(err, io.EOF) {
 			break
 		}
-		line, _ := cr.FieldPos(0)
 		if err != nil {
 			return nil, fmt.Errorf("pairs: %w", err)
 		}
+		line, _ := cr.FieldPos(0)
 		cell := func(i int) string {
 			if i < len(rec) {
 				return strings.TrimSpace(rec[i])

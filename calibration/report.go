@@ -55,7 +55,11 @@ func f2(v float64) string {
 	if math.IsNaN(v) {
 		return "-"
 	}
-	return fmt.Sprintf("%.2f", v)
+	s := fmt.Sprintf("%.2f", v)
+	if s == "-0.00" {
+		return "0.00"
+	}
+	return s
 }
 
 // jsonStats replaces NaN (empty decades) by null, which JSON can carry.
