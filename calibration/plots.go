@@ -31,7 +31,8 @@ func (r *Result) WriteCurveSVG(w io.Writer) error {
 		c.yMin, c.yMax = math.Min(c.yMin, y), math.Max(c.yMax, y)
 	}
 	c.series = append(c.series, series{name: "fitted curve", color: "#D55E00", points: line, line: true})
-	c.notes = []string{r.Curve.Equation(), fmt.Sprintf("n = %d, Arms = %.2f %%", r.Fit.N, r.Fit.ArmsPct)}
+	c.subtitle = fmt.Sprintf("%s, valid for R in [%.4g, %.4g]", r.Curve.Equation(), r.Curve.RatioMin, r.Curve.RatioMax)
+	c.notes = []string{fmt.Sprintf("n = %d, Arms = %.2f %%", r.Fit.N, r.Fit.ArmsPct), "(in sample)"}
 	return c.write(w)
 }
 
@@ -94,6 +95,7 @@ func (r *Result) WriteBlandAltmanSVG(w io.Writer, heldOut bool) error {
 		hline(fmt.Sprintf("bias + 1.96 SD = %.2f %%", st.LoAHigh), "#D55E00", "6 4", st.LoAHigh),
 		hline(fmt.Sprintf("bias - 1.96 SD = %.2f %%", st.LoALow), "#D55E00", "6 4", st.LoALow),
 	)
+	c.subtitle = "limits of agreement: bias -/+ 1.96 SD (population SD of the differences)"
 	c.notes = []string{fmt.Sprintf("n = %d, SD = %.2f %%", st.N, st.SDPct), fmt.Sprintf("Arms = %.2f %%", st.ArmsPct)}
 	return c.write(w)
 }

@@ -6,7 +6,6 @@ import (
 	"io"
 	"math"
 	"strings"
-	"text/tabwriter"
 )
 
 // WriteText writes a readable stats table.
@@ -15,30 +14,28 @@ func (r *Result) WriteText(w io.Writer) error {
 	var b strings.Builder
 	fmt.Fprintf(&b, "calibration %s (%s): %s, valid for R in [%.4g, %.4g]\n", c.CurveName(), c.Model, c.Equation(), c.RatioMin, c.RatioMax)
 	fmt.Fprintf(&b, "pairs: %d from %d subjects; reference %.1f-%.1f %%\n\n", r.Fit.N, r.Fit.Subjects, r.Fit.RefMinPct, r.Fit.RefMaxPct)
-	tw := tabwriter.NewWriter(&b, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(tw, "\tn\tbias %\tSD %\tArms %\tMAE %\tLoA low %\tLoA high %\t")
+	const rowFmt = "%-24s %5s %7s %6s %7s %6s %11s %11s"
+	line := func(a ...any) { fmt.Fprintln(&b, strings.TrimRight(fmt.Sprintf(rowFmt, a...), " ")) }
+	line("", "n", "bias %", "SD %", "Arms %", "MAE %", "LoA low %", "LoA high %")
 	row := func(name string, s Stats) {
-		fmt.Fprintf(tw, "%s\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t\n", name, s.N, f2(s.BiasPct), f2(s.SDPct), f2(s.ArmsPct), f2(s.MAEPct), f2(s.LoALow), f2(s.LoAHigh))
+		line(name, fmt.Sprint(s.N), f2(s.BiasPct), f2(s.SDPct), f2(s.ArmsPct), f2(s.MAEPct), f2(s.LoALow), f2(s.LoAHigh))
 	}
 	decades := func(s Stats) {
 		for _, d := range s.Decades {
-			fmt.Fprintf(tw, "  %.0f-%.0f %%\t%d\t%s\t%s\t%s\t\t\t\t\n", d.LowPct, d.HighPct, d.N, f2(d.BiasPct), f2(d.SDPct), f2(d.ArmsPct))
+			line(fmt.Sprintf("    %.0f-%.0f %%", d.LowPct, d.HighPct), fmt.Sprint(d.N), f2(d.BiasPct), f2(d.SDPct), f2(d.ArmsPct), "", "", "")
 		}
-		fmt.Fprintf(tw, "  70-100 %%\t%d\t\t\t%s\t\t\t\t\n", s.N70to100, f2(s.Arms70to100Pct))
+		line("    70-100 %", fmt.Sprint(s.N70to100), "", "", f2(s.Arms70to100Pct), "", "", "")
 	}
 	row("fit (in sample)", r.Fit)
 	decades(r.Fit)
 	if l := r.LOSO; l != nil {
-		fmt.Fprintln(tw, "leave-one-subject-out\t\t\t\t\t\t\t\t")
+		fmt.Fprintln(&b, "leave-one-subject-out")
 		for _, s := range l.Subjects {
 			row("  "+s.Subject, s.Fit)
 		}
 		row("  pooled", l.Pooled)
 		decades(l.Pooled)
 		row("  mean predictor", l.Baseline)
-	}
-	if err := tw.Flush(); err != nil {
-		return err
 	}
 	fmt.Fprintln(&b, "\nbias = mean(predicted - reference); SD = population SD; Arms^2 = bias^2 + SD^2; LoA = bias -/+ 1.96 SD.")
 	if ws := r.Warnings(); len(ws) > 0 {

@@ -14,7 +14,7 @@ import (
 
 const (
 	svgW, svgH                         = 780, 440
-	padLeft, padRight, padTop, padBott = 70, 200, 40, 60
+	padLeft, padRight, padTop, padBott = 70, 200, 48, 60
 )
 
 // palette is colour-blind-safe (Okabe-Ito order), one colour per subject.
@@ -31,7 +31,8 @@ type series struct {
 }
 
 type chart struct {
-	title, xLabel, yLabel  string
+	title, subtitle        string
+	xLabel, yLabel         string
 	xMin, xMax, yMin, yMax float64
 	series                 []series
 	notes                  []string // text lines drawn at the top right of the plot area
@@ -86,7 +87,10 @@ func (c *chart) write(w io.Writer) error {
 	fmt.Fprintf(&b, `<svg xmlns="http://www.w3.org/2000/svg" width="%d" height="%d" viewBox="0 0 %d %d" font-family="sans-serif" font-size="12">`+"\n", svgW, svgH, svgW, svgH)
 	fmt.Fprintf(&b, `<title>%s</title>`+"\n", xmlEscape(c.title))
 	fmt.Fprintf(&b, `<rect width="100%%" height="100%%" fill="#fff"/>`+"\n")
-	fmt.Fprintf(&b, `<text x="%d" y="22" font-size="15" font-weight="bold">%s</text>`+"\n", padLeft, xmlEscape(c.title))
+	fmt.Fprintf(&b, `<text x="%d" y="20" font-size="15" font-weight="bold">%s</text>`+"\n", padLeft, xmlEscape(c.title))
+	if c.subtitle != "" {
+		fmt.Fprintf(&b, `<text x="%d" y="38">%s</text>`+"\n", padLeft, xmlEscape(c.subtitle))
+	}
 	// grid and ticks
 	for _, t := range xt {
 		x := px(t)
