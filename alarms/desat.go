@@ -1,0 +1,150 @@
+package alarms
+
+import (
+	"math"
+	"time"
+)
+
+// window keeps the running maximum of (t, SpO2) over the last span seconds
+// as a monotonic deque in a power-of-two ring: amortised O(1) per sample,
+// allocation only when it grows.
+type window struct {
+	buf     []tv
+	head, n int
+}
+
+type tv struct{ t, v float64 }
+
+func (w *window) reset() { w.head, w.n = 0, 0 }
+
+func (w *window) push(t, v, span float64) {
+	mask := len(w.buf) - 1
+	for w.n > 0 && w.buf[(w.head+w.n-1)&mask].v <= v {
+		w.n--
+	}
+	if w.n == len(w.buf) {
+		w.grow()
+		mask = len(w.buf) - 1
+	}
+	w.buf[(w.head+w.n)&mask] = tv{t, v}
+	w.n++
+	for w.buf[w.head].t < t-span-eps { // the sample just pushed always stays
+		w.head = (w.head + 1) & mask
+		w.n--
+	}
+}
+
+func (w *window) grow() {
+	size := 2 * len(w.buf)
+	if size < 16 {
+		size = 16
+	}
+	nb := make([]tv, size)
+	for i := 0; i < w.n; i++ {
+		nb[i] = w.buf[(w.head+i)&(len(w.buf)-1)]
+	}
+	w.buf, w.head = nb, 0
+}
+
+// max is the highest value in the window; call only after a push.
+func (w *window) max() float64 { return w.buf[w.head].v }
+
+// points returns the deque's entries oldest first (for a Snapshot).
+func (w *window) points() []tv {
+	out := make([]tv, w.n)
+	for i := range out {
+		out[i] = w.buf[(w.head+i)&(len(w.buf)-1)]
+	}
+	return out
+}
+
+// IndexOptions set how DesatIndices scores a recording.
+type IndexOptions struct {
+	// DropPct is the desaturation depth in SpO2 points below the running
+	// baseline (3 or 4 in sleep-medicine scoring); zero means 3.
+	DropPct float64
+	// Baseline is the running-baseline window (highest valid SpO2 within
+	// it); zero means DefaultBaseline (120 s).
+	Baseline time.Duration
+	// MinDuration is the shortest event counted (the drop must last this
+	// long); zero counts every drop.
+	MinDuration time.Duration
+	// Hysteresis in SpO2 points: an event ends once the drop is below
+	// DropPct - Hysteresis; zero ends it as soon as the drop is below DropPct.
+	Hysteresis float64
+	// MaxGap is the longest interval between consecutive samples counted as
+	// recorded time; zero means 5 s. Longer gaps count as not recorded.
+	MaxGap time.Duration
+	// T90Limit is the SpO2 (%) below which time counts for T90; zero means 90.
+	T90Limit float64
+}
+
+// Indices summarise the oxygen desaturation of one recording.
+//
+// Denominator: valid recording time, i.e. the time covered by samples with a
+// valid SpO2 (each sample is held until the next one, gaps longer than
+// MaxGap excluded). Sleep time is not known to pulsefleet; it would give a
+// higher ODI (by about 21 % in Whenn et al., J Clin Sleep Med 2024).
+type Indices struct {
+	Events     int     // desaturation events counted
+	ValidHours float64 // valid recording time, h
+	ODIPerHour float64 // Events / ValidHours (NaN when ValidHours is 0)
+	T90Pct     float64 // % of valid time with SpO2 < T90Limit (NaN when ValidHours is 0)
+}
+
+// DesatIndices scores samples of one recording (time increasing; others are
+// skipped). Events are detected by the same engine as the desaturation alarm
+// condition, so an event here is an announced desaturation episode with
+// delay = MinDuration.
+func DesatIndices(samples []Sample, opt IndexOptions) (Indices, error) {
+	drop := opt.DropPct
+	if drop == 0 {
+		drop = 3
+	}
+	gap := opt.MaxGap.Seconds()
+	if gap == 0 {
+		gap = 5
+	}
+	lim := opt.T90Limit
+	if lim == 0 {
+		lim = 90
+	}
+	p := &Profile{Name: "desaturation-index", Conditions: []Condition{{
+		Kind: Desaturation, Limit: drop, Hysteresis: opt.Hysteresis, Delay: opt.MinDuration,
+		Priority: PriorityLow, Baseline: opt.Baseline}}}
+	e, err := NewEngine(p, "")
+	if err != nil {
+		return Indices{}, err
+	}
+	var ix Indices
+	count := func(ev Event) {
+		if ev.Type == EventAnnounced {
+			ix.Events++
+		}
+	}
+	var valid, below float64
+	prevT, prevV := math.Inf(-1), math.NaN()
+	for _, s := range samples {
+		if !(s.T > prevT) {
+			continue
+		}
+		if dt := s.T - prevT; prevV == prevV && dt <= gap+eps {
+			valid += dt
+			if prevV < lim {
+				below += dt
+			}
+		}
+		prevT, prevV = s.T, math.NaN()
+		if s.SpO2 > 0 && s.SpO2 <= 100 {
+			prevV = s.SpO2
+		}
+		e.Eval(s, count)
+	}
+	ix.ValidHours = valid / 3600
+	ix.ODIPerHour, ix.T90Pct = math.NaN(), math.NaN()
+	if valid > 0 {
+		ix.ODIPerHour = float64(ix.Events) / ix.ValidHours
+		ix.T90Pct = 100 * below / valid
+	}
+	return ix, nil
+}
