@@ -1,0 +1,86 @@
+package alarms
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+)
+
+// synthTrend is an invented 1 Hz trend (demo data, not physiology): SpO2
+// wandering around 95 % with dips, pulse around 75 /min, occasional gaps.
+func synthTrend(n int, seed uint64) []Sample {
+	r := rand.New(rand.NewPCG(seed, 1))
+	s := make([]Sample, n)
+	spo2, pulse := 95.0, 75.0
+	dip := 0
+	for i := range s {
+		if dip == 0 && r.IntN(600) == 0 {
+			dip = 20 + r.IntN(120)
+		}
+		target := 95.0
+		if dip > 0 {
+			target = 84
+			dip--
+		}
+		spo2 += 0.15*(target-spo2) + r.NormFloat64()*0.7
+		pulse += 0.05*(75-pulse) + r.NormFloat64()
+		v := math.Round(math.Min(100, spo2))
+		sm := Sample{T: float64(i), SpO2: v, Pulse: math.Round(pulse), PI: 2 + r.Float64(), SQI: 0.9}
+		if r.IntN(300) == 0 {
+			sm.SpO2, sm.Pulse, sm.PI, sm.SQI = math.NaN(), math.NaN(), math.NaN(), 0.1
+		}
+		s[i] = sm
+	}
+	return s
+}
+
+const benchProfileSpO2 = `
+name: contract-example
+conditions:
+  - kind: spo2_low
+    limit: 90
+    hysteresis: 2
+    delay: 15s
+    priority: medium
+    escalate: {below: 85, after: 60s, priority: high}
+`
+
+const benchProfileFull = `
+name: full
+conditions:
+  - {kind: spo2_low, limit: 90, hysteresis: 2, delay: 15s, priority: medium, escalate: {below: 85, after: 60s, priority: high}, latching: true}
+  - {kind: pulse_low, limit: 40, hysteresis: 5, delay: 10s, priority: medium}
+  - {kind: pulse_high, limit: 130, hysteresis: 5, delay: 10s, priority: medium}
+  - {kind: desaturation, limit: 4, hysteresis: 2, delay: 10s, priority: low}
+  - {kind: signal_lost, delay: 30s, priority: low, escalate: {after: 120s, priority: medium}}
+  - {kind: signal_poor, limit: 0.3, hysteresis: 0.1, delay: 30s, priority: low}
+  - {kind: perfusion_low, limit: 0.2, hysteresis: 0.1, delay: 60s, priority: low}
+  - {kind: device_offline, delay: 60s, priority: low}
+`
+
+// BenchmarkReplay measures the engine as the tuning sweep runs it: one
+// engine reused across streams. ns/sample is per sample per profile.
+func BenchmarkReplay(b *testing.B) {
+	samples := synthTrend(24*3600, 7)
+	for _, bc := range []struct{ name, yaml string }{{"spo2_low", benchProfileSpO2}, {"full", benchProfileFull}} {
+		b.Run(bc.name, func(b *testing.B) {
+			p, err := ParseProfile([]byte(bc.yaml))
+			if err != nil {
+				b.Fatal(err)
+			}
+			e, err := NewEngine(p, "bench")
+			if err != nil {
+				b.Fatal(err)
+			}
+			n := 0
+			emit := func(Episode) { n++ }
+			b.ReportAllocs()
+			b.ResetTimer()
+			for b.Loop() {
+				e.Run(samples, emit)
+			}
+			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N)/float64(len(samples)), "ns/sample")
+			b.ReportMetric(float64(n)/float64(b.N), "episodes")
+		})
+	}
+}
