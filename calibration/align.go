@@ -28,7 +28,8 @@ type ReferenceSecond struct {
 // defaults named on each field.
 type AlignOptions struct {
 	// WindowS is the length of a pairing window in seconds; each window
-	// that passes the checks gives one pair. 0 = 20 s.
+	// that passes the checks gives one pair. 0 = 30 s (plateau-length
+	// pairing, common practice).
 	WindowS int
 	// MaxReferenceSpreadPct is the largest max-min range of the reference
 	// SpO2 within a window, in % SpO2; 0 = 2 %. A wider range means the
@@ -52,7 +53,7 @@ type AlignOptions struct {
 
 func (o AlignOptions) withDefaults() (AlignOptions, error) {
 	if o.WindowS == 0 {
-		o.WindowS = 20
+		o.WindowS = 30
 	}
 	if o.MaxReferenceSpreadPct == 0 {
 		o.MaxReferenceSpreadPct = 2
