@@ -1,7 +1,12 @@
 package alarms
 
 import (
+	"encoding/csv"
+	"fmt"
+	"io"
 	"math"
+	"strconv"
+	"strings"
 	"time"
 )
 
@@ -147,4 +152,63 @@ func DesatIndices(samples []Sample, opt IndexOptions) (Indices, error) {
 		ix.T90Pct = 100 * below / valid
 	}
 	return ix, nil
+}
+
+// DeviceIndices is one row of the per-device desaturation summary.
+type DeviceIndices struct {
+	Device string
+	ODI3   Indices // drop >= 3 points
+	ODI4   Indices // drop >= 4 points
+}
+
+// TrendIndices scores every trend at 3 and 4 points of drop with the other
+// options of opt (opt.DropPct is ignored).
+func TrendIndices(trends []Trend, opt IndexOptions) ([]DeviceIndices, error) {
+	out := make([]DeviceIndices, 0, len(trends))
+	for _, tr := range trends {
+		d := DeviceIndices{Device: tr.Device}
+		var err error
+		opt.DropPct = 3
+		if d.ODI3, err = DesatIndices(tr.Samples, opt); err != nil {
+			return nil, fmt.Errorf("indices for %q: %w", tr.Device, err)
+		}
+		opt.DropPct = 4
+		if d.ODI4, err = DesatIndices(tr.Samples, opt); err != nil {
+			return nil, fmt.Errorf("indices for %q: %w", tr.Device, err)
+		}
+		out = append(out, d)
+	}
+	return out, nil
+}
+
+// IndexColumns is the header of WriteIndicesCSV.
+const IndexColumns = "device,valid_hours,events_3pct,odi_3pct_per_h,events_4pct,odi_4pct_per_h,t90_pct"
+
+// WriteIndicesCSV writes the per-device summary: valid hours (3 decimals),
+// events and ODI per hour of valid recording time at 3 and 4 points (2
+// decimals), and T90 in % of valid time (2 decimals); empty cells when there
+// is no valid time.
+func WriteIndicesCSV(w io.Writer, rows []DeviceIndices) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write(strings.Split(IndexColumns, ",")); err != nil {
+		return fmt.Errorf("write indices: %w", err)
+	}
+	f := func(v float64, prec int) string {
+		if v != v {
+			return ""
+		}
+		return strconv.FormatFloat(v, 'f', prec, 64)
+	}
+	for _, r := range rows {
+		if err := cw.Write([]string{r.Device, f(r.ODI3.ValidHours, 3), strconv.Itoa(r.ODI3.Events),
+			f(r.ODI3.ODIPerHour, 2), strconv.Itoa(r.ODI4.Events), f(r.ODI4.ODIPerHour, 2),
+			f(r.ODI3.T90Pct, 2)}); err != nil {
+			return fmt.Errorf("write indices: %w", err)
+		}
+	}
+	cw.Flush()
+	if err := cw.Error(); err != nil {
+		return fmt.Errorf("write indices: %w", err)
+	}
+	return nil
 }
