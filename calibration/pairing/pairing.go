@@ -30,6 +30,9 @@ type Options struct {
 	// Align chooses windows and stability checks; its Subject names the
 	// pairs.
 	Align calibration.AlignOptions
+	// ReferenceSubject selects the reference file's rows by its subject (or
+	// device) column; "" = the file names at most one.
+	ReferenceSubject string
 }
 
 // Raw is a two-channel recording.
@@ -185,7 +188,7 @@ func FromRecording(raw, ref io.Reader, o Options) ([]calibration.Pair, calibrati
 	if err != nil {
 		return nil, calibration.AlignReport{}, err
 	}
-	rs, err := ReadReference(ref, o.Align.Subject)
+	rs, err := ReadReference(ref, o.ReferenceSubject)
 	if err != nil {
 		return nil, calibration.AlignReport{}, err
 	}

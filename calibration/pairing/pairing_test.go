@@ -55,7 +55,7 @@ func recording(t *testing.T, seconds int) (raw, ref string) {
 func TestFromRecordingPairsPlateausOnTheBeerLambertCurve(t *testing.T) {
 	raw, ref := recording(t, 600)
 	pairs, rep, err := FromRecording(strings.NewReader(raw), strings.NewReader(ref),
-		Options{RateHz: 100, ADCBits: 16, Align: calibration.AlignOptions{Subject: "bench-7"}})
+		Options{RateHz: 100, ADCBits: 16, Align: calibration.AlignOptions{Subject: "bench-7"}, ReferenceSubject: "bench-7"})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -121,7 +121,7 @@ func TestReadRawAndReferenceErrors(t *testing.T) {
 
 func TestPairsFileRoundTrip(t *testing.T) {
 	raw, ref := recording(t, 200)
-	pairs, _, err := FromRecording(strings.NewReader(raw), strings.NewReader(ref), Options{RateHz: 100, Align: calibration.AlignOptions{Subject: "bench-7"}})
+	pairs, _, err := FromRecording(strings.NewReader(raw), strings.NewReader(ref), Options{RateHz: 100, Align: calibration.AlignOptions{Subject: "b7"}, ReferenceSubject: "bench-7"})
 	if err != nil {
 		t.Fatal(err)
 	}

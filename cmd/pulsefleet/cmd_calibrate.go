@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/calibration"
+	"github.com/pulsefleet/pulsefleet/calibration/pairing"
 )
 
 const calibrateSummary = `Fit a calibration curve (SpO2 from the ratio of ratios R) to pairs recorded
@@ -169,6 +170,100 @@ func writeFileWith(path string, write func(io.Writer) error) error {
 	return f.Close()
 }
 
+// stringList is a repeatable string flag.
+type stringList []string
+
+func (l *stringList) String() string     { return strings.Join(*l, ",") }
+func (l *stringList) Set(v string) error { *l = append(*l, v); return nil }
+
+const calibratePairsSynopsis = "pairs --raw FILE --reference FILE --rate HZ [--red-col NAME --ir-col NAME] [--subject NAME] [--out pairs.csv]"
+
+// runCalibratePairs builds calibration pairs from raw recordings and
+// reference files.
 func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
-	return fmt.Errorf("calibrate pairs: not available yet (waits for the estimator package)")
+	fs := newFlagSet("calibrate", calibratePairsSynopsis, s.err)
+	var raws, refs, subs stringList
+	var o pairing.Options
+	var out string
+	fs.Var(&raws, "raw", "raw PPG CSV (estimate input: header, two channel columns); repeat for several recordings")
+	fs.Var(&refs, "reference", "reference CSV: t_s,spo2_ref_pct (or reference_pct)[,subject|device]; one per --raw, or one for all")
+	fs.Var(&subs, "subject", "subject of each --raw (repeat in the same order); also selects the reference rows when the file has a subject/device column (default: the raw file's folder name)")
+	fs.Float64Var(&o.RateHz, "rate", 0, "raw sample rate, Hz (required)")
+	fs.StringVar(&o.RedCol, "red-col", "red", "first channel column (red, or the longer camera wavelength)")
+	fs.StringVar(&o.IRCol, "ir-col", "ir", "second channel column (infrared, or a camera's g or b)")
+	fs.IntVar(&o.ADCBits, "adc-bits", 0, "converter resolution in bits; 0 = unknown (float input)")
+	fs.Float64Var(&o.AveragingS, "averaging", 0, "estimator averaging window, s (0 = the estimator's default)")
+	fs.IntVar(&o.Align.WindowS, "window", 30, "pairing window, s: one pair per stable window")
+	fs.Float64Var(&o.Align.MaxReferenceSpreadPct, "max-spread", 2, "stable: reference max-min within a window at most this, % SpO2")
+	fs.Float64Var(&o.Align.MinSQI, "min-sqi", 0.5, "a device second counts when its SQI is at least this (0..1)")
+	fs.Float64Var(&o.Align.MinValidFraction, "min-valid", 0.5, "share of a window's seconds that need a ratio with good SQI")
+	fs.IntVar(&o.Align.ReferenceLagS, "lag", 0, "compare device second k with reference second k+lag")
+	fs.StringVar(&out, "out", "", "write the pairs CSV here (default: standard output)")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	switch {
+	case len(raws) == 0:
+		return usagef("--raw: required")
+	case len(refs) == 0:
+		return usagef("--reference: required")
+	case len(refs) != 1 && len(refs) != len(raws):
+		return usagef("--reference: %d files for %d --raw, want 1 or %d", len(refs), len(raws), len(raws))
+	case len(subs) != 0 && len(subs) != len(raws):
+		return usagef("--subject: %d names for %d --raw, want %d", len(subs), len(raws), len(raws))
+	case o.RateHz <= 0:
+		return usagef("--rate: required, in Hz")
+	}
+	var all []calibration.Pair
+	var total calibration.AlignReport
+	summary := s.err
+	if out != "" {
+		summary = s.out
+	}
+	for i, raw := range raws {
+		ref := refs[0]
+		if len(refs) > 1 {
+			ref = refs[i]
+		}
+		o.Align.Subject, o.ReferenceSubject = filepath.Base(filepath.Dir(raw)), ""
+		if len(subs) > 0 {
+			o.Align.Subject, o.ReferenceSubject = subs[i], subs[i]
+		}
+		pairs, rep, err := pairRecording(raw, ref, o)
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(summary, "%s (subject %s): %s\n", raw, o.Align.Subject, rep)
+		all = append(all, pairs...)
+		total.Add(rep)
+	}
+	if len(raws) > 1 {
+		fmt.Fprintf(summary, "total: %s\n", total)
+	}
+	if out == "" {
+		return calibration.WritePairs(s.out, all)
+	}
+	if err := writeFileWith(out, func(w io.Writer) error { return calibration.WritePairs(w, all) }); err != nil {
+		return fmt.Errorf("write pairs: %w", err)
+	}
+	fmt.Fprintf(summary, "%d pairs written to %s\n", len(all), out)
+	return nil
+}
+
+func pairRecording(rawPath, refPath string, o pairing.Options) ([]calibration.Pair, calibration.AlignReport, error) {
+	raw, err := os.Open(rawPath)
+	if err != nil {
+		return nil, calibration.AlignReport{}, err
+	}
+	defer raw.Close()
+	ref, err := os.Open(refPath)
+	if err != nil {
+		return nil, calibration.AlignReport{}, err
+	}
+	defer ref.Close()
+	pairs, rep, err := pairing.FromRecording(raw, ref, o)
+	if err != nil {
+		return nil, rep, fmt.Errorf("%s with %s: %w", rawPath, refPath, err)
+	}
+	return pairs, rep, nil
 }

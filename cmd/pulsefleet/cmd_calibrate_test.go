@@ -116,3 +116,63 @@ func TestCalibrateUsageAndInputErrors(t *testing.T) {
 		}
 	}
 }
+
+// The camera-oximetry open data (Hoffman et al., npj Digit. Med. 5, 146
+// (2022), MIT licence), one recording.
+const cameraSubject2 = "../../testdata/camera-oximetry/subject-2"
+
+func TestCalibratePairsFromRecording(t *testing.T) {
+	out := filepath.Join(t.TempDir(), "pairs.csv")
+	code, stdout, stderr := runCmd("calibrate", "pairs", "--raw", filepath.Join(cameraSubject2, "ppg_left.csv"),
+		"--reference", filepath.Join(cameraSubject2, "reference.csv"), "--rate", "30", "--red-col", "r", "--ir-col", "g", "--out", out)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	// The summary says how many windows were kept and dropped, and why.
+	for _, want := range []string{"(subject subject-2)", "pairs kept", "dropped", "reference not stable", "pairs written to " + out} {
+		if !strings.Contains(stdout, want) {
+			t.Errorf("summary lacks %q:\n%s", want, stdout)
+		}
+	}
+	f, err := os.Open(out)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	pairs, err := calibration.ReadPairs(f)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// 1121 s of recording in 30 s windows: at most 37 pairs; the study
+	// lowered SpO2 towards 70 %, so the pairs span more than 10 %.
+	lo, hi := 100.0, 0.0
+	for _, p := range pairs {
+		if p.Subject != "subject-2" {
+			t.Fatalf("pair subject %q, want subject-2", p.Subject)
+		}
+		lo, hi = math.Min(lo, p.ReferencePct), math.Max(hi, p.ReferencePct)
+	}
+	if len(pairs) < 10 || len(pairs) > 37 || hi-lo < 10 {
+		t.Errorf("%d pairs spanning %.1f-%.1f %%, want 10..37 spanning > 10 %%", len(pairs), lo, hi)
+	}
+}
+
+func TestCalibratePairsUsage(t *testing.T) {
+	for _, tc := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"calibrate", "pairs", "--reference", "r.csv", "--rate", "30"}, "--raw: required"},
+		{[]string{"calibrate", "pairs", "--raw", "a.csv", "--rate", "30"}, "--reference: required"},
+		{[]string{"calibrate", "pairs", "--raw", "a.csv", "--reference", "r.csv"}, "--rate: required"},
+		{[]string{"calibrate", "pairs", "--raw", "a.csv", "--raw", "b.csv", "--reference", "r.csv", "--subject", "x", "--rate", "30"}, "--subject: 1 names for 2 --raw"},
+	} {
+		code, _, stderr := runCmd(tc.args...)
+		if code != 2 || !strings.Contains(stderr, tc.want) {
+			t.Errorf("%v: exit %d, %q; want exit 2 and %q", tc.args, code, stderr, tc.want)
+		}
+	}
+	if code, _, stderr := runCmd("calibrate", "pairs", "--help"); code != 0 || !strings.Contains(stderr, "--reference") {
+		t.Errorf("pairs --help: exit %d, %q", code, stderr)
+	}
+}
