@@ -48,8 +48,8 @@ type beerLambert struct {
 //
 // The pure model ignores scattering: real sensors read higher at the same
 // R, so expect it to read low on a real device; it suits physical models
-// and as a sanity bound. R giving a saturation above 100 % (up to 110 %) is
-// reported as 100 %; beyond that, or below 0 %, no value.
+// and as a sanity bound. R giving a saturation above 100 % (up to 105 %) is
+// reported as 100 % (and down to -0.5 %, rounding, as 0 %); beyond, no value.
 func BeerLambert(redNM, irNM float64) (Calibration, error) {
 	tw, err := ppgmodel.NewTwoWavelength(redNM, irNM)
 	if err != nil {
@@ -63,10 +63,10 @@ func (b beerLambert) SpO2(r float64) (float64, bool) {
 		return math.NaN(), false
 	}
 	s := 100 * b.tw.Saturation(r)
-	if !(s >= 0 && s <= 110) {
+	if !(s >= -0.5 && s <= 105) {
 		return math.NaN(), false
 	}
-	return math.Min(100, s), true
+	return math.Max(0, math.Min(100, s)), true
 }
 
 func (b beerLambert) String() string {

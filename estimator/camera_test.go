@@ -90,18 +90,29 @@ func runCamera(t testing.TB, subject int, hand, first, second string, window flo
 	return r
 }
 
-func TestExploreCamera(t *testing.T) {
-	for _, pair := range [][2]string{{"r", "g"}, {"r", "b"}, {"g", "r"}, {"b", "r"}} {
-		var tot cameraResult
-		for s := 1; s <= 4; s++ {
-			for _, h := range []string{"left", "right"} {
-				r := runCamera(t, s, h, pair[0], pair[1], 0)
-				t.Logf("%v subject %d %s: %v", pair, s, h, r)
-				tot.seconds += r.seconds
-				tot.reported += r.reported
-				tot.absErr += r.absErr
-			}
+// Real data: pulse rate from smartphone-camera PPG (30 Hz frame means, r as
+// the first channel and g as the second, on which beats are detected)
+// against the ECG heart rate of the same study (Hoffman et al. 2022; the
+// data's README). Acceptance: mean absolute error <= 3 /min on the seconds
+// the estimator reports, reporting on >= 80 % of the seconds that have an
+// ECG value. The ECG monitor's own averaging lags the PPG by a few seconds,
+// which accounts for much of the error.
+func TestCameraPulseRateAgainstECG(t *testing.T) {
+	var tot cameraResult
+	for s := 1; s <= 4; s++ {
+		for _, h := range []string{"left", "right"} {
+			r := runCamera(t, s, h, "r", "g", 0)
+			t.Logf("subject %d %-5s: %v", s, h, r)
+			tot.seconds += r.seconds
+			tot.reported += r.reported
+			tot.absErr += r.absErr
 		}
-		t.Logf("%v total: %v", pair, tot)
+	}
+	t.Logf("all 8 recordings: %v", tot)
+	if share := float64(tot.reported) / float64(tot.seconds); share < 0.8 {
+		t.Errorf("pulse reported on %.1f %% of seconds, want >= 80 %%", 100*share)
+	}
+	if mae := tot.absErr / float64(tot.reported); mae > 3 {
+		t.Errorf("pulse MAE %.2f /min, want <= 3", mae)
 	}
 }

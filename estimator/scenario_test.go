@@ -175,20 +175,6 @@ func desaturation() []level {
 	return l
 }
 
-func TestExploreDesaturation(t *testing.T) {
-	for _, c := range []struct {
-		rate float64
-		bits int
-	}{{100, 16}, {250, 14}, {100, 10}} {
-		for seed := uint64(1); seed <= 4; seed++ {
-			sc := scenario{rate: c.rate, bits: c.bits, plateauS: 60, rampS: 10, levels: desaturation(), seed: seed, respPct: 1, noiseFrac: 3e-4, shape: ppgmodel.Shape(seed % 2)}
-			res := sc.run(t)
-			a := score(res, 12)
-			t.Logf("%v Hz %d bit seed %d: %+v", c.rate, c.bits, seed, a)
-		}
-	}
-}
-
 func motionBursts(seedOffset int) []level {
 	var l []level
 	spo2 := []float64{98, 92, 85, 78, 72, 96, 88, 80}
@@ -201,32 +187,32 @@ func motionBursts(seedOffset int) []level {
 	return l
 }
 
-func TestExploreMotion(t *testing.T) {
-	for seed := uint64(1); seed <= 6; seed++ {
-		sc := scenario{rate: 100, bits: 16, plateauS: 30, rampS: 0.001, levels: motionBursts(int(seed)), seed: seed, respPct: 1}
-		res := sc.run(t)
-		var n, bad, conf, withheld, flagged int
-		for _, r := range res {
-			if sc.levels[r.plateau].motion == 0 {
-				continue
-			}
-			n++
-			e := r.est
-			if e.Flags.Has(FlagMotion) {
-				flagged++
-			}
-			if math.IsNaN(e.SpO2Pct) {
-				withheld++
-				continue
-			}
-			if e.SQI >= 0.5 {
-				conf++
-				if math.Abs(e.SpO2Pct-r.truth.SpO2Pct) > 6 {
-					bad++
-					t.Logf("bad: plateau %d motion %v into %.0f: est %.1f truth %.1f sqi %.2f R %.3f flags %v", r.plateau, sc.levels[r.plateau].motion, r.intoS, e.SpO2Pct, r.truth.SpO2Pct, e.SQI, e.Ratio, e.Flags)
-				}
+// motion reports what happened in the seconds of the motion plateaus.
+type motionScore struct {
+	seconds, flagged, withheld, confident, confidentWrong int
+}
+
+func scoreMotion(sc scenario, res []scored) motionScore {
+	var m motionScore
+	for _, r := range res {
+		if sc.levels[r.plateau].motion == 0 {
+			continue
+		}
+		m.seconds++
+		e := r.est
+		if e.Flags.Has(FlagMotion) {
+			m.flagged++
+		}
+		if math.IsNaN(e.SpO2Pct) {
+			m.withheld++
+			continue
+		}
+		if e.SQI >= 0.5 {
+			m.confident++
+			if math.Abs(e.SpO2Pct-r.truth.SpO2Pct) > 6 {
+				m.confidentWrong++
 			}
 		}
-		t.Logf("seed %d: %d motion seconds, %d flagged, %d withheld, %d confident, %d confident and >6 off (%.1f%%)", seed, n, flagged, withheld, conf, bad, 100*float64(bad)/float64(n))
 	}
+	return m
 }

@@ -182,6 +182,7 @@ func (s *Stream) restartDetector() {
 	s.seekMax = false
 	s.minY, s.maxY = math.Inf(1), math.Inf(-1)
 	s.haveFoot = false
+	s.prevY = math.NaN()
 	s.beatPeak = math.Inf(-1)
 	s.acc, s.snap = sums{}, sums{}
 }
