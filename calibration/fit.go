@@ -85,17 +85,31 @@ type FitOptions struct {
 	// FittedAt is an RFC 3339 time written to the file; optional. The
 	// package never reads the clock.
 	FittedAt string
+	// RangeMargin widens the curve's valid ratio range beyond the fitted
+	// ratios by this fraction of their span on each side, so that a device
+	// at the edge of the calibrated range (say at 99 % when the pairs top
+	// out there) is not withheld half of the time by its own noise.
+	// 0 = 0.1; negative = none (exactly the fitted range).
+	RangeMargin float64
 }
 
 // Fit fits a curve to the pairs. Its valid ratio range is the range of the
-// ratios fitted: outside it the curve yields no value rather than an
-// extrapolation.
+// ratios fitted, widened by RangeMargin: outside it the curve yields no
+// value rather than an extrapolation.
 func Fit(pairs []Pair, opts FitOptions) (*Curve, error) {
 	c, err := FitCoefficients(pairs, opts.Model)
 	if err != nil {
 		return nil, err
 	}
 	lo, hi := ratioRange(pairs)
+	m := opts.RangeMargin
+	if m == 0 {
+		m = 0.1
+	}
+	if m > 0 {
+		span := hi - lo
+		lo, hi = math.Max(0, lo-m*span), math.Min(maxRatio, hi+m*span)
+	}
 	v := opts.Version
 	if v == 0 {
 		v = 1

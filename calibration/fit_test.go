@@ -45,7 +45,7 @@ func TestFitRecoversKnownCurvesExactly(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			curve, err := Fit(read, FitOptions{Model: tc.model, Name: "known"})
+			curve, err := Fit(read, FitOptions{Model: tc.model, Name: "known", RangeMargin: -1})
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -72,6 +72,10 @@ func TestFitEmpiricalLineWorkedValues(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	// Valid range: the fitted 0.4..1.0 widened by the default 10 % of the span.
+	if math.Abs(curve.RatioMin-0.34) > 1e-12 || math.Abs(curve.RatioMax-1.06) > 1e-12 {
+		t.Errorf("ratio range [%v, %v], want [0.34, 1.06]", curve.RatioMin, curve.RatioMax)
+	}
 	for _, p := range pairs {
 		got, ok := curve.SpO2(p.Ratio)
 		if !ok || math.Abs(got-p.ReferencePct) > 1e-9 {
@@ -79,7 +83,7 @@ func TestFitEmpiricalLineWorkedValues(t *testing.T) {
 		}
 	}
 	if _, ok := curve.SpO2(1.2); ok {
-		t.Error("SpO2(1.2) outside the fitted range [0.4, 1.0] gave a value, want none")
+		t.Error("SpO2(1.2) outside the valid range [0.34, 1.06] gave a value, want none")
 	}
 }
 
