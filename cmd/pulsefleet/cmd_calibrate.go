@@ -24,6 +24,7 @@ Pairs CSV: header with ratio,reference_pct and optionally subject.
 type calibrateOptions struct {
 	pairs, model, out, name, deviceModel, report, format string
 	version                                              int
+	rangeMargin                                          float64
 }
 
 func init() {
@@ -44,6 +45,7 @@ func runCalibrate(ctx context.Context, args []string, s stdio) error {
 	fs.StringVar(&o.deviceModel, "device-model", "", "device model the pairs were recorded with (optional)")
 	fs.StringVar(&o.report, "report", "", "write curve.svg, bland_altman.svg (and bland_altman_loso.svg) and report.html to this directory")
 	fs.StringVar(&o.format, "format", "text", "stats on standard output: text or json")
+	fs.Float64Var(&o.rangeMargin, "range-margin", 0.1, "widen the curve's valid R range by this fraction of the fitted span on each side (0 = exactly the fitted range)")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -56,6 +58,12 @@ func runCalibrate(ctx context.Context, args []string, s stdio) error {
 		return usagef("--format: %q, want text or json", o.format)
 	case o.version < 1:
 		return usagef("--version: %d, want >= 1", o.version)
+	case !(o.rangeMargin >= 0 && o.rangeMargin <= 1):
+		return usagef("--range-margin: %v, want 0..1", o.rangeMargin)
+	}
+	margin := o.rangeMargin
+	if margin == 0 {
+		margin = -1 // the package's "none"
 	}
 	if o.name == "" {
 		o.name = nameFromPath(o.pairs)
@@ -66,7 +74,7 @@ func runCalibrate(ctx context.Context, args []string, s stdio) error {
 	}
 	res, err := calibration.Calibrate(pairs, calibration.FitOptions{
 		Model: o.model, Name: o.name, Version: o.version, DeviceModel: o.deviceModel,
-		FittedAt: time.Now().UTC().Format(time.RFC3339),
+		FittedAt: time.Now().UTC().Format(time.RFC3339), RangeMargin: margin,
 	})
 	if err != nil {
 		return fmt.Errorf("%s: %w", o.pairs, err)

@@ -57,6 +57,16 @@ func TestCalibrateWritesCurveReportAndStats(t *testing.T) {
 	if math.Abs(curve.Coefficients[0]-110) > 1e-6 || math.Abs(curve.Coefficients[1]+25) > 1e-6 {
 		t.Errorf("coefficients %v, want [110 -25]", curve.Coefficients)
 	}
+	// Ratios span 0.401..1.603; the default margin widens that by 10 % of the span.
+	if math.Abs(curve.RatioMin-(0.401-0.1202)) > 1e-6 || math.Abs(curve.RatioMax-(1.603+0.1202)) > 1e-6 {
+		t.Errorf("valid range [%v, %v], want [0.2808, 1.7232]", curve.RatioMin, curve.RatioMax)
+	}
+	if code, _, stderr := runCmd("calibrate", "--pairs", pairs, "--model", "linear", "--out", out, "--range-margin", "0"); code != 0 {
+		t.Fatalf("--range-margin 0: exit %d: %s", code, stderr)
+	}
+	if exact, err := calibration.Load(out); err != nil || exact.RatioMin != 0.401 || exact.RatioMax != 1.603 {
+		t.Errorf("--range-margin 0: %v, range %v; want exactly [0.401, 1.603]", err, exact)
+	}
 	if curve.Name != "proto-b-pairs" || curve.DeviceModel != "proto-b" || curve.Version != 1 {
 		t.Errorf("name %q device model %q version %d, want proto-b-pairs, proto-b, 1", curve.Name, curve.DeviceModel, curve.Version)
 	}
