@@ -50,7 +50,7 @@ type Config struct {
 	Relation     Relation // how the target SpO2 becomes R; zero = RelationEmpirical
 	Seed         uint64   // the same seed, config and Vitals sequence give the same samples
 	DCLevel      float64  // steady light level of both channels, fraction of full scale; 0 = 0.5 (mid-range), else (0, 1)
-	NoiseRMS     float64  // white detector noise, fraction of DC (rms); 0 = 3e-5; negative = none
+	NoiseRMS     float64  // white detector noise, fraction of DC (rms); 0 = 1e-4; negative = none
 	Shape        Shape    // pulse shape; zero = ShapeExcellent
 	HRV          float64  // beat-to-beat SD of the beat period, fraction (the beat amplitude varies by 1.5 x this); 0 = 0.02; negative = none
 }
@@ -66,7 +66,7 @@ func (c Config) withDefaults() Config {
 		c.DCLevel = 0.5
 	}
 	if c.NoiseRMS == 0 {
-		c.NoiseRMS = 3e-5
+		c.NoiseRMS = 1e-4
 	} else if c.NoiseRMS < 0 {
 		c.NoiseRMS = 0
 	}
