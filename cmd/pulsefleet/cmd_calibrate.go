@@ -14,8 +14,9 @@ import (
 	"github.com/pulsefleet/pulsefleet/calibration/pairing"
 )
 
-const calibrateSummary = `Fit a calibration curve (SpO2 from the ratio of ratios R) to pairs recorded
-beside a reference oximeter, and score it: Arms, bias, SD, Bland-Altman limits of
+const calibrateSummary = `Fit and score a calibration curve (SpO2 from R); 'calibrate pairs' builds pairs from recordings.
+
+Fits a linear or quadratic curve to pairs recorded beside a reference oximeter and scores it: Arms, bias, SD, Bland-Altman limits of
 agreement, Arms per decade, leave-one-subject-out when pairs name subjects.
 Pairs CSV: header with ratio,reference_pct and optionally subject.
 'calibrate pairs --help' builds pairs from raw recordings and a reference file.`
