@@ -9,7 +9,9 @@
 //
 //  1. Ambient light, when given, is subtracted from both channels.
 //  2. A step of more than 25 % of the DC level (sensor off or on, a knock)
-//     restarts the filters at the new level and the averaging window.
+//     restarts the filters at the new level and the averaging window; beats
+//     ending in the first 1.5 s after a (re)start are filter transients and
+//     are dropped, so the first values come after about 3 s.
 //  3. Cardiac band: each channel goes through a 4th-order Butterworth
 //     high-pass at 0.5 Hz, which removes DC and rejects respiratory baseline
 //     wander (0.1-0.4 Hz, attenuated 16x or more), and a 2nd-order low-pass

@@ -45,6 +45,7 @@ const (
 	ampDevOK        = 0.10 // same for the beat amplitude (PI)
 	ampDevSpan      = 0.20
 	maxBeats        = 192 // ring capacity: MaxAveragingS at 300 /min plus margin
+	warmUpS         = 1.5 // beats ending this soon after a (re)start are filter transients
 )
 
 // sums accumulates one beat's samples.
@@ -125,10 +126,11 @@ type Stream struct {
 	lastRateBeat      int64
 	scratch, scratch2 [maxBeats]float64
 
-	n       int64 // samples since start
-	sec     int64 // current second
-	nextSec int64 // sample count that completes it
-	cur     second
+	warmUntil int64 // beats closing before this sample are filter transients
+	n         int64 // samples since start
+	sec       int64 // current second
+	nextSec   int64 // sample count that completes it
+	cur       second
 }
 
 // New returns a stream for cfg, or an error naming the bad field.
@@ -229,6 +231,7 @@ func (s *Stream) sample(r, i float64) {
 		s.dcR, s.dcI = r, i
 		s.restartDetector()
 		s.beatN, s.histN = 0, 0
+		s.warmUntil = s.n + int64(warmUpS*s.rate)
 	}
 	s.dcR += s.dcAlpha * (r - s.dcR)
 	s.dcI += s.dcAlpha * (i - s.dcI)
@@ -326,6 +329,9 @@ func (s *Stream) foot() {
 }
 
 func (s *Stream) closeBeat(a *sums, samples int64, periodS float64) {
+	if s.minIdx < s.warmUntil {
+		return
+	}
 	b := beat{end: s.minIdx, period: periodS}
 	n := a.n
 	dcR, dcI := a.dcr/n, a.dci/n
