@@ -1,0 +1,273 @@
+package store
+
+import (
+	"bytes"
+	"fmt"
+	"sync"
+
+	bolt "go.etcd.io/bbolt"
+)
+
+// Batch is a set of records written in one transaction. Records of one kind
+// are applied in order. Fields the store assigns (Device.Index for a new
+// device, Episode.ID when 0, AuditEntry.ID) are written back into the batch.
+type Batch struct {
+	Devices     []*Device
+	Points      []Point
+	Chunks      []Chunk
+	Raw         []RawCapture
+	Sessions    []Session
+	Episodes    []*Episode
+	AlarmStates map[string][]byte // device -> opaque snapshot; nil value deletes
+	Audit       []*AuditEntry
+}
+
+// Len is the number of records in the batch.
+func (b *Batch) Len() int {
+	return len(b.Devices) + len(b.Points) + len(b.Chunks) + len(b.Raw) + len(b.Sessions) +
+		len(b.Episodes) + len(b.AlarmStates) + len(b.Audit)
+}
+
+// Reset empties the batch, keeping its capacity.
+func (b *Batch) Reset() {
+	clear(b.Devices)
+	b.Devices = b.Devices[:0]
+	b.Points = b.Points[:0]
+	b.Chunks = b.Chunks[:0]
+	clear(b.Raw)
+	b.Raw = b.Raw[:0]
+	b.Sessions = b.Sessions[:0]
+	clear(b.Episodes)
+	b.Episodes = b.Episodes[:0]
+	clear(b.AlarmStates)
+	clear(b.Audit)
+	b.Audit = b.Audit[:0]
+}
+
+// indexCache maps device ids to ledger indices; filled lazily.
+type indexCache struct {
+	mu sync.Mutex
+	m  map[string]uint32
+}
+
+// Write applies the batch in one transaction. When it returns nil, every
+// record is durable.
+func (db *DB) Write(b *Batch) error {
+	if b.Len() == 0 {
+		return nil
+	}
+	newIdx := map[string]uint32{}
+	err := db.bolt.Update(func(tx *bolt.Tx) error {
+		devs := tx.Bucket(bDevices)
+		// Devices first, so ledger records can use their index.
+		for _, d := range b.Devices {
+			if d.ID == "" {
+				return fmt.Errorf("device: empty id")
+			}
+			if d.Index == 0 {
+				if idx, ok := db.cachedIndex(tx, d.ID); ok {
+					d.Index = idx
+				} else {
+					seq, err := devs.NextSequence()
+					if err != nil {
+						return err
+					}
+					d.Index = uint32(seq)
+					newIdx[d.ID] = d.Index
+				}
+			}
+			v, err := encJSON(d)
+			if err != nil {
+				return err
+			}
+			if err := devs.Put([]byte(d.ID), v); err != nil {
+				return err
+			}
+		}
+		if err := writePoints(tx, b.Points); err != nil {
+			return err
+		}
+		if len(b.Chunks) > 0 {
+			led := tx.Bucket(bLedger)
+			// bbolt keeps references to keys and values until commit: one slab, no reuse.
+			slab := make([]byte, len(b.Chunks)*(ledgerKeySize+ledgerValSize))
+			var day *bolt.Bucket
+			var dayNum uint32 = ^uint32(0)
+			for i := range b.Chunks {
+				c := &b.Chunks[i]
+				idx, ok := newIdx[c.Device]
+				if !ok {
+					if idx, ok = db.cachedIndex(tx, c.Device); !ok {
+						return fmt.Errorf("ledger: device %q has no record", c.Device)
+					}
+				}
+				if d := dayOf(c.ArrivalMS); d != dayNum || day == nil {
+					var err error
+					if day, err = led.CreateBucketIfNotExists(u32(d)); err != nil {
+						return err
+					}
+					dayNum = d
+				}
+				k := slab[:ledgerKeySize:ledgerKeySize]
+				v := slab[ledgerKeySize : ledgerKeySize+ledgerValSize : ledgerKeySize+ledgerValSize]
+				slab = slab[ledgerKeySize+ledgerValSize:]
+				encodeChunk(k, v, c, idx)
+				if err := day.Put(k, v); err != nil {
+					return err
+				}
+			}
+		}
+		for i := range b.Raw {
+			r := &b.Raw[i]
+			day, err := nested(tx, bRaw, []byte(r.Device), u32(dayOf(r.DeviceTimeMS)))
+			if err != nil {
+				return err
+			}
+			if err := day.Put(u64(r.Seq), encodeRaw(r)); err != nil {
+				return err
+			}
+		}
+		for i := range b.Sessions {
+			s := &b.Sessions[i]
+			bk, err := nested(tx, bSessions, []byte(s.Device))
+			if err != nil {
+				return err
+			}
+			v, err := encJSON(s)
+			if err != nil {
+				return err
+			}
+			if err := bk.Put(u64(uint64(s.StartMS)), v); err != nil {
+				return err
+			}
+		}
+		eps := tx.Bucket(bEpisodes)
+		for _, e := range b.Episodes {
+			if e.ID == 0 {
+				id, err := eps.NextSequence()
+				if err != nil {
+					return err
+				}
+				e.ID = id
+			}
+			v, err := encJSON(e)
+			if err != nil {
+				return err
+			}
+			if err := eps.Put(u64(e.ID), v); err != nil {
+				return err
+			}
+		}
+		as := tx.Bucket(bAlarmState)
+		for dev, snap := range b.AlarmStates {
+			var err error
+			if snap == nil {
+				err = as.Delete([]byte(dev))
+			} else {
+				err = as.Put([]byte(dev), snap)
+			}
+			if err != nil {
+				return err
+			}
+		}
+		return appendAudit(tx, b.Audit)
+	})
+	if err != nil {
+		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
+	}
+	if len(newIdx) > 0 {
+		db.idx.mu.Lock()
+		for id, i := range newIdx {
+			db.idx.m[id] = i
+		}
+		db.idx.mu.Unlock()
+	}
+	return nil
+}
+
+// cachedIndex returns a device's ledger index from the cache or the devices bucket.
+func (db *DB) cachedIndex(tx *bolt.Tx, id string) (uint32, bool) {
+	db.idx.mu.Lock()
+	i, ok := db.idx.m[id]
+	db.idx.mu.Unlock()
+	if ok {
+		return i, true
+	}
+	v := tx.Bucket(bDevices).Get([]byte(id))
+	if v == nil {
+		return 0, false
+	}
+	var d Device
+	if decJSON(v, &d) != nil || d.Index == 0 {
+		return 0, false
+	}
+	db.idx.mu.Lock()
+	db.idx.m[id] = d.Index
+	db.idx.mu.Unlock()
+	return d.Index, true
+}
+
+// writePoints puts trend points, reusing the device/day bucket between
+// consecutive points of the same device and day.
+func writePoints(tx *bolt.Tx, pts []Point) error {
+	if len(pts) == 0 {
+		return nil
+	}
+	root := tx.Bucket(bTrend)
+	var (
+		dev     *bolt.Bucket
+		devName string
+		day     *bolt.Bucket
+		dayNum  uint32
+	)
+	// bbolt keeps references to keys and values until commit: one slab, no reuse.
+	slab := make([]byte, len(pts)*(8+pointSize))
+	for i := range pts {
+		p := &pts[i]
+		if p.Device == "" {
+			return fmt.Errorf("trend point: empty device")
+		}
+		if dev == nil || p.Device != devName {
+			var err error
+			if dev, err = root.CreateBucketIfNotExists([]byte(p.Device)); err != nil {
+				return err
+			}
+			devName, day = p.Device, nil
+		}
+		if d := dayOf(p.TimeMS); day == nil || d != dayNum {
+			var err error
+			if day, err = dev.CreateBucketIfNotExists(u32(d)); err != nil {
+				return err
+			}
+			dayNum = d
+		}
+		key, val := slab[:8:8], slab[8:8+pointSize:8+pointSize]
+		slab = slab[8+pointSize:]
+		putKey(key, p.TimeMS)
+		if err := day.Put(key, encodePoint(val, p)); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+func putKey(k []byte, ms int64) {
+	for i := 7; i >= 0; i-- {
+		k[i] = byte(ms)
+		ms >>= 8
+	}
+}
+
+// nested returns (creating) the bucket at path under a root bucket.
+func nested(tx *bolt.Tx, root []byte, path ...[]byte) (*bolt.Bucket, error) {
+	b := tx.Bucket(root)
+	for _, p := range path {
+		var err error
+		if b, err = b.CreateBucketIfNotExists(p); err != nil {
+			return nil, err
+		}
+	}
+	return b, nil
+}
+
+func hasPrefix(k, p []byte) bool { return bytes.HasPrefix(k, p) }

@@ -1,0 +1,96 @@
+package store
+
+import (
+	"encoding/binary"
+	"fmt"
+	"math"
+)
+
+const pointSize = 1 + 2 + 1 + 5*4
+
+func putF32(b []byte, v float64) { binary.BigEndian.PutUint32(b, math.Float32bits(float32(v))) }
+func getF32(b []byte) float64 {
+	f := math.Float32frombits(binary.BigEndian.Uint32(b))
+	return float64(f)
+}
+
+func encodePoint(b []byte, p *Point) []byte {
+	b = b[:pointSize]
+	b[0] = vPoint
+	binary.BigEndian.PutUint16(b[1:], p.Flags)
+	b[3] = p.Source
+	putF32(b[4:], p.SpO2)
+	putF32(b[8:], p.Pulse)
+	putF32(b[12:], p.PI)
+	putF32(b[16:], p.SQI)
+	putF32(b[20:], p.Ratio)
+	return b
+}
+
+func decodePoint(k, v []byte, p *Point) error {
+	if len(k) != 8 || len(v) < pointSize || v[0] != vPoint {
+		return fmt.Errorf("bad trend record (key %d bytes, value %d bytes, version %d)", len(k), len(v), firstByte(v))
+	}
+	p.TimeMS = int64(binary.BigEndian.Uint64(k))
+	p.Flags = binary.BigEndian.Uint16(v[1:])
+	p.Source = v[3]
+	p.SpO2 = getF32(v[4:])
+	p.Pulse = getF32(v[8:])
+	p.PI = getF32(v[12:])
+	p.SQI = getF32(v[16:])
+	p.Ratio = getF32(v[20:])
+	return nil
+}
+
+// ledger key: arrival ms (8) | device index (4) | seq (8); value: version | device time (8) | samples (4)
+const ledgerKeySize = 20
+const ledgerValSize = 13
+
+func encodeChunk(k, v []byte, c *Chunk, devIdx uint32) {
+	binary.BigEndian.PutUint64(k[0:], uint64(c.ArrivalMS))
+	binary.BigEndian.PutUint32(k[8:], devIdx)
+	binary.BigEndian.PutUint64(k[12:], c.Seq)
+	v[0] = vChunk
+	binary.BigEndian.PutUint64(v[1:], uint64(c.DeviceTimeMS))
+	binary.BigEndian.PutUint32(v[9:], c.Samples)
+}
+
+func encodeRaw(r *RawCapture) []byte {
+	n := len(r.Red)
+	b := make([]byte, 0, 1+8+8+4+4+12*n)
+	b = append(b, vRaw)
+	b = binary.BigEndian.AppendUint64(b, uint64(r.DeviceTimeMS))
+	b = binary.BigEndian.AppendUint64(b, math.Float64bits(r.RateHz))
+	b = binary.BigEndian.AppendUint32(b, uint32(n))
+	b = binary.BigEndian.AppendUint32(b, uint32(len(r.Ambient)))
+	for _, s := range [][]uint32{r.Red, r.IR, r.Ambient} {
+		for _, x := range s {
+			b = binary.BigEndian.AppendUint32(b, x)
+		}
+	}
+	return b
+}
+
+func decodeRaw(v []byte, r *RawCapture) error {
+	if len(v) < 25 || v[0] != vRaw {
+		return fmt.Errorf("bad raw record")
+	}
+	r.DeviceTimeMS = int64(binary.BigEndian.Uint64(v[1:]))
+	r.RateHz = math.Float64frombits(binary.BigEndian.Uint64(v[9:]))
+	n := int(binary.BigEndian.Uint32(v[17:]))
+	na := int(binary.BigEndian.Uint32(v[21:]))
+	if len(v) != 25+4*(2*n+na) {
+		return fmt.Errorf("bad raw record length")
+	}
+	read := func(off, cnt int) []uint32 {
+		out := make([]uint32, cnt)
+		for i := range out {
+			out[i] = binary.BigEndian.Uint32(v[off+4*i:])
+		}
+		return out
+	}
+	r.Red = read(25, n)
+	r.IR = read(25+4*n, n)
+	r.Ambient = read(25+8*n, na)
+	return nil
+}

@@ -1,0 +1,355 @@
+package store
+
+import (
+	"encoding/binary"
+	"fmt"
+	"math"
+	"sort"
+
+	bolt "go.etcd.io/bbolt"
+)
+
+// Devices returns every device record, ordered by id.
+func (db *DB) Devices() ([]Device, error) {
+	var out []Device
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		return tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
+			var d Device
+			if err := decJSON(v, &d); err != nil {
+				return fmt.Errorf("device %q: %w", k, err)
+			}
+			out = append(out, d)
+			return nil
+		})
+	})
+	if err != nil {
+		return nil, fmt.Errorf("store: devices: %w", err)
+	}
+	return out, nil
+}
+
+// Device returns one device record or ErrNotFound.
+func (db *DB) Device(id string) (Device, error) {
+	var d Device
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		v := tx.Bucket(bDevices).Get([]byte(id))
+		if v == nil {
+			return ErrNotFound
+		}
+		return decJSON(v, &d)
+	})
+	if err != nil {
+		return Device{}, fmt.Errorf("store: device %q: %w", id, err)
+	}
+	return d, nil
+}
+
+// Trend calls fn for each point of device with fromMS <= time < toMS, oldest
+// first, until fn returns false. Point.Device is set.
+func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) error {
+	if toMS <= fromMS {
+		return nil
+	}
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		dev := tx.Bucket(bTrend).Bucket([]byte(device))
+		if dev == nil {
+			return nil
+		}
+		var from [8]byte
+		putKey(from[:], fromMS)
+		c := dev.Cursor()
+		// Day buckets, from the day of fromMS on.
+		for dk, _ := c.Seek(u32(dayOf(fromMS))); dk != nil; dk, _ = c.Next() {
+			if len(dk) != 4 || binary.BigEndian.Uint32(dk) > dayOf(toMS-1) {
+				break
+			}
+			day := dev.Bucket(dk)
+			if day == nil {
+				continue
+			}
+			pc := day.Cursor()
+			for k, v := pc.Seek(from[:]); k != nil; k, v = pc.Next() {
+				var p Point
+				if err := decodePoint(k, v, &p); err != nil {
+					return err
+				}
+				if p.TimeMS >= toMS {
+					return nil
+				}
+				p.Device = device
+				if !fn(p) {
+					return errStop
+				}
+			}
+		}
+		return nil
+	})
+	if err == errStop {
+		err = nil
+	}
+	if err != nil {
+		return fmt.Errorf("store: trend %q: %w", device, err)
+	}
+	return nil
+}
+
+// TrendDevices lists the devices that have trend points, ordered by id.
+func (db *DB) TrendDevices() ([]string, error) {
+	var out []string
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		return tx.Bucket(bTrend).ForEachBucket(func(k []byte) error {
+			out = append(out, string(k))
+			return nil
+		})
+	})
+	return out, err
+}
+
+type stopErr struct{}
+
+func (stopErr) Error() string { return "stop" }
+
+var errStop error = stopErr{}
+
+// Stat summarises one quantity over a step.
+type Stat struct {
+	Count          uint32
+	Min, Mean, Max float64
+}
+
+func (s *Stat) add(v float64) {
+	if math.IsNaN(v) {
+		return
+	}
+	if s.Count == 0 || v < s.Min {
+		s.Min = v
+	}
+	if s.Count == 0 || v > s.Max {
+		s.Max = v
+	}
+	s.Mean += v // sum until finish
+	s.Count++
+}
+
+func (s *Stat) finish() {
+	if s.Count > 0 {
+		s.Mean /= float64(s.Count)
+	}
+}
+
+// Bucket is one downsampling step.
+type Bucket struct {
+	StartMS              int64
+	Points               uint32
+	SpO2, Pulse, PI, SQI Stat
+}
+
+// TrendBuckets downsamples a device's trend to steps of stepMS aligned to the
+// Unix epoch; steps without points are left out.
+func (db *DB) TrendBuckets(device string, fromMS, toMS, stepMS int64) ([]Bucket, error) {
+	if stepMS <= 0 {
+		return nil, fmt.Errorf("store: step %d ms, want > 0", stepMS)
+	}
+	var out []Bucket
+	var cur *Bucket
+	err := db.Trend(device, fromMS, toMS, func(p Point) bool {
+		start := p.TimeMS - mod(p.TimeMS, stepMS)
+		if cur == nil || cur.StartMS != start {
+			if cur != nil {
+				cur.finish()
+			}
+			out = append(out, Bucket{StartMS: start})
+			cur = &out[len(out)-1]
+		}
+		cur.Points++
+		cur.SpO2.add(p.SpO2)
+		cur.Pulse.add(p.Pulse)
+		cur.PI.add(p.PI)
+		cur.SQI.add(p.SQI)
+		return true
+	})
+	if cur != nil {
+		cur.finish()
+	}
+	return out, err
+}
+
+func (b *Bucket) finish() { b.SpO2.finish(); b.Pulse.finish(); b.PI.finish(); b.SQI.finish() }
+
+func mod(a, b int64) int64 {
+	m := a % b
+	if m < 0 {
+		m += b
+	}
+	return m
+}
+
+// LedgerTotal sums a device's ledger records.
+type LedgerTotal struct {
+	Chunks  uint64
+	Samples uint64
+	MaxSeq  uint64
+	// Distinct is false when a sequence number appears twice (a defect).
+	Distinct bool
+}
+
+// LedgerTotals scans the whole ingest ledger and sums it per device. It is
+// meant for verification (tests, bench), not for hot paths.
+func (db *DB) LedgerTotals() (map[string]LedgerTotal, error) {
+	byIdx := map[uint32]*LedgerTotal{}
+	seen := map[[12]byte]struct{}{}
+	names := map[uint32]string{}
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		if err := tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
+			var d Device
+			if err := decJSON(v, &d); err != nil {
+				return err
+			}
+			names[d.Index] = d.ID
+			return nil
+		}); err != nil {
+			return err
+		}
+		return tx.Bucket(bLedger).ForEachBucket(func(dk []byte) error {
+			return tx.Bucket(bLedger).Bucket(dk).ForEach(func(k, v []byte) error {
+				if len(k) != ledgerKeySize || len(v) != ledgerValSize {
+					return fmt.Errorf("bad ledger record")
+				}
+				idx := binary.BigEndian.Uint32(k[8:])
+				seq := binary.BigEndian.Uint64(k[12:])
+				t := byIdx[idx]
+				if t == nil {
+					t = &LedgerTotal{Distinct: true}
+					byIdx[idx] = t
+				}
+				var sk [12]byte
+				copy(sk[:], k[8:])
+				if _, dup := seen[sk]; dup {
+					t.Distinct = false
+				}
+				seen[sk] = struct{}{}
+				t.Chunks++
+				t.Samples += uint64(binary.BigEndian.Uint32(v[9:]))
+				t.MaxSeq = max(t.MaxSeq, seq)
+				return nil
+			})
+		})
+	})
+	if err != nil {
+		return nil, fmt.Errorf("store: ledger: %w", err)
+	}
+	out := make(map[string]LedgerTotal, len(byIdx))
+	for idx, t := range byIdx {
+		out[names[idx]] = *t
+	}
+	return out, nil
+}
+
+// Sessions returns a device's sessions that started at or after fromMS, oldest first.
+func (db *DB) Sessions(device string, fromMS int64) ([]Session, error) {
+	var out []Session
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		b := tx.Bucket(bSessions).Bucket([]byte(device))
+		if b == nil {
+			return nil
+		}
+		c := b.Cursor()
+		for k, v := c.Seek(u64(uint64(max(fromMS, 0)))); k != nil; k, v = c.Next() {
+			var s Session
+			if err := decJSON(v, &s); err != nil {
+				return err
+			}
+			out = append(out, s)
+		}
+		return nil
+	})
+	return out, err
+}
+
+// EpisodeFilter selects episodes; zero fields do not filter.
+type EpisodeFilter struct {
+	Device     string
+	FromMS     int64 // onset >= FromMS
+	ToMS       int64 // onset < ToMS
+	ActiveOnly bool
+	Limit      int // 0 = no limit
+}
+
+// Episodes returns matching episodes, newest onset first.
+func (db *DB) Episodes(f EpisodeFilter) ([]Episode, error) {
+	var out []Episode
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		return tx.Bucket(bEpisodes).ForEach(func(k, v []byte) error {
+			var e Episode
+			if err := decJSON(v, &e); err != nil {
+				return err
+			}
+			if (f.Device != "" && e.Device != f.Device) || (f.FromMS != 0 && e.OnsetMS < f.FromMS) ||
+				(f.ToMS != 0 && e.OnsetMS >= f.ToMS) || (f.ActiveOnly && !e.Active) {
+				return nil
+			}
+			out = append(out, e)
+			return nil
+		})
+	})
+	sort.SliceStable(out, func(i, j int) bool {
+		if out[i].OnsetMS != out[j].OnsetMS {
+			return out[i].OnsetMS > out[j].OnsetMS
+		}
+		return out[i].ID > out[j].ID
+	})
+	if f.Limit > 0 && len(out) > f.Limit {
+		out = out[:f.Limit]
+	}
+	return out, err
+}
+
+// AlarmStates returns every stored alarm-engine snapshot by device.
+func (db *DB) AlarmStates() (map[string][]byte, error) {
+	out := map[string][]byte{}
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		return tx.Bucket(bAlarmState).ForEach(func(k, v []byte) error {
+			out[string(k)] = clone(v)
+			return nil
+		})
+	})
+	return out, err
+}
+
+// RawCaptures calls fn for each captured chunk of device with device time in
+// [fromMS, toMS), in sequence order within a day.
+func (db *DB) RawCaptures(device string, fromMS, toMS int64, fn func(RawCapture) bool) error {
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		dev := tx.Bucket(bRaw).Bucket([]byte(device))
+		if dev == nil {
+			return nil
+		}
+		c := dev.Cursor()
+		for dk, _ := c.Seek(u32(dayOf(fromMS))); dk != nil; dk, _ = c.Next() {
+			if binary.BigEndian.Uint32(dk) > dayOf(toMS-1) {
+				break
+			}
+			err := dev.Bucket(dk).ForEach(func(k, v []byte) error {
+				r := RawCapture{Device: device, Seq: binary.BigEndian.Uint64(k)}
+				if err := decodeRaw(v, &r); err != nil {
+					return err
+				}
+				if r.DeviceTimeMS < fromMS || r.DeviceTimeMS >= toMS {
+					return nil
+				}
+				if !fn(r) {
+					return errStop
+				}
+				return nil
+			})
+			if err != nil {
+				return err
+			}
+		}
+		return nil
+	})
+	if err == errStop {
+		return nil
+	}
+	return err
+}
