@@ -44,8 +44,9 @@ const (
 	periodDevSpan   = 0.10 // ... and how much more takes quality to 0
 	ampDevOK        = 0.10 // same for the beat amplitude (PI)
 	ampDevSpan      = 0.20
-	maxBeats        = 192 // ring capacity: MaxAveragingS at 300 /min plus margin
-	warmUpS         = 1.5 // beats ending this soon after a (re)start are filter transients
+	maxBeats        = 192  // ring capacity: MaxAveragingS at 300 /min plus margin
+	warmUpS         = 1.5  // beats ending this soon after a (re)start are filter transients
+	maxAbsSample    = 1e12 // larger magnitudes (and NaN, Inf) are not samples
 )
 
 // sums accumulates one beat's samples.
@@ -208,6 +209,12 @@ func (s *Stream) Push(red, ir, ambient []float64, out []Estimate) []Estimate {
 		if useAmb {
 			r -= ambient[j]
 			i -= ambient[j]
+		}
+		if !(math.Abs(r) <= maxAbsSample && math.Abs(i) <= maxAbsSample) {
+			// Not a measurement (NaN, infinite, absurd): hold the level so
+			// the filters survive, and keep the beat out of the ratio.
+			r, i = s.dcR, s.dcI
+			s.acc.clipped++
 		}
 		s.sample(r, i)
 		if s.n == s.nextSec {

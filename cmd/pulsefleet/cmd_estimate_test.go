@@ -289,3 +289,33 @@ func TestEstimateHelp(t *testing.T) {
 		t.Errorf("--help: exit %d, %q", code, stderr)
 	}
 }
+
+// FuzzEstimateCSV: any input either fails with an error naming where, or
+// gives the contract header and rows of six cells.
+func FuzzEstimateCSV(f *testing.F) {
+	f.Add("t_s,red,ir\n0,1,2\n0.01,3,4\n")
+	f.Add("red,ir\n1,2\n3,oops\n")
+	f.Add("red,ir\n\"1,2\n")
+	f.Add("red,ir,ambient\n1e308,-1e308,0\nNaN,Inf,1\n")
+	f.Add("red,ir\n" + strings.Repeat("1000,900\n1010,905\n", 40))
+	f.Add("\ufefft_s,red,ir\n0,1,1\n0,1,1\n")
+	f.Fuzz(func(t *testing.T, in string) {
+		var out, errb bytes.Buffer
+		code := run(context.Background(), []string{"estimate", "--rate", "25"}, stdio{in: strings.NewReader(in), out: &out, err: &errb})
+		if code != 0 {
+			if !strings.Contains(errb.String(), "line") && !strings.Contains(errb.String(), "empty input") {
+				t.Errorf("exit %d, message %q names no line", code, errb.String())
+			}
+			return
+		}
+		lines := strings.Split(strings.TrimSuffix(out.String(), "\n"), "\n")
+		if lines[0] != "t_s,spo2_pct,pulse_bpm,pi_pct,sqi,ratio" {
+			t.Fatalf("header %q", lines[0])
+		}
+		for _, l := range lines[1:] {
+			if strings.Count(l, ",") != 5 {
+				t.Fatalf("row %q has not 6 cells", l)
+			}
+		}
+	})
+}
