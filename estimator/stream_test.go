@@ -4,6 +4,7 @@ import (
 	"math"
 	"strings"
 	"testing"
+	"unsafe"
 
 	"github.com/pulsefleet/pulsefleet/ppgmodel"
 	"pgregory.net/rapid"
@@ -271,5 +272,37 @@ func TestPushDoesNotAllocate(t *testing.T) {
 	})
 	if allocs != 0 {
 		t.Errorf("Push allocates %v times per 25-sample chunk", allocs)
+	}
+}
+
+// The cardiac band is about 0.5-5 Hz, 30-300 /min (REFERENCES.md, Allen
+// 2007 via notes): pulse rates across it are measured, with both pulse
+// shapes (Tang et al. 2020), including the large diastolic wave of the
+// "acceptable" shape, which must not count as a beat.
+func TestPulseRateAcrossCardiacBand(t *testing.T) {
+	for _, shape := range []ppgmodel.Shape{ppgmodel.ShapeExcellent, ppgmodel.ShapeAcceptable} {
+		for _, bpm := range []float64{32, 45, 60, 90, 150, 200, 240, 280} {
+			r := newRig(t, ppgmodel.Config{SampleRateHz: 100, ADCBits: 16, Seed: 8, Shape: shape}, Config{SampleRateHz: 100, ADCBits: 16})
+			v := ppgmodel.DefaultVitals()
+			v.PulseBPM = bpm
+			out := r.run(30, v)
+			last := out[len(out)-1]
+			if math.IsNaN(last.PulseBPM) || math.Abs(last.PulseBPM-bpm) > 0.02*bpm+1 {
+				t.Errorf("shape %d, %v /min: read %.1f /min (%v)", shape, bpm, last.PulseBPM, last.Flags)
+			}
+			if math.IsNaN(last.SpO2Pct) || math.Abs(last.SpO2Pct-98) > 1 {
+				t.Errorf("shape %d, %v /min: SpO2 %.1f, want 98 +- 1", shape, bpm, last.SpO2Pct)
+			}
+		}
+	}
+}
+
+// DESIGN.md budgets 64 KiB per connected raw stream for the whole gateway;
+// the estimator's share is fixed (no per-sample buffers).
+func TestStreamMemoryIsBounded(t *testing.T) {
+	size := unsafe.Sizeof(Stream{})
+	t.Logf("Stream is %d bytes", size)
+	if size > 24<<10 {
+		t.Errorf("Stream is %d bytes, want <= 24 KiB", size)
 	}
 }
