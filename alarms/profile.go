@@ -549,7 +549,18 @@ func (p *Profile) Set(key, value string) error {
 	if err != nil {
 		return err
 	}
-	return p.Validate()
+	err = p.Validate()
+	var fe *FieldError
+	if errors.As(err, &fe) {
+		// Name the condition the way the caller did: spo2_low.delay, not conditions[0].delay.
+		for i := range p.Conditions {
+			prefix := fmt.Sprintf("conditions[%d]", i)
+			if strings.HasPrefix(fe.Path, prefix+".") {
+				fe.Path = p.Conditions[i].ConditionName() + strings.TrimPrefix(fe.Path, prefix)
+			}
+		}
+	}
+	return err
 }
 
 // yamlProfile and friends fix the key order of Marshal.
