@@ -161,6 +161,7 @@ type State struct {
 	Motion      float64 // 0 (still) .. 1 (vigorous)
 	SensorOff   bool
 	Offline     bool // the device is disconnected (offline event, on its charger or battery flat)
+	DeviceOff   bool // the device is switched off (on its charger or battery flat) and samples nothing
 	BatteryPct  float64
 }
 
@@ -294,7 +295,7 @@ func (t *Track) At(at time.Duration) State {
 		case Offline:
 			st.Offline = true
 		case Charge:
-			st.Offline, st.SensorOff = true, true
+			st.Offline, st.SensorOff, st.DeviceOff = true, true, true
 		}
 	}
 	b := t.dev.Battery
@@ -305,7 +306,7 @@ func (t *Track) At(at time.Duration) State {
 	}
 	if st.BatteryPct <= 0 {
 		st.BatteryPct = 0
-		st.Offline = true
+		st.Offline, st.SensorOff, st.DeviceOff = true, true, true
 	}
 	return st
 }

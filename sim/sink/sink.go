@@ -18,12 +18,14 @@ import (
 	"regexp"
 	"sort"
 	"strconv"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/metadata"
 	"google.golang.org/grpc/status"
 
 	pulsefleetv1 "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
@@ -37,6 +39,13 @@ type Options struct {
 	// messages in that window are then rejected as stale. 0 = acknowledge
 	// everything accepted at once. For tests of device resend logic.
 	DurableLag uint64
+	// RedirectTo, when set, answers every introduction with a Redirect to
+	// this address instead of a Welcome. For tests of redirect handling.
+	RedirectTo string
+	// Authorize, when set, is asked about every stream with the device id
+	// and the bearer token from the "authorization" metadata ("" when
+	// absent); an error ends the stream as UNAUTHENTICATED.
+	Authorize func(deviceID, token string) error
 }
 
 // Server is the sink. Safe for concurrent use.
@@ -170,6 +179,21 @@ func (s *Server) Connect(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectReq
 	mode := intro.GetMode()
 	if mode != pulsefleetv1.Mode_MODE_RAW && mode != pulsefleetv1.Mode_MODE_SUMMARY {
 		return status.Errorf(codes.InvalidArgument, "introduction.mode: %v, want MODE_RAW or MODE_SUMMARY", mode)
+	}
+	if s.opts.Authorize != nil {
+		tok := ""
+		if md, ok := metadata.FromIncomingContext(stream.Context()); ok {
+			if v := md.Get("authorization"); len(v) > 0 {
+				tok = strings.TrimPrefix(v[0], "Bearer ")
+			}
+		}
+		if err := s.opts.Authorize(intro.GetDeviceId(), tok); err != nil {
+			return status.Errorf(codes.Unauthenticated, "device %s: %v", intro.GetDeviceId(), err)
+		}
+	}
+	if s.opts.RedirectTo != "" {
+		return stream.Send(&pulsefleetv1.ConnectResponse{Kind: &pulsefleetv1.ConnectResponse_Redirect{Redirect: &pulsefleetv1.Redirect{
+			Address: s.opts.RedirectTo, Detail: "this sink redirects every device"}}})
 	}
 	top := uint32(1)<<bits - 1
 	d := s.device(intro.GetDeviceId())
