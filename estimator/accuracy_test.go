@@ -1,7 +1,9 @@
 package estimator
 
 import (
+	"fmt"
 	"math"
+	"strings"
 	"testing"
 
 	"github.com/pulsefleet/pulsefleet/ppgmodel"
@@ -47,7 +49,8 @@ func TestDesaturationAccuracy(t *testing.T) {
 					plateauS: 60, rampS: 10, levels: desaturation(), seed: seed,
 					respPct: 1, shape: ppgmodel.Shape(seed % 2),
 				}
-				a := score(sc.run(t), settleS)
+				res := sc.run(t)
+				a := score(res, settleS)
 				t.Logf("seed %d: Arms %.2f %% (bias %+.2f, SD %.2f) on %d s; pulse MAE %.2f /min; SpO2 on %.1f %% of %d s; low-resolution flag on %.0f %%",
 					seed, a.armsPct, a.biasPct, a.sdPct, a.spo2N, a.pulseMAE, 100*a.reportShare, a.seconds, 100*a.lowResShare)
 				if !(a.armsPct <= c.maxArms) {
@@ -58,6 +61,9 @@ func TestDesaturationAccuracy(t *testing.T) {
 				}
 				if !(a.reportShare >= 0.95) {
 					t.Errorf("seed %d: SpO2 on %.1f %% of seconds, want >= 95 %%", seed, 100*a.reportShare)
+				}
+				if seed == 1 {
+					t.Logf("per plateau (truth: Arms, bias, pulse MAE, share): %s", perPlateau(sc, res))
 				}
 				if a.seconds < 400 {
 					t.Errorf("seed %d: only %d seconds scored", seed, a.seconds)
@@ -145,4 +151,20 @@ func TestNoMotionFlagWhenStill(t *testing.T) {
 	if flagged > n/20 {
 		t.Errorf("motion flagged on %d of %d still seconds", flagged, n)
 	}
+}
+
+// perPlateau summarises each plateau's settled seconds for the log.
+func perPlateau(sc scenario, res []scored) string {
+	var b strings.Builder
+	for p, l := range sc.levels {
+		var sub []scored
+		for _, r := range res {
+			if r.plateau == p {
+				sub = append(sub, r)
+			}
+		}
+		a := score(sub, settleS)
+		fmt.Fprintf(&b, "%.0f%%: %.2f %+.2f %.2f %.0f%%; ", l.spo2, a.armsPct, a.biasPct, a.pulseMAE, 100*a.reportShare)
+	}
+	return b.String()
 }
