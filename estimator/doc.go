@@ -54,7 +54,8 @@
 // # Flags
 //
 // FlagSensorOff, FlagNoPulse as above; FlagClipping when a sample of the
-// second sat at 0 or full scale; FlagMotion when a beat in the second broke
+// second sat at 0 or full scale; FlagMotion when the light level stepped by
+// more than 25 % (with the sensor on), or a beat in the second broke
 // the consistency rules, or a well-resolved beat's channels disagree (rho <
 // 0.95 with both swings >= 100 codes), or the second's infrared swing exceeds
 // 2.5 x the median PI, or the window's beats are irregular (period spread >

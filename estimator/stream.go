@@ -237,7 +237,7 @@ func (s *Stream) sample(r, i float64) {
 		s.ir.settle(i)
 		s.dcR, s.dcI = r, i
 		s.restartDetector()
-		s.beatN, s.histN = 0, 0
+		s.beatN, s.histN, s.histHead = 0, 0, 0
 		s.warmUntil = s.n + int64(warmUpS*s.rate)
 	}
 	s.dcR += s.dcAlpha * (r - s.dcR)
@@ -406,6 +406,9 @@ func (s *Stream) emit() Estimate {
 	}
 	if c.clipped > 0 {
 		e.Flags |= FlagClipping
+	}
+	if c.discontinue {
+		e.Flags |= FlagMotion // a step in the light level with the sensor on
 	}
 	if s.fs > 0 && math.Min(c.hiR-c.loR, c.hiI-c.loI) < MinResolvedCodes {
 		e.Flags |= FlagLowResolution

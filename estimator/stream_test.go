@@ -306,3 +306,24 @@ func TestStreamMemoryIsBounded(t *testing.T) {
 		t.Errorf("Stream is %d bytes, want <= 24 KiB", size)
 	}
 }
+
+// After the sensor is put back on (a restart), the recent-beat history of
+// the previous placement must not judge the new beats: a new pulse rate is
+// read as soon as the window has beats.
+func TestRestartForgetsPreviousBeats(t *testing.T) {
+	r := newRig(t, ppgmodel.Config{SampleRateHz: 100, ADCBits: 16, Seed: 9}, Config{SampleRateHz: 100, ADCBits: 16})
+	v := ppgmodel.DefaultVitals()
+	v.PulseBPM = 55
+	r.run(30, v)
+	off := v
+	off.SensorOff = true
+	r.run(5, off)
+	v.PulseBPM = 130
+	v.PIPct = 5
+	out := r.run(8, v)
+	for _, e := range out[5:] {
+		if math.IsNaN(e.PulseBPM) || math.Abs(e.PulseBPM-130) > 3 {
+			t.Errorf("%d s after the sensor is back: pulse %.1f (%v), want 130", e.Second-34, e.PulseBPM, e.Flags)
+		}
+	}
+}
