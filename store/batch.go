@@ -13,6 +13,7 @@ import (
 // device, Episode.ID when 0, AuditEntry.ID) are written back into the batch.
 type Batch struct {
 	Devices     []*Device
+	Cursors     []Cursor
 	Points      []Point
 	Chunks      []Chunk
 	Raw         []RawCapture
@@ -24,7 +25,7 @@ type Batch struct {
 
 // Len is the number of records in the batch.
 func (b *Batch) Len() int {
-	return len(b.Devices) + len(b.Points) + len(b.Chunks) + len(b.Raw) + len(b.Sessions) +
+	return len(b.Devices) + len(b.Cursors) + len(b.Points) + len(b.Chunks) + len(b.Raw) + len(b.Sessions) +
 		len(b.Episodes) + len(b.AlarmStates) + len(b.Audit)
 }
 
@@ -32,6 +33,7 @@ func (b *Batch) Len() int {
 func (b *Batch) Reset() {
 	clear(b.Devices)
 	b.Devices = b.Devices[:0]
+	b.Cursors = b.Cursors[:0]
 	b.Points = b.Points[:0]
 	b.Chunks = b.Chunks[:0]
 	clear(b.Raw)
@@ -81,6 +83,13 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 			if err := devs.Put([]byte(d.ID), v); err != nil {
+				return err
+			}
+		}
+		curs := tx.Bucket(bCursors)
+		for i := range b.Cursors {
+			c := &b.Cursors[i]
+			if err := curs.Put([]byte(c.Device), encodeCursor(c)); err != nil {
 				return err
 			}
 		}

@@ -94,3 +94,26 @@ func decodeRaw(v []byte, r *RawCapture) error {
 	r.Ambient = read(25+8*n, na)
 	return nil
 }
+
+const cursorSize = 1 + 7*8 + 8
+
+func encodeCursor(c *Cursor) []byte {
+	b := make([]byte, 0, cursorSize)
+	b = append(b, vCursor)
+	for _, v := range []uint64{c.LastSeq, c.Chunks, c.Samples, c.Lost, c.Duplicates, c.Rejected, c.Late, uint64(c.LastSeenMS)} {
+		b = binary.BigEndian.AppendUint64(b, v)
+	}
+	return b
+}
+
+func decodeCursor(v []byte, c *Cursor) error {
+	if len(v) != cursorSize || v[0] != vCursor {
+		return fmt.Errorf("bad cursor record")
+	}
+	f := []*uint64{&c.LastSeq, &c.Chunks, &c.Samples, &c.Lost, &c.Duplicates, &c.Rejected, &c.Late}
+	for i, p := range f {
+		*p = binary.BigEndian.Uint64(v[1+8*i:])
+	}
+	c.LastSeenMS = int64(binary.BigEndian.Uint64(v[1+8*7:]))
+	return nil
+}

@@ -20,10 +20,11 @@ const schemaVersion = 1
 
 // Value format versions (the first byte of every stored value).
 const (
-	vJSON  = 1
-	vPoint = 1
-	vChunk = 1
-	vRaw   = 1
+	vJSON   = 1
+	vPoint  = 1
+	vChunk  = 1
+	vRaw    = 1
+	vCursor = 1
 )
 
 // Sentinel errors.
@@ -37,6 +38,7 @@ var (
 var (
 	bMeta         = []byte("meta")
 	bDevices      = []byte("devices")
+	bCursors      = []byte("cursors")
 	bTrend        = []byte("trend")
 	bLedger       = []byte("ledger")
 	bRaw          = []byte("raw")
@@ -49,7 +51,7 @@ var (
 	bCalAssign    = []byte("calassign")
 	bTokens       = []byte("tokens")
 
-	allBuckets = [][]byte{bMeta, bDevices, bTrend, bLedger, bRaw, bSessions, bEpisodes,
+	allBuckets = [][]byte{bMeta, bDevices, bCursors, bTrend, bLedger, bRaw, bSessions, bEpisodes,
 		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens}
 )
 

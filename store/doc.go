@@ -7,7 +7,8 @@
 // every value starts with a version byte):
 //
 //	meta                          schema version
-//	devices/ID                    Device (JSON)
+//	devices/ID                    Device (JSON), written when its description changes
+//	cursors/ID                    Cursor (binary): resume point and counters, written with every batch
 //	trend/ID/DAY/TIME_MS          Point (24 bytes binary)
 //	ledger/DAY/ARRIVAL_MS|DEVIDX|SEQ  Chunk (binary), time-first so writing is appending
 //	raw/ID/DAY/SEQ                RawCapture (binary)

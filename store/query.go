@@ -353,3 +353,22 @@ func (db *DB) RawCaptures(device string, fromMS, toMS int64, fn func(RawCapture)
 	}
 	return err
 }
+
+// Cursors returns every device's cursor by device id.
+func (db *DB) Cursors() (map[string]Cursor, error) {
+	out := map[string]Cursor{}
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		return tx.Bucket(bCursors).ForEach(func(k, v []byte) error {
+			c := Cursor{Device: string(k)}
+			if err := decodeCursor(v, &c); err != nil {
+				return fmt.Errorf("cursor %q: %w", k, err)
+			}
+			out[c.Device] = c
+			return nil
+		})
+	})
+	if err != nil {
+		return nil, fmt.Errorf("store: cursors: %w", err)
+	}
+	return out, nil
+}

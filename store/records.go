@@ -19,18 +19,24 @@ type Device struct {
 	Calibration string            `json:"calibration,omitempty"` // applied, "name@vN"
 	FirstSeenMS int64             `json:"first_seen_ms"`
 	LastSeenMS  int64             `json:"last_seen_ms"`
-	// LastSeq is the highest durable sequence number: the resume point.
-	LastSeq uint64 `json:"last_seq"`
-	// Counters since the device was first seen (durable with the batch that changed them).
-	Chunks     uint64  `json:"chunks"`      // data messages accepted
-	Samples    uint64  `json:"samples"`     // raw samples accepted (summaries count 0)
-	Lost       uint64  `json:"lost"`        // sequence numbers skipped
-	Duplicates uint64  `json:"duplicates"`  // stale sequence numbers received
-	Rejected   uint64  `json:"rejected"`    // messages rejected for any reason
-	Late       uint64  `json:"late"`        // accepted messages far behind the gateway clock
-	Sessions   uint64  `json:"sessions"`    // streams opened
-	BatteryPct float64 `json:"battery_pct"` // last reported; negative when unknown
-	DriftPPM   float64 `json:"drift_ppm"`   // last estimate of device clock drift
+	Sessions    uint64            `json:"sessions"`    // streams opened
+	BatteryPct  float64           `json:"battery_pct"` // last reported; negative when unknown
+	DriftPPM    float64           `json:"drift_ppm"`   // last estimate of device clock drift
+}
+
+// Cursor is a device's delivery position and counters. It is written with
+// every batch that accepts data from the device, so it is small and binary
+// (the Device record is written only when the device's description changes).
+type Cursor struct {
+	Device     string
+	LastSeq    uint64 // highest durable sequence number: the resume point
+	Chunks     uint64 // data messages accepted
+	Samples    uint64 // raw samples accepted (summaries count 0)
+	Lost       uint64 // sequence numbers skipped
+	Duplicates uint64 // stale sequence numbers received
+	Rejected   uint64 // messages rejected for any reason
+	Late       uint64 // accepted messages far behind the gateway clock
+	LastSeenMS int64  // gateway clock at the last accepted message
 }
 
 // Point is one trend point: one second of a device's values. NaN marks a
