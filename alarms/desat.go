@@ -10,55 +10,95 @@ import (
 	"time"
 )
 
-// window keeps the running maximum of (t, SpO2) over the last span seconds
-// as a monotonic deque in a power-of-two ring: amortised O(1) per sample,
+// window keeps the running maximum of (t, SpO2) over the last span seconds.
+// It is a queue made of two stacks in one power-of-two ring: the front
+// segment [head, head+nf) carries suffix maxima, the back segment
+// [head+nf, head+n) a running maximum; when the front runs empty the whole
+// queue becomes the front (one pass). Amortised O(1) per sample with few
+// unpredictable branches (a monotonic deque mispredicts on noisy SpO2), and
 // allocation only when it grows.
 type window struct {
-	buf     []tv
-	head, n int
+	buf         []wentry
+	head, n, nf int
+	backMax     float64
 }
 
+type wentry struct{ t, v, sm float64 }
+
+// tv is one (time, SpO2) point.
 type tv struct{ t, v float64 }
 
-func (w *window) reset() { w.head, w.n = 0, 0 }
+func (w *window) reset() { w.head, w.n, w.nf, w.backMax = 0, 0, 0, math.Inf(-1) }
 
 func (w *window) push(t, v, span float64) {
-	mask := len(w.buf) - 1
-	for w.n > 0 && w.buf[(w.head+w.n-1)&mask].v <= v {
-		w.n--
-	}
 	if w.n == len(w.buf) {
 		w.grow()
-		mask = len(w.buf) - 1
 	}
-	w.buf[(w.head+w.n)&mask] = tv{t, v}
+	mask := len(w.buf) - 1
+	w.buf[(w.head+w.n)&mask] = wentry{t: t, v: v}
 	w.n++
+	if v > w.backMax {
+		w.backMax = v
+	}
 	for w.buf[w.head].t < t-span-eps { // the sample just pushed always stays
+		if w.nf == 0 {
+			w.rebuild()
+		}
 		w.head = (w.head + 1) & mask
 		w.n--
+		w.nf--
 	}
+}
+
+// rebuild makes the whole queue the front segment.
+func (w *window) rebuild() {
+	mask := len(w.buf) - 1
+	m := math.Inf(-1)
+	for k := w.n - 1; k >= 0; k-- {
+		e := &w.buf[(w.head+k)&mask]
+		if e.v > m {
+			m = e.v
+		}
+		e.sm = m
+	}
+	w.nf, w.backMax = w.n, math.Inf(-1)
 }
 
 func (w *window) grow() {
 	size := 2 * len(w.buf)
-	if size < 16 {
-		size = 16
+	if size < 64 {
+		size = 64
 	}
-	nb := make([]tv, size)
+	nb := make([]wentry, size)
 	for i := 0; i < w.n; i++ {
 		nb[i] = w.buf[(w.head+i)&(len(w.buf)-1)]
 	}
 	w.buf, w.head = nb, 0
 }
 
-// max is the highest value in the window; call only after a push.
-func (w *window) max() float64 { return w.buf[w.head].v }
+// max is the highest value in the window (-Inf when empty).
+func (w *window) max() float64 {
+	m := w.backMax
+	if w.nf > 0 && w.buf[w.head].sm > m {
+		m = w.buf[w.head].sm
+	}
+	return m
+}
 
-// points returns the deque's entries oldest first (for a Snapshot).
+// points returns the entries that can still be the maximum (each above
+// every later one), oldest first: enough to restore the window exactly.
 func (w *window) points() []tv {
-	out := make([]tv, w.n)
-	for i := range out {
-		out[i] = w.buf[(w.head+i)&(len(w.buf)-1)]
+	var out []tv
+	m := math.Inf(-1)
+	for k := w.n - 1; k >= 0; k-- {
+		e := w.buf[(w.head+k)&(len(w.buf)-1)]
+		if e.v > m {
+			m = e.v
+			out = append(out, tv{e.t, e.v})
+		}
+	}
+	for i, j := 0, len(out)-1; i < j; i, j = i+1, j-1 {
+		out[i], out[j] = out[j], out[i]
 	}
 	return out
 }

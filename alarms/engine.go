@@ -43,11 +43,11 @@ type cond struct {
 	escAfter float64 // s; +Inf = none
 	prio     Priority
 	escPrio  Priority // None = never escalates
+	phase    Phase    // state: Inactive, Pending or Active (Latched lives in condState); kept here, beside the limit, for the hot path
 }
 
 // condState is the live state of one condition.
 type condState struct {
-	phase   Phase   // Inactive, Pending or Active (Latched lives in latched)
 	ep      Episode // current episode while Pending or Active
 	ref     float64 // deficit reference (limit, or desaturation baseline)
 	base    float64 // desaturation: frozen baseline of the current episode
@@ -179,6 +179,7 @@ func (e *Engine) Reset() {
 		w := e.st[i].win
 		w.reset()
 		e.st[i] = condState{win: w}
+		e.conds[i].phase = Inactive
 	}
 }
 
@@ -235,16 +236,16 @@ func (e *Engine) Eval(s Sample, emit func(Event)) {
 	spo2 := v[slotSpO2]
 	for i := range e.conds {
 		c := &e.conds[i]
-		st := &e.st[i]
 		if c.kind == Desaturation {
-			e.evalDesat(c, st, t, spo2, emit)
+			e.evalDesat(c, &e.st[i], t, spo2, emit)
 			continue
 		}
 		x := c.sign * v[c.slot]
-		if st.phase == Inactive {
-			if !(x < c.limit) {
-				continue
-			}
+		if c.phase == Inactive && !(x < c.limit) {
+			continue // the common case touches only c
+		}
+		st := &e.st[i]
+		if c.phase == Inactive {
 			e.onset(c, st, t, spo2, c.sign*c.limit, emit)
 		} else {
 			e.accumulate(c, st, t, spo2)
@@ -279,7 +280,7 @@ func (e *Engine) evalDesat(c *cond, st *condState, t, spo2 float64, emit func(Ev
 	if spo2 == spo2 {
 		st.win.push(t, spo2, c.window)
 	}
-	if st.phase == Inactive {
+	if c.phase == Inactive {
 		if spo2 != spo2 {
 			return
 		}
@@ -302,7 +303,7 @@ func (e *Engine) evalDesat(c *cond, st *condState, t, spo2 float64, emit func(Ev
 func (e *Engine) onset(c *cond, st *condState, t, spo2, limit float64, emit func(Event)) {
 	e.nextID++
 	nan := math.NaN()
-	st.phase = Pending
+	c.phase = Pending
 	st.ep = Episode{ID: e.nextID, Device: e.device, Condition: c.name, Kind: c.kind,
 		Priority: c.prio, Phase: Pending, OnsetS: t, AnnouncedS: nan, EscalatedS: nan,
 		EndedS: nan, MinSpO2: spo2, Limit: limit, Baseline: nan, AckedS: nan}
@@ -317,11 +318,11 @@ func (e *Engine) onset(c *cond, st *condState, t, spo2, limit float64, emit func
 // advance announces and escalates a present condition as time passes. x is
 // the signed value (NaN when missing).
 func (e *Engine) advance(c *cond, st *condState, t, x float64, emit func(Event)) {
-	if st.phase == Pending {
+	if c.phase == Pending {
 		if t-st.ep.OnsetS < c.delay-eps {
 			return
 		}
-		st.phase = Active
+		c.phase = Active
 		st.ep.Phase = Active
 		st.ep.AnnouncedS = t
 		st.ep.AnnouncedPaused = e.pausedAt(t)
@@ -340,13 +341,13 @@ func (e *Engine) advance(c *cond, st *condState, t, x float64, emit func(Event))
 // escalation) if active.
 func (e *Engine) clearCond(c *cond, st *condState, t float64, emit func(Event)) {
 	st.ep.EndedS = t
-	if st.phase == Pending {
-		st.phase = Inactive
+	if c.phase == Pending {
+		c.phase = Inactive
 		st.ep.Phase = Inactive
 		e.emitEp(EventWithdrawn, t, &st.ep, emit)
 		return
 	}
-	st.phase = Inactive
+	c.phase = Inactive
 	st.ep.Phase = Inactive
 	if c.latching && !acked(&st.ep) {
 		st.ep.Phase = Latched
@@ -367,6 +368,9 @@ func (e *Engine) pausedAt(t float64) bool { return e.pauseFrom <= t && t < e.pau
 
 func (e *Engine) emitEp(typ EventType, t float64, ep *Episode, emit func(Event)) {
 	e.revision++
+	if e.runOut != nil && typ != EventEnded {
+		return // Run reports only ended episodes: skip building the others
+	}
 	if emit != nil {
 		emit(Event{Type: typ, T: t, Device: e.device, Episode: *ep, Paused: e.pausedAt(t)})
 	}
@@ -384,7 +388,7 @@ func (e *Engine) Tick(t float64, emit func(Event)) {
 		e.expirePause(emit)
 	}
 	for _, i := range e.tech {
-		if e.st[i].phase != Inactive {
+		if e.conds[i].phase != Inactive {
 			e.advance(&e.conds[i], &e.st[i], t, math.NaN(), emit)
 		}
 	}
@@ -410,7 +414,7 @@ func (e *Engine) SetOffline(offline bool, t float64, emit func(Event)) {
 		if c.kind != DeviceOffline {
 			continue
 		}
-		if st.phase == Inactive {
+		if c.phase == Inactive {
 			if !offline {
 				continue
 			}
@@ -434,7 +438,7 @@ func (e *Engine) Offline() bool { return e.offline }
 func (e *Engine) Acknowledge(who string, t float64, emit func(Event)) int {
 	n := 0
 	for i := range e.st {
-		st := &e.st[i]
+		c, st := &e.conds[i], &e.st[i]
 		if st.latched {
 			st.latched = false
 			st.latch.AckedBy, st.latch.AckedS = who, t
@@ -442,7 +446,7 @@ func (e *Engine) Acknowledge(who string, t float64, emit func(Event)) int {
 			e.emitAck(who, t, &st.latch, emit)
 			n++
 		}
-		if st.phase == Active && !acked(&st.ep) {
+		if c.phase == Active && !acked(&st.ep) {
 			st.ep.AckedBy, st.ep.AckedS = who, t
 			e.emitAck(who, t, &st.ep, emit)
 			n++
@@ -512,8 +516,8 @@ func (e *Engine) Paused(t float64) (by string, until float64, ok bool) {
 func (e *Engine) Priority() Priority {
 	p := PriorityNone
 	for i := range e.st {
-		st := &e.st[i]
-		if st.phase == Active && st.ep.Priority > p {
+		c, st := &e.conds[i], &e.st[i]
+		if c.phase == Active && st.ep.Priority > p {
 			p = st.ep.Priority
 		}
 		if st.latched && st.latch.Priority > p {
@@ -527,8 +531,8 @@ func (e *Engine) Priority() Priority {
 // profile order and returns it.
 func (e *Engine) Episodes(dst []Episode) []Episode {
 	for i := range e.st {
-		st := &e.st[i]
-		if st.phase != Inactive {
+		c, st := &e.conds[i], &e.st[i]
+		if c.phase != Inactive {
 			dst = append(dst, st.ep)
 		}
 		if st.latched {

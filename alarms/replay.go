@@ -24,7 +24,7 @@ func (e *Engine) Run(samples []Sample, emit func(Episode)) {
 		e.Eval(samples[i], e.runEmit)
 	}
 	for i := range e.st {
-		if e.st[i].phase == Active {
+		if e.conds[i].phase == Active {
 			emit(e.st[i].ep)
 		}
 	}

@@ -71,7 +71,7 @@ func (e *Engine) Snapshot() State {
 	for i := range e.conds {
 		c, st := &e.conds[i], &e.st[i]
 		cs := ConditionState{Name: c.name, Kind: c.kind}
-		if st.phase != Inactive {
+		if c.phase != Inactive {
 			ep := st.ep
 			cs.Episode = &ep
 		}
@@ -129,7 +129,7 @@ func Restore(p *Profile, st State) (*Engine, error) {
 			if ep.ID > st.NextID || ep.Kind != c.kind {
 				return nil, fmt.Errorf("%w: conditions[%d].episode: id %d / kind %s inconsistent with next_id %d / kind %s", ErrState, j, ep.ID, ep.Kind, st.NextID, c.kind)
 			}
-			s.phase, s.ep = ep.Phase, *ep
+			c.phase, s.ep = ep.Phase, *ep
 			s.ref = ep.Limit
 			if c.kind == Desaturation {
 				s.base, s.ref = ep.Baseline, ep.Baseline
@@ -145,11 +145,7 @@ func Restore(p *Profile, st State) (*Engine, error) {
 			if c.kind != Desaturation {
 				return nil, fmt.Errorf("%w: conditions[%d].window: only desaturation has one", ErrState, j)
 			}
-			if s.win.n == len(s.win.buf) {
-				s.win.grow()
-			}
-			s.win.buf[(s.win.head+s.win.n)&(len(s.win.buf)-1)] = tv{pt[0], pt[1]}
-			s.win.n++
+			s.win.push(pt[0], pt[1], math.Inf(1))
 		}
 	}
 	e.nextID, e.revision = st.NextID, st.Revision
