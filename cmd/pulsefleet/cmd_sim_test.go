@@ -1,0 +1,117 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"net"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/sim/sink"
+)
+
+func simRun(t *testing.T, args ...string) (code int, stdout, stderr string) {
+	t.Helper()
+	var out, errb bytes.Buffer
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	code = run(ctx, args, stdio{in: strings.NewReader(""), out: &out, err: &errb})
+	return code, out.String(), errb.String()
+}
+
+func startTestSink(t *testing.T, opts sink.Options) *sink.Running {
+	t.Helper()
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := sink.Start(lis, opts)
+	t.Cleanup(func() { r.Stop(2 * time.Second) })
+	return r
+}
+
+// The last stdout line is the contract's JSON object.
+func TestSimCommandEndsWithOneJSONLine(t *testing.T) {
+	s := startTestSink(t, sink.Options{})
+	tokFile := filepath.Join(t.TempDir(), "tokens")
+	os.WriteFile(tokFile, []byte("# device token\nw-0001 one\nw-0002 two\n"), 0o600)
+	code, out, errs := simRun(t, "sim", "--gateway", s.Addr(), "--devices", "3", "--rate", "50", "--duration", "1s",
+		"--mode", "raw", "--seed", "4", "--corrupt-rate", "0.2", "--drop-every", "400ms", "--clock-drift-ppm", "50",
+		"--id-prefix", "w", "--token-file", tokFile, "--progress-every", "300ms")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errs)
+	}
+	lines := strings.Split(strings.TrimSpace(out), "\n")
+	if len(lines) != 1 {
+		t.Fatalf("stdout has %d lines, want exactly one JSON line: %q", len(lines), out)
+	}
+	var rep map[string]any
+	if err := json.Unmarshal([]byte(lines[0]), &rep); err != nil {
+		t.Fatal(err)
+	}
+	for _, k := range []string{"devices", "frames_sent", "frames_acked", "samples_sent", "rejected", "ack_p50_ms", "ack_p99_ms"} {
+		if _, ok := rep[k]; !ok {
+			t.Errorf("JSON lacks %q: %s", k, lines[0])
+		}
+	}
+	if rep["devices"] != float64(3) {
+		t.Errorf("devices %v, want 3", rep["devices"])
+	}
+	if st := s.Stats(); float64(st.Samples) != rep["samples_acked"] {
+		t.Errorf("sink holds %d samples, report acknowledged %v", st.Samples, rep["samples_acked"])
+	}
+	if !strings.Contains(errs, "sim: ") {
+		t.Errorf("no progress on stderr: %q", errs)
+	}
+	if ids := s.DeviceIDs(); len(ids) != 3 || ids[0] != "w-0001" {
+		t.Errorf("devices at the sink %v, want w-0001..w-0003", ids)
+	}
+}
+
+func TestSimCommandScenarioAtSpeed(t *testing.T) {
+	s := startTestSink(t, sink.Options{})
+	code, out, errs := simRun(t, "sim", "--gateway", s.Addr(), "--scenario", "home-week", "--speed", "3600", "--duration", "1s")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errs)
+	}
+	var rep struct {
+		Devices     int     `json:"devices"`
+		FramesAcked uint64  `json:"frames_acked"`
+		Speed       float64 `json:"speed"`
+	}
+	if err := json.Unmarshal([]byte(out), &rep); err != nil {
+		t.Fatal(err)
+	}
+	if rep.Devices != 6 || rep.Speed != 3600 || rep.FramesAcked == 0 {
+		t.Errorf("report %+v, want 6 home devices at 3600x with data acknowledged", rep)
+	}
+}
+
+func TestSimCommandUsageErrors(t *testing.T) {
+	for _, tc := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"sim"}, "--gateway is required"},
+		{[]string{"sim", "--gateway", "x:1", "--mode", "ppg"}, `--mode "ppg", want raw or summary`},
+		{[]string{"sim", "--gateway", "x:1", "--rate", "5"}, "--rate 5 Hz, want 25..1000"},
+		{[]string{"sim", "--gateway", "x:1", "--corrupt-rate", "1.5"}, "--corrupt-rate 1.5, want 0..1"},
+		{[]string{"sim", "--gateway", "x:1", "--scenario", "ward-night", "--devices", "3"}, "leave out --devices"},
+	} {
+		code, _, errs := simRun(t, tc.args...)
+		if code != 2 || !strings.Contains(errs, tc.want) {
+			t.Errorf("%v: exit %d, stderr %q; want 2 and %q", tc.args, code, errs, tc.want)
+		}
+	}
+	code, _, errs := simRun(t, "sim", "--gateway", "x:1", "--scenario", "no-such-scenario")
+	if code != 1 || !strings.Contains(errs, "neither a shipped scenario") {
+		t.Errorf("unknown scenario: exit %d, %q", code, errs)
+	}
+	if code, out, _ := simRun(t, "sim", "--help"); code != 0 || out != "" {
+		t.Errorf("--help: exit %d", code)
+	}
+}
