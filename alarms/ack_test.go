@@ -5,6 +5,7 @@ import (
 	"math"
 	"strings"
 	"testing"
+	"time"
 )
 
 const latchingProfile = `
@@ -227,5 +228,53 @@ func TestEpisodeMinimumAndDeficit(t *testing.T) {
 				t.Fatalf("episodes %+v, want one with min %g and deficit %g", eps, tc.min, tc.deficit)
 			}
 		})
+	}
+}
+
+// A profile change keeps the state of conditions that stay, never announces
+// twice, and closes what it removes.
+func TestSetProfile(t *testing.T) {
+	p15 := mustProfile(t, spo2LowProfile)
+	e, _ := NewEngine(p15, "bed-4")
+	var got []string
+	emit := func(ev Event) { got = append(got, fmtEvent(ev)) }
+	e.Eval(Sample{T: 0, SpO2: 89, Pulse: nan, PI: nan, SQI: nan}, emit)
+	// Longer delay while pending: announced at 30, not 15.
+	p30 := p15.Clone()
+	if err := p30.Set("spo2_low.delay", "30s"); err != nil {
+		t.Fatal(err)
+	}
+	if err := e.SetProfile(p30, 5, emit); err != nil {
+		t.Fatal(err)
+	}
+	for _, tm := range []float64{15, 29, 30, 31} {
+		e.Eval(Sample{T: tm, SpO2: 89, Pulse: nan, PI: nan, SQI: nan}, emit)
+	}
+	// Add a latching pulse_low, trigger it, clear it (latched), then remove
+	// both conditions: spo2_low (active) ends, the latch is released.
+	withPulse := mustProfile(t, spo2LowProfile+"  - {kind: pulse_low, limit: 40, delay: 0s, priority: high, latching: true}\n")
+	withPulse.Conditions[0].Delay = p30.Conditions[0].Delay
+	if err := e.SetProfile(withPulse, 32, emit); err != nil {
+		t.Fatal(err)
+	}
+	e.Eval(Sample{T: 33, SpO2: 89, Pulse: 35, PI: nan, SQI: nan}, emit)
+	e.Eval(Sample{T: 34, SpO2: 89, Pulse: 60, PI: nan, SQI: nan}, emit)
+	only := mustProfile(t, "name: other\nconditions:\n  - {kind: pulse_high, limit: 140, delay: 0s, priority: low}\n")
+	if err := e.SetProfile(only, 40, emit); err != nil {
+		t.Fatal(err)
+	}
+	want := []string{"0 onset spo2_low medium", "30 announced spo2_low medium",
+		"33 onset pulse_low high", "33 announced pulse_low high", "34 ended pulse_low high latched",
+		"40 ended spo2_low medium", "40 released pulse_low high"}
+	if strings.Join(got, "\n") != strings.Join(want, "\n") {
+		t.Errorf("events:\n  %s\nwant:\n  %s", strings.Join(got, "\n  "), strings.Join(want, "\n  "))
+	}
+	if e.Priority() != PriorityNone || len(e.Episodes(nil)) != 0 || e.Profile().Name != "other" {
+		t.Errorf("after removing everything: priority %s, episodes %v", e.Priority(), e.Episodes(nil))
+	}
+	bad := only.Clone()
+	bad.Conditions[0].Delay = -time.Second
+	if err := e.SetProfile(bad, 41, emit); err == nil || e.Profile().Name != "other" {
+		t.Errorf("invalid profile: %v", err)
 	}
 }

@@ -541,3 +541,58 @@ func (e *Engine) Episodes(dst []Episode) []Episode {
 	}
 	return dst
 }
+
+// SetProfile switches the engine to profile p at time t (an operator
+// changed the stream's profile; the change itself belongs in the audit log).
+// Conditions kept (same name and kind) keep their state and take the new
+// values from the next sample: a pending one keeps its onset and is
+// announced when the new delay completes, an active one stays announced at
+// its priority and escalates by the new rules, a latched one still waits for
+// acknowledgement, and a desaturation baseline keeps its points. For a
+// removed condition, a pending episode is withdrawn at t, an active one ends
+// at t, and a latched signal is released (EventReleased). New conditions
+// start inactive. On error the engine is unchanged.
+func (e *Engine) SetProfile(p *Profile, t float64, emit func(Event)) error {
+	if p == nil {
+		return errors.New("set profile: nil profile")
+	}
+	if err := p.Validate(); err != nil {
+		return fmt.Errorf("set profile %s: %w", p.Name, err)
+	}
+	n := &Engine{}
+	n.compile(p)
+	for i := range n.st {
+		n.st[i].win.reset()
+	}
+	kept := make([]bool, len(e.conds))
+	for j := range n.conds {
+		for i := range e.conds {
+			if !kept[i] && e.conds[i].name == n.conds[j].name && e.conds[i].kind == n.conds[j].kind {
+				kept[i] = true
+				n.conds[j].phase = e.conds[i].phase
+				n.st[j] = e.st[i]
+				break
+			}
+		}
+	}
+	for i := range e.conds {
+		if kept[i] {
+			continue
+		}
+		c, st := &e.conds[i], &e.st[i]
+		if c.phase != Inactive {
+			latching := c.latching
+			c.latching = false // a removed condition does not latch
+			e.clearCond(c, st, t, emit)
+			c.latching = latching
+		}
+		if st.latched {
+			st.latched = false
+			st.latch.Phase = Inactive
+			e.emitEp(EventReleased, t, &st.latch, emit)
+		}
+	}
+	e.profile, e.conds, e.st, e.tech, e.pauseMax = n.profile, n.conds, n.st, n.tech, n.pauseMax
+	e.revision++
+	return nil
+}

@@ -158,10 +158,11 @@ const (
 	EventAcknowledged                      // an operator acknowledged the episode (latched ones stop)
 	EventPaused                            // alarm signals paused for the stream until Event.Until
 	EventResumed                           // the pause ended (expired or ended by Who)
+	EventReleased                          // a latched signal stopped because SetProfile removed its condition
 )
 
 var eventNames = [...]string{"", "onset", "announced", "escalated", "ended", "withdrawn",
-	"acknowledged", "paused", "resumed"}
+	"acknowledged", "paused", "resumed", "released"}
 
 // String returns the lower-case name of the event type.
 func (t EventType) String() string {
