@@ -36,7 +36,28 @@
 //     PI < limit; device_offline follows Engine.SetOffline, and Engine.Tick
 //     lets time pass for these two without samples;
 //   - samples whose time is not after the last evaluated one are ignored, so
-//     a sample resent after a reconnect never counts twice.
+//     a sample resent after a reconnect never counts twice;
+//   - differences of times and of SpO2 (t - onset >= delay, baseline - SpO2
+//     >= drop) are compared with a tolerance of 1e-6, so that decimal times
+//     like 65.1 - 50.1 meet a 15 s delay;
+//   - min_spo2 covers the valid SpO2 samples from onset to end inclusive; the
+//     oxygen deficit holds each valid SpO2 until the next sample (a missing
+//     sample stops the hold) and integrates it below the limit (spo2_low) or
+//     the frozen baseline (desaturation), in %·s.
+//
+// Conditions do not interact: each has its own state, and a profile's
+// episodes in replay are the union of the episodes of each condition
+// replayed alone (only Acknowledge and Pause act on all of a stream's
+// conditions at once). Event order within one sample follows the profile.
+//
+// Speed: Eval does not allocate; Engine.Run reuses an engine across streams
+// (the tuning sweep and replay use the same code). BenchmarkReplay reports
+// ns per sample per profile.
+//
+// Persistence: Engine.Revision increases with every event; Engine.Snapshot
+// is a versioned JSON-able State; Restore rebuilds an engine from it before
+// anything is evaluated, emits nothing, and never announces a restored
+// episode again.
 //
 // It is a research tool, not a certified medical alarm: settings are the
 // clinical team's decision.
