@@ -200,7 +200,10 @@ func TestThresholdRules(t *testing.T) {
 	}
 }
 
-// The mirrored and technical kinds, one rule each.
+// The mirrored and technical kinds, one rule each. Priorities as in IEC
+// 60601-1-8: low = awareness (technical conditions here), medium = prompt
+// response, high = immediate response; the delay is the alarm condition
+// delay (onset to announcement).
 func TestOtherKinds(t *testing.T) {
 	mk := func(kind, rest string) string {
 		return "name: k\nconditions:\n  - {kind: " + kind + ", " + rest + "}\n"
