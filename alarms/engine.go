@@ -303,6 +303,9 @@ func (e *Engine) evalDesat(c *cond, st *condState, t, spo2 float64, emit func(Ev
 func (e *Engine) onset(c *cond, st *condState, t, spo2, limit float64, emit func(Event)) {
 	e.nextID++
 	nan := math.NaN()
+	if !kinds[c.kind].hasLimit {
+		limit = nan // signal_lost, device_offline
+	}
 	c.phase = Pending
 	st.ep = Episode{ID: e.nextID, Device: e.device, Condition: c.name, Kind: c.kind,
 		Priority: c.prio, Phase: Pending, OnsetS: t, AnnouncedS: nan, EscalatedS: nan,
