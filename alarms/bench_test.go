@@ -34,17 +34,6 @@ func synthTrend(n int, seed uint64) []Sample {
 	return s
 }
 
-const benchProfileSpO2 = `
-name: contract-example
-conditions:
-  - kind: spo2_low
-    limit: 90
-    hysteresis: 2
-    delay: 15s
-    priority: medium
-    escalate: {below: 85, after: 60s, priority: high}
-`
-
 const benchProfileFull = `
 name: full
 conditions:
@@ -65,7 +54,7 @@ conditions:
 func BenchmarkReplay(b *testing.B) {
 	samples := synthTrend(24*3600, 7)
 	for _, bc := range []struct{ name, yaml string }{
-		{"spo2_low", benchProfileSpO2},
+		{"spo2_low", spo2LowProfile},
 		{"desaturation", "name: d\nconditions:\n  - {kind: desaturation, limit: 3, hysteresis: 1, delay: 10s, priority: low}\n"},
 		{"full", benchProfileFull},
 	} {

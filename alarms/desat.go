@@ -1,12 +1,10 @@
 package alarms
 
 import (
-	"encoding/csv"
 	"fmt"
 	"io"
 	"math"
 	"strconv"
-	"strings"
 	"time"
 )
 
@@ -229,26 +227,16 @@ const IndexColumns = "device,valid_hours,events_3pct,odi_3pct_per_h,events_4pct,
 // decimals), and T90 in % of valid time (2 decimals); empty cells when there
 // is no valid time.
 func WriteIndicesCSV(w io.Writer, rows []DeviceIndices) error {
-	cw := csv.NewWriter(w)
-	if err := cw.Write(strings.Split(IndexColumns, ",")); err != nil {
-		return fmt.Errorf("write indices: %w", err)
-	}
 	f := func(v float64, prec int) string {
 		if v != v {
 			return ""
 		}
 		return strconv.FormatFloat(v, 'f', prec, 64)
 	}
-	for _, r := range rows {
-		if err := cw.Write([]string{r.Device, f(r.ODI3.ValidHours, 3), strconv.Itoa(r.ODI3.Events),
+	return writeCSV(w, "write indices", IndexColumns, len(rows), func(i int) []string {
+		r := &rows[i]
+		return []string{r.Device, f(r.ODI3.ValidHours, 3), strconv.Itoa(r.ODI3.Events),
 			f(r.ODI3.ODIPerHour, 2), strconv.Itoa(r.ODI4.Events), f(r.ODI4.ODIPerHour, 2),
-			f(r.ODI3.T90Pct, 2)}); err != nil {
-			return fmt.Errorf("write indices: %w", err)
-		}
-	}
-	cw.Flush()
-	if err := cw.Error(); err != nil {
-		return fmt.Errorf("write indices: %w", err)
-	}
-	return nil
+			f(r.ODI3.T90Pct, 2)}
+	})
 }

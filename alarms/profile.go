@@ -266,59 +266,45 @@ func scalarString(v *yaml.Node, path string, dst *string) error {
 	return err
 }
 
-func scalarFloat(v *yaml.Node, path string, dst *float64) error {
+// scalarAs decodes a scalar with parse; want says what a good value looks like.
+func scalarAs[T any](v *yaml.Node, path string, dst *T, want string, parse func(string) (T, bool)) error {
 	s, err := scalar(v, path)
 	if err != nil {
 		return err
 	}
-	f, err := strconv.ParseFloat(strings.TrimSpace(s), 64)
-	if err != nil || math.IsNaN(f) || math.IsInf(f, 0) {
-		return fieldErr(path, "%q, want a finite number", s)
+	x, ok := parse(strings.TrimSpace(s))
+	if !ok {
+		return fieldErr(path, "%q, want %s", s, want)
 	}
-	*dst = f
+	*dst = x
 	return nil
+}
+
+func scalarFloat(v *yaml.Node, path string, dst *float64) error {
+	return scalarAs(v, path, dst, "a finite number", func(s string) (float64, bool) {
+		f, err := strconv.ParseFloat(s, 64)
+		return f, err == nil && !math.IsNaN(f) && !math.IsInf(f, 0)
+	})
 }
 
 func scalarDuration(v *yaml.Node, path string, dst *time.Duration) error {
-	s, err := scalar(v, path)
-	if err != nil {
-		return err
-	}
-	d, err := time.ParseDuration(strings.TrimSpace(s))
-	if err != nil {
-		return fieldErr(path, "%q, want a duration like 15s or 2m", s)
-	}
-	*dst = d
-	return nil
+	return scalarAs(v, path, dst, "a duration like 15s or 2m", func(s string) (time.Duration, bool) {
+		d, err := time.ParseDuration(s)
+		return d, err == nil
+	})
 }
 
 func scalarPriority(v *yaml.Node, path string, dst *Priority) error {
-	s, err := scalar(v, path)
-	if err != nil {
-		return err
-	}
-	p, err := ParsePriority(s)
-	if err != nil || p == PriorityNone {
-		return fieldErr(path, "%q, want low, medium or high", s)
-	}
-	*dst = p
-	return nil
+	return scalarAs(v, path, dst, "low, medium or high", func(s string) (Priority, bool) {
+		p, err := ParsePriority(s)
+		return p, err == nil && p != PriorityNone
+	})
 }
 
 func scalarBool(v *yaml.Node, path string, dst *bool) error {
-	s, err := scalar(v, path)
-	if err != nil {
-		return err
-	}
-	switch s {
-	case "true":
-		*dst = true
-	case "false":
-		*dst = false
-	default:
-		return fieldErr(path, "%q, want true or false", s)
-	}
-	return nil
+	return scalarAs(v, path, dst, "true or false", func(s string) (bool, bool) {
+		return s == "true", s == "true" || s == "false"
+	})
 }
 
 // kindInfo describes how a kind is evaluated and bounded.

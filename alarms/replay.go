@@ -203,26 +203,33 @@ const EpisodeColumns = "device,condition,priority,onset_s,announced_s,escalated_
 // WriteEpisodesCSV writes episodes in the replay output format; times that
 // did not happen are empty cells.
 func WriteEpisodesCSV(w io.Writer, eps []Episode) error {
-	cw := csv.NewWriter(w)
-	if err := cw.Write(strings.Split(EpisodeColumns, ",")); err != nil {
-		return fmt.Errorf("write episodes: %w", err)
-	}
 	num := func(f float64) string {
 		if f != f {
 			return ""
 		}
 		return strconv.FormatFloat(f, 'f', -1, 64)
 	}
-	for i := range eps {
+	return writeCSV(w, "write episodes", EpisodeColumns, len(eps), func(i int) []string {
 		ep := &eps[i]
-		if err := cw.Write([]string{ep.Device, ep.Condition, ep.Priority.String(), num(ep.OnsetS),
-			num(ep.AnnouncedS), num(ep.EscalatedS), num(ep.EndedS), num(ep.MinSpO2)}); err != nil {
-			return fmt.Errorf("write episodes: %w", err)
+		return []string{ep.Device, ep.Condition, ep.Priority.String(), num(ep.OnsetS),
+			num(ep.AnnouncedS), num(ep.EscalatedS), num(ep.EndedS), num(ep.MinSpO2)}
+	})
+}
+
+// writeCSV writes a header and n rows.
+func writeCSV(w io.Writer, what, header string, n int, row func(i int) []string) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write(strings.Split(header, ",")); err != nil {
+		return fmt.Errorf("%s: %w", what, err)
+	}
+	for i := 0; i < n; i++ {
+		if err := cw.Write(row(i)); err != nil {
+			return fmt.Errorf("%s: %w", what, err)
 		}
 	}
 	cw.Flush()
 	if err := cw.Error(); err != nil {
-		return fmt.Errorf("write episodes: %w", err)
+		return fmt.Errorf("%s: %w", what, err)
 	}
 	return nil
 }
