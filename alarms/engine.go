@@ -189,8 +189,14 @@ func (e *Engine) Profile() *Profile { return e.profile }
 // Device returns the stream name given to NewEngine.
 func (e *Engine) Device() string { return e.device }
 
-// Revision counts state changes: it increases with every emitted event.
-// Persist a Snapshot whenever it differs from the one last persisted.
+// Revision counts state changes: it increases with every emitted event (and
+// with SetOffline and SetProfile changes). Persist a Snapshot whenever it
+// differs from the one last persisted. The running minimum, deficit and
+// desaturation baseline change with every sample without an event; to keep
+// them exact across a restart, write the snapshot in the same transaction as
+// the trend points it has seen (then Restore plus the device's resend from
+// the durable point continues exactly), or accept that they restart from the
+// last event.
 func (e *Engine) Revision() uint64 { return e.revision }
 
 // Ignored counts samples skipped because their time was not after the last
@@ -407,7 +413,10 @@ func (e *Engine) SetOffline(offline bool, t float64, emit func(Event)) {
 	if t >= e.pauseUntil {
 		e.expirePause(emit)
 	}
-	e.offline = offline
+	if e.offline != offline {
+		e.offline = offline
+		e.revision++ // part of the snapshot even without a device_offline condition
+	}
 	x := 1.0
 	if offline {
 		x = 0
