@@ -59,18 +59,18 @@ type device struct {
 	src      *ppgmodel.Source
 	fr, fi   []float64
 	rng      *rand.Rand
-	drift    float64 // relative clock error, positive = device clock fast
-	phase    float64 // scenario seconds before the first sample
-	chunkDur float64 // device seconds per data message
-	k        int64   // index of the next data message
-	due      time.Time
+	drift    float64       // relative clock error, positive = device clock fast
+	phase    float64       // scenario seconds before the first sample
+	chunkDur float64       // device seconds per data message
+	k        int64         // index of the next data message
+	due      time.Duration // wall time since the fleet's t0 when message k is due
 	intro    *pulsefleetv1.ConnectRequest
 	token    string
 	status   *pulsefleetv1.ConnectRequest
 	statusV  *pulsefleetv1.DeviceStatus
-	statusS  float64 // scenario seconds between status messages
-	nextStat float64 // scenario time of the next status message
-	nextDrop time.Time
+	statusS  float64       // scenario seconds between status messages
+	nextStat float64       // scenario time of the next status message
+	nextDrop time.Duration // since t0
 	battery  scenario.Battery
 
 	online atomic.Bool
@@ -154,15 +154,15 @@ func newDevice(f *fleet, idx int, sd *scenario.Device, horizon time.Duration, fl
 	}
 	d.nextStat = d.phase + d.rng.Float64()*d.statusS
 	if f.opts.DropEvery > 0 {
-		d.nextDrop = f.t0.Add(time.Duration((0.5 + d.rng.Float64()) * float64(f.opts.DropEvery)))
+		d.nextDrop = time.Duration((0.5 + d.rng.Float64()) * float64(f.opts.DropEvery))
 	}
 	d.online.Store(true)
 	return d, nil
 }
 
-// wallAt is the wall time of scenario second s.
-func (f *fleet) wallAt(s float64) time.Time {
-	return f.t0.Add(time.Duration(s / f.speed * float64(time.Second)))
+// wallAt is the wall time (since t0) of scenario second s.
+func (f *fleet) wallAt(s float64) time.Duration {
+	return time.Duration(s / f.speed * float64(time.Second))
 }
 
 func (f *fleet) since() time.Duration {
@@ -174,9 +174,9 @@ func (f *fleet) since() time.Duration {
 }
 
 // tick makes and sends data message k; it reports whether another is due.
-func (d *device) tick(now time.Time) bool {
+func (d *device) tick(now time.Duration) bool {
 	f := d.f
-	if !f.end.IsZero() && d.due.After(f.end) {
+	if f.end > 0 && d.due > f.end {
 		return false
 	}
 	ts := d.phase + float64(d.k)*d.chunkDur/(1+d.drift) // scenario time of the first sample
@@ -192,8 +192,8 @@ func (d *device) tick(now time.Time) bool {
 		d.nextStat += d.statusS
 		d.sendStatus(&st, ts)
 	}
-	if f.opts.DropEvery > 0 && now.After(d.nextDrop) {
-		d.nextDrop = now.Add(time.Duration((0.8 + 0.4*d.rng.Float64()) * float64(f.opts.DropEvery)))
+	if f.opts.DropEvery > 0 && now > d.nextDrop {
+		d.nextDrop = now + time.Duration((0.8+0.4*d.rng.Float64())*float64(f.opts.DropEvery))
 		if d.breakStream(nil, true) {
 			f.c.drops.Add(1)
 		}

@@ -34,10 +34,10 @@ type fleet struct {
 	speed   float64
 	rate    float64
 	chunk   int
-	t0      time.Time // wall clock at scenario time 0
-	startMs int64     // device clock at scenario time 0, ms since the epoch
-	end     time.Time // no chunk is due after this (zero = open-ended)
-	scEnd   float64   // scenario seconds after which nothing is generated (0 = open)
+	t0      time.Time     // wall clock at scenario time 0
+	startMs int64         // device clock at scenario time 0, ms since the epoch
+	end     time.Duration // since t0: no chunk is due after this (0 = open-ended)
+	scEnd   float64       // scenario seconds after which nothing is generated (0 = open)
 	maxBuf  int
 	hist    Histogram
 	c       counters
@@ -92,9 +92,7 @@ func Run(ctx context.Context, opts Options) (*Report, error) {
 	}
 
 	f.t0 = time.Now()
-	if dur > 0 {
-		f.end = f.t0.Add(dur)
-	}
+	f.end = dur
 	start := opts.Start
 	if start.IsZero() {
 		start = f.t0
@@ -173,8 +171,8 @@ func (f *fleet) work(ctx context.Context, h deviceHeap) {
 	timer := time.NewTimer(time.Hour)
 	defer timer.Stop()
 	for len(h) > 0 {
-		now := time.Now()
-		for len(h) > 0 && !h[0].due.After(now.Add(slack)) {
+		now := time.Since(f.t0)
+		for len(h) > 0 && h[0].due <= now+slack {
 			d := h[0]
 			if d.tick(now) {
 				heap.Fix(&h, 0)
@@ -188,7 +186,7 @@ func (f *fleet) work(ctx context.Context, h deviceHeap) {
 		if len(h) == 0 {
 			return
 		}
-		timer.Reset(time.Until(h[0].due))
+		timer.Reset(h[0].due - time.Since(f.t0))
 		select {
 		case <-ctx.Done():
 			return
@@ -201,7 +199,7 @@ func (f *fleet) work(ctx context.Context, h deviceHeap) {
 type deviceHeap []*device
 
 func (h deviceHeap) Len() int           { return len(h) }
-func (h deviceHeap) Less(i, j int) bool { return h[i].due.Before(h[j].due) }
+func (h deviceHeap) Less(i, j int) bool { return h[i].due < h[j].due }
 func (h deviceHeap) Swap(i, j int)      { h[i], h[j] = h[j], h[i] }
 func (h *deviceHeap) Push(x any)        { *h = append(*h, x.(*device)) }
 func (h *deviceHeap) Pop() any {

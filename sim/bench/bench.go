@@ -1,0 +1,333 @@
+// Package bench runs the same simulated load against several ingest
+// targets in turn, a bare sink first (decode and acknowledge only, package
+// sim/sink) and then the system under test, and compares them: acknowledged
+// samples per second, acknowledgement latency, acknowledged samples missing
+// from the target afterwards, CPU and peak memory per phase.
+//
+// Memory: the peak resident set of each phase is measured by resetting the
+// kernel's high-water mark (writing 5 to /proc/self/clear_refs, Linux 4.0+)
+// after returning freed memory to the OS at the start of the phase, and
+// reading VmHWM from /proc/self/status at its end. Where the reset is not
+// allowed, VmRSS is sampled every 100 ms instead (which can miss short
+// peaks). The load client runs in the same process, so a phase's peak
+// includes the client's own memory: per-device figures are an upper bound
+// for the target.
+package bench
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"net"
+	"os"
+	"runtime"
+	"runtime/debug"
+	"runtime/pprof"
+	"strconv"
+	"strings"
+	"sync"
+	"syscall"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/sim"
+	"github.com/pulsefleet/pulsefleet/sim/sink"
+)
+
+// Target is a running ingest service under load.
+type Target interface {
+	// Addr is its gRPC address.
+	Addr() string
+	// DurableSamples reports the samples it holds durably per device id;
+	// called after the load has stopped and before Stop.
+	DurableSamples(ctx context.Context) (map[string]uint64, error)
+	// Stop shuts it down and releases its resources.
+	Stop() error
+}
+
+// StartFunc starts a target listening on lis.
+type StartFunc func(ctx context.Context, lis net.Listener) (Target, error)
+
+// Phase names a target to run the load against.
+type Phase struct {
+	Name  string
+	Start StartFunc
+}
+
+// Options describe the load; zero values take the defaults stated.
+type Options struct {
+	Devices  int           // raw devices, 1..100000
+	RateHz   float64       // samples per second per device; 0 = 100
+	Chunk    int           // samples per chunk; 0 = 25
+	Duration time.Duration // sending time per phase; required
+	Seed     uint64
+	// Progress receives progress lines; nil = none. ProgressEvery 0 = 5 s.
+	Progress      io.Writer
+	ProgressEvery time.Duration
+	// CPUProfile, when set, writes one CPU profile per phase to
+	// CPUProfile.PHASE.pprof.
+	CPUProfile string
+}
+
+// PhaseResult is one phase's outcome.
+type PhaseResult struct {
+	Name         string
+	Report       *sim.Report
+	SamplesPerS  float64
+	Lost         uint64  // acknowledged samples the target does not hold
+	PeakRSSBytes int64   // peak resident set during the phase
+	RSSExact     bool    // true when the kernel high-water mark was reset for the phase
+	CPUCores     float64 // process CPU time / wall time during sending
+}
+
+// Result compares the phases; its JSON form is the bench command's line.
+// Latency and loss figures are those of the last phase (the system under
+// test); peak_rss_bytes is the highest phase peak.
+type Result struct {
+	Devices             int           `json:"devices"`
+	RateHz              float64       `json:"rate_hz"`
+	Chunk               int           `json:"chunk"`
+	DurationS           float64       `json:"duration_s"`
+	OfferedSamplesPerS  float64       `json:"offered_samples_per_s"`
+	SinkSamplesPerS     float64       `json:"sink_samples_per_s"`
+	GatewaySamplesPerS  float64       `json:"gateway_samples_per_s"`
+	Ratio               float64       `json:"ratio"`
+	AckP50Ms            float64       `json:"ack_p50_ms"`
+	AckP99Ms            float64       `json:"ack_p99_ms"`
+	SinkAckP99Ms        float64       `json:"sink_ack_p99_ms"`
+	Lost                uint64        `json:"lost"`
+	PeakRSSBytes        int64         `json:"peak_rss_bytes"`
+	SinkPeakRSSBytes    int64         `json:"sink_peak_rss_bytes"`
+	GatewayPeakRSSBytes int64         `json:"gateway_peak_rss_bytes"`
+	RSSPerDeviceBytes   int64         `json:"rss_per_device_bytes"` // gateway phase peak / devices (client included)
+	RSSExact            bool          `json:"rss_exact"`
+	SinkCPUCores        float64       `json:"sink_cpu_cores"`
+	GatewayCPUCores     float64       `json:"gateway_cpu_cores"`
+	Rejected            uint64        `json:"rejected"`
+	Reconnects          uint64        `json:"reconnects"`
+	UnackedAtEnd        uint64        `json:"unacked_at_end"`
+	Phases              []PhaseResult `json:"-"`
+}
+
+// SinkPhase is the bare sink.
+func SinkPhase() Phase {
+	return Phase{Name: "sink", Start: func(ctx context.Context, lis net.Listener) (Target, error) {
+		return sinkTarget{sink.Start(lis, sink.Options{})}, nil
+	}}
+}
+
+type sinkTarget struct{ r *sink.Running }
+
+func (s sinkTarget) Addr() string { return s.r.Addr() }
+func (s sinkTarget) Stop() error  { return s.r.Stop(5 * time.Second) }
+func (s sinkTarget) DurableSamples(context.Context) (map[string]uint64, error) {
+	out := map[string]uint64{}
+	for _, id := range s.r.DeviceIDs() {
+		d, _ := s.r.Device(id)
+		out[id] = d.Samples
+	}
+	return out, nil
+}
+
+// Run runs the load against each phase in order (normally the sink, then
+// the gateway) and compares the first with the last.
+func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
+	if opts.Devices < 1 || opts.Devices > 100000 {
+		return nil, fmt.Errorf("devices: %d, want 1..100000", opts.Devices)
+	}
+	if opts.Duration <= 0 {
+		return nil, fmt.Errorf("duration: %v, want more than 0", opts.Duration)
+	}
+	if len(phases) == 0 {
+		return nil, errors.New("no phases")
+	}
+	if opts.RateHz == 0 {
+		opts.RateHz = 100
+	}
+	if opts.Chunk == 0 {
+		opts.Chunk = 25
+	}
+	res := &Result{Devices: opts.Devices, RateHz: opts.RateHz, Chunk: opts.Chunk, DurationS: opts.Duration.Seconds(),
+		OfferedSamplesPerS: float64(opts.Devices) * opts.RateHz, RSSExact: true}
+	for _, ph := range phases {
+		pr, err := runPhase(ctx, opts, ph)
+		if err != nil {
+			return nil, fmt.Errorf("phase %s: %w", ph.Name, err)
+		}
+		res.Phases = append(res.Phases, *pr)
+		res.RSSExact = res.RSSExact && pr.RSSExact
+		res.PeakRSSBytes = max(res.PeakRSSBytes, pr.PeakRSSBytes)
+		if ctx.Err() != nil {
+			return nil, ctx.Err()
+		}
+	}
+	first, last := res.Phases[0], res.Phases[len(res.Phases)-1]
+	res.SinkSamplesPerS, res.GatewaySamplesPerS = first.SamplesPerS, last.SamplesPerS
+	if first.SamplesPerS > 0 {
+		res.Ratio = math.Round(last.SamplesPerS/first.SamplesPerS*1000) / 1000
+	}
+	res.AckP50Ms, res.AckP99Ms = last.Report.AckP50Ms, last.Report.AckP99Ms
+	res.SinkAckP99Ms = first.Report.AckP99Ms
+	res.Lost = last.Lost
+	res.SinkPeakRSSBytes, res.GatewayPeakRSSBytes = first.PeakRSSBytes, last.PeakRSSBytes
+	res.RSSPerDeviceBytes = last.PeakRSSBytes / int64(opts.Devices)
+	res.SinkCPUCores, res.GatewayCPUCores = first.CPUCores, last.CPUCores
+	res.Rejected, res.Reconnects, res.UnackedAtEnd = last.Report.Rejected, last.Report.Reconnects, last.Report.UnackedAtEnd
+	return res, nil
+}
+
+func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error) {
+	runtime.GC()
+	debug.FreeOSMemory()
+	peak := startPeak()
+	defer peak.stop()
+
+	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		return nil, fmt.Errorf("listen: %w", err)
+	}
+	tgt, err := ph.Start(ctx, lis)
+	if err != nil {
+		lis.Close()
+		return nil, err
+	}
+	stopped := false
+	defer func() {
+		if !stopped {
+			tgt.Stop()
+		}
+	}()
+	if opts.Progress != nil {
+		fmt.Fprintf(opts.Progress, "bench: phase %s: %d devices x %g Hz in %d-sample chunks for %v against %s\n",
+			ph.Name, opts.Devices, opts.RateHz, opts.Chunk, opts.Duration, tgt.Addr())
+	}
+	var prof *os.File
+	if opts.CPUProfile != "" {
+		prof, err = os.Create(opts.CPUProfile + "." + ph.Name + ".pprof")
+		if err != nil {
+			return nil, fmt.Errorf("cpu profile: %w", err)
+		}
+		if err := pprof.StartCPUProfile(prof); err != nil {
+			prof.Close()
+			return nil, fmt.Errorf("cpu profile: %w", err)
+		}
+	}
+	cpu0, wall0 := cpuTime(), time.Now()
+	rep, err := sim.Run(ctx, sim.Options{
+		Gateway: tgt.Addr(), Devices: opts.Devices, IDPrefix: "bench", Mode: sim.ModeRaw,
+		RateHz: opts.RateHz, Chunk: opts.Chunk, Duration: opts.Duration, Seed: opts.Seed,
+		Progress: opts.Progress, ProgressEvery: opts.ProgressEvery,
+	})
+	cpu1, wall1 := cpuTime(), time.Now()
+	if prof != nil {
+		pprof.StopCPUProfile()
+		prof.Close()
+	}
+	if err != nil {
+		return nil, err
+	}
+	pr := &PhaseResult{Name: ph.Name, Report: rep, SamplesPerS: rep.SamplesPerS}
+	if w := wall1.Sub(wall0).Seconds(); w > 0 {
+		pr.CPUCores = math.Round((cpu1-cpu0).Seconds()/w*100) / 100
+	}
+	held, err := tgt.DurableSamples(ctx)
+	if err != nil {
+		return nil, fmt.Errorf("count durable samples: %w", err)
+	}
+	for id, d := range rep.PerDevice {
+		if h := held[id]; h < d.SamplesAcked {
+			pr.Lost += d.SamplesAcked - h
+		}
+	}
+	stopped = true
+	if err := tgt.Stop(); err != nil {
+		return nil, fmt.Errorf("stop: %w", err)
+	}
+	pr.PeakRSSBytes, pr.RSSExact = peak.stop()
+	if opts.Progress != nil {
+		fmt.Fprintf(opts.Progress, "bench: phase %s: %.0f samples/s acknowledged, ack p50 %.1f ms p99 %.1f ms, lost %d, peak RSS %d MiB, %.2f cores\n",
+			ph.Name, pr.SamplesPerS, rep.AckP50Ms, rep.AckP99Ms, pr.Lost, pr.PeakRSSBytes>>20, pr.CPUCores)
+	}
+	return pr, nil
+}
+
+func cpuTime() time.Duration {
+	var ru syscall.Rusage
+	if err := syscall.Getrusage(syscall.RUSAGE_SELF, &ru); err != nil {
+		return 0
+	}
+	return time.Duration(ru.Utime.Nano() + ru.Stime.Nano())
+}
+
+// peakMeter measures a phase's peak resident set.
+type peakMeter struct {
+	exact bool
+	once  sync.Once
+	done  chan struct{}
+	wg    sync.WaitGroup
+	max   int64
+	mu    sync.Mutex
+	res   int64
+}
+
+func startPeak() *peakMeter {
+	p := &peakMeter{done: make(chan struct{})}
+	if err := os.WriteFile("/proc/self/clear_refs", []byte("5"), 0); err == nil {
+		p.exact = true
+		return p
+	}
+	p.wg.Add(1)
+	go func() {
+		defer p.wg.Done()
+		t := time.NewTicker(100 * time.Millisecond)
+		defer t.Stop()
+		for {
+			if v := procStatus("VmRSS"); v > 0 {
+				p.mu.Lock()
+				p.max = max(p.max, v)
+				p.mu.Unlock()
+			}
+			select {
+			case <-p.done:
+				return
+			case <-t.C:
+			}
+		}
+	}()
+	return p
+}
+
+// stop ends the measurement (idempotent) and returns the peak.
+func (p *peakMeter) stop() (int64, bool) {
+	p.once.Do(func() {
+		close(p.done)
+		p.wg.Wait()
+		if p.exact {
+			p.res = procStatus("VmHWM")
+		} else {
+			p.mu.Lock()
+			p.res = max(p.max, procStatus("VmRSS"))
+			p.mu.Unlock()
+		}
+	})
+	return p.res, p.exact
+}
+
+// procStatus reads a "kB" field of /proc/self/status in bytes (0 if absent).
+func procStatus(key string) int64 {
+	b, err := os.ReadFile("/proc/self/status")
+	if err != nil {
+		return 0
+	}
+	for _, line := range strings.Split(string(b), "\n") {
+		if v, ok := strings.CutPrefix(line, key+":"); ok {
+			f := strings.Fields(v)
+			if len(f) > 0 {
+				n, _ := strconv.ParseInt(f[0], 10, 64)
+				return n * 1024
+			}
+		}
+	}
+	return 0
+}

@@ -1,0 +1,35 @@
+package bench
+
+import (
+	"context"
+	"testing"
+	"time"
+
+	"go.uber.org/goleak"
+)
+
+func TestMain(m *testing.M) { goleak.VerifyTestMain(m) }
+
+// Two identical sinks: the comparison machinery gives nothing lost, a ratio
+// near one, and a measured peak for each phase. (No wall-clock assertion:
+// the ratio is only checked to be positive and finite.)
+func TestRunComparesPhases(t *testing.T) {
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	a, b := SinkPhase(), SinkPhase()
+	b.Name = "sink2"
+	res, err := Run(ctx, Options{Devices: 20, Duration: time.Second, Seed: 1}, a, b)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Logf("%+v", *res)
+	if len(res.Phases) != 2 || res.Lost != 0 || res.SinkSamplesPerS <= 0 || res.GatewaySamplesPerS <= 0 || res.Ratio <= 0 {
+		t.Errorf("result %+v", *res)
+	}
+	if res.PeakRSSBytes <= 0 || res.SinkPeakRSSBytes <= 0 || res.GatewayPeakRSSBytes <= 0 {
+		t.Errorf("peak RSS not measured: %+v", *res)
+	}
+	if res.UnackedAtEnd != 0 || res.Rejected != 0 {
+		t.Errorf("unacknowledged %d, rejected %d against a sink", res.UnackedAtEnd, res.Rejected)
+	}
+}
