@@ -7,6 +7,7 @@ import (
 	"flag"
 	"fmt"
 	"os"
+	"sort"
 	"strings"
 	"time"
 
@@ -34,6 +35,7 @@ Shipped scenarios: ` + strings.Join(scenarios.Names(), ", ") + ` (docs/scenarios
 // simFlags are the flags sim and bench share.
 type simFlags struct {
 	gateway, mode, scenario, token, tokenFile, idPrefix string
+	perDeviceOut                                        string
 	devices, chunk, perConn                             int
 	rate, speed, corrupt, drift                         float64
 	duration, dropEvery, progress, drain                time.Duration
@@ -53,6 +55,7 @@ func (f *simFlags) register(fs *flag.FlagSet, withGateway bool) {
 		fs.StringVar(&f.idPrefix, "id-prefix", "sim", "device ids are PREFIX-0001, PREFIX-0002, ... (without --scenario)")
 		fs.StringVar(&f.mode, "mode", "raw", "what devices send: raw (PPG chunks) or summary (per-second values); a scenario's device entries may say otherwise")
 		fs.DurationVar(&f.drain, "drain", 10*time.Second, "after sending stops, wait this long for the last acknowledgements")
+		fs.StringVar(&f.perDeviceOut, "per-device-out", "", "also write each device's acknowledged counts to this CSV file (device,mode,frames_acked,samples_acked,acked_through)")
 	}
 	fs.IntVar(&f.devices, "devices", 10, "number of devices, 1..100000")
 	fs.Float64Var(&f.rate, "rate", 100, "raw sample rate per device in Hz, 25..1000")
@@ -81,7 +84,31 @@ func runSim(ctx context.Context, args []string, s stdio) error {
 	if err != nil {
 		return err
 	}
+	if f.perDeviceOut != "" {
+		if err := writePerDevice(f.perDeviceOut, rep); err != nil {
+			return err
+		}
+	}
 	return writeJSONLine(s, rep)
+}
+
+// writePerDevice writes the per-device CSV of --per-device-out.
+func writePerDevice(path string, rep *sim.Report) error {
+	ids := make([]string, 0, len(rep.PerDevice))
+	for id := range rep.PerDevice {
+		ids = append(ids, id)
+	}
+	sort.Strings(ids)
+	var b strings.Builder
+	b.WriteString("device,mode,frames_acked,samples_acked,acked_through\n")
+	for _, id := range ids {
+		d := rep.PerDevice[id]
+		fmt.Fprintf(&b, "%s,%s,%d,%d,%d\n", id, d.Mode, d.FramesAcked, d.SamplesAcked, d.AckedThrough)
+	}
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		return fmt.Errorf("per-device counts: %w", err)
+	}
+	return nil
 }
 
 // options turns the flags into sim.Options; set holds the flags given.

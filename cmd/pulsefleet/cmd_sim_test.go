@@ -7,6 +7,7 @@ import (
 	"net"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -38,10 +39,11 @@ func startTestSink(t *testing.T, opts sink.Options) *sink.Running {
 func TestSimCommandEndsWithOneJSONLine(t *testing.T) {
 	s := startTestSink(t, sink.Options{})
 	tokFile := filepath.Join(t.TempDir(), "tokens")
+	perDev := filepath.Join(t.TempDir(), "per-device.csv")
 	os.WriteFile(tokFile, []byte("# device token\nw-0001 one\nw-0002 two\n"), 0o600)
 	code, out, errs := simRun(t, "sim", "--gateway", s.Addr(), "--devices", "3", "--rate", "50", "--duration", "1s",
 		"--mode", "raw", "--seed", "4", "--corrupt-rate", "0.2", "--drop-every", "400ms", "--clock-drift-ppm", "50",
-		"--id-prefix", "w", "--token-file", tokFile, "--progress-every", "300ms")
+		"--id-prefix", "w", "--token-file", tokFile, "--progress-every", "300ms", "--per-device-out", perDev)
 	if code != 0 {
 		t.Fatalf("exit %d: %s", code, errs)
 	}
@@ -69,6 +71,21 @@ func TestSimCommandEndsWithOneJSONLine(t *testing.T) {
 	}
 	if ids := s.DeviceIDs(); len(ids) != 3 || ids[0] != "w-0001" {
 		t.Errorf("devices at the sink %v, want w-0001..w-0003", ids)
+	}
+	csv, err := os.ReadFile(perDev)
+	if err != nil {
+		t.Fatal(err)
+	}
+	rows := strings.Split(strings.TrimSpace(string(csv)), "\n")
+	if len(rows) != 4 || rows[0] != "device,mode,frames_acked,samples_acked,acked_through" {
+		t.Fatalf("per-device CSV %q", csv)
+	}
+	for _, row := range rows[1:] {
+		f := strings.Split(row, ",")
+		ds, _ := s.Device(f[0])
+		if f[1] != "raw" || f[3] != strconv.FormatUint(ds.Samples, 10) {
+			t.Errorf("per-device row %q, sink holds %d samples", row, ds.Samples)
+		}
 	}
 }
 
