@@ -1,0 +1,449 @@
+package tune
+
+import (
+	"errors"
+	"fmt"
+	"io/fs"
+	"math"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"time"
+
+	"go.yaml.in/yaml/v3"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/profiles"
+)
+
+// MaxPoints is the largest grid accepted (team choice: a sweep larger than
+// this is more likely a typo than a plan, and its report is unreadable).
+const MaxPoints = 10000
+
+// DefaultGrace is the grace period after an event's end within which an
+// alarm still detects it, when the grid sets none (team choice).
+const DefaultGrace = 60 * time.Second
+
+// Grid is a decoded tuning grid file.
+type Grid struct {
+	Base       *alarms.Profile
+	BaseSource string // the base profile's file, built-in name, or "inline"
+	Sweep      []Sweep
+	Reference  Reference
+	Text       []byte // the grid file as read (shown in the report)
+}
+
+// Sweep is one swept key and its values, written as in the profile file.
+type Sweep struct {
+	Key    string // CONDITION.KEY or CONDITION.escalate.KEY, as in the file
+	Values []string
+}
+
+// Reference says what a real event is. Exactly one of Rule and Events is
+// used: Rule when it is non-nil.
+type Reference struct {
+	Rule   *Rule
+	File   string  // the events file, when the events came from one
+	Events []Event // annotated events (File)
+	// Grace extends an event's end for matching; zero means no grace (the
+	// grid file's default is DefaultGrace).
+	Grace time.Duration
+	// Conditions names the scored conditions; empty means every spo2_low
+	// condition of the base profile.
+	Conditions []string
+}
+
+// Rule defines events as SpO2 below Below (%) for at least For.
+type Rule struct {
+	Below float64
+	For   time.Duration
+}
+
+func (r Rule) String() string {
+	return fmt.Sprintf("SpO2 < %s %% for at least %s", strconv.FormatFloat(r.Below, 'f', -1, 64), fmtDur(r.For))
+}
+
+// Event is one reference event of one device; times in seconds on the
+// trend's clock (Unix seconds for a store, file seconds for a CSV).
+type Event struct {
+	Device     string
+	Start, End float64
+	Label      string
+}
+
+// Point is one grid point: its profile and the swept values that made it.
+type Point struct {
+	Index   int // 0-based, in cross-product order
+	Name    string
+	Values  []string // one per Grid.Sweep key
+	Profile *alarms.Profile
+}
+
+// LoadGrid reads and validates a grid file; a relative base or reference
+// file is resolved against the grid file's directory.
+func LoadGrid(path string) (*Grid, error) {
+	b, err := os.ReadFile(path)
+	if err != nil {
+		return nil, fmt.Errorf("load grid: %w", err)
+	}
+	g, err := ParseGrid(b, filepath.Dir(path))
+	if err != nil {
+		return nil, fmt.Errorf("grid %s: %w", path, err)
+	}
+	return g, nil
+}
+
+// ParseGrid decodes and validates a grid file. dir resolves relative file
+// names. Every swept value is checked against the base profile's rules, and
+// every grid point's profile is built and validated.
+func ParseGrid(data []byte, dir string) (*Grid, error) {
+	var root yaml.Node
+	if err := yaml.Unmarshal(data, &root); err != nil {
+		return nil, fmt.Errorf("parse grid: %w", err)
+	}
+	if root.Kind != yaml.DocumentNode || len(root.Content) == 0 {
+		return nil, errors.New("parse grid: empty document, want base, sweep and reference")
+	}
+	g := &Grid{Text: append([]byte(nil), data...)}
+	var refNode *yaml.Node
+	var sweepNode *yaml.Node
+	err := mapping(root.Content[0], "", func(key string, v *yaml.Node, path string) error {
+		switch key {
+		case "base":
+			return g.decodeBase(v, dir)
+		case "sweep":
+			sweepNode = v
+			return nil
+		case "reference":
+			refNode = v
+			return nil
+		case "averaging", "averaging_times", "estimator":
+			return fmt.Errorf("%s (line %d): not supported yet: re-running the estimator over raw captures is not implemented in tune; sweep alarm profile keys only", path, v.Line)
+		}
+		return fmt.Errorf("%s (line %d): unknown key, want base, sweep or reference", path, v.Line)
+	})
+	if err != nil {
+		return nil, err
+	}
+	if g.Base == nil {
+		return nil, errors.New("base: missing, want a profile file or an inline profile")
+	}
+	if sweepNode == nil {
+		return nil, errors.New("sweep: missing, want CONDITION.KEY: [values...]")
+	}
+	if err := g.decodeSweep(sweepNode); err != nil {
+		return nil, err
+	}
+	if refNode == nil {
+		return nil, errors.New("reference: missing, want rule: {below: 85, for: 60s} or file: events.csv")
+	}
+	if err := g.decodeReference(refNode, dir); err != nil {
+		return nil, err
+	}
+	if _, err := g.Points(); err != nil {
+		return nil, err
+	}
+	return g, nil
+}
+
+// mapping walks a YAML mapping, rejecting duplicate keys.
+func mapping(n *yaml.Node, path string, fn func(key string, v *yaml.Node, path string) error) error {
+	if n.Kind != yaml.MappingNode {
+		return fmt.Errorf("%s (line %d): want a mapping", orRoot(path), n.Line)
+	}
+	seen := map[string]bool{}
+	for i := 0; i+1 < len(n.Content); i += 2 {
+		k, v := n.Content[i], n.Content[i+1]
+		kp := k.Value
+		if path != "" {
+			kp = path + "." + k.Value
+		}
+		if seen[k.Value] {
+			return fmt.Errorf("%s (line %d): duplicate key", kp, k.Line)
+		}
+		seen[k.Value] = true
+		if err := fn(k.Value, v, kp); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+func orRoot(p string) string {
+	if p == "" {
+		return "(document)"
+	}
+	return p
+}
+
+func (g *Grid) decodeBase(v *yaml.Node, dir string) error {
+	switch v.Kind {
+	case yaml.ScalarNode:
+		name := v.Value
+		if name == "" {
+			return fmt.Errorf("base (line %d): empty, want a profile file or an inline profile", v.Line)
+		}
+		path := name
+		if !filepath.IsAbs(path) {
+			path = filepath.Join(dir, path)
+		}
+		p, err := alarms.LoadProfile(path)
+		if errors.Is(err, fs.ErrNotExist) {
+			if bp, berr := profiles.Get(name); berr == nil {
+				g.Base, g.BaseSource = bp, "built-in "+name
+				return nil
+			}
+			return fmt.Errorf("base (line %d): %q: no such file and no built-in profile of that name (built-in: %s)",
+				v.Line, name, strings.Join(profiles.Names(), ", "))
+		}
+		if err != nil {
+			return fmt.Errorf("base: %w", err)
+		}
+		g.Base, g.BaseSource = p, name
+		return nil
+	case yaml.MappingNode:
+		b, err := yaml.Marshal(v)
+		if err != nil {
+			return fmt.Errorf("base (line %d): %w", v.Line, err)
+		}
+		p, err := alarms.ParseProfile(b)
+		if err != nil {
+			var fe *alarms.FieldError
+			if errors.As(err, &fe) {
+				return fmt.Errorf("base.%s: %s (grid line %d)", fe.Path, fe.Msg, v.Line+max(fe.Line-1, 0))
+			}
+			return fmt.Errorf("base: %w", err)
+		}
+		g.Base, g.BaseSource = p, "inline"
+		return nil
+	}
+	return fmt.Errorf("base (line %d): want a profile file name or an inline profile", v.Line)
+}
+
+func (g *Grid) decodeSweep(n *yaml.Node) error {
+	err := mapping(n, "sweep", func(key string, v *yaml.Node, path string) error {
+		head, _, _ := strings.Cut(key, ".")
+		switch {
+		case head == "averaging" || head == "estimator" || strings.HasSuffix(key, ".averaging"):
+			return fmt.Errorf("%s (line %d): not supported yet: averaging times need the estimator re-run over raw captures, which tune does not do", path, v.Line)
+		case key == "name":
+			return fmt.Errorf("%s (line %d): cannot be swept (grid points are named by tune)", path, v.Line)
+		}
+		if v.Kind != yaml.SequenceNode {
+			return fmt.Errorf("%s (line %d): want a list of values like [86, 88, 90]", path, v.Line)
+		}
+		if len(v.Content) == 0 {
+			return fmt.Errorf("%s (line %d): empty list, want at least one value", path, v.Line)
+		}
+		s := Sweep{Key: key}
+		seen := map[string]int{}
+		for i, vn := range v.Content {
+			ip := fmt.Sprintf("%s[%d]", path, i)
+			if vn.Kind != yaml.ScalarNode {
+				return fmt.Errorf("%s (line %d): want a single value", ip, vn.Line)
+			}
+			val := strings.TrimSpace(vn.Value)
+			if j, dup := seen[val]; dup {
+				return fmt.Errorf("%s (line %d): %s repeats %s[%d]", ip, vn.Line, val, path, j)
+			}
+			seen[val] = i
+			if err := setValue(g.Base.Clone(), key, val); err != nil {
+				return fmt.Errorf("%s: %s (line %d)", ip, err, vn.Line)
+			}
+			s.Values = append(s.Values, val)
+		}
+		g.Sweep = append(g.Sweep, s)
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	if len(g.Sweep) == 0 {
+		return errors.New("sweep: empty, want at least one CONDITION.KEY: [values...]")
+	}
+	n2 := 1
+	for _, s := range g.Sweep {
+		n2 *= len(s.Values)
+		if n2 > MaxPoints {
+			return fmt.Errorf("sweep: more than %d grid points, want at most %d", MaxPoints, MaxPoints)
+		}
+	}
+	return nil
+}
+
+// setValue sets one swept value and phrases an error the grid's way: the
+// message of the key itself, or which other key the value breaks.
+func setValue(p *alarms.Profile, key, val string) error {
+	err := p.Set(key, val)
+	if err == nil {
+		return nil
+	}
+	var fe *alarms.FieldError
+	if errors.As(err, &fe) {
+		if fe.Path == key {
+			return errors.New(fe.Msg)
+		}
+		return fmt.Errorf("%s makes %s: %s", val, fe.Path, fe.Msg)
+	}
+	return err
+}
+
+func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
+	r := &g.Reference
+	r.Grace = DefaultGrace
+	err := mapping(n, "reference", func(key string, v *yaml.Node, path string) error {
+		switch key {
+		case "rule":
+			rule := &Rule{}
+			var haveBelow, haveFor bool
+			err := mapping(v, path, func(key string, v *yaml.Node, path string) error {
+				switch key {
+				case "below":
+					f, err := strconv.ParseFloat(strings.TrimSpace(v.Value), 64)
+					if v.Kind != yaml.ScalarNode || err != nil || !(f > 0 && f <= 100) {
+						return fmt.Errorf("%s (line %d): %q, want an SpO2 in (0, 100]", path, v.Line, v.Value)
+					}
+					rule.Below, haveBelow = f, true
+					return nil
+				case "for":
+					d, err := time.ParseDuration(strings.TrimSpace(v.Value))
+					if v.Kind != yaml.ScalarNode || err != nil || d < 0 || d > 24*time.Hour {
+						return fmt.Errorf("%s (line %d): %q, want a duration in [0, 24h] like 60s", path, v.Line, v.Value)
+					}
+					rule.For, haveFor = d, true
+					return nil
+				}
+				return fmt.Errorf("%s (line %d): unknown key, want below or for", path, v.Line)
+			})
+			if err != nil {
+				return err
+			}
+			if !haveBelow || !haveFor {
+				return fmt.Errorf("%s (line %d): want both below and for, like {below: 85, for: 60s}", path, v.Line)
+			}
+			r.Rule = rule
+			return nil
+		case "file":
+			if v.Kind != yaml.ScalarNode || v.Value == "" {
+				return fmt.Errorf("%s (line %d): want a CSV file name (device,start_s,end_s,label)", path, v.Line)
+			}
+			p := v.Value
+			if !filepath.IsAbs(p) {
+				p = filepath.Join(dir, p)
+			}
+			f, err := os.Open(p)
+			if err != nil {
+				return fmt.Errorf("%s (line %d): %w", path, v.Line, err)
+			}
+			defer f.Close()
+			ev, err := ReadEventsCSV(f)
+			if err != nil {
+				return fmt.Errorf("%s %s: %w", path, v.Value, err)
+			}
+			r.File, r.Events = v.Value, ev
+			return nil
+		case "grace":
+			d, err := time.ParseDuration(strings.TrimSpace(v.Value))
+			if v.Kind != yaml.ScalarNode || err != nil || d < 0 || d > time.Hour {
+				return fmt.Errorf("%s (line %d): %q, want a duration in [0, 1h] like 60s", path, v.Line, v.Value)
+			}
+			r.Grace = d
+			return nil
+		case "conditions":
+			if v.Kind != yaml.SequenceNode || len(v.Content) == 0 {
+				return fmt.Errorf("%s (line %d): want a list of condition names like [spo2_low]", path, v.Line)
+			}
+			for i, cn := range v.Content {
+				if g.Base.Condition(cn.Value) == nil {
+					return fmt.Errorf("%s[%d] (line %d): %q, want a condition of the base profile %s", path, i, cn.Line, cn.Value, g.Base.Name)
+				}
+				r.Conditions = append(r.Conditions, cn.Value)
+			}
+			return nil
+		}
+		return fmt.Errorf("%s (line %d): unknown key, want rule, file, grace or conditions", path, v.Line)
+	})
+	if err != nil {
+		return err
+	}
+	switch {
+	case r.Rule == nil && r.File == "":
+		return errors.New("reference: want rule: {below: 85, for: 60s} or file: events.csv")
+	case r.Rule != nil && r.File != "":
+		return errors.New("reference: both rule and file, want one of them")
+	}
+	if len(r.Conditions) == 0 {
+		for _, c := range g.Base.Conditions {
+			if c.Kind == alarms.SpO2Low {
+				r.Conditions = append(r.Conditions, c.ConditionName())
+			}
+		}
+		if len(r.Conditions) == 0 {
+			return fmt.Errorf("reference.conditions: missing, and base profile %s has no spo2_low condition to score by default", g.Base.Name)
+		}
+	}
+	return nil
+}
+
+// Size is the number of grid points.
+func (g *Grid) Size() int {
+	n := 1
+	for _, s := range g.Sweep {
+		n *= len(s.Values)
+	}
+	return n
+}
+
+// Points builds every grid point's profile (the base with each swept value
+// set, validated), in cross-product order, the last key varying fastest.
+func (g *Grid) Points() ([]Point, error) {
+	n := g.Size()
+	pts := make([]Point, n)
+	width := len(strconv.Itoa(n))
+	for i := range pts {
+		p := g.Base.Clone()
+		vals := make([]string, len(g.Sweep))
+		rem := i
+		for k := len(g.Sweep) - 1; k >= 0; k-- {
+			s := g.Sweep[k]
+			vals[k] = s.Values[rem%len(s.Values)]
+			rem /= len(s.Values)
+		}
+		for k, s := range g.Sweep {
+			if err := setValue(p, s.Key, vals[k]); err != nil {
+				return nil, fmt.Errorf("grid point %d (%s): sweep.%s: %w", i+1, describe(g.Sweep, vals), s.Key, err)
+			}
+		}
+		name := fmt.Sprintf("%s-g%0*d", g.Base.Name, width, i+1)
+		if len(name) > 64 {
+			name = fmt.Sprintf("g%0*d", width, i+1)
+		}
+		p.Name = name
+		if err := p.Validate(); err != nil {
+			return nil, fmt.Errorf("grid point %d (%s): %w", i+1, describe(g.Sweep, vals), err)
+		}
+		pts[i] = Point{Index: i, Name: name, Values: vals, Profile: p}
+	}
+	return pts, nil
+}
+
+func describe(sw []Sweep, vals []string) string {
+	var b strings.Builder
+	for k, s := range sw {
+		if k > 0 {
+			b.WriteString(", ")
+		}
+		b.WriteString(s.Key + "=" + vals[k])
+	}
+	return b.String()
+}
+
+func fmtDur(d time.Duration) string {
+	if d%time.Second == 0 {
+		return strconv.FormatInt(int64(d/time.Second), 10) + "s"
+	}
+	return d.String()
+}
+
+func finite(f float64) bool { return !math.IsNaN(f) && !math.IsInf(f, 0) }

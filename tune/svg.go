@@ -1,0 +1,349 @@
+package tune
+
+import (
+	"fmt"
+	"html"
+	"math"
+	"slices"
+	"strconv"
+	"strings"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+)
+
+// Okabe-Ito colours (a colour-blind-safe palette, common practice).
+var palette = []string{"#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000", "#F0E442"}
+
+// plot is a minimal SVG chart: a frame, linear axes with ticks, and marks.
+type plot struct {
+	w, h                  float64
+	left, right, top, bot float64
+	x0, x1, y0, y1        float64
+	b                     strings.Builder
+	title, xlabel, ylabel string
+	xticks, yticks        []float64
+	xfmt, yfmt            func(float64) string
+}
+
+func newPlot(title, xlabel, ylabel string, x0, x1, y0, y1 float64) *plot {
+	p := &plot{w: 680, h: 420, left: 70, right: 20, top: 40, bot: 55,
+		title: title, xlabel: xlabel, ylabel: ylabel}
+	p.xticks, p.x0, p.x1 = niceTicks(x0, x1)
+	p.yticks, p.y0, p.y1 = niceTicks(y0, y1)
+	p.xfmt, p.yfmt = tickLabel, tickLabel
+	return p
+}
+
+func (p *plot) X(x float64) float64 {
+	return p.left + (x-p.x0)/(p.x1-p.x0)*(p.w-p.left-p.right)
+}
+
+func (p *plot) Y(y float64) float64 {
+	return p.h - p.bot - (y-p.y0)/(p.y1-p.y0)*(p.h-p.top-p.bot)
+}
+
+func (p *plot) frame() {
+	fmt.Fprintf(&p.b, `<rect x="0" y="0" width="%g" height="%g" fill="#ffffff"/>`, p.w, p.h)
+	fmt.Fprintf(&p.b, `<text x="%g" y="22" font-size="15" font-weight="bold">%s</text>`, p.left, html.EscapeString(p.title))
+	for _, t := range p.yticks {
+		y := p.Y(t)
+		fmt.Fprintf(&p.b, `<line x1="%g" y1="%.1f" x2="%g" y2="%.1f" stroke="#e4e4e4"/>`, p.left, y, p.w-p.right, y)
+		fmt.Fprintf(&p.b, `<text x="%g" y="%.1f" font-size="12" text-anchor="end">%s</text>`, p.left-6, y+4, p.yfmt(t))
+	}
+	for _, t := range p.xticks {
+		x := p.X(t)
+		fmt.Fprintf(&p.b, `<line x1="%.1f" y1="%g" x2="%.1f" y2="%g" stroke="#e4e4e4"/>`, x, p.top, x, p.h-p.bot)
+		fmt.Fprintf(&p.b, `<text x="%.1f" y="%g" font-size="12" text-anchor="middle">%s</text>`, x, p.h-p.bot+17, p.xfmt(t))
+	}
+	fmt.Fprintf(&p.b, `<rect x="%g" y="%g" width="%g" height="%g" fill="none" stroke="#555555"/>`,
+		p.left, p.top, p.w-p.left-p.right, p.h-p.top-p.bot)
+	fmt.Fprintf(&p.b, `<text x="%g" y="%g" font-size="13" text-anchor="middle">%s</text>`,
+		(p.left+p.w-p.right)/2, p.h-12, html.EscapeString(p.xlabel))
+	fmt.Fprintf(&p.b, `<text transform="translate(16,%g) rotate(-90)" font-size="13" text-anchor="middle">%s</text>`,
+		(p.top+p.h-p.bot)/2, html.EscapeString(p.ylabel))
+}
+
+func (p *plot) svg() string {
+	return fmt.Sprintf(`<svg xmlns="http://www.w3.org/2000/svg" width="%g" height="%g" viewBox="0 0 %g %g" font-family="DejaVu Sans, Arial, sans-serif">%s</svg>`,
+		p.w, p.h, p.w, p.h, p.b.String())
+}
+
+// niceTicks picks about five round tick values covering [lo, hi] and
+// returns them with the widened range.
+func niceTicks(lo, hi float64) ([]float64, float64, float64) {
+	if !(hi > lo) {
+		hi = lo + 1
+	}
+	raw := (hi - lo) / 5
+	mag := math.Pow(10, math.Floor(math.Log10(raw)))
+	step := mag
+	for _, m := range []float64{1, 2, 2.5, 5, 10} {
+		if m*mag >= raw {
+			step = m * mag
+			break
+		}
+	}
+	a, b := math.Floor(lo/step)*step, math.Ceil(hi/step)*step
+	var t []float64
+	for v := a; v <= b+step/2; v += step {
+		t = append(t, math.Round(v/step)*step)
+	}
+	return t, a, b
+}
+
+func tickLabel(v float64) string { return strconv.FormatFloat(v, 'g', 6, 64) }
+
+// FrontierSVG draws alarm burden (episodes per device-day) against
+// sensitivity for every grid point; Pareto-optimal points are filled,
+// joined and labelled.
+func FrontierSVG(res *Result) string {
+	xmax, anySens := 0.0, false
+	for _, r := range res.Rows {
+		if finite(r.PerDeviceDay) {
+			xmax = max(xmax, r.PerDeviceDay)
+		}
+		anySens = anySens || finite(r.Sensitivity)
+	}
+	p := newPlot("Alarm burden against sensitivity", "alarms per device-day (all conditions)",
+		"sensitivity (% of reference events)", 0, xmax*1.05, 0, 100)
+	p.frame()
+	if !anySens {
+		fmt.Fprintf(&p.b, `<text x="%g" y="%g" font-size="13" fill="#aa0000">no reference events in the data: sensitivity undefined</text>`, p.left+10, p.top+20)
+	}
+	sens := func(r Row) float64 {
+		if finite(r.Sensitivity) {
+			return 100 * r.Sensitivity
+		}
+		return 0
+	}
+	var front []int
+	for i, r := range res.Rows {
+		if !finite(r.PerDeviceDay) {
+			continue
+		}
+		if r.Pareto {
+			front = append(front, i)
+			continue
+		}
+		fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="3.5" fill="none" stroke="#888888"><title>%s</title></circle>`,
+			p.X(r.PerDeviceDay), p.Y(sens(r)), html.EscapeString(pointTitle(res, i)))
+	}
+	slices.SortFunc(front, func(a, b int) int {
+		ra, rb := res.Rows[a], res.Rows[b]
+		switch {
+		case ra.PerDeviceDay != rb.PerDeviceDay:
+			return cmpF(ra.PerDeviceDay, rb.PerDeviceDay)
+		default:
+			return cmpF(sens(ra), sens(rb))
+		}
+	})
+	var path strings.Builder
+	for k, i := range front {
+		r := res.Rows[i]
+		cmd := "L"
+		if k == 0 {
+			cmd = "M"
+		}
+		fmt.Fprintf(&path, "%s%.1f,%.1f ", cmd, p.X(r.PerDeviceDay), p.Y(sens(r)))
+	}
+	if len(front) > 1 {
+		fmt.Fprintf(&p.b, `<path d="%s" fill="none" stroke="%s" stroke-width="1.5"/>`, path.String(), palette[0])
+	}
+	for k, i := range front {
+		r := res.Rows[i]
+		x, y := p.X(r.PerDeviceDay), p.Y(sens(r))
+		fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="5" fill="%s"><title>%s</title></circle>`, x, y, palette[0], html.EscapeString(pointTitle(res, i)))
+		if len(front) <= 12 || k%((len(front)+11)/12) == 0 {
+			fmt.Fprintf(&p.b, `<text x="%.1f" y="%.1f" font-size="11" fill="#333333">%s</text>`, x+7, y+13, html.EscapeString(shortName(res.Points[i].Name)))
+		}
+	}
+	// Legend.
+	lx, ly := p.w-p.right-200, p.h-p.bot-42
+	fmt.Fprintf(&p.b, `<rect x="%g" y="%g" width="192" height="36" fill="#ffffff" stroke="#cccccc"/>`, lx, ly)
+	fmt.Fprintf(&p.b, `<circle cx="%g" cy="%g" r="5" fill="%s"/><text x="%g" y="%g" font-size="12">Pareto-optimal profile</text>`, lx+12, ly+12, palette[0], lx+24, ly+16)
+	fmt.Fprintf(&p.b, `<circle cx="%g" cy="%g" r="3.5" fill="none" stroke="#888888"/><text x="%g" y="%g" font-size="12">other grid point</text>`, lx+12, ly+27, lx+24, ly+31)
+	return p.svg()
+}
+
+func cmpF(a, b float64) int {
+	switch {
+	case a < b:
+		return -1
+	case a > b:
+		return 1
+	}
+	return 0
+}
+
+// shortName is the grid-point part of a profile name (g07).
+func shortName(name string) string {
+	if i := strings.LastIndex(name, "-g"); i >= 0 {
+		return name[i+1:]
+	}
+	return name
+}
+
+func pointTitle(res *Result, i int) string {
+	r := res.Rows[i]
+	return fmt.Sprintf("%s: %s; %.2f alarms/device-day, sensitivity %s %%", res.Points[i].Name,
+		describe(res.Grid.Sweep, res.Points[i].Values), r.PerDeviceDay, num(100*r.Sensitivity, 1))
+}
+
+// limitChart describes the "alarms per day against limit, one line per
+// delay" figure: which condition, which other keys are held, and the lines.
+type limitChart struct {
+	cond          string
+	held          []string // "KEY=VALUE" of other swept keys held fixed
+	svg           string
+	missingReason string
+}
+
+// LimitSVG draws alarms per device-day against the limit of the first
+// condition whose limit is swept, one line per swept delay of that
+// condition. Other swept keys are held at the base profile's value when it
+// is among theirs, else at their first value. It returns "" and the reason
+// when the grid sweeps no limit.
+func LimitSVG(res *Result) (svg, caption string) {
+	lc := buildLimitChart(res)
+	if lc.svg == "" {
+		return "", lc.missingReason
+	}
+	caption = "Condition " + lc.cond + "."
+	if len(lc.held) > 0 {
+		caption += " Other swept keys held at " + strings.Join(lc.held, ", ") + "."
+	}
+	return lc.svg, caption
+}
+
+func buildLimitChart(res *Result) limitChart {
+	g := res.Grid
+	li, di := -1, -1
+	var cond string
+	for k, s := range g.Sweep {
+		c, key, _ := strings.Cut(s.Key, ".")
+		if key == "limit" {
+			li, cond = k, c
+			break
+		}
+	}
+	if li < 0 {
+		return limitChart{missingReason: "The grid sweeps no limit, so there is no chart of alarms against the limit."}
+	}
+	for k, s := range g.Sweep {
+		if s.Key == cond+".delay" {
+			di = k
+		}
+	}
+	held := make([]string, len(g.Sweep))
+	var heldDesc []string
+	for k, s := range g.Sweep {
+		if k == li || k == di {
+			continue
+		}
+		held[k] = baseValue(g, s)
+		heldDesc = append(heldDesc, s.Key+"="+held[k])
+	}
+	limits := g.Sweep[li].Values
+	delays := []string{""}
+	if di >= 0 {
+		delays = g.Sweep[di].Values
+	}
+	lim := make([]float64, len(limits))
+	for i, v := range limits {
+		lim[i], _ = strconv.ParseFloat(v, 64)
+	}
+	// y[delay][limit]
+	y := make([][]float64, len(delays))
+	ymax := 0.0
+	for d := range delays {
+		y[d] = make([]float64, len(limits))
+		for l := range limits {
+			y[d][l] = math.NaN()
+		}
+	}
+	for i, pt := range res.Points {
+		ok := true
+		for k := range g.Sweep {
+			if held[k] != "" && pt.Values[k] != held[k] {
+				ok = false
+			}
+		}
+		if !ok {
+			continue
+		}
+		l := slices.Index(limits, pt.Values[li])
+		d := 0
+		if di >= 0 {
+			d = slices.Index(delays, pt.Values[di])
+		}
+		y[d][l] = res.Rows[i].PerDeviceDay
+		if finite(y[d][l]) {
+			ymax = max(ymax, y[d][l])
+		}
+	}
+	xlo, xhi := slices.Min(lim), slices.Max(lim)
+	if xhi == xlo {
+		xlo, xhi = xlo-1, xhi+1
+	}
+	unit := ""
+	if c := g.Base.Condition(cond); c != nil {
+		switch c.Kind {
+		case alarms.SpO2Low, alarms.SpO2High:
+			unit = " (%)"
+		case alarms.PulseLow, alarms.PulseHigh:
+			unit = " (/min)"
+		case alarms.Desaturation:
+			unit = " (points below baseline)"
+		}
+	}
+	p := newPlot("Alarms per device-day against "+cond+" limit", cond+" limit"+unit,
+		"alarms per device-day (all conditions)", xlo, xhi, 0, ymax*1.08)
+	p.frame()
+	order := make([]int, len(limits))
+	for i := range order {
+		order[i] = i
+	}
+	slices.SortFunc(order, func(a, b int) int { return cmpF(lim[a], lim[b]) })
+	for d, dv := range delays {
+		col := palette[d%len(palette)]
+		var path strings.Builder
+		first := true
+		for _, l := range order {
+			if !finite(y[d][l]) {
+				continue
+			}
+			cmd := "L"
+			if first {
+				cmd, first = "M", false
+			}
+			fmt.Fprintf(&path, "%s%.1f,%.1f ", cmd, p.X(lim[l]), p.Y(y[d][l]))
+			fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="3.5" fill="%s"/>`, p.X(lim[l]), p.Y(y[d][l]), col)
+		}
+		fmt.Fprintf(&p.b, `<path d="%s" fill="none" stroke="%s" stroke-width="2"/>`, path.String(), col)
+		label := "as swept"
+		if dv != "" {
+			label = "delay " + dv
+		}
+		lx, ly := p.left+12, p.top+16+float64(d)*17
+		fmt.Fprintf(&p.b, `<line x1="%g" y1="%g" x2="%g" y2="%g" stroke="%s" stroke-width="2"/><text x="%g" y="%g" font-size="12">%s</text>`,
+			lx, ly-4, lx+20, ly-4, col, lx+26, ly, html.EscapeString(label))
+	}
+	return limitChart{cond: cond, held: heldDesc, svg: p.svg()}
+}
+
+// baseValue is the value of s the base profile has, when it is among the
+// swept values; else the first swept value.
+func baseValue(g *Grid, s Sweep) string {
+	for _, v := range s.Values {
+		p := g.Base.Clone()
+		if err := p.Set(s.Key, v); err != nil {
+			continue
+		}
+		a, _ := p.Marshal()
+		b, _ := g.Base.Marshal()
+		if string(a) == string(b) {
+			return v
+		}
+	}
+	return s.Values[0]
+}

@@ -1,0 +1,551 @@
+package tune
+
+import (
+	"context"
+	"fmt"
+	"math"
+	"runtime"
+	"slices"
+	"sort"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+)
+
+// DefaultMaxGap is the longest interval between consecutive samples counted
+// as monitored time, when Options sets none (team choice: a minute without
+// any sample means the device was off or disconnected).
+const DefaultMaxGap = 60 * time.Second
+
+// Options set how Run sweeps.
+type Options struct {
+	// Workers is the number of goroutines; zero means runtime.GOMAXPROCS(0).
+	Workers int
+	// MaxGap is the longest interval between consecutive samples counted as
+	// monitored time; zero means DefaultMaxGap.
+	MaxGap time.Duration
+	// Progress, when non-nil, is called with units of work done and the
+	// total, a few times a second and once at the end; never concurrently.
+	Progress func(done, total int)
+}
+
+// Result is the outcome of a sweep: one Row per grid point, in grid order.
+type Result struct {
+	Grid   *Grid
+	Points []Point
+	Rows   []Row
+	// Devices is the number of trends swept; MonitoredS their monitored
+	// time in seconds (see the package doc).
+	Devices    int
+	MonitoredS float64
+	// FirstS and LastS are the earliest and latest sample times.
+	FirstS, LastS float64
+	// Events is the number of reference events within the data;
+	// EventsOutside counts events of a file that fell outside it (another
+	// device or time) and were not scored.
+	Events, EventsOutside int
+	// Scored names the conditions scored against the events.
+	Scored []string
+	// Variants is how many distinct condition variants the engine ran.
+	Variants int
+	// Samples is the number of samples in the trends.
+	Samples int
+	// MaxGapS is the longest sample interval counted as monitored, s.
+	MaxGapS float64
+
+	spans [][][]span // [variant][device] episodes, kept for tests
+	ptVar [][]int    // [point][condition] variant
+}
+
+// PriorityStats are a row's figures for one priority.
+type PriorityStats struct {
+	Episodes       int     // episodes whose highest priority was this one
+	PerDeviceDay   float64 // Episodes per 24 h of monitored time
+	TimeInAlarmPct float64 // % of monitored time with an alarm at this priority
+	MedianEpisodeS float64 // median duration of those episodes (NaN if none)
+}
+
+// Row is the figures of one grid point.
+type Row struct {
+	Episodes       int     // announced episodes, all conditions (as replay counts them)
+	PerDeviceDay   float64 // episodes per 24 h of monitored time
+	TimeInAlarmPct float64 // % of monitored time with any alarm
+	MedianEpisodeS float64 // median announced-to-end duration, s (NaN if no episode)
+	// ByPriority is indexed by alarms.Priority (Low, Medium, High; index 0 unused).
+	ByPriority [4]PriorityStats
+
+	ScoredEpisodes int     // episodes of the scored conditions
+	TruePositives  int     // scored episodes that meet an event
+	EventsDetected int     // events detected by a scored episode
+	Sensitivity    float64 // EventsDetected / events (NaN without events)
+	PPV            float64 // TruePositives / ScoredEpisodes (NaN without scored episodes)
+	MedianDelayS   float64 // median detection delay, s (NaN if nothing detected)
+	P90DelayS      float64 // 90th percentile detection delay, s
+	Pareto         bool    // no other row has fewer alarms per device-day and at least the sensitivity (or as few and more)
+}
+
+// span is one announced episode, compact.
+type span struct {
+	cond            int32 // condition index in the base profile
+	prio0, prio     alarms.Priority
+	onset, ann, esc float64 // esc NaN when not escalated
+	end             float64 // NaN while still active at the end of the data
+}
+
+// devInfo is what scoring needs to know about one trend.
+type devInfo struct {
+	name   string
+	last   float64
+	segs   [][2]float64 // monitored segments
+	events []Event
+}
+
+// variant is one distinct condition setting, run as a one-condition profile.
+type variant struct {
+	cond    int
+	profile *alarms.Profile
+}
+
+type condKey struct {
+	c      alarms.Condition
+	esc    alarms.Escalation
+	hasEsc bool
+}
+
+// Run sweeps every grid point of g over trends (one per device, samples in
+// time order) and scores it. It stops early with ctx's error.
+func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Result, error) {
+	pts, err := g.Points()
+	if err != nil {
+		return nil, err
+	}
+	workers := opt.Workers
+	if workers <= 0 {
+		workers = runtime.GOMAXPROCS(0)
+	}
+	maxGap := DefaultMaxGap.Seconds()
+	if opt.MaxGap > 0 {
+		maxGap = opt.MaxGap.Seconds()
+	}
+	res := &Result{Grid: g, Points: pts, Rows: make([]Row, len(pts)), Devices: len(trends),
+		Scored: g.Reference.Conditions, MaxGapS: maxGap, FirstS: math.Inf(1), LastS: math.Inf(-1)}
+
+	// Distinct condition variants across the grid.
+	nc := len(g.Base.Conditions)
+	var vars []variant
+	index := make([]map[condKey]int, nc)
+	res.ptVar = make([][]int, len(pts))
+	for i, pt := range pts {
+		res.ptVar[i] = make([]int, nc)
+		for c := range nc {
+			pc := pt.Profile.Conditions[c]
+			k := condKey{c: pc}
+			k.c.Escalate = nil
+			if pc.Escalate != nil {
+				k.esc, k.hasEsc = *pc.Escalate, true
+			}
+			if index[c] == nil {
+				index[c] = map[condKey]int{}
+			}
+			v, ok := index[c][k]
+			if !ok {
+				one := &alarms.Profile{Name: g.Base.Name, PauseMax: g.Base.PauseMax,
+					Conditions: []alarms.Condition{pt.Profile.Clone().Conditions[c]}}
+				v = len(vars)
+				vars = append(vars, variant{cond: c, profile: one})
+				index[c][k] = v
+			}
+			res.ptVar[i][c] = v
+		}
+	}
+	res.Variants = len(vars)
+
+	// Per-device facts: monitored segments, last sample, reference events.
+	devs := make([]devInfo, len(trends))
+	byName := map[string]int{}
+	for d, tr := range trends {
+		byName[tr.Device] = d
+		di := &devs[d]
+		di.name = tr.Device
+		res.Samples += len(tr.Samples)
+		di.segs, di.last = segments(tr.Samples, maxGap)
+		for _, s := range di.segs {
+			res.MonitoredS += s[1] - s[0]
+		}
+		if n := len(tr.Samples); n > 0 {
+			res.FirstS = min(res.FirstS, tr.Samples[0].T)
+			res.LastS = max(res.LastS, tr.Samples[n-1].T)
+		}
+		if r := g.Reference.Rule; r != nil {
+			di.events = RuleEvents(tr.Device, tr.Samples, *r)
+			res.Events += len(di.events)
+		}
+	}
+	if g.Reference.Rule == nil {
+		for _, ev := range g.Reference.Events {
+			d, ok := byName[ev.Device]
+			if !ok || len(trends[d].Samples) == 0 || ev.End < trends[d].Samples[0].T || ev.Start > devs[d].last {
+				res.EventsOutside++
+				continue
+			}
+			devs[d].events = append(devs[d].events, ev)
+			res.Events++
+		}
+		for d := range devs {
+			sort.SliceStable(devs[d].events, func(i, j int) bool { return devs[d].events[i].Start < devs[d].events[j].Start })
+		}
+	}
+	scored := make([]bool, nc)
+	for _, name := range g.Reference.Conditions {
+		for c := range g.Base.Conditions {
+			if g.Base.Conditions[c].ConditionName() == name {
+				scored[c] = true
+			}
+		}
+	}
+
+	total := len(vars)*len(trends) + len(pts)
+	var done atomic.Int64
+	stopProgress := startProgress(opt.Progress, &done, total)
+	defer stopProgress()
+
+	// Phase 1: the engine over every (variant, device).
+	res.spans = make([][][]span, len(vars))
+	for v := range res.spans {
+		res.spans[v] = make([][]span, len(trends))
+	}
+	engines := make([][]*alarms.Engine, workers)
+	for w := range engines {
+		engines[w] = make([]*alarms.Engine, len(vars))
+	}
+	err = parallel(ctx, workers, len(vars)*len(trends), func(w, job int) error {
+		v, d := job/len(trends), job%len(trends)
+		e := engines[w][v]
+		if e == nil {
+			var err error
+			if e, err = alarms.NewEngine(vars[v].profile, ""); err != nil {
+				return fmt.Errorf("condition %s: %w", vars[v].profile.Conditions[0].ConditionName(), err)
+			}
+			engines[w][v] = e
+		}
+		c := int32(vars[v].cond)
+		prio0 := vars[v].profile.Conditions[0].Priority
+		var out []span
+		e.Run(trends[d].Samples, func(ep alarms.Episode) {
+			out = append(out, span{cond: c, prio0: prio0, prio: ep.Priority, onset: ep.OnsetS,
+				ann: ep.AnnouncedS, esc: ep.EscalatedS, end: ep.EndedS})
+		})
+		res.spans[v][d] = out
+		done.Add(1)
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+
+	// Phase 2: score every grid point.
+	scratch := make([]scorer, workers)
+	err = parallel(ctx, workers, len(pts), func(w, i int) error {
+		res.Rows[i] = scratch[w].score(res, devs, i, scored, g.Reference.Grace.Seconds())
+		done.Add(1)
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	markPareto(res.Rows)
+	return res, nil
+}
+
+// startProgress reports done/total to fn from one goroutine a few times a
+// second until the returned stop is called, which waits for it and reports
+// the final count.
+func startProgress(fn func(done, total int), done *atomic.Int64, total int) (stop func()) {
+	if fn == nil {
+		return func() {}
+	}
+	fn(0, total)
+	quit := make(chan struct{})
+	var wg sync.WaitGroup
+	wg.Go(func() {
+		t := time.NewTicker(250 * time.Millisecond)
+		defer t.Stop()
+		last := 0
+		for {
+			select {
+			case <-quit:
+				return
+			case <-t.C:
+				if n := int(done.Load()); n != last {
+					last = n
+					fn(n, total)
+				}
+			}
+		}
+	})
+	return func() {
+		close(quit)
+		wg.Wait()
+		fn(int(done.Load()), total)
+	}
+}
+
+// parallel runs fn(worker, job) for jobs 0..n-1 on workers goroutines,
+// taking jobs in order. It returns the first error (or ctx's), after every
+// goroutine has returned.
+func parallel(ctx context.Context, workers, n int, fn func(w, job int) error) error {
+	var next atomic.Int64
+	var wg sync.WaitGroup
+	var once sync.Once
+	var first error
+	ctx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	for w := range min(workers, max(n, 1)) {
+		wg.Go(func() {
+			for ctx.Err() == nil {
+				j := int(next.Add(1) - 1)
+				if j >= n {
+					return
+				}
+				if err := fn(w, j); err != nil {
+					once.Do(func() { first = err; cancel() })
+					return
+				}
+			}
+		})
+	}
+	wg.Wait()
+	if first != nil {
+		return first
+	}
+	return context.Cause(ctx)
+}
+
+// segments returns the monitored segments of a trend (gaps over maxGap
+// split them) and the last sample time.
+func segments(s []alarms.Sample, maxGap float64) ([][2]float64, float64) {
+	if len(s) == 0 {
+		return nil, math.NaN()
+	}
+	var segs [][2]float64
+	start, prev := s[0].T, s[0].T
+	for i := 1; i < len(s); i++ {
+		t := s[i].T
+		if t-prev > maxGap {
+			if prev > start {
+				segs = append(segs, [2]float64{start, prev})
+			}
+			start = t
+		}
+		prev = t
+	}
+	if prev > start {
+		segs = append(segs, [2]float64{start, prev})
+	}
+	return segs, prev
+}
+
+// scorer holds one worker's buffers for scoring grid points.
+type scorer struct {
+	eps    []span
+	ivs    [4][][2]float64 // [0] any priority, [1..3] by priority
+	durs   [4][]float64
+	delays []float64
+	sc     []*span
+	tp     []bool
+}
+
+func (s *scorer) score(res *Result, devs []devInfo, pt int, scored []bool, grace float64) Row {
+	var row Row
+	var alarmS [4]float64
+	for p := range s.durs {
+		s.durs[p] = s.durs[p][:0]
+	}
+	s.delays = s.delays[:0]
+	events := 0
+	for d := range devs {
+		di := &devs[d]
+		s.eps = s.eps[:0]
+		for _, v := range res.ptVar[pt] {
+			s.eps = append(s.eps, res.spans[v][d]...)
+		}
+		for p := range s.ivs {
+			s.ivs[p] = s.ivs[p][:0]
+		}
+		s.sc = s.sc[:0]
+		for i := range s.eps {
+			ep := &s.eps[i]
+			end := ep.end
+			if end != end {
+				end = di.last
+			}
+			row.Episodes++
+			row.ByPriority[ep.prio].Episodes++
+			s.durs[0] = append(s.durs[0], end-ep.ann)
+			s.durs[ep.prio] = append(s.durs[ep.prio], end-ep.ann)
+			s.ivs[0] = append(s.ivs[0], [2]float64{ep.ann, end})
+			if ep.esc == ep.esc && ep.esc < end {
+				s.ivs[ep.prio0] = append(s.ivs[ep.prio0], [2]float64{ep.ann, ep.esc})
+				s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.esc, end})
+			} else {
+				s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.ann, end})
+			}
+			if scored[ep.cond] {
+				s.sc = append(s.sc, ep)
+			}
+		}
+		for p := range s.ivs {
+			alarmS[p] += coveredTime(s.ivs[p], di.segs)
+		}
+		// Matching (package doc): events against the scored episodes.
+		row.ScoredEpisodes += len(s.sc)
+		events += len(di.events)
+		if cap(s.tp) < len(s.sc) {
+			s.tp = make([]bool, len(s.sc))
+		}
+		tp := s.tp[:len(s.sc)]
+		clear(tp)
+		for _, ev := range di.events {
+			first := math.Inf(1)
+			for k, ep := range s.sc {
+				endK := ep.end
+				if endK != endK {
+					endK = math.Inf(1)
+				}
+				if ep.ann <= ev.End+grace && endK >= ev.Start {
+					tp[k] = true
+					first = min(first, ep.ann)
+				}
+			}
+			if !math.IsInf(first, 1) {
+				row.EventsDetected++
+				s.delays = append(s.delays, max(0, first-ev.Start))
+			}
+		}
+		for _, b := range tp {
+			if b {
+				row.TruePositives++
+			}
+		}
+	}
+	days := res.MonitoredS / 86400
+	row.PerDeviceDay = ratio(float64(row.Episodes), days)
+	row.TimeInAlarmPct = 100 * ratio(alarmS[0], res.MonitoredS)
+	row.MedianEpisodeS = median(s.durs[0])
+	for p := alarms.PriorityLow; p <= alarms.PriorityHigh; p++ {
+		b := &row.ByPriority[p]
+		b.PerDeviceDay = ratio(float64(b.Episodes), days)
+		b.TimeInAlarmPct = 100 * ratio(alarmS[p], res.MonitoredS)
+		b.MedianEpisodeS = median(s.durs[p])
+	}
+	row.Sensitivity = ratio(float64(row.EventsDetected), float64(events))
+	row.PPV = ratio(float64(row.TruePositives), float64(row.ScoredEpisodes))
+	row.MedianDelayS = median(s.delays)
+	row.P90DelayS = quantile(0.9, s.delays)
+	return row
+}
+
+func ratio(a, b float64) float64 {
+	if b == 0 {
+		return math.NaN()
+	}
+	return a / b
+}
+
+// coveredTime is the length of the union of ivs within segs (both sorted
+// by start on return; ivs is sorted in place).
+func coveredTime(ivs, segs [][2]float64) float64 {
+	if len(ivs) == 0 {
+		return 0
+	}
+	slices.SortFunc(ivs, func(a, b [2]float64) int {
+		switch {
+		case a[0] < b[0]:
+			return -1
+		case a[0] > b[0]:
+			return 1
+		}
+		return 0
+	})
+	total := 0.0
+	k := 0
+	cur := ivs[0]
+	flush := func(iv [2]float64) {
+		for k < len(segs) && segs[k][1] <= iv[0] {
+			k++
+		}
+		for j := k; j < len(segs) && segs[j][0] < iv[1]; j++ {
+			lo, hi := max(iv[0], segs[j][0]), min(iv[1], segs[j][1])
+			if hi > lo {
+				total += hi - lo
+			}
+		}
+	}
+	for _, iv := range ivs[1:] {
+		if iv[0] <= cur[1] {
+			cur[1] = max(cur[1], iv[1])
+			continue
+		}
+		flush(cur)
+		cur = iv
+	}
+	flush(cur)
+	return total
+}
+
+// median of x (sorted in place); NaN when empty.
+func median(x []float64) float64 { return quantile(0.5, x) }
+
+// quantile of x by linear interpolation between order statistics (sorted
+// in place); NaN when empty.
+func quantile(p float64, x []float64) float64 {
+	if len(x) == 0 {
+		return math.NaN()
+	}
+	sort.Float64s(x)
+	if len(x) == 1 {
+		return x[0]
+	}
+	// Interpolate at (n-1)p, the usual convention (the median of an even
+	// count is the mean of the middle two).
+	h := p * float64(len(x)-1)
+	lo := math.Floor(h)
+	i := int(lo)
+	if i+1 >= len(x) {
+		return x[len(x)-1]
+	}
+	return x[i] + (h-lo)*(x[i+1]-x[i])
+}
+
+// markPareto marks the rows no other row dominates: fewer or equal alarms
+// per device-day with higher or equal sensitivity, one of them strictly.
+// Without events (NaN sensitivity), only the lowest burden is marked.
+func markPareto(rows []Row) {
+	sens := func(r *Row) float64 {
+		if r.Sensitivity != r.Sensitivity {
+			return 0
+		}
+		return r.Sensitivity
+	}
+	for i := range rows {
+		a := &rows[i]
+		if a.PerDeviceDay != a.PerDeviceDay {
+			continue
+		}
+		dominated := false
+		for j := range rows {
+			b := &rows[j]
+			if i == j || b.PerDeviceDay != b.PerDeviceDay {
+				continue
+			}
+			if b.PerDeviceDay <= a.PerDeviceDay && sens(b) >= sens(a) &&
+				(b.PerDeviceDay < a.PerDeviceDay || sens(b) > sens(a)) {
+				dominated = true
+				break
+			}
+		}
+		a.Pareto = !dominated
+	}
+}
