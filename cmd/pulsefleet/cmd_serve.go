@@ -1,0 +1,261 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"os"
+	"path/filepath"
+	"strings"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"go.yaml.in/yaml/v3"
+
+	"github.com/pulsefleet/pulsefleet/gateway"
+	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/store"
+)
+
+// notCertified is printed at start-up and shown on the web page.
+const notCertified = "CAUTION: pulsefleet is a research and engineering tool, NOT a certified medical alarm or medical device.\n" +
+	"Do not rely on it for patient care. Follow local regulations, your ethics approval and licensed clinical practice."
+
+// serveConfig is everything `serve` needs; the YAML keys of --config are the
+// flag names with '-' written as '_'.
+type serveConfig struct {
+	Data         string        `yaml:"data"`
+	GRPCListen   string        `yaml:"grpc_listen"`
+	HTTPListen   string        `yaml:"http_listen"`
+	Profile      string        `yaml:"profile"`
+	CaptureRaw   bool          `yaml:"capture_raw"`
+	TrendDays    int           `yaml:"trend_days"`
+	RawDays      int           `yaml:"raw_days"`
+	LedgerDays   int           `yaml:"ledger_days"`
+	BatchDelay   time.Duration `yaml:"batch_delay"`
+	Insecure     bool          `yaml:"insecure"`
+	TLSCert      string        `yaml:"tls_cert"`
+	TLSKey       string        `yaml:"tls_key"`
+	ClientCA     string        `yaml:"client_ca"`
+	LogLevel     string        `yaml:"log_level"`
+	RequireToken bool          `yaml:"require_tokens"`
+	Peers        []string      `yaml:"peers"`
+	Self         string        `yaml:"self"`
+}
+
+const (
+	defaultGRPCListen = "127.0.0.1:7400"
+	defaultHTTPListen = "127.0.0.1:7401"
+)
+
+func defaultDataDir() string {
+	if d := os.Getenv("XDG_DATA_HOME"); d != "" {
+		return filepath.Join(d, "pulsefleet")
+	}
+	if h, err := os.UserHomeDir(); err == nil {
+		return filepath.Join(h, ".local", "share", "pulsefleet")
+	}
+	return "pulsefleet-data"
+}
+
+func (c *serveConfig) flags(fs *flag.FlagSet) {
+	fs.StringVar(&c.Data, "data", c.Data, "data directory holding the store file (default "+defaultDataDir()+")")
+	fs.StringVar(&c.GRPCListen, "grpc-listen", c.GRPCListen, "gRPC listen address for devices and operators")
+	fs.StringVar(&c.HTTPListen, "http-listen", c.HTTPListen, "HTTP listen address for /metrics, /healthz, /readyz and the web page")
+	fs.StringVar(&c.Profile, "profile", c.Profile, "default alarm profile: a built-in name ("+strings.Join(profiles.Names(), ", ")+") or a YAML file; a profile set through the API takes precedence")
+	fs.BoolVar(&c.CaptureRaw, "capture-raw", c.CaptureRaw, "keep the raw samples of raw-mode devices (bounded by --raw-days)")
+	fs.IntVar(&c.TrendDays, "trend-days", c.TrendDays, "days of trend history to keep (0 = forever)")
+	fs.IntVar(&c.RawDays, "raw-days", c.RawDays, "days of raw captures to keep (0 = forever)")
+	fs.IntVar(&c.LedgerDays, "ledger-days", c.LedgerDays, "days of the ingest ledger to keep (0 = forever)")
+	fs.DurationVar(&c.BatchDelay, "batch-delay", c.BatchDelay, "longest a message waits before its store batch commits")
+	fs.BoolVar(&c.Insecure, "insecure", c.Insecure, "allow plaintext listeners on non-loopback addresses")
+	fs.StringVar(&c.TLSCert, "tls-cert", c.TLSCert, "TLS certificate file (PEM) for gRPC and HTTP")
+	fs.StringVar(&c.TLSKey, "tls-key", c.TLSKey, "TLS private key file (PEM)")
+	fs.StringVar(&c.ClientCA, "client-ca", c.ClientCA, "CA file (PEM): devices must present a certificate it signed")
+	fs.StringVar(&c.LogLevel, "log-level", c.LogLevel, "log level: debug, info, warn, error")
+}
+
+// loadServeConfig reads a YAML config file; unknown keys and bad values are
+// errors naming the key.
+func loadServeConfig(path string, into *serveConfig) error {
+	data, err := os.ReadFile(path)
+	if err != nil {
+		return fmt.Errorf("--config: %w", err)
+	}
+	dec := yaml.NewDecoder(bytes.NewReader(data))
+	dec.KnownFields(true)
+	if err := dec.Decode(into); err != nil && !errors.Is(err, io.EOF) {
+		return fmt.Errorf("config %s: %w", path, err)
+	}
+	return nil
+}
+
+func (c *serveConfig) validate() error {
+	for _, f := range []struct{ key, v string }{{"grpc-listen", c.GRPCListen}, {"http-listen", c.HTTPListen}} {
+		if _, _, err := net.SplitHostPort(f.v); err != nil {
+			return fmt.Errorf("%s: %q is not host:port: %v", f.key, f.v, err)
+		}
+	}
+	for _, f := range []struct {
+		key string
+		v   int
+	}{{"trend-days", c.TrendDays}, {"raw-days", c.RawDays}, {"ledger-days", c.LedgerDays}} {
+		if f.v < 0 || f.v > 36500 {
+			return fmt.Errorf("%s: %d, want 0..36500 (0 = forever)", f.key, f.v)
+		}
+	}
+	if c.BatchDelay < time.Millisecond || c.BatchDelay > 2*time.Second {
+		return fmt.Errorf("batch-delay: %v, want 1ms..2s", c.BatchDelay)
+	}
+	if (c.TLSCert == "") != (c.TLSKey == "") {
+		return fmt.Errorf("tls-cert, tls-key: give both or neither")
+	}
+	if c.ClientCA != "" && c.TLSCert == "" {
+		return fmt.Errorf("client-ca: needs --tls-cert and --tls-key")
+	}
+	if c.TLSCert == "" && !c.Insecure {
+		for _, f := range []struct{ key, v string }{{"grpc-listen", c.GRPCListen}, {"http-listen", c.HTTPListen}} {
+			if !isLoopback(f.v) {
+				return fmt.Errorf("%s: %q is not a loopback address; without TLS pulsefleet listens only on loopback unless --insecure is given", f.key, f.v)
+			}
+		}
+	}
+	switch c.LogLevel {
+	case "debug", "info", "warn", "error":
+	default:
+		return fmt.Errorf("log-level: %q, want debug, info, warn or error", c.LogLevel)
+	}
+	return nil
+}
+
+func isLoopback(addr string) bool {
+	host, _, err := net.SplitHostPort(addr)
+	if err != nil {
+		return false
+	}
+	if host == "localhost" {
+		return true
+	}
+	ip := net.ParseIP(host)
+	return ip != nil && ip.IsLoopback()
+}
+
+func defaultServeConfig() serveConfig {
+	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
+		Profile: "adult-ward-pilot", BatchDelay: 25 * time.Millisecond, LogLevel: "info", RawDays: 7}
+}
+
+// runningGateway describes a started gateway.
+type runningGateway struct {
+	GRPCAddr, HTTPAddr, DataDir string
+	Mode                        string // "plaintext (loopback only)", "TLS", "mutual TLS"
+	GW                          *gateway.Gateway
+}
+
+// startGateway opens the store, builds the gateway and starts serving; it
+// returns once the listeners are bound, and stop() shuts down gracefully and
+// closes the store. serve and demo share it.
+func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningGateway, func() error, error) {
+	level := map[string]slog.Level{"debug": slog.LevelDebug, "info": slog.LevelInfo, "warn": slog.LevelWarn, "error": slog.LevelError}[c.LogLevel]
+	log := slog.New(slog.NewTextHandler(logw, &slog.HandlerOptions{Level: level}))
+	prof, err := loadProfileArg(c.Profile)
+	if err != nil {
+		return nil, nil, fmt.Errorf("--profile: %w", err)
+	}
+	db, err := store.Open(c.Data, store.Options{})
+	if err != nil {
+		return nil, nil, err
+	}
+	reg := prometheus.NewRegistry()
+	if err := gateway.RegisterRuntime(reg); err != nil {
+		db.Close()
+		return nil, nil, err
+	}
+	opt := gateway.Options{Store: db, Registerer: reg, Logger: log, DefaultProfile: prof, CaptureRaw: c.CaptureRaw,
+		BatchDelay: c.BatchDelay, Retention: store.Retention{TrendDays: c.TrendDays, RawDays: c.RawDays, LedgerDays: c.LedgerDays}}
+	sec, err := securityOptions(c)
+	if err != nil {
+		db.Close()
+		return nil, nil, err
+	}
+	sec.apply(&opt)
+	gw, err := gateway.New(opt)
+	if err != nil {
+		db.Close()
+		return nil, nil, err
+	}
+	gl, err := net.Listen("tcp", c.GRPCListen)
+	if err != nil {
+		db.Close()
+		return nil, nil, fmt.Errorf("grpc-listen %s: %w", c.GRPCListen, err)
+	}
+	hl, err := net.Listen("tcp", c.HTTPListen)
+	if err != nil {
+		gl.Close()
+		db.Close()
+		return nil, nil, fmt.Errorf("http-listen %s: %w", c.HTTPListen, err)
+	}
+	hl = sec.wrapHTTP(hl)
+	sctx, cancel := context.WithCancel(context.WithoutCancel(ctx))
+	done := make(chan error, 1)
+	go func() { done <- gw.Serve(sctx, gl, hl) }()
+	rg := &runningGateway{GRPCAddr: gl.Addr().String(), HTTPAddr: hl.Addr().String(), DataDir: c.Data, Mode: sec.mode, GW: gw}
+	stop := func() error {
+		cancel()
+		err := <-done
+		if cerr := db.Close(); err == nil {
+			err = cerr
+		}
+		return err
+	}
+	return rg, stop, nil
+}
+
+func init() {
+	register(command{
+		name:    "serve",
+		summary: "Run the gateway: device ingest and fleet API over gRPC, metrics and the web page over HTTP.",
+		run:     runServe,
+	})
+}
+
+func runServe(ctx context.Context, args []string, s stdio) error {
+	c := defaultServeConfig()
+	fs := newFlagSet("serve", "[--data DIR] [--grpc-listen ADDR] [--http-listen ADDR] [--config FILE] [flags]", s.err)
+	configPath := fs.String("config", "", "YAML config file; its keys are the flag names with _ for -; flags given on the command line override it")
+	c.flags(fs)
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	if *configPath != "" {
+		// Re-apply: file first, then the flags that were set explicitly.
+		fromFile := defaultServeConfig()
+		if err := loadServeConfig(*configPath, &fromFile); err != nil {
+			return err
+		}
+		fs2 := flag.NewFlagSet("serve", flag.ContinueOnError)
+		fs2.SetOutput(io.Discard)
+		fs2.String("config", "", "")
+		fromFile.flags(fs2)
+		fs.Visit(func(f *flag.Flag) { _ = fs2.Set(f.Name, f.Value.String()) })
+		c = fromFile
+	}
+	if err := c.validate(); err != nil {
+		return usageError{err.Error()}
+	}
+	fmt.Fprintln(s.err, notCertified)
+	rg, stop, err := startGateway(ctx, c, s.err)
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(s.out, "pulsefleet serving (%s)\n  data:    %s\n  gRPC:    %s\n  web:     http://%s/\n  metrics: http://%s/metrics\n",
+		rg.Mode, filepath.Join(rg.DataDir, store.FileName), rg.GRPCAddr, rg.HTTPAddr, rg.HTTPAddr)
+	<-ctx.Done()
+	fmt.Fprintln(s.err, "pulsefleet: shutting down (flushing the store)...")
+	return stop()
+}

@@ -1,0 +1,36 @@
+package gateway
+
+import (
+	"fmt"
+	"net/http"
+
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+)
+
+// httpHandler serves /metrics, /healthz, /readyz and, when the web page is
+// built in, the page and its JSON.
+func (g *Gateway) httpHandler() http.Handler {
+	mux := http.NewServeMux()
+	mux.Handle("GET /metrics", promhttp.HandlerFor(g.opt.Gatherer, promhttp.HandlerOpts{ErrorLog: nil, Registry: g.opt.Registerer}))
+	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
+		w.Header().Set("Content-Type", "text/plain; charset=utf-8")
+		fmt.Fprintln(w, "ok")
+	})
+	mux.HandleFunc("GET /readyz", func(w http.ResponseWriter, r *http.Request) {
+		w.Header().Set("Content-Type", "text/plain; charset=utf-8")
+		if !g.ready.Load() {
+			w.WriteHeader(http.StatusServiceUnavailable)
+			if e := g.failed.Load(); e != nil {
+				fmt.Fprintf(w, "not ready: store write failed: %v\n", *e)
+				return
+			}
+			fmt.Fprintln(w, "not ready")
+			return
+		}
+		fmt.Fprintln(w, "ready")
+	})
+	if g.httpRoutes != nil {
+		g.httpRoutes(mux)
+	}
+	return mux
+}

@@ -1,0 +1,638 @@
+package gateway
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"runtime/debug"
+	"strconv"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/peer"
+	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/estimator"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/store"
+)
+
+// Limits on a stream before it is introduced.
+const (
+	introTimeout          = 30 * time.Second
+	maxRejectsBeforeIntro = 100
+	sendQueue             = 64
+)
+
+// stream is one open Connect call of one device.
+type stream struct {
+	g      *Gateway
+	dev    *device
+	grpc   pb.IngestService_ConnectServer
+	cancel context.CancelCauseFunc
+	ended  chan struct{} // closed when the handler has returned
+	remote string
+	id     string
+
+	acked  atomic.Uint64
+	wake   chan struct{} // cap 1: the sender has an ack to send
+	out    chan *pb.ConnectResponse
+	drops  atomic.Uint64
+	mode   pb.Mode
+	adc    uint32
+	redNM  float64
+	irNM   float64
+	calRef string
+	cal    estimator.Calibration
+
+	// raw pipeline (owned by the handler goroutine)
+	est         *estimator.Stream
+	estRate     float64
+	estT0MS     int64   // device time of the estimator's sample 0
+	nextMS      float64 // expected device time of the next chunk's first sample
+	samplesIn   int64   // samples since the estimator's (re)start
+	red, ir, am []float64
+	estOut      []estimator.Estimate
+	events      []alarms.Event
+}
+
+// ackThrough records that everything up to seq is durable and wakes the sender.
+func (s *stream) ackThrough(seq uint64) {
+	for {
+		old := s.acked.Load()
+		if seq <= old || s.acked.CompareAndSwap(old, seq) {
+			break
+		}
+	}
+	select {
+	case s.wake <- struct{}{}:
+	default:
+	}
+}
+
+// send queues a message for the device; when the queue is full it is dropped
+// (counted): a device that does not read its stream cannot make the gateway
+// hold memory for it.
+func (s *stream) send(m *pb.ConnectResponse) {
+	select {
+	case s.out <- m:
+	default:
+		s.drops.Add(1)
+	}
+}
+
+func (s *stream) rejectMsg(r *pb.Rejection) {
+	s.g.m.rejected.WithLabelValues(reasonLabel(r.Reason)).Inc()
+	s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Rejection{Rejection: r}})
+}
+
+func reasonLabel(r pb.RejectReason) string {
+	switch r {
+	case pb.RejectReason_REJECT_REASON_INVALID_FIELD:
+		return "invalid_field"
+	case pb.RejectReason_REJECT_REASON_NOT_INTRODUCED:
+		return "not_introduced"
+	case pb.RejectReason_REJECT_REASON_STALE_SEQUENCE:
+		return "stale_sequence"
+	case pb.RejectReason_REJECT_REASON_TOO_LARGE:
+		return "too_large"
+	case pb.RejectReason_REJECT_REASON_RATE_LIMITED:
+		return "rate_limited"
+	case pb.RejectReason_REJECT_REASON_WRONG_MODE:
+		return "wrong_mode"
+	}
+	return "other"
+}
+
+// sender owns grpc.Send for the stream's lifetime.
+func (s *stream) sender(ctx context.Context) error {
+	var sentAck uint64
+	for {
+		select {
+		case <-ctx.Done():
+			return nil
+		case m := <-s.out:
+			if err := s.grpc.Send(m); err != nil {
+				return err
+			}
+		case <-s.wake:
+			if a := s.acked.Load(); a > sentAck {
+				sentAck = a
+				if err := s.grpc.Send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Ack{Ack: &pb.Ack{ThroughSequence: a}}}); err != nil {
+					return err
+				}
+			}
+		}
+	}
+}
+
+// Connect implements IngestService.
+func (g *Gateway) Connect(gs pb.IngestService_ConnectServer) (err error) {
+	ctx, cancel := context.WithCancelCause(gs.Context())
+	defer cancel(nil)
+	s := &stream{g: g, grpc: gs, cancel: cancel, ended: make(chan struct{}),
+		wake: make(chan struct{}, 1), out: make(chan *pb.ConnectResponse, sendQueue)}
+	defer close(s.ended)
+	if p, ok := peer.FromContext(ctx); ok {
+		s.remote = p.Addr.String()
+	}
+	defer func() {
+		if p := recover(); p != nil {
+			g.m.panics.Inc()
+			g.log.Error("panic in device stream", "device", s.devID(), "panic", p, "stack", string(debug.Stack()))
+			err = status.Errorf(codes.Internal, "internal error in this stream (recovered; the gateway goes on)")
+		}
+	}()
+
+	var wg sync.WaitGroup
+	senderErr := make(chan error, 1)
+	wg.Add(1)
+	go func() {
+		defer wg.Done()
+		if err := s.sender(ctx); err != nil {
+			senderErr <- err
+			cancel(err)
+		}
+	}()
+	defer func() {
+		cancel(nil)
+		wg.Wait()
+	}()
+
+	if err := s.introduce(ctx); err != nil {
+		return err
+	}
+	defer s.finish(ctx)
+	return s.loop(ctx)
+}
+
+func (s *stream) devID() string {
+	if s.dev == nil {
+		return ""
+	}
+	return s.dev.id
+}
+
+// recv receives one message, with the stream's context.
+func (s *stream) recv() (*pb.ConnectRequest, error) {
+	m, err := s.grpc.Recv()
+	if err != nil {
+		return nil, err
+	}
+	return m, nil
+}
+
+// introduce waits for a valid introduction, rejecting anything else.
+func (s *stream) introduce(ctx context.Context) error {
+	g := s.g
+	timer := time.AfterFunc(introTimeout, func() { s.cancel(errors.New("no introduction")) })
+	defer timer.Stop()
+	rejects := 0
+	for {
+		m, err := s.recv()
+		if err != nil {
+			if c := context.Cause(ctx); c != nil && c.Error() == "no introduction" {
+				return status.Errorf(codes.DeadlineExceeded, "introduction: none within %v of connecting", introTimeout)
+			}
+			return err
+		}
+		in := m.GetIntroduction()
+		var rej *pb.Rejection
+		switch {
+		case in == nil:
+			rej = reject(seqOf(m), pb.RejectReason_REJECT_REASON_NOT_INTRODUCED, "introduction", "the first message must be an introduction")
+		case proto.Size(m) > g.opt.MaxMessageBytes:
+			rej = reject(0, pb.RejectReason_REJECT_REASON_TOO_LARGE, "introduction", "%d bytes, want at most %d", proto.Size(m), g.opt.MaxMessageBytes)
+		default:
+			rej = validateIntroduction(in)
+		}
+		if rej == nil {
+			if err := g.authorizeDevice(ctx, in.GetDeviceId(), s.remote); err != nil {
+				return err
+			}
+			return s.start(ctx, in)
+		}
+		s.rejectMsg(rej)
+		if rejects++; rejects >= maxRejectsBeforeIntro {
+			return status.Errorf(codes.InvalidArgument, "introduction: %d messages without a valid introduction; last: %s: %s", rejects, rej.Field, rej.Detail)
+		}
+	}
+}
+
+func seqOf(m *pb.ConnectRequest) uint64 {
+	switch k := m.Kind.(type) {
+	case *pb.ConnectRequest_RawChunk:
+		return k.RawChunk.GetSequence()
+	case *pb.ConnectRequest_Summary:
+		return k.Summary.GetSequence()
+	}
+	return 0
+}
+
+// start attaches the stream to its device, replacing an older stream, makes
+// the description and session durable, and welcomes the device.
+func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
+	g := s.g
+	if addr := g.ownerOf(in.GetDeviceId()); addr != "" {
+		s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Redirect{Redirect: &pb.Redirect{Address: addr, Detail: "device " + in.GetDeviceId() + " belongs to the gateway at " + addr}}})
+		// Give the sender a moment to deliver the redirect before the stream ends.
+		time.Sleep(50 * time.Millisecond)
+		return status.Errorf(codes.FailedPrecondition, "device %s belongs to the gateway at %s", in.GetDeviceId(), addr)
+	}
+	d, _ := g.devices.getOrCreate(in.GetDeviceId())
+	s.dev = d
+	s.mode, s.adc, s.redNM, s.irNM = in.GetMode(), in.GetAdcBits(), in.GetRedWavelengthNm(), in.GetIrWavelengthNm()
+
+	// Replace an older stream of the same device: cancel it and wait until its
+	// handler has returned, so only one stream ever feeds the device.
+	d.mu.Lock()
+	old := d.stream
+	d.mu.Unlock()
+	if old != nil {
+		old.cancel(errReplaced)
+		select {
+		case <-old.ended:
+		case <-ctx.Done():
+			return context.Cause(ctx)
+		case <-time.After(10 * time.Second):
+			return status.Errorf(codes.Unavailable, "device %s: the previous stream did not end; retry", d.id)
+		}
+		g.m.replaced.Inc()
+		g.audit(ctx, "device:"+d.id, "stream.replace", d.id, "a new stream replaced the open one from "+old.remote, s.remote)
+	}
+
+	if s.mode == pb.Mode_MODE_RAW {
+		calName := in.GetCalibrationId()
+		if calName == "" {
+			calName = g.assignedCalibration(d.id, in.GetModel())
+		}
+		cal, ref, err := g.opt.ResolveCalibration(calName, s.redNM, s.irNM)
+		if err != nil {
+			s.rejectMsg(invalid(0, "introduction.calibration_id", "%v", err))
+			return status.Errorf(codes.InvalidArgument, "introduction.calibration_id: %v", err)
+		}
+		s.cal, s.calRef = cal, ref
+	}
+
+	nowMS := g.nowMS()
+	d.mu.Lock()
+	d.stream = s
+	d.desc.Model, d.desc.Firmware, d.desc.Labels = in.GetModel(), in.GetFirmware(), in.GetLabels()
+	d.desc.Mode = map[pb.Mode]string{pb.Mode_MODE_RAW: "raw", pb.Mode_MODE_SUMMARY: "summary"}[s.mode]
+	d.desc.RedNM, d.desc.IRNM, d.desc.ADCBits, d.desc.Calibration = s.redNM, s.irNM, s.adc, s.calRef
+	if d.desc.FirstSeenMS == 0 {
+		d.desc.FirstSeenMS = nowMS
+	}
+	d.desc.LastSeenMS = nowMS
+	if d.desc.Sessions > 0 {
+		d.q.reconnects++
+	}
+	d.desc.Sessions++
+	d.q.sessions++
+	d.sessionMS = nowMS
+	d.q.rateSamples, d.q.lastChunk, d.q.firstDevMS = 0, 0, 0
+	desc := d.desc
+	g.ensureEngine(d)
+	var evs []alarms.Event
+	if d.engine != nil && d.engine.Offline() {
+		d.engine.SetOffline(false, d.deviceTimeS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
+	}
+	rec := &record{dev: d, desc: &desc, session: &store.Session{Device: d.id, StartMS: nowMS, Remote: s.remote, Mode: desc.Mode}}
+	g.alarmEffects(d, evs, rec)
+	d.mu.Unlock()
+	g.m.connected.Inc()
+
+	// A barrier: the description and everything queued before are durable,
+	// so the resume point below is what the store holds.
+	if err := g.w.sync(ctx, rec); err != nil {
+		return status.Errorf(codes.Unavailable, "store: %v", err)
+	}
+	d.mu.Lock()
+	resume := d.durableSeq
+	d.cur.LastSeq = resume // anything not durable is resent by the device
+	d.mu.Unlock()
+	s.id = d.id + "-" + strconv.FormatInt(nowMS, 36)
+	s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Welcome{Welcome: &pb.Welcome{
+		ResumeAfterSequence: resume, GatewayTimeUnixMs: nowMS, SessionId: s.id, Calibration: s.calRef,
+		Notice: "pulsefleet is a research and engineering tool, not a certified medical alarm.",
+	}}})
+	if g.opt.CaptureRaw && s.mode == pb.Mode_MODE_RAW {
+		s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Config{Config: &pb.ConfigPush{RawCapture: true}}})
+	}
+	g.publishDevice(d, "connected")
+	g.log.Info("device connected", "device", d.id, "mode", desc.Mode, "remote", s.remote, "resume_after", resume)
+	return nil
+}
+
+var errReplaced = errors.New("replaced by a newer stream of the same device")
+
+// loop receives and processes data messages until the stream ends.
+func (s *stream) loop(ctx context.Context) error {
+	for {
+		m, err := s.recv()
+		if err != nil {
+			if errors.Is(err, io.EOF) {
+				return nil
+			}
+			if c := context.Cause(ctx); errors.Is(c, errReplaced) {
+				return status.Error(codes.Aborted, errReplaced.Error())
+			}
+			if status.Code(err) == codes.Canceled && s.g.stopping.Load() {
+				return status.Error(codes.Unavailable, "gateway shutting down; reconnect")
+			}
+			return err
+		}
+		if err := s.handle(ctx, m); err != nil {
+			return err
+		}
+	}
+}
+
+// handle processes one message; an error ends the stream.
+func (s *stream) handle(ctx context.Context, m *pb.ConnectRequest) error {
+	g := s.g
+	nowMS := g.nowMS()
+	if n := proto.Size(m); n > g.opt.MaxMessageBytes {
+		s.countReject()
+		s.rejectMsg(reject(seqOf(m), pb.RejectReason_REJECT_REASON_TOO_LARGE, "message", "%d bytes, want at most %d", n, g.opt.MaxMessageBytes))
+		return nil
+	}
+	switch k := m.Kind.(type) {
+	case *pb.ConnectRequest_Introduction:
+		s.countReject()
+		s.rejectMsg(reject(0, pb.RejectReason_REJECT_REASON_NOT_INTRODUCED, "introduction", "already introduced as %s; open a new stream to change it", s.dev.id))
+	case *pb.ConnectRequest_Status:
+		if r := validateStatus(k.Status); r != nil {
+			s.countReject()
+			s.rejectMsg(r)
+			return nil
+		}
+		s.dev.mu.Lock()
+		s.dev.desc.BatteryPct = k.Status.GetBatteryPct()
+		s.dev.mu.Unlock()
+	case *pb.ConnectRequest_Summary:
+		if s.mode != pb.Mode_MODE_SUMMARY {
+			s.countReject()
+			s.rejectMsg(reject(k.Summary.GetSequence(), pb.RejectReason_REJECT_REASON_WRONG_MODE, "summary", "device introduced itself in raw mode"))
+			return nil
+		}
+		if r := validateSummary(k.Summary, nowMS); r != nil {
+			s.countReject()
+			s.rejectMsg(r)
+			return nil
+		}
+		return s.accept(ctx, k.Summary.GetSequence(), k.Summary.GetDeviceTimeUnixMs(), 0, nowMS, func(rec *record) {
+			sm := k.Summary
+			p := store.Point{Device: s.dev.id, TimeMS: sm.GetDeviceTimeUnixMs(), SpO2: val(sm.Spo2Pct), Pulse: val(sm.PulseBpm),
+				PI: val(sm.PiPct), SQI: val(sm.Quality), Ratio: math.NaN(), Source: uint8(pb.Source_SOURCE_DEVICE)}
+			rec.points = append(rec.points, p)
+		})
+	case *pb.ConnectRequest_RawChunk:
+		c := k.RawChunk
+		if s.mode != pb.Mode_MODE_RAW {
+			s.countReject()
+			s.rejectMsg(reject(c.GetSequence(), pb.RejectReason_REJECT_REASON_WRONG_MODE, "raw_chunk", "device introduced itself in summary mode"))
+			return nil
+		}
+		if r := validateRaw(c, s.adc, g.opt.MaxChunkSamples, nowMS); r != nil {
+			s.countReject()
+			s.rejectMsg(r)
+			return nil
+		}
+		return s.accept(ctx, c.GetSequence(), c.GetDeviceTimeUnixMs(), uint32(len(c.GetRed())), nowMS, func(rec *record) {
+			s.estimate(c, rec)
+			if g.opt.CaptureRaw {
+				rec.raw = &store.RawCapture{Device: s.dev.id, Seq: c.GetSequence(), DeviceTimeMS: c.GetDeviceTimeUnixMs(),
+					RateHz: c.GetSampleRateHz(), Red: c.GetRed(), IR: c.GetIr(), Ambient: c.GetAmbient()}
+			}
+		})
+	default:
+		s.countReject()
+		s.rejectMsg(invalid(0, "kind", "empty message, want introduction, raw_chunk, summary or status"))
+	}
+	return nil
+}
+
+func val(p *float64) float64 {
+	if p == nil {
+		return math.NaN()
+	}
+	return *p
+}
+
+func (s *stream) countReject() {
+	s.dev.mu.Lock()
+	s.dev.cur.Rejected++
+	s.dev.mu.Unlock()
+}
+
+// accept applies the sequence rules to a valid data message, lets fill add
+// its effects, runs the alarm engine over new points, and queues the record.
+func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples uint32, nowMS int64, fill func(*record)) error {
+	g, d := s.g, s.dev
+	d.mu.Lock()
+	last := d.cur.LastSeq
+	if seq <= last {
+		d.cur.Duplicates++
+		d.mu.Unlock()
+		g.m.duplicates.Inc()
+		s.rejectMsg(reject(seq, pb.RejectReason_REJECT_REASON_STALE_SEQUENCE, "sequence",
+			"%d is not above %d, the last accepted; it is already held (never stored twice)", seq, last))
+		return nil
+	}
+	gap := seq - last - 1
+	if last == 0 && d.durableSeq == 0 && d.cur.Chunks == 0 {
+		gap = 0 // a device's first message may start anywhere
+	}
+	d.cur.Lost += gap
+	d.cur.LastSeq = seq
+	d.cur.Chunks++
+	d.cur.Samples += uint64(samples)
+	d.cur.LastSeenMS = nowMS
+	// Clock: offset of the device clock, smoothed; late if far behind.
+	off := float64(devMS - nowMS)
+	if !d.offsetOK {
+		d.offsetMS, d.offsetOK = off, true
+	} else {
+		d.offsetMS += (off - d.offsetMS) / 64
+	}
+	late := float64(nowMS)+d.offsetMS-float64(devMS) > float64(g.opt.LateAfter.Milliseconds())
+	if late {
+		d.cur.Late++
+	}
+	d.q.addClock(nowMS, devMS)
+	if samples > 0 {
+		if d.q.firstDevMS == 0 {
+			d.q.firstDevMS = devMS
+		}
+		d.q.rateSamples += uint64(samples)
+		d.q.lastDevMS = devMS
+		d.q.lastChunk = uint64(samples)
+	}
+	d.mu.Unlock()
+	if gap > 0 {
+		g.m.lost.Add(float64(gap))
+	}
+	if late {
+		g.m.late.Inc()
+	}
+
+	rec := &record{dev: d, stream: s, seq: seq, received: time.UnixMilli(nowMS),
+		chunk: &store.Chunk{Device: d.id, Seq: seq, DeviceTimeMS: devMS, ArrivalMS: nowMS, Samples: samples}}
+	if gap > 0 && s.est != nil {
+		s.est.Reset() // samples are missing: the estimator must not bridge them
+		s.est = nil
+	}
+	fill(rec)
+
+	d.mu.Lock()
+	var evs []alarms.Event
+	for i := range rec.points {
+		p := &rec.points[i]
+		d.q.addPoint(p)
+		if d.engine != nil {
+			d.engine.Eval(alarms.Sample{T: float64(p.TimeMS) / 1000, SpO2: p.SpO2, Pulse: p.Pulse, PI: p.PI, SQI: p.SQI},
+				func(e alarms.Event) { evs = append(evs, e) })
+		}
+	}
+	if n := len(rec.points); n > 0 {
+		d.latest = pointProto(&rec.points[n-1])
+	}
+	g.alarmEffects(d, evs, rec)
+	rec.cursor = d.cur
+	d.mu.Unlock()
+
+	mode := "raw"
+	if samples == 0 {
+		mode = "summary"
+	}
+	g.m.messages.WithLabelValues(mode).Inc()
+	g.m.samples.Add(float64(samples))
+	for i := range rec.points {
+		g.m.trendPoints.WithLabelValues(sourceLabel(rec.points[i].Source)).Inc()
+		if g.hub.hasWatchers() {
+			g.hub.publish(d.id, &pb.WatchEventsResponse{Event: &pb.WatchEventsResponse_TrendPoint{TrendPoint: pointProto(&rec.points[i])}})
+		}
+	}
+	if err := g.w.submit(ctx, rec); err != nil {
+		return status.Errorf(codes.Unavailable, "store: %v", err)
+	}
+	return nil
+}
+
+func sourceLabel(s uint8) string {
+	if s == uint8(pb.Source_SOURCE_DEVICE) {
+		return "device"
+	}
+	return "gateway"
+}
+
+// estimate runs the estimator over a raw chunk and adds one trend point per
+// completed second to rec.
+func (s *stream) estimate(c *pb.RawChunk, rec *record) {
+	g := s.g
+	n := len(c.GetRed())
+	rate := c.GetSampleRateHz()
+	t0 := c.GetDeviceTimeUnixMs()
+	// Restart the estimator on a new rate or a jump in device time of more
+	// than a second against the samples' own timing.
+	if s.est == nil || rate != s.estRate || math.Abs(float64(t0)-s.nextMS) > 1000 {
+		if s.est == nil || rate != s.estRate {
+			e, err := estimator.New(estimator.Config{SampleRateHz: rate, ADCBits: int(s.adc), Calibration: s.cal})
+			if err != nil {
+				g.log.Warn("estimator", "device", s.dev.id, "err", err)
+				return
+			}
+			s.est, s.estRate = e, rate
+		} else {
+			s.est.Reset()
+		}
+		s.estT0MS, s.samplesIn = t0, 0
+	}
+	if cap(s.red) < n {
+		s.red, s.ir, s.am = make([]float64, n), make([]float64, n), make([]float64, n)
+	}
+	red, ir := s.red[:n], s.ir[:n]
+	for i, v := range c.GetRed() {
+		red[i] = float64(v)
+	}
+	for i, v := range c.GetIr() {
+		ir[i] = float64(v)
+	}
+	var am []float64
+	if a := c.GetAmbient(); len(a) == n {
+		am = s.am[:n]
+		for i, v := range a {
+			am[i] = float64(v)
+		}
+	}
+	s.estOut = s.est.Push(red, ir, am, s.estOut[:0])
+	s.samplesIn += int64(n)
+	s.nextMS = float64(t0) + float64(n)*1000/rate
+	for _, e := range s.estOut {
+		p := store.Point{Device: s.dev.id, TimeMS: s.estT0MS + (e.Second+1)*1000, SpO2: e.SpO2Pct, Pulse: e.PulseBPM,
+			PI: e.PIPct, SQI: e.SQI, Ratio: e.Ratio, Flags: uint16(e.Flags), Source: uint8(pb.Source_SOURCE_GATEWAY)}
+		rec.points = append(rec.points, p)
+		if math.IsNaN(e.SpO2Pct) {
+			g.m.estimatorSeconds.WithLabelValues("withheld").Inc()
+		} else {
+			g.m.estimatorSeconds.WithLabelValues("valid").Inc()
+		}
+		for _, f := range flagNames {
+			if e.Flags.Has(f.flag) {
+				g.m.estimatorFlags.WithLabelValues(f.name).Inc()
+			}
+		}
+	}
+}
+
+var flagNames = []struct {
+	flag estimator.Flags
+	name string
+}{{estimator.FlagNoPulse, "no_pulse"}, {estimator.FlagSensorOff, "sensor_off"}, {estimator.FlagClipping, "clipping"},
+	{estimator.FlagMotion, "motion"}, {estimator.FlagLowResolution, "low_resolution"}}
+
+// finish ends the session: the device goes offline for its alarm engine and
+// the session's end is stored.
+func (s *stream) finish(ctx context.Context) {
+	g, d := s.g, s.dev
+	nowMS := g.nowMS()
+	d.mu.Lock()
+	replaced := d.stream != s
+	if !replaced {
+		d.stream = nil
+	}
+	var evs []alarms.Event
+	if !replaced && d.engine != nil {
+		t := math.Max(d.deviceTimeS(nowMS), d.engine.LastT())
+		d.engine.SetOffline(true, t, func(e alarms.Event) { evs = append(evs, e) })
+	}
+	reason := "closed"
+	if c := context.Cause(ctx); c != nil && !errors.Is(c, context.Canceled) {
+		reason = c.Error()
+	}
+	desc := d.desc
+	desc.LastSeenMS = nowMS
+	rec := &record{dev: d, desc: &desc, session: &store.Session{Device: d.id, StartMS: d.sessionMS, EndMS: nowMS, Remote: s.remote, Reason: reason, Mode: desc.Mode}}
+	g.alarmEffects(d, evs, rec)
+	d.mu.Unlock()
+	g.m.connected.Dec()
+	g.m.streams.WithLabelValues(map[bool]string{true: "replaced", false: "ended"}[replaced]).Inc()
+	// Best effort: the writer may be closing during shutdown, in which case
+	// the session stays open in the store and is closed at the next start.
+	_ = g.w.submit(context.WithoutCancel(ctx), rec)
+	if !replaced {
+		g.publishDevice(d, "disconnected")
+	}
+	g.log.Info("device disconnected", "device", d.id, "reason", reason, "dropped_sends", s.drops.Load())
+}
+
+func (g *Gateway) nowMS() int64 { return g.opt.Now().UnixMilli() }
+
+var _ = fmt.Sprintf
