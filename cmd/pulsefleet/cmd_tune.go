@@ -1,0 +1,265 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"io"
+	"os"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/tune"
+)
+
+const tuneSummary = `Sweep a grid of alarm profiles over recorded history and score each one.
+
+The grid file (--grid) names a base profile, the swept keys and the reference:
+
+  base: adult-ward-pilot.yaml      # profile file (relative to the grid file), built-in name, or inline
+  sweep:                           # CONDITION.KEY -> values; the grid is their cross product
+    spo2_low.limit: [86, 88, 90]
+    spo2_low.delay: [0s, 10s, 15s, 30s]
+    spo2_low.hysteresis: [0, 1, 2]
+    spo2_low.escalate.below: [80, 85]
+  reference:                       # what counts as a real event
+    rule: {below: 85, for: 60s}    # or: file: events.csv (device,start_s,end_s,label)
+    grace: 60s                     # optional
+    conditions: [spo2_low]         # optional, the conditions scored (default: spo2_low ones)
+
+History comes from a store (--data DIR, opened read-only; stop the gateway
+first, bbolt locks the file) or a trend CSV (--in, "-" for stdin:
+t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi). Averaging times (re-running the
+estimator over raw captures) are not supported yet.
+
+Writes into --out: summary.csv (one row per profile), frontier.svg (alarms
+per device-day against sensitivity, Pareto-optimal profiles marked),
+report.html (self-contained) and profiles/NAME.yaml (each grid point, for
+'pulsefleet replay --profile'). Episodes are counted exactly as 'replay'
+counts them, by the same alarm engine.
+
+Matching: an event is detected when a scored episode of the same device is
+in alarm at some time between the event's start and its end + grace; an
+episode is a true positive when its alarm span meets an event (+ grace).
+Sensitivity = detected / events; PPV = true-positive / scored episodes.
+
+Research tool, not a certified medical device: alarm settings are the
+clinical team's decision.`
+
+// tuneOptions are the flags of `pulsefleet tune`.
+type tuneOptions struct {
+	grid, data, in, out string
+	devices             []string
+	from, to            string
+	workers             int
+	maxGap              time.Duration
+}
+
+func init() {
+	register(command{
+		name:    "tune",
+		summary: tuneSummary,
+		run: func(ctx context.Context, args []string, s stdio) error {
+			var o tuneOptions
+			fs := newFlagSet("tune", "--grid FILE (--data DIR | --in TREND.csv) --out DIR [--device ID,...] [--from T] [--to T]", s.err)
+			fs.StringVar(&o.grid, "grid", "", "tuning grid file (required)")
+			fs.StringVar(&o.data, "data", "", "data directory of a store to read trend history from (read-only)")
+			fs.StringVar(&o.in, "in", "", "trend CSV file, - for stdin (instead of --data)")
+			fs.StringVar(&o.out, "out", "", "output directory (required; created)")
+			fs.Func("device", "only these devices (comma-separated; repeatable)", func(v string) error {
+				for _, d := range strings.Split(v, ",") {
+					if d = strings.TrimSpace(d); d != "" {
+						o.devices = append(o.devices, d)
+					}
+				}
+				return nil
+			})
+			fs.StringVar(&o.from, "from", "", "only samples at or after T: seconds on the trend clock (Unix seconds for --data) or RFC 3339")
+			fs.StringVar(&o.to, "to", "", "only samples before T (as --from)")
+			fs.IntVar(&o.workers, "workers", 0, "worker goroutines; 0 = GOMAXPROCS")
+			fs.DurationVar(&o.maxGap, "max-gap", tune.DefaultMaxGap, "longest sample interval counted as monitored time")
+			if err := parseFlags(fs, args); err != nil {
+				return err
+			}
+			switch {
+			case o.grid == "":
+				return usagef("--grid is required")
+			case o.out == "":
+				return usagef("--out is required")
+			case o.data == "" && o.in == "":
+				return usagef("give --data DIR or --in TREND.csv")
+			case o.data != "" && o.in != "":
+				return usagef("--data and --in both given, want one")
+			case o.workers < 0:
+				return usagef("--workers %d, want >= 0", o.workers)
+			case o.maxGap <= 0:
+				return usagef("--max-gap %v, want > 0", o.maxGap)
+			}
+			var f tune.Filter
+			f.Devices = o.devices
+			var err error
+			if o.from != "" {
+				if f.From, err = parseTuneTime(o.from); err != nil {
+					return usagef("--from: %v", err)
+				}
+				f.HasFrom = true
+			}
+			if o.to != "" {
+				if f.To, err = parseTuneTime(o.to); err != nil {
+					return usagef("--to: %v", err)
+				}
+				f.HasTo = true
+			}
+			if f.HasFrom && f.HasTo && !(f.To > f.From) {
+				return usagef("--to %s, want after --from %s", o.to, o.from)
+			}
+			return runTune(ctx, o, f, args, s)
+		},
+	})
+}
+
+// parseTuneTime reads seconds on the trend clock or an RFC 3339 time (as
+// Unix seconds).
+func parseTuneTime(v string) (float64, error) {
+	if f, err := strconv.ParseFloat(v, 64); err == nil {
+		if f != f || f-f != 0 {
+			return 0, fmt.Errorf("%q, want a finite number of seconds", v)
+		}
+		return f, nil
+	}
+	t, err := time.Parse(time.RFC3339, v)
+	if err != nil {
+		return 0, fmt.Errorf("%q, want seconds or an RFC 3339 time like 2026-11-20T08:00:00Z", v)
+	}
+	return float64(t.UnixMilli()) / 1000, nil
+}
+
+func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s stdio) error {
+	g, err := tune.LoadGrid(o.grid)
+	if err != nil {
+		return err
+	}
+	var trends []alarms.Trend
+	source := ""
+	if o.data != "" {
+		source = "store " + o.data
+		if trends, err = tune.LoadStore(o.data, f); err != nil {
+			return err
+		}
+	} else {
+		source = o.in
+		var in io.Reader = s.in
+		if o.in != "-" {
+			fh, err := os.Open(o.in)
+			if err != nil {
+				return fmt.Errorf("open trend: %w", err)
+			}
+			defer fh.Close()
+			in = fh
+		}
+		all, err := alarms.ReadTrendCSV(in)
+		if err != nil {
+			return fmt.Errorf("%s: %w", o.in, err)
+		}
+		if trends, err = tune.FilterTrends(all, f); err != nil {
+			return err
+		}
+	}
+	if len(trends) == 0 {
+		return fmt.Errorf("no trend samples in %s%s", source, tuneFilterNote(f))
+	}
+	prog := newTuneProgress(s.err)
+	res, err := tune.Run(ctx, g, trends, tune.Options{Workers: o.workers, MaxGap: o.maxGap, Progress: prog.update})
+	prog.finish()
+	if err != nil {
+		return err
+	}
+	info := tune.ReportInfo{Source: source, Filters: f.String(), Command: "pulsefleet tune " + strings.Join(args, " ")}
+	if err := tune.WriteOutputs(o.out, res, info); err != nil {
+		return err
+	}
+	fmt.Fprintf(s.out, "tune: %d profiles over %d devices, %.1f monitored hours, %d reference events (%s)\n",
+		len(res.Points), res.Devices, res.MonitoredS/3600, res.Events, source)
+	fmt.Fprintf(s.out, "best profiles (fewest alarms first, Pareto-optimal):\n")
+	for k, i := range tune.BestRows(res) {
+		if k == 5 {
+			fmt.Fprintf(s.out, "  ... see %s/report.html\n", o.out)
+			break
+		}
+		r := res.Rows[i]
+		fmt.Fprintf(s.out, "  %-28s %6.2f alarms/device-day  sensitivity %s  ppv %s  (%s)\n", res.Points[i].Name,
+			r.PerDeviceDay, tunePct(r.Sensitivity), tunePct(r.PPV), tuneDescribeValues(res, i))
+	}
+	fmt.Fprintf(s.out, "wrote %s/summary.csv, frontier.svg, report.html, profiles/\n", o.out)
+	fmt.Fprintln(s.out, tune.Caution)
+	return nil
+}
+
+func tuneFilterNote(f tune.Filter) string {
+	if d := f.String(); d != "" {
+		return " (" + d + ")"
+	}
+	return ""
+}
+
+func tunePct(f float64) string {
+	if f != f {
+		return "  n/a"
+	}
+	return fmt.Sprintf("%4.0f%%", 100*f)
+}
+
+func tuneDescribeValues(res *tune.Result, i int) string {
+	var parts []string
+	for k, sw := range res.Grid.Sweep {
+		parts = append(parts, sw.Key+"="+res.Points[i].Values[k])
+	}
+	return strings.Join(parts, " ")
+}
+
+// tuneProgress draws a bar on a terminal, or prints a plain line every 25 %
+// otherwise.
+type tuneProgress struct {
+	w      io.Writer
+	tty    bool
+	start  time.Time
+	last   int // last quarter printed (plain)
+	drawn  bool
+	closed bool
+}
+
+func newTuneProgress(w io.Writer) *tuneProgress {
+	p := &tuneProgress{w: w, start: time.Now(), last: -1}
+	if f, ok := w.(*os.File); ok {
+		if st, err := f.Stat(); err == nil && st.Mode()&os.ModeCharDevice != 0 {
+			p.tty = true
+		}
+	}
+	return p
+}
+
+func (p *tuneProgress) update(done, total int) {
+	if total <= 0 || p.closed {
+		return
+	}
+	frac := float64(done) / float64(total)
+	if p.tty {
+		const width = 30
+		n := int(frac * width)
+		fmt.Fprintf(p.w, "\rtune [%s%s] %3.0f%% %5.1fs", strings.Repeat("#", n), strings.Repeat(".", width-n), 100*frac, time.Since(p.start).Seconds())
+		p.drawn = true
+		return
+	}
+	if q := int(frac * 4); q > p.last {
+		p.last = q
+		fmt.Fprintf(p.w, "tune: %d/%d units done (%.0f%%)\n", done, total, 100*frac)
+	}
+}
+
+func (p *tuneProgress) finish() {
+	if p.tty && p.drawn {
+		fmt.Fprintln(p.w)
+	}
+	p.closed = true
+}

@@ -1,0 +1,236 @@
+package main
+
+import (
+	"encoding/csv"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"testing"
+
+	"github.com/pulsefleet/pulsefleet/store"
+)
+
+// tuneTrendCSV writes an invented 1 Hz trend (demo data): devices around
+// 95 % with dips of varied depth and length and some missing cells.
+func tuneTrendCSV(t *testing.T, devices, seconds int, seed uint64) string {
+	t.Helper()
+	r := rand.New(rand.NewPCG(seed, 9))
+	var b strings.Builder
+	b.WriteString("t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi\n")
+	for d := range devices {
+		dip, depth := 0, 0.0
+		for i := range seconds {
+			if dip == 0 && r.IntN(300) == 0 {
+				dip, depth = 5+r.IntN(120), 3+12*r.Float64()
+			}
+			v := 95.5 + 0.7*r.NormFloat64()
+			if dip > 0 {
+				v -= depth
+				dip--
+			}
+			cell := strconv.Itoa(int(math.Round(math.Min(100, v))))
+			if r.IntN(100) == 0 {
+				cell = ""
+			}
+			fmt.Fprintf(&b, "%d,home-%d,%s,%d,2,0.9\n", i, d+1, cell, 60+r.IntN(20))
+		}
+	}
+	path := filepath.Join(t.TempDir(), "trend.csv")
+	if err := os.WriteFile(path, []byte(b.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return path
+}
+
+func readCSV(t *testing.T, path string) [][]string {
+	t.Helper()
+	f, err := os.Open(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	recs, err := csv.NewReader(f).ReadAll()
+	if err != nil {
+		t.Fatal(err)
+	}
+	return recs
+}
+
+func writeFile(t *testing.T, dir, name, text string) string {
+	t.Helper()
+	p := filepath.Join(dir, name)
+	if err := os.WriteFile(p, []byte(text), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	return p
+}
+
+// The episodes column of summary.csv equals what `pulsefleet replay` prints
+// for each grid point's profile (written by tune under profiles/).
+func TestTuneCommandAgreesWithReplay(t *testing.T) {
+	in := tuneTrendCSV(t, 3, 3600, 5)
+	dir := t.TempDir()
+	grid := writeFile(t, dir, "grid.yaml", `
+base: adult-ward-pilot
+sweep:
+  spo2_low.limit: [86, 90]
+  spo2_low.delay: [0s, 15s, 30s]
+  desaturation.limit: [3, 4]
+reference:
+  rule: {below: 85, for: 30s}
+`)
+	out := filepath.Join(dir, "out")
+	code, stdout, stderr := replayRun(t, "", "tune", "--grid", grid, "--in", in, "--out", out)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	if !strings.Contains(stdout, "not a certified medical device") {
+		t.Errorf("stdout lacks the caution:\n%s", stdout)
+	}
+	if strings.Contains(stderr, "\r") || !strings.Contains(stderr, "100%") {
+		t.Errorf("stderr (not a terminal) should have plain progress lines ending at 100%%, got %q", stderr)
+	}
+	recs := readCSV(t, filepath.Join(out, "summary.csv"))
+	head := recs[0]
+	for i, want := range []string{"profile", "spo2_low.limit", "spo2_low.delay", "desaturation.limit", "episodes",
+		"episodes_per_device_day", "time_in_alarm_pct", "sensitivity", "ppv", "median_delay_s"} {
+		if head[i] != want {
+			t.Fatalf("summary column %d is %q, want %q (DESIGN.md contract)", i, head[i], want)
+		}
+	}
+	if len(recs) != 1+12 {
+		t.Fatalf("%d rows, want 12 grid points", len(recs)-1)
+	}
+	total := 0
+	for _, rec := range recs[1:] {
+		prof := filepath.Join(out, "profiles", rec[0]+".yaml")
+		code, eps, stderr := replayRun(t, "", "replay", "--profile", prof, "--in", in)
+		if code != 0 {
+			t.Fatalf("replay %s: exit %d: %s", rec[0], code, stderr)
+		}
+		n := strings.Count(eps, "\n") - 1
+		if rec[4] != strconv.Itoa(n) {
+			t.Errorf("%s: summary episodes %s, replay lists %d", rec[0], rec[4], n)
+		}
+		total += n
+	}
+	if total == 0 {
+		t.Fatal("no episodes in any profile: the trend does not exercise the check")
+	}
+	for _, f := range []string{"frontier.svg", "report.html"} {
+		if b, err := os.ReadFile(filepath.Join(out, f)); err != nil || len(b) < 1000 {
+			t.Errorf("%s: %v (%d bytes)", f, err, len(b))
+		}
+	}
+}
+
+// Bad grids and flags get errors naming the key path and the bound.
+func TestTuneCommandErrors(t *testing.T) {
+	in := tuneTrendCSV(t, 1, 60, 1)
+	dir := t.TempDir()
+	cases := []struct {
+		name, grid string
+		args       []string
+		code       int
+		want       string
+	}{
+		{"negative delay", "base: adult-ward-pilot\nsweep:\n  spo2_low.delay: [0s, 10s, -5s]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, "sweep.spo2_low.delay[2]: -5s, want >= 0"},
+		{"limit out of range", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88, 101]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, "sweep.spo2_low.limit[1]: 101, want in [50, 100]"},
+		{"limit under escalation", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [84]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, "sweep.spo2_low.limit[0]: 84 makes spo2_low.escalate.below: 85, want in (0, 84)"},
+		{"unknown condition key", "base: adult-ward-pilot\nsweep:\n  spo2_low.limt: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, "sweep.spo2_low.limt[0]: unknown key"},
+		{"unknown top key", "base: adult-ward-pilot\nsweeps: {}\n", nil, 1, "sweeps (line 2): unknown key"},
+		{"averaging not supported", "base: adult-ward-pilot\nsweep:\n  averaging: [4s, 8s]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, "sweep.averaging (line 3): not supported yet"},
+		{"bad rule", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 185, for: 60s}\n",
+			nil, 1, "reference.rule.below (line 5): \"185\", want an SpO2 in (0, 100]"},
+		{"no input", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			[]string{"--in", ""}, 2, "give --data DIR or --in TREND.csv"},
+		{"unknown device", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			[]string{"--device", "nope"}, 1, `device "nope" has no trend`},
+	}
+	for i, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			g := writeFile(t, dir, fmt.Sprintf("g%d.yaml", i), c.grid)
+			args := append([]string{"tune", "--grid", g, "--in", in, "--out", filepath.Join(dir, "out")}, c.args...)
+			code, _, stderr := replayRun(t, "", args...)
+			if code != c.code || !strings.Contains(stderr, c.want) {
+				t.Errorf("exit %d, stderr %q; want exit %d and %q", code, stderr, c.code, c.want)
+			}
+		})
+	}
+}
+
+// --data reads the store read-only with the device and time filters, and a
+// store held by a running gateway is reported as such.
+func TestTuneCommandStore(t *testing.T) {
+	data := t.TempDir()
+	db, err := store.Open(data, store.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Two devices, 1 Hz for 10 minutes from a fixed Unix time; home-1 dips
+	// below 85 % for 90 s at minute 3, home-2 stays at 96 %.
+	t0 := int64(1_790_000_000_000)
+	var b store.Batch
+	for _, dev := range []string{"home-1", "home-2"} {
+		for i := range int64(600) {
+			v := 96.0
+			if dev == "home-1" && i >= 180 && i < 270 {
+				v = 82
+			}
+			b.Points = append(b.Points, store.Point{Device: dev, TimeMS: t0 + i*1000, SpO2: v, Pulse: 70, PI: 2, SQI: 0.9, Source: 1})
+		}
+	}
+	if err := db.Write(&b); err != nil {
+		t.Fatal(err)
+	}
+	dir := t.TempDir()
+	grid := writeFile(t, dir, "grid.yaml", "base: adult-ward-pilot\nsweep:\n  spo2_low.delay: [0s, 30s]\nreference:\n  rule: {below: 85, for: 60s}\n")
+
+	// Locked: the test holds the store open for writing, like a gateway.
+	code, _, stderr := replayRun(t, "", "tune", "--grid", grid, "--data", data, "--out", filepath.Join(dir, "o1"))
+	if code != 1 || !strings.Contains(stderr, "locked") || !strings.Contains(stderr, "gateway") {
+		t.Errorf("locked store: exit %d, stderr %q; want a message that a gateway holds the store", code, stderr)
+	}
+	if err := db.Close(); err != nil {
+		t.Fatal(err)
+	}
+
+	from := strconv.FormatInt(t0/1000, 10)
+	to := strconv.FormatInt(t0/1000+300, 10)
+	out := filepath.Join(dir, "o2")
+	code, stdout, stderr := replayRun(t, "", "tune", "--grid", grid, "--data", data, "--out", out,
+		"--device", "home-1", "--from", from, "--to", to)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	if !strings.Contains(stdout, "over 1 devices") || !strings.Contains(stdout, "1 reference events") {
+		t.Errorf("stdout %q: want 1 device and the one dip as reference event", stdout)
+	}
+	recs := readCSV(t, filepath.Join(out, "summary.csv"))
+	// Two episodes each: spo2_low and the ward profile's desaturation
+	// condition (96 -> 82 is a 14-point drop, delay 10 s). Delay 0: spo2_low
+	// is announced at the dip's first sample and detects the event at once;
+	// delay 30 s: announced 30 s in.
+	for k, want := range []struct{ episodes, sens, delay string }{{"2", "1.0000", "0.0"}, {"2", "1.0000", "30.0"}} {
+		r := recs[k+1]
+		if r[2] != want.episodes || r[5] != want.sens || r[7] != want.delay {
+			t.Errorf("row %d: episodes %s sensitivity %s median delay %s, want %+v", k, r[2], r[5], r[7], want)
+		}
+	}
+}
+
+func TestTuneCommandHelp(t *testing.T) {
+	code, _, stderr := replayRun(t, "", "tune", "--help")
+	if code != 0 || !strings.Contains(stderr, "--grid") || !strings.Contains(stderr, "not supported yet") {
+		t.Errorf("exit %d, help %q", code, stderr)
+	}
+}
