@@ -267,3 +267,69 @@ func (db *DB) Tokens() ([]Token, error) {
 	sort.Slice(out, func(i, j int) bool { return out[i].CreatedMS < out[j].CreatedMS })
 	return out, err
 }
+
+// TokenByHash returns the credential whose secret hashes to hash (hex
+// SHA-256), or ErrNotFound. Revoked credentials are returned too: the caller
+// checks RevokedMS.
+func (db *DB) TokenByHash(hash string) (Token, error) {
+	var t Token
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		v := tx.Bucket(bTokens).Get([]byte(hash))
+		if v == nil {
+			return ErrNotFound
+		}
+		return decJSON(v, &t)
+	})
+	if err != nil {
+		return Token{}, fmt.Errorf("store: token: %w", err)
+	}
+	return t, nil
+}
+
+// RevokeToken marks the credential with public identifier id revoked at
+// atMS, with an audit entry in the same transaction, and returns it. It
+// returns ErrNotFound for an unknown id; revoking twice keeps the first time.
+func (db *DB) RevokeToken(id string, atMS int64, audit *AuditEntry) (Token, error) {
+	var out Token
+	err := db.bolt.Update(func(tx *bolt.Tx) error {
+		b := tx.Bucket(bTokens)
+		var key []byte
+		err := b.ForEach(func(k, v []byte) error {
+			if key != nil {
+				return nil
+			}
+			var t Token
+			if err := decJSON(v, &t); err != nil {
+				return err
+			}
+			if t.ID == id {
+				key, out = clone(k), t
+			}
+			return nil
+		})
+		if err != nil {
+			return err
+		}
+		if key == nil {
+			return ErrNotFound
+		}
+		if out.RevokedMS == 0 {
+			out.RevokedMS = atMS
+		}
+		v, err := encJSON(out)
+		if err != nil {
+			return err
+		}
+		if err := b.Put(key, v); err != nil {
+			return err
+		}
+		if audit != nil {
+			return appendAudit(tx, []*AuditEntry{audit})
+		}
+		return nil
+	})
+	if err != nil {
+		return Token{}, fmt.Errorf("store: revoke token %q: %w", id, err)
+	}
+	return out, nil
+}
