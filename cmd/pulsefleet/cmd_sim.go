@@ -7,6 +7,7 @@ import (
 	"flag"
 	"fmt"
 	"os"
+	"runtime/pprof"
 	"sort"
 	"strings"
 	"time"
@@ -35,7 +36,7 @@ Shipped scenarios: ` + strings.Join(scenarios.Names(), ", ") + ` (docs/scenarios
 // simFlags are the flags sim and bench share.
 type simFlags struct {
 	gateway, mode, scenario, token, tokenFile, idPrefix string
-	perDeviceOut                                        string
+	perDeviceOut, cpuProfile                            string
 	devices, chunk, perConn                             int
 	rate, speed, corrupt, drift                         float64
 	duration, dropEvery, progress, drain                time.Duration
@@ -55,6 +56,7 @@ func (f *simFlags) register(fs *flag.FlagSet, withGateway bool) {
 		fs.StringVar(&f.idPrefix, "id-prefix", "sim", "device ids are PREFIX-0001, PREFIX-0002, ... (without --scenario)")
 		fs.StringVar(&f.mode, "mode", "raw", "what devices send: raw (PPG chunks) or summary (per-second values); a scenario's device entries may say otherwise")
 		fs.DurationVar(&f.drain, "drain", 10*time.Second, "after sending stops, wait this long for the last acknowledgements")
+		fs.StringVar(&f.cpuProfile, "cpuprofile", "", "write a CPU profile of the client (pprof) to this file")
 		fs.StringVar(&f.perDeviceOut, "per-device-out", "", "also write each device's acknowledged counts to this CSV file (device,mode,frames_acked,samples_acked,acked_through)")
 	}
 	fs.IntVar(&f.devices, "devices", 10, "number of devices, 1..100000")
@@ -80,6 +82,13 @@ func runSim(ctx context.Context, args []string, s stdio) error {
 		return err
 	}
 	opts.Progress = s.err
+	if f.cpuProfile != "" {
+		stop, err := startCPUProfile(f.cpuProfile)
+		if err != nil {
+			return err
+		}
+		defer stop()
+	}
 	rep, err := sim.Run(ctx, opts)
 	if err != nil {
 		return err
@@ -211,4 +220,17 @@ func writeJSONLine(s stdio, v any) error {
 	}
 	_, err = fmt.Fprintf(s.out, "%s\n", b)
 	return err
+}
+
+// startCPUProfile writes a CPU profile to path until stop is called.
+func startCPUProfile(path string) (stop func(), err error) {
+	fh, err := os.Create(path)
+	if err != nil {
+		return nil, fmt.Errorf("cpu profile: %w", err)
+	}
+	if err := pprof.StartCPUProfile(fh); err != nil {
+		fh.Close()
+		return nil, fmt.Errorf("cpu profile: %w", err)
+	}
+	return func() { pprof.StopCPUProfile(); fh.Close() }, nil
 }

@@ -62,12 +62,33 @@ type Options struct {
 	Chunk    int           // samples per chunk; 0 = 25
 	Duration time.Duration // sending time per phase; required
 	Seed     uint64
+	// DevicesPerConn is how many devices share a gRPC connection; 0 = 500.
+	DevicesPerConn int
 	// Progress receives progress lines; nil = none. ProgressEvery 0 = 5 s.
 	Progress      io.Writer
 	ProgressEvery time.Duration
 	// CPUProfile, when set, writes one CPU profile per phase to
 	// CPUProfile.PHASE.pprof.
 	CPUProfile string
+	// Client drives the load; nil = sim.Run in this process (the peak RSS
+	// and CPU of a phase then include the client's). ExecClient runs it as
+	// a separate process so the target's figures are its own.
+	Client ClientFunc
+}
+
+// ClientFunc runs the simulated fleet o and reports it, with the client's
+// own resource use when it ran as a separate process (zero otherwise).
+type ClientFunc func(ctx context.Context, o sim.Options) (*sim.Report, ClientUsage, error)
+
+// ClientUsage is what a separate client process used.
+type ClientUsage struct {
+	PeakRSSBytes int64
+	CPU          time.Duration
+}
+
+func inProcess(ctx context.Context, o sim.Options) (*sim.Report, ClientUsage, error) {
+	r, err := sim.Run(ctx, o)
+	return r, ClientUsage{}, err
 }
 
 // PhaseResult is one phase's outcome.
@@ -76,9 +97,11 @@ type PhaseResult struct {
 	Report       *sim.Report
 	SamplesPerS  float64
 	Lost         uint64  // acknowledged samples the target does not hold
-	PeakRSSBytes int64   // peak resident set during the phase
+	PeakRSSBytes int64   // peak resident set of this process during the phase
 	RSSExact     bool    // true when the kernel high-water mark was reset for the phase
-	CPUCores     float64 // process CPU time / wall time during sending
+	CPUCores     float64 // this process's CPU time / wall time during sending
+	Client       ClientUsage
+	ClientCores  float64 // a separate client's CPU time / wall time
 }
 
 // Result compares the phases; its JSON form is the bench command's line.
@@ -100,10 +123,13 @@ type Result struct {
 	PeakRSSBytes        int64         `json:"peak_rss_bytes"`
 	SinkPeakRSSBytes    int64         `json:"sink_peak_rss_bytes"`
 	GatewayPeakRSSBytes int64         `json:"gateway_peak_rss_bytes"`
-	RSSPerDeviceBytes   int64         `json:"rss_per_device_bytes"` // gateway phase peak / devices (client included)
+	RSSPerDeviceBytes   int64         `json:"rss_per_device_bytes"` // gateway phase peak / devices
 	RSSExact            bool          `json:"rss_exact"`
+	ClientInProcess     bool          `json:"client_in_process"` // peaks and CPU include the load client
+	ClientPeakRSSBytes  int64         `json:"client_peak_rss_bytes,omitempty"`
 	SinkCPUCores        float64       `json:"sink_cpu_cores"`
 	GatewayCPUCores     float64       `json:"gateway_cpu_cores"`
+	ClientCPUCores      float64       `json:"client_cpu_cores,omitempty"`
 	Rejected            uint64        `json:"rejected"`
 	Reconnects          uint64        `json:"reconnects"`
 	UnackedAtEnd        uint64        `json:"unacked_at_end"`
@@ -149,7 +175,10 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 		opts.Chunk = 25
 	}
 	res := &Result{Devices: opts.Devices, RateHz: opts.RateHz, Chunk: opts.Chunk, DurationS: opts.Duration.Seconds(),
-		OfferedSamplesPerS: float64(opts.Devices) * opts.RateHz, RSSExact: true}
+		OfferedSamplesPerS: float64(opts.Devices) * opts.RateHz, RSSExact: true, ClientInProcess: opts.Client == nil}
+	if opts.Client == nil {
+		opts.Client = inProcess
+	}
 	for _, ph := range phases {
 		pr, err := runPhase(ctx, opts, ph)
 		if err != nil {
@@ -173,6 +202,7 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 	res.SinkPeakRSSBytes, res.GatewayPeakRSSBytes = first.PeakRSSBytes, last.PeakRSSBytes
 	res.RSSPerDeviceBytes = last.PeakRSSBytes / int64(opts.Devices)
 	res.SinkCPUCores, res.GatewayCPUCores = first.CPUCores, last.CPUCores
+	res.ClientPeakRSSBytes, res.ClientCPUCores = last.Client.PeakRSSBytes, last.ClientCores
 	res.Rejected, res.Reconnects, res.UnackedAtEnd = last.Report.Rejected, last.Report.Reconnects, last.Report.UnackedAtEnd
 	return res, nil
 }
@@ -214,10 +244,10 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 		}
 	}
 	cpu0, wall0 := cpuTime(), time.Now()
-	rep, err := sim.Run(ctx, sim.Options{
+	rep, usage, err := opts.Client(ctx, sim.Options{
 		Gateway: tgt.Addr(), Devices: opts.Devices, IDPrefix: "bench", Mode: sim.ModeRaw,
 		RateHz: opts.RateHz, Chunk: opts.Chunk, Duration: opts.Duration, Seed: opts.Seed,
-		Progress: opts.Progress, ProgressEvery: opts.ProgressEvery,
+		Progress: opts.Progress, ProgressEvery: opts.ProgressEvery, DevicesPerConn: opts.DevicesPerConn,
 	})
 	cpu1, wall1 := cpuTime(), time.Now()
 	if prof != nil {
@@ -227,9 +257,10 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 	if err != nil {
 		return nil, err
 	}
-	pr := &PhaseResult{Name: ph.Name, Report: rep, SamplesPerS: rep.SamplesPerS}
+	pr := &PhaseResult{Name: ph.Name, Report: rep, SamplesPerS: rep.SamplesPerS, Client: usage}
 	if w := wall1.Sub(wall0).Seconds(); w > 0 {
 		pr.CPUCores = math.Round((cpu1-cpu0).Seconds()/w*100) / 100
+		pr.ClientCores = math.Round(usage.CPU.Seconds()/w*100) / 100
 	}
 	held, err := tgt.DurableSamples(ctx)
 	if err != nil {
@@ -246,8 +277,8 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 	}
 	pr.PeakRSSBytes, pr.RSSExact = peak.stop()
 	if opts.Progress != nil {
-		fmt.Fprintf(opts.Progress, "bench: phase %s: %.0f samples/s acknowledged, ack p50 %.1f ms p99 %.1f ms, lost %d, peak RSS %d MiB, %.2f cores\n",
-			ph.Name, pr.SamplesPerS, rep.AckP50Ms, rep.AckP99Ms, pr.Lost, pr.PeakRSSBytes>>20, pr.CPUCores)
+		fmt.Fprintf(opts.Progress, "bench: phase %s: %.0f samples/s acknowledged, ack p50 %.1f ms p99 %.1f ms, lost %d, peak RSS %d MiB, %.2f cores (client: %d MiB, %.2f cores)\n",
+			ph.Name, pr.SamplesPerS, rep.AckP50Ms, rep.AckP99Ms, pr.Lost, pr.PeakRSSBytes>>20, pr.CPUCores, usage.PeakRSSBytes>>20, pr.ClientCores)
 	}
 	return pr, nil
 }
