@@ -206,39 +206,28 @@ func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Res
 		}
 	}
 
-	total := len(vars)*len(trends) + len(pts)
+	total := len(vars)*len(trends) + len(pts) // one unit per (variant, device) and per point
 	var done atomic.Int64
 	stopProgress := startProgress(opt.Progress, &done, total)
 	defer stopProgress()
 
-	// Phase 1: the engine over every (variant, device).
+	// Phase 1: the engine over every (device, block of variants).
 	res.spans = make([][][]span, len(vars))
 	for v := range res.spans {
 		res.spans[v] = make([][]span, len(trends))
 	}
-	engines := make([][]*alarms.Engine, workers)
-	for w := range engines {
-		engines[w] = make([]*alarms.Engine, len(vars))
+	runners := make([]runner, workers)
+	for w := range runners {
+		runners[w].slots = make([]*slot, len(vars))
 	}
-	err = parallel(ctx, workers, len(vars)*len(trends), func(w, job int) error {
-		v, d := job/len(trends), job%len(trends)
-		e := engines[w][v]
-		if e == nil {
-			var err error
-			if e, err = alarms.NewEngine(vars[v].profile, ""); err != nil {
-				return fmt.Errorf("condition %s: %w", vars[v].profile.Conditions[0].ConditionName(), err)
-			}
-			engines[w][v] = e
+	blocks := (len(vars) + variantBlock - 1) / variantBlock
+	err = parallel(ctx, workers, len(trends)*blocks, func(w, job int) error {
+		d, blk := job/blocks, job%blocks
+		lo, hi := blk*variantBlock, min(len(vars), (blk+1)*variantBlock)
+		if err := runners[w].run(vars, lo, hi, trends[d].Samples, res.spans, d); err != nil {
+			return err
 		}
-		c := int32(vars[v].cond)
-		prio0 := vars[v].profile.Conditions[0].Priority
-		var out []span
-		e.Run(trends[d].Samples, func(ep alarms.Episode) {
-			out = append(out, span{cond: c, prio0: prio0, prio: ep.Priority, onset: ep.OnsetS,
-				ann: ep.AnnouncedS, esc: ep.EscalatedS, end: ep.EndedS})
-		})
-		res.spans[v][d] = out
-		done.Add(1)
+		done.Add(int64(hi - lo))
 		return nil
 	})
 	if err != nil {
@@ -257,6 +246,85 @@ func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Res
 	}
 	markPareto(res.Rows)
 	return res, nil
+}
+
+// variantBlock is how many condition variants one job evaluates together
+// over a device's trend, and chunk how many samples each of them evaluates
+// before the next takes over: the chunk (40 KiB) stays in the core's cache
+// while every variant of the block reads it, instead of every variant
+// streaming the whole trend from memory.
+const (
+	variantBlock = 32
+	chunk        = 1024
+)
+
+// slot is one worker's engine for one variant.
+type slot struct {
+	e     *alarms.Engine
+	cond  int32
+	prio0 alarms.Priority
+	out   []span
+	emit  func(alarms.Event) // s.onEvent, bound once
+	open  []alarms.Episode
+}
+
+func (s *slot) onEvent(ev alarms.Event) {
+	if ev.Type == alarms.EventEnded {
+		s.add(&ev.Episode)
+	}
+}
+
+func (s *slot) add(ep *alarms.Episode) {
+	s.out = append(s.out, span{cond: s.cond, prio0: s.prio0, prio: ep.Priority, onset: ep.OnsetS,
+		ann: ep.AnnouncedS, esc: ep.EscalatedS, end: ep.EndedS})
+}
+
+// runner is one worker's engines, created on first use.
+type runner struct {
+	slots []*slot
+}
+
+// run evaluates variants lo..hi-1 over one device's samples, chunk by
+// chunk, and stores their episodes in spans[v][d]. It reports the same
+// episodes as alarms.Engine.Run (ended ones as they end, then those still
+// active after the last sample); TestTuneAgreesWithReplay checks this
+// against alarms.ReplayTrends.
+func (r *runner) run(vars []variant, lo, hi int, samples []alarms.Sample, spans [][][]span, d int) error {
+	for v := lo; v < hi; v++ {
+		sl := r.slots[v]
+		if sl == nil {
+			e, err := alarms.NewEngine(vars[v].profile, "")
+			if err != nil {
+				return fmt.Errorf("condition %s: %w", vars[v].profile.Conditions[0].ConditionName(), err)
+			}
+			sl = &slot{e: e, cond: int32(vars[v].cond), prio0: vars[v].profile.Conditions[0].Priority}
+			sl.emit = sl.onEvent
+			r.slots[v] = sl
+		}
+		sl.e.Reset()
+		sl.out = nil
+	}
+	for c0 := 0; c0 < len(samples); c0 += chunk {
+		part := samples[c0:min(len(samples), c0+chunk)]
+		for v := lo; v < hi; v++ {
+			sl := r.slots[v]
+			e, emit := sl.e, sl.emit
+			for i := range part {
+				e.Eval(part[i], emit)
+			}
+		}
+	}
+	for v := lo; v < hi; v++ {
+		sl := r.slots[v]
+		sl.open = sl.e.Episodes(sl.open[:0])
+		for i := range sl.open {
+			if sl.open[i].Phase == alarms.Active {
+				sl.add(&sl.open[i])
+			}
+		}
+		spans[v][d] = sl.out
+	}
+	return nil
 }
 
 // startProgress reports done/total to fn from one goroutine a few times a

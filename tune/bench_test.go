@@ -1,0 +1,51 @@
+package tune
+
+import (
+	"context"
+	"testing"
+)
+
+// benchGrid sweeps 10 limits x 10 delays = 100 profiles.
+const benchSweep = `
+sweep:
+  spo2_low.limit: [86, 87, 88, 89, 90, 91, 92, 93, 94, 95]
+  spo2_low.delay: [0s, 5s, 10s, 15s, 20s, 30s, 45s, 60s, 90s, 120s]
+reference:
+  rule: {below: 85, for: 60s}
+`
+
+// BenchmarkTune measures the DESIGN.md target: 100 profiles over 1,000
+// device-hours of 1 Hz trend (100 devices x 10 h) in <= 3 s. s/run is the
+// wall time of one sweep; ns/sample/profile divides it by samples x
+// profiles (wall time, all cores). Two bases: one spo2_low condition, and
+// the built-in ward profile (8 conditions, 7 of them not swept).
+func BenchmarkTune(b *testing.B) {
+	trends := cohort(cohortOptions{Devices: 100, Hours: 10, Seed: 1, DipsPerHour: 4, MissingPct: 1})
+	samples := 0
+	for _, tr := range trends {
+		samples += len(tr.Samples)
+	}
+	for _, bc := range []struct{ name, base string }{
+		{"spo2_low", "base:\n  name: one\n  conditions:\n    - {kind: spo2_low, limit: 90, hysteresis: 1, delay: 15s, priority: medium, escalate: {below: 80, priority: high}}\n"},
+		{"ward", "base: adult-ward-pilot\n"},
+	} {
+		b.Run(bc.name, func(b *testing.B) {
+			g, err := ParseGrid([]byte(bc.base+benchSweep), ".")
+			if err != nil {
+				b.Fatal(err)
+			}
+			var res *Result
+			for b.Loop() {
+				res, err = Run(context.Background(), g, trends, Options{})
+				if err != nil {
+					b.Fatal(err)
+				}
+			}
+			per := b.Elapsed().Seconds() / float64(b.N)
+			b.ReportMetric(per, "s/run")
+			b.ReportMetric(per*1e9/float64(samples)/float64(len(res.Points)), "ns/sample/profile")
+			b.ReportMetric(float64(samples)/3600, "device-hours")
+			b.ReportMetric(float64(len(res.Points)), "profiles")
+		})
+	}
+}
