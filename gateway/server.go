@@ -277,15 +277,25 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 func (g *Gateway) Ready() bool { return g.ready.Load() }
 
 // watchdog lets time pass for the alarm engines of devices without a stream,
-// so device_offline (and signal_lost) can be announced, and persists changes.
+// so device_offline (and signal_lost) can be announced, and persists changes;
+// once an hour it drops history older than the retention.
 func (g *Gateway) watchdog(ctx context.Context) {
 	t := time.NewTicker(g.opt.WatchdogEvery)
 	defer t.Stop()
+	var lastPrune time.Time
 	for {
 		select {
 		case <-ctx.Done():
 			return
 		case <-t.C:
+		}
+		if r := g.opt.Retention; (r.TrendDays > 0 || r.RawDays > 0 || r.LedgerDays > 0) && g.opt.Now().Sub(lastPrune) > time.Hour {
+			lastPrune = g.opt.Now()
+			if n, err := g.db.Prune(g.nowMS(), r); err != nil {
+				g.log.Error("retention", "err", err)
+			} else if n > 0 {
+				g.log.Info("retention dropped old day buckets", "buckets", n)
+			}
 		}
 		nowMS := g.nowMS()
 		for _, d := range g.devices.all() {
