@@ -50,6 +50,7 @@ type stream struct {
 	irNM   float64
 	calRef string
 	cal    estimator.Calibration
+	bucket tokenBucket // message-rate limit (ratelimit.go)
 
 	// raw pipeline (owned by the handler goroutine)
 	est         *estimator.Stream
@@ -358,6 +359,10 @@ func (s *stream) loop(ctx context.Context) error {
 func (s *stream) handle(ctx context.Context, m *pb.ConnectRequest) error {
 	g := s.g
 	nowMS := g.nowMS()
+	callHandleHook(m)
+	if s.rateLimited(m, nowMS) {
+		return nil
+	}
 	if n := proto.Size(m); n > g.opt.MaxMessageBytes {
 		s.countReject()
 		s.rejectMsg(reject(seqOf(m), pb.RejectReason_REJECT_REASON_TOO_LARGE, "message", "%d bytes, want at most %d", n, g.opt.MaxMessageBytes))

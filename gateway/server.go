@@ -47,6 +47,7 @@ type Gateway struct {
 	failed   atomic.Pointer[error]
 
 	// Extension points set by other parts of the package (auth, sharding, web).
+	auth       *authState // credentials, roles, limits (auth.go)
 	grpcOpts   []grpc.ServerOption
 	httpRoutes func(mux *http.ServeMux)
 }
@@ -68,6 +69,9 @@ func New(opt Options) (*Gateway, error) {
 		g.opt.ResolveCalibration = g.resolveStoredCalibration
 	}
 	g.hub = newHub(m)
+	if err := g.initAuth(); err != nil {
+		return nil, err
+	}
 	g.w = newWriter(opt.Store, opt.BatchDelay, opt.BatchRecords, m, opt.Now, g.storeFailed)
 	if err := g.load(); err != nil {
 		return nil, err
@@ -439,9 +443,6 @@ func (g *Gateway) audit(ctx context.Context, actor, action, device, detail, remo
 		g.log.Warn("audit entry not stored", "action", action, "err", err)
 	}
 }
-
-// authorizeDevice checks the stream's credentials for deviceID (see auth.go).
-func (g *Gateway) authorizeDevice(ctx context.Context, deviceID, remote string) error { return nil }
 
 // ownerOf returns the address of the gateway that owns deviceID when it is
 // not this one ("" = this one; see sharding).

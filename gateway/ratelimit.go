@@ -1,0 +1,135 @@
+package gateway
+
+import (
+	"sync"
+	"sync/atomic"
+
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+)
+
+// tokenBucket limits a device stream's message rate. Time is the gateway
+// clock in milliseconds, passed in. The zero value is not usable: set rate
+// and burst (init does) before the first allow.
+type tokenBucket struct {
+	rate   float64 // tokens per millisecond
+	burst  float64
+	tokens float64
+	lastMS int64
+}
+
+func (b *tokenBucket) init(perSecond float64, burst int, nowMS int64) {
+	b.rate, b.burst, b.tokens, b.lastMS = perSecond/1000, float64(burst), float64(burst), nowMS
+}
+
+// allow takes one token if there is one.
+func (b *tokenBucket) allow(nowMS int64) bool {
+	if dt := nowMS - b.lastMS; dt > 0 {
+		b.tokens = min(b.burst, b.tokens+float64(dt)*b.rate)
+		b.lastMS = nowMS
+	}
+	if b.tokens >= 1 {
+		b.tokens--
+		return true
+	}
+	return false
+}
+
+// rateLimited applies the stream's message-rate limit to m: over it, m is
+// rejected with REJECT_REASON_RATE_LIMITED (the device slows down and
+// resends from that sequence) and the stream goes on.
+func (s *stream) rateLimited(m *pb.ConnectRequest, nowMS int64) bool {
+	if s.bucket.burst == 0 {
+		a := s.g.auth
+		a.mu.RLock()
+		rate, burst := a.opt.DeviceRate, a.opt.DeviceBurst
+		a.mu.RUnlock()
+		s.bucket.init(rate, burst, nowMS)
+	}
+	if s.bucket.allow(nowMS) {
+		return false
+	}
+	s.countReject()
+	seq := seqOf(m)
+	s.rejectMsg(reject(seq, pb.RejectReason_REJECT_REASON_RATE_LIMITED, "message",
+		"more than %g messages/s (burst %g) on this stream; slow down and resend from sequence %d", s.bucket.rate*1000, s.bucket.burst, seq))
+	return true
+}
+
+// handleHook, when set, is called with every message a stream handles
+// (tests inject faults with it, such as a panic).
+var handleHook atomic.Pointer[func(*pb.ConnectRequest)]
+
+func callHandleHook(m *pb.ConnectRequest) {
+	if h := handleHook.Load(); h != nil {
+		(*h)(m)
+	}
+}
+
+// auditLimiter bounds audit entries for refused calls per remote host: at
+// most perMinute in each minute (a fixed window per host); the ones left out
+// are counted and reported with the host's next entry. It tracks at most
+// maxHosts hosts; beyond that, new hosts share one window, so a flood from
+// many addresses cannot grow it either.
+type auditLimiter struct {
+	mu        sync.Mutex
+	perMinute int
+	hosts     map[string]*auditWindow
+}
+
+type auditWindow struct {
+	startMS    int64
+	n          int
+	suppressed int
+}
+
+const (
+	auditWindowMS   = 60_000
+	auditMaxHosts   = 1024
+	auditOtherHosts = "*other hosts*"
+)
+
+func newAuditLimiter(perMinute int) *auditLimiter {
+	return &auditLimiter{perMinute: perMinute, hosts: map[string]*auditWindow{}}
+}
+
+func (l *auditLimiter) setPerMinute(n int) {
+	l.mu.Lock()
+	l.perMinute = n
+	l.mu.Unlock()
+}
+
+// allow reports whether an entry for host may be written now, and how many
+// were suppressed for it since its last written entry.
+func (l *auditLimiter) allow(host string, nowMS int64) (bool, int) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	w := l.hosts[host]
+	if w == nil {
+		if len(l.hosts) >= auditMaxHosts {
+			for h, x := range l.hosts {
+				if nowMS-x.startMS >= auditWindowMS && x.suppressed == 0 {
+					delete(l.hosts, h)
+				}
+			}
+		}
+		if len(l.hosts) >= auditMaxHosts {
+			host = auditOtherHosts
+			w = l.hosts[host]
+		}
+		if w == nil {
+			w = &auditWindow{startMS: nowMS}
+			l.hosts[host] = w
+		}
+	}
+	if nowMS-w.startMS >= auditWindowMS {
+		w.startMS, w.n = nowMS, 0
+	}
+	if w.n >= l.perMinute {
+		w.suppressed++
+		return false, 0
+	}
+	w.n++
+	s := w.suppressed
+	w.suppressed = 0
+	return true, s
+}
