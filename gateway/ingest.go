@@ -315,6 +315,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 		return status.Errorf(codes.Unavailable, "store: %v", err)
 	}
 	d.mu.Lock()
+	d.desc.Index = rec.desc.Index // assigned by the store on the device's first write
 	resume := d.durableSeq
 	d.cur.LastSeq = resume // anything not durable is resent by the device
 	d.mu.Unlock()
