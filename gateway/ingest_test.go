@@ -173,7 +173,7 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 	}
 
 	// /metrics counts what was accepted and rejected.
-	body := scrape(t, h.httpAddr)
+	body := scrapeHTTP(t, h.httpAddr)
 	for _, want := range []string{
 		fmt.Sprintf(`pulsefleet_messages_received_total{mode="summary"} %d`, honest*perDevice+1),
 		`pulsefleet_messages_rejected_total{reason="not_introduced"} 1`,
@@ -186,7 +186,7 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 	}
 }
 
-func scrape(t testing.TB, addr string) string {
+func scrapeHTTP(t testing.TB, addr string) string {
 	t.Helper()
 	resp, err := http.Get("http://" + addr + "/metrics")
 	if err != nil {

@@ -72,7 +72,7 @@ func startServe(t *testing.T, dataDir string, extra ...string) *child {
 		t.Fatal(err)
 	}
 	c := &child{cmd: cmd, stderr: &bytes.Buffer{}, exited: make(chan error, 1)}
-	cmd.Stderr = &lockedWriter{w: c.stderr}
+	cmd.Stderr = &syncWriter{w: c.stderr}
 	if err := cmd.Start(); err != nil {
 		t.Fatal(err)
 	}
@@ -105,12 +105,12 @@ func startServe(t *testing.T, dataDir string, extra ...string) *child {
 	return c
 }
 
-type lockedWriter struct {
+type syncWriter struct {
 	mu sync.Mutex
 	w  io.Writer
 }
 
-func (l *lockedWriter) Write(p []byte) (int, error) {
+func (l *syncWriter) Write(p []byte) (int, error) {
 	l.mu.Lock()
 	defer l.mu.Unlock()
 	return l.w.Write(p)
