@@ -7,6 +7,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -38,6 +39,7 @@ type Grid struct {
 type Sweep struct {
 	Key    string // CONDITION.KEY or CONDITION.escalate.KEY, as in the file
 	Values []string
+	lines  []int // line of each value in the grid file
 }
 
 // Reference says what a real event is. Exactly one of Rule and Events is
@@ -248,10 +250,8 @@ func (g *Grid) decodeSweep(n *yaml.Node) error {
 				return fmt.Errorf("%s (line %d): %s repeats %s[%d]", ip, vn.Line, val, path, j)
 			}
 			seen[val] = i
-			if err := setValue(g.Base.Clone(), key, val); err != nil {
-				return fmt.Errorf("%s: %s (line %d)", ip, err, vn.Line)
-			}
 			s.Values = append(s.Values, val)
+			s.lines = append(s.lines, vn.Line)
 		}
 		g.Sweep = append(g.Sweep, s)
 		return nil
@@ -272,21 +272,25 @@ func (g *Grid) decodeSweep(n *yaml.Node) error {
 	return nil
 }
 
-// setValue sets one swept value and phrases an error the grid's way: the
-// message of the key itself, or which other key the value breaks.
-func setValue(p *alarms.Profile, key, val string) error {
+// setError is a swept value that did not fit: Path is the profile key the
+// profile rules rejected (the swept key itself, or another key the value
+// made invalid).
+type setError struct {
+	Path, Msg string
+}
+
+// setValue sets one swept value. The value stays set when only the
+// validation of the whole profile failed.
+func setValue(p *alarms.Profile, key, val string) *setError {
 	err := p.Set(key, val)
 	if err == nil {
 		return nil
 	}
 	var fe *alarms.FieldError
 	if errors.As(err, &fe) {
-		if fe.Path == key {
-			return errors.New(fe.Msg)
-		}
-		return fmt.Errorf("%s makes %s: %s", val, fe.Path, fe.Msg)
+		return &setError{Path: fe.Path, Msg: fe.Msg}
 	}
-	return err
+	return &setError{Path: key, Msg: err.Error()}
 }
 
 func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
@@ -410,22 +414,65 @@ func (g *Grid) Points() ([]Point, error) {
 			vals[k] = s.Values[rem%len(s.Values)]
 			rem /= len(s.Values)
 		}
-		for k, s := range g.Sweep {
-			if err := setValue(p, s.Key, vals[k]); err != nil {
-				return nil, fmt.Errorf("grid point %d (%s): sweep.%s: %w", i+1, describe(g.Sweep, vals), s.Key, err)
-			}
+		if err := g.apply(p, vals); err != nil {
+			return nil, err
 		}
 		name := fmt.Sprintf("%s-g%0*d", g.Base.Name, width, i+1)
 		if len(name) > 64 {
 			name = fmt.Sprintf("g%0*d", width, i+1)
 		}
 		p.Name = name
-		if err := p.Validate(); err != nil {
-			return nil, fmt.Errorf("grid point %d (%s): %w", i+1, describe(g.Sweep, vals), err)
-		}
 		pts[i] = Point{Index: i, Name: name, Values: vals, Profile: p}
 	}
 	return pts, nil
+}
+
+// apply sets every swept value of one grid point. Keys may depend on each
+// other (a lower limit needs a lower escalation depth), so values that fail
+// only because of another key are retried after the others are set; what
+// still fails is reported as sweep.KEY[i]: the bound.
+func (g *Grid) apply(p *alarms.Profile, vals []string) error {
+	pending := make([]int, len(g.Sweep))
+	for k := range pending {
+		pending[k] = k
+	}
+	errs := make([]*setError, len(g.Sweep))
+	for len(pending) > 0 {
+		var still []int
+		for _, k := range pending {
+			if errs[k] = setValue(p, g.Sweep[k].Key, vals[k]); errs[k] != nil {
+				still = append(still, k)
+			}
+		}
+		if len(still) == len(pending) {
+			break
+		}
+		pending = still
+	}
+	if len(pending) == 0 {
+		return nil
+	}
+	// Report a key whose own value is out of bounds first.
+	k := pending[0]
+	for _, j := range pending {
+		if errs[j].Path == g.Sweep[j].Key {
+			k = j
+			break
+		}
+	}
+	s, e := g.Sweep[k], errs[k]
+	idx := slices.Index(s.Values, vals[k])
+	msg := fmt.Sprintf("sweep.%s[%d]: %s", s.Key, idx, e.Msg)
+	if e.Path != s.Key {
+		msg = fmt.Sprintf("sweep.%s[%d]: %s makes %s: %s", s.Key, idx, vals[k], e.Path, e.Msg)
+	}
+	if idx < len(s.lines) && s.lines[idx] > 0 {
+		msg += fmt.Sprintf(" (line %d)", s.lines[idx])
+	}
+	if len(g.Sweep) > 1 {
+		msg += " in grid point " + describe(g.Sweep, vals)
+	}
+	return errors.New(msg)
 }
 
 func describe(sw []Sweep, vals []string) string {

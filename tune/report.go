@@ -70,9 +70,9 @@ func WriteReport(w io.Writer, res *Result, info ReportInfo) error {
 		return err
 	}
 	limSVG, limCaption := LimitSVG(res)
-	var keys []string
+	var keys []template.HTML // may break after a dot
 	for _, s := range g.Sweep {
-		keys = append(keys, s.Key)
+		keys = append(keys, template.HTML(strings.ReplaceAll(template.HTMLEscapeString(s.Key), ".", ".<wbr>")))
 	}
 	var best, all []reportRow
 	for _, i := range BestRows(res) {
@@ -105,7 +105,7 @@ func WriteReport(w io.Writer, res *Result, info ReportInfo) error {
 		"Frontier":   template.HTML(FrontierSVG(res)),
 		"LimitSVG":   template.HTML(limSVG),
 		"LimitCap":   limCaption,
-		"Keys":       keys,
+		"KeysHTML":   keys,
 		"Best":       best,
 		"All":        all,
 		"BaseSource": g.BaseSource,
@@ -124,10 +124,10 @@ body{font-family:"DejaVu Sans",Arial,sans-serif;font-size:14px;color:#222;max-wi
 h1{font-size:22px;margin:0 0 8px}h2{font-size:17px;margin:28px 0 8px;border-bottom:1px solid #ccc;padding-bottom:3px}
 .caution{border:2px solid #a33;background:#fff6f5;padding:10px 14px;margin:12px 0}
 table{border-collapse:collapse;font-size:13px;margin:8px 0}th,td{border:1px solid #ccc;padding:3px 8px;text-align:right}
-th{background:#f2f2f2}td.l,th.l{text-align:left}
+th{background:#f2f2f2;font-weight:600}td.l,th.l{text-align:left}
 pre{background:#f7f7f7;border:1px solid #ddd;padding:8px;font-size:12px;overflow:auto}
 dl{display:grid;grid-template-columns:max-content auto;gap:2px 16px;margin:0}dt{color:#555}dd{margin:0}
-figure{margin:10px 0}figcaption{font-size:13px;color:#444;max-width:680px}
+figure{margin:10px 0}figcaption{font-size:13px;color:#444;max-width:900px}
 </style></head><body>
 <h1>Alarm tuning report</h1>
 <div class="caution"><strong>Caution.</strong> {{.Caution}}</div>
@@ -149,14 +149,17 @@ Sensitivity = detected events / events; PPV = true-positive episodes / scored ep
 Alarms per device-day count every announced episode of every condition, exactly as <code>pulsefleet replay</code> lists them.</p>
 
 <h2>Burden against sensitivity</h2>
-<figure>{{.Frontier}}<figcaption>Each circle is one profile of the grid. Filled: Pareto-optimal (no other profile has
-fewer alarms per device-day and at least the same sensitivity).</figcaption></figure>
+<figure>{{.Frontier}}<figcaption>Each circle is one profile of the grid (hover for its settings). Filled and joined:
+Pareto-optimal profiles (no other profile has fewer alarms per device-day and at least the same sensitivity).
+Axes are zoomed to the data.</figcaption></figure>
 
 <h2>Alarms per day against the limit</h2>
 {{if .LimitSVG}}<figure>{{.LimitSVG}}<figcaption>{{.LimitCap}}</figcaption></figure>{{else}}<p>{{.LimitCap}}</p>{{end}}
 
 <h2>Best profiles (Pareto-optimal, fewest alarms first)</h2>
-<table><tr><th class="l">profile</th>{{range .Keys}}<th>{{.}}</th>{{end}}<th>alarms / device-day</th><th>high</th><th>medium</th><th>low</th><th>time in alarm %</th>
+<p>Alarms per device-day in total and by priority (an episode counts at the highest priority it reached);
+delays from event start to announcement.</p>
+<table><tr><th class="l">profile</th>{{range .KeysHTML}}<th>{{.}}</th>{{end}}<th>alarms per day</th><th>high per day</th><th>medium per day</th><th>low per day</th><th>in alarm %</th>
 <th>sensitivity %</th><th>PPV %</th><th>median delay s</th><th>p90 delay s</th></tr>
 {{range .Best}}<tr><td class="l">{{.Short}}</td>{{range .Values}}<td>{{.}}</td>{{end}}<td>{{.PerDay}}</td><td>{{.High}}</td><td>{{.Medium}}</td><td>{{.Low}}</td><td>{{.InAlarm}}</td>
 <td>{{.Sens}}</td><td>{{.PPV}}</td><td>{{.Delay}}</td><td>{{.P90}}</td></tr>
@@ -171,7 +174,7 @@ full profile is in <code>profiles/NAME.yaml</code> beside this report, so any ro
 <pre>{{.GridText}}</pre>
 {{if .Info.Command}}<p>Command: <code>{{.Info.Command}}</code></p>{{end}}
 <details><summary>All {{.Points}} grid points</summary>
-<table><tr><th class="l">profile</th>{{range .Keys}}<th>{{.}}</th>{{end}}<th>episodes</th><th>alarms / device-day</th><th>time in alarm %</th><th>median episode s</th>
+<table><tr><th class="l">profile</th>{{range .KeysHTML}}<th>{{.}}</th>{{end}}<th>episodes</th><th>alarms / device-day</th><th>time in alarm %</th><th>median episode s</th>
 <th>sensitivity %</th><th>PPV %</th><th>median delay s</th><th>Pareto</th></tr>
 {{range .All}}<tr><td class="l">{{.Name}}</td>{{range .Values}}<td>{{.}}</td>{{end}}<td>{{.Episodes}}</td><td>{{.PerDay}}</td><td>{{.InAlarm}}</td><td>{{.MedS}}</td>
 <td>{{.Sens}}</td><td>{{.PPV}}</td><td>{{.Delay}}</td><td>{{if .Pareto}}yes{{end}}</td></tr>

@@ -26,7 +26,7 @@ type plot struct {
 }
 
 func newPlot(title, xlabel, ylabel string, x0, x1, y0, y1 float64) *plot {
-	p := &plot{w: 680, h: 420, left: 70, right: 20, top: 40, bot: 55,
+	p := &plot{w: 900, h: 430, left: 70, right: 20, top: 40, bot: 55,
 		title: title, xlabel: xlabel, ylabel: ylabel}
 	p.xticks, p.x0, p.x1 = niceTicks(x0, x1)
 	p.yticks, p.y0, p.y1 = niceTicks(y0, y1)
@@ -97,15 +97,26 @@ func tickLabel(v float64) string { return strconv.FormatFloat(v, 'g', 6, 64) }
 // sensitivity for every grid point; Pareto-optimal points are filled,
 // joined and labelled.
 func FrontierSVG(res *Result) string {
-	xmax, anySens := 0.0, false
+	xlo, xhi, ylo, anySens := math.Inf(1), math.Inf(-1), 100.0, false
 	for _, r := range res.Rows {
 		if finite(r.PerDeviceDay) {
-			xmax = max(xmax, r.PerDeviceDay)
+			xlo, xhi = min(xlo, r.PerDeviceDay), max(xhi, r.PerDeviceDay)
 		}
-		anySens = anySens || finite(r.Sensitivity)
+		if finite(r.Sensitivity) {
+			anySens = true
+			ylo = min(ylo, 100*r.Sensitivity)
+		}
 	}
+	if !anySens {
+		ylo = 0
+	}
+	if math.IsInf(xlo, 1) {
+		xlo, xhi = 0, 1
+	}
+	// Zoom to the data: the axes need not start at zero.
+	pad := max((xhi-xlo)*0.06, xhi*0.01, 0.01)
 	p := newPlot("Alarm burden against sensitivity", "alarms per device-day (all conditions)",
-		"sensitivity (% of reference events)", 0, xmax*1.05, 0, 100)
+		"sensitivity (% of reference events)", max(0, xlo-pad), xhi+pad, max(0, ylo-5), 100)
 	p.frame()
 	if !anySens {
 		fmt.Fprintf(&p.b, `<text x="%g" y="%g" font-size="13" fill="#aa0000">no reference events in the data: sensitivity undefined</text>`, p.left+10, p.top+20)
@@ -254,7 +265,7 @@ func buildLimitChart(res *Result) limitChart {
 	}
 	// y[delay][limit]
 	y := make([][]float64, len(delays))
-	ymax := 0.0
+	ymax, ymin := 0.0, math.Inf(1)
 	for d := range delays {
 		y[d] = make([]float64, len(limits))
 		for l := range limits {
@@ -278,8 +289,11 @@ func buildLimitChart(res *Result) limitChart {
 		}
 		y[d][l] = res.Rows[i].PerDeviceDay
 		if finite(y[d][l]) {
-			ymax = max(ymax, y[d][l])
+			ymax, ymin = max(ymax, y[d][l]), min(ymin, y[d][l])
 		}
+	}
+	if math.IsInf(ymin, 1) {
+		ymin = 0
 	}
 	xlo, xhi := slices.Min(lim), slices.Max(lim)
 	if xhi == xlo {
@@ -296,8 +310,9 @@ func buildLimitChart(res *Result) limitChart {
 			unit = " (points below baseline)"
 		}
 	}
+	ypad := max((ymax-ymin)*0.08, ymax*0.01, 0.01)
 	p := newPlot("Alarms per device-day against "+cond+" limit", cond+" limit"+unit,
-		"alarms per device-day (all conditions)", xlo, xhi, 0, ymax*1.08)
+		"alarms per device-day (all conditions)", xlo, xhi, max(0, ymin-ypad), ymax+ypad)
 	p.frame()
 	order := make([]int, len(limits))
 	for i := range order {
