@@ -376,29 +376,35 @@ func (g *Gateway) ListDeviceQuality(ctx context.Context, _ *pb.ListDeviceQuality
 }
 
 // deviceQuality assembles a device's quality figures: counters from its
-// cursor, distributions from memory, uptime from its stored sessions.
+// cursor (persisted), distributions, shares, drift and rate from memory
+// (since the gateway started; see quality.go), uptime from its stored
+// sessions and the open one.
 func (g *Gateway) deviceQuality(d *device) (*pb.DeviceQuality, error) {
 	nowMS := g.nowMS()
-	sessions, err := g.db.Sessions(d.id, nowMS-7*24*3600*1000-24*3600*1000)
+	const week = 7 * 24 * time.Hour
+	// Sessions that started inside the 7-day window, plus a day before it for
+	// sessions that started earlier and ended inside it. An open session is
+	// taken from memory, however long ago it started.
+	sessions, err := g.db.Sessions(d.id, nowMS-(week+24*time.Hour).Milliseconds())
 	if err != nil {
-		return nil, status.Errorf(codes.Internal, "%v", err)
+		return nil, status.Errorf(codes.Internal, "sessions of %s: %v", d.id, err)
 	}
 	d.mu.Lock()
 	defer d.mu.Unlock()
 	q := &pb.DeviceQuality{
-		DeviceId: d.id, Sessions: d.desc.Sessions, Reconnects: d.q.reconnects,
+		DeviceId: d.id, Sessions: d.desc.Sessions,
 		ChunksLost: d.cur.Lost, Duplicates: d.cur.Duplicates, LateChunks: d.cur.Late,
 		ChunksAccepted: d.cur.Chunks, ChunksRejected: d.cur.Rejected, BatteryPct: d.desc.BatteryPct,
 	}
 	if d.desc.Sessions > 0 {
 		q.Reconnects = d.desc.Sessions - 1
 	}
+	q.ClockDriftPpm = d.desc.DriftPPM // the last estimate stored, until memory has one
 	if v := d.q.driftPPM(); !math.IsNaN(v) {
 		q.ClockDriftPpm = v
 	}
-	if span := d.q.lastDevMS - d.q.firstDevMS; span > 0 && d.q.rateSamples > 0 {
-		// samples up to (not including) the last chunk, over the device time they span
-		q.EffectiveSampleRateHz = float64(d.q.rateSamples-lastChunkSamples(d)) / (float64(span) / 1000)
+	if v := d.q.effectiveRateHz(); !math.IsNaN(v) {
+		q.EffectiveSampleRateHz = v
 	}
 	if d.q.seconds > 0 {
 		n := float64(d.q.seconds)
@@ -406,36 +412,34 @@ func (g *Gateway) deviceQuality(d *device) (*pb.DeviceQuality, error) {
 		q.ClippingShare = float64(d.q.clipping) / n
 		q.LowResolutionShare = float64(d.q.lowRes) / n
 	}
-	if n, p10, p50, p90 := d.q.sqi.percentiles(); n > 0 {
-		q.Sqi = &pb.Distribution{Count: uint64(n), P10: p10, P50: p50, P90: p90}
+	if n, pos := d.q.sqi.quantiles(); n > 0 {
+		q.Sqi = &pb.Distribution{Count: n, P10: sqiValue(pos[0]), P50: sqiValue(pos[1]), P90: sqiValue(pos[2])}
 	}
-	if n, p10, p50, p90 := d.q.pi.percentiles(); n > 0 {
-		q.PiPct = &pb.Distribution{Count: uint64(n), P10: p10, P50: p50, P90: p90}
+	if n, pos := d.q.pi.quantiles(); n > 0 {
+		q.PiPct = &pb.Distribution{Count: n, P10: piValue(pos[0]), P50: piValue(pos[1]), P90: piValue(pos[2])}
 	}
 	open := d.stream != nil
 	up := func(window time.Duration) float64 {
 		from := nowMS - window.Milliseconds()
 		var on int64
+		seenOpen := false
 		for _, s := range sessions {
 			end := s.EndMS
 			if end == 0 {
-				if open && s.StartMS == d.sessionMS {
-					end = nowMS
-				} else {
-					continue // never closed: the gateway died; counted as down
+				if !open || s.StartMS != d.sessionMS {
+					continue // never closed: the gateway stopped without closing it; counted as down
 				}
+				end, seenOpen = nowMS, true
 			}
-			start := max(s.StartMS, from)
-			if end > start {
-				on += end - start
+			if start := max(s.StartMS, from); min(end, nowMS) > start {
+				on += min(end, nowMS) - start
 			}
 		}
-		return math.Min(1, float64(on)/float64(window.Milliseconds()))
+		if open && !seenOpen && d.sessionMS < nowMS {
+			on += nowMS - max(d.sessionMS, from) // the open session started before the sessions read
+		}
+		return math.Max(0, math.Min(1, float64(on)/float64(window.Milliseconds())))
 	}
-	q.Uptime_1H, q.Uptime_24H, q.Uptime_7D = up(time.Hour), up(24*time.Hour), up(7*24*time.Hour)
+	q.Uptime_1H, q.Uptime_24H, q.Uptime_7D = up(time.Hour), up(24*time.Hour), up(week)
 	return q, nil
 }
-
-// lastChunkSamples is the size of the newest chunk, whose own duration is not
-// inside [first, last] device time. Caller holds d.mu.
-func lastChunkSamples(d *device) uint64 { return d.q.lastChunk }

@@ -11,7 +11,11 @@ import (
 // built in, the page and its JSON.
 func (g *Gateway) httpHandler() http.Handler {
 	mux := http.NewServeMux()
-	mux.Handle("GET /metrics", promhttp.HandlerFor(g.opt.Gatherer, promhttp.HandlerOpts{ErrorLog: nil, Registry: g.opt.Registerer}))
+	metricsH := promhttp.HandlerFor(g.opt.Gatherer, promhttp.HandlerOpts{ErrorLog: nil, Registry: g.opt.Registerer})
+	mux.Handle("GET /metrics", http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		g.refreshDeviceSeries() // per-device gauges as of this scrape
+		metricsH.ServeHTTP(w, r)
+	}))
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
 		w.Header().Set("Content-Type", "text/plain; charset=utf-8")
 		fmt.Fprintln(w, "ok")

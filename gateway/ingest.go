@@ -291,13 +291,9 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 		d.desc.FirstSeenMS = nowMS
 	}
 	d.desc.LastSeenMS = nowMS
-	if d.desc.Sessions > 0 {
-		d.q.reconnects++
-	}
+	d.q.startSession(d.desc.Sessions == 0) // quality accounting
 	d.desc.Sessions++
-	d.q.sessions++
 	d.sessionMS = nowMS
-	d.q.rateSamples, d.q.lastChunk, d.q.firstDevMS = 0, 0, 0
 	desc := d.desc
 	g.ensureEngine(d)
 	var evs []alarms.Event
@@ -468,18 +464,11 @@ func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples ui
 	} else {
 		d.offsetMS += (off - d.offsetMS) / 64
 	}
-	late := float64(nowMS)+d.offsetMS-float64(devMS) > float64(g.opt.LateAfter.Milliseconds())
+	// Quality accounting: clock drift, effective rate, and lateness against
+	// the least-delayed recent messages (immune to resent backlogs).
+	late := d.q.addChunk(nowMS, devMS, samples, g.opt.LateAfter)
 	if late {
 		d.cur.Late++
-	}
-	d.q.addClock(nowMS, devMS)
-	if samples > 0 {
-		if d.q.firstDevMS == 0 {
-			d.q.firstDevMS = devMS
-		}
-		d.q.rateSamples += uint64(samples)
-		d.q.lastDevMS = devMS
-		d.q.lastChunk = uint64(samples)
 	}
 	d.mu.Unlock()
 	if gap > 0 {
@@ -622,6 +611,9 @@ func (s *stream) finish(ctx context.Context) {
 	reason := "closed"
 	if c := context.Cause(ctx); c != nil && !errors.Is(c, context.Canceled) {
 		reason = c.Error()
+	}
+	if v := d.q.driftPPM(); !math.IsNaN(v) {
+		d.desc.DriftPPM = v // quality accounting: the last drift estimate outlives restarts
 	}
 	desc := d.desc
 	desc.LastSeenMS = nowMS

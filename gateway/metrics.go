@@ -1,12 +1,17 @@
 package gateway
 
 import (
+	"math"
+
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 )
 
 // metrics are the gateway's Prometheus series. Labels are bounded: reasons,
-// modes, conditions and priorities are fixed sets.
+// modes, conditions and priorities are fixed sets. Only the four
+// pulsefleet_device_* gauges carry a device label (one series per known
+// device each); they are refreshed when /metrics is served and deleted when
+// a device is forgotten.
 type metrics struct {
 	connected        prometheus.Gauge
 	streams          *prometheus.CounterVec // by outcome of the stream's end
@@ -33,6 +38,12 @@ type metrics struct {
 	watchDropped     prometheus.Counter
 	authFailures     *prometheus.CounterVec // by reason
 	storeBytes       prometheus.GaugeFunc
+
+	// per device (label "device")
+	devConnected *prometheus.GaugeVec
+	devValidSpO2 *prometheus.GaugeVec
+	devDrift     *prometheus.GaugeVec
+	devBattery   *prometheus.GaugeVec
 }
 
 func newMetrics(reg prometheus.Registerer, storeSize func() float64) (*metrics, error) {
@@ -86,18 +97,54 @@ func newMetrics(reg prometheus.Registerer, storeSize func() float64) (*metrics, 
 		authFailures: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "pulsefleet_auth_failures_total",
 			Help: "Refused credentials, by reason."}, []string{"reason"}),
 	}
+	m.devConnected = prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "pulsefleet_device_connected",
+		Help: "1 while the device has an open ingest stream, 0 otherwise (one series per known device)."}, []string{"device"})
+	m.devValidSpO2 = prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "pulsefleet_device_valid_spo2_ratio",
+		Help: "Share of the device's last 300 trend seconds with a valid SpO2, 0..1 (absent before its first second)."}, []string{"device"})
+	m.devDrift = prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "pulsefleet_device_clock_drift_ppm",
+		Help: "Device clock drift against the gateway clock, parts per million, positive when the device runs fast (absent until 5 minutes of observations)."}, []string{"device"})
+	m.devBattery = prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "pulsefleet_device_battery_ratio",
+		Help: "Last battery charge the device reported, 0..1 (absent when unknown)."}, []string{"device"})
 	m.storeBytes = prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "pulsefleet_store_size_bytes",
 		Help: "Size of the store file."}, storeSize)
 	cs := []prometheus.Collector{m.connected, m.streams, m.messages, m.samples, m.rejected, m.duplicates, m.lost,
 		m.late, m.replaced, m.panics, m.trendPoints, m.estimatorSeconds, m.estimatorFlags, m.commitSeconds,
 		m.batchRecords, m.durableSeconds, m.writerQueue, m.storeErrors, m.alarmsActive, m.announcements,
-		m.episodeEvents, m.watchers, m.watchDropped, m.authFailures, m.storeBytes}
+		m.episodeEvents, m.watchers, m.watchDropped, m.authFailures, m.storeBytes,
+		m.devConnected, m.devValidSpO2, m.devDrift, m.devBattery}
 	for _, c := range cs {
 		if err := reg.Register(c); err != nil {
 			return nil, err
 		}
 	}
 	return m, nil
+}
+
+// deviceSeries sets a device's labelled gauges; a NaN value removes that
+// series (the figure is unknown).
+func (m *metrics) deviceSeries(id string, connected bool, validShare, driftPPM, batteryRatio float64) {
+	c := 0.0
+	if connected {
+		c = 1
+	}
+	m.devConnected.WithLabelValues(id).Set(c)
+	for _, s := range []struct {
+		v   *prometheus.GaugeVec
+		val float64
+	}{{m.devValidSpO2, validShare}, {m.devDrift, driftPPM}, {m.devBattery, batteryRatio}} {
+		if math.IsNaN(s.val) {
+			s.v.DeleteLabelValues(id)
+		} else {
+			s.v.WithLabelValues(id).Set(s.val)
+		}
+	}
+}
+
+// deleteDevice removes every series labelled with the device.
+func (m *metrics) deleteDevice(id string) {
+	for _, v := range []*prometheus.GaugeVec{m.devConnected, m.devValidSpO2, m.devDrift, m.devBattery} {
+		v.DeleteLabelValues(id)
+	}
 }
 
 // RegisterRuntime adds the Go and process collectors to reg (the caller
