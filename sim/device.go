@@ -699,6 +699,7 @@ func (d *device) welcome(resume uint64, st pulsefleetv1.IngestService_ConnectCli
 
 func (d *device) onAck(through uint64) {
 	now := d.f.since()
+	d.f.c.lastAck.Store(int64(now))
 	d.mu.Lock()
 	defer d.mu.Unlock()
 	for d.head < len(d.buf) && d.buf[d.head].seq <= through {

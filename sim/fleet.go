@@ -25,6 +25,7 @@ type counters struct {
 	drops, redirects, streamErrors, renumbered, regress atomic.Uint64
 	overflow, statuses, rejectedOther                   atomic.Uint64
 	outstanding, connected                              atomic.Int64
+	lastAck                                             atomic.Int64 // since t0, ns, of the latest acknowledgement
 }
 
 // fleet is one run.
@@ -332,8 +333,8 @@ func (f *fleet) report(sending time.Duration) *Report {
 		DurationS: round3(sending.Seconds()), Speed: f.speed,
 		PerDevice: make(map[string]DeviceReport, len(f.devices)),
 	}
-	if sending > 0 {
-		r.SamplesPerS = math.Round(float64(r.SamplesAcked) / sending.Seconds())
+	if span := max(sending, time.Duration(c.lastAck.Load())); span > 0 {
+		r.SamplesPerS = math.Round(float64(r.SamplesAcked) / span.Seconds())
 	}
 	f.errMu.Lock()
 	r.LastError = f.lastErr

@@ -137,7 +137,9 @@ type Report struct {
 	AckP50Ms     float64 `json:"ack_p50_ms"`    // first send to covering Ack, median
 	AckP99Ms     float64 `json:"ack_p99_ms"`    // and 99th percentile
 	SamplesAcked uint64  `json:"samples_acked"` // samples in frames_acked
-	// SamplesPerS is samples_acked per second of sending time.
+	// SamplesPerS is samples_acked per second of sending time, or of the
+	// time until the last acknowledgement when that came later (a target
+	// that falls behind is measured at the rate it caught up).
 	SamplesPerS      float64 `json:"samples_per_s"`
 	CorruptSent      uint64  `json:"corrupt_sent"`      // corrupt frames generated and sent
 	CorruptAcked     uint64  `json:"corrupt_acked"`     // corrupt frames an Ack covered without a rejection: the peer accepted garbage

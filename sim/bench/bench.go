@@ -39,15 +39,13 @@ import (
 type Target interface {
 	// Addr is its gRPC address.
 	Addr() string
-	// DurableSamples reports the samples it holds durably per device id;
-	// called after the load has stopped and before Stop.
-	DurableSamples(ctx context.Context) (map[string]uint64, error)
-	// Stop shuts it down and releases its resources.
-	Stop() error
+	// Stop shuts it down gracefully, releases its resources and reports
+	// the raw samples it holds durably per device id.
+	Stop(ctx context.Context) (held map[string]uint64, err error)
 }
 
-// StartFunc starts a target listening on lis.
-type StartFunc func(ctx context.Context, lis net.Listener) (Target, error)
+// StartFunc starts a target on a loopback address of its choosing.
+type StartFunc func(ctx context.Context) (Target, error)
 
 // Phase names a target to run the load against.
 type Phase struct {
@@ -138,7 +136,11 @@ type Result struct {
 
 // SinkPhase is the bare sink.
 func SinkPhase() Phase {
-	return Phase{Name: "sink", Start: func(ctx context.Context, lis net.Listener) (Target, error) {
+	return Phase{Name: "sink", Start: func(ctx context.Context) (Target, error) {
+		lis, err := net.Listen("tcp", "127.0.0.1:0")
+		if err != nil {
+			return nil, fmt.Errorf("listen: %w", err)
+		}
 		return sinkTarget{sink.Start(lis, sink.Options{})}, nil
 	}}
 }
@@ -146,14 +148,14 @@ func SinkPhase() Phase {
 type sinkTarget struct{ r *sink.Running }
 
 func (s sinkTarget) Addr() string { return s.r.Addr() }
-func (s sinkTarget) Stop() error  { return s.r.Stop(5 * time.Second) }
-func (s sinkTarget) DurableSamples(context.Context) (map[string]uint64, error) {
+func (s sinkTarget) Stop(context.Context) (map[string]uint64, error) {
+	err := s.r.Stop(5 * time.Second)
 	out := map[string]uint64{}
 	for _, id := range s.r.DeviceIDs() {
 		d, _ := s.r.Device(id)
 		out[id] = d.Samples
 	}
-	return out, nil
+	return out, err
 }
 
 // Run runs the load against each phase in order (normally the sink, then
@@ -213,19 +215,14 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 	peak := startPeak()
 	defer peak.stop()
 
-	lis, err := net.Listen("tcp", "127.0.0.1:0")
+	tgt, err := ph.Start(ctx)
 	if err != nil {
-		return nil, fmt.Errorf("listen: %w", err)
-	}
-	tgt, err := ph.Start(ctx, lis)
-	if err != nil {
-		lis.Close()
 		return nil, err
 	}
 	stopped := false
 	defer func() {
 		if !stopped {
-			tgt.Stop()
+			tgt.Stop(context.WithoutCancel(ctx))
 		}
 	}()
 	if opts.Progress != nil {
@@ -248,6 +245,7 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 		Gateway: tgt.Addr(), Devices: opts.Devices, IDPrefix: "bench", Mode: sim.ModeRaw,
 		RateHz: opts.RateHz, Chunk: opts.Chunk, Duration: opts.Duration, Seed: opts.Seed,
 		Progress: opts.Progress, ProgressEvery: opts.ProgressEvery, DevicesPerConn: opts.DevicesPerConn,
+		Drain: max(10*time.Second, opts.Duration),
 	})
 	cpu1, wall1 := cpuTime(), time.Now()
 	if prof != nil {
@@ -262,18 +260,15 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 		pr.CPUCores = math.Round((cpu1-cpu0).Seconds()/w*100) / 100
 		pr.ClientCores = math.Round(usage.CPU.Seconds()/w*100) / 100
 	}
-	held, err := tgt.DurableSamples(ctx)
+	stopped = true
+	held, err := tgt.Stop(context.WithoutCancel(ctx))
 	if err != nil {
-		return nil, fmt.Errorf("count durable samples: %w", err)
+		return nil, fmt.Errorf("stop and count durable samples: %w", err)
 	}
 	for id, d := range rep.PerDevice {
 		if h := held[id]; h < d.SamplesAcked {
 			pr.Lost += d.SamplesAcked - h
 		}
-	}
-	stopped = true
-	if err := tgt.Stop(); err != nil {
-		return nil, fmt.Errorf("stop: %w", err)
 	}
 	pr.PeakRSSBytes, pr.RSSExact = peak.stop()
 	if opts.Progress != nil {

@@ -42,6 +42,9 @@ func ExecClient(exe string, progress io.Writer, cpuProfile string) ClientFunc {
 			"--rate", strconv.FormatFloat(o.RateHz, 'g', -1, 64), "--chunk", strconv.Itoa(o.Chunk),
 			"--duration", o.Duration.String(), "--seed", strconv.FormatUint(o.Seed, 10),
 			"--progress-every", every.String(), "--per-device-out", perDev}
+		if o.Drain != 0 {
+			args = append(args, "--drain", o.Drain.String())
+		}
 		if o.DevicesPerConn > 0 {
 			args = append(args, "--devices-per-conn", strconv.Itoa(o.DevicesPerConn))
 		}
