@@ -40,17 +40,19 @@ type stream struct {
 	remote string
 	id     string
 
-	acked  atomic.Uint64
-	wake   chan struct{} // cap 1: the sender has an ack to send
-	out    chan *pb.ConnectResponse
-	drops  atomic.Uint64
-	mode   pb.Mode
-	adc    uint32
-	redNM  float64
-	irNM   float64
-	calRef string
-	cal    estimator.Calibration
-	bucket tokenBucket // message-rate limit (ratelimit.go)
+	acked   atomic.Uint64
+	wake    chan struct{} // cap 1: the sender has an ack to send
+	msgs    chan *pb.ConnectRequest
+	recvErr chan error
+	out     chan *pb.ConnectResponse
+	drops   atomic.Uint64
+	mode    pb.Mode
+	adc     uint32
+	redNM   float64
+	irNM    float64
+	calRef  string
+	cal     estimator.Calibration
+	bucket  tokenBucket // message-rate limit (ratelimit.go)
 
 	// raw pipeline (owned by the handler goroutine)
 	est         *estimator.Stream
@@ -138,7 +140,8 @@ func (g *Gateway) Connect(gs pb.IngestService_ConnectServer) (err error) {
 	ctx, cancel := context.WithCancelCause(gs.Context())
 	defer cancel(nil)
 	s := &stream{g: g, grpc: gs, cancel: cancel, ended: make(chan struct{}),
-		wake: make(chan struct{}, 1), out: make(chan *pb.ConnectResponse, sendQueue)}
+		wake: make(chan struct{}, 1), out: make(chan *pb.ConnectResponse, sendQueue),
+		msgs: make(chan *pb.ConnectRequest), recvErr: make(chan error, 1)}
 	defer close(s.ended)
 	if p, ok := peer.FromContext(ctx); ok {
 		s.remote = p.Addr.String()
@@ -151,6 +154,7 @@ func (g *Gateway) Connect(gs pb.IngestService_ConnectServer) (err error) {
 		}
 	}()
 
+	go s.reader(ctx)
 	var wg sync.WaitGroup
 	senderErr := make(chan error, 1)
 	wg.Add(1)
@@ -180,13 +184,36 @@ func (s *stream) devID() string {
 	return s.dev.id
 }
 
-// recv receives one message, with the stream's context.
-func (s *stream) recv() (*pb.ConnectRequest, error) {
-	m, err := s.grpc.Recv()
-	if err != nil {
+// recv returns the next message from the device, or the stream's end: the
+// transport's error, or the cause when the stream is cancelled (replaced by a
+// newer stream, gateway shutting down), which gRPC's Recv alone cannot see.
+func (s *stream) recv(ctx context.Context) (*pb.ConnectRequest, error) {
+	select {
+	case m := <-s.msgs:
+		return m, nil
+	case err := <-s.recvErr:
 		return nil, err
+	case <-ctx.Done():
+		return nil, context.Cause(ctx)
 	}
-	return m, nil
+}
+
+// reader owns gRPC's Recv for the RPC's lifetime: it hands each message over
+// and stops at the first error. It ends with the RPC (when the handler has
+// returned, gRPC cancels the stream and Recv fails).
+func (s *stream) reader(ctx context.Context) {
+	for {
+		m, err := s.grpc.Recv()
+		if err != nil {
+			s.recvErr <- err
+			return
+		}
+		select {
+		case s.msgs <- m:
+		case <-ctx.Done():
+			return
+		}
+	}
 }
 
 // introduce waits for a valid introduction, rejecting anything else.
@@ -196,7 +223,7 @@ func (s *stream) introduce(ctx context.Context) error {
 	defer timer.Stop()
 	rejects := 0
 	for {
-		m, err := s.recv()
+		m, err := s.recv(ctx)
 		if err != nil {
 			if c := context.Cause(ctx); c != nil && c.Error() == "no introduction" {
 				return status.Errorf(codes.DeadlineExceeded, "introduction: none within %v of connecting", introTimeout)
@@ -333,7 +360,7 @@ var errReplaced = errors.New("replaced by a newer stream of the same device")
 // loop receives and processes data messages until the stream ends.
 func (s *stream) loop(ctx context.Context) error {
 	for {
-		m, err := s.recv()
+		m, err := s.recv(ctx)
 		if err != nil {
 			if errors.Is(err, io.EOF) {
 				return nil
@@ -341,7 +368,7 @@ func (s *stream) loop(ctx context.Context) error {
 			if c := context.Cause(ctx); errors.Is(c, errReplaced) {
 				return status.Error(codes.Aborted, errReplaced.Error())
 			}
-			if status.Code(err) == codes.Canceled && s.g.stopping.Load() {
+			if s.g.stopping.Load() {
 				return status.Error(codes.Unavailable, "gateway shutting down; reconnect")
 			}
 			return err
