@@ -26,6 +26,11 @@ func compileFHIRSchema(t testing.TB, path string) *jsonschema.Schema {
 	if err != nil {
 		t.Fatalf("schema %s: %v", path, err)
 	}
+	// The right file: HL7's FHIR R4 schema (draft-06, id .../json-schema/4.0),
+	// not an STU3 or R5 one.
+	if m, ok := doc.(map[string]any); !ok || m["id"] != "http://hl7.org/fhir/json-schema/4.0" || m["$schema"] != "http://json-schema.org/draft-06/schema#" {
+		t.Fatalf("%s is not the FHIR R4 JSON schema (id %v, $schema %v)", path, m["id"], m["$schema"])
+	}
 	c := jsonschema.NewCompiler()
 	const url = "https://schema.pulsefleet.invalid/fhir.schema.json"
 	if err := c.AddResource(url, doc); err != nil {
