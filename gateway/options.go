@@ -56,6 +56,12 @@ type Options struct {
 	Retention store.Retention
 	// MaxPause bounds PauseAlarms; 0 means the profile's pause_max.
 	GracefulTimeout time.Duration // 0 means 10 s
+	// Peers is the gRPC address of every gateway sharing the fleet (the same
+	// list on each); empty means this gateway serves every device. Self is
+	// this gateway's entry in Peers. A device whose rendezvous owner
+	// (package shard) is another peer is redirected there.
+	Peers []string
+	Self  string
 	// GRPCServerOptions are added to the gRPC server's (TLS credentials, interceptors).
 	GRPCServerOptions []grpc.ServerOption
 }
@@ -101,6 +107,15 @@ func (o *Options) setDefaults() error {
 	}
 	if o.WatchdogEvery == 0 {
 		o.WatchdogEvery = time.Second
+	}
+	if len(o.Peers) > 0 {
+		found := false
+		for _, p := range o.Peers {
+			found = found || p == o.Self
+		}
+		if !found {
+			return fmt.Errorf("gateway: Options.Self %q is not one of Options.Peers %v", o.Self, o.Peers)
+		}
 	}
 	if o.GracefulTimeout == 0 {
 		o.GracefulTimeout = 10 * time.Second

@@ -21,6 +21,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/shard"
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
@@ -46,6 +47,8 @@ type Gateway struct {
 	stopping atomic.Bool
 	failed   atomic.Pointer[error]
 
+	ring *shard.Ring // nil without sharding
+
 	// Extension points set by other parts of the package (auth, sharding, web).
 	auth       *authState // credentials, roles, limits (auth.go)
 	grpcOpts   []grpc.ServerOption
@@ -65,6 +68,13 @@ func New(opt Options) (*Gateway, error) {
 		return nil, fmt.Errorf("gateway: metrics: %w", err)
 	}
 	g.m = m
+	if len(opt.Peers) > 0 {
+		r, err := shard.NewRing(opt.Peers)
+		if err != nil {
+			return nil, fmt.Errorf("gateway: peers: %w", err)
+		}
+		g.ring = r
+	}
 	if g.opt.ResolveCalibration == nil {
 		g.opt.ResolveCalibration = g.resolveStoredCalibration
 	}
@@ -445,8 +455,16 @@ func (g *Gateway) audit(ctx context.Context, actor, action, device, detail, remo
 }
 
 // ownerOf returns the address of the gateway that owns deviceID when it is
-// not this one ("" = this one; see sharding).
-func (g *Gateway) ownerOf(deviceID string) string { return "" }
+// not this one ("" = this one, or no sharding).
+func (g *Gateway) ownerOf(deviceID string) string {
+	if g.ring == nil {
+		return ""
+	}
+	if o := g.ring.Owner(deviceID); o != g.opt.Self {
+		return o
+	}
+	return ""
+}
 
 // assignedCalibration returns the calibration assigned to a device or its model.
 func (g *Gateway) assignedCalibration(deviceID, model string) string {

@@ -19,6 +19,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/gateway"
 	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/shard"
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
@@ -78,6 +79,15 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.StringVar(&c.TLSKey, "tls-key", c.TLSKey, "TLS private key file (PEM)")
 	fs.StringVar(&c.ClientCA, "client-ca", c.ClientCA, "CA file (PEM): devices must present a certificate it signed")
 	fs.StringVar(&c.LogLevel, "log-level", c.LogLevel, "log level: debug, info, warn, error")
+	fs.Func("peers", "comma-separated gRPC addresses of every gateway sharing the fleet (the same list on each); devices owned by another peer (rendezvous hashing) are redirected there", func(v string) error {
+		p, err := shard.ParsePeers(v)
+		if err != nil {
+			return err
+		}
+		c.Peers = p
+		return nil
+	})
+	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
 }
 
 // loadServeConfig reads a YAML config file; unknown keys and bad values are
@@ -124,6 +134,29 @@ func (c *serveConfig) validate() error {
 				return fmt.Errorf("%s: %q is not a loopback address; without TLS pulsefleet listens only on loopback unless --insecure is given", f.key, f.v)
 			}
 		}
+	}
+	if len(c.Peers) > 0 {
+		if _, err := shard.NewRing(c.Peers); err != nil {
+			return fmt.Errorf("peers: %v", err)
+		}
+		if c.Self == "" {
+			host, err := os.Hostname()
+			if err != nil {
+				return fmt.Errorf("self: not given and no hostname: %v", err)
+			}
+			if c.Self, err = shard.SelfFromHostname(host, c.Peers); err != nil {
+				return fmt.Errorf("self: not given, and the hostname does not pick one of --peers: %v", err)
+			}
+		}
+		found := false
+		for _, p := range c.Peers {
+			found = found || p == c.Self
+		}
+		if !found {
+			return fmt.Errorf("self: %q is not one of --peers %v", c.Self, c.Peers)
+		}
+	} else if c.Self != "" {
+		return fmt.Errorf("self: given without --peers")
 	}
 	switch c.LogLevel {
 	case "debug", "info", "warn", "error":
@@ -177,7 +210,7 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		return nil, nil, err
 	}
 	opt := gateway.Options{Store: db, Registerer: reg, Logger: log, DefaultProfile: prof, CaptureRaw: c.CaptureRaw,
-		BatchDelay: c.BatchDelay, Retention: store.Retention{TrendDays: c.TrendDays, RawDays: c.RawDays, LedgerDays: c.LedgerDays}}
+		BatchDelay: c.BatchDelay, Peers: c.Peers, Self: c.Self, Retention: store.Retention{TrendDays: c.TrendDays, RawDays: c.RawDays, LedgerDays: c.LedgerDays}}
 	sec, err := securityOptions(c)
 	if err != nil {
 		db.Close()
