@@ -152,3 +152,34 @@ func TestGenericIsSeedDerived(t *testing.T) {
 		t.Errorf("%d background desaturations in 24 h at 2/h, want about 48", n)
 	}
 }
+
+// Whatever the input, Parse either rejects it with a "scenario:" error or
+// returns a fleet whose ids are valid and unique and whose events belong to
+// it; it never panics.
+func FuzzParse(f *testing.F) {
+	f.Add([]byte(minimal))
+	f.Add([]byte("name: t\ndevices: [{id: a}]\nevents: [{at: 1m, device: a, motion: {for: 1m}}]\n"))
+	f.Add([]byte("name: t\ndevices: [{id: a, labels: {bed: 1}}]\ndefaults: {patient: {spo2_pct: 90}}\n"))
+	f.Add([]byte("{"))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		sc, err := Parse(data)
+		if err != nil {
+			if !strings.HasPrefix(err.Error(), "scenario: ") {
+				t.Fatalf("error without prefix: %v", err)
+			}
+			return
+		}
+		seen := map[string]bool{}
+		for _, d := range sc.Devices {
+			if !idRE.MatchString(d.ID) || seen[d.ID] {
+				t.Fatalf("bad or duplicate id %q", d.ID)
+			}
+			seen[d.ID] = true
+			tr := NewTrack(&d, 1, time.Hour)
+			st := tr.At(30 * time.Minute)
+			if st.SpO2Pct > 100 || st.BatteryPct < 0 {
+				t.Fatalf("state out of range: %+v", st)
+			}
+		}
+	})
+}
