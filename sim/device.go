@@ -329,7 +329,7 @@ func (d *device) generate(st *scenario.State) {
 	d.nextSeq++
 	d.buf = append(d.buf, c)
 	f.c.outstanding.Add(1)
-	if d.unacked() > f.maxBuf {
+	if len(d.buf)-d.head > f.maxBuf {
 		old := d.buf[d.head]
 		d.popFront()
 		if !old.done {
@@ -367,7 +367,18 @@ func (d *device) popFront() {
 		c.recycle = true
 		return
 	}
-	d.free = append(d.free, c)
+	d.release(c)
+}
+
+// maxFree bounds the recycled chunks a device keeps; after a long outage
+// the rest of its backlog's buffers go to the garbage collector.
+const maxFree = 8
+
+// release keeps c for reuse; mu held.
+func (d *device) release(c *chunk) {
+	if len(d.free) < maxFree {
+		d.free = append(d.free, c)
+	}
 }
 
 // find returns the buffered message with sequence seq, or nil; mu held.
@@ -445,7 +456,7 @@ func (d *device) flush(block bool) {
 		c.sending = false
 		if c.recycle {
 			c.recycle = false
-			d.free = append(d.free, c)
+			d.release(c)
 		}
 		d.mu.Unlock()
 		if err != nil {
