@@ -111,6 +111,7 @@ func WriteReport(w io.Writer, res *Result, info ReportInfo) error {
 		"BaseSource": g.BaseSource,
 		"BaseYAML":   string(baseYAML),
 		"GridText":   string(g.Text),
+		"Range":      fmtRange(res.FirstS, res.LastS),
 		"MaxGap":     fmtDur(time.Duration(res.MaxGapS * float64(time.Second))),
 	}
 	return reportTmpl.Execute(w, data)
@@ -136,6 +137,7 @@ figure{margin:10px 0}figcaption{font-size:13px;color:#444;max-width:900px}
 <dl>
 <dt>trend source</dt><dd>{{.Info.Source}}{{if .Info.Filters}} ({{.Info.Filters}}){{end}}</dd>
 <dt>devices</dt><dd>{{.Devices}}</dd>
+<dt>time range</dt><dd>{{.Range}}</dd>
 <dt>monitored time</dt><dd>{{.Hours}} h = {{.Days}} device-days ({{.Samples}} samples; gaps over {{.MaxGap}} not counted)</dd>
 <dt>grid</dt><dd>{{.Points}} profiles; the engine ran {{.Variants}} distinct condition settings</dd>
 <dt>reference events</dt><dd>{{.Ref}}: {{.Events}} events{{if .Outside}} ({{.Outside}} outside the data, not scored){{end}}</dd>
@@ -182,6 +184,20 @@ full profile is in <code>profiles/NAME.yaml</code> beside this report, so any ro
 <p style="margin-top:24px;color:#555">{{.Caution}}</p>
 </body></html>
 `))
+
+// fmtRange shows the data's time range: as UTC dates when the times look
+// like Unix seconds (after 2001), else as seconds on the file's clock.
+func fmtRange(first, last float64) string {
+	if !finite(first) || !finite(last) {
+		return "no samples"
+	}
+	if first > 1e9 {
+		f := time.UnixMilli(int64(first * 1000)).UTC().Format("2006-01-02 15:04:05")
+		l := time.UnixMilli(int64(last * 1000)).UTC().Format("2006-01-02 15:04:05")
+		return f + " to " + l + " UTC"
+	}
+	return fmt.Sprintf("t = %g s to %g s (file clock)", first, last)
+}
 
 // WriteOutputs writes summary.csv, frontier.svg, report.html and
 // profiles/NAME.yaml (each grid point's profile) into dir, creating it.
