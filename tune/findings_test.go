@@ -34,9 +34,6 @@ reference:
 // logged for comparison, not asserted.
 func TestDirectionOfPublishedFindings(t *testing.T) {
 	o := cohortOptions{Devices: 40, Hours: 6, Seed: 2016, DipsPerHour: 4, MissingPct: 1}
-	if testing.Short() {
-		o.Devices, o.Hours = 10, 3
-	}
 	g, err := ParseGrid([]byte(findingsGrid), ".")
 	if err != nil {
 		t.Fatal(err)
@@ -51,24 +48,39 @@ func TestDirectionOfPublishedFindings(t *testing.T) {
 	}
 	limits := g.Sweep[0].Values
 	delays := g.Sweep[1].Values
+	// The published comparisons, at every setting of the other key:
+	// limit 90 -> 88 (Welch) and 90 -> 84 (Lansdowne) cut alarms.
 	for _, d := range delays {
-		for k := 1; k < len(limits); k++ {
-			lo, hi := at[limits[k-1]+"/"+d], at[limits[k]+"/"+d]
+		for _, lower := range []string{"88", "84"} {
+			hi, lo := at["90/"+d], at[lower+"/"+d]
 			if !(lo.Episodes < hi.Episodes) {
-				t.Errorf("delay %s: limit %s gives %d alarms, limit %s %d: want fewer at the lower limit (Lansdowne 2016, Welch 2011)",
-					d, limits[k-1], lo.Episodes, limits[k], hi.Episodes)
+				t.Errorf("delay %s: limit %s gives %d alarms, limit 90 %d: want fewer at the lower limit (Welch 2011, Lansdowne 2016)",
+					d, lower, lo.Episodes, hi.Episodes)
 			}
 		}
 	}
+	// Delay 0 -> 15 s (Welch) and 10 -> 60 s (Lansdowne) cut alarms; and a
+	// longer delay never adds any (each step of the sweep, common practice:
+	// a condition announced after 30 s was also present for 15 s).
 	for _, l := range limits {
-		for k := 1; k < len(delays); k++ {
-			short, long := at[l+"/"+delays[k-1]], at[l+"/"+delays[k]]
+		for _, c := range [][2]string{{"0s", "15s"}, {"10s", "60s"}} {
+			short, long := at[l+"/"+c[0]], at[l+"/"+c[1]]
 			if !(long.Episodes < short.Episodes) {
-				t.Errorf("limit %s: delay %s gives %d alarms, delay %s %d: want fewer with the longer delay (Lansdowne 2016, Welch 2011)",
-					l, delays[k], long.Episodes, delays[k-1], short.Episodes)
+				t.Errorf("limit %s: delay %s gives %d alarms, delay %s %d: want fewer with the longer delay (Welch 2011, Lansdowne 2016)",
+					l, c[1], long.Episodes, c[0], short.Episodes)
+			}
+		}
+		for k := 1; k < len(delays); k++ {
+			if a, b := at[l+"/"+delays[k-1]], at[l+"/"+delays[k]]; b.Episodes > a.Episodes {
+				t.Errorf("limit %s: delay %s gives %d alarms, more than %d at %s", l, delays[k], b.Episodes, a.Episodes, delays[k-1])
 			}
 		}
 	}
+	// Not checked: each 2-point step of the limit. With a fixed hysteresis
+	// the clear level moves with the limit, and a stretch hovering just at
+	// the lower limit's clear level can toggle more often than at the higher
+	// one (the alarms package's property tests show such a counterexample);
+	// only the published 2- and 6-point comparisons are claimed.
 	cut := func(from, to Row) string {
 		return fmt.Sprintf("%.1f -> %.1f alarms/device-day (-%.0f %%)", from.PerDeviceDay, to.PerDeviceDay,
 			100*(1-to.PerDeviceDay/from.PerDeviceDay))
