@@ -7,8 +7,8 @@ import (
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 )
 
-// httpHandler serves /metrics, /healthz, /readyz and, when the web page is
-// built in, the page and its JSON.
+// httpHandler serves /metrics, /healthz, /readyz, and the web page and its
+// JSON (web.go).
 func (g *Gateway) httpHandler() http.Handler {
 	mux := http.NewServeMux()
 	metricsH := promhttp.HandlerFor(g.opt.Gatherer, promhttp.HandlerOpts{ErrorLog: nil, Registry: g.opt.Registerer})
@@ -33,6 +33,7 @@ func (g *Gateway) httpHandler() http.Handler {
 		}
 		fmt.Fprintln(w, "ready")
 	})
+	g.webRoutes(mux) // the web page and its JSON (web.go)
 	if g.httpRoutes != nil {
 		g.httpRoutes(mux)
 	}
