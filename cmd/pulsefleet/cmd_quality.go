@@ -1,0 +1,215 @@
+package main
+
+import (
+	"context"
+	"encoding/csv"
+	"encoding/json"
+	"fmt"
+	"io"
+	"sort"
+	"strconv"
+	"text/tabwriter"
+	"time"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/encoding/protojson"
+
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+)
+
+func init() {
+	register(command{
+		name: "quality",
+		summary: `Show each device's signal quality and uptime from one or more running gateways.
+Per device: sessions and reconnects, uptime over 1 h / 24 h / 7 d, data messages
+accepted, lost (sequence gaps), duplicate, late and rejected, device clock drift
+(ppm, + = device fast), effective raw sample rate, share of seconds with a valid
+SpO2, SQI and PI percentiles (p10/p50/p90), clipping and low-resolution shares,
+battery. Several gateways (comma-separated) are merged: a device reported by
+more than one (during a reshard) is taken from the gateway where it was up
+most in the last hour.`,
+		run: runQuality,
+	})
+}
+
+// qualityColumns is the CSV header (one row per device; empty = unknown).
+var qualityColumns = []string{"device", "sessions", "reconnects", "uptime_1h", "uptime_24h", "uptime_7d",
+	"chunks_accepted", "chunks_lost", "duplicates", "late_chunks", "chunks_rejected", "clock_drift_ppm",
+	"effective_sample_rate_hz", "valid_spo2_share", "sqi_p10", "sqi_p50", "sqi_p90", "pi_p10_pct", "pi_p50_pct", "pi_p90_pct",
+	"clipping_share", "low_resolution_share", "battery_pct"}
+
+func runQuality(ctx context.Context, args []string, s stdio) error {
+	var cf clientFlags
+	fs := newFlagSet("quality", "--gateway ADDR[,ADDR...] [--device ID] [--format table|csv|json]", s.err)
+	cf.register(fs)
+	device := fs.String("device", "", "only this device")
+	format := fs.String("format", "table", "output: table (readable), csv or json")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	switch *format {
+	case "table", "csv", "json":
+	default:
+		return usagef("--format: %q, want table, csv or json", *format)
+	}
+	addrs, err := cf.addrs()
+	if err != nil {
+		return err
+	}
+	qs, err := fetchQuality(ctx, &cf, addrs, *device)
+	if err != nil {
+		return err
+	}
+	switch *format {
+	case "csv":
+		return writeQualityCSV(s.out, qs)
+	case "json":
+		return writeQualityJSON(s.out, qs)
+	}
+	return writeQualityTable(s.out, qs)
+}
+
+// fetchQuality asks every gateway and merges by device id.
+func fetchQuality(ctx context.Context, cf *clientFlags, addrs []string, device string) ([]*pb.DeviceQuality, error) {
+	byID := map[string]*pb.DeviceQuality{}
+	keep := func(q *pb.DeviceQuality) {
+		old, ok := byID[q.GetDeviceId()]
+		if !ok || q.GetUptime_1H() > old.GetUptime_1H() ||
+			(q.GetUptime_1H() == old.GetUptime_1H() && q.GetChunksAccepted() > old.GetChunksAccepted()) {
+			byID[q.GetDeviceId()] = q
+		}
+	}
+	for _, a := range addrs {
+		conn, err := cf.dial(a)
+		if err != nil {
+			return nil, err
+		}
+		cctx, cancel := context.WithTimeout(cf.ctx(ctx), 30*time.Second)
+		fc := pb.NewFleetServiceClient(conn)
+		if device != "" {
+			resp, err := fc.GetDeviceQuality(cctx, &pb.GetDeviceQualityRequest{DeviceId: device})
+			switch {
+			case status.Code(err) == codes.NotFound && len(addrs) > 1:
+				// another shard may know it
+			case err != nil:
+				cancel()
+				conn.Close()
+				return nil, fmt.Errorf("gateway %s: %w", a, err)
+			default:
+				keep(resp.GetQuality())
+			}
+		} else {
+			resp, err := fc.ListDeviceQuality(cctx, &pb.ListDeviceQualityRequest{})
+			if err != nil {
+				cancel()
+				conn.Close()
+				return nil, fmt.Errorf("gateway %s: %w", a, err)
+			}
+			for _, q := range resp.GetQualities() {
+				keep(q)
+			}
+		}
+		cancel()
+		conn.Close()
+	}
+	if device != "" && len(byID) == 0 {
+		return nil, fmt.Errorf("--device: %q is not known to any of the %d gateways", device, len(addrs))
+	}
+	out := make([]*pb.DeviceQuality, 0, len(byID))
+	for _, q := range byID {
+		out = append(out, q)
+	}
+	sort.Slice(out, func(i, j int) bool { return out[i].GetDeviceId() < out[j].GetDeviceId() })
+	return out, nil
+}
+
+func ff(v float64, prec int) string { return strconv.FormatFloat(v, 'f', prec, 64) }
+
+// driftCell is empty (unknown) when the gateway has no estimate (0).
+func driftCell(v float64, prec int) string {
+	if v == 0 {
+		return ""
+	}
+	return ff(v, prec)
+}
+
+func distCells(d *pb.Distribution, prec int) []string {
+	if d.GetCount() == 0 {
+		return []string{"", "", ""}
+	}
+	return []string{ff(d.GetP10(), prec), ff(d.GetP50(), prec), ff(d.GetP90(), prec)}
+}
+
+func batteryCell(v float64) string {
+	if v < 0 {
+		return ""
+	}
+	return ff(v, 0)
+}
+
+func writeQualityCSV(w io.Writer, qs []*pb.DeviceQuality) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write(qualityColumns); err != nil {
+		return err
+	}
+	for _, q := range qs {
+		row := []string{q.GetDeviceId(), strconv.FormatUint(q.GetSessions(), 10), strconv.FormatUint(q.GetReconnects(), 10),
+			ff(q.GetUptime_1H(), 4), ff(q.GetUptime_24H(), 4), ff(q.GetUptime_7D(), 4),
+			strconv.FormatUint(q.GetChunksAccepted(), 10), strconv.FormatUint(q.GetChunksLost(), 10), strconv.FormatUint(q.GetDuplicates(), 10),
+			strconv.FormatUint(q.GetLateChunks(), 10), strconv.FormatUint(q.GetChunksRejected(), 10),
+			driftCell(q.GetClockDriftPpm(), 2), driftCell(q.GetEffectiveSampleRateHz(), 3), ff(q.GetValidSpo2Share(), 4)}
+		row = append(row, distCells(q.GetSqi(), 3)...)
+		row = append(row, distCells(q.GetPiPct(), 3)...)
+		row = append(row, ff(q.GetClippingShare(), 4), ff(q.GetLowResolutionShare(), 4), batteryCell(q.GetBatteryPct()))
+		if err := cw.Write(row); err != nil {
+			return err
+		}
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+func writeQualityJSON(w io.Writer, qs []*pb.DeviceQuality) error {
+	mo := protojson.MarshalOptions{UseProtoNames: true, EmitUnpopulated: true}
+	arr := make([]json.RawMessage, 0, len(qs))
+	for _, q := range qs {
+		b, err := mo.Marshal(q)
+		if err != nil {
+			return err
+		}
+		arr = append(arr, b)
+	}
+	enc := json.NewEncoder(w)
+	enc.SetIndent("", "  ")
+	return enc.Encode(arr)
+}
+
+func pctCell(v float64) string { return ff(100*v, 1) }
+
+func orDash(s string) string {
+	if s == "" {
+		return "-"
+	}
+	return s
+}
+
+func writeQualityTable(w io.Writer, qs []*pb.DeviceQuality) error {
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintln(tw, "DEVICE\tSESSIONS\tRECONN\tUP 1h %\tUP 24h %\tUP 7d %\tACCEPTED\tLOST\tDUP\tLATE\tREJECTED\tDRIFT ppm\tRATE Hz\tVALID SpO2 %\tSQI p10/p50/p90\tPI % p10/p50/p90\tCLIP %\tLOWRES %\tBATTERY %\t")
+	for _, q := range qs {
+		sqi, pi := distCells(q.GetSqi(), 2), distCells(q.GetPiPct(), 2)
+		dist := func(c []string) string {
+			if c[0] == "" {
+				return "-"
+			}
+			return c[0] + "/" + c[1] + "/" + c[2]
+		}
+		fmt.Fprintf(tw, "%s\t%d\t%d\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n",
+			q.GetDeviceId(), q.GetSessions(), q.GetReconnects(), pctCell(q.GetUptime_1H()), pctCell(q.GetUptime_24H()), pctCell(q.GetUptime_7D()),
+			q.GetChunksAccepted(), q.GetChunksLost(), q.GetDuplicates(), q.GetLateChunks(), q.GetChunksRejected(),
+			orDash(driftCell(q.GetClockDriftPpm(), 1)), orDash(driftCell(q.GetEffectiveSampleRateHz(), 2)), pctCell(q.GetValidSpo2Share()),
+			dist(sqi), dist(pi), pctCell(q.GetClippingShare()), pctCell(q.GetLowResolutionShare()), orDash(batteryCell(q.GetBatteryPct())))
+	}
+	return tw.Flush()
+}
