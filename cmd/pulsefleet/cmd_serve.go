@@ -78,15 +78,11 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.StringVar(&c.TLSCert, "tls-cert", c.TLSCert, "TLS certificate file (PEM) for gRPC and HTTP")
 	fs.StringVar(&c.TLSKey, "tls-key", c.TLSKey, "TLS private key file (PEM)")
 	fs.StringVar(&c.ClientCA, "client-ca", c.ClientCA, "CA file (PEM): devices must present a certificate it signed")
+	fs.BoolVar(&c.RequireToken, "require-tokens", c.RequireToken, "refuse every call without a valid bearer token even while none is issued. "+
+		"Tokens are always required once any exists in the store, and whenever --tls-cert is given or a listener is not on loopback; "+
+		"only a plaintext, loopback-only gateway with no token issued runs open for development (and says so at start-up)")
 	fs.StringVar(&c.LogLevel, "log-level", c.LogLevel, "log level: debug, info, warn, error")
-	fs.Func("peers", "comma-separated gRPC addresses of every gateway sharing the fleet (the same list on each); devices owned by another peer (rendezvous hashing) are redirected there", func(v string) error {
-		p, err := shard.ParsePeers(v)
-		if err != nil {
-			return err
-		}
-		c.Peers = p
-		return nil
-	})
+	fs.Var((*peersFlag)(&c.Peers), "peers", "comma-separated gRPC addresses of every gateway sharing the fleet (the same list on each); devices owned by another peer (rendezvous hashing) are redirected there")
 	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
 }
 
@@ -187,6 +183,7 @@ func defaultServeConfig() serveConfig {
 type runningGateway struct {
 	GRPCAddr, HTTPAddr, DataDir string
 	Mode                        string // "plaintext (loopback only)", "TLS", "mutual TLS"
+	Auth                        string // credential enforcement (gateway.AuthMode)
 	GW                          *gateway.Gateway
 }
 
@@ -222,6 +219,10 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		db.Close()
 		return nil, nil, err
 	}
+	if err := gw.SetSecurity(sec.gatewayOptions(c)); err != nil {
+		db.Close()
+		return nil, nil, err
+	}
 	gl, err := net.Listen("tcp", c.GRPCListen)
 	if err != nil {
 		db.Close()
@@ -237,7 +238,7 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 	sctx, cancel := context.WithCancel(context.WithoutCancel(ctx))
 	done := make(chan error, 1)
 	go func() { done <- gw.Serve(sctx, gl, hl) }()
-	rg := &runningGateway{GRPCAddr: gl.Addr().String(), HTTPAddr: hl.Addr().String(), DataDir: c.Data, Mode: sec.mode, GW: gw}
+	rg := &runningGateway{GRPCAddr: gl.Addr().String(), HTTPAddr: hl.Addr().String(), DataDir: c.Data, Mode: sec.mode, Auth: gw.AuthMode(), GW: gw}
 	stop := func() error {
 		cancel()
 		err := <-done
@@ -286,9 +287,28 @@ func runServe(ctx context.Context, args []string, s stdio) error {
 	if err != nil {
 		return err
 	}
-	fmt.Fprintf(s.out, "pulsefleet serving (%s)\n  data:    %s\n  gRPC:    %s\n  web:     http://%s/\n  metrics: http://%s/metrics\n",
-		rg.Mode, filepath.Join(rg.DataDir, store.FileName), rg.GRPCAddr, rg.HTTPAddr, rg.HTTPAddr)
+	scheme := "http"
+	if c.TLSCert != "" {
+		scheme = "https"
+	}
+	fmt.Fprintf(s.out, "pulsefleet serving (%s)\n  auth:    %s\n  data:    %s\n  gRPC:    %s\n  web:     %s://%s/\n  metrics: %s://%s/metrics\n",
+		rg.Mode, rg.Auth, filepath.Join(rg.DataDir, store.FileName), rg.GRPCAddr, scheme, rg.HTTPAddr, scheme, rg.HTTPAddr)
 	<-ctx.Done()
 	fmt.Fprintln(s.err, "pulsefleet: shutting down (flushing the store)...")
 	return stop()
+}
+
+// peersFlag is --peers: a comma-separated list that prints back the same way,
+// so a --config file can be overridden by the flag.
+type peersFlag []string
+
+func (p *peersFlag) String() string { return strings.Join(*p, ",") }
+
+func (p *peersFlag) Set(v string) error {
+	l, err := shard.ParsePeers(v)
+	if err != nil {
+		return err
+	}
+	*p = l
+	return nil
 }
