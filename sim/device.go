@@ -88,8 +88,10 @@ type device struct {
 	stream       pulsefleetv1.IngestService_ConnectClient
 	cancel       context.CancelFunc
 	addr         string
-	welcomed     bool // a Welcome has arrived at least once
-	breakPlanned bool // the last stream ended by breakStream was ended on purpose
+	holdUntil    time.Duration // since t0: no data is sent before this (rate limited)
+	holdOff      time.Duration // current hold after a rate-limit rejection (0 after an ack)
+	welcomed     bool          // a Welcome has arrived at least once
+	breakPlanned bool          // the last stream ended by breakStream was ended on purpose
 	framesAcked  uint64
 	samplesAcked uint64
 }
@@ -426,7 +428,7 @@ func (d *device) flush(block bool) {
 		d.mu.Lock()
 		s := d.stream
 		var c *chunk
-		if s != nil && d.head < len(d.buf) {
+		if s != nil && d.head < len(d.buf) && f.since() >= d.holdUntil {
 			first := d.buf[d.head].seq
 			i := d.head
 			if d.sentThrough >= first {
@@ -718,6 +720,7 @@ func (d *device) onAck(through uint64) {
 		d.popFront()
 	}
 	d.ackedThrough = max(d.ackedThrough, through)
+	d.holdOff = 0
 }
 
 func (d *device) onReject(r *pulsefleetv1.Rejection) {
@@ -729,6 +732,17 @@ func (d *device) onReject(r *pulsefleetv1.Rejection) {
 	d.mu.Lock()
 	defer d.mu.Unlock()
 	c := d.find(r.GetSequence())
+	if r.GetReason() == pulsefleetv1.RejectReason_REJECT_REASON_RATE_LIMITED {
+		// The gateway asks the device to slow down and resend from this
+		// sequence number: rewind and hold off sending for a while.
+		f.c.rateLimited.Add(1)
+		if c != nil && !c.done && c.seq <= d.sentThrough {
+			d.sentThrough = c.seq - 1
+		}
+		d.holdOff = min(max(2*d.holdOff, 50*time.Millisecond), 2*time.Second)
+		d.holdUntil = f.since() + d.holdOff
+		return
+	}
 	if c == nil || c.done {
 		if !stale {
 			f.c.rejectedOther.Add(1)

@@ -23,7 +23,7 @@ type counters struct {
 	rejected, rejectedValid, stale, corruptSent         atomic.Uint64
 	corruptAcked, corruptSkipped, resent, reconnects    atomic.Uint64
 	drops, redirects, streamErrors, renumbered, regress atomic.Uint64
-	overflow, statuses, rejectedOther                   atomic.Uint64
+	overflow, statuses, rejectedOther, rateLimited      atomic.Uint64
 	outstanding, connected                              atomic.Int64
 	lastAck                                             atomic.Int64 // since t0, ns, of the latest acknowledgement
 }
@@ -329,7 +329,7 @@ func (f *fleet) report(sending time.Duration) *Report {
 		RejectedValid: c.rejectedValid.Load(), Stale: c.stale.Load(), DuplicatesResent: c.resent.Load(),
 		Reconnects: c.reconnects.Load(), DropsInjected: c.drops.Load(), Redirects: c.redirects.Load(),
 		StreamErrors: c.streamErrors.Load(), Renumbered: c.renumbered.Load(), ResumeRegress: c.regress.Load(),
-		OverflowDropped: c.overflow.Load(), StatusesSent: c.statuses.Load(), RejectedOther: c.rejectedOther.Load(),
+		OverflowDropped: c.overflow.Load(), StatusesSent: c.statuses.Load(), RejectedOther: c.rejectedOther.Load(), RateLimited: c.rateLimited.Load(),
 		DurationS: round3(sending.Seconds()), Speed: f.speed,
 		PerDevice: make(map[string]DeviceReport, len(f.devices)),
 	}

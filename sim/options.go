@@ -147,6 +147,7 @@ type Report struct {
 	RejectedValid    uint64  `json:"rejected_valid"`    // valid frames rejected for a reason other than stale
 	Stale            uint64  `json:"stale"`             // stale-sequence rejections received
 	RejectedOther    uint64  `json:"rejected_other"`    // rejections of frames already settled or unknown (repeats after a resend, status)
+	RateLimited      uint64  `json:"rate_limited"`      // rate-limit rejections: the device held off and resent from that frame
 	DuplicatesResent uint64  `json:"duplicates_resent"` // sends of a frame sent before
 	Reconnects       uint64  `json:"reconnects"`        // streams opened after a device's first
 	DropsInjected    uint64  `json:"drops_injected"`    // streams cut by --drop-every

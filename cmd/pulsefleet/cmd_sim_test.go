@@ -206,3 +206,41 @@ func TestSimAgainstGatewayKeepsEveryAcknowledgedChunkOnce(t *testing.T) {
 		t.Errorf("no stream was dropped: %+v", *rep)
 	}
 }
+
+// Time compression can push a device past the gateway's per-stream message
+// rate (200/s by default): the gateway rejects with RATE_LIMITED, the device
+// holds off and resends from that message, and in the end the store holds
+// every acknowledged message once.
+func TestSimRateLimitedDevicesResendEverything(t *testing.T) {
+	addr, dir, stop := startTestGateway(t)
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	rep, err := sim.Run(ctx, sim.Options{Gateway: addr, Devices: 2, Mode: sim.ModeSummary, Speed: 400,
+		Duration: 2 * time.Second, Seed: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := stop(); err != nil {
+		t.Fatal(err)
+	}
+	db, err := store.Open(dir, store.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	ledger, err := db.LedgerTotals()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if rep.RateLimited == 0 {
+		t.Errorf("no rate-limit rejection at 400 messages/s: %+v", *rep)
+	}
+	if rep.UnackedAtEnd != 0 || rep.RejectedValid != 0 || rep.FramesAcked != rep.FramesSent {
+		t.Errorf("sent %d, acknowledged %d, unacknowledged %d, valid rejected %d", rep.FramesSent, rep.FramesAcked, rep.UnackedAtEnd, rep.RejectedValid)
+	}
+	for id, d := range rep.PerDevice {
+		if l := ledger[id]; l.Chunks != d.FramesAcked || !l.Distinct {
+			t.Errorf("device %s: store %d chunks (distinct %v), acknowledged %d", id, l.Chunks, l.Distinct, d.FramesAcked)
+		}
+	}
+}
