@@ -96,15 +96,17 @@ func RevokeToken(db *store.DB, id, by, remote string, now time.Time) (store.Toke
 	return t, nil
 }
 
-func tokenProto(t store.Token) *pb.Token {
+// TokenProto maps a stored credential to the API's (never with its secret).
+func TokenProto(t store.Token) *pb.Token {
 	out := &pb.Token{TokenId: t.ID, Kind: t.Kind, Subject: t.Subject, CreatedUnixMs: t.CreatedMS, RevokedUnixMs: t.RevokedMS, IssuedBy: t.IssuedBy}
 	if r, err := ParseRole(t.Role); err == nil {
-		out.Role = roleProto(r)
+		out.Role = RoleProto(r)
 	}
 	return out
 }
 
-func roleProto(r Role) pb.Role {
+// RoleProto maps a role to the API's.
+func RoleProto(r Role) pb.Role {
 	switch r {
 	case RoleViewer:
 		return pb.Role_ROLE_VIEWER
@@ -146,7 +148,7 @@ func (g *Gateway) IssueToken(ctx context.Context, req *pb.IssueTokenRequest) (*p
 	g.auth.tokens[t.Hash] = t
 	g.auth.mu.Unlock()
 	g.log.Info("credential issued", "id", t.ID, "kind", t.Kind, "subject", t.Subject, "role", t.Role, "by", t.IssuedBy)
-	return &pb.IssueTokenResponse{Secret: secret, Token: tokenProto(t)}, nil
+	return &pb.IssueTokenResponse{Secret: secret, Token: TokenProto(t)}, nil
 }
 
 // ListTokens implements AdminService.
@@ -157,7 +159,7 @@ func (g *Gateway) ListTokens(ctx context.Context, _ *pb.ListTokensRequest) (*pb.
 	}
 	out := &pb.ListTokensResponse{}
 	for _, t := range ts {
-		out.Tokens = append(out.Tokens, tokenProto(t))
+		out.Tokens = append(out.Tokens, TokenProto(t))
 	}
 	return out, nil
 }
@@ -186,7 +188,7 @@ func (g *Gateway) RevokeToken(ctx context.Context, req *pb.RevokeTokenRequest) (
 		}
 	}
 	g.log.Info("credential revoked", "id", t.ID, "kind", t.Kind, "subject", t.Subject, "by", actorFrom(ctx))
-	return &pb.RevokeTokenResponse{Token: tokenProto(t)}, nil
+	return &pb.RevokeTokenResponse{Token: TokenProto(t)}, nil
 }
 
 // ListAudit implements AdminService.

@@ -51,6 +51,17 @@ func securityOptions(c serveConfig) (*security, error) {
 	return &security{mode: mode, grpc: []grpc.ServerOption{grpc.Creds(credentials.NewTLS(gcfg))}, httpTLS: hcfg}, nil
 }
 
+// gatewayOptions derives credential enforcement from the transport: only a
+// plaintext gateway whose listeners are all on loopback may run open (while
+// no token is issued); TLS or any other address requires tokens.
+func (s *security) gatewayOptions(c serveConfig) gateway.SecurityOptions {
+	loopbackOnly := isLoopback(c.GRPCListen) && isLoopback(c.HTTPListen)
+	return gateway.SecurityOptions{
+		RequireTokens: c.RequireToken || c.TLSCert != "" || !loopbackOnly,
+		SecureCookies: c.TLSCert != "",
+	}
+}
+
 func (s *security) apply(o *gateway.Options) {
 	o.GRPCServerOptions = append(o.GRPCServerOptions, s.grpc...)
 }
