@@ -57,11 +57,35 @@ type fleetPlan struct {
 	leave  bool // disconnects after streaming its history
 }
 
-// webFleet streams 30 minutes of one-per-second summaries of an invented
-// ward (history, time-compressed) plus 3 minutes of a raw prototype into h,
-// and leaves the streams open (except those that leave). It returns the
-// open devices by id.
-func webFleet(t *testing.T, h *harness) map[string]*testDevice {
+// shiftClock is the wall clock moved back by a shift the test sets.
+type shiftClock struct {
+	mu    sync.Mutex
+	shift time.Duration
+}
+
+func (c *shiftClock) Now() time.Time {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return time.Now().Add(-c.shift)
+}
+func (c *shiftClock) set(d time.Duration) { c.mu.Lock(); c.shift = d; c.mu.Unlock() }
+
+// newWebHarness runs a gateway with the fast profile, raw capture, and a
+// clock the fleet set-up can move back.
+func newWebHarness(t *testing.T) (*harness, *shiftClock) {
+	clk := &shiftClock{}
+	h := newHarness(t, func(o *Options) {
+		o.DefaultProfile, o.CaptureRaw, o.Now = webProfile(t), true, clk.Now
+	})
+	return h, clk
+}
+
+// webFleet sets up an invented ward: devices that connected 6 hours ago (by
+// the gateway clock) and stream their last 30 minutes of one-per-second
+// summaries (time-compressed, as after an outage), plus 3 minutes of a raw
+// prototype; one home device streamed until 20 minutes ago and left.
+// Streams stay open; it returns them by id.
+func webFleet(t *testing.T, h *harness, clk *shiftClock) map[string]*testDevice {
 	const minutes = 30
 	// The history arrives time-compressed, like a device catching up after
 	// a long outage: lift the per-stream message rate limit.
@@ -90,47 +114,62 @@ func webFleet(t *testing.T, h *harness) map[string]*testDevice {
 		{id: "home-fern-07", labels: map[string]string{"site": "home"}, leave: true,
 			spo2: func(m float64) float64 { return 96 + wave(m, 13) }, pulse: func(m float64) float64 { return 64 + 2*wave(m, 8) }},
 	}
+	// Connect everyone "6 hours ago".
+	clk.set(6 * time.Hour)
 	open := map[string]*testDevice{}
-	var mu sync.Mutex
+	for i, p := range plans {
+		in := &pb.Introduction{DeviceId: p.id, Model: "fingertip-proto-s2", Firmware: "0.9.3", Mode: pb.Mode_MODE_SUMMARY, Labels: p.labels}
+		open[p.id], _ = h.connect(t, in)
+		open[p.id].send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Status{Status: &pb.DeviceStatus{BatteryPct: float64(92 - 9*i), TemperatureC: 31}}})
+	}
+	raw := rawIntro("proto-raw-01", 16)
+	raw.Labels = map[string]string{"bench": "lab-2"}
+	raw.Model, raw.Firmware, raw.RedWavelengthNm, raw.IrWavelengthNm = "breadboard-r1", "0.2.0", 660, 940
+	open["proto-raw-01"], _ = h.connect(t, raw)
+
+	stream := func(p fleetPlan, d *testDevice, base int64) {
+		n := uint64(minutes * 60)
+		ph := float64(len(p.id) + int(p.id[len(p.id)-1]))
+		for s := uint64(1); s <= n; s++ {
+			m := float64(s) / 60
+			spo2, pulse := math.Round(p.spo2(m)*10)/10, math.Round(p.pulse(m))
+			q, pi := 0.82+0.12*math.Sin(float64(s)/50+ph), 1.6+0.6*math.Sin(float64(s)/90+ph)+0.1*ph/10
+			d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Summary{Summary: &pb.Summary{Sequence: s, DeviceTimeUnixMs: base + int64(s)*1000,
+				Spo2Pct: &spo2, PulseBpm: &pulse, Quality: &q, PiPct: &pi}}})
+		}
+		d.waitAck(n)
+	}
+	// The home device streamed until 20 minutes ago and left.
+	clk.set(20 * time.Minute)
+	for _, p := range plans {
+		if p.leave {
+			stream(p, open[p.id], base-(20*time.Minute).Milliseconds())
+			open[p.id].close()
+			waitGone(t, h, p.id)
+			delete(open, p.id)
+		}
+	}
+	// The others stream their last 30 minutes now, by the wall clock.
+	clk.set(0)
 	var wg sync.WaitGroup
 	for _, p := range plans {
+		if p.leave {
+			continue
+		}
 		wg.Add(1)
-		go func(p fleetPlan) {
+		go func(p fleetPlan, d *testDevice) {
 			defer wg.Done()
-			in := &pb.Introduction{DeviceId: p.id, Model: "fingertip-proto-s2", Firmware: "0.9.3", Mode: pb.Mode_MODE_SUMMARY, Labels: p.labels}
-			d, _ := h.connect(t, in)
-			d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Status{Status: &pb.DeviceStatus{BatteryPct: 40 + float64(len(p.id)*7%55), TemperatureC: 31}}})
-			n := uint64(minutes * 60)
-			for s := uint64(1); s <= n; s++ {
-				m := float64(s) / 60
-				spo2, pulse := math.Round(p.spo2(m)*10)/10, math.Round(p.pulse(m))
-				ph := float64(len(p.id) + int(p.id[len(p.id)-1]))
-				q, pi := 0.82+0.12*math.Sin(float64(s)/50+ph), 1.6+0.6*math.Sin(float64(s)/90+ph)+0.1*ph/10
-				d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Summary{Summary: &pb.Summary{Sequence: s, DeviceTimeUnixMs: base + int64(s)*1000,
-					Spo2Pct: &spo2, PulseBpm: &pulse, Quality: &q, PiPct: &pi}}})
-			}
-			d.waitAck(n)
-			if p.leave {
-				d.close()
-				return
-			}
-			mu.Lock()
-			open[p.id] = d
-			mu.Unlock()
-		}(p)
+			stream(p, d, base)
+		}(p, open[p.id])
 	}
 	// The raw prototype: 3 minutes at 100 Hz in 25-sample chunks.
 	wg.Add(1)
-	go func() {
+	go func(d *testDevice) {
 		defer wg.Done()
 		const rate, chunk, secs = 100, 25, 180
 		src := ppgmodel.New(ppgmodel.Config{SampleRateHz: rate, ADCBits: 16, Seed: 3})
 		v := ppgmodel.DefaultVitals()
 		v.SpO2Pct, v.PulseBPM, v.PIPct = 96, 71, 2.5
-		in := rawIntro("proto-raw-01", 16)
-		in.Labels = map[string]string{"bench": "lab-2"}
-		in.Model, in.Firmware, in.RedWavelengthNm, in.IrWavelengthNm = "breadboard-r1", "0.2.0", 660, 940
-		d, _ := h.connect(t, in)
 		red, ir := make([]float64, chunk), make([]float64, chunk)
 		rb := end.Add(-secs * time.Second).UnixMilli()
 		n := uint64(rate * secs / chunk)
@@ -143,27 +182,29 @@ func webFleet(t *testing.T, h *harness) map[string]*testDevice {
 			d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: c}})
 		}
 		d.waitAck(n)
-		mu.Lock()
-		open["proto-raw-01"] = d
-		mu.Unlock()
-	}()
+	}(open["proto-raw-01"])
 	wg.Wait()
-	// Wait until the device that left is seen as offline.
+
+	return open
+}
+
+// waitGone waits (bounded) until the gateway has closed the device's stream.
+func waitGone(t *testing.T, h *harness, id string) {
+	t.Helper()
 	deadline := time.Now().Add(10 * time.Second)
 	for {
-		dev := h.g.devices.get("home-fern-07")
+		dev := h.g.devices.get(id)
 		dev.mu.Lock()
 		gone := dev.stream == nil
 		dev.mu.Unlock()
 		if gone {
-			break
+			return
 		}
 		if time.Now().After(deadline) {
-			t.Fatal("home-fern-07 still connected")
+			t.Fatalf("%s still connected", id)
 		}
 		time.Sleep(5 * time.Millisecond)
 	}
-	return open
 }
 
 func webGet(t *testing.T, url string, v any) int {
@@ -206,8 +247,8 @@ func webPost(t *testing.T, url, ctype, origin, body string) (int, string) {
 // quality and episodes, the trend and raw excerpt; acknowledgement through
 // the same path as FleetService (audited), with bad requests named.
 func TestWebJSON(t *testing.T) {
-	h := newHarness(t, func(o *Options) { o.DefaultProfile = webProfile(t); o.CaptureRaw = true })
-	webFleet(t, h)
+	h, clk := newWebHarness(t)
+	webFleet(t, h, clk)
 	base := "http://" + h.httpAddr
 
 	var fleet struct {
@@ -373,8 +414,8 @@ func requireTool(t *testing.T, path string) {
 func TestWebPageInChromium(t *testing.T) {
 	const chromium = "/usr/bin/chromium"
 	requireTool(t, chromium)
-	h := newHarness(t, func(o *Options) { o.DefaultProfile = webProfile(t); o.CaptureRaw = true })
-	open := webFleet(t, h)
+	h, clk := newWebHarness(t)
+	open := webFleet(t, h, clk)
 	shots := os.Getenv("PULSEFLEET_SCREENSHOT_DIR")
 	if shots == "" {
 		shots = t.TempDir()
