@@ -2,8 +2,6 @@ package gateway
 
 import (
 	"context"
-	"io"
-	"math"
 	"sync"
 	"testing"
 	"time"
@@ -211,6 +209,3 @@ func waitUntil(t *testing.T, cond func() bool, what string) {
 		time.Sleep(10 * time.Millisecond)
 	}
 }
-
-var _ = io.EOF
-var _ = math.NaN

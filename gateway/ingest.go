@@ -3,7 +3,6 @@ package gateway
 import (
 	"context"
 	"errors"
-	"fmt"
 	"io"
 	"math"
 	"runtime/debug"
@@ -659,5 +658,3 @@ func (s *stream) finish(ctx context.Context) {
 }
 
 func (g *Gateway) nowMS() int64 { return g.opt.Now().UnixMilli() }
-
-var _ = fmt.Sprintf

@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"fmt"
 	"math"
 	"net"
 	"testing"
@@ -163,5 +162,4 @@ func TestThreeGatewaysShareAFleet(t *testing.T) {
 		t.Errorf("%d of %d devices (%.0f %%) moved to the fourth peer, want about 25 %%", moved, devices, 100*share)
 	}
 	t.Logf("3 -> 4 peers: %d of %d devices moved (%.1f %%)", moved, devices, 100*share)
-	_ = fmt.Sprint
 }
