@@ -66,18 +66,16 @@ type quality struct {
 	lastDevMS   int64  // device time of the newest raw chunk
 
 	clock clockEst
-
-	reconnects, sessions uint64 // since the gateway started
 }
 
+// init prepares the accumulators (they need no allocation: the zero value is ready).
 func (q *quality) init() {}
 
-// startSession resets what is measured per session.
+// startSession resets what is measured per session (sessions and reconnects
+// themselves are counted in the stored device description). first tells
+// whether this is the device's first session ever.
 func (q *quality) startSession(first bool) {
-	if !first {
-		q.reconnects++
-	}
-	q.sessions++
+	_ = first
 	q.rateSamples, q.lastChunk, q.firstDevMS, q.lastDevMS = 0, 0, 0, 0
 }
 

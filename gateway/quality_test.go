@@ -439,3 +439,34 @@ func grepLines(s, sub string) string {
 	}
 	return strings.Join(out, "\n")
 }
+
+// A device silent for longer than the trend retention loses its labelled
+// series at the next scrape (its history is gone too); a device seen
+// recently keeps them.
+func TestSeriesOfDevicesIdleBeyondRetentionAreDeleted(t *testing.T) {
+	clk := &fakeClock{}
+	g0 := time.Now().Add(-5 * 24 * time.Hour).Truncate(time.Minute)
+	clk.set(g0)
+	h := newHarness(t, func(o *Options) { o.Now = clk.Now; o.Retention.TrendDays = 2 })
+	for _, id := range []string{"idle-01", "recent-01"} {
+		q := &qualityDevice{t: t, h: h, clk: clk, id: id, g0: g0}
+		q.connect(g0)
+		v := 96.0
+		q.send(1, q.devTime(g0), g0, &v, 0.9, 1)
+		if id == "recent-01" {
+			q.send(2, q.devTime(g0.Add(47*time.Hour)), g0.Add(47*time.Hour), &v, 0.9, 1)
+		}
+		q.disconnect(clk.Now())
+	}
+	if body := scrape(t, h); !strings.Contains(body, `pulsefleet_device_connected{device="idle-01"} 0`) {
+		t.Fatalf("idle-01 has no series while within retention:\n%s", grepLines(body, "pulsefleet_device_"))
+	}
+	clk.set(g0.Add(49 * time.Hour))
+	body := scrape(t, h)
+	if strings.Contains(body, `device="idle-01"`) {
+		t.Errorf("series of a device silent for 49 h with 2-day retention remain:\n%s", grepLines(body, "idle-01"))
+	}
+	if v, ok := metricValue(body, `pulsefleet_device_connected{device="recent-01"}`); !ok || v != 0 {
+		t.Errorf("recent-01 connected series = %v (present %v), want 0", v, ok)
+	}
+}
