@@ -317,7 +317,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 		d.desc.FirstSeenMS = nowMS
 	}
 	d.desc.LastSeenMS = nowMS
-	d.q.startSession(d.desc.Sessions == 0) // quality accounting
+	d.q.startSession() // quality accounting
 	d.desc.Sessions++
 	d.sessionMS = nowMS
 	desc := d.desc

@@ -72,10 +72,8 @@ type quality struct {
 func (q *quality) init() {}
 
 // startSession resets what is measured per session (sessions and reconnects
-// themselves are counted in the stored device description). first tells
-// whether this is the device's first session ever.
-func (q *quality) startSession(first bool) {
-	_ = first
+// themselves are counted in the stored device description).
+func (q *quality) startSession() {
 	q.rateSamples, q.lastChunk, q.firstDevMS, q.lastDevMS = 0, 0, 0, 0
 }
 
