@@ -8,8 +8,11 @@ import (
 	"io"
 	"math"
 	"net/http"
+	"net/http/cookiejar"
+	neturl "net/url"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strings"
 	"sync"
 	"testing"
@@ -554,4 +557,95 @@ func TestWebPageInChromium(t *testing.T) {
 	do("raw waveform", chromedp.WaitVisible(`#raw svg.chart path.line2`))
 	shoot("device-raw-page.png")
 	t.Logf("screenshots in %s", shots)
+}
+
+// With tokens issued, the page needs a login: a viewer reads but cannot
+// acknowledge, an operator acknowledges only with the session's CSRF token,
+// and the audit log names the operator.
+func TestWebLoginRolesAndCSRF(t *testing.T) {
+	h := newHarness(t, func(o *Options) { o.DefaultProfile = webProfile(t) })
+	d, _ := h.connect(t, summaryIntro("ward-x-01"))
+	base := time.Now().Add(-time.Minute).UnixMilli()
+	for s := uint64(1); s <= 10; s++ {
+		d.send(summary(s, base+int64(s)*1000, 86)) // below 90 % for 10 s: announced after 2 s
+	}
+	d.waitAck(10)
+	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-web", Role: pb.Role_ROLE_ADMIN})
+	viewer := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "viewer-web", Role: pb.Role_ROLE_VIEWER})
+	operator := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "nurse-web", Role: pb.Role_ROLE_OPERATOR})
+	url := "http://" + h.httpAddr
+
+	noRedirect := func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
+	anon := &http.Client{CheckRedirect: noRedirect}
+	req, _ := http.NewRequest(http.MethodGet, url+"/", nil)
+	req.Header.Set("Accept", "text/html")
+	resp, err := anon.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusSeeOther || resp.Header.Get("Location") != "/login" {
+		t.Errorf("page without login: %d to %q, want 303 to /login", resp.StatusCode, resp.Header.Get("Location"))
+	}
+	if c := webGet(t, url+"/api/fleet", nil); c != http.StatusUnauthorized {
+		t.Errorf("JSON without login: %d, want 401", c)
+	}
+
+	// login returns a client holding the session cookie and the page's CSRF token.
+	login := func(tok string) (*http.Client, string) {
+		t.Helper()
+		jar, _ := cookiejar.New(nil)
+		c := &http.Client{Jar: jar, CheckRedirect: noRedirect}
+		resp, err := c.PostForm(url+"/login", neturl.Values{"token": {tok}})
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		resp, err = c.Get(url + "/")
+		if err != nil {
+			t.Fatal(err)
+		}
+		page, _ := io.ReadAll(resp.Body)
+		resp.Body.Close()
+		m := regexp.MustCompile(`<meta name="csrf-token" content="([^"]+)">`).FindSubmatch(page)
+		if resp.StatusCode != 200 || m == nil {
+			t.Fatalf("page after login: %d, csrf meta found %v", resp.StatusCode, m != nil)
+		}
+		return c, string(m[1])
+	}
+	post := func(c *http.Client, csrf string) int {
+		t.Helper()
+		req, _ := http.NewRequest(http.MethodPost, url+"/api/device/ward-x-01/acknowledge", strings.NewReader(`{}`))
+		req.Header.Set("Content-Type", "application/json")
+		if csrf != "" {
+			req.Header.Set("X-CSRF-Token", csrf)
+		}
+		resp, err := c.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		return resp.StatusCode
+	}
+
+	vc, vcsrf := login(viewer)
+	if resp, err := vc.Get(url + "/api/fleet"); err != nil || resp.StatusCode != 200 {
+		t.Errorf("viewer reads the fleet: %v %v", resp, err)
+	} else {
+		resp.Body.Close()
+	}
+	if c := post(vc, vcsrf); c != http.StatusForbidden {
+		t.Errorf("viewer acknowledges: %d, want 403", c)
+	}
+	oc, ocsrf := login(operator)
+	if c := post(oc, ""); c != http.StatusForbidden {
+		t.Errorf("operator without the CSRF token: %d, want 403", c)
+	}
+	if c := post(oc, ocsrf); c != http.StatusOK {
+		t.Fatalf("operator with the CSRF token: %d, want 200", c)
+	}
+	audit, err := h.db.Audit(0, "alarm.acknowledged", 0)
+	if err != nil || len(audit) != 1 || audit[0].Actor != "nurse-web" || audit[0].Device != "ward-x-01" {
+		t.Errorf("audit %+v (%v), want one acknowledgement of ward-x-01 by nurse-web", audit, err)
+	}
 }
