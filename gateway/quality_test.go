@@ -12,6 +12,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/estimator"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -468,5 +469,62 @@ func TestSeriesOfDevicesIdleBeyondRetentionAreDeleted(t *testing.T) {
 	}
 	if v, ok := metricValue(body, `pulsefleet_device_connected{device="recent-01"}`); !ok || v != 0 {
 		t.Errorf("recent-01 connected series = %v (present %v), want 0", v, ok)
+	}
+}
+
+// Seconds flagged by the estimator are counted: a 16-bit raw stream whose
+// seconds 10..14 each hold one sample at the converter's limit (clipping) and
+// whose seconds 15..29 swing only 40 codes, under the 100 codes needed for
+// two significant digits (low resolution; REFERENCES.md rule of thumb,
+// common practice). The estimator's band-pass filter rings for a couple of
+// seconds after the swing drops, so low resolution is flagged on 12 to 15 of
+// those seconds, and the share counts exactly the seconds stored with it.
+func TestClippingAndLowResolutionShares(t *testing.T) {
+	h := newHarness(t, nil)
+	const rate, chunk, seconds = 100, 25, 30
+	base := time.Now().Add(-time.Hour).UnixMilli()
+	d, _ := h.connect(t, rawIntro("q-flags", 16))
+	var seq uint64
+	for i := 0; i < rate*seconds/chunk; i++ {
+		c := &pb.RawChunk{Sequence: uint64(i + 1), DeviceTimeUnixMs: base + int64(i*chunk*1000/rate), SampleRateHz: rate}
+		for j := 0; j < chunk; j++ {
+			n := i*chunk + j
+			sec := n / rate
+			amp := 1000.0
+			if sec >= 15 {
+				amp = 20
+			}
+			v := 30000 + amp*math.Sin(2*math.Pi*1.2*float64(n)/rate)
+			r := uint32(v)
+			if sec >= 10 && sec < 15 && n%rate == 50 {
+				r = 65535 // full scale of 16 bits
+			}
+			c.Red, c.Ir = append(c.Red, r), append(c.Ir, uint32(v)+4000)
+		}
+		d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: c}})
+		seq = c.Sequence
+	}
+	d.waitAck(seq)
+	got, err := h.fleet().GetDeviceQuality(context.Background(), &pb.GetDeviceQualityRequest{DeviceId: "q-flags"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	q := got.GetQuality()
+	var pts, lowRes int
+	h.db.Trend("q-flags", 0, math.MaxInt64, func(p store.Point) bool {
+		pts++
+		if estimator.Flags(p.Flags).Has(estimator.FlagLowResolution) {
+			lowRes++
+		}
+		return true
+	})
+	if pts != seconds {
+		t.Fatalf("%d trend points for %d s", pts, seconds)
+	}
+	if c := q.GetClippingShare(); c != 5.0/seconds {
+		t.Errorf("clipping share %v, want 5/30", c)
+	}
+	if l := q.GetLowResolutionShare(); lowRes < 12 || l != float64(lowRes)/seconds {
+		t.Errorf("low resolution share %v with %d seconds flagged, want 12..15 of 30, counted exactly", l, lowRes)
 	}
 }
