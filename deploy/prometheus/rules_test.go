@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"io"
+	"math"
 	"net"
 	"net/http"
 	"os"
@@ -160,6 +161,38 @@ func TestLiveMetricsAreCleanAndCoverTheRules(t *testing.T) {
 		}
 		return st, scancel
 	}
+	// A raw device too, so the estimator's labelled series are in the scrape.
+	rctx, rcancel := context.WithCancel(ctx)
+	defer rcancel()
+	rs, err := pb.NewIngestServiceClient(conn).Connect(rctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	rsend := func(m *pb.ConnectRequest) {
+		if err := rs.Send(m); err != nil {
+			t.Fatal(err)
+		}
+	}
+	rsend(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: &pb.Introduction{DeviceId: "metrics-raw-01", Mode: pb.Mode_MODE_RAW, AdcBits: 16}}})
+	rbase := time.Now().Add(-time.Minute).UnixMilli()
+	const chunks = 16 // 4 s at 100 Hz
+	for i := 0; i < chunks; i++ {
+		c := &pb.RawChunk{Sequence: uint64(i + 1), DeviceTimeUnixMs: rbase + int64(i)*250, SampleRateHz: 100}
+		for j := 0; j < 25; j++ {
+			v := uint32(30000 + 1500*math.Sin(2*math.Pi*1.2*float64(i*25+j)/100))
+			c.Red, c.Ir = append(c.Red, v), append(c.Ir, v+3000)
+		}
+		rsend(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: c}})
+	}
+	for {
+		m, err := rs.Recv()
+		if err != nil {
+			t.Fatalf("raw device: %v", err)
+		}
+		if m.GetAck().GetThroughSequence() >= chunks {
+			break
+		}
+	}
 	_, stop1 := stream("metrics-dev-01", 20)
 	defer stop1()
 	st2, stop2 := stream("metrics-dev-02", 5)
@@ -197,6 +230,8 @@ func TestLiveMetricsAreCleanAndCoverTheRules(t *testing.T) {
 		`pulsefleet_device_battery_ratio{device="metrics-dev-01"} 0.64`,
 		`pulsefleet_device_valid_spo2_ratio{device="metrics-dev-01"} 1`,
 		`pulsefleet_messages_lost_total 2`,
+		`pulsefleet_samples_received_total 400`,
+		`pulsefleet_estimator_seconds_total{outcome=`,
 	} {
 		if !bytes.Contains(body, []byte(want)) {
 			t.Errorf("/metrics lacks %q", want)
