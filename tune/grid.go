@@ -15,6 +15,7 @@ import (
 	"go.yaml.in/yaml/v3"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/profiles"
 )
 
@@ -26,14 +27,31 @@ const MaxPoints = 10000
 // alarm still detects it, when the grid sets none (team choice).
 const DefaultGrace = 60 * time.Second
 
+// AveragingKey is the grid file's top-level key for the estimator's
+// averaging times, and the name of their column in summary.csv.
+const AveragingKey = "averaging"
+
 // Grid is a decoded tuning grid file.
 type Grid struct {
 	Base       *alarms.Profile
 	BaseSource string // the base profile's file, built-in name, or "inline"
-	Sweep      []Sweep
+	// Sweep is the swept keys in file order. When the grid has averaging
+	// times, Sweep[0] is them (Key AveragingKey, the values as written), so
+	// they vary slowest; the profile keys follow.
+	Sweep []Sweep
+	// AveragingS is the averaging times in seconds, in file order; empty
+	// when the grid has none (the trends are swept as recorded).
+	AveragingS []float64
 	Reference  Reference
 	Text       []byte // the grid file as read (shown in the report)
 }
+
+// HasAveraging reports whether the grid sweeps averaging times, which
+// need raw captures to re-run the estimator over.
+func (g *Grid) HasAveraging() bool { return len(g.AveragingS) > 0 }
+
+// isAveraging reports whether Sweep[k] is the averaging times.
+func (g *Grid) isAveraging(k int) bool { return k == 0 && g.HasAveraging() }
 
 // Sweep is one swept key and its values, written as in the profile file.
 type Sweep struct {
@@ -80,6 +98,10 @@ type Point struct {
 	Name    string
 	Values  []string // one per Grid.Sweep key
 	Profile *alarms.Profile
+	// AveragingS is the estimator averaging time the point's trends were
+	// re-estimated with, s; 0 when the grid has no averaging times.
+	AveragingS float64
+	set        int // index into Grid.AveragingS (0 without)
 }
 
 // LoadGrid reads and validates a grid file; a relative base or reference
@@ -120,10 +142,12 @@ func ParseGrid(data []byte, dir string) (*Grid, error) {
 		case "reference":
 			refNode = v
 			return nil
-		case "averaging", "averaging_times", "estimator":
-			return fmt.Errorf("%s (line %d): not supported yet: re-running the estimator over raw captures is not implemented in tune; sweep alarm profile keys only", path, v.Line)
+		case AveragingKey:
+			return g.decodeAveraging(v)
+		case "averaging_times", "estimator":
+			return fmt.Errorf("%s (line %d): unknown key; averaging times are the top-level key %s: [4s, 8s, 12s]", path, v.Line, AveragingKey)
 		}
-		return fmt.Errorf("%s (line %d): unknown key, want base, sweep or reference", path, v.Line)
+		return fmt.Errorf("%s (line %d): unknown key, want base, sweep, reference or %s", path, v.Line, AveragingKey)
 	})
 	if err != nil {
 		return nil, err
@@ -131,11 +155,13 @@ func ParseGrid(data []byte, dir string) (*Grid, error) {
 	if g.Base == nil {
 		return nil, errors.New("base: missing, want a profile file or an inline profile")
 	}
-	if sweepNode == nil {
+	switch {
+	case sweepNode != nil:
+		if err := g.decodeSweep(sweepNode); err != nil {
+			return nil, err
+		}
+	case !g.HasAveraging():
 		return nil, errors.New("sweep: missing, want CONDITION.KEY: [values...]")
-	}
-	if err := g.decodeSweep(sweepNode); err != nil {
-		return nil, err
 	}
 	if refNode == nil {
 		return nil, errors.New("reference: missing, want rule: {below: 85, for: 60s} or file: events.csv")
@@ -227,8 +253,8 @@ func (g *Grid) decodeSweep(n *yaml.Node) error {
 	err := mapping(n, "sweep", func(key string, v *yaml.Node, path string) error {
 		head, _, _ := strings.Cut(key, ".")
 		switch {
-		case head == "averaging" || head == "estimator" || strings.HasSuffix(key, ".averaging"):
-			return fmt.Errorf("%s (line %d): not supported yet: averaging times need the estimator re-run over raw captures, which tune does not do", path, v.Line)
+		case head == AveragingKey || head == "estimator" || strings.HasSuffix(key, "."+AveragingKey):
+			return fmt.Errorf("%s (line %d): not a profile key; averaging times are the top-level key %s: [4s, 8s, 12s] beside base and sweep", path, v.Line, AveragingKey)
 		case key == "name":
 			return fmt.Errorf("%s (line %d): cannot be swept (grid points are named by tune)", path, v.Line)
 		}
@@ -259,7 +285,7 @@ func (g *Grid) decodeSweep(n *yaml.Node) error {
 	if err != nil {
 		return err
 	}
-	if len(g.Sweep) == 0 {
+	if len(g.Sweep) == 0 && !g.HasAveraging() {
 		return errors.New("sweep: empty, want at least one CONDITION.KEY: [values...]")
 	}
 	n2 := 1
@@ -269,6 +295,33 @@ func (g *Grid) decodeSweep(n *yaml.Node) error {
 			return fmt.Errorf("sweep: more than %d grid points, want at most %d", MaxPoints, MaxPoints)
 		}
 	}
+	return nil
+}
+
+// decodeAveraging reads averaging: [4s, 8s, 12s]: the estimator's
+// averaging window, each within its bounds, no value twice.
+func (g *Grid) decodeAveraging(v *yaml.Node) error {
+	if v.Kind != yaml.SequenceNode || len(v.Content) == 0 {
+		return fmt.Errorf("%s (line %d): want a list of averaging times like [4s, 8s, 12s]", AveragingKey, v.Line)
+	}
+	s := Sweep{Key: AveragingKey}
+	for i, vn := range v.Content {
+		ip := fmt.Sprintf("%s[%d]", AveragingKey, i)
+		val := strings.TrimSpace(vn.Value)
+		d, err := time.ParseDuration(val)
+		sec := d.Seconds()
+		if vn.Kind != yaml.ScalarNode || err != nil || sec < estimator.MinAveragingS || sec > estimator.MaxAveragingS {
+			return fmt.Errorf("%s (line %d): %q, want a duration in [%gs, %gs] (the estimator's averaging window) like 8s",
+				ip, vn.Line, vn.Value, estimator.MinAveragingS, estimator.MaxAveragingS)
+		}
+		if j := slices.Index(g.AveragingS, sec); j >= 0 {
+			return fmt.Errorf("%s (line %d): %s repeats %s[%d]", ip, vn.Line, val, AveragingKey, j)
+		}
+		g.AveragingS = append(g.AveragingS, sec)
+		s.Values = append(s.Values, val)
+		s.lines = append(s.lines, vn.Line)
+	}
+	g.Sweep = append([]Sweep{s}, g.Sweep...)
 	return nil
 }
 
@@ -423,6 +476,10 @@ func (g *Grid) Points() ([]Point, error) {
 		}
 		p.Name = name
 		pts[i] = Point{Index: i, Name: name, Values: vals, Profile: p}
+		if g.HasAveraging() {
+			set := slices.Index(g.Sweep[0].Values, vals[0])
+			pts[i].set, pts[i].AveragingS = set, g.AveragingS[set]
+		}
 	}
 	return pts, nil
 }
@@ -432,9 +489,11 @@ func (g *Grid) Points() ([]Point, error) {
 // only because of another key are retried after the others are set; what
 // still fails is reported as sweep.KEY[i]: the bound.
 func (g *Grid) apply(p *alarms.Profile, vals []string) error {
-	pending := make([]int, len(g.Sweep))
-	for k := range pending {
-		pending[k] = k
+	var pending []int
+	for k := range g.Sweep {
+		if !g.isAveraging(k) { // not a profile key
+			pending = append(pending, k)
+		}
 	}
 	errs := make([]*setError, len(g.Sweep))
 	for len(pending) > 0 {

@@ -65,7 +65,6 @@ func TestGridErrors(t *testing.T) {
 	cases := []struct{ name, grid, want string }{
 		{"empty", "", "empty document"},
 		{"no base", "sweep:\n  spo2_low.limit: [88]\n" + ref, "base: missing"},
-		{"no sweep", "base: adult-ward-pilot\n" + ref, "sweep: missing"},
 		{"no reference", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\n", "reference: missing"},
 		{"unknown base file", "base: nope.yaml\nsweep:\n  spo2_low.limit: [88]\n" + ref, `base (line 1): "nope.yaml": no such file and no built-in profile`},
 		{"inline base error", "base:\n  name: x\n  conditions:\n    - {kind: spo2_low, limit: 120, delay: 0s, priority: low}\nsweep:\n  spo2_low.limit: [88]\n" + ref,
@@ -78,8 +77,17 @@ func TestGridErrors(t *testing.T) {
 		{"delay over bound", "base: adult-ward-pilot\nsweep:\n  spo2_low.delay: [11m]\n" + ref, "sweep.spo2_low.delay[0]: 11m0s, want <= 10m0s"},
 		{"escalation above limit", "base: adult-ward-pilot\nsweep:\n  spo2_low.escalate.below: [80, 95]\n" + ref, "sweep.spo2_low.escalate.below[1]: 95, want in (0, 90)"},
 		{"name not sweepable", "base: adult-ward-pilot\nsweep:\n  name: [a, b]\n" + ref, "sweep.name (line 3): cannot be swept"},
-		{"averaging top level", "base: adult-ward-pilot\naveraging: [4s]\n", "averaging (line 2): not supported yet"},
-		{"averaging sweep", "base: adult-ward-pilot\nsweep:\n  estimator.averaging: [4s, 8s]\n" + ref, "sweep.estimator.averaging (line 3): not supported yet"},
+		// Averaging bounds are the estimator's (estimator.MinAveragingS, MaxAveragingS).
+		{"averaging below bound", "base: adult-ward-pilot\naveraging: [4s, 1s]\n" + ref, `averaging[1] (line 2): "1s", want a duration in [2s, 30s]`},
+		{"averaging above bound", "base: adult-ward-pilot\naveraging: [31s]\n" + ref, `averaging[0] (line 2): "31s", want a duration in [2s, 30s]`},
+		{"averaging not a duration", "base: adult-ward-pilot\naveraging: [8]\n" + ref, `averaging[0] (line 2): "8", want a duration`},
+		{"averaging not a list", "base: adult-ward-pilot\naveraging: 8s\n" + ref, "averaging (line 2): want a list of averaging times"},
+		{"averaging empty", "base: adult-ward-pilot\naveraging: []\n" + ref, "averaging (line 2): want a list of averaging times"},
+		{"averaging repeated", "base: adult-ward-pilot\naveraging: [8s, 4s, 8000ms]\n" + ref, "averaging[2] (line 2): 8000ms repeats averaging[0]"},
+		{"averaging as sweep key", "base: adult-ward-pilot\nsweep:\n  estimator.averaging: [4s, 8s]\n" + ref,
+			"sweep.estimator.averaging (line 3): not a profile key; averaging times are the top-level key averaging: [4s, 8s, 12s]"},
+		{"averaging_times", "base: adult-ward-pilot\naveraging_times: [4s]\n" + ref, "averaging_times (line 2): unknown key; averaging times are the top-level key averaging"},
+		{"no sweep nor averaging", "base: adult-ward-pilot\n" + ref, "sweep: missing"},
 		{"duplicate key", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\n  spo2_low.limit: [90]\n" + ref, "sweep.spo2_low.limit (line 4): duplicate key"},
 		{"rule and file", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n  file: testdata/hand-events.csv\n", "reference: both rule and file"},
 		{"rule incomplete", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85}\n", "want both below and for"},
@@ -233,5 +241,50 @@ func TestRunCancelled(t *testing.T) {
 	cancel()
 	if _, err := Run(ctx, g, handTrends(), Options{}); err == nil {
 		t.Error("cancelled run returned no error")
+	}
+}
+
+// Averaging times are the slowest-varying column, first after profile;
+// the profile keys vary within each, and a grid may sweep averaging alone.
+func TestGridAveraging(t *testing.T) {
+	const ref = "reference:\n  rule: {below: 85, for: 60s}\n"
+	g, err := ParseGrid([]byte("base: adult-ward-pilot\nsweep:\n  spo2_low.delay: [0s, 15s]\naveraging: [12s, 4s]\n"+ref), ".")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !g.HasAveraging() || len(g.Sweep) != 2 || g.Sweep[0].Key != AveragingKey || g.Size() != 4 {
+		t.Fatalf("sweep %+v, size %d: want averaging first and 2 x 2 points", g.Sweep, g.Size())
+	}
+	if cols := SummaryColumns(g); cols[1] != "averaging" || cols[2] != "spo2_low.delay" {
+		t.Errorf("summary columns %v, want profile, averaging, spo2_low.delay, ...", cols[:3])
+	}
+	pts, err := g.Points()
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := []struct {
+		avg   string
+		avgS  float64
+		delay string
+	}{{"12s", 12, "0s"}, {"12s", 12, "15s"}, {"4s", 4, "0s"}, {"4s", 4, "15s"}}
+	for i, w := range want {
+		p := pts[i]
+		if p.Values[0] != w.avg || p.AveragingS != w.avgS || p.Values[1] != w.delay || p.Profile.Condition("spo2_low").Delay.String() != w.delay {
+			t.Errorf("point %d: values %v, averaging %v s, profile delay %v; want %s (%v s), %s", i, p.Values, p.AveragingS,
+				p.Profile.Condition("spo2_low").Delay, w.avg, w.avgS, w.delay)
+		}
+	}
+	// Averaging alone: one point per averaging time, each the base profile.
+	g, err = ParseGrid([]byte("base: adult-ward-pilot\naveraging: [4s, 8s]\n"+ref), ".")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if pts, err := g.Points(); err != nil || len(pts) != 2 || pts[1].AveragingS != 8 {
+		t.Fatalf("averaging alone: %d points (%v), want 2", len(pts), err)
+	}
+	// A trend cannot be re-estimated.
+	if _, err := Run(context.Background(), g, handTrends(), Options{}); err == nil ||
+		!strings.Contains(err.Error(), "averaging (line 2): needs raw captures") {
+		t.Errorf("Run with averaging over trends: %v, want averaging (line 2): needs raw captures", err)
 	}
 }

@@ -88,13 +88,9 @@ func LoadStore(dir string, f Filter) ([]alarms.Trend, error) {
 	if err := f.check(); err != nil {
 		return nil, err
 	}
-	db, err := store.Open(dir, store.Options{ReadOnly: true})
+	db, err := openStore(dir)
 	if err != nil {
-		if errors.Is(err, store.ErrLocked) {
-			return nil, fmt.Errorf("open store %s: %w: tune reads history read-only; stop the gateway or copy %s elsewhere and tune the copy",
-				dir, err, store.FileName)
-		}
-		return nil, fmt.Errorf("open store %s: %w", dir, err)
+		return nil, err
 	}
 	defer db.Close()
 	devs, err := db.TrendDevices()
@@ -113,15 +109,7 @@ func LoadStore(dir string, f Filter) ([]alarms.Trend, error) {
 		}
 		devs = f.Devices
 	}
-	// Unbounded: from the Unix epoch (store keys are unsigned) to far
-	// beyond any device clock (2^53 ms, whose day number fits the store's).
-	fromMS, toMS := int64(0), int64(1)<<53
-	if f.HasFrom {
-		fromMS = max(0, int64(math.Ceil(f.From*1000)))
-	}
-	if f.HasTo {
-		toMS = min(toMS, int64(math.Ceil(f.To*1000)))
-	}
+	fromMS, toMS := storeRange(f)
 	var out []alarms.Trend
 	for _, d := range devs {
 		tr := alarms.Trend{Device: d}
@@ -138,4 +126,32 @@ func LoadStore(dir string, f Filter) ([]alarms.Trend, error) {
 		}
 	}
 	return out, nil
+}
+
+// openStore opens the store in dir read-only; a store held by a running
+// gateway gives an error that says so (wrapping store.ErrLocked).
+func openStore(dir string) (*store.DB, error) {
+	db, err := store.Open(dir, store.Options{ReadOnly: true})
+	if err != nil {
+		if errors.Is(err, store.ErrLocked) {
+			return nil, fmt.Errorf("open store %s: %w: tune reads history read-only; stop the gateway or copy %s elsewhere and tune the copy",
+				dir, err, store.FileName)
+		}
+		return nil, fmt.Errorf("open store %s: %w", dir, err)
+	}
+	return db, nil
+}
+
+// storeRange is f's time range in Unix ms for store queries. Unbounded:
+// from the Unix epoch (store keys are unsigned) to far beyond any device
+// clock (2^53 ms, whose day number fits the store's).
+func storeRange(f Filter) (fromMS, toMS int64) {
+	fromMS, toMS = 0, int64(1)<<53
+	if f.HasFrom {
+		fromMS = max(0, int64(math.Ceil(f.From*1000)))
+	}
+	if f.HasTo {
+		toMS = min(toMS, int64(math.Ceil(f.To*1000)))
+	}
+	return fromMS, toMS
 }

@@ -1,12 +1,14 @@
 package tune
 
 import (
+	"encoding/csv"
 	"fmt"
 	"html/template"
 	"io"
 	"os"
 	"path/filepath"
 	"slices"
+	"strconv"
 	"strings"
 	"time"
 
@@ -84,6 +86,9 @@ func WriteReport(w io.Writer, res *Result, info ReportInfo) error {
 	ref := ""
 	if r := g.Reference.Rule; r != nil {
 		ref = "rule: " + r.String()
+		if res.ReferenceAveraging != "" {
+			ref += " on the trends re-estimated at averaging " + res.ReferenceAveraging + " (the shortest), for every row"
+		}
 	} else {
 		ref = "annotated events from " + g.Reference.File
 	}
@@ -113,6 +118,7 @@ func WriteReport(w io.Writer, res *Result, info ReportInfo) error {
 		"GridText":   string(g.Text),
 		"Range":      fmtRange(res.FirstS, res.LastS),
 		"MaxGap":     fmtDur(time.Duration(res.MaxGapS * float64(time.Second))),
+		"Estimated":  estimatedNote(res),
 	}
 	return reportTmpl.Execute(w, data)
 }
@@ -137,6 +143,7 @@ figure{margin:10px 0}figcaption{font-size:13px;color:#444;max-width:900px}
 <dl>
 <dt>trend source</dt><dd>{{.Info.Source}}{{if .Info.Filters}} ({{.Info.Filters}}){{end}}</dd>
 <dt>devices</dt><dd>{{.Devices}}</dd>
+{{if .Estimated}}<dt>trends</dt><dd>{{.Estimated}}</dd>{{end}}
 <dt>time range</dt><dd>{{.Range}}</dd>
 <dt>monitored time</dt><dd>{{.Hours}} h = {{.Days}} device-days ({{.Samples}} samples; gaps over {{.MaxGap}} not counted)</dd>
 <dt>grid</dt><dd>{{.Points}} profiles; the engine ran {{.Variants}} distinct condition settings</dd>
@@ -185,6 +192,56 @@ full profile is in <code>profiles/NAME.yaml</code> beside this report, so any ro
 </body></html>
 `))
 
+// TrendFile is where WriteOutputs puts the trends re-estimated at an
+// averaging time (as written in the grid), relative to the output
+// directory: trends/averaging-8s.csv.
+func TrendFile(averaging string) string {
+	return filepath.Join("trends", AveragingKey+"-"+averaging+".csv")
+}
+
+// WriteTrendCSV writes trends in the replay/tune trend format
+// (t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi; missing values empty), every
+// value exactly as held, so reading it back gives the same samples.
+func WriteTrendCSV(w io.Writer, trends []alarms.Trend) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write([]string{"t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi"}); err != nil {
+		return fmt.Errorf("write trend: %w", err)
+	}
+	exact := func(f float64) string {
+		if !finite(f) {
+			return ""
+		}
+		return strconv.FormatFloat(f, 'g', -1, 64)
+	}
+	for _, tr := range trends {
+		for _, s := range tr.Samples {
+			if err := cw.Write([]string{exact(s.T), tr.Device, exact(s.SpO2), exact(s.Pulse), exact(s.PI), exact(s.SQI)}); err != nil {
+				return fmt.Errorf("write trend: %w", err)
+			}
+		}
+	}
+	cw.Flush()
+	if err := cw.Error(); err != nil {
+		return fmt.Errorf("write trend: %w", err)
+	}
+	return nil
+}
+
+// estimatedNote describes how the trends were re-estimated; "" when they
+// were swept as recorded.
+func estimatedNote(res *Result) string {
+	e := res.Estimated
+	if e == nil {
+		return ""
+	}
+	n := fmt.Sprintf("re-estimated from %d raw chunks (%d sample pairs) at each averaging time (%s), as the gateway estimates live; %d estimator (re)starts per averaging time",
+		e.Chunks, e.SamplePairs, strings.Join(res.Grid.Sweep[0].Values, ", "), e.Restarts)
+	if len(e.Skipped) > 0 {
+		n += fmt.Sprintf("; %d devices without raw captures left out (%s)", len(e.Skipped), strings.Join(e.Skipped, ", "))
+	}
+	return n
+}
+
 // fmtRange shows the data's time range: as UTC dates when the times look
 // like Unix seconds (after 2001), else as seconds on the file's clock.
 func fmtRange(first, last float64) string {
@@ -200,7 +257,9 @@ func fmtRange(first, last float64) string {
 }
 
 // WriteOutputs writes summary.csv, frontier.svg, report.html and
-// profiles/NAME.yaml (each grid point's profile) into dir, creating it.
+// profiles/NAME.yaml (each grid point's profile) into dir, creating it;
+// with averaging times also each one's re-estimated trends (TrendFile), so
+// any row can be checked with replay.
 func WriteOutputs(dir string, res *Result, info ReportInfo) error {
 	if err := os.MkdirAll(filepath.Join(dir, "profiles"), 0o755); err != nil {
 		return fmt.Errorf("create output: %w", err)
@@ -214,13 +273,22 @@ func WriteOutputs(dir string, res *Result, info ReportInfo) error {
 			return fmt.Errorf("write profile: %w", err)
 		}
 	}
-	files := []struct {
+	type output struct {
 		name  string
 		write func(io.Writer) error
-	}{
+	}
+	files := []output{
 		{"summary.csv", func(w io.Writer) error { return WriteSummaryCSV(w, res) }},
 		{"frontier.svg", func(w io.Writer) error { _, err := io.WriteString(w, FrontierSVG(res)+"\n"); return err }},
 		{"report.html", func(w io.Writer) error { return WriteReport(w, res, info) }},
+	}
+	if e := res.Estimated; e != nil {
+		if err := os.MkdirAll(filepath.Join(dir, "trends"), 0o755); err != nil {
+			return fmt.Errorf("create output: %w", err)
+		}
+		for a, v := range res.Grid.Sweep[0].Values {
+			files = append(files, output{TrendFile(v), func(w io.Writer) error { return WriteTrendCSV(w, e.Trends[a]) }})
+		}
 	}
 	for _, f := range files {
 		path := filepath.Join(dir, f.name)

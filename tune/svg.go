@@ -9,6 +9,7 @@ import (
 	"strings"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/estimator"
 )
 
 // Okabe-Ito colours (a colour-blind-safe palette, common practice).
@@ -347,8 +348,15 @@ func buildLimitChart(res *Result) limitChart {
 }
 
 // baseValue is the value of s the base profile has, when it is among the
-// swept values; else the first swept value.
+// swept values; else the first swept value. For the averaging times, the
+// "base" is the estimator's default, which the gateway runs.
 func baseValue(g *Grid, s Sweep) string {
+	if s.Key == AveragingKey {
+		if i := slices.Index(g.AveragingS, estimator.DefaultAveragingS); i >= 0 {
+			return s.Values[i]
+		}
+		return s.Values[0]
+	}
 	for _, v := range s.Values {
 		p := g.Base.Clone()
 		if err := p.Set(s.Key, v); err != nil {

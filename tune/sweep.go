@@ -54,6 +54,16 @@ type Result struct {
 	Samples int
 	// MaxGapS is the longest sample interval counted as monitored, s.
 	MaxGapS float64
+	// Estimated is the re-estimated trends of a grid with averaging times
+	// (RunEstimated); nil otherwise. Devices, MonitoredS, FirstS, LastS and
+	// Samples then describe one averaging time's trends (they share their
+	// sample times), and the rule's events come from ReferenceAveraging's.
+	Estimated *Estimated
+	// ReferenceAveraging is the averaging time (as written in the grid)
+	// whose re-estimated trends defined the reference rule's events: the
+	// shortest, which follows the physiology closest. "" without averaging
+	// times or with an events file.
+	ReferenceAveraging string
 
 	spans [][][]span // [variant][device] episodes, kept for tests
 	ptVar [][]int    // [point][condition] variant
@@ -115,16 +125,64 @@ type condKey struct {
 }
 
 // Run sweeps every grid point of g over trends (one per device, samples in
-// time order) and scores it. It stops early with ctx's error.
+// time order) and scores it. It stops early with ctx's error. A grid with
+// averaging times needs RunEstimated: trends cannot be re-estimated.
 func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Result, error) {
+	if g.HasAveraging() {
+		return nil, fmt.Errorf("%s (line %d): needs raw captures to re-run the estimator over; recorded trends cannot be re-estimated",
+			AveragingKey, g.Sweep[0].lines[0])
+	}
+	return run(ctx, g, [][]alarms.Trend{trends}, 0, opt)
+}
+
+// RunEstimated sweeps a grid with averaging times over est, the trends
+// re-estimated at each of them (EstimateStore): each grid point runs over
+// the trends of its averaging time. Reference events are found once, by
+// the rule on the trends of the shortest averaging time (or taken from the
+// events file), and score every point alike.
+func RunEstimated(ctx context.Context, g *Grid, est *Estimated, opt Options) (*Result, error) {
+	if !slices.Equal(g.AveragingS, est.AveragingS) {
+		return nil, fmt.Errorf("tune: trends estimated at %v s, the grid's averaging times are %v s", est.AveragingS, g.AveragingS)
+	}
+	ref := 0
+	for a, v := range g.AveragingS {
+		if v < g.AveragingS[ref] {
+			ref = a
+		}
+	}
+	res, err := run(ctx, g, est.Trends, ref, opt)
+	if err != nil {
+		return nil, err
+	}
+	res.Estimated = est
+	if g.Reference.Rule != nil {
+		res.ReferenceAveraging = g.Sweep[0].Values[ref]
+	}
+	return res, nil
+}
+
+// run sweeps g over sets of trends, one set per averaging time (one set
+// without): every set holds the same devices in the same order, and a grid
+// point runs over the set of its averaging time. Reference events and the
+// monitored time come from sets[ref].
+func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Options) (*Result, error) {
 	pts, err := g.Points()
 	if err != nil {
 		return nil, err
 	}
-	workers := opt.Workers
-	if workers <= 0 {
-		workers = runtime.GOMAXPROCS(0)
+	trends := sets[ref]
+	nd := len(trends)
+	for a, set := range sets {
+		if len(set) != nd {
+			return nil, fmt.Errorf("tune: trend set %d has %d devices, set %d has %d", a, len(set), ref, nd)
+		}
+		for d := range set {
+			if set[d].Device != trends[d].Device {
+				return nil, fmt.Errorf("tune: trend set %d has device %q where set %d has %q", a, set[d].Device, ref, trends[d].Device)
+			}
+		}
 	}
+	workers := workerCount(opt.Workers)
 	maxGap := DefaultMaxGap.Seconds()
 	if opt.MaxGap > 0 {
 		maxGap = opt.MaxGap.Seconds()
@@ -163,7 +221,7 @@ func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Res
 	res.Variants = len(vars)
 
 	// Per-device facts: monitored segments, last sample, reference events.
-	devs := make([]devInfo, len(trends))
+	devs := make([]devInfo, nd)
 	byName := map[string]int{}
 	for d, tr := range trends {
 		byName[tr.Device] = d
@@ -206,7 +264,10 @@ func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Res
 		}
 	}
 
-	total := len(vars)*len(trends) + len(pts) // one unit per (variant, device) and per point
+	// Every set's sample times are those of sets[ref] (the estimator's
+	// seconds do not depend on the averaging time), so devs serves them all.
+	flat := nd * len(sets)             // (set, device) pairs: set a's device d is a*nd+d
+	total := len(vars)*flat + len(pts) // one unit per (variant, set, device) and per point
 	var done atomic.Int64
 	stopProgress := startProgress(opt.Progress, &done, total)
 	defer stopProgress()
@@ -214,17 +275,17 @@ func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Res
 	// Phase 1: the engine over every (device, block of variants).
 	res.spans = make([][][]span, len(vars))
 	for v := range res.spans {
-		res.spans[v] = make([][]span, len(trends))
+		res.spans[v] = make([][]span, flat)
 	}
 	runners := make([]runner, workers)
 	for w := range runners {
 		runners[w].slots = make([]*slot, len(vars))
 	}
 	blocks := (len(vars) + variantBlock - 1) / variantBlock
-	err = parallel(ctx, workers, len(trends)*blocks, func(w, job int) error {
-		d, blk := job/blocks, job%blocks
+	err = parallel(ctx, workers, flat*blocks, func(w, job int) error {
+		f, blk := job/blocks, job%blocks
 		lo, hi := blk*variantBlock, min(len(vars), (blk+1)*variantBlock)
-		if err := runners[w].run(vars, lo, hi, trends[d].Samples, res.spans, d); err != nil {
+		if err := runners[w].run(vars, lo, hi, sets[f/nd][f%nd].Samples, res.spans, f); err != nil {
 			return err
 		}
 		done.Add(int64(hi - lo))
@@ -237,7 +298,7 @@ func Run(ctx context.Context, g *Grid, trends []alarms.Trend, opt Options) (*Res
 	// Phase 2: score every grid point.
 	scratch := make([]scorer, workers)
 	err = parallel(ctx, workers, len(pts), func(w, i int) error {
-		res.Rows[i] = scratch[w].score(res, devs, i, scored, g.Reference.Grace.Seconds())
+		res.Rows[i] = scratch[w].score(res, devs, pts[i].set*nd, i, scored, g.Reference.Grace.Seconds())
 		done.Add(1)
 		return nil
 	})
@@ -325,6 +386,14 @@ func (r *runner) run(vars []variant, lo, hi int, samples []alarms.Sample, spans 
 		spans[v][d] = sl.out
 	}
 	return nil
+}
+
+// workerCount is n, or runtime.GOMAXPROCS(0) when n <= 0.
+func workerCount(n int) int {
+	if n <= 0 {
+		return runtime.GOMAXPROCS(0)
+	}
+	return n
 }
 
 // startProgress reports done/total to fn from one goroutine a few times a
@@ -425,7 +494,8 @@ type scorer struct {
 	tp     []bool
 }
 
-func (s *scorer) score(res *Result, devs []devInfo, pt int, scored []bool, grace float64) Row {
+// score scores grid point pt over devs, whose episodes are res.spans[v][off+d].
+func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, grace float64) Row {
 	var row Row
 	var alarmS [4]float64
 	for p := range s.durs {
@@ -437,7 +507,7 @@ func (s *scorer) score(res *Result, devs []devInfo, pt int, scored []bool, grace
 		di := &devs[d]
 		s.eps = s.eps[:0]
 		for _, v := range res.ptVar[pt] {
-			s.eps = append(s.eps, res.spans[v][d]...)
+			s.eps = append(s.eps, res.spans[v][off+d]...)
 		}
 		for p := range s.ivs {
 			s.ivs[p] = s.ivs[p][:0]
