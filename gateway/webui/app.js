@@ -329,8 +329,11 @@ async function fleetPage() {
     row.querySelector('.v-sqi').textContent = num(p.sqi, 2);
   };
   await refreshFn();
-  setInterval(() => refreshFn(), 15000); // uptime and sparklines
-  startLive('?points=1');
+  // Every second of every device is worth streaming for a pilot-sized fleet;
+  // a large one gets connection and alarm events live and values every 5 s.
+  const many = table.tBodies[0].rows.length > 300;
+  setInterval(() => refreshFn(), many ? 5000 : 15000); // uptime and sparklines
+  startLive(many ? '?points=0' : '?points=1');
 }
 
 // ---------- device page ----------
