@@ -195,8 +195,14 @@ func orDash(s string) string {
 }
 
 func writeQualityTable(w io.Writer, qs []*pb.DeviceQuality) error {
+	// Numbers align right; device ids are padded so they read left-aligned.
+	width := len("DEVICE")
+	for _, q := range qs {
+		width = max(width, len(q.GetDeviceId()))
+	}
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(tw, "DEVICE\tSESSIONS\tRECONN\tUP 1h %\tUP 24h %\tUP 7d %\tACCEPTED\tLOST\tDUP\tLATE\tREJECTED\tDRIFT ppm\tRATE Hz\tVALID SpO2 %\tSQI p10/p50/p90\tPI % p10/p50/p90\tCLIP %\tLOWRES %\tBATTERY %\t")
+	fmt.Fprintf(tw, "%-*s\t", width, "DEVICE")
+	fmt.Fprintln(tw, "SESSIONS\tRECONN\tUP 1h %\tUP 24h %\tUP 7d %\tACCEPTED\tLOST\tDUP\tLATE\tREJECTED\tDRIFT ppm\tRATE Hz\tVALID SpO2 %\tSQI p10/p50/p90\tPI % p10/p50/p90\tCLIP %\tLOWRES %\tBATTERY %\t")
 	for _, q := range qs {
 		sqi, pi := distCells(q.GetSqi(), 2), distCells(q.GetPiPct(), 2)
 		dist := func(c []string) string {
@@ -205,8 +211,8 @@ func writeQualityTable(w io.Writer, qs []*pb.DeviceQuality) error {
 			}
 			return c[0] + "/" + c[1] + "/" + c[2]
 		}
-		fmt.Fprintf(tw, "%s\t%d\t%d\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n",
-			q.GetDeviceId(), q.GetSessions(), q.GetReconnects(), pctCell(q.GetUptime_1H()), pctCell(q.GetUptime_24H()), pctCell(q.GetUptime_7D()),
+		fmt.Fprintf(tw, "%-*s\t%d\t%d\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n",
+			width, q.GetDeviceId(), q.GetSessions(), q.GetReconnects(), pctCell(q.GetUptime_1H()), pctCell(q.GetUptime_24H()), pctCell(q.GetUptime_7D()),
 			q.GetChunksAccepted(), q.GetChunksLost(), q.GetDuplicates(), q.GetLateChunks(), q.GetChunksRejected(),
 			orDash(driftCell(q.GetClockDriftPpm(), 1)), orDash(driftCell(q.GetEffectiveSampleRateHz(), 2)), pctCell(q.GetValidSpo2Share()),
 			dist(sqi), dist(pi), pctCell(q.GetClippingShare()), pctCell(q.GetLowResolutionShare()), orDash(batteryCell(q.GetBatteryPct())))
