@@ -633,3 +633,33 @@ func TestFloodOfMalformedMessagesLeavesHonestStreamsWhole(t *testing.T) {
 		t.Errorf("%d auth audit entries after the flood, want 1..20 (10 per host per minute)", len(es))
 	}
 }
+
+// Operator actions are audited under the credential's name: who comes from
+// the token, not from anything the client claims.
+func TestActionsAreAuditedUnderTheCredentialsName(t *testing.T) {
+	h := newHarness(t, func(o *Options) { o.DefaultProfile = testProfile(t) })
+	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-ro", Role: pb.Role_ROLE_ADMIN})
+	nurse := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "nurse-ilse", Role: pb.Role_ROLE_OPERATOR})
+	d := h.openAs(t, admin)
+	d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: summaryIntro("bed-p")}})
+	d.send(summary(1, time.Now().Add(-time.Minute).UnixMilli(), 97))
+	d.waitAck(1)
+	ctx := metadata.AppendToOutgoingContext(bearer(nurse), "x-actor", "someone-else")
+	if _, err := h.fleet().PauseAlarms(ctx, &pb.PauseAlarmsRequest{DeviceId: "bed-p", DurationS: 60, Reason: "repositioning"}); err != nil {
+		t.Fatalf("operator pauses: %v", err)
+	}
+	if _, err := h.fleet().SetAlarmProfile(bearer(admin), &pb.SetAlarmProfileRequest{DeviceId: "bed-p", ProfileYaml: "name: quiet\nconditions:\n  - {kind: spo2_low, limit: 85, delay: 10s, priority: medium}\n", Reason: "trial"}); err != nil {
+		t.Fatalf("admin sets a profile: %v", err)
+	}
+	h.restart()
+	for action, who := range map[string]string{"alarm.paused": "nurse-ilse", "profile.set": "admin-ro", "token.issue": "anonymous"} {
+		es, err := h.db.Audit(0, action, 0)
+		if err != nil || len(es) == 0 {
+			t.Errorf("%s: no audit entry (%v)", action, err)
+			continue
+		}
+		if es[len(es)-1].Actor != who {
+			t.Errorf("%s by %q, want %q", action, es[len(es)-1].Actor, who)
+		}
+	}
+}
