@@ -27,11 +27,23 @@ The grid file (--grid) names a base profile, the swept keys and the reference:
     rule: {below: 85, for: 60s}    # or: file: events.csv (device,start_s,end_s,label)
     grace: 60s                     # optional
     conditions: [spo2_low]         # optional, the conditions scored (default: spo2_low ones)
+  averaging: [4s, 8s, 12s]         # optional: estimator averaging times, 2s..30s (needs --data)
 
 History comes from a store (--data DIR, opened read-only; stop the gateway
 first, bbolt locks the file) or a trend CSV (--in, "-" for stdin:
-t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi). Averaging times (re-running the
-estimator over raw captures) are not supported yet.
+t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi).
+
+Averaging times re-run the estimator over the raw captures kept in the
+store (serve --capture-raw), once per time, the way the gateway estimates
+live (each device's ADC bits and recorded calibration; a restart on a rate
+change, a device-clock jump over 1 s or a lost chunk); every profile is
+swept over each, and summary.csv gets an 'averaging' column. Devices
+without raw captures are left out with a warning (an error if --device
+names one). The reference rule's events come from the trends at the
+shortest averaging time and score every row alike. The re-estimated trends
+are written to trends/averaging-T.csv, so 'pulsefleet replay --profile
+profiles/NAME.yaml --in trends/averaging-T.csv' reproduces any row. With
+--in, averaging is an error: a trend cannot be re-estimated.
 
 Writes into --out: summary.csv (one row per profile), frontier.svg (alarms
 per device-day against sensitivity, Pareto-optimal profiles marked),
@@ -140,6 +152,12 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 	if err != nil {
 		return err
 	}
+	if g.HasAveraging() {
+		if o.data == "" {
+			return fmt.Errorf("grid %s: averaging: needs --data with raw captures; --in gives estimated trends, which cannot be re-estimated", o.grid)
+		}
+		return runTuneAveraging(ctx, o, f, g, args, s)
+	}
 	var trends []alarms.Trend
 	source := ""
 	if o.data != "" {
@@ -169,18 +187,59 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 	if len(trends) == 0 {
 		return fmt.Errorf("no trend samples in %s%s", source, tuneFilterNote(f))
 	}
-	prog := newTuneProgress(s.err)
+	prog := newTuneProgress(s.err, "tune")
 	res, err := tune.Run(ctx, g, trends, tune.Options{Workers: o.workers, MaxGap: o.maxGap, Progress: prog.update})
 	prog.finish()
 	if err != nil {
 		return err
 	}
+	fmt.Fprintf(s.out, "tune: %d profiles over %d devices, %.1f monitored hours, %d reference events (%s)\n",
+		len(res.Points), res.Devices, res.MonitoredS/3600, res.Events, source)
+	return tuneWrite(o, f, res, source, args, s)
+}
+
+// runTuneAveraging re-estimates the store's raw captures at each averaging
+// time of g and sweeps the grid over them.
+func runTuneAveraging(ctx context.Context, o tuneOptions, f tune.Filter, g *tune.Grid, args []string, s stdio) error {
+	prog := newTuneProgress(s.err, "estimate")
+	est, err := tune.EstimateStore(ctx, o.data, f, g.AveragingS, tune.EstimateOptions{Workers: o.workers, Progress: prog.update})
+	prog.finish()
+	if err != nil {
+		return err
+	}
+	used := len(est.Trends[0])
+	if n := len(est.Skipped); n > 0 {
+		fmt.Fprintf(s.err, "tune: warning: %d of %d devices have no raw captures%s and are left out: %s\n",
+			n, n+used, tuneFilterNote(f), tuneList(est.Skipped, 10))
+	}
+	prog = newTuneProgress(s.err, "tune")
+	res, err := tune.RunEstimated(ctx, g, est, tune.Options{Workers: o.workers, MaxGap: o.maxGap, Progress: prog.update})
+	prog.finish()
+	if err != nil {
+		return err
+	}
+	source := "raw captures in store " + o.data
+	fmt.Fprintf(s.out, "tune: %d profiles (%d averaging times x %d) over %d devices with raw captures (of %d in the store), "+
+		"%d raw chunks re-estimated, %.1f monitored hours, %d reference events (rule on the %s trends)\n",
+		len(res.Points), len(g.AveragingS), len(res.Points)/len(g.AveragingS), used, used+len(est.Skipped),
+		est.Chunks, res.MonitoredS/3600, res.Events, res.ReferenceAveraging)
+	return tuneWrite(o, f, res, source, args, s)
+}
+
+// tuneList is up to max names, then how many more.
+func tuneList(names []string, max int) string {
+	if len(names) <= max {
+		return strings.Join(names, ", ")
+	}
+	return fmt.Sprintf("%s and %d more", strings.Join(names[:max], ", "), len(names)-max)
+}
+
+// tuneWrite writes the outputs and prints the best profiles.
+func tuneWrite(o tuneOptions, f tune.Filter, res *tune.Result, source string, args []string, s stdio) error {
 	info := tune.ReportInfo{Source: source, Filters: f.String(), Command: "pulsefleet tune " + strings.Join(args, " ")}
 	if err := tune.WriteOutputs(o.out, res, info); err != nil {
 		return err
 	}
-	fmt.Fprintf(s.out, "tune: %d profiles over %d devices, %.1f monitored hours, %d reference events (%s)\n",
-		len(res.Points), res.Devices, res.MonitoredS/3600, res.Events, source)
 	fmt.Fprintf(s.out, "best profiles (fewest alarms first, Pareto-optimal):\n")
 	for k, i := range tune.BestRows(res) {
 		if k == 5 {
@@ -191,7 +250,11 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 		fmt.Fprintf(s.out, "  %-28s %6.2f alarms/device-day  sensitivity %s  ppv %s  (%s)\n", res.Points[i].Name,
 			r.PerDeviceDay, tunePct(r.Sensitivity), tunePct(r.PPV), tuneDescribeValues(res, i))
 	}
-	fmt.Fprintf(s.out, "wrote %s/summary.csv, frontier.svg, report.html, profiles/\n", o.out)
+	if res.Estimated != nil {
+		fmt.Fprintf(s.out, "wrote %s/summary.csv, frontier.svg, report.html, profiles/, trends/\n", o.out)
+	} else {
+		fmt.Fprintf(s.out, "wrote %s/summary.csv, frontier.svg, report.html, profiles/\n", o.out)
+	}
 	fmt.Fprintln(s.out, tune.Caution)
 	return nil
 }
@@ -219,9 +282,10 @@ func tuneDescribeValues(res *tune.Result, i int) string {
 }
 
 // tuneProgress draws a bar on a terminal, or prints a plain line every 25 %
-// otherwise.
+// otherwise, headed by its label.
 type tuneProgress struct {
 	w      io.Writer
+	label  string
 	tty    bool
 	start  time.Time
 	last   int // last quarter printed (plain)
@@ -229,8 +293,8 @@ type tuneProgress struct {
 	closed bool
 }
 
-func newTuneProgress(w io.Writer) *tuneProgress {
-	p := &tuneProgress{w: w, start: time.Now(), last: -1}
+func newTuneProgress(w io.Writer, label string) *tuneProgress {
+	p := &tuneProgress{w: w, label: label, start: time.Now(), last: -1}
 	if f, ok := w.(*os.File); ok {
 		if st, err := f.Stat(); err == nil && st.Mode()&os.ModeCharDevice != 0 {
 			p.tty = true
@@ -247,13 +311,13 @@ func (p *tuneProgress) update(done, total int) {
 	if p.tty {
 		const width = 30
 		n := int(frac * width)
-		fmt.Fprintf(p.w, "\rtune [%s%s] %3.0f%% %5.1fs", strings.Repeat("#", n), strings.Repeat(".", width-n), 100*frac, time.Since(p.start).Seconds())
+		fmt.Fprintf(p.w, "\r%-8s [%s%s] %3.0f%% %5.1fs", p.label, strings.Repeat("#", n), strings.Repeat(".", width-n), 100*frac, time.Since(p.start).Seconds())
 		p.drawn = true
 		return
 	}
 	if q := int(frac * 4); q > p.last {
 		p.last = q
-		fmt.Fprintf(p.w, "tune: %d/%d units done (%.0f%%)\n", done, total, 100*frac)
+		fmt.Fprintf(p.w, "%s: %d/%d units done (%.0f%%)\n", p.label, done, total, 100*frac)
 	}
 }
 

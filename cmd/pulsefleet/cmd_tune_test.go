@@ -11,6 +11,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/pulsefleet/pulsefleet/ppgmodel"
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
@@ -147,8 +148,12 @@ func TestTuneCommandErrors(t *testing.T) {
 		{"unknown condition key", "base: adult-ward-pilot\nsweep:\n  spo2_low.limt: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
 			nil, 1, "sweep.spo2_low.limt[0]: unknown key"},
 		{"unknown top key", "base: adult-ward-pilot\nsweeps: {}\n", nil, 1, "sweeps (line 2): unknown key"},
-		{"averaging not supported", "base: adult-ward-pilot\nsweep:\n  averaging: [4s, 8s]\nreference:\n  rule: {below: 85, for: 60s}\n",
-			nil, 1, "sweep.averaging (line 3): not supported yet"},
+		{"averaging as a sweep key", "base: adult-ward-pilot\nsweep:\n  averaging: [4s, 8s]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, "sweep.averaging (line 3): not a profile key; averaging times are the top-level key averaging: [4s, 8s, 12s]"},
+		{"averaging out of bounds", "base: adult-ward-pilot\naveraging: [8s, 45s]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, `averaging[1] (line 2): "45s", want a duration in [2s, 30s]`},
+		{"averaging with --in", "base: adult-ward-pilot\naveraging: [4s, 8s]\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
+			nil, 1, "averaging: needs --data with raw captures"},
 		{"bad rule", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 185, for: 60s}\n",
 			nil, 1, "reference.rule.below (line 5): \"185\", want an SpO2 in (0, 100]"},
 		{"no input", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
@@ -230,7 +235,85 @@ func TestTuneCommandStore(t *testing.T) {
 
 func TestTuneCommandHelp(t *testing.T) {
 	code, _, stderr := replayRun(t, "", "tune", "--help")
-	if code != 0 || !strings.Contains(stderr, "--grid") || !strings.Contains(stderr, "not supported yet") {
+	if code != 0 || !strings.Contains(stderr, "--grid") || !strings.Contains(stderr, "averaging: [4s, 8s, 12s]") {
 		t.Errorf("exit %d, help %q", code, stderr)
+	}
+}
+
+// Averaging times re-run the estimator over the store's raw captures; every
+// row of summary.csv equals replay of its profile over the re-estimated
+// trend tune wrote for its averaging time.
+func TestTuneCommandAveraging(t *testing.T) {
+	data := t.TempDir()
+	db, err := store.Open(data, store.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	// bed-2: 100 s of raw PPG at 50 Hz (ppgmodel, resting adult) with an
+	// 8 s dip to 80 % at 60 s (invented); cot-9 streamed summaries only.
+	const rate, chunk, t0 = 50, 50, int64(1_790_000_000_000)
+	src := ppgmodel.New(ppgmodel.Config{SampleRateHz: rate, ADCBits: 16, Seed: 21})
+	b := &store.Batch{Devices: []*store.Device{{ID: "bed-2", Mode: "raw", RedNM: 660, IRNM: 940, ADCBits: 16, Calibration: "empirical"},
+		{ID: "cot-9", Mode: "summary"}}}
+	red, ir := make([]float64, chunk), make([]float64, chunk)
+	for k := range int64(100) {
+		v := ppgmodel.DefaultVitals()
+		if k >= 60 && k < 68 {
+			v.SpO2Pct = 80
+		}
+		src.Fill(red, ir, nil, v)
+		rc := store.RawCapture{Device: "bed-2", Seq: uint64(k + 1), DeviceTimeMS: t0 + k*1000, RateHz: rate}
+		for i := range red {
+			rc.Red, rc.IR = append(rc.Red, uint32(red[i])), append(rc.IR, uint32(ir[i]))
+		}
+		b.Raw = append(b.Raw, rc)
+	}
+	if err := db.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	if err := db.Close(); err != nil {
+		t.Fatal(err)
+	}
+	dir := t.TempDir()
+	grid := writeFile(t, dir, "grid.yaml", "base: adult-ward-pilot\naveraging: [4s, 16s]\nsweep:\n  spo2_low.limit: [88, 90]\n"+
+		"  spo2_low.delay: [0s]\nreference:\n  rule: {below: 85, for: 3s}\n")
+	out := filepath.Join(dir, "out")
+	code, stdout, stderr := replayRun(t, "", "tune", "--grid", grid, "--data", data, "--out", out)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	if !strings.Contains(stderr, "warning: 1 of 2 devices have no raw captures and are left out: cot-9") ||
+		!strings.Contains(stderr, "estimate: 1/1 units done (100%)") {
+		t.Errorf("stderr %q: want the skipped device named and estimation progress", stderr)
+	}
+	if !strings.Contains(stdout, "4 profiles (2 averaging times x 2) over 1 devices with raw captures (of 2 in the store), 100 raw chunks") {
+		t.Errorf("stdout %q: want the devices used and the chunks re-estimated", stdout)
+	}
+	recs := readCSV(t, filepath.Join(out, "summary.csv"))
+	if len(recs) != 5 || recs[0][1] != "averaging" || recs[0][2] != "spo2_low.limit" || recs[1][1] != "4s" || recs[4][1] != "16s" {
+		t.Fatalf("summary %v: want 4 rows with an averaging column first (4s, then 16s)", recs)
+	}
+	low := map[string]int{} // spo2_low episodes by averaging time
+	for _, rec := range recs[1:] {
+		trend := filepath.Join(out, "trends", "averaging-"+rec[1]+".csv")
+		code, eps, stderr := replayRun(t, "", "replay", "--profile", filepath.Join(out, "profiles", rec[0]+".yaml"), "--in", trend)
+		if code != 0 {
+			t.Fatalf("replay %s over %s: exit %d: %s", rec[0], trend, code, stderr)
+		}
+		n := strings.Count(eps, "\n") - 1
+		if rec[4] != strconv.Itoa(n) {
+			t.Errorf("%s (averaging %s): summary episodes %s, replay lists %d", rec[0], rec[1], rec[4], n)
+		}
+		low[rec[1]] += strings.Count(eps, ",spo2_low,")
+	}
+	// The 8 s dip is followed at 4 s and smoothed at 16 s: with no delay,
+	// no more spo2_low alarms with the longer window, and some with the
+	// shorter. (Other conditions may go either way: smoothing also spreads
+	// the dip in time, past the desaturation condition's 10 s delay.)
+	if low["4s"] == 0 || low["16s"] > low["4s"] {
+		t.Errorf("spo2_low episodes %v: want some at 4s and no more at 16s", low)
+	}
+	if b, err := os.ReadFile(filepath.Join(out, "report.html")); err != nil || !strings.Contains(string(b), "re-estimated from 100 raw chunks") {
+		t.Errorf("report.html: %v; want it to say the trends were re-estimated", err)
 	}
 }
