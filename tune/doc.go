@@ -5,8 +5,10 @@
 // summary CSV, a frontier chart and a self-contained HTML report.
 //
 // Nouns: Grid (the tuning grid file: a base profile, swept keys, the
-// reference), Reference (real events, from a rule or an annotated file),
-// Result (one Row of metrics per grid point, in grid order).
+// reference, optional averaging times), Reference (real events, from a rule
+// or an annotated file), Estimated (trends re-estimated from raw captures,
+// one set per averaging time), Result (one Row of metrics per grid point,
+// in grid order).
 //
 // # Grid file (CONTRACT keys: base, sweep, reference)
 //
@@ -19,13 +21,48 @@
 //	  rule: {below: 85, for: 60s}    # or: file: events.csv (device,start_s,end_s,label)
 //	  grace: 60s                     # optional, default 60s
 //	  conditions: [spo2_low]         # optional: the conditions scored; default every spo2_low condition
+//	averaging: [4s, 8s, 12s]         # optional: estimator averaging times (needs raw captures)
 //
 // Grid points are numbered in cross-product order with the last key
 // varying fastest. Each point's profile is the base with each swept value
 // set through alarms.Profile.Set and validated by the profile rules; errors
 // name the key path and the bound (sweep.spo2_low.delay[2]: -5s, want >= 0).
-// Averaging times (re-running the estimator over raw captures) are not
-// supported yet: the key is rejected with an error saying so.
+//
+// # Averaging times
+//
+// The top-level key averaging lists estimator averaging windows (Go
+// durations, estimator.MinAveragingS..MaxAveragingS = 2s..30s, none twice;
+// errors read averaging[1] (line 4): "45s", want a duration in [2s, 30s]).
+// It is a grid dimension like a swept key: the first after profile in
+// summary.csv (column "averaging", values as written) and the slowest to
+// vary; sweep may then be left out. Writing it under sweep (e.g.
+// estimator.averaging) is an error that points here.
+//
+// A trend holds estimates already, so averaging times need the raw samples:
+// EstimateStore reads the raw captures the gateway kept (serve
+// --capture-raw) and re-runs the estimator once per averaging time through
+// estimator.Timeline, exactly as the gateway does live: each device's ADC
+// bits and its recorded calibration ("empirical", "beer-lambert" or
+// "beer-lambert@RED/IRnm", or a curve kept in the store, "name@vN"; one
+// that cannot be resolved is an error naming the device), a restart on a
+// rate change, a device-clock jump over 1 s or a skipped sequence number
+// (a lost chunk), and each point at the end of its second on the device
+// clock. Devices without raw captures in range are left out and listed
+// (Estimated.Skipped); naming one with Filter.Devices is an error. Run with
+// trends and a grid with averaging times is an error (nothing to
+// re-estimate); RunEstimated sweeps each grid point over the trends of its
+// averaging time. The estimator's seconds do not depend on the window, so
+// every set has the same sample times and monitored time. The reference
+// rule's events are found once, on the trends of the shortest averaging
+// time (closest to the physiology), and score every row alike; a longer
+// window would otherwise erase the very events it misses. WriteOutputs also
+// writes each set as trends/averaging-T.csv, so replay over it reproduces
+// any row.
+//
+// Caveat, seen in the tests: a longer window smooths a dip shorter than it
+// (shallower, so fewer threshold alarms with no delay) but also spreads it
+// in time, so a condition with a delay (desaturation, 10 s) can fire at a
+// long window and not at a short one.
 //
 // # Metrics
 //

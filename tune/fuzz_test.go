@@ -10,7 +10,8 @@ import (
 // FuzzParseGrid: any input gives a grid or an error, never a panic; an
 // accepted grid builds every point.
 func FuzzParseGrid(f *testing.F) {
-	for _, s := range []string{handGrid, agreeGrid, findingsGrid,
+	for _, s := range []string{handGrid, agreeGrid, findingsGrid, averagingGrid,
+		"base: adult-ward-pilot\naveraging: [2s, 30s]\nreference:\n  rule: {below: 85, for: 60s}\n",
 		"base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [84]\n  spo2_low.escalate.below: [80]\nreference:\n  rule: {below: 85, for: 60s}\n",
 		"base: [1]\nsweep: {}\n", "reference:\n  rule: 3\n", "sweep:\n  a.b.c.d: [1]\n"} {
 		f.Add(s)
