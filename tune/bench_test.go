@@ -2,9 +2,13 @@ package tune
 
 import (
 	"context"
+	"fmt"
 	"syscall"
 	"testing"
 	"time"
+
+	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/store"
 )
 
 // cpuTime is the process's user + system CPU time so far.
@@ -64,4 +68,42 @@ func BenchmarkTune(b *testing.B) {
 			b.ReportMetric(float64(len(res.Points)), "profiles")
 		})
 	}
+}
+
+// BenchmarkEstimateStore measures re-estimating raw captures for averaging
+// times: 4 devices x 10 min at 50 Hz in 0.5 s chunks (the tests' fleet
+// shape), three averaging times. cpu-ns/pair/averaging is the process's CPU
+// time per stored sample pair per averaging time (store read and decode
+// included, shared by the averaging times); compare the estimator's
+// BenchmarkTimeline (ns/pair).
+func BenchmarkEstimateStore(b *testing.B) {
+	dir := b.TempDir()
+	db, err := store.Open(dir, store.Options{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	batch := &store.Batch{}
+	for d := range 4 {
+		id := fmt.Sprintf("bench-%d", d)
+		batch.Devices = append(batch.Devices, &store.Device{ID: id, Mode: "raw", ADCBits: rawBits, Calibration: "empirical"})
+		src := ppgmodel.New(ppgmodel.Config{SampleRateHz: rawRate, ADCBits: rawBits, Seed: uint64(d + 1)})
+		batch.Raw = append(batch.Raw, rawCaptures(id, src, 600, -1, func(t float64) ppgmodel.Vitals { return dipVitals(t, 300) })...)
+	}
+	if err := db.Write(batch); err != nil {
+		b.Fatal(err)
+	}
+	if err := db.Close(); err != nil {
+		b.Fatal(err)
+	}
+	avg := []float64{4, 8, 16}
+	var est *Estimated
+	cpu0 := cpuTime()
+	for b.Loop() {
+		if est, err = EstimateStore(context.Background(), dir, Filter{}, avg, EstimateOptions{}); err != nil {
+			b.Fatal(err)
+		}
+	}
+	cpu := (cpuTime() - cpu0).Seconds() / float64(b.N)
+	b.ReportMetric(cpu*1e9/float64(est.SamplePairs)/float64(len(avg)), "cpu-ns/pair/averaging")
+	b.ReportMetric(b.Elapsed().Seconds()*1e9/float64(b.N)/float64(est.SamplePairs), "ns/pair")
 }
