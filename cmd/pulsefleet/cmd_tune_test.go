@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"encoding/csv"
 	"fmt"
 	"math"
@@ -9,10 +10,15 @@ import (
 	"path/filepath"
 	"strconv"
 	"strings"
+	"syscall"
 	"testing"
+	"time"
 
+	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/sim"
 	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/tune"
 )
 
 // tuneTrendCSV writes an invented 1 Hz trend (demo data): devices around
@@ -316,4 +322,69 @@ func TestTuneCommandAveraging(t *testing.T) {
 	if b, err := os.ReadFile(filepath.Join(out, "report.html")); err != nil || !strings.Contains(string(b), "re-estimated from 100 raw chunks") {
 		t.Errorf("report.html: %v; want it to say the trends were re-estimated", err)
 	}
+}
+
+// The trends tune re-estimates from raw captures at the estimator's default
+// averaging time are the ones the gateway estimated live from the same
+// chunks: every point at the same time with the same values (the store
+// keeps float32). The simulated fleet's clocks drift and some chunks are
+// sent corrupt and rejected, so the restart rules are exercised too.
+// Reconnects are left out: the gateway restarts the estimator with every
+// new stream, and the store does not record which stream a capture came
+// from (tune/doc.go, caveat).
+func TestTuneReestimationMatchesLiveGateway(t *testing.T) {
+	if testing.Short() {
+		t.Skip("process test")
+	}
+	data := t.TempDir()
+	c := startServe(t, data, "--capture-raw")
+	start := time.Now().Add(-time.Hour).Truncate(time.Second)
+	rep, err := sim.Run(context.Background(), sim.Options{Gateway: c.grpcAddr, Devices: 3, IDPrefix: "bay", Mode: sim.ModeRaw,
+		RateHz: 50, Speed: 20, Duration: 3 * time.Second, Seed: 4, Start: start, ClockDriftPPM: 20000, CorruptRate: 0.03})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if rep.FramesAcked == 0 || rep.UnackedAtEnd != 0 {
+		t.Fatalf("simulator: %+v", rep)
+	}
+	if err := c.cmd.Process.Signal(syscall.SIGTERM); err != nil {
+		t.Fatal(err)
+	}
+	if err := <-c.exited; err != nil {
+		t.Fatalf("serve after SIGTERM: %v\n%s", err, c.stderr)
+	}
+	est, err := tune.EstimateStore(context.Background(), data, tune.Filter{}, []float64{estimator.DefaultAveragingS}, tune.EstimateOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	db, err := store.Open(data, store.Options{ReadOnly: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	f32 := func(v float64) float64 { return float64(float32(v)) }
+	same := func(a, b float64) bool { return f32(a) == b || (math.IsNaN(a) && math.IsNaN(b)) }
+	valid := 0
+	for _, tr := range est.Trends[0] {
+		var live []store.Point
+		if err := db.Trend(tr.Device, 0, math.MaxInt64/2, func(p store.Point) bool { live = append(live, p); return true }); err != nil {
+			t.Fatal(err)
+		}
+		if len(live) != len(tr.Samples) {
+			t.Errorf("%s: %d points re-estimated, %d stored live", tr.Device, len(tr.Samples), len(live))
+		}
+		for i := range min(len(live), len(tr.Samples)) {
+			s, p := tr.Samples[i], live[i]
+			if int64(math.Round(s.T*1000)) != p.TimeMS || !same(s.SpO2, p.SpO2) || !same(s.Pulse, p.Pulse) || !same(s.PI, p.PI) || !same(s.SQI, p.SQI) {
+				t.Fatalf("%s point %d: re-estimated %+v, live %+v", tr.Device, i, s, p)
+			}
+			if p.SpO2 == p.SpO2 {
+				valid++
+			}
+		}
+	}
+	if len(est.Trends[0]) != 3 || valid == 0 {
+		t.Fatalf("%d devices, %d valid SpO2 points: the run did not exercise the comparison", len(est.Trends[0]), valid)
+	}
+	t.Logf("%d devices, %d chunks, %d restarts, %d valid SpO2 points; sim rejected %d", len(est.Trends[0]), est.Chunks, est.Restarts, valid, rep.Rejected)
 }
