@@ -106,32 +106,38 @@ type PhaseResult struct {
 // Latency and loss figures are those of the last phase (the system under
 // test); peak_rss_bytes is the highest phase peak.
 type Result struct {
-	Devices             int           `json:"devices"`
-	RateHz              float64       `json:"rate_hz"`
-	Chunk               int           `json:"chunk"`
-	DurationS           float64       `json:"duration_s"`
-	OfferedSamplesPerS  float64       `json:"offered_samples_per_s"`
-	SinkSamplesPerS     float64       `json:"sink_samples_per_s"`
-	GatewaySamplesPerS  float64       `json:"gateway_samples_per_s"`
-	Ratio               float64       `json:"ratio"`
-	AckP50Ms            float64       `json:"ack_p50_ms"`
-	AckP99Ms            float64       `json:"ack_p99_ms"`
-	SinkAckP99Ms        float64       `json:"sink_ack_p99_ms"`
-	Lost                uint64        `json:"lost"`
-	PeakRSSBytes        int64         `json:"peak_rss_bytes"`
-	SinkPeakRSSBytes    int64         `json:"sink_peak_rss_bytes"`
-	GatewayPeakRSSBytes int64         `json:"gateway_peak_rss_bytes"`
-	RSSPerDeviceBytes   int64         `json:"rss_per_device_bytes"` // gateway phase peak / devices
-	RSSExact            bool          `json:"rss_exact"`
-	ClientInProcess     bool          `json:"client_in_process"` // peaks and CPU include the load client
-	ClientPeakRSSBytes  int64         `json:"client_peak_rss_bytes,omitempty"`
-	SinkCPUCores        float64       `json:"sink_cpu_cores"`
-	GatewayCPUCores     float64       `json:"gateway_cpu_cores"`
-	ClientCPUCores      float64       `json:"client_cpu_cores,omitempty"`
-	Rejected            uint64        `json:"rejected"`
-	Reconnects          uint64        `json:"reconnects"`
-	UnackedAtEnd        uint64        `json:"unacked_at_end"`
-	Phases              []PhaseResult `json:"-"`
+	Devices             int     `json:"devices"`
+	RateHz              float64 `json:"rate_hz"`
+	Chunk               int     `json:"chunk"`
+	DurationS           float64 `json:"duration_s"`
+	OfferedSamplesPerS  float64 `json:"offered_samples_per_s"`
+	SinkSamplesPerS     float64 `json:"sink_samples_per_s"`
+	GatewaySamplesPerS  float64 `json:"gateway_samples_per_s"`
+	Ratio               float64 `json:"ratio"`
+	AckP50Ms            float64 `json:"ack_p50_ms"`
+	AckP99Ms            float64 `json:"ack_p99_ms"`
+	SinkAckP99Ms        float64 `json:"sink_ack_p99_ms"`
+	Lost                uint64  `json:"lost"`
+	PeakRSSBytes        int64   `json:"peak_rss_bytes"`
+	SinkPeakRSSBytes    int64   `json:"sink_peak_rss_bytes"`
+	GatewayPeakRSSBytes int64   `json:"gateway_peak_rss_bytes"`
+	RSSPerDeviceBytes   int64   `json:"rss_per_device_bytes"` // gateway phase peak / devices
+	RSSExact            bool    `json:"rss_exact"`
+	ClientInProcess     bool    `json:"client_in_process"` // peaks and CPU include the load client
+	ClientPeakRSSBytes  int64   `json:"client_peak_rss_bytes,omitempty"`
+	SinkCPUCores        float64 `json:"sink_cpu_cores"`
+	GatewayCPUCores     float64 `json:"gateway_cpu_cores"`
+	ClientCPUCores      float64 `json:"client_cpu_cores,omitempty"`
+	Rejected            uint64  `json:"rejected"`
+	Reconnects          uint64  `json:"reconnects"`
+	UnackedAtEnd        uint64  `json:"unacked_at_end"`
+	// LoadAvg is the machine's 1-minute load average at the start and the
+	// end of the run (/proc/loadavg): other work on a shared machine skews
+	// every figure above.
+	LoadAvgStart float64       `json:"load_avg_start"`
+	LoadAvgEnd   float64       `json:"load_avg_end"`
+	CPUs         int           `json:"cpus"`
+	Phases       []PhaseResult `json:"-"`
 }
 
 // SinkPhase is the bare sink.
@@ -181,6 +187,7 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 	if opts.Client == nil {
 		opts.Client = inProcess
 	}
+	res.LoadAvgStart, res.CPUs = loadAvg(), runtime.NumCPU()
 	for _, ph := range phases {
 		pr, err := runPhase(ctx, opts, ph)
 		if err != nil {
@@ -193,6 +200,7 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 			return nil, ctx.Err()
 		}
 	}
+	res.LoadAvgEnd = loadAvg()
 	first, last := res.Phases[0], res.Phases[len(res.Phases)-1]
 	res.SinkSamplesPerS, res.GatewaySamplesPerS = first.SamplesPerS, last.SamplesPerS
 	if first.SamplesPerS > 0 {
@@ -356,4 +364,18 @@ func procStatus(key string) int64 {
 		}
 	}
 	return 0
+}
+
+// loadAvg is the 1-minute load average (0 when unknown).
+func loadAvg() float64 {
+	b, err := os.ReadFile("/proc/loadavg")
+	if err != nil {
+		return 0
+	}
+	f := strings.Fields(string(b))
+	if len(f) == 0 {
+		return 0
+	}
+	v, _ := strconv.ParseFloat(f[0], 64)
+	return v
 }
