@@ -59,6 +59,15 @@
 // writes each set as trends/averaging-T.csv, so replay over it reproduces
 // any row.
 //
+// At the gateway's averaging time (8 s) the re-estimated trends equal the
+// stored live ones point for point (cmd/pulsefleet
+// TestTuneReestimationMatchesLiveGateway), except after a reconnect: the
+// gateway also restarts the estimator with every new stream, and the store
+// does not record which stream a capture came from, so a reconnect with a
+// continuous clock and sequence is bridged here; the live trend lacks
+// values for the warm-up (about 3 s) after it and its seconds are counted
+// from the reconnect.
+//
 // Caveat, seen in the tests: a longer window smooths a dip shorter than it
 // (shallower, so fewer threshold alarms with no delay) but also spreads it
 // in time, so a condition with a delay (desaturation, 10 s) can fire at a

@@ -53,7 +53,8 @@ type EstimateOptions struct {
 // device-time jump over 1 s or a skipped sequence number; each point at the
 // end of its second on the device clock). Points are kept in time order,
 // one per second as the store would hold them (a later point of the same
-// second replaces an earlier one).
+// second replaces an earlier one). Unlike the gateway it cannot restart at
+// a reconnect whose clock and sequence continue (package doc).
 //
 // Devices without raw captures in range are skipped (Estimated.Skipped),
 // unless f names them, which is an error; so is a store with no raw
