@@ -244,6 +244,7 @@ type authState struct {
 	opt        SecurityOptions
 	tokens     map[string]store.Token // by hash of the secret
 	sessionKey []byte                 // HMAC key of web sessions; new each start
+	streams    map[string]int         // open streams by device credential id
 
 	limiter    *auditLimiter
 	suppressed prometheus.Counter
@@ -527,7 +528,41 @@ func (g *Gateway) streamGuard(srv any, ss grpc.ServerStream, info *grpc.StreamSe
 	if err != nil {
 		return err
 	}
+	if p, _ := principalFrom(ctx); p.Kind == "device" {
+		// One stream per device at a time (a new one replaces the old); a
+		// few may overlap while one replaces another, no more: a device
+		// credential cannot hold the gateway's memory with idle streams.
+		if !g.auth.openStream(p.TokenID) {
+			g.authFailed(ctx, remoteFrom(ctx), "auth.denied", p, p.Subject, fmt.Sprintf("%s: more than %d open streams with credential %s", info.FullMethod, maxDeviceStreams, p.TokenID))
+			return status.Errorf(codes.ResourceExhausted, "device %s already has %d open streams; close them (a new stream replaces the device's open one)", p.Subject, maxDeviceStreams)
+		}
+		defer g.auth.closeStream(p.TokenID)
+	}
 	return h(srv, &guardedStream{ServerStream: ss, ctx: ctx})
+}
+
+// maxDeviceStreams bounds the concurrent streams of one device credential.
+const maxDeviceStreams = 4
+
+func (a *authState) openStream(tokenID string) bool {
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	if a.streams == nil {
+		a.streams = map[string]int{}
+	}
+	if a.streams[tokenID] >= maxDeviceStreams {
+		return false
+	}
+	a.streams[tokenID]++
+	return true
+}
+
+func (a *authState) closeStream(tokenID string) {
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	if a.streams[tokenID]--; a.streams[tokenID] <= 0 {
+		delete(a.streams, tokenID)
+	}
 }
 
 // recoverCall turns a panic in an API call into INTERNAL: no input may take

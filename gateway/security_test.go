@@ -663,3 +663,40 @@ func TestActionsAreAuditedUnderTheCredentialsName(t *testing.T) {
 		}
 	}
 }
+
+// A device credential holds at most a few streams at once: idle extra
+// streams cannot pile up in the gateway's memory.
+func TestDeviceCredentialStreamsAreBounded(t *testing.T) {
+	h := newHarness(t, nil)
+	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-ro", Role: pb.Role_ROLE_ADMIN})
+	dev := issue(t, h, admin, &pb.IssueTokenRequest{DeviceId: "bed-s"})
+	for i := 0; i < maxDeviceStreams; i++ {
+		h.openAs(t, dev) // open, never introduced
+	}
+	secWaitUntil(t, func() bool {
+		h.g.auth.mu.RLock()
+		defer h.g.auth.mu.RUnlock()
+		return h.g.auth.streams[tokenID(dev)] == maxDeviceStreams
+	}, "streams open")
+	if c := h.openAs(t, dev).endCode(); c != codes.ResourceExhausted {
+		t.Errorf("stream %d of one device credential: %v, want ResourceExhausted", maxDeviceStreams+1, c)
+	}
+	// An admin credential (simulators) is not bounded this way.
+	for i := 0; i < 2*maxDeviceStreams; i++ {
+		d := h.openAs(t, admin)
+		d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: summaryIntro(fmt.Sprintf("sim-%d", i))}})
+		d.waitFor(func() bool { return len(d.other) > 0 }, "welcome")
+	}
+}
+
+// secWaitUntil polls cond (bounded) until it holds.
+func secWaitUntil(t *testing.T, cond func() bool, what string) {
+	t.Helper()
+	deadline := time.Now().Add(20 * time.Second)
+	for !cond() {
+		if time.Now().After(deadline) {
+			t.Fatalf("timed out waiting for %s", what)
+		}
+		time.Sleep(5 * time.Millisecond)
+	}
+}
