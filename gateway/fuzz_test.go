@@ -4,6 +4,9 @@ import (
 	"context"
 	"math"
 	"net/http/httptest"
+	"os"
+	"os/exec"
+	"strconv"
 	"strings"
 	"sync"
 	"testing"
@@ -298,4 +301,24 @@ func FuzzCredentials(f *testing.F) {
 			t.Fatalf("session cookie %q accepted without a signature from this gateway", v)
 		}
 	})
+}
+
+// TestFuzzHandleBriefly runs real fuzzing of the whole message path for
+// $PULSEFLEET_FUZZ_SECONDS seconds (1..600) when that is set; the suite
+// leaves it unset and runs only the seed corpora (scripts/fuzz.sh fuzzes
+// every target).
+func TestFuzzHandleBriefly(t *testing.T) {
+	v := os.Getenv("PULSEFLEET_FUZZ_SECONDS")
+	if v == "" {
+		t.Skip("set PULSEFLEET_FUZZ_SECONDS to fuzz FuzzHandle for that long")
+	}
+	n, err := strconv.Atoi(v)
+	if err != nil || n < 1 || n > 600 {
+		t.Fatalf("PULSEFLEET_FUZZ_SECONDS: %q, want 1..600", v)
+	}
+	cmd := exec.Command("go", "test", "-run", "^$", "-fuzz", "^FuzzHandle$", "-fuzztime", strconv.Itoa(n)+"s", ".")
+	out, err := cmd.CombinedOutput()
+	if err != nil {
+		t.Fatalf("fuzzing FuzzHandle: %v\n%s", err, out)
+	}
 }
