@@ -307,3 +307,27 @@ func TestEstimateStoreErrors(t *testing.T) {
 		t.Errorf("unresolvable calibration: %v, want it to name ward-6 and gone-fit@v2", err)
 	}
 }
+
+// Device and time filters: only the named device's captures that start in
+// [From, To) are read, and only points in [From, To) are kept; the
+// estimator warms up from the first capture in range (estimator doc: first
+// values after about 3 s).
+func TestEstimateStoreFilter(t *testing.T) {
+	dir := rawStore(t)
+	t0 := rawT0MS / 1000
+	f := Filter{Devices: []string{"ward-5"}, From: t0 + 60, To: t0 + 90, HasFrom: true, HasTo: true}
+	est, err := EstimateStore(context.Background(), dir, f, []float64{8}, EstimateOptions{Workers: 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(est.Trends[0]) != 1 || est.Trends[0][0].Device != "ward-5" || est.Chunks != 60 || len(est.Skipped) != 0 {
+		t.Fatalf("%d trends, %d chunks, skipped %v; want ward-5 alone from 60 chunks (30 s)", len(est.Trends[0]), est.Chunks, est.Skipped)
+	}
+	s := est.Trends[0][0].Samples
+	if len(s) != 29 || s[0].T != t0+61 || s[len(s)-1].T != t0+89 {
+		t.Fatalf("%d points from %v to %v s, want 29 from 61 to 89 s (the point at 90 s ends after To)", len(s), s[0].T-t0, s[len(s)-1].T-t0)
+	}
+	if !math.IsNaN(s[0].SpO2) || math.IsNaN(s[len(s)-1].SpO2) {
+		t.Errorf("first point SpO2 %v, last %v: want the warm-up withheld and a value once the window fills", s[0].SpO2, s[len(s)-1].SpO2)
+	}
+}
