@@ -69,11 +69,13 @@ func callHandleHook(m *pb.ConnectRequest) {
 // most perMinute in each minute (a fixed window per host); the ones left out
 // are counted and reported with the host's next entry. It tracks at most
 // maxHosts hosts; beyond that, new hosts share one window, so a flood from
-// many addresses cannot grow it either.
+// many addresses cannot grow it either. All hosts together get at most
+// auditAllHostsFactor times perMinute entries a minute.
 type auditLimiter struct {
 	mu        sync.Mutex
 	perMinute int
 	hosts     map[string]*auditWindow
+	all       auditWindow
 }
 
 type auditWindow struct {
@@ -86,6 +88,9 @@ const (
 	auditWindowMS   = 60_000
 	auditMaxHosts   = 1024
 	auditOtherHosts = "*other hosts*"
+	// auditAllHostsFactor: entries a minute from all hosts together, in
+	// units of the per-host limit (10 x 10 = 100 entries, some 20 KiB, a minute).
+	auditAllHostsFactor = 10
 )
 
 func newAuditLimiter(perMinute int) *auditLimiter {
@@ -124,11 +129,15 @@ func (l *auditLimiter) allow(host string, nowMS int64) (bool, int) {
 	if nowMS-w.startMS >= auditWindowMS {
 		w.startMS, w.n = nowMS, 0
 	}
-	if w.n >= l.perMinute {
+	if nowMS-l.all.startMS >= auditWindowMS {
+		l.all.startMS, l.all.n = nowMS, 0
+	}
+	if w.n >= l.perMinute || l.all.n >= auditAllHostsFactor*l.perMinute {
 		w.suppressed++
 		return false, 0
 	}
 	w.n++
+	l.all.n++
 	s := w.suppressed
 	w.suppressed = 0
 	return true, s

@@ -316,6 +316,17 @@ func TestAuthFailureAuditIsRateLimited(t *testing.T) {
 	if n := len(l.hosts); n > auditMaxHosts+1 {
 		t.Errorf("limiter tracks %d hosts, want at most %d", n, auditMaxHosts+1)
 	}
+	// All hosts together: at most 10 times the per-host limit a minute.
+	l = newAuditLimiter(2)
+	written := 0
+	for i := 0; i < 500; i++ {
+		if ok, _ := l.allow(fmt.Sprintf("10.0.%d.%d", i>>8, i&255), 1000); ok {
+			written++
+		}
+	}
+	if written != auditAllHostsFactor*2 {
+		t.Errorf("%d entries from 500 hosts in a minute, want %d", written, auditAllHostsFactor*2)
+	}
 }
 
 // Over the message-rate limit a stream gets REJECT_REASON_RATE_LIMITED for
