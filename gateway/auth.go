@@ -51,8 +51,10 @@ import (
 // Failures answer UNAUTHENTICATED (no, unknown or revoked credential) or
 // PERMISSION_DENIED (valid credential, not allowed) and are written to the
 // audit log as auth.failure and auth.denied, at most
-// SecurityOptions.AuthAuditPerMinute per remote host per minute; the next
-// entry written for that host counts what was left out. Secrets are never
+// SecurityOptions.AuthAuditPerMinute per remote host per minute and ten
+// times that over all hosts together; the next entry written for a host
+// counts what was left out (pulsefleet_auth_audit_suppressed_total counts
+// every one). Secrets are never
 // logged or stored: only their SHA-256.
 
 // Role of an operator credential, ordered by what it allows.

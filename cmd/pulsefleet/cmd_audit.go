@@ -15,7 +15,8 @@ const auditSummary = `Read the audit log, newest first.
 
 The log holds every authentication failure (auth.failure: no, unknown or
 revoked credential; auth.denied: a valid credential without the right; at most
-10 per remote host per minute, the next entry counting those left out), web
+10 per remote host and 100 in all per minute, the next entry counting those
+left out), web
 login (auth.login), alarm acknowledgement and pause (alarm.acknowledged,
 alarm.paused, alarm.resumed), profile change (profile.set), calibration change
 (calibration.put, calibration.assign), credential change (token.issue,
