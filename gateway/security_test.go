@@ -351,16 +351,47 @@ func TestRateLimitRejectsAndStreamGoesOn(t *testing.T) {
 	}
 	d.waitAck(20)
 	nowMS.Add(1000) // 10 more tokens
+	// A later message may not overtake the refused one: 22 before 21 is
+	// refused too (else 21 would count as lost and its resend as stale).
+	d.send(summary(22, base+22000, 95))
+	if r := d.waitRejections(11)[10]; r.GetReason() != pb.RejectReason_REJECT_REASON_RATE_LIMITED || r.GetSequence() != 22 || !strings.Contains(r.GetDetail(), "resend from sequence 21") {
+		t.Errorf("22 before 21: %v, want RATE_LIMITED naming 21", r)
+	}
 	for s := uint64(21); s <= 30; s++ {
 		d.send(summary(s, base+int64(s)*1000, 95))
 	}
 	d.waitAck(30)
+	lost := func() uint64 {
+		q := h.g.devices.get("fast-1")
+		q.mu.Lock()
+		defer q.mu.Unlock()
+		return q.cur.Lost
+	}
+	if n := lost(); n != 0 {
+		t.Errorf("%d messages counted lost, want 0", n)
+	}
 	tot, err := h.db.LedgerTotals()
 	if err != nil {
 		t.Fatal(err)
 	}
 	if lt := tot["fast-1"]; lt.Chunks != 30 || !lt.Distinct || lt.MaxSeq != 30 {
 		t.Errorf("ledger %+v, want 30 distinct messages", lt)
+	}
+
+	// A device that gives a refused message up is held back only so long:
+	// after rateHoldMS its later messages are taken (the gap counts as lost).
+	nowMS.Add(1000) // 10 more tokens
+	for s := uint64(31); s <= 60; s++ {
+		d.send(summary(s, base+int64(s)*1000, 95))
+	}
+	d.waitRejections(11 + 20) // 31..40 taken, 41 refused (no tokens), 42..60 held
+	d.send(summary(42, base+42000, 95))
+	d.waitRejections(11 + 21) // still held
+	nowMS.Add(rateHoldMS + 1)
+	d.send(summary(43, base+43000, 95))
+	d.waitAck(43)
+	if n := lost(); n != 2 {
+		t.Errorf("%d messages counted lost, want 2 (41 and 42, given up)", n)
 	}
 }
 
