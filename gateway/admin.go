@@ -164,9 +164,9 @@ func (g *Gateway) ListTokens(ctx context.Context, _ *pb.ListTokensRequest) (*pb.
 	return out, nil
 }
 
-// RevokeToken implements AdminService. A revoked device credential also ends
-// that device's open stream; a revoked operator's web sessions end at their
-// next request.
+// RevokeToken implements AdminService. Every open gRPC stream made with the
+// credential ends at once (a device's stream, an operator's watch); web
+// sessions made with it end at their next request.
 func (g *Gateway) RevokeToken(ctx context.Context, req *pb.RevokeTokenRequest) (*pb.RevokeTokenResponse, error) {
 	t, err := RevokeToken(g.db, req.GetTokenId(), actorFrom(ctx), remoteFrom(ctx), g.opt.Now())
 	if errors.Is(err, store.ErrNotFound) {
@@ -178,15 +178,7 @@ func (g *Gateway) RevokeToken(ctx context.Context, req *pb.RevokeTokenRequest) (
 	g.auth.mu.Lock()
 	g.auth.tokens[t.Hash] = t
 	g.auth.mu.Unlock()
-	if t.Kind == "device" {
-		if d := g.devices.get(t.Subject); d != nil {
-			d.mu.Lock()
-			if s := d.stream; s != nil {
-				s.cancel(errors.New("credential revoked"))
-			}
-			d.mu.Unlock()
-		}
-	}
+	g.auth.endStreams(t.ID)
 	g.log.Info("credential revoked", "id", t.ID, "kind", t.Kind, "subject", t.Subject, "by", actorFrom(ctx))
 	return &pb.RevokeTokenResponse{Token: TokenProto(t)}, nil
 }

@@ -244,9 +244,9 @@ var (
 type authState struct {
 	mu         sync.RWMutex
 	opt        SecurityOptions
-	tokens     map[string]store.Token // by hash of the secret
-	sessionKey []byte                 // HMAC key of web sessions; new each start
-	streams    map[string]int         // open streams by device credential id
+	tokens     map[string]store.Token                // by hash of the secret
+	sessionKey []byte                                // HMAC key of web sessions; new each start
+	streams    map[string]map[*streamHandle]struct{} // open streams by credential id
 
 	limiter    *auditLimiter
 	suppressed prometheus.Counter
@@ -530,15 +530,20 @@ func (g *Gateway) streamGuard(srv any, ss grpc.ServerStream, info *grpc.StreamSe
 	if err != nil {
 		return err
 	}
-	if p, _ := principalFrom(ctx); p.Kind == "device" {
-		// One stream per device at a time (a new one replaces the old); a
-		// few may overlap while one replaces another, no more: a device
-		// credential cannot hold the gateway's memory with idle streams.
-		if !g.auth.openStream(p.TokenID) {
+	if p, ok := principalFrom(ctx); ok && p.TokenID != "" {
+		// Streams made with a credential end when it is revoked; a device
+		// credential holds at most a few at once (one per device, a few
+		// overlapping while one replaces another), so idle streams cannot
+		// pile up in the gateway's memory.
+		var cancel context.CancelCauseFunc
+		ctx, cancel = context.WithCancelCause(ctx)
+		defer cancel(nil)
+		hd := &streamHandle{cancel: cancel}
+		if !g.auth.openStream(p, hd) {
 			g.authFailed(ctx, remoteFrom(ctx), "auth.denied", p, p.Subject, fmt.Sprintf("%s: more than %d open streams with credential %s", info.FullMethod, maxDeviceStreams, p.TokenID))
 			return status.Errorf(codes.ResourceExhausted, "device %s already has %d open streams; close them (a new stream replaces the device's open one)", p.Subject, maxDeviceStreams)
 		}
-		defer g.auth.closeStream(p.TokenID)
+		defer g.auth.closeStream(p.TokenID, hd)
 	}
 	return h(srv, &guardedStream{ServerStream: ss, ctx: ctx})
 }
@@ -546,24 +551,47 @@ func (g *Gateway) streamGuard(srv any, ss grpc.ServerStream, info *grpc.StreamSe
 // maxDeviceStreams bounds the concurrent streams of one device credential.
 const maxDeviceStreams = 4
 
-func (a *authState) openStream(tokenID string) bool {
+// errRevoked ends the streams of a revoked credential.
+var errRevoked = errors.New("credential revoked")
+
+// streamHandle is one open stream made with a credential.
+type streamHandle struct{ cancel context.CancelCauseFunc }
+
+// openStream registers a stream made with p's credential; false when a
+// device credential already holds maxDeviceStreams.
+func (a *authState) openStream(p principal, h *streamHandle) bool {
 	a.mu.Lock()
 	defer a.mu.Unlock()
 	if a.streams == nil {
-		a.streams = map[string]int{}
+		a.streams = map[string]map[*streamHandle]struct{}{}
 	}
-	if a.streams[tokenID] >= maxDeviceStreams {
+	set := a.streams[p.TokenID]
+	if p.Kind == "device" && len(set) >= maxDeviceStreams {
 		return false
 	}
-	a.streams[tokenID]++
+	if set == nil {
+		set = map[*streamHandle]struct{}{}
+		a.streams[p.TokenID] = set
+	}
+	set[h] = struct{}{}
 	return true
 }
 
-func (a *authState) closeStream(tokenID string) {
+func (a *authState) closeStream(tokenID string, h *streamHandle) {
 	a.mu.Lock()
 	defer a.mu.Unlock()
-	if a.streams[tokenID]--; a.streams[tokenID] <= 0 {
+	delete(a.streams[tokenID], h)
+	if len(a.streams[tokenID]) == 0 {
 		delete(a.streams, tokenID)
+	}
+}
+
+// endStreams ends every open stream made with credential tokenID.
+func (a *authState) endStreams(tokenID string) {
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	for h := range a.streams[tokenID] {
+		h.cancel(errRevoked)
 	}
 }
 

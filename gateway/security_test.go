@@ -718,7 +718,7 @@ func TestDeviceCredentialStreamsAreBounded(t *testing.T) {
 	secWaitUntil(t, func() bool {
 		h.g.auth.mu.RLock()
 		defer h.g.auth.mu.RUnlock()
-		return h.g.auth.streams[tokenID(dev)] == maxDeviceStreams
+		return len(h.g.auth.streams[tokenID(dev)]) == maxDeviceStreams
 	}, "streams open")
 	if c := h.openAs(t, dev).endCode(); c != codes.ResourceExhausted {
 		t.Errorf("stream %d of one device credential: %v, want ResourceExhausted", maxDeviceStreams+1, c)
@@ -740,5 +740,49 @@ func secWaitUntil(t *testing.T, cond func() bool, what string) {
 			t.Fatalf("timed out waiting for %s", what)
 		}
 		time.Sleep(5 * time.Millisecond)
+	}
+}
+
+// Revoking a credential ends the streams already open with it: an
+// operator's watch as well as a device's stream.
+func TestRevocationEndsOpenStreams(t *testing.T) {
+	h := newHarness(t, nil)
+	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-ro", Role: pb.Role_ROLE_ADMIN})
+	viewer := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "viewer-lu", Role: pb.Role_ROLE_VIEWER})
+	ctx, cancel := context.WithCancel(bearer(viewer))
+	defer cancel()
+	w, err := h.fleet().WatchEvents(ctx, &pb.WatchEventsRequest{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ended := make(chan error, 1)
+	go func() {
+		for {
+			if _, err := w.Recv(); err != nil {
+				ended <- err
+				return
+			}
+		}
+	}()
+	secWaitUntil(t, func() bool {
+		h.g.auth.mu.RLock()
+		defer h.g.auth.mu.RUnlock()
+		return len(h.g.auth.streams[tokenID(viewer)]) == 1
+	}, "watch open")
+	if _, err := h.admin().RevokeToken(bearer(admin), &pb.RevokeTokenRequest{TokenId: tokenID(viewer)}); err != nil {
+		t.Fatal(err)
+	}
+	select {
+	case <-ended:
+	case <-time.After(20 * time.Second):
+		t.Fatal("the watch of a revoked credential goes on")
+	}
+	// A new watch with it is refused (with the stream's first answer).
+	w2, err := h.fleet().WatchEvents(bearer(viewer), &pb.WatchEventsRequest{})
+	if err == nil {
+		_, err = w2.Recv()
+	}
+	if status.Code(err) != codes.Unauthenticated {
+		t.Errorf("new watch with a revoked credential: %v", err)
 	}
 }
