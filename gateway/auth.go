@@ -805,7 +805,18 @@ func (g *Gateway) requireRole(role Role, h http.Handler) http.Handler {
 			http.Error(w, http.StatusText(code)+": "+err.Error(), code)
 			return
 		}
-		h.ServeHTTP(w, r.WithContext(withPrincipal(r.Context(), p)))
+		ctx := withPrincipal(r.Context(), p)
+		if p.TokenID != "" {
+			// Long requests (the page's event stream) end when the
+			// credential is revoked, like gRPC streams.
+			var cancel context.CancelCauseFunc
+			ctx, cancel = context.WithCancelCause(ctx)
+			defer cancel(nil)
+			hd := &streamHandle{cancel: cancel}
+			g.auth.openStream(p, hd)
+			defer g.auth.closeStream(p.TokenID, hd)
+		}
+		h.ServeHTTP(w, r.WithContext(ctx))
 	})
 }
 
