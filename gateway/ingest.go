@@ -54,14 +54,9 @@ type stream struct {
 	bucket  tokenBucket // message-rate limit (ratelimit.go)
 
 	// raw pipeline (owned by the handler goroutine)
-	est         *estimator.Stream
-	estRate     float64
-	estT0MS     int64   // device time of the estimator's sample 0
-	nextMS      float64 // expected device time of the next chunk's first sample
-	samplesIn   int64   // samples since the estimator's (re)start
-	red, ir, am []float64
-	estOut      []estimator.Estimate
-	events      []alarms.Event
+	tl     *estimator.Timeline // nil until the first raw chunk
+	estOut []estimator.TimedEstimate
+	events []alarms.Event
 }
 
 // ackThrough records that everything up to seq is durable and wakes the sender.
@@ -506,9 +501,8 @@ func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples ui
 
 	rec := &record{dev: d, stream: s, seq: seq, received: time.UnixMilli(nowMS),
 		chunk: &store.Chunk{Device: d.id, Seq: seq, DeviceTimeMS: devMS, ArrivalMS: nowMS, Samples: samples}}
-	if gap > 0 && s.est != nil {
-		s.est.Reset() // samples are missing: the estimator must not bridge them
-		s.est = nil
+	if gap > 0 && s.tl != nil {
+		s.tl.Gap() // samples are missing: the estimator must not bridge them
 	}
 	fill(rec)
 
@@ -555,49 +549,26 @@ func sourceLabel(s uint8) string {
 }
 
 // estimate runs the estimator over a raw chunk and adds one trend point per
-// completed second to rec.
+// completed second to rec. The timeline restarts the estimator on a new
+// rate, a device-time jump of more than a second, or a gap (accept).
 func (s *stream) estimate(c *pb.RawChunk, rec *record) {
 	g := s.g
-	n := len(c.GetRed())
-	rate := c.GetSampleRateHz()
-	t0 := c.GetDeviceTimeUnixMs()
-	// Restart the estimator on a new rate or a jump in device time of more
-	// than a second against the samples' own timing.
-	if s.est == nil || rate != s.estRate || math.Abs(float64(t0)-s.nextMS) > 1000 {
-		if s.est == nil || rate != s.estRate {
-			e, err := estimator.New(estimator.Config{SampleRateHz: rate, ADCBits: int(s.adc), Calibration: s.cal})
-			if err != nil {
-				g.log.Warn("estimator", "device", s.dev.id, "err", err)
-				return
-			}
-			s.est, s.estRate = e, rate
-		} else {
-			s.est.Reset()
+	if s.tl == nil {
+		tl, err := estimator.NewTimeline(estimator.Config{ADCBits: int(s.adc), Calibration: s.cal})
+		if err != nil {
+			g.log.Warn("estimator", "device", s.dev.id, "err", err)
+			return
 		}
-		s.estT0MS, s.samplesIn = t0, 0
+		s.tl = tl
 	}
-	if cap(s.red) < n {
-		s.red, s.ir, s.am = make([]float64, n), make([]float64, n), make([]float64, n)
+	var err error
+	s.estOut, err = s.tl.PushCodes(c.GetDeviceTimeUnixMs(), c.GetSampleRateHz(), c.GetRed(), c.GetIr(), c.GetAmbient(), s.estOut[:0])
+	if err != nil {
+		g.log.Warn("estimator", "device", s.dev.id, "err", err)
+		return
 	}
-	red, ir := s.red[:n], s.ir[:n]
-	for i, v := range c.GetRed() {
-		red[i] = float64(v)
-	}
-	for i, v := range c.GetIr() {
-		ir[i] = float64(v)
-	}
-	var am []float64
-	if a := c.GetAmbient(); len(a) == n {
-		am = s.am[:n]
-		for i, v := range a {
-			am[i] = float64(v)
-		}
-	}
-	s.estOut = s.est.Push(red, ir, am, s.estOut[:0])
-	s.samplesIn += int64(n)
-	s.nextMS = float64(t0) + float64(n)*1000/rate
 	for _, e := range s.estOut {
-		p := store.Point{Device: s.dev.id, TimeMS: s.estT0MS + (e.Second+1)*1000, SpO2: e.SpO2Pct, Pulse: e.PulseBPM,
+		p := store.Point{Device: s.dev.id, TimeMS: e.TimeMS, SpO2: e.SpO2Pct, Pulse: e.PulseBPM,
 			PI: e.PIPct, SQI: e.SQI, Ratio: e.Ratio, Flags: uint16(e.Flags), Source: uint8(pb.Source_SOURCE_GATEWAY)}
 		rec.points = append(rec.points, p)
 		if math.IsNaN(e.SpO2Pct) {
