@@ -1,6 +1,7 @@
 package gateway
 
 import (
+	"io"
 	"net/http"
 	"net/http/httptest"
 	"net/url"
@@ -182,5 +183,42 @@ func TestTokenBucket(t *testing.T) {
 	b.allow(3_600_000)
 	if b.tokens > 399 {
 		t.Errorf("%v tokens after an hour idle, want at most the burst", b.tokens+1)
+	}
+}
+
+// The page's event stream, opened with a session, ends when the session's
+// credential is revoked.
+func TestWebEventStreamEndsOnRevocation(t *testing.T) {
+	h := newHarness(t, nil)
+	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-ro", Role: pb.Role_ROLE_ADMIN})
+	viewer := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "viewer-lu", Role: pb.Role_ROLE_VIEWER})
+	c := serveHTTP(h.g, loginReq(viewer, false)).Cookies()[0]
+	req, err := http.NewRequest("GET", "http://"+h.httpAddr+"/api/events", nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	req.AddCookie(c)
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	if resp.StatusCode != http.StatusOK {
+		t.Fatalf("events: %d", resp.StatusCode)
+	}
+	done := make(chan struct{})
+	go func() { io.Copy(io.Discard, resp.Body); close(done) }()
+	secWaitUntil(t, func() bool {
+		h.g.auth.mu.RLock()
+		defer h.g.auth.mu.RUnlock()
+		return len(h.g.auth.streams[tokenID(viewer)]) == 1
+	}, "event stream open")
+	if _, err := h.admin().RevokeToken(bearer(admin), &pb.RevokeTokenRequest{TokenId: tokenID(viewer)}); err != nil {
+		t.Fatal(err)
+	}
+	select {
+	case <-done:
+	case <-time.After(20 * time.Second):
+		t.Fatal("the event stream of a revoked credential goes on")
 	}
 }
