@@ -4,8 +4,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"strconv"
-	"strings"
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
@@ -16,49 +14,14 @@ import (
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
-// resolveStoredCalibration maps a calibration reference to a curve:
-// "empirical" (or ""), "beer-lambert" (at the device's wavelengths), or a
-// stored curve "name" (latest version) or "name@vN". It returns the
-// reference as applied ("name@vN").
+// resolveStoredCalibration maps a calibration reference to a curve with
+// calibration.Resolve, looking stored curves up in the gateway's store.
 func (g *Gateway) resolveStoredCalibration(ref string, redNM, irNM float64) (estimator.Calibration, string, error) {
-	switch ref {
-	case "", "empirical":
-		return estimator.Empirical(), "empirical", nil
-	case "beer-lambert":
-		c, err := estimator.BeerLambert(redNM, irNM)
-		if err != nil {
-			return nil, "", err
-		}
-		return c, fmt.Sprintf("beer-lambert@%g/%gnm", redNM, irNM), nil
+	c, applied, err := calibration.Resolve(ref, redNM, irNM, g.db.CalibrationCurve)
+	if errors.Is(err, store.ErrNotFound) {
+		return nil, "", fmt.Errorf("calibration %q is not stored (see `pulsefleet calibrations list`)", ref)
 	}
-	name, version, err := splitCalibrationRef(ref)
-	if err != nil {
-		return nil, "", err
-	}
-	sc, err := g.db.GetCalibration(name, version)
-	if err != nil {
-		if errors.Is(err, store.ErrNotFound) {
-			return nil, "", fmt.Errorf("calibration %q is not stored (see `pulsefleet calibration list`)", ref)
-		}
-		return nil, "", err
-	}
-	c, err := calibration.Parse([]byte(sc.CurveYAML))
-	if err != nil {
-		return nil, "", fmt.Errorf("stored calibration %s@v%d: %w", sc.Name, sc.Version, err)
-	}
-	return c, fmt.Sprintf("%s@v%d", sc.Name, sc.Version), nil
-}
-
-func splitCalibrationRef(ref string) (string, uint32, error) {
-	name, v, found := strings.Cut(ref, "@v")
-	if !found {
-		return ref, 0, nil
-	}
-	n, err := strconv.ParseUint(v, 10, 32)
-	if err != nil || n == 0 {
-		return "", 0, fmt.Errorf("calibration %q: version %q, want a whole number >= 1 after @v", ref, v)
-	}
-	return name, uint32(n), nil
+	return c, applied, err
 }
 
 // PutCalibration implements AdminService: stores a new version of a curve.

@@ -189,6 +189,13 @@ func (db *DB) GetCalibration(name string, version uint32) (Calibration, error) {
 	return c, nil
 }
 
+// CalibrationCurve returns the curve YAML of version (0 = latest) of name and
+// the version found; ErrNotFound when there is none. It fits calibration.Lookup.
+func (db *DB) CalibrationCurve(name string, version uint32) (string, uint32, error) {
+	c, err := db.GetCalibration(name, version)
+	return c.CurveYAML, c.Version, err
+}
+
 // AssignCalibration maps target ("model:NAME" or "device:ID") to a
 // calibration reference ("name@vN"); an empty ref removes the assignment.
 func (db *DB) AssignCalibration(target, ref string, audit *AuditEntry) error {

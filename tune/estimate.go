@@ -5,8 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"slices"
-	"strconv"
-	"strings"
 	"sync/atomic"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
@@ -217,52 +215,14 @@ func timeOrder(s []alarms.Sample, f Filter) []alarms.Sample {
 }
 
 // deviceCalibration resolves the calibration a device's raw stream was
-// estimated with, as the gateway recorded it: "" or "empirical";
-// "beer-lambert" at the device's wavelengths, or "beer-lambert@RED/IRnm" as
-// the gateway records it; or a curve kept in the store, "name@vN" (or
-// "name", the latest version). It returns the reference as applied.
+// estimated with, exactly as the gateway does (calibration.Resolve over the
+// store's curves), and returns the reference as applied.
 func deviceCalibration(db *store.DB, d store.Device) (estimator.Calibration, string, error) {
-	ref := d.Calibration
-	switch {
-	case ref == "" || ref == "empirical":
-		return estimator.Empirical(), "empirical", nil
-	case ref == "beer-lambert" || strings.HasPrefix(ref, "beer-lambert@"):
-		red, ir := d.RedNM, d.IRNM
-		if nm, ok := strings.CutPrefix(ref, "beer-lambert@"); ok {
-			r, i, found := strings.Cut(strings.TrimSuffix(nm, "nm"), "/")
-			var err1, err2 error
-			red, err1 = strconv.ParseFloat(r, 64)
-			ir, err2 = strconv.ParseFloat(i, 64)
-			if !found || err1 != nil || err2 != nil {
-				return nil, "", fmt.Errorf("want beer-lambert@RED/IRnm like beer-lambert@660/940nm")
-			}
-		}
-		c, err := estimator.BeerLambert(red, ir)
-		if err != nil {
-			return nil, "", err
-		}
-		return c, fmt.Sprintf("beer-lambert@%g/%gnm", red, ir), nil
-	}
-	name, version := ref, uint64(0)
-	if n, v, ok := strings.Cut(ref, "@v"); ok {
-		var err error
-		if version, err = strconv.ParseUint(v, 10, 32); err != nil || version == 0 {
-			return nil, "", fmt.Errorf("version %q, want a whole number >= 1 after @v", v)
-		}
-		name = n
-	}
-	sc, err := db.GetCalibration(name, uint32(version))
+	c, applied, err := calibration.Resolve(d.Calibration, d.RedNM, d.IRNM, db.CalibrationCurve)
 	if errors.Is(err, store.ErrNotFound) {
 		return nil, "", fmt.Errorf("not a curve kept in this store (want empirical, beer-lambert or a stored name@vN): %w", err)
 	}
-	if err != nil {
-		return nil, "", err
-	}
-	c, err := calibration.Parse([]byte(sc.CurveYAML))
-	if err != nil {
-		return nil, "", fmt.Errorf("stored curve %s@v%d: %w", sc.Name, sc.Version, err)
-	}
-	return c, fmt.Sprintf("%s@v%d", sc.Name, sc.Version), nil
+	return c, applied, err
 }
 
 func rangeNote(f Filter) string {
