@@ -24,11 +24,9 @@ type device struct {
 	latest      *pb.TrendPoint // last trend point
 	engine      *alarms.Engine // nil when no profile applies
 	profile     *alarms.Profile
-	ownProfile  bool    // the profile was set for this device
-	alarmRev    uint64  // engine revision last persisted
-	sessionMS   int64   // start of the current or last session (gateway clock)
-	offsetMS    float64 // device clock minus gateway clock, smoothed (ms)
-	offsetOK    bool
+	ownProfile  bool                  // the profile was set for this device
+	alarmRev    uint64                // engine revision last persisted
+	sessionMS   int64                 // start of the current or last session (gateway clock)
 	q           quality               // signal-quality and uptime accumulators
 	activeGauge map[[2]string]float64 // this device's share of pulsefleet_alarms_active
 }
@@ -41,11 +39,12 @@ func (d *device) markDurable(seq uint64) {
 	d.mu.Unlock()
 }
 
-// deviceTimeS estimates the device clock (seconds) at gateway time nowMS.
-// Caller holds d.mu.
+// deviceTimeS estimates the device clock (seconds) at gateway time nowMS,
+// from the least-delayed recent message (so a resent backlog does not pull
+// it back). Caller holds d.mu.
 func (d *device) deviceTimeS(nowMS int64) float64 {
-	if d.offsetOK {
-		return (float64(nowMS) + d.offsetMS) / 1000
+	if off, ok := d.q.clock.refOffset(); ok {
+		return float64(nowMS+off) / 1000
 	}
 	return float64(nowMS) / 1000
 }

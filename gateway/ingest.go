@@ -478,13 +478,6 @@ func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples ui
 	d.cur.Chunks++
 	d.cur.Samples += uint64(samples)
 	d.cur.LastSeenMS = nowMS
-	// Clock: offset of the device clock, smoothed; late if far behind.
-	off := float64(devMS - nowMS)
-	if !d.offsetOK {
-		d.offsetMS, d.offsetOK = off, true
-	} else {
-		d.offsetMS += (off - d.offsetMS) / 64
-	}
 	// Quality accounting: clock drift, effective rate, and lateness against
 	// the least-delayed recent messages (immune to resent backlogs).
 	late := d.q.addChunk(nowMS, devMS, samples, g.opt.LateAfter)
