@@ -200,6 +200,9 @@ func (g *Gateway) operatorAction(ctx context.Context, id string, fn func(d *devi
 	rec := &record{dev: d}
 	g.alarmEffects(d, evs, rec)
 	d.mu.Unlock()
+	for _, a := range rec.audit {
+		a.Remote = remoteFrom(ctx)
+	}
 	if err := g.w.sync(ctx, rec); err != nil {
 		return nil, status.Errorf(codes.Unavailable, "store: %v", err)
 	}

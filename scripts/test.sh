@@ -13,3 +13,7 @@ echo "== go vet"
 go vet ./...
 echo "== go test"
 go test -count=1 -timeout 20m "$@" ./...
+if [ -n "${PULSEFLEET_FUZZ_SECONDS:-}" ]; then
+  echo "== fuzz (${PULSEFLEET_FUZZ_SECONDS} s per target)"
+  ./scripts/fuzz.sh "$PULSEFLEET_FUZZ_SECONDS"
+fi

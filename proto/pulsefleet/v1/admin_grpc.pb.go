@@ -34,7 +34,8 @@ const (
 //
 // AdminService manages credentials, calibrations and reads the audit log
 // while the gateway runs (bbolt locks the store file, so the CLI goes through
-// the gateway). Every call needs the admin role, except ListAudit (viewer).
+// the gateway). Every call needs the admin role, except ListAudit and
+// ListCalibrations (viewer).
 type AdminServiceClient interface {
 	// IssueToken creates a device or operator credential and returns it once.
 	IssueToken(ctx context.Context, in *IssueTokenRequest, opts ...grpc.CallOption) (*IssueTokenResponse, error)
@@ -136,7 +137,8 @@ func (c *adminServiceClient) AssignCalibration(ctx context.Context, in *AssignCa
 //
 // AdminService manages credentials, calibrations and reads the audit log
 // while the gateway runs (bbolt locks the store file, so the CLI goes through
-// the gateway). Every call needs the admin role, except ListAudit (viewer).
+// the gateway). Every call needs the admin role, except ListAudit and
+// ListCalibrations (viewer).
 type AdminServiceServer interface {
 	// IssueToken creates a device or operator credential and returns it once.
 	IssueToken(context.Context, *IssueTokenRequest) (*IssueTokenResponse, error)
