@@ -35,6 +35,7 @@ func runBench(ctx context.Context, args []string, s stdio) error {
 	f.register(fs, false)
 	client := fs.String("client", "process", "run the load client as a separate process (process) or inside this one (in-process)")
 	cpuProfile := fs.String("cpuprofile", "", "write CPU profiles (pprof) per phase to PREFIX.PHASE.pprof (and the client's to PREFIX.client-N.pprof)")
+	memProfile := fs.String("memprofile", "", "write a heap profile (pprof) per phase at 90 % of its sending time to PREFIX.PHASE.pprof")
 	batchDelay := fs.Duration("batch-delay", defaultServeConfig().BatchDelay, "the gateway's store batch delay")
 	if err := parseFlags(fs, args); err != nil {
 		return err
@@ -60,7 +61,7 @@ func runBench(ctx context.Context, args []string, s stdio) error {
 		return usagef("--batch-delay %v, want 1ms..2s", *batchDelay)
 	}
 	opts := bench.Options{Devices: f.devices, RateHz: f.rate, Chunk: f.chunk, Duration: f.duration, Seed: f.seed,
-		DevicesPerConn: f.perConn, Progress: s.err, ProgressEvery: f.progress, CPUProfile: *cpuProfile}
+		DevicesPerConn: f.perConn, Progress: s.err, ProgressEvery: f.progress, CPUProfile: *cpuProfile, MemProfile: *memProfile}
 	if *client == "process" {
 		exe, err := os.Executable()
 		if err != nil {

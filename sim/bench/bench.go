@@ -68,6 +68,10 @@ type Options struct {
 	// CPUProfile, when set, writes one CPU profile per phase to
 	// CPUProfile.PHASE.pprof.
 	CPUProfile string
+	// MemProfile, when set, writes a heap profile of this process (the
+	// target, plus the client when in process) at 90 % of each phase's
+	// sending time to MemProfile.PHASE.pprof.
+	MemProfile string
 	// Client drives the load; nil = sim.Run in this process (the peak RSS
 	// and CPU of a phase then include the client's). ExecClient runs it as
 	// a separate process so the target's figures are its own.
@@ -247,6 +251,23 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 			prof.Close()
 			return nil, fmt.Errorf("cpu profile: %w", err)
 		}
+	}
+	if opts.MemProfile != "" {
+		heapDone := make(chan struct{})
+		defer close(heapDone)
+		t := time.NewTimer(opts.Duration * 9 / 10)
+		defer t.Stop()
+		path := opts.MemProfile + "." + ph.Name + ".pprof"
+		go func() {
+			select {
+			case <-heapDone:
+			case <-t.C:
+				if fh, err := os.Create(path); err == nil {
+					pprof.Lookup("heap").WriteTo(fh, 0)
+					fh.Close()
+				}
+			}
+		}()
 	}
 	cpu0, wall0 := cpuTime(), time.Now()
 	rep, usage, err := opts.Client(ctx, sim.Options{
