@@ -2,7 +2,9 @@ package gateway
 
 import (
 	"context"
+	"io"
 	"net"
+	"net/http"
 	"sync"
 	"testing"
 	"time"
@@ -249,4 +251,19 @@ conditions:
 		t.Fatal(err)
 	}
 	return p
+}
+
+// metrics returns the text of the gateway's /metrics.
+func (h *harness) metrics(t testing.TB) string {
+	t.Helper()
+	resp, err := http.Get("http://" + h.httpAddr + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return string(b)
 }

@@ -3,9 +3,7 @@ package gateway
 import (
 	"context"
 	"fmt"
-	"io"
 	"math"
-	"net/http"
 	"strings"
 	"sync"
 	"testing"
@@ -173,7 +171,7 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 	}
 
 	// /metrics counts what was accepted and rejected.
-	body := scrapeHTTP(t, h.httpAddr)
+	body := h.metrics(t)
 	for _, want := range []string{
 		fmt.Sprintf(`pulsefleet_messages_received_total{mode="summary"} %d`, honest*perDevice+1),
 		`pulsefleet_messages_rejected_total{reason="not_introduced"} 1`,
@@ -184,17 +182,6 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 			t.Errorf("/metrics lacks %q", want)
 		}
 	}
-}
-
-func scrapeHTTP(t testing.TB, addr string) string {
-	t.Helper()
-	resp, err := http.Get("http://" + addr + "/metrics")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer resp.Body.Close()
-	b, _ := io.ReadAll(resp.Body)
-	return string(b)
 }
 
 // A device that reconnects is told where to resume; what it resends is

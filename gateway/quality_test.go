@@ -2,10 +2,8 @@ package gateway
 
 import (
 	"context"
-	"io"
 	"math"
 	"math/rand/v2"
-	"net/http"
 	"strconv"
 	"strings"
 	"sync"
@@ -303,7 +301,7 @@ func TestQualityFiguresMatchInjectedFaults(t *testing.T) {
 			recent++
 		}
 	}
-	body := scrape(t, h)
+	body := h.metrics(t)
 	for _, c := range []struct {
 		series    string
 		want, tol float64
@@ -320,7 +318,7 @@ func TestQualityFiguresMatchInjectedFaults(t *testing.T) {
 	if !h.g.forgetDevice(q.id) {
 		t.Fatal("forgetDevice refused a disconnected device")
 	}
-	if body := scrape(t, h); strings.Contains(body, `device="q-sum-01"`) {
+	if body := h.metrics(t); strings.Contains(body, `device="q-sum-01"`) {
 		t.Errorf("series of a forgotten device remain:\n%s", grepLines(body, "q-sum-01"))
 	}
 }
@@ -406,20 +404,6 @@ func TestEffectiveSampleRate(t *testing.T) {
 	}
 }
 
-func scrape(t *testing.T, h *harness) string {
-	t.Helper()
-	resp, err := http.Get("http://" + h.httpAddr + "/metrics")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer resp.Body.Close()
-	b, err := io.ReadAll(resp.Body)
-	if err != nil {
-		t.Fatal(err)
-	}
-	return string(b)
-}
-
 // metricValue finds one sample line of the text exposition format.
 func metricValue(body, series string) (float64, bool) {
 	for _, l := range strings.Split(body, "\n") {
@@ -459,11 +443,11 @@ func TestSeriesOfDevicesIdleBeyondRetentionAreDeleted(t *testing.T) {
 		}
 		q.disconnect(clk.Now())
 	}
-	if body := scrape(t, h); !strings.Contains(body, `pulsefleet_device_connected{device="idle-01"} 0`) {
+	if body := h.metrics(t); !strings.Contains(body, `pulsefleet_device_connected{device="idle-01"} 0`) {
 		t.Fatalf("idle-01 has no series while within retention:\n%s", grepLines(body, "pulsefleet_device_"))
 	}
 	clk.set(g0.Add(49 * time.Hour))
-	body := scrape(t, h)
+	body := h.metrics(t)
 	if strings.Contains(body, `device="idle-01"`) {
 		t.Errorf("series of a device silent for 49 h with 2-day retention remain:\n%s", grepLines(body, "idle-01"))
 	}

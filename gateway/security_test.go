@@ -4,9 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"io"
 	"math"
-	"net/http"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -290,7 +288,7 @@ func TestAuthFailureAuditIsRateLimited(t *testing.T) {
 	}
 	nowMS.Add(61_000)
 	h.fleet().ListDevices(context.Background(), &pb.ListDevicesRequest{})
-	body := secScrape(t, h.httpAddr)
+	body := h.metrics(t)
 	for _, want := range []string{`pulsefleet_auth_failures_total{reason="no_credential"} 51`, "pulsefleet_auth_audit_suppressed_total 45"} {
 		if !strings.Contains(body, want) {
 			t.Errorf("/metrics lacks %q", want)
@@ -451,24 +449,9 @@ func TestPanicInStreamIsRecovered(t *testing.T) {
 	}
 	d2.send(summary(3, base+2000, 97))
 	d2.waitAck(3)
-	if body := secScrape(t, h.httpAddr); !strings.Contains(body, "pulsefleet_stream_panics_total 1") {
+	if body := h.metrics(t); !strings.Contains(body, "pulsefleet_stream_panics_total 1") {
 		t.Error("/metrics does not count the panic")
 	}
-}
-
-// secScrape returns the /metrics text.
-func secScrape(t testing.TB, addr string) string {
-	t.Helper()
-	resp, err := http.Get("http://" + addr + "/metrics")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer resp.Body.Close()
-	b, err := io.ReadAll(resp.Body)
-	if err != nil {
-		t.Fatal(err)
-	}
-	return string(b)
 }
 
 // rawCodec sends bytes as they are, so a client can send what no honest
@@ -645,7 +628,7 @@ func TestFloodOfMalformedMessagesLeavesHonestStreamsWhole(t *testing.T) {
 	}
 	// The malformed messages did reach the gateway's checks.
 	var rejected float64
-	for _, line := range strings.Split(secScrape(t, h.httpAddr), "\n") {
+	for _, line := range strings.Split(h.metrics(t), "\n") {
 		if strings.HasPrefix(line, "pulsefleet_messages_rejected_total{") {
 			var v float64
 			fmt.Sscan(line[strings.LastIndexByte(line, ' ')+1:], &v)

@@ -2,15 +2,12 @@ package main
 
 import (
 	"context"
-	"encoding/json"
 	"fmt"
 	"io"
 	"sort"
 	"strings"
 	"text/tabwriter"
 	"time"
-
-	"google.golang.org/protobuf/encoding/protojson"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -43,7 +40,7 @@ func runDevices(ctx context.Context, args []string, s stdio) error {
 		return err
 	}
 	if *format == "json" {
-		return writeDevicesJSON(s.out, devs)
+		return writeProtoJSON(s.out, devs)
 	}
 	return writeDevicesTable(s.out, devs, time.Now())
 }
@@ -78,20 +75,6 @@ func listDevices(ctx context.Context, cf *clientFlags, addrs []string) ([]*pb.De
 	}
 	sort.Slice(out, func(i, j int) bool { return out[i].GetDeviceId() < out[j].GetDeviceId() })
 	return out, nil
-}
-
-func writeDevicesJSON(w io.Writer, devs []*pb.Device) error {
-	arr := make([]json.RawMessage, 0, len(devs))
-	for _, d := range devs {
-		b, err := protojson.Marshal(d)
-		if err != nil {
-			return err
-		}
-		arr = append(arr, b)
-	}
-	enc := json.NewEncoder(w)
-	enc.SetIndent("", "  ")
-	return enc.Encode(arr)
 }
 
 func fmtOpt(v *float64, prec int) string {

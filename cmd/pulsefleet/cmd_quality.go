@@ -3,7 +3,6 @@ package main
 import (
 	"context"
 	"encoding/csv"
-	"encoding/json"
 	"fmt"
 	"io"
 	"sort"
@@ -65,7 +64,7 @@ func runQuality(ctx context.Context, args []string, s stdio) error {
 	case "csv":
 		return writeQualityCSV(s.out, qs)
 	case "json":
-		return writeQualityJSON(s.out, qs)
+		return writeProtoJSON(s.out, qs, protojson.MarshalOptions{UseProtoNames: true, EmitUnpopulated: true})
 	}
 	return writeQualityTable(s.out, qs)
 }
@@ -168,21 +167,6 @@ func writeQualityCSV(w io.Writer, qs []*pb.DeviceQuality) error {
 	}
 	cw.Flush()
 	return cw.Error()
-}
-
-func writeQualityJSON(w io.Writer, qs []*pb.DeviceQuality) error {
-	mo := protojson.MarshalOptions{UseProtoNames: true, EmitUnpopulated: true}
-	arr := make([]json.RawMessage, 0, len(qs))
-	for _, q := range qs {
-		b, err := mo.Marshal(q)
-		if err != nil {
-			return err
-		}
-		arr = append(arr, b)
-	}
-	enc := json.NewEncoder(w)
-	enc.SetIndent("", "  ")
-	return enc.Encode(arr)
 }
 
 func pctCell(v float64) string { return ff(100*v, 1) }

@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"flag"
 	"fmt"
@@ -14,8 +13,6 @@ import (
 	"time"
 
 	"google.golang.org/grpc"
-	"google.golang.org/protobuf/encoding/protojson"
-	"google.golang.org/protobuf/proto"
 
 	"github.com/pulsefleet/pulsefleet/gateway"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
@@ -295,19 +292,4 @@ func writeTokensTable(w io.Writer, ts []*pb.Token) error {
 			fmtMS(t.GetCreatedUnixMs()), fmtMS(t.GetRevokedUnixMs()), t.GetIssuedBy())
 	}
 	return tw.Flush()
-}
-
-// writeProtoJSON writes a JSON array of messages in their canonical JSON form.
-func writeProtoJSON[M proto.Message](w io.Writer, ms []M) error {
-	arr := make([]json.RawMessage, 0, len(ms))
-	for _, m := range ms {
-		b, err := protojson.Marshal(m)
-		if err != nil {
-			return err
-		}
-		arr = append(arr, b)
-	}
-	enc := json.NewEncoder(w)
-	enc.SetIndent("", "  ")
-	return enc.Encode(arr)
 }

@@ -72,7 +72,7 @@ func startServe(t *testing.T, dataDir string, extra ...string) *child {
 		t.Fatal(err)
 	}
 	c := &child{cmd: cmd, stderr: &bytes.Buffer{}, exited: make(chan error, 1)}
-	cmd.Stderr = &syncWriter{w: c.stderr}
+	cmd.Stderr = &lockedWriter{w: c.stderr}
 	if err := cmd.Start(); err != nil {
 		t.Fatal(err)
 	}
@@ -103,17 +103,6 @@ func startServe(t *testing.T, dataDir string, extra ...string) *child {
 		}
 	})
 	return c
-}
-
-type syncWriter struct {
-	mu sync.Mutex
-	w  io.Writer
-}
-
-func (l *syncWriter) Write(p []byte) (int, error) {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.w.Write(p)
 }
 
 // kill -9 of the gateway in the middle of streaming loses nothing that was
