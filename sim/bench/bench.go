@@ -104,6 +104,10 @@ type PhaseResult struct {
 	CPUCores     float64 // this process's CPU time / wall time during sending
 	Client       ClientUsage
 	ClientCores  float64 // a separate client's CPU time / wall time
+	// RSSAnonEnd and RSSFileEnd split this process's resident set when the
+	// load ended (before the target stopped): anonymous memory (heap,
+	// stacks) and file-backed pages (a memory-mapped store file).
+	RSSAnonEnd, RSSFileEnd int64
 }
 
 // Result compares the phases; its JSON form is the bench command's line.
@@ -138,10 +142,12 @@ type Result struct {
 	// LoadAvg is the machine's 1-minute load average at the start and the
 	// end of the run (/proc/loadavg): other work on a shared machine skews
 	// every figure above.
-	LoadAvgStart float64       `json:"load_avg_start"`
-	LoadAvgEnd   float64       `json:"load_avg_end"`
-	CPUs         int           `json:"cpus"`
-	Phases       []PhaseResult `json:"-"`
+	GatewayRSSAnonBytes int64         `json:"gateway_rss_anon_bytes"` // at the end of the load: heap, stacks
+	GatewayRSSFileBytes int64         `json:"gateway_rss_file_bytes"` // at the end of the load: mapped files (the store)
+	LoadAvgStart        float64       `json:"load_avg_start"`
+	LoadAvgEnd          float64       `json:"load_avg_end"`
+	CPUs                int           `json:"cpus"`
+	Phases              []PhaseResult `json:"-"`
 }
 
 // SinkPhase is the bare sink.
@@ -215,6 +221,7 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 	res.Lost = last.Lost
 	res.SinkPeakRSSBytes, res.GatewayPeakRSSBytes = first.PeakRSSBytes, last.PeakRSSBytes
 	res.RSSPerDeviceBytes = last.PeakRSSBytes / int64(opts.Devices)
+	res.GatewayRSSAnonBytes, res.GatewayRSSFileBytes = last.RSSAnonEnd, last.RSSFileEnd
 	res.SinkCPUCores, res.GatewayCPUCores = first.CPUCores, last.CPUCores
 	res.ClientPeakRSSBytes, res.ClientCPUCores = last.Client.PeakRSSBytes, last.ClientCores
 	res.Rejected, res.Reconnects, res.UnackedAtEnd = last.Report.Rejected, last.Report.Reconnects, last.Report.UnackedAtEnd
@@ -277,6 +284,7 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 		Drain: max(10*time.Second, opts.Duration),
 	})
 	cpu1, wall1 := cpuTime(), time.Now()
+	anon, file := procStatus("RssAnon"), procStatus("RssFile")
 	if prof != nil {
 		pprof.StopCPUProfile()
 		prof.Close()
@@ -284,7 +292,7 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 	if err != nil {
 		return nil, err
 	}
-	pr := &PhaseResult{Name: ph.Name, Report: rep, SamplesPerS: rep.SamplesPerS, Client: usage}
+	pr := &PhaseResult{Name: ph.Name, Report: rep, SamplesPerS: rep.SamplesPerS, Client: usage, RSSAnonEnd: anon, RSSFileEnd: file}
 	if w := wall1.Sub(wall0).Seconds(); w > 0 {
 		pr.CPUCores = math.Round((cpu1-cpu0).Seconds()/w*100) / 100
 		pr.ClientCores = math.Round(usage.CPU.Seconds()/w*100) / 100
