@@ -44,7 +44,7 @@ const (
 	periodDevSpan   = 0.10 // ... and how much more takes quality to 0
 	ampDevOK        = 0.10 // same for the beat amplitude (PI)
 	ampDevSpan      = 0.20
-	maxBeats        = 192  // ring capacity: MaxAveragingS at 300 /min plus margin
+	beatMargin      = 4    // ring slots beyond the most beats a window can hold
 	warmUpS         = 1.5  // beats ending this soon after a (re)start are filter transients
 	maxAbsSample    = 1e12 // larger magnitudes (and NaN, Inf) are not samples
 )
@@ -122,10 +122,11 @@ type Stream struct {
 	acc, snap         sums
 	hist              [historyBeats]beat // recent detected beats, for consistency
 	histN, histHead   int
-	beats             [maxBeats]beat // window ring
+	beats             []beat // window ring: sized for the averaging window at 300 /min
 	beatHead, beatN   int
 	lastRateBeat      int64
-	scratch, scratch2 [maxBeats]float64
+	scratch, scratch2 []float64
+	scratch3          []float64
 
 	warmUntil int64 // beats closing before this sample are filter transients
 	n         int64 // samples since start
@@ -150,6 +151,10 @@ func New(cfg Config) (*Stream, error) {
 		s.fs = math.Ldexp(1, cfg.ADCBits)
 	}
 	s.winSamples = int64(math.Round(s.cfg.AveragingS * s.rate))
+	// Beats are at least minPeriodS apart, so a window holds at most this many.
+	nb := int(math.Ceil(s.cfg.AveragingS/minPeriodS)) + beatMargin
+	s.beats = make([]beat, nb)
+	s.scratch, s.scratch2, s.scratch3 = make([]float64, nb), make([]float64, nb), make([]float64, nb)
 	s.minPeriod = int64(math.Ceil(minPeriodS * s.rate))
 	s.maxPeriod = int64(math.Floor(maxPeriodS * s.rate))
 	s.envDecay = math.Exp(-1 / (envelopeTauS * s.rate))
@@ -378,8 +383,8 @@ func (s *Stream) closeBeat(a *sums, samples int64, periodS float64) {
 		s.lastRateBeat = b.end
 	}
 	s.beats[s.beatHead] = b
-	s.beatHead = (s.beatHead + 1) % maxBeats
-	s.beatN = min(s.beatN+1, maxBeats)
+	s.beatHead = (s.beatHead + 1) % len(s.beats)
+	s.beatN = min(s.beatN+1, len(s.beats))
 }
 
 func (s *Stream) histMedian(f func(*beat) float64) float64 {
@@ -417,12 +422,12 @@ func (s *Stream) emit() Estimate {
 	// Beats that ended inside the window.
 	from := s.n - s.winSamples
 	periods, rs := s.scratch[:0], s.scratch2[:0]
-	var pis [maxBeats]float64
+	pis := s.scratch3
 	np := 0
 	var cover, quality, minAC float64
 	minAC = math.Inf(1)
 	for k := 0; k < s.beatN; k++ {
-		b := &s.beats[(s.beatHead-1-k+2*maxBeats)%maxBeats]
+		b := &s.beats[(s.beatHead-1-k+2*len(s.beats))%len(s.beats)]
 		if b.end <= from {
 			break
 		}
@@ -476,7 +481,7 @@ func (s *Stream) emit() Estimate {
 
 func clamp01(x float64) float64 { return math.Max(0, math.Min(1, x)) }
 
-// sortFloats is an insertion sort: the slices are short (<= maxBeats) and
+// sortFloats is an insertion sort: the slices are short (at most the window's beats) and
 // this does not allocate.
 func sortFloats(v []float64) {
 	for i := 1; i < len(v); i++ {
