@@ -7,7 +7,6 @@ import (
 	"math"
 	"runtime/debug"
 	"strconv"
-	"sync"
 	"sync/atomic"
 	"time"
 
@@ -39,12 +38,15 @@ type stream struct {
 	remote string
 	id     string
 
-	acked   atomic.Uint64
-	wake    chan struct{} // cap 1: the sender has an ack to send
+	acked   atomic.Uint64 // durable through this sequence (set by the writer)
+	wake    chan struct{} // cap 1: there is an ack to send
 	msgs    chan *pb.ConnectRequest
 	recvErr chan error
-	out     chan *pb.ConnectResponse
-	drops   atomic.Uint64
+	// Output, owned by the handler goroutine: queued messages and the last
+	// ack sent. Bounded: beyond sendQueue, messages are dropped and counted.
+	outq    []*pb.ConnectResponse
+	sentAck uint64
+	drops   uint64
 	mode    pb.Mode
 	adc     uint32
 	redNM   float64
@@ -73,15 +75,34 @@ func (s *stream) ackThrough(seq uint64) {
 	}
 }
 
-// send queues a message for the device; when the queue is full it is dropped
-// (counted): a device that does not read its stream cannot make the gateway
-// hold memory for it.
+// send queues a message for the device; the handler sends it before it
+// next waits. When sendQueue messages wait (a device that does not read its
+// stream), it is dropped and counted rather than held.
 func (s *stream) send(m *pb.ConnectResponse) {
-	select {
-	case s.out <- m:
-	default:
-		s.drops.Add(1)
+	if len(s.outq) >= sendQueue {
+		s.drops++
+		return
 	}
+	s.outq = append(s.outq, m)
+}
+
+// flush sends the queued messages and an ack when the durable sequence has
+// advanced since the last one. Only the handler goroutine calls it.
+func (s *stream) flush() error {
+	for i, m := range s.outq {
+		if err := s.grpc.Send(m); err != nil {
+			clear(s.outq)
+			s.outq = s.outq[:0]
+			return err
+		}
+		s.outq[i] = nil
+	}
+	s.outq = s.outq[:0]
+	if a := s.acked.Load(); a > s.sentAck {
+		s.sentAck = a
+		return s.grpc.Send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Ack{Ack: &pb.Ack{ThroughSequence: a}}})
+	}
+	return nil
 }
 
 func (s *stream) rejectMsg(r *pb.Rejection) {
@@ -107,35 +128,12 @@ func reasonLabel(r pb.RejectReason) string {
 	return "other"
 }
 
-// sender owns grpc.Send for the stream's lifetime.
-func (s *stream) sender(ctx context.Context) error {
-	var sentAck uint64
-	for {
-		select {
-		case <-ctx.Done():
-			return nil
-		case m := <-s.out:
-			if err := s.grpc.Send(m); err != nil {
-				return err
-			}
-		case <-s.wake:
-			if a := s.acked.Load(); a > sentAck {
-				sentAck = a
-				if err := s.grpc.Send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Ack{Ack: &pb.Ack{ThroughSequence: a}}}); err != nil {
-					return err
-				}
-			}
-		}
-	}
-}
-
 // Connect implements IngestService.
 func (g *Gateway) Connect(gs pb.IngestService_ConnectServer) (err error) {
 	ctx, cancel := context.WithCancelCause(gs.Context())
 	defer cancel(nil)
 	s := &stream{g: g, grpc: gs, cancel: cancel, ended: make(chan struct{}),
-		wake: make(chan struct{}, 1), out: make(chan *pb.ConnectResponse, sendQueue),
-		msgs: make(chan *pb.ConnectRequest), recvErr: make(chan error, 1)}
+		wake: make(chan struct{}, 1), msgs: make(chan *pb.ConnectRequest), recvErr: make(chan error, 1)}
 	defer close(s.ended)
 	if p, ok := peer.FromContext(ctx); ok {
 		s.remote = p.Addr.String()
@@ -148,21 +146,13 @@ func (g *Gateway) Connect(gs pb.IngestService_ConnectServer) (err error) {
 		}
 	}()
 
+	// Two goroutines serve a stream: this handler (validate, estimate,
+	// evaluate, queue for the writer, send answers and acks) and the reader,
+	// which owns Recv so the handler can end the RPC when the stream is
+	// cancelled (gRPC's Recv does not see a derived context).
 	go s.reader(ctx)
-	var wg sync.WaitGroup
-	senderErr := make(chan error, 1)
-	wg.Add(1)
-	go func() {
-		defer wg.Done()
-		if err := s.sender(ctx); err != nil {
-			senderErr <- err
-			cancel(err)
-		}
-	}()
-	defer func() {
-		cancel(nil)
-		wg.Wait()
-	}()
+	// Whatever way the stream ends, answers and acks already due go out.
+	defer func() { _ = s.flush() }()
 
 	if err := s.introduce(ctx); err != nil {
 		return err
@@ -178,17 +168,24 @@ func (s *stream) devID() string {
 	return s.dev.id
 }
 
-// recv returns the next message from the device, or the stream's end: the
-// transport's error, or the cause when the stream is cancelled (replaced by a
-// newer stream, gateway shutting down), which gRPC's Recv alone cannot see.
+// recv sends what is due (answers, acks as the writer makes messages
+// durable) and returns the next message from the device, or the stream's
+// end: the transport's error, or the cause when the stream is cancelled
+// (replaced by a newer stream, gateway shutting down).
 func (s *stream) recv(ctx context.Context) (*pb.ConnectRequest, error) {
-	select {
-	case m := <-s.msgs:
-		return m, nil
-	case err := <-s.recvErr:
-		return nil, err
-	case <-ctx.Done():
-		return nil, context.Cause(ctx)
+	for {
+		if err := s.flush(); err != nil {
+			return nil, err
+		}
+		select {
+		case m := <-s.msgs:
+			return m, nil
+		case err := <-s.recvErr:
+			return nil, err
+		case <-s.wake:
+		case <-ctx.Done():
+			return nil, context.Cause(ctx)
+		}
 	}
 }
 
@@ -263,8 +260,6 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	g := s.g
 	if addr := g.ownerOf(in.GetDeviceId()); addr != "" {
 		s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Redirect{Redirect: &pb.Redirect{Address: addr, Detail: "device " + in.GetDeviceId() + " belongs to the gateway at " + addr}}})
-		// Give the sender a moment to deliver the redirect before the stream ends.
-		time.Sleep(50 * time.Millisecond)
 		return status.Errorf(codes.FailedPrecondition, "device %s belongs to the gateway at %s", in.GetDeviceId(), addr)
 	}
 	d, _ := g.devices.getOrCreate(in.GetDeviceId())
@@ -618,7 +613,7 @@ func (s *stream) finish(ctx context.Context) {
 	if !replaced {
 		g.publishDevice(d, "disconnected")
 	}
-	g.log.Info("device disconnected", "device", d.id, "reason", reason, "dropped_sends", s.drops.Load())
+	g.log.Info("device disconnected", "device", d.id, "reason", reason, "dropped_sends", s.drops)
 }
 
 func (g *Gateway) nowMS() int64 { return g.opt.Now().UnixMilli() }

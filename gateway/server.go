@@ -261,6 +261,13 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	g.health.Shutdown()
 	done := make(chan struct{})
 	go func() { srv.GracefulStop(); close(done) }()
+	// Make everything accepted so far durable, so each stream's last ack is
+	// due before it is asked to end (the handler sends it on the way out).
+	sctx, scancel := context.WithTimeout(context.Background(), g.opt.GracefulTimeout)
+	if err := g.w.sync(sctx, nil); err != nil {
+		g.log.Warn("shutdown: store flush", "err", err)
+	}
+	scancel()
 	// Streams are long-lived: ask them to end now rather than wait for devices.
 	for _, d := range g.devices.all() {
 		d.mu.Lock()
