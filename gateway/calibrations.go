@@ -98,5 +98,12 @@ func (g *Gateway) AssignCalibration(ctx context.Context, req *pb.AssignCalibrati
 		Device: req.GetDeviceId(), Detail: target + " -> " + ref, Remote: remoteFrom(ctx)}); err != nil {
 		return nil, status.Errorf(codes.Unavailable, "%v", err)
 	}
+	g.calMu.Lock()
+	if ref == "" {
+		delete(g.calAssign, target)
+	} else {
+		g.calAssign[target] = ref
+	}
+	g.calMu.Unlock()
 	return &pb.AssignCalibrationResponse{Assignment: &pb.CalibrationAssignment{Target: target, Calibration: ref}}, nil
 }

@@ -49,6 +49,9 @@ type Gateway struct {
 
 	ring *shard.Ring // nil without sharding
 
+	calMu     sync.RWMutex
+	calAssign map[string]string // calibration assignments: "device:ID"/"model:M" -> "name@vN"
+
 	// Extension points set by other parts of the package (auth, sharding, web).
 	auth       *authState // credentials, roles, limits (auth.go)
 	grpcOpts   []grpc.ServerOption
@@ -109,6 +112,9 @@ func (g *Gateway) load() error {
 			return fmt.Errorf("gateway: stored default profile: %w", err)
 		}
 		g.defaultProfile = p
+	}
+	if g.calAssign, err = g.db.CalibrationAssignments(); err != nil {
+		return fmt.Errorf("gateway: load calibration assignments: %w", err)
 	}
 	states, err := g.db.AlarmStates()
 	if err != nil {
@@ -473,16 +479,17 @@ func (g *Gateway) ownerOf(deviceID string) string {
 	return ""
 }
 
-// assignedCalibration returns the calibration assigned to a device or its model.
+// assignedCalibration returns the calibration assigned to a device or its
+// model, from the gateway's copy of the assignments (read once, updated by
+// AssignCalibration), so thousands of devices connecting at once do not each
+// open a store transaction.
 func (g *Gateway) assignedCalibration(deviceID, model string) string {
-	as, err := g.db.CalibrationAssignments()
-	if err != nil {
-		return ""
-	}
-	if r, ok := as["device:"+deviceID]; ok {
+	g.calMu.RLock()
+	defer g.calMu.RUnlock()
+	if r, ok := g.calAssign["device:"+deviceID]; ok {
 		return r
 	}
-	return as["model:"+model]
+	return g.calAssign["model:"+model]
 }
 
 func episodeProto(e *store.Episode) *pb.Episode {
