@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"fmt"
 	"sync"
+	"time"
 
 	bolt "go.etcd.io/bbolt"
 )
@@ -58,7 +59,35 @@ func (db *DB) Write(b *Batch) error {
 	if b.Len() == 0 {
 		return nil
 	}
+	db.writeMu.Lock()
+	defer db.writeMu.Unlock()
+	plan := db.tail.planCompaction(time.Now())
 	newIdx := map[string]uint32{}
+	// index returns a device's ledger index, creating a bare record for a
+	// device first seen in this batch's trend points.
+	var index func(tx *bolt.Tx, id string) (uint32, error)
+	index = func(tx *bolt.Tx, id string) (uint32, error) {
+		if idx, ok := newIdx[id]; ok {
+			return idx, nil
+		}
+		if idx, ok := db.cachedIndex(tx, id); ok {
+			return idx, nil
+		}
+		devs := tx.Bucket(bDevices)
+		seq, err := devs.NextSequence()
+		if err != nil {
+			return 0, err
+		}
+		v, err := encJSON(&Device{ID: id, Index: uint32(seq), BatteryPct: -1})
+		if err != nil {
+			return 0, err
+		}
+		if err := devs.Put([]byte(id), v); err != nil {
+			return 0, err
+		}
+		newIdx[id] = uint32(seq)
+		return uint32(seq), nil
+	}
 	err := db.bolt.Update(func(tx *bolt.Tx) error {
 		devs := tx.Bucket(bDevices)
 		// Devices first, so ledger records can use their index.
@@ -93,8 +122,13 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
-		if err := writePoints(tx, b.Points); err != nil {
+		if err := writeRecent(tx, db.tail.gen, b.Points, func(id string) (uint32, error) { return index(tx, id) }); err != nil {
 			return err
+		}
+		if plan != nil {
+			if err := db.compact(tx, plan); err != nil {
+				return fmt.Errorf("compact trend generation %d: %w", plan.sg.gen, err)
+			}
 		}
 		if len(b.Chunks) > 0 {
 			led := tx.Bucket(bLedger)
@@ -184,6 +218,7 @@ func (db *DB) Write(b *Batch) error {
 	if err != nil {
 		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
 	}
+	db.tail.afterCommit(b.Points, plan)
 	if len(newIdx) > 0 {
 		db.idx.mu.Lock()
 		for id, i := range newIdx {

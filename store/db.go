@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"sync"
 	"time"
 
 	bolt "go.etcd.io/bbolt"
@@ -51,7 +52,7 @@ var (
 	bCalAssign    = []byte("calassign")
 	bTokens       = []byte("tokens")
 
-	allBuckets = [][]byte{bMeta, bDevices, bCursors, bTrend, bLedger, bRaw, bSessions, bEpisodes,
+	allBuckets = [][]byte{bMeta, bDevices, bCursors, bRecent, bTrend, bLedger, bRaw, bSessions, bEpisodes,
 		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens}
 )
 
@@ -68,6 +69,9 @@ type DB struct {
 	bolt *bolt.DB
 	path string
 	idx  indexCache
+
+	writeMu sync.Mutex // serialises Write (bbolt does too) and guards the tail's generations
+	tail    trendTail
 }
 
 // Open opens (creating when needed) the store in directory dir.
@@ -99,6 +103,10 @@ func Open(dir string, opt Options) (*DB, error) {
 			b.Close()
 			return nil, err
 		}
+		if err := b.View(db.loadTail); err != nil {
+			b.Close()
+			return nil, fmt.Errorf("open store %s: recent trend log: %w", path, err)
+		}
 		return db, nil
 	}
 	err = b.Update(func(tx *bolt.Tx) error {
@@ -116,6 +124,9 @@ func Open(dir string, opt Options) (*DB, error) {
 		}
 		return m.Put([]byte("schema"), u32(schemaVersion))
 	})
+	if err == nil {
+		err = b.View(db.loadTail)
+	}
 	if err != nil {
 		b.Close()
 		return nil, fmt.Errorf("open store %s: %w", path, err)

@@ -45,14 +45,22 @@ func (db *DB) Device(id string) (Device, error) {
 }
 
 // Trend calls fn for each point of device with fromMS <= time < toMS, oldest
-// first, until fn returns false. Point.Device is set.
+// first, until fn returns false. Point.Device is set. Points not yet
+// compacted (see tail.go) are merged in.
 func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) error {
 	if toMS <= fromMS {
 		return nil
 	}
+	// The tail is copied before the transaction starts: a compaction that
+	// commits in between leaves its points in both (the merge keeps one),
+	// never in neither.
+	m := &merger{fn: fn, tail: db.tail.rangeOf(device, fromMS, toMS)}
 	err := db.bolt.View(func(tx *bolt.Tx) error {
 		dev := tx.Bucket(bTrend).Bucket([]byte(device))
 		if dev == nil {
+			if !m.rest() {
+				return errStop
+			}
 			return nil
 		}
 		var from [8]byte
@@ -74,13 +82,16 @@ func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) erro
 					return err
 				}
 				if p.TimeMS >= toMS {
-					return nil
+					break
 				}
 				p.Device = device
-				if !fn(p) {
+				if !m.emit(p) {
 					return errStop
 				}
 			}
+		}
+		if !m.rest() {
+			return errStop
 		}
 		return nil
 	})
@@ -95,13 +106,21 @@ func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) erro
 
 // TrendDevices lists the devices that have trend points, ordered by id.
 func (db *DB) TrendDevices() ([]string, error) {
-	var out []string
+	seen := map[string]bool{}
+	for _, d := range db.tail.devices() {
+		seen[d] = true
+	}
 	err := db.bolt.View(func(tx *bolt.Tx) error {
 		return tx.Bucket(bTrend).ForEachBucket(func(k []byte) error {
-			out = append(out, string(k))
+			seen[string(k)] = true
 			return nil
 		})
 	})
+	out := make([]string, 0, len(seen))
+	for d := range seen {
+		out = append(out, d)
+	}
+	sort.Strings(out)
 	return out, err
 }
 

@@ -16,6 +16,11 @@ type Retention struct {
 // Prune drops whole day buckets older than the retention at nowMS and
 // returns how many were dropped.
 func (db *DB) Prune(nowMS int64, r Retention) (int, error) {
+	if r.TrendDays > 0 {
+		if err := db.CompactAll(); err != nil {
+			return 0, err
+		}
+	}
 	today := dayOf(nowMS)
 	dropped := 0
 	cut := func(days int) (uint32, bool) {
