@@ -26,7 +26,7 @@ type Options struct {
 	// Now is the gateway clock; nil means time.Now. Tests inject their own.
 	Now func() time.Time
 
-	// BatchDelay is the longest a record waits before its batch commits; 0 means 25 ms.
+	// BatchDelay is the longest a record waits before its batch commits; 0 means 10 ms.
 	BatchDelay time.Duration
 	// BatchRecords commits early when this many data messages wait; 0 means 4096.
 	BatchRecords int
@@ -91,7 +91,7 @@ func (o *Options) setDefaults() error {
 		o.Now = time.Now
 	}
 	if o.BatchDelay == 0 {
-		o.BatchDelay = 25 * time.Millisecond
+		o.BatchDelay = 10 * time.Millisecond
 	}
 	if o.BatchRecords == 0 {
 		o.BatchRecords = 4096

@@ -11,6 +11,7 @@ import (
 	"net"
 	"os"
 	"path/filepath"
+	"runtime/debug"
 	"strings"
 	"time"
 
@@ -176,7 +177,7 @@ func isLoopback(addr string) bool {
 
 func defaultServeConfig() serveConfig {
 	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
-		Profile: "adult-ward-pilot", BatchDelay: 25 * time.Millisecond, LogLevel: "info", RawDays: 7}
+		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7}
 }
 
 // runningGateway describes a started gateway.
@@ -191,6 +192,14 @@ type runningGateway struct {
 // returns once the listeners are bound, and stop() shuts down gracefully and
 // closes the store. serve and demo share it.
 func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningGateway, func() error, error) {
+	// A gateway's heap is mostly small per-stream state that lives as long
+	// as the stream; collecting at 50 % growth instead of Go's default 100 %
+	// keeps memory per connected device within 64 KiB at 5,000 raw streams
+	// for a few percent more CPU (measured with bench). GOGC set in the
+	// environment wins.
+	if os.Getenv("GOGC") == "" {
+		debug.SetGCPercent(50)
+	}
 	level := map[string]slog.Level{"debug": slog.LevelDebug, "info": slog.LevelInfo, "warn": slog.LevelWarn, "error": slog.LevelError}[c.LogLevel]
 	log := slog.New(slog.NewTextHandler(logw, &slog.HandlerOptions{Level: level}))
 	prof, err := loadProfileArg(c.Profile)
