@@ -90,7 +90,13 @@ func Open(dir string, opt Options) (*DB, error) {
 			return nil, fmt.Errorf("open store %s: %w", path, err)
 		}
 	}
-	b, err := bolt.Open(path, 0o600, &bolt.Options{Timeout: opt.Timeout, ReadOnly: opt.ReadOnly, FreelistType: bolt.FreelistMapType})
+	// bbolt remaps the file each time it outgrows the mapping, and a remap
+	// waits for every open transaction: the store writer stalls, and with it
+	// every acknowledgement. Mapping 1 GiB of address space up front (not
+	// memory: pages are touched as the file grows) avoids those stalls until
+	// then.
+	b, err := bolt.Open(path, 0o600, &bolt.Options{Timeout: opt.Timeout, ReadOnly: opt.ReadOnly,
+		FreelistType: bolt.FreelistMapType, InitialMmapSize: 1 << 30})
 	if err != nil {
 		if errors.Is(err, bolterrors.ErrTimeout) {
 			return nil, fmt.Errorf("open store %s: %w", path, ErrLocked)
