@@ -1,12 +1,15 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"math"
 	"net"
+	"strings"
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/gateway"
 	"github.com/pulsefleet/pulsefleet/shard"
 	"github.com/pulsefleet/pulsefleet/sim"
@@ -153,6 +156,24 @@ func TestThreeGatewaysShareAFleet(t *testing.T) {
 		moved++
 		if o := shard.Owner(d.ID, sg.addrs[:3]); o == sg.addrs[3] {
 			t.Errorf("%s was already on the new peer's address", d.ID)
+		}
+	}
+	// A moved device's history is split between its old and new owner; the
+	// trend command asks every gateway and merges.
+	if len(devs4) > 0 {
+		id := devs4[0].ID
+		var out, errb bytes.Buffer
+		if code := run(context.Background(), []string{"trend", "--gateway", strings.Join(sg.addrs, ","), "--device", id, "--from", "0", "--to", "4102444800"},
+			stdio{out: &out, err: &errb}); code != 0 {
+			t.Fatalf("trend: exit %d: %s", code, errb.String())
+		}
+		trends, err := alarms.ReadTrendCSV(&out)
+		if err != nil {
+			t.Fatal(err)
+		}
+		want := rep.PerDevice[id].FramesAcked + rep2.PerDevice[id].FramesAcked
+		if len(trends) != 1 || uint64(len(trends[0].Samples)) != want {
+			t.Errorf("merged trend of %s: %d series, %d points; want %d (both runs)", id, len(trends), len(trends[0].Samples), want)
 		}
 	}
 	share := float64(moved) / devices

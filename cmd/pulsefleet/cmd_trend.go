@@ -1,0 +1,184 @@
+package main
+
+import (
+	"context"
+	"encoding/csv"
+	"fmt"
+	"io"
+	"math"
+	"sort"
+	"strconv"
+	"time"
+
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+)
+
+func init() {
+	register(command{
+		name: "trend",
+		summary: "Print a device's trend from one or more running gateways as CSV (merged across shards).\n\n" +
+			"Raw points come in the replay/tune trend format (t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi), so the\n" +
+			"output can be replayed; with --step, one row per step with min/mean/max. After a fleet is resharded a\n" +
+			"device's history may sit on several gateways: every gateway given is asked and the answers merged.",
+		run: runTrend,
+	})
+}
+
+func runTrend(ctx context.Context, args []string, s stdio) error {
+	var cf clientFlags
+	fs := newFlagSet("trend", "--gateway ADDR[,ADDR...] --device ID [--from T] [--to T] [--step DUR]", s.err)
+	cf.register(fs)
+	device := fs.String("device", "", "device id (required)")
+	fromArg := fs.String("from", "24h", "start: RFC 3339, Unix seconds, or a duration before now (24h)")
+	toArg := fs.String("to", "", "end: RFC 3339 or Unix seconds (default now)")
+	step := fs.Duration("step", 0, "downsampling step (0 = every point)")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	if *device == "" {
+		return usagef("--device: required")
+	}
+	now := time.Now()
+	from, err := parseTrendTime("--from", *fromArg, now)
+	if err != nil {
+		return err
+	}
+	to := now
+	if *toArg != "" {
+		if to, err = parseTrendTime("--to", *toArg, now); err != nil {
+			return err
+		}
+	}
+	if !to.After(from) {
+		return usagef("--to %s is not after --from %s", to.Format(time.RFC3339), from.Format(time.RFC3339))
+	}
+	if *step < 0 || (*step > 0 && *step < time.Second) {
+		return usagef("--step %v, want 0 or at least 1s", *step)
+	}
+	addrs, err := cf.addrs()
+	if err != nil {
+		return err
+	}
+	req := &pb.QueryTrendRequest{DeviceId: *device, FromUnixMs: from.UnixMilli(), ToUnixMs: to.UnixMilli(), StepMs: step.Milliseconds()}
+	var points []*pb.TrendPoint
+	var buckets []*pb.TrendBucket
+	for _, a := range addrs {
+		conn, err := cf.dial(a)
+		if err != nil {
+			return err
+		}
+		cctx, cancel := context.WithTimeout(cf.ctx(ctx), time.Minute)
+		resp, err := pb.NewFleetServiceClient(conn).QueryTrend(cctx, req)
+		cancel()
+		conn.Close()
+		if err != nil {
+			return fmt.Errorf("gateway %s: %w", a, err)
+		}
+		if resp.GetTruncated() {
+			fmt.Fprintf(s.err, "pulsefleet trend: gateway %s cut its answer at its point limit; use --step or a shorter range\n", a)
+		}
+		points = append(points, resp.GetPoints()...)
+		buckets = append(buckets, resp.GetBuckets()...)
+	}
+	if *step > 0 {
+		return writeBuckets(s.out, *device, mergeBuckets(buckets))
+	}
+	return writeTrendPoints(s.out, *device, mergePoints(points))
+}
+
+func parseTrendTime(flag, v string, now time.Time) (time.Time, error) {
+	if t, err := time.Parse(time.RFC3339, v); err == nil {
+		return t, nil
+	}
+	if sec, err := strconv.ParseFloat(v, 64); err == nil {
+		return time.UnixMilli(int64(sec * 1000)), nil
+	}
+	if d, err := time.ParseDuration(v); err == nil && d > 0 {
+		return now.Add(-d), nil
+	}
+	return time.Time{}, usagef("%s %q: want RFC 3339, Unix seconds or a duration such as 24h", flag, v)
+}
+
+// mergePoints orders points from several gateways by time, one per time.
+func mergePoints(ps []*pb.TrendPoint) []*pb.TrendPoint {
+	sort.SliceStable(ps, func(i, j int) bool { return ps[i].GetTimeUnixMs() < ps[j].GetTimeUnixMs() })
+	out := ps[:0]
+	for _, p := range ps {
+		if n := len(out); n > 0 && out[n-1].GetTimeUnixMs() == p.GetTimeUnixMs() {
+			continue
+		}
+		out = append(out, p)
+	}
+	return out
+}
+
+// mergeBuckets combines steps from several gateways that cover the same start.
+func mergeBuckets(bs []*pb.TrendBucket) []*pb.TrendBucket {
+	sort.SliceStable(bs, func(i, j int) bool { return bs[i].GetStartUnixMs() < bs[j].GetStartUnixMs() })
+	var out []*pb.TrendBucket
+	for _, b := range bs {
+		n := len(out)
+		if n == 0 || out[n-1].GetStartUnixMs() != b.GetStartUnixMs() {
+			out = append(out, b)
+			continue
+		}
+		a := out[n-1]
+		a.Points += b.Points
+		a.Spo2Pct, a.PulseBpm, a.PiPct, a.Sqi = mergeStat(a.Spo2Pct, b.Spo2Pct), mergeStat(a.PulseBpm, b.PulseBpm), mergeStat(a.PiPct, b.PiPct), mergeStat(a.Sqi, b.Sqi)
+	}
+	return out
+}
+
+func mergeStat(a, b *pb.Stat) *pb.Stat {
+	switch {
+	case a.GetCount() == 0:
+		return b
+	case b.GetCount() == 0:
+		return a
+	}
+	n := a.Count + b.Count
+	return &pb.Stat{Count: n, Min: math.Min(a.Min, b.Min), Max: math.Max(a.Max, b.Max),
+		Mean: (a.Mean*float64(a.Count) + b.Mean*float64(b.Count)) / float64(n)}
+}
+
+func optCell(v *float64, prec int) string {
+	if v == nil {
+		return ""
+	}
+	return strconv.FormatFloat(*v, 'f', prec, 64)
+}
+
+func writeTrendPoints(w io.Writer, device string, ps []*pb.TrendPoint) error {
+	cw := csv.NewWriter(w)
+	cw.Write([]string{"t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi", "ratio", "flags", "source"})
+	for _, p := range ps {
+		src := "gateway"
+		if p.GetSource() == pb.Source_SOURCE_DEVICE {
+			src = "device"
+		}
+		cw.Write([]string{strconv.FormatFloat(float64(p.GetTimeUnixMs())/1000, 'f', 3, 64), device,
+			optCell(p.Spo2Pct, 1), optCell(p.PulseBpm, 1), optCell(p.PiPct, 3), optCell(p.Sqi, 3), optCell(p.Ratio, 4),
+			strconv.FormatUint(uint64(p.GetFlags()), 10), src})
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+func writeBuckets(w io.Writer, device string, bs []*pb.TrendBucket) error {
+	cw := csv.NewWriter(w)
+	cw.Write([]string{"start_s", "device", "points", "spo2_min", "spo2_mean", "spo2_max", "pulse_min", "pulse_mean", "pulse_max", "pi_mean", "sqi_mean"})
+	stat := func(s *pb.Stat, f float64, prec int) string {
+		if s.GetCount() == 0 {
+			return ""
+		}
+		return strconv.FormatFloat(f, 'f', prec, 64)
+	}
+	for _, b := range bs {
+		cw.Write([]string{strconv.FormatFloat(float64(b.GetStartUnixMs())/1000, 'f', 0, 64), device, strconv.FormatUint(uint64(b.GetPoints()), 10),
+			stat(b.Spo2Pct, b.Spo2Pct.GetMin(), 1), stat(b.Spo2Pct, b.Spo2Pct.GetMean(), 2), stat(b.Spo2Pct, b.Spo2Pct.GetMax(), 1),
+			stat(b.PulseBpm, b.PulseBpm.GetMin(), 1), stat(b.PulseBpm, b.PulseBpm.GetMean(), 2), stat(b.PulseBpm, b.PulseBpm.GetMax(), 1),
+			stat(b.PiPct, b.PiPct.GetMean(), 3), stat(b.Sqi, b.Sqi.GetMean(), 3)})
+	}
+	cw.Flush()
+	return cw.Error()
+}
