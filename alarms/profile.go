@@ -135,8 +135,11 @@ func ParseProfile(data []byte) (*Profile, error) {
 	return p, nil
 }
 
-// mapping walks a YAML mapping node, rejecting unknown and duplicate keys.
-func mapping(n *yaml.Node, path string, fn func(key string, v *yaml.Node, path string) error) error {
+// WalkMapping walks a YAML mapping node, calling fn with each key, its value
+// and its dotted path under path; it rejects duplicate keys and a node that is
+// not a mapping with a *FieldError carrying the line. Files that build on
+// profiles (tuning grids) use it too, so their errors read the same.
+func WalkMapping(n *yaml.Node, path string, fn func(key string, v *yaml.Node, path string) error) error {
 	if n.Kind != yaml.MappingNode {
 		return &FieldError{Path: orRoot(path), Msg: "want a mapping", Line: n.Line}
 	}
@@ -172,7 +175,7 @@ func orRoot(p string) string {
 func unknownKey(path string) error { return fieldErr(path, "unknown key") }
 
 func decodeProfile(n *yaml.Node, p *Profile) error {
-	return mapping(n, "", func(key string, v *yaml.Node, path string) error {
+	return WalkMapping(n, "", func(key string, v *yaml.Node, path string) error {
 		switch key {
 		case "name":
 			return scalarString(v, path, &p.Name)
@@ -197,10 +200,10 @@ func decodeProfile(n *yaml.Node, p *Profile) error {
 }
 
 func decodeCondition(n *yaml.Node, path string, c *Condition) error {
-	return mapping(n, path, func(key string, v *yaml.Node, path string) error {
+	return WalkMapping(n, path, func(key string, v *yaml.Node, path string) error {
 		if key == "escalate" {
 			c.Escalate = &Escalation{}
-			return mapping(v, path, func(key string, v *yaml.Node, path string) error {
+			return WalkMapping(v, path, func(key string, v *yaml.Node, path string) error {
 				return setEscalationField(c.Escalate, key, v, path)
 			})
 		}

@@ -132,7 +132,7 @@ func ParseGrid(data []byte, dir string) (*Grid, error) {
 	g := &Grid{Text: append([]byte(nil), data...)}
 	var refNode *yaml.Node
 	var sweepNode *yaml.Node
-	err := mapping(root.Content[0], "", func(key string, v *yaml.Node, path string) error {
+	err := alarms.WalkMapping(root.Content[0], "", func(key string, v *yaml.Node, path string) error {
 		switch key {
 		case "base":
 			return g.decodeBase(v, dir)
@@ -173,36 +173,6 @@ func ParseGrid(data []byte, dir string) (*Grid, error) {
 		return nil, err
 	}
 	return g, nil
-}
-
-// mapping walks a YAML mapping, rejecting duplicate keys.
-func mapping(n *yaml.Node, path string, fn func(key string, v *yaml.Node, path string) error) error {
-	if n.Kind != yaml.MappingNode {
-		return fmt.Errorf("%s (line %d): want a mapping", orRoot(path), n.Line)
-	}
-	seen := map[string]bool{}
-	for i := 0; i+1 < len(n.Content); i += 2 {
-		k, v := n.Content[i], n.Content[i+1]
-		kp := k.Value
-		if path != "" {
-			kp = path + "." + k.Value
-		}
-		if seen[k.Value] {
-			return fmt.Errorf("%s (line %d): duplicate key", kp, k.Line)
-		}
-		seen[k.Value] = true
-		if err := fn(k.Value, v, kp); err != nil {
-			return err
-		}
-	}
-	return nil
-}
-
-func orRoot(p string) string {
-	if p == "" {
-		return "(document)"
-	}
-	return p
 }
 
 func (g *Grid) decodeBase(v *yaml.Node, dir string) error {
@@ -250,7 +220,7 @@ func (g *Grid) decodeBase(v *yaml.Node, dir string) error {
 }
 
 func (g *Grid) decodeSweep(n *yaml.Node) error {
-	err := mapping(n, "sweep", func(key string, v *yaml.Node, path string) error {
+	err := alarms.WalkMapping(n, "sweep", func(key string, v *yaml.Node, path string) error {
 		head, _, _ := strings.Cut(key, ".")
 		switch {
 		case head == AveragingKey || head == "estimator" || strings.HasSuffix(key, "."+AveragingKey):
@@ -349,12 +319,12 @@ func setValue(p *alarms.Profile, key, val string) *setError {
 func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
 	r := &g.Reference
 	r.Grace = DefaultGrace
-	err := mapping(n, "reference", func(key string, v *yaml.Node, path string) error {
+	err := alarms.WalkMapping(n, "reference", func(key string, v *yaml.Node, path string) error {
 		switch key {
 		case "rule":
 			rule := &Rule{}
 			var haveBelow, haveFor bool
-			err := mapping(v, path, func(key string, v *yaml.Node, path string) error {
+			err := alarms.WalkMapping(v, path, func(key string, v *yaml.Node, path string) error {
 				switch key {
 				case "below":
 					f, err := strconv.ParseFloat(strings.TrimSpace(v.Value), 64)

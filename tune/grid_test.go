@@ -88,7 +88,7 @@ func TestGridErrors(t *testing.T) {
 			"sweep.estimator.averaging (line 3): not a profile key; averaging times are the top-level key averaging: [4s, 8s, 12s]"},
 		{"averaging_times", "base: adult-ward-pilot\naveraging_times: [4s]\n" + ref, "averaging_times (line 2): unknown key; averaging times are the top-level key averaging"},
 		{"no sweep nor averaging", "base: adult-ward-pilot\n" + ref, "sweep: missing"},
-		{"duplicate key", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\n  spo2_low.limit: [90]\n" + ref, "sweep.spo2_low.limit (line 4): duplicate key"},
+		{"duplicate key", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\n  spo2_low.limit: [90]\n" + ref, "sweep.spo2_low.limit: duplicate key (line 4)"},
 		{"rule and file", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n  file: testdata/hand-events.csv\n", "reference: both rule and file"},
 		{"rule incomplete", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85}\n", "want both below and for"},
 		{"rule negative for", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: -1s}\n", `reference.rule.for (line 5): "-1s", want a duration in [0, 24h]`},
