@@ -388,7 +388,7 @@ func (g *Gateway) deviceQuality(d *device) (*pb.DeviceQuality, error) {
 	// Sessions that started inside the 7-day window, plus a day before it for
 	// sessions that started earlier and ended inside it. An open session is
 	// taken from memory, however long ago it started.
-	sessions, err := g.db.Sessions(d.id, nowMS-(week+24*time.Hour).Milliseconds())
+	sessions, err := g.db.SessionsSince(d.id, nowMS-week.Milliseconds())
 	if err != nil {
 		return nil, status.Errorf(codes.Internal, "sessions of %s: %v", d.id, err)
 	}

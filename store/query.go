@@ -285,6 +285,36 @@ func (db *DB) Sessions(device string, fromMS int64) ([]Session, error) {
 	return out, err
 }
 
+// SessionsSince returns a device's sessions that were open at or after
+// fromMS (ended at or after it, or not ended), oldest first, however long
+// ago they started. It walks back from the newest and stops at the first
+// session that ended before fromMS: a device's sessions follow one another.
+func (db *DB) SessionsSince(device string, fromMS int64) ([]Session, error) {
+	var out []Session
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		b := tx.Bucket(bSessions).Bucket([]byte(device))
+		if b == nil {
+			return nil
+		}
+		c := b.Cursor()
+		for k, v := c.Last(); k != nil; k, v = c.Prev() {
+			var s Session
+			if err := decJSON(v, &s); err != nil {
+				return err
+			}
+			if s.EndMS != 0 && s.EndMS < fromMS {
+				break
+			}
+			out = append(out, s)
+		}
+		return nil
+	})
+	for i, j := 0, len(out)-1; i < j; i, j = i+1, j-1 {
+		out[i], out[j] = out[j], out[i]
+	}
+	return out, err
+}
+
 // EpisodeFilter selects episodes; zero fields do not filter.
 type EpisodeFilter struct {
 	Device     string

@@ -223,3 +223,24 @@ func TestRawCaptureRoundTrip(t *testing.T) {
 		t.Errorf("raw: %+v", got)
 	}
 }
+
+// A session that started long before the window but ran into it is found;
+// one that ended before the window is not.
+func TestSessionsSince(t *testing.T) {
+	db, _ := mustOpen(t)
+	b := &Batch{Sessions: []Session{
+		{Device: "x", StartMS: 1_000, EndMS: 2_000},
+		{Device: "x", StartMS: 3_000, EndMS: 50_000}, // started before 10_000, ended after
+		{Device: "x", StartMS: 60_000},               // still open
+	}}
+	if err := db.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	got, err := db.SessionsSince("x", 10_000)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(got) != 2 || got[0].StartMS != 3_000 || got[1].StartMS != 60_000 {
+		t.Errorf("sessions since 10 s: %+v", got)
+	}
+}
