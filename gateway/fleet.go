@@ -402,12 +402,13 @@ func (g *Gateway) deviceQuality(d *device) (*pb.DeviceQuality, error) {
 	if d.desc.Sessions > 0 {
 		q.Reconnects = d.desc.Sessions - 1
 	}
-	q.ClockDriftPpm = d.desc.DriftPPM // the last estimate stored, until memory has one
 	if v := d.q.driftPPM(); !math.IsNaN(v) {
-		q.ClockDriftPpm = v
+		q.ClockDriftPpm = &v
+	} else if v := d.desc.DriftPPM; v != 0 {
+		q.ClockDriftPpm = &v // the last estimate stored, until memory has one
 	}
 	if v := d.q.effectiveRateHz(); !math.IsNaN(v) {
-		q.EffectiveSampleRateHz = v
+		q.EffectiveSampleRateHz = &v
 	}
 	if d.q.seconds > 0 {
 		n := float64(d.q.seconds)

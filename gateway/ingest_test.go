@@ -166,6 +166,9 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	if q.Quality.ClockDriftPpm != nil {
+		t.Errorf("clock drift %v ppm from seconds of data: an estimate must be absent until there is one", q.Quality.GetClockDriftPpm())
+	}
 	if q.Quality.GetChunksLost() != 3 || q.Quality.GetDuplicates() != 2 {
 		t.Errorf("bad-raw quality: lost %d (want 3: sequence 2..4), duplicates %d (want 2)", q.Quality.GetChunksLost(), q.Quality.GetDuplicates())
 	}

@@ -224,8 +224,8 @@ type webQuality struct {
 	Duplicates         uint64   `json:"duplicates"`
 	LateChunks         uint64   `json:"late_chunks"`
 	ChunksRejected     uint64   `json:"chunks_rejected"`
-	ClockDriftPPM      float64  `json:"clock_drift_ppm"`
-	EffectiveRateHz    float64  `json:"effective_sample_rate_hz"`
+	ClockDriftPPM      *float64 `json:"clock_drift_ppm"`          // null until estimated
+	EffectiveRateHz    *float64 `json:"effective_sample_rate_hz"` // null without raw samples
 	ValidSpO2Share     float64  `json:"valid_spo2_share"`
 	ClippingShare      float64  `json:"clipping_share"`
 	LowResolutionShare float64  `json:"low_resolution_share"`
@@ -314,8 +314,8 @@ func webDeviceOf(d *pb.Device) webDevice {
 func webQualityOf(q *pb.DeviceQuality) *webQuality {
 	out := &webQuality{Sessions: q.GetSessions(), Reconnects: q.GetReconnects(), Uptime1h: q.GetUptime_1H(), Uptime24h: q.GetUptime_24H(),
 		Uptime7d: q.GetUptime_7D(), ChunksAccepted: q.GetChunksAccepted(), ChunksLost: q.GetChunksLost(), Duplicates: q.GetDuplicates(),
-		LateChunks: q.GetLateChunks(), ChunksRejected: q.GetChunksRejected(), ClockDriftPPM: q.GetClockDriftPpm(),
-		EffectiveRateHz: q.GetEffectiveSampleRateHz(), ValidSpO2Share: q.GetValidSpo2Share(), ClippingShare: q.GetClippingShare(),
+		LateChunks: q.GetLateChunks(), ChunksRejected: q.GetChunksRejected(), ClockDriftPPM: q.ClockDriftPpm,
+		EffectiveRateHz: q.EffectiveSampleRateHz, ValidSpO2Share: q.GetValidSpo2Share(), ClippingShare: q.GetClippingShare(),
 		LowResolutionShare: q.GetLowResolutionShare()}
 	dist := func(d *pb.Distribution) *webDist {
 		if d == nil || d.GetCount() == 0 {

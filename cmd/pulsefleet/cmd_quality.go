@@ -125,12 +125,12 @@ func fetchQuality(ctx context.Context, cf *clientFlags, addrs []string, device s
 
 func ff(v float64, prec int) string { return strconv.FormatFloat(v, 'f', prec, 64) }
 
-// driftCell is empty (unknown) when the gateway has no estimate (0).
-func driftCell(v float64, prec int) string {
-	if v == 0 {
+// estCell prints an estimate, or nothing when there is none yet.
+func estCell(v *float64, prec int) string {
+	if v == nil {
 		return ""
 	}
-	return ff(v, prec)
+	return ff(*v, prec)
 }
 
 func distCells(d *pb.Distribution, prec int) []string {
@@ -157,7 +157,7 @@ func writeQualityCSV(w io.Writer, qs []*pb.DeviceQuality) error {
 			ff(q.GetUptime_1H(), 4), ff(q.GetUptime_24H(), 4), ff(q.GetUptime_7D(), 4),
 			strconv.FormatUint(q.GetChunksAccepted(), 10), strconv.FormatUint(q.GetChunksLost(), 10), strconv.FormatUint(q.GetDuplicates(), 10),
 			strconv.FormatUint(q.GetLateChunks(), 10), strconv.FormatUint(q.GetChunksRejected(), 10),
-			driftCell(q.GetClockDriftPpm(), 2), driftCell(q.GetEffectiveSampleRateHz(), 3), ff(q.GetValidSpo2Share(), 4)}
+			estCell(q.ClockDriftPpm, 2), estCell(q.EffectiveSampleRateHz, 3), ff(q.GetValidSpo2Share(), 4)}
 		row = append(row, distCells(q.GetSqi(), 3)...)
 		row = append(row, distCells(q.GetPiPct(), 3)...)
 		row = append(row, ff(q.GetClippingShare(), 4), ff(q.GetLowResolutionShare(), 4), batteryCell(q.GetBatteryPct()))
@@ -198,7 +198,7 @@ func writeQualityTable(w io.Writer, qs []*pb.DeviceQuality) error {
 		fmt.Fprintf(tw, "%-*s\t%d\t%d\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n",
 			width, q.GetDeviceId(), q.GetSessions(), q.GetReconnects(), pctCell(q.GetUptime_1H()), pctCell(q.GetUptime_24H()), pctCell(q.GetUptime_7D()),
 			q.GetChunksAccepted(), q.GetChunksLost(), q.GetDuplicates(), q.GetLateChunks(), q.GetChunksRejected(),
-			orDash(driftCell(q.GetClockDriftPpm(), 1)), orDash(driftCell(q.GetEffectiveSampleRateHz(), 2)), pctCell(q.GetValidSpo2Share()),
+			orDash(estCell(q.ClockDriftPpm, 1)), orDash(estCell(q.EffectiveSampleRateHz, 2)), pctCell(q.GetValidSpo2Share()),
 			dist(sqi), dist(pi), pctCell(q.GetClippingShare()), pctCell(q.GetLowResolutionShare()), orDash(batteryCell(q.GetBatteryPct())))
 	}
 	return tw.Flush()

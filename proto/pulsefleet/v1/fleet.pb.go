@@ -2100,10 +2100,12 @@ type DeviceQuality struct {
 	Duplicates uint64 `protobuf:"varint,8,opt,name=duplicates,proto3" json:"duplicates,omitempty"`
 	// Data messages whose device time was more than 10 s behind the gateway clock on arrival.
 	LateChunks uint64 `protobuf:"varint,9,opt,name=late_chunks,json=lateChunks,proto3" json:"late_chunks,omitempty"`
-	// Device clock drift against the gateway clock in parts per million (positive = device fast).
-	ClockDriftPpm float64 `protobuf:"fixed64,10,opt,name=clock_drift_ppm,json=clockDriftPpm,proto3" json:"clock_drift_ppm,omitempty"`
-	// Samples received per second of device time over the last session, hertz (raw mode).
-	EffectiveSampleRateHz float64 `protobuf:"fixed64,11,opt,name=effective_sample_rate_hz,json=effectiveSampleRateHz,proto3" json:"effective_sample_rate_hz,omitempty"`
+	// Device clock drift against the gateway clock in parts per million (positive = device fast);
+	// absent until enough of the device's clock has been seen to estimate it.
+	ClockDriftPpm *float64 `protobuf:"fixed64,10,opt,name=clock_drift_ppm,json=clockDriftPpm,proto3,oneof" json:"clock_drift_ppm,omitempty"`
+	// Samples received per second of device time over the last session, hertz (raw mode);
+	// absent for summary devices and until a session has carried raw samples.
+	EffectiveSampleRateHz *float64 `protobuf:"fixed64,11,opt,name=effective_sample_rate_hz,json=effectiveSampleRateHz,proto3,oneof" json:"effective_sample_rate_hz,omitempty"`
 	// Share of seconds with a valid SpO2, 0..1.
 	ValidSpo2Share float64 `protobuf:"fixed64,12,opt,name=valid_spo2_share,json=validSpo2Share,proto3" json:"valid_spo2_share,omitempty"`
 	// Signal quality index distribution.
@@ -2218,15 +2220,15 @@ func (x *DeviceQuality) GetLateChunks() uint64 {
 }
 
 func (x *DeviceQuality) GetClockDriftPpm() float64 {
-	if x != nil {
-		return x.ClockDriftPpm
+	if x != nil && x.ClockDriftPpm != nil {
+		return *x.ClockDriftPpm
 	}
 	return 0
 }
 
 func (x *DeviceQuality) GetEffectiveSampleRateHz() float64 {
-	if x != nil {
-		return x.EffectiveSampleRateHz
+	if x != nil && x.EffectiveSampleRateHz != nil {
+		return *x.EffectiveSampleRateHz
 	}
 	return 0
 }
@@ -2621,7 +2623,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x05count\x18\x01 \x01(\x04R\x05count\x12\x10\n" +
 	"\x03p10\x18\x02 \x01(\x01R\x03p10\x12\x10\n" +
 	"\x03p50\x18\x03 \x01(\x01R\x03p50\x12\x10\n" +
-	"\x03p90\x18\x04 \x01(\x01R\x03p90\"\xdd\x05\n" +
+	"\x03p90\x18\x04 \x01(\x01R\x03p90\"\x98\x06\n" +
 	"\rDeviceQuality\x12\x1b\n" +
 	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12\x1a\n" +
 	"\bsessions\x18\x02 \x01(\x04R\bsessions\x12\x1b\n" +
@@ -2638,10 +2640,10 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"duplicates\x18\b \x01(\x04R\n" +
 	"duplicates\x12\x1f\n" +
 	"\vlate_chunks\x18\t \x01(\x04R\n" +
-	"lateChunks\x12&\n" +
+	"lateChunks\x12+\n" +
 	"\x0fclock_drift_ppm\x18\n" +
-	" \x01(\x01R\rclockDriftPpm\x127\n" +
-	"\x18effective_sample_rate_hz\x18\v \x01(\x01R\x15effectiveSampleRateHz\x12(\n" +
+	" \x01(\x01H\x00R\rclockDriftPpm\x88\x01\x01\x12<\n" +
+	"\x18effective_sample_rate_hz\x18\v \x01(\x01H\x01R\x15effectiveSampleRateHz\x88\x01\x01\x12(\n" +
 	"\x10valid_spo2_share\x18\f \x01(\x01R\x0evalidSpo2Share\x12-\n" +
 	"\x03sqi\x18\r \x01(\v2\x1b.pulsefleet.v1.DistributionR\x03sqi\x122\n" +
 	"\x06pi_pct\x18\x0e \x01(\v2\x1b.pulsefleet.v1.DistributionR\x05piPct\x12%\n" +
@@ -2650,7 +2652,9 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\vbattery_pct\x18\x11 \x01(\x01R\n" +
 	"batteryPct\x12'\n" +
 	"\x0fchunks_accepted\x18\x12 \x01(\x04R\x0echunksAccepted\x12'\n" +
-	"\x0fchunks_rejected\x18\x13 \x01(\x04R\x0echunksRejected\"6\n" +
+	"\x0fchunks_rejected\x18\x13 \x01(\x04R\x0echunksRejectedB\x12\n" +
+	"\x10_clock_drift_ppmB\x1b\n" +
+	"\x19_effective_sample_rate_hz\"6\n" +
 	"\x17GetDeviceQualityRequest\x12\x1b\n" +
 	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\"R\n" +
 	"\x18GetDeviceQualityResponse\x126\n" +
@@ -2806,6 +2810,7 @@ func file_pulsefleet_v1_fleet_proto_init() {
 		(*WatchEventsResponse_EpisodeEvent)(nil),
 	}
 	file_pulsefleet_v1_fleet_proto_msgTypes[13].OneofWrappers = []any{}
+	file_pulsefleet_v1_fleet_proto_msgTypes[28].OneofWrappers = []any{}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
 		File: protoimpl.DescBuilder{
