@@ -35,8 +35,9 @@ complete (mode 0600: exports hold health data). Progress goes to stderr when
 it is a terminal.
 
 The store is opened read-only. A running gateway holds the store's lock: stop
-the gateway first. Exporting through a running gateway (over its API) is
-future work and not available yet.
+the gateway first, or take one device's trend as CSV through the gateway with
+'pulsefleet trend --gateway ADDR --device ID'. A FHIR export through a running
+gateway is future work.
 
 Research tool, not a certified medical device.`
 
@@ -128,7 +129,7 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 	db, err := store.Open(o.data, store.Options{ReadOnly: true, Timeout: o.wait})
 	if err != nil {
 		if errors.Is(err, store.ErrLocked) {
-			return fmt.Errorf("--data %s: %w\nexport opens the store read-only but a running gateway holds it: stop the gateway or export through it (exporting through the gateway is future work)", o.data, err)
+			return fmt.Errorf("--data %s: %w\nexport opens the store read-only but a running gateway holds it: stop the gateway, or use 'pulsefleet trend --gateway ADDR --device ID' for one device's trend as CSV through it", o.data, err)
 		}
 		return fmt.Errorf("--data %s: %w", o.data, err)
 	}
