@@ -103,7 +103,7 @@ func TestExportCommandLockedStore(t *testing.T) {
 	defer db.Close()
 	outDir := t.TempDir()
 	code, _, errs := exportRun(t, "--data", dir, "--format", "csv", "--wait", "50ms", "--out", filepath.Join(outDir, "x.csv"))
-	if code != 1 || !strings.Contains(errs, "stop the gateway, or use 'pulsefleet trend) || !strings.Contains(errs, "locked") {
+	if code != 1 || !strings.Contains(errs, "stop the gateway, or use 'pulsefleet trend") || !strings.Contains(errs, "locked") {
 		t.Errorf("exit %d, stderr %q", code, errs)
 	}
 	if ents, _ := os.ReadDir(outDir); len(ents) != 0 {
