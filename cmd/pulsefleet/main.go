@@ -131,8 +131,12 @@ func printHelp(w io.Writer) {
 		names = append(names, n)
 	}
 	sort.Strings(names)
+	width := 0
 	for _, n := range names {
-		fmt.Fprintf(w, "  %-10s %s\n", n, firstLine(commands[n].summary))
+		width = max(width, len(n))
+	}
+	for _, n := range names {
+		fmt.Fprintf(w, "  %-*s  %s\n", width, n, firstLine(commands[n].summary))
 	}
 	fmt.Fprintln(w, "\nRun 'pulsefleet COMMAND --help' for a command's flags.")
 }
