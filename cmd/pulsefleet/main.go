@@ -141,9 +141,24 @@ func printHelp(w io.Writer) {
 	fmt.Fprintln(w, "\nRun 'pulsefleet COMMAND --help' for a command's flags.")
 }
 
+// firstLine returns a summary's first sentence, joined across the line
+// breaks of its first paragraph.
 func firstLine(s string) string {
-	if i := strings.IndexByte(s, '\n'); i >= 0 {
-		return s[:i]
+	if i := strings.Index(s, "\n\n"); i >= 0 {
+		s = s[:i]
+	}
+	s = strings.Join(strings.Fields(s), " ")
+	if i := strings.Index(s, ". "); i >= 0 {
+		s = s[:i+1]
+	}
+	// Keep the list to one line a command: shorten a long sentence at its
+	// first colon, else at its first comma past the opening words.
+	if len(s) > 100 {
+		if i := strings.Index(s, ": "); i > 0 {
+			s = s[:i] + "."
+		} else if i := strings.Index(s[40:], ", "); i >= 0 {
+			s = s[:40+i] + "."
+		}
 	}
 	return s
 }
