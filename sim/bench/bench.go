@@ -139,15 +139,18 @@ type Result struct {
 	Rejected            uint64  `json:"rejected"`
 	Reconnects          uint64  `json:"reconnects"`
 	UnackedAtEnd        uint64  `json:"unacked_at_end"`
+	GatewayRSSAnonBytes int64   `json:"gateway_rss_anon_bytes"` // at the end of the load: heap, stacks
+	// AnonPerDeviceBytes is the gateway's anonymous memory per connected
+	// stream (its own memory, without the mapped store file's page cache).
+	AnonPerDeviceBytes  int64 `json:"anon_per_device_bytes"`
+	GatewayRSSFileBytes int64 `json:"gateway_rss_file_bytes"` // at the end of the load: mapped files (the store)
 	// LoadAvg is the machine's 1-minute load average at the start and the
 	// end of the run (/proc/loadavg): other work on a shared machine skews
 	// every figure above.
-	GatewayRSSAnonBytes int64         `json:"gateway_rss_anon_bytes"` // at the end of the load: heap, stacks
-	GatewayRSSFileBytes int64         `json:"gateway_rss_file_bytes"` // at the end of the load: mapped files (the store)
-	LoadAvgStart        float64       `json:"load_avg_start"`
-	LoadAvgEnd          float64       `json:"load_avg_end"`
-	CPUs                int           `json:"cpus"`
-	Phases              []PhaseResult `json:"-"`
+	LoadAvgStart float64       `json:"load_avg_start"`
+	LoadAvgEnd   float64       `json:"load_avg_end"`
+	CPUs         int           `json:"cpus"`
+	Phases       []PhaseResult `json:"-"`
 }
 
 // SinkPhase is the bare sink.
@@ -222,6 +225,7 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 	res.SinkPeakRSSBytes, res.GatewayPeakRSSBytes = first.PeakRSSBytes, last.PeakRSSBytes
 	res.RSSPerDeviceBytes = last.PeakRSSBytes / int64(opts.Devices)
 	res.GatewayRSSAnonBytes, res.GatewayRSSFileBytes = last.RSSAnonEnd, last.RSSFileEnd
+	res.AnonPerDeviceBytes = last.RSSAnonEnd / int64(opts.Devices)
 	res.SinkCPUCores, res.GatewayCPUCores = first.CPUCores, last.CPUCores
 	res.ClientPeakRSSBytes, res.ClientCPUCores = last.Client.PeakRSSBytes, last.ClientCores
 	res.Rejected, res.Reconnects, res.UnackedAtEnd = last.Report.Rejected, last.Report.Reconnects, last.Report.UnackedAtEnd
