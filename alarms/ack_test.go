@@ -21,7 +21,7 @@ conditions:
 `
 
 // IEC 60601-1-8 latching alarm signal: it continues after its triggering
-// event ends until stopped by deliberate operator action (REFERENCES.md,
+// event ends until stopped by deliberate operator action (docs/references.md,
 // memory); acknowledgement records who and when.
 func TestLatchingAndAcknowledgement(t *testing.T) {
 	ack := func(tm float64, who string) step { return step{op: "ack", t: tm, who: who} }

@@ -6,7 +6,7 @@ import (
 	"time"
 )
 
-// REFERENCES.md (desaturation indices, seen): ODI = events per hour of valid
+// docs/references.md (desaturation indices, seen): ODI = events per hour of valid
 // recording; worked example 30 events in 7.5 h -> ODI 4.0 /h. The record is
 // a 1 Hz trend over exactly 7.5 h (27000 s of intervals) at 96 % with 30
 // dips to 88 % of 30 s, one every 15 minutes. T90 is then 30 x 30 s below

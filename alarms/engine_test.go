@@ -104,8 +104,8 @@ conditions:
     escalate: {below: 85, after: 60s, priority: high}
 `
 
-// Table of the contract's rules for a threshold condition (DESIGN.md,
-// "Semantics of a threshold condition"). IEC 60601-1-8 vocabulary: the
+// Table of the contract's rules for a threshold condition (docs/contracts.md,
+// "Alarm profile file"). IEC 60601-1-8 vocabulary: the
 // alarm limit is the threshold that determines an alarm condition; the
 // alarm condition delay is the time from the triggering event (onset) to the
 // system determining that the alarm condition exists (announced); medium

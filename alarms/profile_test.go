@@ -11,7 +11,7 @@ import (
 
 const contractProfile = `name: adult-ward-pilot
 conditions:
-  - kind: spo2_low        # the CONTRACT example of DESIGN.md
+  - kind: spo2_low        # the example of docs/contracts.md
     limit: 90
     hysteresis: 2
     delay: 15s
@@ -77,7 +77,7 @@ func TestParseProfileErrors(t *testing.T) {
 }
 
 // Two conditions of one kind are told apart by name; Set addresses values
-// the way a tuning grid sweeps them (DESIGN.md: CONDITION.KEY).
+// the way a tuning grid sweeps them (docs/contracts.md, "Tuning grid file": CONDITION.KEY).
 func TestProfileSet(t *testing.T) {
 	p := mustProfile(t, contractProfile+"  - {kind: spo2_low, name: spo2_deep, limit: 80, delay: 0s, priority: high}\n")
 	q := p.Clone()

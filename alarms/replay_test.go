@@ -9,7 +9,7 @@ import (
 )
 
 // The hand-worked trend files in testdata reproduce every rule of the replay
-// contract (DESIGN.md "Semantics of a threshold condition"); each expected
+// contract (docs/contracts.md, "Alarm profile file"); each expected
 // row is worked out in the comments at the top of the trend file.
 func TestReplayHandWorkedFiles(t *testing.T) {
 	for _, name := range []string{"ward-replay", "desat-replay"} {
@@ -66,7 +66,7 @@ func TestReadTrendCSVErrors(t *testing.T) {
 }
 
 func TestReadTrendCSVOneStreamWithoutDevice(t *testing.T) {
-	// DESIGN.md: device may be empty for one stream; columns in any order.
+	// docs/contracts.md, "CSV formats": device may be empty for one stream; columns in any order.
 	trends, err := ReadTrendCSV(strings.NewReader("spo2_pct,t_s,extra\n95,0,x\n,1,y\n0,2,z\n"))
 	if err != nil {
 		t.Fatal(err)

@@ -8,7 +8,7 @@ import (
 
 // A made-up 100 s session (invented data, for the rules only): the
 // reference holds 97 % for 40 s, falls 97 -> 87 % over 20 s, holds 87 % for
-// 40 s. The device reports R = (110 - SpO2)/25 (REFERENCES.md empirical line,
+// 40 s. The device reports R = (110 - SpO2)/25 (docs/references.md empirical line,
 // common practice) one second late.
 func session() ([]DeviceSecond, []ReferenceSecond) {
 	spo2 := func(k int64) float64 {

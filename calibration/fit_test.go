@@ -25,7 +25,7 @@ func TestFitRecoversKnownCurvesExactly(t *testing.T) {
 		coef        []float64
 		lo, hi      float64
 	}{
-		// REFERENCES.md: empirical line SpO2 = 110 - 25 R, common practice
+		// docs/references.md: empirical line SpO2 = 110 - 25 R, common practice
 		// (often attributed to Webster 1997, memory); valid R 0.4..1.0.
 		{"empirical line 110-25R", Linear, []float64{110, -25}, 0.4, 1.0},
 		// A made-up curved calibration, bending down at high R as fitted
@@ -65,7 +65,7 @@ func TestFitRecoversKnownCurvesExactly(t *testing.T) {
 }
 
 func TestFitEmpiricalLineWorkedValues(t *testing.T) {
-	// REFERENCES.md worked values of SpO2 = 110 - 25 R (common practice):
+	// docs/references.md worked values of SpO2 = 110 - 25 R (common practice):
 	// R 0.4 -> 100, 0.5 -> 97.5, 1.0 -> 85.
 	pairs := []Pair{{Ratio: 0.4, ReferencePct: 100}, {Ratio: 0.5, ReferencePct: 97.5}, {Ratio: 1.0, ReferencePct: 85}}
 	curve, err := Fit(pairs, FitOptions{Model: Linear, Name: "webster"})

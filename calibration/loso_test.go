@@ -11,7 +11,7 @@ import (
 	"testing"
 )
 
-// threeSubjects: subjects a and b lie on SpO2 = 110 - 25 R (REFERENCES.md
+// threeSubjects: subjects a and b lie on SpO2 = 110 - 25 R (docs/references.md
 // empirical line, common practice); subject c reads 3 % higher at every R.
 func threeSubjects() []Pair {
 	line := []float64{110, -25}

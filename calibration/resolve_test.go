@@ -31,10 +31,10 @@ func TestResolveReferences(t *testing.T) {
 		applied string
 		want    float64
 	}{
-		// Empirical line SpO2 = 110 - 25 R: R 0.5 -> 97.5 (REFERENCES.md, common practice).
+		// Empirical line SpO2 = 110 - 25 R: R 0.5 -> 97.5 (docs/references.md, common practice).
 		{"", 0.5, "empirical", 97.5},
 		{"empirical", 1.0, "empirical", 85},
-		// Two-wavelength model at 660/940 nm: S(R=0.5) = 90.93 % (REFERENCES.md, computed from Prahl's table, seen).
+		// Two-wavelength model at 660/940 nm: S(R=0.5) = 90.93 % (docs/references.md, computed from Prahl's table, seen).
 		{"beer-lambert", 0.5, "beer-lambert@660/940nm", 90.93},
 		{"beer-lambert@660/940nm", 1.0, "beer-lambert@660/940nm", 73.91},
 		{"proto-d", 0.5, "proto-d@v2", 87.5},

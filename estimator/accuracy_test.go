@@ -19,8 +19,8 @@ const settleS = 12
 // drives the model, so the truth is the plateau saturation.
 //
 // Bounds: Arms <= 1.0 % at 16 bits/100 Hz and <= 1.5 % at 14 bits/250 Hz
-// (project acceptance; well inside ISO 80601-2-61's 4 % (REFERENCES.md,
-// memory) and the FDA's 3 % for transmittance sensors (REFERENCES.md, seen
+// (project acceptance; well inside ISO 80601-2-61's 4 % (docs/references.md,
+// memory) and the FDA's 3 % for transmittance sensors (docs/references.md, seen
 // in a secondary source)); pulse-rate mean absolute error <= 1.5 /min; a
 // value on >= 95 % of the scored seconds.
 func TestDesaturationAccuracy(t *testing.T) {
@@ -73,7 +73,7 @@ func TestDesaturationAccuracy(t *testing.T) {
 	}
 }
 
-// The identity Arms^2 = bias^2 + SD^2 (population SD), REFERENCES.md
+// The identity Arms^2 = bias^2 + SD^2 (population SD), docs/references.md
 // ("Accuracy standards", memory), on a worked example and on random data.
 func TestArmsIdentity(t *testing.T) {
 	// d = {1, -1, 2, 0}: Arms^2 = 6/4 = 1.5, bias = 0.5, SD^2 = 1.5 - 0.25 = 1.25.
@@ -88,7 +88,7 @@ func TestArmsIdentity(t *testing.T) {
 	}
 }
 
-// REFERENCES.md, "Signal facts" (common practice): AC about 2 % of DC needs
+// docs/references.md, "Signal facts" (common practice): AC about 2 % of DC needs
 // >= 14 bits for two significant digits; an estimator fed 10-bit data must
 // flag insufficient resolution (or lose accuracy measurably). Same
 // perfusion (PI 0.6-4 %) as the 16-bit run, which must not be flagged.

@@ -7,7 +7,7 @@ import (
 )
 
 // BenchmarkStream reports the estimator's cost per red/infrared sample pair
-// (target <= 100 ns and no allocation; DESIGN.md performance targets) on a
+// (target <= 100 ns and no allocation; docs/references.md, "Project targets") on a
 // 100 Hz, 16-bit signal pushed in 25-sample chunks as the gateway does.
 func BenchmarkStream(b *testing.B) {
 	const rate, chunk, seconds = 100, 25, 60

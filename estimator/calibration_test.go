@@ -5,14 +5,14 @@ import (
 	"testing"
 )
 
-// The empirical line SpO2 = 110 - 25 R (REFERENCES.md, common practice;
+// The empirical line SpO2 = 110 - 25 R (docs/references.md, common practice;
 // Webster 1997 from memory): R 0.4 -> 100, 0.5 -> 97.5, 1.0 -> 85.
 func TestEmpiricalCalibration(t *testing.T) {
 	cal := Empirical()
 	for _, c := range []struct{ r, want float64 }{
-		{0.4, 100},  // REFERENCES.md
-		{0.5, 97.5}, // REFERENCES.md
-		{1.0, 85},   // REFERENCES.md
+		{0.4, 100},  // docs/references.md
+		{0.5, 97.5}, // docs/references.md
+		{1.0, 85},   // docs/references.md
 		{1.6, 70},   // the same line: 110 - 40
 		{0.2, 100},  // above 100 % is clamped
 	} {
@@ -29,22 +29,22 @@ func TestEmpiricalCalibration(t *testing.T) {
 }
 
 // The inverse of the two-wavelength Beer-Lambert model at 660/940 nm,
-// REFERENCES.md worked values computed from Prahl's tabulation (seen).
+// docs/references.md worked values computed from Prahl's tabulation (seen).
 func TestBeerLambertCalibration660940(t *testing.T) {
 	cal, err := BeerLambert(660, 940)
 	if err != nil {
 		t.Fatal(err)
 	}
 	for _, c := range []struct{ r, want, tol float64 }{
-		{0.5, 90.93, 0.005}, // REFERENCES.md: S(R=0.5) = 90.93 %
-		{1.0, 73.91, 0.005}, // REFERENCES.md: S(1.0) = 73.91 %
-		{2.0, 46.60, 0.005}, // REFERENCES.md: S(2.0) = 46.60 %
-		{0.2633, 100, 0.02}, // REFERENCES.md: R(S=100 %) = 0.2633
-		{0.3395, 97, 0.02},  // REFERENCES.md: R(97 %) = 0.3395
-		{0.5252, 90, 0.02},  // REFERENCES.md: R(90 %) = 0.5252
-		{0.6652, 85, 0.02},  // REFERENCES.md: R(85 %) = 0.6652
-		{1.1265, 70, 0.02},  // REFERENCES.md: R(70 %) = 1.1265
-		{4.6530, 0, 0.02},   // REFERENCES.md: R(0 %) = 4.6530
+		{0.5, 90.93, 0.005}, // docs/references.md: S(R=0.5) = 90.93 %
+		{1.0, 73.91, 0.005}, // docs/references.md: S(1.0) = 73.91 %
+		{2.0, 46.60, 0.005}, // docs/references.md: S(2.0) = 46.60 %
+		{0.2633, 100, 0.02}, // docs/references.md: R(S=100 %) = 0.2633
+		{0.3395, 97, 0.02},  // docs/references.md: R(97 %) = 0.3395
+		{0.5252, 90, 0.02},  // docs/references.md: R(90 %) = 0.5252
+		{0.6652, 85, 0.02},  // docs/references.md: R(85 %) = 0.6652
+		{1.1265, 70, 0.02},  // docs/references.md: R(70 %) = 1.1265
+		{4.6530, 0, 0.02},   // docs/references.md: R(0 %) = 4.6530
 		{0.25, 100, 0},      // 100.6 %: slightly above 100 % reads 100
 	} {
 		got, ok := cal.SpO2(c.r)

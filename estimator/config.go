@@ -18,7 +18,7 @@ const (
 	// MinResolvedCodes is the pulsatile swing, in ADC codes, below which
 	// FlagLowResolution is raised: with a step of at most 1 % of the swing AC
 	// is resolved to two significant digits. It matches the rule of thumb in
-	// REFERENCES.md (AC ~2 % of DC near mid-range needs >= 14 bits:
+	// docs/references.md (AC ~2 % of DC near mid-range needs >= 14 bits:
 	// 2^13 x 2 % = 164 codes passes, 12 bits gives 41 and fails; common
 	// practice).
 	MinResolvedCodes = 100.0

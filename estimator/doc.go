@@ -61,7 +61,7 @@
 // 2.5 x the median PI, or the window's beats are irregular (period spread >
 // 10 %, PI spread > 20 %); FlagLowResolution when the band-passed swing of
 // either channel in the second spans fewer than MinResolvedCodes (100) codes,
-// i.e. too few for two significant digits of AC (REFERENCES.md: AC about 2 %
+// i.e. too few for two significant digits of AC (docs/references.md: AC about 2 %
 // of DC near mid-range needs >= 14 bits; common practice).
 //
 // # Caveats

@@ -160,7 +160,7 @@ func TestAmbientSubtraction(t *testing.T) {
 }
 
 // The perfusion index reported is the infrared AC/DC x 100 of the model
-// (REFERENCES.md: PI = AC/DC x 100 of the infrared channel).
+// (docs/references.md: PI = AC/DC x 100 of the infrared channel).
 func TestPerfusionIndexTracksModel(t *testing.T) {
 	for _, pi := range []float64{0.3, 1, 4, 10} {
 		r := newRig(t, ppgmodel.Config{SampleRateHz: 100, ADCBits: 16, Seed: 4}, Config{SampleRateHz: 100, ADCBits: 16})
@@ -275,7 +275,7 @@ func TestPushDoesNotAllocate(t *testing.T) {
 	}
 }
 
-// The cardiac band is about 0.5-5 Hz, 30-300 /min (REFERENCES.md, Allen
+// The cardiac band is about 0.5-5 Hz, 30-300 /min (docs/references.md, Allen
 // 2007 via notes): pulse rates across it are measured, with both pulse
 // shapes (Tang et al. 2020), including the large diastolic wave of the
 // "acceptable" shape, which must not count as a beat.
@@ -297,7 +297,7 @@ func TestPulseRateAcrossCardiacBand(t *testing.T) {
 	}
 }
 
-// DESIGN.md budgets 64 KiB per connected raw stream for the whole gateway;
+// docs/references.md ("Project targets") budgets 64 KiB per connected raw stream for the whole gateway;
 // the estimator's share is fixed (no per-sample buffers).
 func TestStreamMemoryIsBounded(t *testing.T) {
 	size := unsafe.Sizeof(Stream{})

@@ -12,7 +12,7 @@ import (
 )
 
 // CSVHeader is the CSV export's header: the replay/tune trend columns
-// (DESIGN.md contract) first, then ratio of ratios, estimator flags and the
+// (docs/contracts.md) first, then ratio of ratios, estimator flags and the
 // source of the values (gateway estimate or device summary).
 const CSVHeader = "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source"
 

@@ -102,7 +102,7 @@ func exportString(t testing.TB, db *store.DB, w Writer, buf *bytes.Buffer, opt O
 	return buf.String(), st
 }
 
-// The CSV starts with the replay/tune trend columns (DESIGN.md contract), so
+// The CSV starts with the replay/tune trend columns (docs/contracts.md), so
 // alarms.ReadTrendCSV (what replay and tune read) takes the export as is and
 // gets back the stored values, with missing values still missing.
 func TestCSVExportReplaysDirectly(t *testing.T) {
@@ -304,7 +304,7 @@ func TestFHIRExportValidatesAndCarriesTheCodes(t *testing.T) {
 		vital := len(o.Category) == 1 && len(o.Category[0].Coding) == 1 &&
 			o.Category[0].Coding[0] == coding{"http://terminology.hl7.org/CodeSystem/observation-category", "vital-signs", "Vital Signs"}
 		switch key {
-		// REFERENCES.md, Interoperability codes: LOINC 59408-5 and 2708-6 for
+		// docs/references.md, Interoperability codes: LOINC 59408-5 and 2708-6 for
 		// SpO2, 8867-4 for heart rate, UCUM "%" and "/min" (seen).
 		case "http://loinc.org|59408-5 http://loinc.org|2708-6":
 			if q.Unit != "%" || q.Code != "%" || q.System != "http://unitsofmeasure.org" || !vital || q.Value < 88 || q.Value > 99 {
@@ -314,7 +314,7 @@ func TestFHIRExportValidatesAndCarriesTheCodes(t *testing.T) {
 			if q.Unit != "/min" || q.Code != "/min" || q.System != "http://unitsofmeasure.org" || !vital {
 				t.Errorf("pulse entry %d: %+v vital=%v", i, q, vital)
 			}
-		// REFERENCES.md: ISO/IEEE 11073-10101 150448 MDC_PULS_OXIM_PERF_REL (derived).
+		// docs/references.md: ISO/IEEE 11073-10101 150448 MDC_PULS_OXIM_PERF_REL (derived).
 		case "urn:iso:std:iso:11073:10101|150448":
 			if q.Unit != "%" || q.Code != "%" || len(o.Category) != 0 {
 				t.Errorf("PI entry %d: %+v, category %v (PI is no FHIR vital sign)", i, q, o.Category)

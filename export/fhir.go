@@ -14,7 +14,7 @@ import (
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
-// Code systems and codes (REFERENCES.md, "Interoperability codes").
+// Code systems and codes (docs/references.md, "Interoperability codes").
 const (
 	SystemLOINC = "http://loinc.org"
 	SystemUCUM  = "http://unitsofmeasure.org"

@@ -459,7 +459,7 @@ func TestSeriesOfDevicesIdleBeyondRetentionAreDeleted(t *testing.T) {
 // Seconds flagged by the estimator are counted: a 16-bit raw stream whose
 // seconds 10..14 each hold one sample at the converter's limit (clipping) and
 // whose seconds 15..29 swing only 40 codes, under the 100 codes needed for
-// two significant digits (low resolution; REFERENCES.md rule of thumb,
+// two significant digits (low resolution; docs/references.md rule of thumb,
 // common practice). The estimator's band-pass filter rings for a couple of
 // seconds after the swing drops, so low resolution is flagged on 12 to 15 of
 // those seconds, and the share counts exactly the seconds stored with it.

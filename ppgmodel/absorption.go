@@ -7,7 +7,7 @@ import (
 
 // extinction is the molar extinction coefficient table, cm^-1/M, of oxy- and
 // deoxyhaemoglobin: S. Prahl's compiled tabulation (Oregon Medical Laser
-// Center, data of W.B. Gratzer and N. Kollias), rows used by REFERENCES.md.
+// Center, data of W.B. Gratzer and N. Kollias), rows used by docs/references.md.
 var extinction = []struct{ nm, hbo2, hb float64 }{
 	{650, 368, 3750.12},
 	{660, 319.6, 3226.56},

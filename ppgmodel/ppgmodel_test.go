@@ -6,19 +6,19 @@ import (
 )
 
 // The worked values of the two-wavelength model at 660/940 nm, computed from
-// Prahl's tabulation. Source: REFERENCES.md, "Haemoglobin absorption", seen.
+// Prahl's tabulation. Source: docs/references.md, "Haemoglobin absorption", seen.
 func TestBeerLambertWorkedValues660940(t *testing.T) {
 	m, err := NewTwoWavelength(660, 940)
 	if err != nil {
 		t.Fatal(err)
 	}
 	ratios := []struct{ s, r float64 }{
-		{1.00, 0.2633}, // REFERENCES.md: R(S=100%) = 0.2633
-		{0.97, 0.3395}, // REFERENCES.md: R(97%) = 0.3395
-		{0.90, 0.5252}, // REFERENCES.md: R(90%) = 0.5252
-		{0.85, 0.6652}, // REFERENCES.md: R(85%) = 0.6652
-		{0.70, 1.1265}, // REFERENCES.md: R(70%) = 1.1265
-		{0.00, 4.6530}, // REFERENCES.md: R(0%) = 4.6530
+		{1.00, 0.2633}, // docs/references.md: R(S=100%) = 0.2633
+		{0.97, 0.3395}, // docs/references.md: R(97%) = 0.3395
+		{0.90, 0.5252}, // docs/references.md: R(90%) = 0.5252
+		{0.85, 0.6652}, // docs/references.md: R(85%) = 0.6652
+		{0.70, 1.1265}, // docs/references.md: R(70%) = 1.1265
+		{0.00, 4.6530}, // docs/references.md: R(0%) = 4.6530
 	}
 	for _, c := range ratios {
 		if got := m.Ratio(c.s); math.Abs(got-c.r) > 0.00005 {
@@ -29,9 +29,9 @@ func TestBeerLambertWorkedValues660940(t *testing.T) {
 		}
 	}
 	sats := []struct{ r, s float64 }{
-		{0.5, 0.9093}, // REFERENCES.md: S(R=0.5) = 90.93%
-		{1.0, 0.7391}, // REFERENCES.md: S(1.0) = 73.91%
-		{2.0, 0.4660}, // REFERENCES.md: S(2.0) = 46.60%
+		{0.5, 0.9093}, // docs/references.md: S(R=0.5) = 90.93%
+		{1.0, 0.7391}, // docs/references.md: S(1.0) = 73.91%
+		{2.0, 0.4660}, // docs/references.md: S(2.0) = 46.60%
 	}
 	for _, c := range sats {
 		if got := m.Saturation(c.r); math.Abs(got-c.s) > 0.00005 {
@@ -40,7 +40,7 @@ func TestBeerLambertWorkedValues660940(t *testing.T) {
 	}
 }
 
-// The empirical line, common practice (REFERENCES.md; Webster 1997 from
+// The empirical line, common practice (docs/references.md; Webster 1997 from
 // memory): R 0.4 -> 100, 0.5 -> 97.5, 1.0 -> 85.
 func TestEmpiricalLine(t *testing.T) {
 	for _, c := range []struct{ r, spo2 float64 }{{0.4, 100}, {0.5, 97.5}, {1.0, 85}} {
@@ -54,7 +54,7 @@ func TestEmpiricalLine(t *testing.T) {
 }
 
 func TestExtinctionInterpolatesAndRefusesOutsideTable(t *testing.T) {
-	// Tabulated rows come back exactly (REFERENCES.md, Prahl, seen).
+	// Tabulated rows come back exactly (docs/references.md, Prahl, seen).
 	o, d, err := Extinction(940)
 	if err != nil || o != 1214 || d != 693.44 {
 		t.Errorf("Extinction(940) = %v, %v, %v; want 1214, 693.44", o, d, err)
@@ -102,7 +102,7 @@ func contains(s, sub string) bool {
 
 // The generated signal carries the perfusion index and ratio it was asked
 // for: AC/DC of the infrared is PI, and the red's relative swing is R times
-// it (definition of the ratio of ratios; REFERENCES.md).
+// it (definition of the ratio of ratios; docs/references.md).
 func TestSignalCarriesPIAndRatio(t *testing.T) {
 	for _, rel := range []Relation{RelationEmpirical, RelationBeerLambert} {
 		src := New(Config{SampleRateHz: 100, ADCBits: 0, Relation: rel, Seed: 1, NoiseRMS: -1, HRV: -1})

@@ -333,7 +333,7 @@ const shapeN = 1024
 var shapes [2][shapeN + 1]float64
 
 // tangParams: Tang, Chen, Ward, Elgendi, Sci. Rep. 10, 13883 (2020), Table 1
-// (REFERENCES.md, seen): a1, theta1, b1, a2, theta2, b2.
+// (docs/references.md, seen): a1, theta1, b1, a2, theta2, b2.
 var tangParams = [2][6]float64{
 	ShapeExcellent:  {1.0000, -1.5161, 0.6303, 0.1999, 0.8186, 1.0225},
 	ShapeAcceptable: {0.7303, -1.5510, 0.7283, 0.5291, -0.2553, 1.2271},

@@ -46,7 +46,7 @@ func TestBuiltinProfilesParse(t *testing.T) {
 // clinical team's decision.
 func TestBuiltinProfilesCiteEveryValue(t *testing.T) {
 	sources := []string{"team choice", "Welch 2011", "Taenzer 2010", "Lansdowne 2016", "BTS 2017", "AASM",
-		"IEC 60601-1-8", "REFERENCES.md", "prompt response", "immediate response", "awareness"}
+		"IEC 60601-1-8", "docs/references.md", "prompt response", "immediate response", "awareness"}
 	for _, n := range Names() {
 		b, _ := Bytes(n)
 		if !strings.Contains(string(b), "clinical team's decision") || !strings.Contains(string(b), "NOT a certified") {

@@ -29,7 +29,7 @@ reference:
   rule: {below: 85, for: 60s}
 `
 
-// BenchmarkTune measures the DESIGN.md target: 100 profiles over 1,000
+// BenchmarkTune measures the project target (docs/references.md, "Project targets"): 100 profiles over 1,000
 // device-hours of 1 Hz trend (100 devices x 10 h) in <= 3 s. s/run is the
 // wall time of one sweep; ns/sample/profile divides it by samples x
 // profiles (wall time, all cores); cpu-ns/sample/profile is the process's

@@ -81,7 +81,7 @@ func rawStore(t *testing.T) string {
 	}
 	defer db.Close()
 	// The empirical line as a fitted curve (SpO2 = 110 - 25 R, common
-	// practice; REFERENCES.md), kept in the store as ward-fit@v1.
+	// practice; docs/references.md), kept in the store as ward-fit@v1.
 	if _, err := db.PutCalibration(store.Calibration{Name: "ward-fit", CurveYAML: "name: ward-fit\nversion: 1\nmodel: linear\ncoefficients: [110, -25]\nratio_min: 0.2\nratio_max: 2.4\n"}, nil); err != nil {
 		t.Fatal(err)
 	}
@@ -189,7 +189,7 @@ func TestAveragingOverRawCaptures(t *testing.T) {
 		}
 		// Before the dip ppgmodel's 97 % comes back through the empirical
 		// line; ward-5's Beer-Lambert source through the Beer-Lambert
-		// inverse (REFERENCES.md: Prahl tabulation, via ppgmodel). 2 points
+		// inverse (docs/references.md: Prahl tabulation, via ppgmodel). 2 points
 		// is the estimator's accuracy on clean model signals (estimator tests).
 		if m := medianSpO2(w3.Samples, t0+60, t0+115); math.Abs(m-97) > 2 {
 			t.Errorf("averaging %v s: ward-3 median SpO2 before the dip %.1f %%, want 97 +- 2", est.AveragingS[a], m)

@@ -25,9 +25,9 @@ reference:
 // the other, as found in recorded data by:
 //   - Lansdowne et al., BMC Nursing 15:36 (2016): lowering the threshold
 //     90 -> 84 % and lengthening the delay 10 -> 60 s both cut alarm rates
-//     steeply (REFERENCES.md, seen);
+//     steeply (docs/references.md, seen);
 //   - Welch, Biomed. Instrum. Technol. 45(s1):46 (2011): 90 -> 88 % cut
-//     alarms by 63 %; a 15 s delay at 90 % cut them by 60 % (REFERENCES.md,
+//     alarms by 63 %; a 15 s delay at 90 % cut them by 60 % (docs/references.md,
 //     seen).
 //
 // Only the direction is checked: the cohort is invented, so the sizes are

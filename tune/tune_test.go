@@ -51,7 +51,7 @@ reference:
 `
 
 // TestHandWorkedGrid checks every grid point of handGrid against counts
-// worked out by hand from the DESIGN.md condition semantics (present at
+// worked out by hand from the condition semantics of docs/contracts.md (present at
 // SpO2 < limit, clears at >= limit + hysteresis, announced once present for
 // the delay, a missing value changes nothing but time passes):
 //

@@ -14,7 +14,7 @@ import (
 var _ estimator.Calibration = (*calibration.Curve)(nil)
 
 // TestFittedCurveCorrectsTheEstimator closes the loop on a generated device
-// whose optics follow the pure Beer-Lambert model (REFERENCES.md, Prahl
+// whose optics follow the pure Beer-Lambert model (docs/references.md, Prahl
 // tabulation, seen) rather than the empirical line the estimator assumes
 // by default: pair a breathe-down recording, fit, write and load the curve
 // file, and run the estimator with it on a second recording.
@@ -74,7 +74,7 @@ func TestFittedCurveCorrectsTheEstimator(t *testing.T) {
 	if n1 < n0*95/100 {
 		t.Fatalf("%d plateau seconds with a value under the fitted curve, %d under the empirical line", n1, n0)
 	}
-	// FDA 2013 guidance (REFERENCES.md, seen in a secondary source):
+	// FDA 2013 guidance (docs/references.md, seen in a secondary source):
 	// Arms <= 3.0 % for transmittance sensors; the fitted curve must meet it
 	// on its own device, and the empirical line must not (it is the wrong
 	// curve for pure Beer-Lambert optics: R(90 %) = 0.5252 reads 96.9 %).

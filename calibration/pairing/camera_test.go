@@ -50,7 +50,7 @@ func cameraPairs(t testing.TB, o Options) ([]calibration.Pair, calibration.Align
 // the colour with the strongest pulsatile signal in these recordings.
 var cameraOptions = Options{RateHz: 30, RedCol: "r", IRCol: "g"}
 
-// Published result on the same study (REFERENCES.md Open data, seen):
+// Published result on the same study (docs/references.md Open data, seen):
 // deep-learning model, MAE 5.00 % SpO2 (Hoffman et al. 2022, 6 subjects,
 // their own protocol, so a reference point, not a like-for-like score).
 const publishedMAEPct = 5.00

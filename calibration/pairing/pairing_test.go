@@ -65,7 +65,7 @@ func TestFromRecordingPairsPlateausOnTheBeerLambertCurve(t *testing.T) {
 	if rep.Windows != 20 || rep.ReferenceUnstable < 3 || rep.Kept < 12 {
 		t.Errorf("report %+v, want 20 windows, >= 3 unstable (the ramps), >= 12 kept", rep)
 	}
-	// REFERENCES.md Beer-Lambert worked values at 660/940 nm (computed from
+	// docs/references.md Beer-Lambert worked values at 660/940 nm (computed from
 	// the Prahl table, seen): R(97 %) = 0.3395, R(90 %) = 0.5252,
 	// R(85 %) = 0.6652, R(70 %) = 1.1265.
 	want := map[float64]float64{97: 0.3395, 90: 0.5252, 85: 0.6652, 70: 1.1265}

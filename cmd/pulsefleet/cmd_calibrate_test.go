@@ -14,7 +14,7 @@ import (
 	"github.com/pulsefleet/pulsefleet/calibration"
 )
 
-// writeLinePairs writes noise-free pairs on SpO2 = 110 - 25 R (REFERENCES.md
+// writeLinePairs writes noise-free pairs on SpO2 = 110 - 25 R (docs/references.md
 // empirical line, common practice) for three subjects.
 func writeLinePairs(t *testing.T) string {
 	t.Helper()

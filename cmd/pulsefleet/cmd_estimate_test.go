@@ -251,7 +251,7 @@ func TestResolveCalibration(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		if v, _ := c.SpO2(0.5); v != 97.5 { // REFERENCES.md, empirical line: R 0.5 -> 97.5
+		if v, _ := c.SpO2(0.5); v != 97.5 { // docs/references.md, empirical line: R 0.5 -> 97.5
 			t.Errorf("%q: SpO2(0.5) = %v, want 97.5", name, v)
 		}
 	}
@@ -259,7 +259,7 @@ func TestResolveCalibration(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if v, _ := c.SpO2(1.0); math.Abs(v-73.91) > 0.005 { // REFERENCES.md: S(R=1.0) = 73.91 % at 660/940 nm
+	if v, _ := c.SpO2(1.0); math.Abs(v-73.91) > 0.005 { // docs/references.md: S(R=1.0) = 73.91 % at 660/940 nm
 		t.Errorf("beer-lambert: SpO2(1.0) = %v, want 73.91", v)
 	}
 	if _, err := resolveCalibration("beer-lambert", 660, 1000); err == nil || !strings.Contains(err.Error(), "--ir-nm 1000") {

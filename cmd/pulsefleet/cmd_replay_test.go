@@ -39,7 +39,7 @@ func TestReplayCommandHandWorked(t *testing.T) {
 	}
 }
 
-// ODI worked example (REFERENCES.md, desaturation indices, seen): 30 events
+// ODI worked example (docs/references.md, desaturation indices, seen): 30 events
 // in 7.5 h of valid recording -> ODI 4.0 /h. Built as a 1 Hz trend of
 // 27001 samples (27000 s = 7.5 h of intervals) at 96 % with 30 dips to 92 %
 // (a 4-point drop, 30 s each, every 15 minutes): both the 3 % and the 4 %

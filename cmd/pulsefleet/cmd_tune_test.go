@@ -106,7 +106,7 @@ reference:
 	for i, want := range []string{"profile", "spo2_low.limit", "spo2_low.delay", "desaturation.limit", "episodes",
 		"episodes_per_device_day", "time_in_alarm_pct", "sensitivity", "ppv", "median_delay_s"} {
 		if head[i] != want {
-			t.Fatalf("summary column %d is %q, want %q (DESIGN.md contract)", i, head[i], want)
+			t.Fatalf("summary column %d is %q, want %q (docs/contracts.md)", i, head[i], want)
 		}
 	}
 	if len(recs) != 1+12 {
