@@ -4,8 +4,6 @@ import (
 	"context"
 	"fmt"
 	"io"
-	"strings"
-	"text/tabwriter"
 	"time"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
@@ -92,8 +90,7 @@ func parseSince(v string, now time.Time) (int64, error) {
 }
 
 func writeAuditTable(w io.Writer, es []*pb.AuditEntry) error {
-	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-	fmt.Fprintln(tw, "TIME\tACTOR\tACTION\tDEVICE\tREMOTE\tDETAIL")
+	t := newTable(w, 0, "TIME", "ACTOR", "ACTION", "DEVICE", "REMOTE", "DETAIL")
 	for _, e := range es {
 		dev, remote := e.GetDeviceId(), e.GetRemote()
 		if dev == "" {
@@ -102,8 +99,7 @@ func writeAuditTable(w io.Writer, es []*pb.AuditEntry) error {
 		if remote == "" {
 			remote = "-"
 		}
-		detail := strings.ReplaceAll(e.GetDetail(), "\n", " ")
-		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\n", fmtMS(e.GetTimeUnixMs()), e.GetActor(), e.GetAction(), dev, remote, detail)
+		t.row(fmtMS(e.GetTimeUnixMs()), e.GetActor(), e.GetAction(), dev, remote, e.GetDetail())
 	}
-	return tw.Flush()
+	return t.flush()
 }

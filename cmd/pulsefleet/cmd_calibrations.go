@@ -3,9 +3,9 @@ package main
 import (
 	"context"
 	"fmt"
+	"io"
 	"os"
 	"sort"
-	"text/tabwriter"
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/calibration"
@@ -80,25 +80,9 @@ func runCalibrations(ctx context.Context, args []string, s stdio) error {
 		if err != nil {
 			return err
 		}
-		tw := tabwriter.NewWriter(s.out, 0, 0, 2, ' ', 0)
-		fmt.Fprintln(tw, "CALIBRATION\tSTORED\tBY\tCURVE")
-		for _, c := range resp.GetCalibrations() {
-			eq := "?"
-			if cv, err := calibration.Parse([]byte(c.GetCurveYaml())); err == nil {
-				eq = cv.Equation()
-			}
-			fmt.Fprintf(tw, "%s@v%d\t%s\t%s\t%s\n", c.GetName(), c.GetVersion(), time.UnixMilli(c.GetCreatedUnixMs()).UTC().Format(time.RFC3339), c.GetCreatedBy(), eq)
+		if err := writeCalibrationsTable(s.out, resp); err != nil {
+			return err
 		}
-		tw.Flush()
-		as := resp.GetAssignments()
-		sort.Slice(as, func(i, j int) bool { return as[i].GetTarget() < as[j].GetTarget() })
-		fmt.Fprintln(s.out)
-		tw = tabwriter.NewWriter(s.out, 0, 0, 2, ' ', 0)
-		fmt.Fprintln(tw, "ASSIGNED TO\tCALIBRATION")
-		for _, a := range as {
-			fmt.Fprintf(tw, "%s\t%s\n", a.GetTarget(), a.GetCalibration())
-		}
-		tw.Flush()
 	case "assign":
 		if (*model == "") == (*device == "") {
 			return usagef("--model, --device: give exactly one")
@@ -116,4 +100,27 @@ func runCalibrations(ctx context.Context, args []string, s stdio) error {
 		return usagef("unknown subcommand %q, want put, list or assign", sub)
 	}
 	return nil
+}
+
+// writeCalibrationsTable prints the stored calibrations and the assignments.
+func writeCalibrationsTable(w io.Writer, resp *pb.ListCalibrationsResponse) error {
+	tw := newTable(w, 0, "CALIBRATION", "STORED", "BY", "CURVE")
+	for _, c := range resp.GetCalibrations() {
+		eq := "?"
+		if cv, err := calibration.Parse([]byte(c.GetCurveYaml())); err == nil {
+			eq = cv.Equation()
+		}
+		tw.row(fmt.Sprintf("%s@v%d", c.GetName(), c.GetVersion()), time.UnixMilli(c.GetCreatedUnixMs()).UTC().Format(time.RFC3339), c.GetCreatedBy(), eq)
+	}
+	if err := tw.flush(); err != nil {
+		return err
+	}
+	as := resp.GetAssignments()
+	sort.Slice(as, func(i, j int) bool { return as[i].GetTarget() < as[j].GetTarget() })
+	fmt.Fprintln(w)
+	tw = newTable(w, 0, "ASSIGNED TO", "CALIBRATION")
+	for _, a := range as {
+		tw.row(a.GetTarget(), a.GetCalibration())
+	}
+	return tw.flush()
 }

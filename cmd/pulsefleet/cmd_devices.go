@@ -6,7 +6,6 @@ import (
 	"io"
 	"sort"
 	"strings"
-	"text/tabwriter"
 	"time"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
@@ -85,8 +84,7 @@ func fmtOpt(v *float64, prec int) string {
 }
 
 func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time) error {
-	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, "DEVICE\tSTATE\tMODE\tLAST SEEN\tSpO2 %\tPULSE /min\tPI %\tSQI\tALARM\tCONDITIONS\tLABELS")
+	t := newTable(w, 0, "DEVICE", "STATE", "MODE", "LAST SEEN", "SpO2 %", "PULSE /min", "PI %", "SQI", "ALARM", "CONDITIONS", "LABELS")
 	for _, d := range devs {
 		state := "offline"
 		if d.GetConnected() {
@@ -110,9 +108,9 @@ func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time) error {
 		}
 		sort.Strings(labels)
 		mode := strings.TrimPrefix(strings.ToLower(d.GetMode().String()), "mode_")
-		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\n", d.GetDeviceId(), state, mode, seen,
+		t.row(d.GetDeviceId(), state, mode, seen,
 			fmtOpt(l.Spo2Pct, 1), fmtOpt(l.PulseBpm, 0), fmtOpt(l.PiPct, 2), fmtOpt(l.Sqi, 2), alarm,
 			strings.Join(d.GetActiveConditions(), ","), strings.Join(labels, " "))
 	}
-	return tw.Flush()
+	return t.flush()
 }

@@ -7,8 +7,10 @@ import (
 	"io"
 	"sort"
 	"strconv"
+	"strings"
 	"text/tabwriter"
 	"time"
+	"unicode/utf8"
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
@@ -182,11 +184,13 @@ func writeQualityTable(w io.Writer, qs []*pb.DeviceQuality) error {
 	// Numbers align right; device ids are padded so they read left-aligned.
 	width := len("DEVICE")
 	for _, q := range qs {
-		width = max(width, len(q.GetDeviceId()))
+		width = max(width, utf8.RuneCountInString(safeCell(q.GetDeviceId())))
 	}
-	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintf(tw, "%-*s\t", width, "DEVICE")
-	fmt.Fprintln(tw, "SESSIONS\tRECONN\tUP 1h %\tUP 24h %\tUP 7d %\tACCEPTED\tLOST\tDUP\tLATE\tREJECTED\tDRIFT ppm\tRATE Hz\tVALID SpO2 %\tSQI p10/p50/p90\tPI % p10/p50/p90\tCLIP %\tLOWRES %\tBATTERY %\t")
+	pad := func(s string) string { // the row escapes it; pad for the escaped width
+		return s + strings.Repeat(" ", max(0, width-utf8.RuneCountInString(safeCell(s))))
+	}
+	tw := newTable(w, tabwriter.AlignRight)
+	tw.rowTerminated(pad("DEVICE"), "SESSIONS", "RECONN", "UP 1h %", "UP 24h %", "UP 7d %", "ACCEPTED", "LOST", "DUP", "LATE", "REJECTED", "DRIFT ppm", "RATE Hz", "VALID SpO2 %", "SQI p10/p50/p90", "PI % p10/p50/p90", "CLIP %", "LOWRES %", "BATTERY %")
 	for _, q := range qs {
 		sqi, pi := distCells(q.GetSqi(), 2), distCells(q.GetPiPct(), 2)
 		dist := func(c []string) string {
@@ -195,11 +199,11 @@ func writeQualityTable(w io.Writer, qs []*pb.DeviceQuality) error {
 			}
 			return c[0] + "/" + c[1] + "/" + c[2]
 		}
-		fmt.Fprintf(tw, "%-*s\t%d\t%d\t%s\t%s\t%s\t%d\t%d\t%d\t%d\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t\n",
-			width, q.GetDeviceId(), q.GetSessions(), q.GetReconnects(), pctCell(q.GetUptime_1H()), pctCell(q.GetUptime_24H()), pctCell(q.GetUptime_7D()),
-			q.GetChunksAccepted(), q.GetChunksLost(), q.GetDuplicates(), q.GetLateChunks(), q.GetChunksRejected(),
+		u := func(v uint64) string { return strconv.FormatUint(v, 10) }
+		tw.rowTerminated(pad(q.GetDeviceId()), u(q.GetSessions()), u(q.GetReconnects()), pctCell(q.GetUptime_1H()), pctCell(q.GetUptime_24H()), pctCell(q.GetUptime_7D()),
+			u(q.GetChunksAccepted()), u(q.GetChunksLost()), u(q.GetDuplicates()), u(q.GetLateChunks()), u(q.GetChunksRejected()),
 			orDash(estCell(q.ClockDriftPpm, 1)), orDash(estCell(q.EffectiveSampleRateHz, 2)), pctCell(q.GetValidSpo2Share()),
 			dist(sqi), dist(pi), pctCell(q.GetClippingShare()), pctCell(q.GetLowResolutionShare()), orDash(batteryCell(q.GetBatteryPct())))
 	}
-	return tw.Flush()
+	return tw.flush()
 }

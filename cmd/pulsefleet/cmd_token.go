@@ -9,7 +9,6 @@ import (
 	"os"
 	"os/user"
 	"strings"
-	"text/tabwriter"
 	"time"
 
 	"google.golang.org/grpc"
@@ -285,11 +284,10 @@ func fmtMS(ms int64) string {
 }
 
 func writeTokensTable(w io.Writer, ts []*pb.Token) error {
-	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-	fmt.Fprintln(tw, "ID\tKIND\tSUBJECT\tROLE\tCREATED\tREVOKED\tISSUED BY")
+	tb := newTable(w, 0, "ID", "KIND", "SUBJECT", "ROLE", "CREATED", "REVOKED", "ISSUED BY")
 	for _, t := range ts {
-		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%s\n", t.GetTokenId(), t.GetKind(), t.GetSubject(), roleName(t.GetRole()),
+		tb.row(t.GetTokenId(), t.GetKind(), t.GetSubject(), roleName(t.GetRole()),
 			fmtMS(t.GetCreatedUnixMs()), fmtMS(t.GetRevokedUnixMs()), t.GetIssuedBy())
 	}
-	return tw.Flush()
+	return tb.flush()
 }

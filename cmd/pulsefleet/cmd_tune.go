@@ -247,7 +247,7 @@ func tuneWrite(o tuneOptions, f tune.Filter, res *tune.Result, source string, ar
 			break
 		}
 		r := res.Rows[i]
-		fmt.Fprintf(s.out, "  %-28s %6.2f alarms/device-day  sensitivity %s  ppv %s  (%s)\n", res.Points[i].Name,
+		fmt.Fprintf(s.out, "  %-28s %6.2f alarms/device-day  sensitivity %s  ppv %s  (%s)\n", safeCell(res.Points[i].Name),
 			r.PerDeviceDay, tunePct(r.Sensitivity), tunePct(r.PPV), tuneDescribeValues(res, i))
 	}
 	if res.Estimated != nil {
