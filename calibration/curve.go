@@ -3,6 +3,7 @@ package calibration
 import (
 	"errors"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
 	"os"
 
@@ -111,10 +112,15 @@ func Load(path string) (*Curve, error) {
 	return c, nil
 }
 
-// Marshal encodes the curve in the file format.
+// Marshal encodes the curve in the file format, after the caution as a YAML
+// comment line (docs/contracts.md, "The caution on every output").
 func (c *Curve) Marshal() ([]byte, error) {
 	if err := c.Validate(); err != nil {
 		return nil, fmt.Errorf("calibration: %w", err)
 	}
-	return yaml.Marshal(c)
+	b, err := yaml.Marshal(c)
+	if err != nil {
+		return nil, err
+	}
+	return append([]byte(caution.Comment), b...), nil
 }

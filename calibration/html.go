@@ -3,6 +3,7 @@ package calibration
 import (
 	"bytes"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"html/template"
 	"io"
 )
@@ -24,7 +25,8 @@ func (r *Result) WriteHTML(w io.Writer) error {
 		Warnings          []string
 		Curve, BA, BALOSO template.HTML
 		CurveYAML         string
-	}{R: r, Warnings: r.Warnings()}
+		Caution           string
+	}{R: r, Warnings: r.Warnings(), Caution: caution.Text}
 	if data.Curve, err = svg(r.WriteCurveSVG); err != nil {
 		return err
 	}
@@ -58,11 +60,13 @@ td:first-child,th:first-child{text-align:left}
 .warn{background:#fff4e0;border-left:4px solid #E69F00;padding:.3em 1em}
 pre{background:#f6f6f6;padding:.5em}
 .note{color:#555;font-size:90%}
+.caution{border:2px solid #a33;background:#fff6f5;padding:.4em 1em}
 </style></head><body>
 <h1>Calibration {{.R.Curve.CurveName}}</h1>
 <p>Model <b>{{.R.Curve.Model}}</b>: {{.R.Curve.Equation}}, valid for R in [{{printf "%.4g" .R.Curve.RatioMin}}, {{printf "%.4g" .R.Curve.RatioMax}}]{{with .R.Curve.DeviceModel}}; device model {{.}}{{end}}.
 {{.R.Fit.N}} pairs from {{.R.Fit.Subjects}} subjects; reference {{printf "%.1f" .R.Fit.RefMinPct}}-{{printf "%.1f" .R.Fit.RefMaxPct}} %.</p>
-<p class="note">Research and engineering tool, not a certified medical device. d = predicted - reference;
+<p class="caution"><b>Caution.</b> {{.Caution}}</p>
+<p class="note">d = predicted - reference;
 bias = mean(d); SD = population standard deviation of d; Arms = sqrt(mean(d<sup>2</sup>)) = sqrt(bias<sup>2</sup> + SD<sup>2</sup>)
 (ISO 80601-2-61); limits of agreement = bias &#8723; 1.96 SD (Bland &amp; Altman 1986).</p>
 {{if .Warnings}}<div class="warn"><p><b>Warnings</b></p><ul>{{range .Warnings}}<li>{{.}}</li>{{end}}</ul></div>{{end}}

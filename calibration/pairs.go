@@ -4,6 +4,7 @@ import (
 	"encoding/csv"
 	"errors"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"strconv"
@@ -122,6 +123,9 @@ func WritePairs(w io.Writer, pairs []Pair) error {
 			withSubject = true
 			break
 		}
+	}
+	if err := caution.WriteComment(w); err != nil {
+		return fmt.Errorf("write pairs: %w", err)
 	}
 	cw := csv.NewWriter(w)
 	header := []string{"ratio", "reference_pct"}

@@ -3,6 +3,7 @@ package calibration
 import (
 	"encoding/json"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"strings"
@@ -44,6 +45,7 @@ func (r *Result) WriteText(w io.Writer) error {
 			fmt.Fprintf(&b, "  - %s\n", x)
 		}
 	}
+	fmt.Fprintf(&b, "\n%s\n", caution.Line)
 	_, err := io.WriteString(w, b.String())
 	return err
 }
@@ -75,6 +77,8 @@ func (r *Result) WriteJSON(w io.Writer) error {
 		"curve":    r.Curve,
 		"fit":      statsJSON(r.Fit),
 		"warnings": nonNil(r.Warnings()),
+
+		caution.JSONKey: caution.Text,
 	}
 	if r.LOSO != nil {
 		var subs []map[string]any

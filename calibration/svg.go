@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"encoding/xml"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 )
@@ -84,7 +85,8 @@ func (c *chart) write(w io.Writer) error {
 	px := func(x float64) float64 { return padLeft + (x-x0)/(x1-x0)*pw }
 	py := func(y float64) float64 { return padTop + (y1-y)/(y1-y0)*ph }
 	var b bytes.Buffer
-	fmt.Fprintf(&b, `<svg xmlns="http://www.w3.org/2000/svg" width="%d" height="%d" viewBox="0 0 %d %d" font-family="sans-serif" font-size="12">`+"\n", svgW, svgH, svgW, svgH)
+	h := svgH + caution.SVGNoteHeight
+	fmt.Fprintf(&b, `<svg xmlns="http://www.w3.org/2000/svg" width="%d" height="%d" viewBox="0 0 %d %d" font-family="sans-serif" font-size="12">`+"\n", svgW, h, svgW, h)
 	fmt.Fprintf(&b, `<title>%s</title>`+"\n", xmlEscape(c.title))
 	fmt.Fprintf(&b, `<rect width="100%%" height="100%%" fill="#fff"/>`+"\n")
 	fmt.Fprintf(&b, `<text x="%d" y="20" font-size="15" font-weight="bold">%s</text>`+"\n", padLeft, xmlEscape(c.title))
@@ -146,6 +148,7 @@ func (c *chart) write(w io.Writer) error {
 		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f">%s</text>`+"\n", padLeft+pw+12, ly, xmlEscape(n))
 		ly += 16
 	}
+	b.WriteString(caution.SVGNote(padLeft, svgH+6) + "\n")
 	b.WriteString("</svg>\n")
 	_, err := w.Write(b.Bytes())
 	return err

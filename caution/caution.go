@@ -4,6 +4,7 @@ import (
 	"html"
 	"io"
 	"strconv"
+	"strings"
 )
 
 // Text is the caution, one sentence pair, plain ASCII, no line breaks.
@@ -30,11 +31,19 @@ func WriteComment(w io.Writer) error {
 // HTML is Text escaped for HTML text and attribute values.
 func HTML() string { return html.EscapeString(Text) }
 
-// SVGNote is Text as an SVG text element at (x, y) in user units, small
-// and grey, so a chart saved on its own still carries it.
+// SVGNoteHeight is the height in user units that SVGNote needs below its y.
+const SVGNoteHeight = 26
+
+// SVGNote is Text as an SVG text element of two lines (one per sentence,
+// each under 700 units wide at its 10-unit font) starting at baseline (x, y),
+// small and grey, so a chart saved on its own still carries it. Give the
+// drawing SVGNoteHeight more units of height for it.
 func SVGNote(x, y float64) string {
-	return `<text class="caution" x="` + ftoa(x) + `" y="` + ftoa(y) +
-		`" font-family="sans-serif" font-size="10" fill="#555">` + html.EscapeString(Text) + `</text>`
+	first, second, _ := strings.Cut(Text, ". ")
+	xs := ftoa(x)
+	return `<text class="caution" x="` + xs + `" y="` + ftoa(y) + `" font-family="sans-serif" font-size="10" fill="#555">` +
+		`<tspan x="` + xs + `">` + html.EscapeString(first) + `.</tspan>` +
+		`<tspan x="` + xs + `" dy="12">` + html.EscapeString(second) + `</tspan></text>`
 }
 
 func ftoa(f float64) string { return strconv.FormatFloat(f, 'f', -1, 64) }

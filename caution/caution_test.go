@@ -39,19 +39,24 @@ func TestCommentIsSkippedByReaders(t *testing.T) {
 	}
 }
 
-// The SVG note is well-formed XML carrying the text.
-func TestSVGNote(t *testing.T) {
+// The SVG note is well-formed XML carrying the whole text, and the caution
+// needs no HTML escaping (so it can sit in a const HTML page as it is).
+func TestSVGNoteAndHTML(t *testing.T) {
 	var el struct {
 		XMLName xml.Name
-		Body    string `xml:",chardata"`
+		Spans   []string `xml:"tspan"`
 	}
-	if err := xml.Unmarshal([]byte(SVGNote(10, 20.5)), &el); err != nil {
+	note := SVGNote(10, 20.5)
+	if err := xml.Unmarshal([]byte(note), &el); err != nil {
 		t.Fatal(err)
 	}
-	if el.XMLName.Local != "text" || el.Body != Text {
-		t.Errorf("SVGNote = <%s>%s", el.XMLName.Local, el.Body)
+	if el.XMLName.Local != "text" || strings.Join(el.Spans, " ") != Text {
+		t.Errorf("SVGNote = <%s> %q, want the text", el.XMLName.Local, el.Spans)
 	}
-	if !strings.Contains(SVGNote(10, 20.5), `y="20.5"`) {
-		t.Errorf("SVGNote position: %s", SVGNote(10, 20.5))
+	if !strings.Contains(note, `y="20.5"`) || !strings.Contains(note, `class="caution"`) {
+		t.Errorf("SVGNote: %s", note)
+	}
+	if HTML() != Text {
+		t.Errorf("the caution needs HTML escaping: %q", HTML())
 	}
 }

@@ -10,6 +10,7 @@ import (
 	"encoding/hex"
 	"errors"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"net"
 	"net/http"
 	"runtime/debug"
@@ -833,7 +834,7 @@ const loginPage = `<!doctype html>
 <meta name="viewport" content="width=device-width, initial-scale=1"></head>
 <body><main>
 <h1>pulsefleet</h1>
-<p>Research and engineering tool, not a certified medical alarm.</p>
+<p>` + caution.Text + `</p>
 <form method="post" action="/login">
 <label for="token">Operator token</label>
 <input id="token" name="token" type="password" autocomplete="current-password" required>

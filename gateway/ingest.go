@@ -3,6 +3,7 @@ package gateway
 import (
 	"context"
 	"errors"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"runtime/debug"
@@ -334,7 +335,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	s.id = d.id + "-" + strconv.FormatInt(nowMS, 36)
 	s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Welcome{Welcome: &pb.Welcome{
 		ResumeAfterSequence: resume, GatewayTimeUnixMs: nowMS, SessionId: s.id, Calibration: s.calRef,
-		Notice: "pulsefleet is a research and engineering tool, not a certified medical alarm.",
+		Notice: caution.Text,
 	}}})
 	if g.opt.CaptureRaw && s.mode == pb.Mode_MODE_RAW {
 		s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Config{Config: &pb.ConfigPush{RawCapture: true}}})

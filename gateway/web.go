@@ -5,6 +5,7 @@ import (
 	"embed"
 	"encoding/json"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"io/fs"
 	"math"
@@ -42,8 +43,7 @@ import (
 var webAssets embed.FS
 
 // webCaution is shown at the top of every page.
-const webCaution = "pulsefleet is a research and engineering tool, NOT a certified medical alarm or medical device. " +
-	"Do not rely on it for patient care; follow local regulations, your ethics approval and licensed clinical practice."
+const webCaution = caution.Text
 
 // Bounds of the page's queries.
 const (

@@ -53,6 +53,7 @@ func ReadRaw(r io.Reader, redCol, irCol string) (Raw, error) {
 	cr := csv.NewReader(r)
 	cr.FieldsPerRecord = -1
 	cr.ReuseRecord = true
+	cr.Comment = '#' // the caution line pulsefleet writes atop its CSV files
 	header, err := cr.Read()
 	if err != nil {
 		return Raw{}, fmt.Errorf("raw: header: %w", noEOF(err))
@@ -97,6 +98,7 @@ func ReadRaw(r io.Reader, redCol, irCol string) (Raw, error) {
 func ReadReference(r io.Reader, subject string) ([]calibration.ReferenceSecond, error) {
 	cr := csv.NewReader(r)
 	cr.FieldsPerRecord = -1
+	cr.Comment = '#' // the caution line pulsefleet writes atop its CSV files
 	header, err := cr.Read()
 	if err != nil {
 		return nil, fmt.Errorf("reference: header: %w", noEOF(err))

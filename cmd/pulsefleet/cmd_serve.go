@@ -6,6 +6,7 @@ import (
 	"errors"
 	"flag"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"log/slog"
 	"net"
@@ -24,9 +25,8 @@ import (
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
-// notCertified is printed at start-up and shown on the web page.
-const notCertified = "CAUTION: pulsefleet is a research and engineering tool, NOT a certified medical alarm or medical device.\n" +
-	"Do not rely on it for patient care. Follow local regulations, your ethics approval and licensed clinical practice."
+// notCertified is printed at start-up (the web page shows the same text).
+const notCertified = caution.Line
 
 // serveConfig is everything `serve` needs; the YAML keys of --config are the
 // flag names with '-' written as '_'.

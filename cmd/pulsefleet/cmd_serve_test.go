@@ -7,6 +7,8 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"github.com/pulsefleet/pulsefleet/caution"
 )
 
 // A config file's unknown key or bad value is an error that names it, and
@@ -52,5 +54,26 @@ func TestServeConfigErrorsNameTheKey(t *testing.T) {
 	// Every file value was overridden; what remains wrong is --peers without a matching --self.
 	if code != 2 || !strings.Contains(errb.String(), "self:") {
 		t.Errorf("override: exit %d, stderr %q", code, errb.String())
+	}
+}
+
+// serve says it is not a certified medical alarm before anything else, in
+// the project's one caution text (docs/contracts.md, "The caution on every
+// output"). The context is already cancelled: the gateway starts and stops.
+func TestServeStartsWithTheCaution(t *testing.T) {
+	done, cancel := context.WithCancel(context.Background())
+	cancel()
+	var out, errb bytes.Buffer
+	code := run(done, []string{"serve", "--data", t.TempDir(), "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0"},
+		stdio{in: strings.NewReader(""), out: &out, err: &errb})
+	if code != 0 {
+		t.Fatalf("serve exit %d: %s", code, errb.String())
+	}
+	first, _, _ := strings.Cut(errb.String(), "\n")
+	if first != caution.Line {
+		t.Errorf("serve's first line of standard error is %q, want the caution %q", first, caution.Line)
+	}
+	if !strings.Contains(caution.Line, "NOT a certified medical alarm") {
+		t.Errorf("caution.Line = %q", caution.Line)
 	}
 }
