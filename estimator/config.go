@@ -41,6 +41,9 @@ type Config struct {
 	// AveragingS is the window, in seconds, over which beats are combined
 	// into each estimate; 0 = DefaultAveragingS (8 s), else 2..30.
 	AveragingS float64
+	// Ratio chooses how each beat's red/infrared slope is measured;
+	// "" = RatioBeatSlope.
+	Ratio RatioMethod
 }
 
 // Validate checks every field and names the first one out of bounds.
@@ -54,5 +57,31 @@ func (c Config) Validate() error {
 	if c.AveragingS != 0 && (math.IsNaN(c.AveragingS) || c.AveragingS < MinAveragingS || c.AveragingS > MaxAveragingS) {
 		return fmt.Errorf("AveragingS: %v s, want 0 (default %v s) or %v..%v s", c.AveragingS, DefaultAveragingS, MinAveragingS, MaxAveragingS)
 	}
+	if c.Ratio != "" && c.Ratio != RatioBeatSlope && c.Ratio != RatioDerivativeSlope {
+		return fmt.Errorf("Ratio: %q, want \"\" (default %s), %s or %s", c.Ratio, RatioBeatSlope, RatioBeatSlope, RatioDerivativeSlope)
+	}
 	return nil
 }
+
+// RatioMethod names how a beat's ratio of ratios is measured (doc.go, step 5).
+type RatioMethod string
+
+// Ratio methods. Both take the least-squares slope of the first channel on
+// the second over every sample of a beat (the ratio as a regression slope)
+// and scale it by DC_second / DC_first.
+const (
+	// RatioBeatSlope regresses the band-passed channels: every sample
+	// weighs by its distance from the beat's mean, so the slow systolic
+	// swing dominates. The default.
+	RatioBeatSlope RatioMethod = "slope"
+	// RatioDerivativeSlope regresses the first differences of the
+	// band-passed channels (a derivative-based ratio): the steep systolic
+	// upstroke dominates and slow components the two channels do not share
+	// (venous and respiratory residue, light drift inside the band) weigh
+	// less. It is noisier at low perfusion, since differencing raises
+	// wide-band noise relative to the pulse.
+	RatioDerivativeSlope RatioMethod = "derivative"
+)
+
+// RatioMethods lists the accepted methods.
+var RatioMethods = []RatioMethod{RatioBeatSlope, RatioDerivativeSlope}

@@ -29,6 +29,7 @@ type scenario struct {
 	cal       Calibration
 	respPct   float64 // respiratory wander, % of DC
 	noiseFrac float64 // 0 = model default
+	ratio     RatioMethod
 }
 
 // scored is one emitted second with the truth at its end.
@@ -47,7 +48,7 @@ func (sc scenario) run(t testing.TB) []scored {
 	if cal == nil {
 		cal = Empirical()
 	}
-	st, err := New(Config{SampleRateHz: sc.rate, ADCBits: sc.bits, Calibration: cal, AveragingS: sc.window})
+	st, err := New(Config{SampleRateHz: sc.rate, ADCBits: sc.bits, Calibration: cal, AveragingS: sc.window, Ratio: sc.ratio})
 	if err != nil {
 		t.Fatal(err)
 	}

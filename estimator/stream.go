@@ -56,6 +56,8 @@ type sums struct {
 	srr, sii, sri float64
 	dcr, dci      float64 // raw (ambient-subtracted) levels
 	clipped       float64
+	// first differences of the band-passed red and infrared (RatioDerivativeSlope)
+	dr, di, dri, dii float64
 }
 
 func (a *sums) sub(b *sums) {
@@ -68,12 +70,17 @@ func (a *sums) sub(b *sums) {
 	a.dcr -= b.dcr
 	a.dci -= b.dci
 	a.clipped -= b.clipped
+	a.dr -= b.dr
+	a.di -= b.di
+	a.dri -= b.dri
+	a.dii -= b.dii
 }
 
 type beat struct {
 	end            int64   // sample index of the foot that ended it
 	period         float64 // s
 	ratio, rho, pi float64
+	num, den       float64 // the ratio's regression sums, AC normalised by DC: ratio = num/den
 	acRed, acIR    float64 // codes
 	okRate         bool    // plausible and consistent: counts for pulse rate and PI
 	okRatio        bool    // also well correlated and unclipped: counts for R
@@ -103,9 +110,11 @@ type Stream struct {
 	winSamples, minPeriod, maxPeriod int64
 	envDecay, dcAlpha                float64
 
-	red, ir  bandPass
-	started  bool
-	dcR, dcI float64
+	red, ir        bandPass
+	derivative     bool    // Config.Ratio == RatioDerivativeSlope
+	lastFr, lastFi float64 // previous band-passed samples, for first differences
+	started        bool
+	dcR, dcI       float64
 
 	// beat detector on y = -(band-passed infrared): systolic peaks up
 	env               float64
@@ -147,6 +156,10 @@ func New(cfg Config) (*Stream, error) {
 	if cfg.AveragingS == 0 {
 		s.cfg.AveragingS = DefaultAveragingS
 	}
+	if cfg.Ratio == "" {
+		s.cfg.Ratio = RatioBeatSlope
+	}
+	s.derivative = s.cfg.Ratio == RatioDerivativeSlope
 	if cfg.ADCBits > 0 {
 		s.fs = math.Ldexp(1, cfg.ADCBits)
 	}
@@ -240,6 +253,7 @@ func (s *Stream) sample(r, i float64) {
 		s.started = true
 		s.red.settle(r)
 		s.ir.settle(i)
+		s.lastFr, s.lastFi = 0, 0 // the settled band-pass output
 		s.dcR, s.dcI = r, i
 		s.restartDetector()
 		s.beatN, s.histN, s.histHead = 0, 0, 0
@@ -271,6 +285,12 @@ func (s *Stream) sample(r, i float64) {
 	a.sri += fr * fi
 	a.dcr += r
 	a.dci += i
+	dr, di := fr-s.lastFr, fi-s.lastFi
+	a.dr += dr
+	a.di += di
+	a.dri += dr * di
+	a.dii += di * di
+	s.lastFr, s.lastFi = fr, fi
 	s.n++
 }
 
@@ -352,7 +372,11 @@ func (s *Stream) closeBeat(a *sums, samples int64, periodS float64) {
 	crr := a.srr - a.sr*a.sr/n
 	slope := cri / cii
 	b.rho = cri / math.Sqrt(crr*cii)
-	b.ratio = slope * dcI / dcR
+	b.num, b.den = cri/(dcR*dcI), cii/(dcI*dcI)
+	if s.derivative {
+		b.num, b.den = (a.dri-a.dr*a.di/n)/(dcR*dcI), (a.dii-a.di*a.di/n)/(dcI*dcI)
+	}
+	b.ratio = b.num / b.den
 	b.acIR = s.beatPeak - s.footY
 	b.acRed = math.Abs(slope) * b.acIR
 	b.pi = b.acIR / dcI * 100

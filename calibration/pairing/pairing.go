@@ -27,6 +27,9 @@ type Options struct {
 	// AveragingS is the estimator's averaging window in seconds; 0 = the
 	// estimator's default.
 	AveragingS float64
+	// Ratio is the estimator's ratio method; "" = its default (the
+	// regression slope of the band-passed channels over each beat).
+	Ratio estimator.RatioMethod
 	// Align chooses windows and stability checks; its Subject names the
 	// pairs.
 	Align calibration.AlignOptions
@@ -163,7 +166,7 @@ func ReadReference(r io.Reader, subject string) ([]calibration.ReferenceSecond, 
 // DeviceSeconds runs the estimator over a recording and returns its
 // per-second ratio and signal quality.
 func DeviceSeconds(raw Raw, o Options) ([]calibration.DeviceSecond, error) {
-	s, err := estimator.New(estimator.Config{SampleRateHz: o.RateHz, ADCBits: o.ADCBits, AveragingS: o.AveragingS})
+	s, err := estimator.New(estimator.Config{SampleRateHz: o.RateHz, ADCBits: o.ADCBits, AveragingS: o.AveragingS, Ratio: o.Ratio})
 	if err != nil {
 		return nil, fmt.Errorf("estimator: %w", err)
 	}

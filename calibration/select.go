@@ -1,0 +1,191 @@
+package calibration
+
+import (
+	"fmt"
+	"math"
+	"slices"
+)
+
+// Candidate is one way of turning the same recordings into pairs: a choice
+// of channels, ratio method, reference lag and so on that model selection
+// makes. Every candidate's pairs carry subjects.
+type Candidate struct {
+	Name  string
+	Pairs []Pair
+}
+
+// CandidateScore is a candidate's leave-one-subject-out score on some
+// subjects.
+type CandidateScore struct {
+	Name string
+	// Qualified is false when the candidate has no pairs from one of the
+	// subjects (its method failed on that person); it is then never chosen.
+	Qualified bool
+	// MAEPct is the pooled leave-one-subject-out MAE; NaN when not qualified.
+	MAEPct float64
+}
+
+// SelectCandidate scores every candidate by leave-one-subject-out over the
+// given subjects (only their pairs are used) and returns the index of the
+// one with the lowest pooled MAE among those that have pairs from every one
+// of the subjects; ties go to the earlier candidate. It returns -1 when none
+// qualifies.
+func SelectCandidate(cands []Candidate, subjects []string, model string) (int, []CandidateScore, error) {
+	if len(subjects) < 2 {
+		return -1, nil, fmt.Errorf("select: %d subjects, want >= 2 for leave-one-subject-out", len(subjects))
+	}
+	best, bestMAE := -1, math.Inf(1)
+	scores := make([]CandidateScore, len(cands))
+	for i, c := range cands {
+		scores[i] = CandidateScore{Name: c.Name, MAEPct: math.NaN()}
+		var pairs []Pair
+		have := map[string]bool{}
+		for _, p := range c.Pairs {
+			if slices.Contains(subjects, p.Subject) {
+				pairs = append(pairs, p)
+				have[p.Subject] = true
+			}
+		}
+		if len(have) < len(subjects) {
+			continue
+		}
+		l, err := LeaveOneSubjectOut(pairs, model)
+		if err != nil {
+			// Too few distinct ratios in some fold: the candidate cannot be
+			// fitted on these subjects, so it does not qualify.
+			continue
+		}
+		scores[i].Qualified, scores[i].MAEPct = true, l.Pooled.MAEPct
+		if l.Pooled.MAEPct < bestMAE {
+			best, bestMAE = i, l.Pooled.MAEPct
+		}
+	}
+	return best, scores, nil
+}
+
+// NestedFold is one outer fold of a nested leave-one-subject-out
+// evaluation.
+type NestedFold struct {
+	// Subject is held out; Chosen names the candidate selected by
+	// leave-one-subject-out on the other subjects alone, with InnerMAEPct
+	// its pooled MAE there.
+	Subject     string
+	Chosen      string
+	InnerMAEPct float64
+	// Coefficients of the curve fitted to the other subjects' pairs of the
+	// chosen candidate.
+	Coefficients []float64
+	// Fit and Baseline score the curve and the other subjects' mean
+	// reference on the held-out subject's pairs of the chosen candidate;
+	// N = 0 when the chosen candidate gave this subject no pairs (Withheld).
+	Fit, Baseline Stats
+	Withheld      bool
+}
+
+// Nested is a nested leave-one-subject-out evaluation of a choice among
+// candidates: in each outer fold the choice is made by an inner
+// leave-one-subject-out on the training subjects alone, so the held-out
+// subject never influences which candidate is scored on it.
+type Nested struct {
+	Model      string
+	Candidates []string
+	Folds      []NestedFold
+	// Pooled and Baseline pool the held-out predictions and the mean
+	// predictor over all folds.
+	Pooled, Baseline Stats
+}
+
+// NestedLeaveOneSubjectOut runs the nested evaluation. It needs at least
+// three subjects (two to choose by in each fold) across the candidates.
+func NestedLeaveOneSubjectOut(cands []Candidate, model string) (*Nested, error) {
+	if degree(model) == 0 {
+		return nil, fmt.Errorf("model: %q, want %s or %s", model, Linear, Quadratic)
+	}
+	if len(cands) == 0 {
+		return nil, fmt.Errorf("candidates: none")
+	}
+	var all []Pair
+	out := &Nested{Model: model}
+	for _, c := range cands {
+		for i, p := range c.Pairs {
+			if p.Subject == "" {
+				return nil, fmt.Errorf("candidate %q: pairs[%d]: subject: empty, nested leave-one-subject-out needs a subject on every pair", c.Name, i)
+			}
+			if err := p.validate(); err != nil {
+				return nil, fmt.Errorf("candidate %q: pairs[%d]: %w", c.Name, i, err)
+			}
+		}
+		all = append(all, c.Pairs...)
+		out.Candidates = append(out.Candidates, c.Name)
+	}
+	subs := subjects(all)
+	if len(subs) < 3 {
+		return nil, fmt.Errorf("pairs: %d subjects, nested leave-one-subject-out needs >= 3", len(subs))
+	}
+	var pred, base, ref []float64
+	var who []string
+	for _, held := range subs {
+		train := slices.DeleteFunc(slices.Clone(subs), func(s string) bool { return s == held })
+		best, scores, err := SelectCandidate(cands, train, model)
+		if err != nil {
+			return nil, fmt.Errorf("leave out subject %q: %w", held, err)
+		}
+		if best < 0 {
+			return nil, fmt.Errorf("leave out subject %q: no candidate has pairs from every other subject", held)
+		}
+		f := NestedFold{Subject: held, Chosen: cands[best].Name, InnerMAEPct: scores[best].MAEPct}
+		var tr []Pair
+		var p, b, r []float64
+		for _, q := range cands[best].Pairs {
+			if q.Subject != held {
+				tr = append(tr, q)
+			}
+		}
+		if f.Coefficients, err = FitCoefficients(tr, model); err != nil {
+			return nil, fmt.Errorf("leave out subject %q: %w", held, err)
+		}
+		mean := 0.0
+		for _, q := range tr {
+			mean += q.ReferencePct
+		}
+		mean /= float64(len(tr))
+		for _, q := range cands[best].Pairs {
+			if q.Subject == held {
+				p = append(p, math.Min(100, math.Max(0, polyval(f.Coefficients, q.Ratio))))
+				b = append(b, mean)
+				r = append(r, q.ReferencePct)
+			}
+		}
+		if len(r) == 0 {
+			f.Withheld = true
+		} else {
+			if f.Fit, err = Score(p, r, nil); err != nil {
+				return nil, err
+			}
+			if f.Baseline, err = Score(b, r, nil); err != nil {
+				return nil, err
+			}
+			f.Fit.Subjects, f.Baseline.Subjects = 1, 1
+			pred, base, ref = append(pred, p...), append(base, b...), append(ref, r...)
+			for range r {
+				who = append(who, held)
+			}
+		}
+		out.Folds = append(out.Folds, f)
+	}
+	if len(ref) == 0 {
+		return nil, fmt.Errorf("nested: no held-out subject had pairs under its chosen candidate")
+	}
+	var err error
+	if out.Pooled, err = Score(pred, ref, who); err != nil {
+		return nil, err
+	}
+	if out.Baseline, err = Score(base, ref, who); err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+// Improvement is the pooled MAE's reduction relative to the mean
+// predictor, as a fraction (0.15 = 15 % lower).
+func (n *Nested) Improvement() float64 { return 1 - n.Pooled.MAEPct/n.Baseline.MAEPct }
