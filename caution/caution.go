@@ -7,9 +7,11 @@ import (
 	"strings"
 )
 
-// Text is the caution, one sentence pair, plain ASCII, no line breaks.
-const Text = "pulsefleet is a research and engineering tool, NOT a certified medical alarm or medical device. " +
-	"Do not rely on it for patient care; follow local regulations, your ethics approval and licensed clinical practice."
+// Text is the caution: two sentences, plain ASCII, no line breaks.
+// It has no comma, so a CSV tool that does not skip '#' lines still sees
+// the comment line as one cell.
+const Text = "pulsefleet is a research and engineering tool and NOT a certified medical alarm or medical device. " +
+	"Do not rely on it for patient care; work within local regulations and your ethics approval and under licensed clinical practice."
 
 // Line is Text as printed on a terminal (serve and demo start-up).
 const Line = "CAUTION: " + Text

@@ -3,6 +3,7 @@ package export
 import (
 	"bufio"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"strconv"
@@ -12,8 +13,10 @@ import (
 )
 
 // CSVHeader is the CSV export's header: the replay/tune trend columns
-// (docs/contracts.md) first, then ratio of ratios, estimator flags and the
-// source of the values (gateway estimate or device summary).
+// (docs/contracts.md, "CSV formats") first, then ratio of ratios, estimator
+// flags and the source of the values (gateway estimate or device summary).
+// It follows the caution comment line (caution.Comment), which every
+// pulsefleet CSV reader skips.
 const CSVHeader = "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source"
 
 // CSVWriter writes trend points as CSV, one row per point, with an empty cell
@@ -36,7 +39,7 @@ func (c *CSVWriter) Begin([]store.Device) error {
 	if c.closed {
 		return errClosed
 	}
-	if _, err := c.w.WriteString(CSVHeader + "\n"); err != nil {
+	if _, err := c.w.WriteString(caution.Comment + CSVHeader + "\n"); err != nil {
 		return fmt.Errorf("csv: %w", err)
 	}
 	return nil

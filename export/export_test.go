@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
 	"os"
 	"path/filepath"
@@ -102,7 +103,7 @@ func exportString(t testing.TB, db *store.DB, w Writer, buf *bytes.Buffer, opt O
 	return buf.String(), st
 }
 
-// The CSV starts with the replay/tune trend columns (docs/contracts.md), so
+// The CSV's header starts with the replay/tune trend columns (docs/contracts.md), so
 // alarms.ReadTrendCSV (what replay and tune read) takes the export as is and
 // gets back the stored values, with missing values still missing.
 func TestCSVExportReplaysDirectly(t *testing.T) {
@@ -110,8 +111,14 @@ func TestCSVExportReplaysDirectly(t *testing.T) {
 	db := openRO(t, fx.dir)
 	var buf bytes.Buffer
 	out, st := exportString(t, db, NewCSVWriter(&buf), &buf, Options{})
-	if first, _, _ := strings.Cut(out, "\n"); !strings.HasPrefix(first, "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi") {
-		t.Fatalf("header %q does not start with the trend columns", first)
+	// The caution comes first as a '#' line (docs/contracts.md, "The caution
+	// on every output"); replay's reader skips it.
+	first, rest, _ := strings.Cut(out, "\n")
+	if first+"\n" != caution.Comment {
+		t.Errorf("first line %q, want the caution comment", first)
+	}
+	if header, _, _ := strings.Cut(rest, "\n"); !strings.HasPrefix(header, "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi") {
+		t.Fatalf("header %q does not start with the trend columns", header)
 	}
 	if st.Points != 155 || st.Devices != 3 {
 		t.Errorf("stats %+v, want 155 points of 3 devices", st)
@@ -164,7 +171,7 @@ func TestSelectionByDeviceAndRange(t *testing.T) {
 	if st.Points != 60 || st.Devices != 2 {
 		t.Errorf("stats %+v, want 60 points of 2 devices", st)
 	}
-	lines := strings.Split(strings.TrimSpace(out), "\n")
+	lines := strings.Split(strings.TrimSpace(strings.TrimPrefix(out, caution.Comment)), "\n")
 	if len(lines) != 61 || !strings.HasPrefix(lines[1], strconv.FormatInt((start+30_000)/1000, 10)+",") ||
 		!strings.HasPrefix(lines[60], strconv.FormatInt((start+89_000)/1000, 10)+",") {
 		t.Errorf("range [from, to) not respected: %d lines, first %q, last %q", len(lines), lines[1], lines[len(lines)-1])
@@ -411,7 +418,7 @@ func TestEmptyExportsAreValidDocuments(t *testing.T) {
 	c := NewCSVWriter(&buf)
 	c.Begin(nil)
 	c.Close()
-	if buf.String() != CSVHeader+"\n" {
+	if buf.String() != caution.Comment+CSVHeader+"\n" {
 		t.Errorf("empty csv %q", buf.String())
 	}
 }
@@ -472,3 +479,51 @@ func TestProgressIsReported(t *testing.T) {
 type countingWriter struct{ n int64 }
 
 func (c *countingWriter) Write(p []byte) (int, error) { c.n += int64(len(p)); return len(p), nil }
+
+// Every Device of the FHIR export carries the caution as an annotation, and
+// every Observation points at such a Device in the same Bundle (the Bundle
+// itself has no element for free text; docs/contracts.md, "The caution on
+// every output"). No schema needed: this runs everywhere.
+func TestFHIRExportCarriesTheCaution(t *testing.T) {
+	fx := writeStore(t)
+	db := openRO(t, fx.dir)
+	var buf bytes.Buffer
+	out, st := exportString(t, db, NewFHIRWriter(&buf, FHIROptions{Timestamp: time.Date(2026, 12, 1, 8, 0, 0, 0, time.UTC)}), &buf, Options{})
+	var b struct {
+		Entry []struct {
+			Resource struct {
+				ResourceType string `json:"resourceType"`
+				ID           string `json:"id"`
+				Note         []struct {
+					Text string `json:"text"`
+				} `json:"note"`
+				Device struct {
+					Reference string `json:"reference"`
+				} `json:"device"`
+			} `json:"resource"`
+		} `json:"entry"`
+	}
+	if err := json.Unmarshal([]byte(out), &b); err != nil {
+		t.Fatal(err)
+	}
+	cautioned := map[string]bool{}
+	obs := 0
+	for i, e := range b.Entry {
+		r := e.Resource
+		switch r.ResourceType {
+		case "Device":
+			if len(r.Note) == 0 || !strings.Contains(r.Note[0].Text, caution.Text) {
+				t.Errorf("Device entry %d has no caution note: %+v", i, r.Note)
+			}
+			cautioned["Device/"+r.ID] = true
+		case "Observation":
+			obs++
+			if !cautioned[r.Device.Reference] {
+				t.Fatalf("Observation entry %d points at %q, which carries no caution", i, r.Device.Reference)
+			}
+		}
+	}
+	if len(cautioned) != 3 || int64(obs) < st.Points {
+		t.Errorf("%d cautioned devices, %d Observations for %d points; want 3 devices", len(cautioned), obs, st.Points)
+	}
+}

@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"encoding/json"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"hash/fnv"
 	"io"
 	"math"
@@ -307,7 +308,7 @@ func deviceResource(d store.Device) fhirDevice {
 		ResourceType: "Device",
 		ID:           FHIRID(d.ID),
 		Identifier:   []fhirIdentifier{{Value: d.ID}},
-		Note:         []fhirNote{{Text: "Prototype pulse oximeter in a pilot; values are not from a certified medical device."}},
+		Note:         []fhirNote{{Text: "Prototype pulse oximeter in a pilot. " + caution.Text}},
 	}
 	if m := strings.TrimSpace(d.Model); m != "" {
 		r.DeviceName = []fhirDeviceName{{Name: m, Type: "model-name"}}

@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
 	"os"
 	"path/filepath"
@@ -70,7 +71,12 @@ func TestCalibrateWritesCurveReportAndStats(t *testing.T) {
 	if curve.Name != "proto-b-pairs" || curve.DeviceModel != "proto-b" || curve.Version != 1 {
 		t.Errorf("name %q device model %q version %d, want proto-b-pairs, proto-b, 1", curve.Name, curve.DeviceModel, curve.Version)
 	}
-	for _, want := range []string{"Arms %", "leave-one-subject-out", "bench-3", "mean predictor", "calibration file: " + out} {
+	// The curve file and the stats carry the caution (docs/contracts.md,
+	// "The caution on every output").
+	if file, err := os.ReadFile(out); err != nil || !strings.HasPrefix(string(file), caution.Comment) {
+		t.Errorf("curve file does not start with the caution line (%v):\n%s", err, file)
+	}
+	for _, want := range []string{"Arms %", "leave-one-subject-out", "bench-3", "mean predictor", "calibration file: " + out, caution.Line} {
 		if !strings.Contains(stdout, want) {
 			t.Errorf("stdout lacks %q:\n%s", want, stdout)
 		}
@@ -144,12 +150,13 @@ func TestCalibratePairsFromRecording(t *testing.T) {
 			t.Errorf("summary lacks %q:\n%s", want, stdout)
 		}
 	}
-	f, err := os.Open(out)
+	f, err := os.ReadFile(out)
 	if err != nil {
 		t.Fatal(err)
 	}
-	defer f.Close()
-	pairs, err := calibration.ReadPairs(f)
+	// The pairs file starts with the caution line; calibrate reads it as is.
+	afterCaution(t, "pairs CSV", string(f))
+	pairs, err := calibration.ReadPairs(bytes.NewReader(f))
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -6,6 +6,7 @@ import (
 	"encoding/csv"
 	"errors"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"os"
@@ -202,6 +203,7 @@ const inferRows = 256
 func (e *estimateRun) run(ctx context.Context, in io.Reader) error {
 	r := csv.NewReader(bufio.NewReaderSize(in, 256<<10))
 	r.ReuseRecord = true
+	r.Comment = '#' // the caution line atop pulsefleet's own CSV files
 	header, err := r.Read()
 	if err == io.EOF {
 		return fmt.Errorf("%s: empty input, want a header row with columns %s and %s", e.name, e.opts.redCol, e.opts.irCol)
@@ -361,7 +363,7 @@ func (e *estimateRun) writeHeader() error {
 	if e.opts.flags {
 		hdr += ",flags"
 	}
-	_, err := e.w.WriteString(hdr + "\n")
+	_, err := e.w.WriteString(caution.Comment + hdr + "\n")
 	return err
 }
 

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
 	"os"
 	"path/filepath"
@@ -54,7 +55,7 @@ func pf(t *testing.T, stdin string, args ...string) (int, string, string) {
 // parseOutput checks the contract header and returns the rows.
 func parseOutput(t *testing.T, out string, extra ...string) [][]string {
 	t.Helper()
-	lines := strings.Split(strings.TrimSuffix(out, "\n"), "\n")
+	lines := strings.Split(strings.TrimSuffix(afterCaution(t, "estimate output", out), "\n"), "\n")
 	want := strings.Join(append([]string{"t_s,spo2_pct,pulse_bpm,pi_pct,sqi,ratio"}, extra...), ",")
 	if lines[0] != want {
 		t.Fatalf("header %q, want %q", lines[0], want)
@@ -215,8 +216,8 @@ func TestEstimateFailureLeavesNoOutput(t *testing.T) {
 
 func TestEstimateHeaderOnly(t *testing.T) {
 	code, out, stderr := pf(t, "t_s,red,ir\n", "estimate")
-	if code != 0 || out != "t_s,spo2_pct,pulse_bpm,pi_pct,sqi,ratio\n" {
-		t.Errorf("header-only input: exit %d, out %q, err %q; want the header alone", code, out, stderr)
+	if code != 0 || out != caution.Comment+"t_s,spo2_pct,pulse_bpm,pi_pct,sqi,ratio\n" {
+		t.Errorf("header-only input: exit %d, out %q, err %q; want the caution and the header alone", code, out, stderr)
 	}
 }
 
@@ -308,7 +309,7 @@ func FuzzEstimateCSV(f *testing.F) {
 			}
 			return
 		}
-		lines := strings.Split(strings.TrimSuffix(out.String(), "\n"), "\n")
+		lines := strings.Split(strings.TrimSuffix(afterCaution(t, "estimate output", out.String()), "\n"), "\n")
 		if lines[0] != "t_s,spo2_pct,pulse_bpm,pi_pct,sqi,ratio" {
 			t.Fatalf("header %q", lines[0])
 		}

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"io/fs"
 	"os"
@@ -107,7 +108,9 @@ func runReplay(o replayOptions, s stdio) error {
 	if err != nil {
 		return err
 	}
-	if err := writeTo(o.out, s.out, func(w io.Writer) error { return alarms.WriteEpisodesCSV(w, eps) }); err != nil {
+	if err := writeTo(o.out, s.out, func(w io.Writer) error {
+		return withCaution(w, func() error { return alarms.WriteEpisodesCSV(w, eps) })
+	}); err != nil {
 		return err
 	}
 	if o.indices == "" {
@@ -117,7 +120,18 @@ func runReplay(o replayOptions, s stdio) error {
 	if err != nil {
 		return err
 	}
-	return writeTo(o.indices, s.out, func(w io.Writer) error { return alarms.WriteIndicesCSV(w, rows) })
+	return writeTo(o.indices, s.out, func(w io.Writer) error {
+		return withCaution(w, func() error { return alarms.WriteIndicesCSV(w, rows) })
+	})
+}
+
+// withCaution writes the caution comment line, then what write writes
+// (docs/contracts.md, "The caution on every output").
+func withCaution(w io.Writer, write func() error) error {
+	if err := caution.WriteComment(w); err != nil {
+		return err
+	}
+	return write()
 }
 
 // writeTo writes to stdout for "-", else creates the file.

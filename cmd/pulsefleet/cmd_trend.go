@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/csv"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"sort"
@@ -149,6 +150,9 @@ func optCell(v *float64, prec int) string {
 }
 
 func writeTrendPoints(w io.Writer, device string, ps []*pb.TrendPoint) error {
+	if err := caution.WriteComment(w); err != nil {
+		return err
+	}
 	cw := csv.NewWriter(w)
 	cw.Write([]string{"t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi", "ratio", "flags", "source"})
 	for _, p := range ps {
@@ -165,6 +169,9 @@ func writeTrendPoints(w io.Writer, device string, ps []*pb.TrendPoint) error {
 }
 
 func writeBuckets(w io.Writer, device string, bs []*pb.TrendBucket) error {
+	if err := caution.WriteComment(w); err != nil {
+		return err
+	}
 	cw := csv.NewWriter(w)
 	cw.Write([]string{"start_s", "device", "points", "spo2_min", "spo2_mean", "spo2_max", "pulse_min", "pulse_mean", "pulse_max", "pi_mean", "sqi_mean"})
 	stat := func(s *pb.Stat, f float64, prec int) string {

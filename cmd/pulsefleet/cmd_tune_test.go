@@ -119,7 +119,7 @@ reference:
 		if code != 0 {
 			t.Fatalf("replay %s: exit %d: %s", rec[0], code, stderr)
 		}
-		n := strings.Count(eps, "\n") - 1
+		n := strings.Count(afterCaution(t, "replay output", eps), "\n") - 1
 		if rec[4] != strconv.Itoa(n) {
 			t.Errorf("%s: summary episodes %s, replay lists %d", rec[0], rec[4], n)
 		}
@@ -306,7 +306,7 @@ func TestTuneCommandAveraging(t *testing.T) {
 		if code != 0 {
 			t.Fatalf("replay %s over %s: exit %d: %s", rec[0], trend, code, stderr)
 		}
-		n := strings.Count(eps, "\n") - 1
+		n := strings.Count(afterCaution(t, "replay output", eps), "\n") - 1
 		if rec[4] != strconv.Itoa(n) {
 			t.Errorf("%s (averaging %s): summary episodes %s, replay lists %d", rec[0], rec[1], rec[4], n)
 		}
