@@ -3,6 +3,7 @@ package calibration
 import (
 	"fmt"
 	"math"
+	"sort"
 	"strings"
 )
 
@@ -49,6 +50,12 @@ type AlignOptions struct {
 	ReferenceLagS int
 	// Subject is written into every pair; optional.
 	Subject string
+	// QualityWeights makes each pair's ratio the SQI-weighted median of the
+	// window's good seconds and sets its Weight to the window's mean SQI
+	// times the share of its seconds that were good, so that the fit leans
+	// on the windows the device measured best. false = plain median,
+	// unweighted.
+	QualityWeights bool
 }
 
 func (o AlignOptions) withDefaults() (AlignOptions, error) {
@@ -162,16 +169,17 @@ func Align(dev []DeviceSecond, ref []ReferenceSecond, o AlignOptions) ([]Pair, A
 	}
 	w := int64(o.WindowS)
 	var pairs []Pair
-	var ratios, refs []float64
+	var ratios, refs, sqis []float64
 	for start := first; start+w-1 <= last; start += w {
 		rep.Windows++
-		ratios, refs = ratios[:0], refs[:0]
+		ratios, refs, sqis = ratios[:0], refs[:0], sqis[:0]
 		for k := start; k < start+w; k++ {
 			if v, ok := refAt[k+int64(o.ReferenceLagS)]; ok {
 				refs = append(refs, v)
 			}
 			if d, ok := devAt[k]; ok && !math.IsNaN(d.Ratio) && d.SQI >= o.MinSQI {
 				ratios = append(ratios, d.Ratio)
+				sqis = append(sqis, d.SQI)
 			}
 		}
 		if float64(len(refs)) < o.MinReferenceFraction*float64(w) {
@@ -191,6 +199,14 @@ func Align(dev []DeviceSecond, ref []ReferenceSecond, o AlignOptions) ([]Pair, A
 			continue
 		}
 		p := Pair{Ratio: median(ratios), ReferencePct: median(refs), Subject: o.Subject}
+		if o.QualityWeights {
+			p.Ratio = weightedMedian(ratios, sqis)
+			sum := 0.0
+			for _, q := range sqis {
+				sum += q
+			}
+			p.Weight = math.Min(1, sum/float64(w))
+		}
 		if p.validate() != nil {
 			rep.RatioOutOfRange++
 			continue
@@ -199,4 +215,25 @@ func Align(dev []DeviceSecond, ref []ReferenceSecond, o AlignOptions) ([]Pair, A
 		rep.Kept++
 	}
 	return pairs, rep, nil
+}
+
+// weightedMedian is the value at which the cumulative weight of the sorted
+// values first reaches half of the total (the lower weighted median). xs
+// and ws are not modified.
+func weightedMedian(xs, ws []float64) float64 {
+	idx := make([]int, len(xs))
+	total := 0.0
+	for i := range idx {
+		idx[i] = i
+		total += ws[i]
+	}
+	sort.Slice(idx, func(a, b int) bool { return xs[idx[a]] < xs[idx[b]] })
+	acc := 0.0
+	for _, i := range idx {
+		acc += ws[i]
+		if acc >= total/2 {
+			return xs[i]
+		}
+	}
+	return xs[idx[len(idx)-1]]
 }

@@ -25,9 +25,11 @@ func degree(model string) int {
 	return 0
 }
 
-// FitCoefficients fits SpO2 = c0 + c1 R [+ c2 R^2] to the pairs by ordinary
-// least squares (QR decomposition of the design matrix, gonum/mat) and
-// returns c0, c1[, c2]. It needs at least degree+1 distinct ratios.
+// FitCoefficients fits SpO2 = c0 + c1 R [+ c2 R^2] to the pairs by least
+// squares (QR decomposition of the design matrix, gonum/mat), each pair
+// weighted by its Weight (unset = 1; ordinary least squares when no pair
+// has one), and returns c0, c1[, c2]. It needs at least degree+1 distinct
+// ratios.
 func FitCoefficients(pairs []Pair, model string) ([]float64, error) {
 	deg := degree(model)
 	if deg == 0 {
@@ -49,12 +51,13 @@ func FitCoefficients(pairs []Pair, model string) ([]float64, error) {
 	x := mat.NewDense(n, k, nil)
 	y := mat.NewVecDense(n, nil)
 	for i, p := range pairs {
-		v := 1.0
+		sw := math.Sqrt(p.weight())
+		v := sw
 		for j := 0; j < k; j++ {
 			x.Set(i, j, v)
 			v *= p.Ratio
 		}
-		y.SetVec(i, p.ReferencePct)
+		y.SetVec(i, sw*p.ReferencePct)
 	}
 	var qr mat.QR
 	qr.Factorize(x)

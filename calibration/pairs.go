@@ -23,6 +23,19 @@ type Pair struct {
 	// Subject identifies the person (or session) the pair came from; empty
 	// when unknown. Leave-one-subject-out scoring needs at least two.
 	Subject string
+	// Weight is the pair's weight in the least-squares fit, (0, 1]; 0 means
+	// unweighted (1). Align sets it from the device's signal quality when
+	// asked (AlignOptions.QualityWeights). Scores never weigh: every pair
+	// counts once in Arms, bias and MAE.
+	Weight float64
+}
+
+// weight is the pair's fitting weight: Weight, or 1 when unset.
+func (p Pair) weight() float64 {
+	if p.Weight == 0 {
+		return 1
+	}
+	return p.Weight
 }
 
 // Bounds a pair must meet; they match what a Curve accepts.
@@ -37,12 +50,15 @@ func (p Pair) validate() error {
 	if math.IsNaN(p.ReferencePct) || p.ReferencePct < 0 || p.ReferencePct > 100 {
 		return fmt.Errorf("reference_pct: %v, want 0..100", p.ReferencePct)
 	}
+	if !(p.Weight >= 0 && p.Weight <= 1) {
+		return fmt.Errorf("weight: %v, want 0..1 (0 = unweighted)", p.Weight)
+	}
 	return nil
 }
 
 // ReadPairs reads the calibrate pairs CSV (CONTRACT): a header row naming
-// the columns ratio and reference_pct, optionally subject; other columns are
-// ignored. Every row must carry both numbers; an error names the line and the
+// the columns ratio and reference_pct, optionally subject and weight (an
+// empty weight cell is unweighted); other columns are ignored. Every row must carry both numbers; an error names the line and the
 // field. An input with no rows is an error.
 func ReadPairs(r io.Reader) ([]Pair, error) {
 	cr := csv.NewReader(r)
@@ -66,6 +82,7 @@ func ReadPairs(r io.Reader) ([]Pair, error) {
 		return nil, fmt.Errorf("pairs: header %q: want columns ratio and reference_pct (and optionally subject)", strings.Join(header, ","))
 	}
 	si, hasSubject := col["subject"]
+	wi, hasWeight := col["weight"]
 	var pairs []Pair
 	for {
 		rec, err := cr.Read()
@@ -92,6 +109,11 @@ func ReadPairs(r io.Reader) ([]Pair, error) {
 		if hasSubject {
 			p.Subject = cell(si)
 		}
+		if hasWeight && cell(wi) != "" {
+			if p.Weight, err = parseCell(cell(wi)); err != nil {
+				return nil, fmt.Errorf("pairs: line %d: weight: %w", line, err)
+			}
+		}
 		if err := p.validate(); err != nil {
 			return nil, fmt.Errorf("pairs: line %d: %w", line, err)
 		}
@@ -114,15 +136,14 @@ func parseCell(s string) (float64, error) {
 	return v, nil
 }
 
-// WritePairs writes pairs in the format ReadPairs reads. The subject column
-// is written when any pair has a subject.
+// WritePairs writes pairs in the format ReadPairs reads. The subject
+// column is written when any pair has a subject, the weight column when any
+// pair has a weight.
 func WritePairs(w io.Writer, pairs []Pair) error {
-	withSubject := false
+	withSubject, withWeight := false, false
 	for _, p := range pairs {
-		if p.Subject != "" {
-			withSubject = true
-			break
-		}
+		withSubject = withSubject || p.Subject != ""
+		withWeight = withWeight || p.Weight != 0
 	}
 	if err := caution.WriteComment(w); err != nil {
 		return fmt.Errorf("write pairs: %w", err)
@@ -132,6 +153,9 @@ func WritePairs(w io.Writer, pairs []Pair) error {
 	if withSubject {
 		header = append(header, "subject")
 	}
+	if withWeight {
+		header = append(header, "weight")
+	}
 	if err := cw.Write(header); err != nil {
 		return fmt.Errorf("write pairs: %w", err)
 	}
@@ -139,6 +163,9 @@ func WritePairs(w io.Writer, pairs []Pair) error {
 		rec := []string{strconv.FormatFloat(p.Ratio, 'g', -1, 64), strconv.FormatFloat(p.ReferencePct, 'g', -1, 64)}
 		if withSubject {
 			rec = append(rec, p.Subject)
+		}
+		if withWeight {
+			rec = append(rec, strconv.FormatFloat(p.weight(), 'g', -1, 64))
 		}
 		if err := cw.Write(rec); err != nil {
 			return fmt.Errorf("write pairs: %w", err)

@@ -12,7 +12,7 @@ func TestReadPairs(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	want := []Pair{{0.52, 97.1, "S1"}, {1.1, 82, "S2"}}
+	want := []Pair{{Ratio: 0.52, ReferencePct: 97.1, Subject: "S1"}, {Ratio: 1.1, ReferencePct: 82, Subject: "S2"}}
 	if len(pairs) != len(want) {
 		t.Fatalf("got %v, want %v", pairs, want)
 	}

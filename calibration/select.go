@@ -66,11 +66,13 @@ func SelectCandidate(cands []Candidate, subjects []string, model string) (int, [
 // NestedFold is one outer fold of a nested leave-one-subject-out
 // evaluation.
 type NestedFold struct {
-	// Subject is held out; Chosen names the candidate selected by
-	// leave-one-subject-out on the other subjects alone, with InnerMAEPct
-	// its pooled MAE there.
+	// Subject is held out; Chosen names the candidate selected on the other
+	// subjects alone and Why says by what (for the inner
+	// leave-one-subject-out, its pooled MAE there, also in InnerMAEPct;
+	// NaN for other choosers).
 	Subject     string
 	Chosen      string
+	Why         string
 	InnerMAEPct float64
 	// Coefficients of the curve fitted to the other subjects' pairs of the
 	// chosen candidate.
@@ -95,9 +97,46 @@ type Nested struct {
 	Pooled, Baseline Stats
 }
 
-// NestedLeaveOneSubjectOut runs the nested evaluation. It needs at least
-// three subjects (two to choose by in each fold) across the candidates.
+// Choice is a Chooser's answer: the candidate's index, a short reason and,
+// for InnerLOSO, the inner MAE (NaN otherwise).
+type Choice struct {
+	Index       int
+	Why         string
+	InnerMAEPct float64
+}
+
+// Chooser picks a candidate knowing only the training subjects of a fold;
+// it must not look at any other subject's data.
+type Chooser func(train []string) (Choice, error)
+
+// InnerLOSO is the Chooser of NestedLeaveOneSubjectOut: the candidate with
+// the lowest pooled leave-one-subject-out MAE on the training subjects
+// among those with pairs from all of them (SelectCandidate).
+func InnerLOSO(cands []Candidate, model string) Chooser {
+	return func(train []string) (Choice, error) {
+		best, scores, err := SelectCandidate(cands, train, model)
+		if err != nil {
+			return Choice{}, err
+		}
+		if best < 0 {
+			return Choice{}, fmt.Errorf("no candidate has pairs from every other subject")
+		}
+		return Choice{best, fmt.Sprintf("inner leave-one-subject-out MAE %.2f %%", scores[best].MAEPct), scores[best].MAEPct}, nil
+	}
+}
+
+// NestedLeaveOneSubjectOut runs the nested evaluation with the InnerLOSO
+// chooser. It needs at least three subjects (two to choose by in each
+// fold) across the candidates.
 func NestedLeaveOneSubjectOut(cands []Candidate, model string) (*Nested, error) {
+	return LeaveOneSubjectOutWith(cands, model, InnerLOSO(cands, model))
+}
+
+// LeaveOneSubjectOutWith is the outer loop: for each subject in turn,
+// choose asks for a candidate knowing only the other subjects, a curve is
+// fitted on their pairs of that candidate and scored on the held-out
+// subject's pairs of it beside the mean predictor.
+func LeaveOneSubjectOutWith(cands []Candidate, model string, choose Chooser) (*Nested, error) {
 	if degree(model) == 0 {
 		return nil, fmt.Errorf("model: %q, want %s or %s", model, Linear, Quadratic)
 	}
@@ -126,14 +165,15 @@ func NestedLeaveOneSubjectOut(cands []Candidate, model string) (*Nested, error) 
 	var who []string
 	for _, held := range subs {
 		train := slices.DeleteFunc(slices.Clone(subs), func(s string) bool { return s == held })
-		best, scores, err := SelectCandidate(cands, train, model)
+		ch, err := choose(train)
 		if err != nil {
 			return nil, fmt.Errorf("leave out subject %q: %w", held, err)
 		}
-		if best < 0 {
-			return nil, fmt.Errorf("leave out subject %q: no candidate has pairs from every other subject", held)
+		best := ch.Index
+		if best < 0 || best >= len(cands) {
+			return nil, fmt.Errorf("leave out subject %q: chooser gave candidate %d of %d", held, best, len(cands))
 		}
-		f := NestedFold{Subject: held, Chosen: cands[best].Name, InnerMAEPct: scores[best].MAEPct}
+		f := NestedFold{Subject: held, Chosen: cands[best].Name, Why: ch.Why, InnerMAEPct: ch.InnerMAEPct}
 		var tr []Pair
 		var p, b, r []float64
 		for _, q := range cands[best].Pairs {

@@ -1,6 +1,7 @@
 package estimator
 
 import (
+	"math"
 	"strings"
 	"testing"
 
@@ -56,5 +57,30 @@ func TestRatioMethodValidated(t *testing.T) {
 		if _, err := New(Config{SampleRateHz: 100, Ratio: m}); err != nil {
 			t.Errorf("ratio method %q: %v", m, err)
 		}
+	}
+}
+
+// The camera study (calibration/pairing, README) fixes the derivative ratio
+// beforehand because on the project's physical model it is at least as
+// accurate as the beat slope; this test keeps that reason true. Same
+// stepped desaturation as TestDesaturationAccuracy (16 bits, 100 Hz, 1 %
+// respiratory wander), summed over three seeds.
+func TestDerivativeRatioAtLeastAsAccurateOnSyntheticData(t *testing.T) {
+	arms := map[RatioMethod]float64{}
+	for _, m := range RatioMethods {
+		for seed := uint64(1); seed <= 3; seed++ {
+			sc := scenario{
+				rate: 100, bits: 16, relation: ppgmodel.RelationEmpirical, cal: Empirical(),
+				plateauS: 60, rampS: 10, levels: desaturation(), seed: seed,
+				respPct: 1, shape: ppgmodel.Shape(seed % 2), ratio: m,
+			}
+			a := score(sc.run(t), settleS)
+			arms[m] += a.armsPct * a.armsPct / 3
+		}
+	}
+	slope, deriv := math.Sqrt(arms[RatioBeatSlope]), math.Sqrt(arms[RatioDerivativeSlope])
+	t.Logf("stepped desaturation, 3 seeds: Arms %.3f %% (beat slope), %.3f %% (derivative)", slope, deriv)
+	if !(deriv <= slope) {
+		t.Errorf("derivative ratio Arms %.3f %% > beat slope %.3f %%: the reason the camera study fixes it no longer holds", deriv, slope)
 	}
 }
