@@ -30,14 +30,14 @@ func appendAudit(tx *bolt.Tx, entries []*AuditEntry) error {
 
 // AppendAudit writes audit entries in their own transaction.
 func (db *DB) AppendAudit(entries ...*AuditEntry) error {
-	return db.bolt.Update(func(tx *bolt.Tx) error { return appendAudit(tx, entries) })
+	return db.update(func(tx *bolt.Tx) error { return appendAudit(tx, entries) })
 }
 
 // Audit returns entries at or after fromMS whose action starts with prefix,
 // newest first, at most limit (0 = all).
 func (db *DB) Audit(fromMS int64, prefix string, limit int) ([]AuditEntry, error) {
 	var out []AuditEntry
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		c := tx.Bucket(bAudit).Cursor()
 		for k, v := c.Last(); k != nil; k, v = c.Prev() {
 			var e AuditEntry
@@ -71,7 +71,7 @@ func profileKey(device string) []byte {
 // SetProfile stores a device's alarm profile ("" = the gateway default) with
 // an audit entry in the same transaction; nil data removes it.
 func (db *DB) SetProfile(device string, data []byte, audit *AuditEntry) error {
-	return db.bolt.Update(func(tx *bolt.Tx) error {
+	return db.update(func(tx *bolt.Tx) error {
 		b := tx.Bucket(bProfiles)
 		var err error
 		if data == nil {
@@ -92,7 +92,7 @@ func (db *DB) SetProfile(device string, data []byte, audit *AuditEntry) error {
 // Profiles returns every stored profile by device ("" = default).
 func (db *DB) Profiles() (map[string][]byte, error) {
 	out := map[string][]byte{}
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bProfiles).ForEach(func(k, v []byte) error {
 			key := string(k)
 			if key == defaultProfileKey {
@@ -118,7 +118,7 @@ type Calibration struct {
 
 // PutCalibration stores a new version of name and returns it (versions count from 1).
 func (db *DB) PutCalibration(c Calibration, audit *AuditEntry) (Calibration, error) {
-	err := db.bolt.Update(func(tx *bolt.Tx) error {
+	err := db.update(func(tx *bolt.Tx) error {
 		b, err := nested(tx, bCalibrations, []byte(c.Name))
 		if err != nil {
 			return err
@@ -148,7 +148,7 @@ func (db *DB) PutCalibration(c Calibration, audit *AuditEntry) (Calibration, err
 // Calibrations lists every stored version, by name then version.
 func (db *DB) Calibrations() ([]Calibration, error) {
 	var out []Calibration
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		root := tx.Bucket(bCalibrations)
 		return root.ForEachBucket(func(name []byte) error {
 			return root.Bucket(name).ForEach(func(k, v []byte) error {
@@ -167,7 +167,7 @@ func (db *DB) Calibrations() ([]Calibration, error) {
 // GetCalibration returns version (0 = latest) of name, or ErrNotFound.
 func (db *DB) GetCalibration(name string, version uint32) (Calibration, error) {
 	var c Calibration
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		b := tx.Bucket(bCalibrations).Bucket([]byte(name))
 		if b == nil {
 			return ErrNotFound
@@ -199,7 +199,7 @@ func (db *DB) CalibrationCurve(name string, version uint32) (string, uint32, err
 // AssignCalibration maps target ("model:NAME" or "device:ID") to a
 // calibration reference ("name@vN"); an empty ref removes the assignment.
 func (db *DB) AssignCalibration(target, ref string, audit *AuditEntry) error {
-	return db.bolt.Update(func(tx *bolt.Tx) error {
+	return db.update(func(tx *bolt.Tx) error {
 		b := tx.Bucket(bCalAssign)
 		var err error
 		if ref == "" {
@@ -220,7 +220,7 @@ func (db *DB) AssignCalibration(target, ref string, audit *AuditEntry) error {
 // CalibrationAssignments returns target -> reference.
 func (db *DB) CalibrationAssignments() (map[string]string, error) {
 	out := map[string]string{}
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bCalAssign).ForEach(func(k, v []byte) error {
 			out[string(k)] = string(v)
 			return nil
@@ -243,7 +243,7 @@ type Token struct {
 
 // PutToken stores (or replaces) a credential with an audit entry.
 func (db *DB) PutToken(t Token, audit *AuditEntry) error {
-	return db.bolt.Update(func(tx *bolt.Tx) error {
+	return db.update(func(tx *bolt.Tx) error {
 		v, err := encJSON(t)
 		if err != nil {
 			return err
@@ -261,7 +261,7 @@ func (db *DB) PutToken(t Token, audit *AuditEntry) error {
 // Tokens lists every credential, oldest first.
 func (db *DB) Tokens() ([]Token, error) {
 	var out []Token
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bTokens).ForEach(func(k, v []byte) error {
 			var t Token
 			if err := decJSON(v, &t); err != nil {
@@ -280,7 +280,7 @@ func (db *DB) Tokens() ([]Token, error) {
 // checks RevokedMS.
 func (db *DB) TokenByHash(hash string) (Token, error) {
 	var t Token
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		v := tx.Bucket(bTokens).Get([]byte(hash))
 		if v == nil {
 			return ErrNotFound
@@ -298,7 +298,7 @@ func (db *DB) TokenByHash(hash string) (Token, error) {
 // returns ErrNotFound for an unknown id; revoking twice keeps the first time.
 func (db *DB) RevokeToken(id string, atMS int64, audit *AuditEntry) (Token, error) {
 	var out Token
-	err := db.bolt.Update(func(tx *bolt.Tx) error {
+	err := db.update(func(tx *bolt.Tx) error {
 		b := tx.Bucket(bTokens)
 		var key []byte
 		err := b.ForEach(func(k, v []byte) error {

@@ -88,7 +88,7 @@ func (db *DB) Write(b *Batch) error {
 		newIdx[id] = uint32(seq)
 		return uint32(seq), nil
 	}
-	err := db.bolt.Update(func(tx *bolt.Tx) error {
+	err := db.update(func(tx *bolt.Tx) error {
 		devs := tx.Bucket(bDevices)
 		// Devices first, so ledger records can use their index.
 		for _, d := range b.Devices {

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"strings"
 	"sync"
 	"time"
 
@@ -52,6 +53,9 @@ var (
 	bCalAssign    = []byte("calassign")
 	bTokens       = []byte("tokens")
 
+	keySchema  = []byte("schema")
+	keyStoreID = []byte("store_id")
+
 	allBuckets = [][]byte{bMeta, bDevices, bCursors, bRecent, bTrend, bLedger, bRaw, bSessions, bEpisodes,
 		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens}
 )
@@ -62,6 +66,11 @@ type Options struct {
 	Timeout time.Duration
 	// ReadOnly opens the file for reading only (shared lock), e.g. for export.
 	ReadOnly bool
+	// NewStore starts an empty store on purpose where the identity file
+	// says one was created but the store file is missing or empty (after a
+	// loss that no backup can undo). It refuses when a non-empty store file
+	// is there: move that aside first.
+	NewStore bool
 }
 
 // DB is an open store. Its methods are safe for concurrent use.
@@ -69,12 +78,25 @@ type DB struct {
 	bolt *bolt.DB
 	path string
 	idx  indexCache
+	id   string // meta/store_id
 
 	writeMu sync.Mutex // serialises Write (bbolt does too) and guards the tail's generations
 	tail    trendTail
 }
 
 // Open opens (creating when needed) the store in directory dir.
+//
+// It refuses, with an error naming the file and what to do, a store that is
+// damaged (ErrDamaged: corrupt pages, truncated, empty, failing the quick
+// check below), a store file that vanished or became empty where the
+// identity file says one was created (ErrStoreMissing), and a store that is
+// not the one created in the directory (ErrIdentityMismatch). A directory
+// without an identity file (made before it existed) gets one.
+//
+// The quick check runs on every Open and reads a few pages only: the file
+// is as long as its meta page says, the meta bucket and schema version are
+// there, and the first and last records of every bucket (and of the first
+// and last nested bucket) decode. Verify is the full check.
 func Open(dir string, opt Options) (*DB, error) {
 	if opt.Timeout == 0 {
 		opt.Timeout = time.Second
@@ -85,11 +107,67 @@ func Open(dir string, opt Options) (*DB, error) {
 		}
 	}
 	path := filepath.Join(dir, FileName)
-	if opt.ReadOnly {
-		if _, err := os.Stat(path); err != nil {
-			return nil, fmt.Errorf("open store %s: %w", path, err)
+	ident, err := readIdentity(dir)
+	if err != nil {
+		return nil, err
+	}
+	st, serr := os.Stat(path)
+	if serr != nil && !errors.Is(serr, os.ErrNotExist) {
+		return nil, fmt.Errorf("open store %s: %w", path, serr)
+	}
+	exists := serr == nil
+	empty := exists && st.Size() == 0
+	switch {
+	case opt.ReadOnly && !exists:
+		return nil, fmt.Errorf("open store %s: %w", path, serr)
+	case opt.NewStore && opt.ReadOnly:
+		return nil, fmt.Errorf("open store %s: a new store cannot be made read-only", path)
+	case opt.NewStore && exists && !empty:
+		return nil, fmt.Errorf("open store %s: a new store was asked for (--new-store), but the file holds %d bytes: "+
+			"leave out --new-store to use it, or move it aside first", path, st.Size())
+	case opt.NewStore:
+		if empty {
+			if err := os.Remove(path); err != nil {
+				return nil, fmt.Errorf("open store %s: %w", path, err)
+			}
+		}
+		ident = nil // a new identity is written below
+	case ident != nil && (!exists || empty):
+		what := "is missing"
+		if empty {
+			what = "is empty (0 bytes)"
+		}
+		return nil, fmt.Errorf("open store %s: %w: the file %s, but %s says store %s was created here at %s; "+
+			"restore the store from a backup, or start an empty store on purpose with `pulsefleet serve --new-store`",
+			path, ErrStoreMissing, what, filepath.Join(dir, IdentityFileName), ident.StoreID, ident.Created)
+	case empty:
+		return nil, damaged(path, "the file is empty (0 bytes), as a store never is")
+	}
+	if exists {
+		if p := checkMetaPages(path); len(p) > 0 {
+			return nil, damaged(path, "%s", strings.Join(p, "; "))
 		}
 	}
+	db := &DB{path: path, idx: indexCache{m: map[string]uint32{}}}
+	err = guard(path, func() error { return db.open(opt, ident) })
+	if err != nil {
+		if db.bolt != nil {
+			db.bolt.Close()
+		}
+		return nil, err
+	}
+	if !opt.ReadOnly && ident == nil {
+		if err := writeIdentity(dir, db.id, time.Now()); err != nil {
+			db.bolt.Close()
+			return nil, err
+		}
+	}
+	return db, nil
+}
+
+// open does Open's work on the file inside guard.
+func (db *DB) open(opt Options, ident *Identity) error {
+	path := db.path
 	// bbolt remaps the file each time it outgrows the mapping, and a remap
 	// waits for every open transaction: the store writer stalls, and with it
 	// every acknowledgement. Mapping 1 GiB of address space up front (not
@@ -99,59 +177,64 @@ func Open(dir string, opt Options) (*DB, error) {
 		FreelistType: bolt.FreelistMapType, InitialMmapSize: 1 << 30})
 	if err != nil {
 		if errors.Is(err, bolterrors.ErrTimeout) {
-			return nil, fmt.Errorf("open store %s: %w", path, ErrLocked)
+			return fmt.Errorf("open store %s: %w", path, ErrLocked)
 		}
-		return nil, fmt.Errorf("open store %s: %w", path, err)
+		if derr := boltOpenError(path, err); derr != nil {
+			return derr
+		}
+		return fmt.Errorf("open store %s: %w", path, err)
 	}
-	db := &DB{bolt: b, path: path, idx: indexCache{m: map[string]uint32{}}}
-	if opt.ReadOnly {
-		if err := db.checkSchema(); err != nil {
-			b.Close()
-			return nil, err
-		}
-		if err := b.View(db.loadTail); err != nil {
-			b.Close()
-			return nil, fmt.Errorf("open store %s: recent trend log: %w", path, err)
-		}
-		return db, nil
+	db.bolt = b
+	if err := b.View(func(tx *bolt.Tx) error { return quickCheck(tx, path) }); err != nil {
+		return err
 	}
-	err = b.Update(func(tx *bolt.Tx) error {
-		for _, name := range allBuckets {
-			if _, err := tx.CreateBucketIfNotExists(name); err != nil {
-				return err
+	if !opt.ReadOnly {
+		err = b.Update(func(tx *bolt.Tx) error {
+			for _, name := range allBuckets {
+				if _, err := tx.CreateBucketIfNotExists(name); err != nil {
+					return err
+				}
 			}
-		}
-		m := tx.Bucket(bMeta)
-		if v := m.Get([]byte("schema")); v != nil {
-			if got := binary.BigEndian.Uint32(v); got > schemaVersion {
-				return fmt.Errorf("schema version %d is newer than this binary's %d", got, schemaVersion)
+			m := tx.Bucket(bMeta)
+			if m.Get(keySchema) == nil {
+				if err := m.Put(keySchema, u32(schemaVersion)); err != nil {
+					return err
+				}
+			}
+			if m.Get(keyStoreID) == nil && ident == nil {
+				// A new store, or one made before store ids: name it.
+				// (With an identity file and no id, the check below refuses.)
+				return m.Put(keyStoreID, []byte(newStoreID()))
 			}
 			return nil
+		})
+		if err != nil {
+			return fmt.Errorf("open store %s: %w", path, err)
 		}
-		return m.Put([]byte("schema"), u32(schemaVersion))
-	})
-	if err == nil {
-		err = b.View(db.loadTail)
 	}
-	if err != nil {
-		b.Close()
-		return nil, fmt.Errorf("open store %s: %w", path, err)
-	}
-	return db, nil
-}
-
-func (db *DB) checkSchema() error {
-	return db.bolt.View(func(tx *bolt.Tx) error {
-		m := tx.Bucket(bMeta)
-		if m == nil {
-			return fmt.Errorf("open store %s: not a pulsefleet store (no meta bucket)", db.path)
+	err = b.View(func(tx *bolt.Tx) error {
+		if m := tx.Bucket(bMeta); m != nil {
+			db.id = string(m.Get(keyStoreID))
 		}
-		if v := m.Get([]byte("schema")); v == nil || binary.BigEndian.Uint32(v) > schemaVersion {
-			return fmt.Errorf("open store %s: unsupported schema", db.path)
+		if ident != nil && db.id != ident.StoreID && !(opt.ReadOnly && db.id == "") {
+			got := db.id
+			if got == "" {
+				got = "none"
+			}
+			return fmt.Errorf("open store %s: %w: the file has store id %s, but %s says store %s was created here at %s; "+
+				"this is another store (restored from elsewhere?): put the right file back, or delete %s to adopt this one",
+				path, ErrIdentityMismatch, got, IdentityFileName, ident.StoreID, ident.Created, IdentityFileName)
+		}
+		if err := db.loadTail(tx); err != nil {
+			return damaged(path, "recent trend log: %v", err)
 		}
 		return nil
 	})
+	return err
 }
+
+// ID is the store's id (meta/store_id; the identity file holds the same).
+func (db *DB) ID() string { return db.id }
 
 // Path is the store file's path.
 func (db *DB) Path() string { return db.path }
@@ -160,20 +243,23 @@ func (db *DB) Path() string { return db.path }
 func (db *DB) Close() error { return db.bolt.Close() }
 
 // Check runs bbolt's consistency check over the whole file and returns the
-// first problem found (used by tests and `pulsefleet` maintenance).
+// first problem found (used by tests; Verify is the full check).
 func (db *DB) Check() error {
-	return db.bolt.View(func(tx *bolt.Tx) error {
-		for err := range tx.Check() {
-			return err
+	return db.view(func(tx *bolt.Tx) error {
+		var first error
+		for err := range tx.Check() { // drain: Check's goroutine sends every problem
+			if first == nil {
+				first = err
+			}
 		}
-		return nil
+		return first
 	})
 }
 
 // Size is the store file's size in bytes.
 func (db *DB) Size() int64 {
 	var n int64
-	_ = db.bolt.View(func(tx *bolt.Tx) error { n = tx.Size(); return nil })
+	_ = db.view(func(tx *bolt.Tx) error { n = tx.Size(); return nil })
 	return n
 }
 

@@ -12,7 +12,7 @@ import (
 // Devices returns every device record, ordered by id.
 func (db *DB) Devices() ([]Device, error) {
 	var out []Device
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
 			var d Device
 			if err := decJSON(v, &d); err != nil {
@@ -31,7 +31,7 @@ func (db *DB) Devices() ([]Device, error) {
 // Device returns one device record or ErrNotFound.
 func (db *DB) Device(id string) (Device, error) {
 	var d Device
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		v := tx.Bucket(bDevices).Get([]byte(id))
 		if v == nil {
 			return ErrNotFound
@@ -55,7 +55,7 @@ func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) erro
 	// commits in between leaves its points in both (the merge keeps one),
 	// never in neither.
 	m := &merger{fn: fn, tail: db.tail.rangeOf(device, fromMS, toMS)}
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		dev := tx.Bucket(bTrend).Bucket([]byte(device))
 		if dev == nil {
 			if !m.rest() {
@@ -110,7 +110,7 @@ func (db *DB) TrendDevices() ([]string, error) {
 	for _, d := range db.tail.devices() {
 		seen[d] = true
 	}
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bTrend).ForEachBucket(func(k []byte) error {
 			seen[string(k)] = true
 			return nil
@@ -218,7 +218,7 @@ func (db *DB) LedgerTotals() (map[string]LedgerTotal, error) {
 	byIdx := map[uint32]*LedgerTotal{}
 	seen := map[[12]byte]struct{}{}
 	names := map[uint32]string{}
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		if err := tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
 			var d Device
 			if err := decJSON(v, &d); err != nil {
@@ -267,7 +267,7 @@ func (db *DB) LedgerTotals() (map[string]LedgerTotal, error) {
 // Sessions returns a device's sessions that started at or after fromMS, oldest first.
 func (db *DB) Sessions(device string, fromMS int64) ([]Session, error) {
 	var out []Session
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		b := tx.Bucket(bSessions).Bucket([]byte(device))
 		if b == nil {
 			return nil
@@ -291,7 +291,7 @@ func (db *DB) Sessions(device string, fromMS int64) ([]Session, error) {
 // session that ended before fromMS: a device's sessions follow one another.
 func (db *DB) SessionsSince(device string, fromMS int64) ([]Session, error) {
 	var out []Session
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		b := tx.Bucket(bSessions).Bucket([]byte(device))
 		if b == nil {
 			return nil
@@ -327,7 +327,7 @@ type EpisodeFilter struct {
 // Episodes returns matching episodes, newest onset first.
 func (db *DB) Episodes(f EpisodeFilter) ([]Episode, error) {
 	var out []Episode
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bEpisodes).ForEach(func(k, v []byte) error {
 			var e Episode
 			if err := decJSON(v, &e); err != nil {
@@ -356,7 +356,7 @@ func (db *DB) Episodes(f EpisodeFilter) ([]Episode, error) {
 // AlarmStates returns every stored alarm-engine snapshot by device.
 func (db *DB) AlarmStates() (map[string][]byte, error) {
 	out := map[string][]byte{}
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bAlarmState).ForEach(func(k, v []byte) error {
 			out[string(k)] = clone(v)
 			return nil
@@ -368,7 +368,7 @@ func (db *DB) AlarmStates() (map[string][]byte, error) {
 // RawCaptures calls fn for each captured chunk of device with device time in
 // [fromMS, toMS), in sequence order within a day.
 func (db *DB) RawCaptures(device string, fromMS, toMS int64, fn func(RawCapture) bool) error {
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		dev := tx.Bucket(bRaw).Bucket([]byte(device))
 		if dev == nil {
 			return nil
@@ -406,7 +406,7 @@ func (db *DB) RawCaptures(device string, fromMS, toMS int64, fn func(RawCapture)
 // Cursors returns every device's cursor by device id.
 func (db *DB) Cursors() (map[string]Cursor, error) {
 	out := map[string]Cursor{}
-	err := db.bolt.View(func(tx *bolt.Tx) error {
+	err := db.view(func(tx *bolt.Tx) error {
 		return tx.Bucket(bCursors).ForEach(func(k, v []byte) error {
 			c := Cursor{Device: string(k)}
 			if err := decodeCursor(v, &c); err != nil {

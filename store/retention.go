@@ -29,7 +29,7 @@ func (db *DB) Prune(nowMS int64, r Retention) (int, error) {
 		}
 		return today - uint32(days), true
 	}
-	err := db.bolt.Update(func(tx *bolt.Tx) error {
+	err := db.update(func(tx *bolt.Tx) error {
 		dropDays := func(b *bolt.Bucket, before uint32) error {
 			var old [][]byte
 			_ = b.ForEachBucket(func(k []byte) error {

@@ -346,7 +346,7 @@ func (db *DB) CompactAll() error {
 		if plan == nil {
 			return nil
 		}
-		if err := db.bolt.Update(func(tx *bolt.Tx) error { return db.compact(tx, plan) }); err != nil {
+		if err := db.update(func(tx *bolt.Tx) error { return db.compact(tx, plan) }); err != nil {
 			return fmt.Errorf("store: compact trend generation %d: %w", plan.sg.gen, err)
 		}
 		t.afterCommit(nil, plan)
