@@ -8,6 +8,7 @@ import (
 	"os"
 	"path/filepath"
 	"sort"
+	"strings"
 	"time"
 
 	bolt "go.etcd.io/bbolt"
@@ -506,7 +507,9 @@ func VerifyFile(path string, opt VerifyOptions) (*VerifyReport, error) {
 				opt.Progress("consistency", 0, 0)
 			}
 			for err := range tx.Check() {
-				c.problem("bbolt check: %v", err)
+				// bbolt's check recovers its own panics on a damaged page
+				// and reports them as "panic: ...": say what it is.
+				c.problem("bbolt check: %s", strings.Replace(err.Error(), "panic: ", "stopped at a damaged page: ", 1))
 			}
 			return nil
 		})

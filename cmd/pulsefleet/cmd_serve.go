@@ -48,6 +48,8 @@ type serveConfig struct {
 	RequireToken bool          `yaml:"require_tokens"`
 	Peers        []string      `yaml:"peers"`
 	Self         string        `yaml:"self"`
+	VerifyStore  string        `yaml:"verify_store"`
+	NewStore     bool          `yaml:"new_store"`
 }
 
 const (
@@ -84,6 +86,9 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 		"only a plaintext, loopback-only gateway with no token issued runs open for development (and says so at start-up)")
 	fs.StringVar(&c.LogLevel, "log-level", c.LogLevel, "log level: debug, info, warn, error")
 	fs.Var((*peersFlag)(&c.Peers), "peers", "comma-separated gRPC addresses of every gateway sharing the fleet (the same list on each); devices owned by another peer (rendezvous hashing) are redirected there")
+	fs.StringVar(&c.VerifyStore, "verify-store", c.VerifyStore, "store check before serving: quick (always: meta pages, length, buckets, first and last records) or full (also `pulsefleet verify`: every page and record; takes a while on a big store)")
+	fs.BoolVar(&c.NewStore, "new-store", c.NewStore, "start an empty store on purpose where pulsefleet.id says one was created but pulsefleet.db is missing or empty "+
+		"(without it the gateway refuses: an empty store would hold no credential); refused when a store file with data is there")
 	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
 }
 
@@ -155,6 +160,9 @@ func (c *serveConfig) validate() error {
 	} else if c.Self != "" {
 		return fmt.Errorf("self: given without --peers")
 	}
+	if c.VerifyStore != "quick" && c.VerifyStore != "full" {
+		return fmt.Errorf("verify-store: %q, want quick or full", c.VerifyStore)
+	}
 	switch c.LogLevel {
 	case "debug", "info", "warn", "error":
 	default:
@@ -177,7 +185,7 @@ func isLoopback(addr string) bool {
 
 func defaultServeConfig() serveConfig {
 	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
-		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7}
+		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, VerifyStore: "quick"}
 }
 
 // runningGateway describes a started gateway.
@@ -206,7 +214,20 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 	if err != nil {
 		return nil, nil, fmt.Errorf("--profile: %w", err)
 	}
-	db, err := store.Open(c.Data, store.Options{})
+	if c.VerifyStore == "full" {
+		if _, err := os.Stat(filepath.Join(c.Data, store.FileName)); err == nil {
+			fmt.Fprintf(logw, "pulsefleet: full store check of %s (--verify-store full)...\n", c.Data)
+			rep, err := store.VerifyDir(c.Data, store.VerifyOptions{MaxProblems: 10})
+			if err != nil {
+				return nil, nil, err
+			}
+			if !rep.OK() {
+				return nil, nil, fmt.Errorf("store %s failed the full check (%d problem(s), first: %s): run `pulsefleet verify --data %s` for the list, then restore a backup",
+					rep.Path, len(rep.Problems), rep.Problems[0], c.Data)
+			}
+		}
+	}
+	db, err := store.Open(c.Data, store.Options{NewStore: c.NewStore})
 	if err != nil {
 		return nil, nil, err
 	}
