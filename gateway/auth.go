@@ -224,8 +224,15 @@ func actorFrom(ctx context.Context) string {
 
 type actorKey struct{}
 
-// remoteFrom returns the peer address of a call.
+// remoteKey carries the client address of a web request (webHandler).
+type remoteKey struct{}
+
+// remoteFrom returns the client address of a call: the web client's, or
+// the gRPC peer's.
 func remoteFrom(ctx context.Context) string {
+	if a, ok := ctx.Value(remoteKey{}).(string); ok && a != "" {
+		return a
+	}
 	if p, ok := peer.FromContext(ctx); ok {
 		return p.Addr.String()
 	}

@@ -180,7 +180,9 @@ func (g *Gateway) WatchEpisodes(req *pb.WatchEpisodesRequest, ws pb.FleetService
 
 // operatorAction runs fn on a device's alarm engine under its lock, then
 // makes the effects durable before answering.
-func (g *Gateway) operatorAction(ctx context.Context, id string, fn func(d *device, t float64, emit func(alarms.Event)) error) ([]alarms.Event, error) {
+// why (the note of an acknowledgement, the reason of a pause) is added to
+// the audit entries, which also name the caller's address.
+func (g *Gateway) operatorAction(ctx context.Context, id, why string, fn func(d *device, t float64, emit func(alarms.Event)) error) ([]alarms.Event, error) {
 	d, err := g.device(id)
 	if err != nil {
 		return nil, err
@@ -202,6 +204,9 @@ func (g *Gateway) operatorAction(ctx context.Context, id string, fn func(d *devi
 	d.mu.Unlock()
 	for _, a := range rec.audit {
 		a.Remote = remoteFrom(ctx)
+		if why != "" {
+			a.Detail += "; " + why
+		}
 	}
 	if err := g.w.sync(ctx, rec); err != nil {
 		return nil, status.Errorf(codes.Unavailable, "store: %v", err)
@@ -215,7 +220,11 @@ func (g *Gateway) AcknowledgeAlarm(ctx context.Context, req *pb.AcknowledgeAlarm
 		return nil, status.Errorf(codes.InvalidArgument, "note: %d characters, want at most 500", n)
 	}
 	who := actorFrom(ctx)
-	evs, err := g.operatorAction(ctx, req.GetDeviceId(), func(d *device, t float64, emit func(alarms.Event)) error {
+	note := ""
+	if req.GetNote() != "" {
+		note = "note: " + req.GetNote()
+	}
+	evs, err := g.operatorAction(ctx, req.GetDeviceId(), note, func(d *device, t float64, emit func(alarms.Event)) error {
 		d.engine.Acknowledge(who, t, emit)
 		return nil
 	})
@@ -247,7 +256,11 @@ func (g *Gateway) PauseAlarms(ctx context.Context, req *pb.PauseAlarmsRequest) (
 	}
 	who := actorFrom(ctx)
 	var until float64
-	_, err := g.operatorAction(ctx, req.GetDeviceId(), func(d *device, t float64, emit func(alarms.Event)) error {
+	reason := ""
+	if req.GetReason() != "" {
+		reason = "reason: " + req.GetReason()
+	}
+	_, err := g.operatorAction(ctx, req.GetDeviceId(), reason, func(d *device, t float64, emit func(alarms.Event)) error {
 		if req.GetDurationS() == 0 {
 			d.engine.Resume(who, t, emit)
 			return nil

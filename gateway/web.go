@@ -70,16 +70,25 @@ func (g *Gateway) webRoutes(mux *http.ServeMux) {
 			return
 		}
 		w.Header().Set("Content-Type", "text/html; charset=utf-8")
-		w.Header().Set("Cache-Control", "no-store")
-		w.Header().Set("Content-Security-Policy", "default-src 'self'; img-src 'self' data:; style-src 'self'; script-src 'self'; connect-src 'self'; frame-ancestors 'none'")
-		w.Header().Set("X-Content-Type-Options", "nosniff")
+		pageHeaders(w)
 		html := strings.NewReplacer("{{CAUTION}}", webCaution, "{{CSRF}}", g.webCSRFToken(r), "{{ACTOR}}", htmlEscape(actorFrom(webActor(r)))).Replace(string(b))
 		_, _ = w.Write([]byte(html))
 	})
 	g.authRoutes(mux)
 	mux.Handle("GET /{$}", g.requireRole(RoleViewer, page))
 	mux.Handle("GET /device/{id}", g.requireRole(RoleViewer, page))
-	mux.Handle("GET /ui/", http.StripPrefix("/ui/", http.FileServerFS(ui)))
+	// The page's assets need the viewer role like the page, carry the same
+	// headers, and never include the page's template (index.html, with its
+	// placeholders), which only the page handler serves, filled in.
+	assets := http.StripPrefix("/ui/", http.FileServerFS(ui))
+	mux.Handle("GET /ui/", g.requireRole(RoleViewer, http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		pageHeaders(w)
+		if name := strings.TrimPrefix(r.URL.Path, "/ui/"); name == "" || name == "index.html" || strings.HasSuffix(name, "/") {
+			http.NotFound(w, r)
+			return
+		}
+		assets.ServeHTTP(w, r)
+	})))
 
 	mux.Handle("GET /api/fleet", g.webHandler(RoleViewer, g.webFleet))
 	mux.Handle("GET /api/device/{id}", g.webHandler(RoleViewer, g.webDevice))
@@ -88,6 +97,15 @@ func (g *Gateway) webRoutes(mux *http.ServeMux) {
 	mux.Handle("POST /api/device/{id}/acknowledge", g.webHandler(RoleOperator, g.webAcknowledge))
 	mux.Handle("POST /api/device/{id}/pause", g.webHandler(RoleOperator, g.webPause))
 	mux.Handle("GET /api/events", g.webHandler(RoleViewer, g.webEvents))
+}
+
+// pageHeaders sets the security headers of the page and its assets: no
+// caching, a content security policy allowing only this origin's own
+// scripts, styles and connections and no framing, and no content sniffing.
+func pageHeaders(w http.ResponseWriter) {
+	w.Header().Set("Cache-Control", "no-store")
+	w.Header().Set("Content-Security-Policy", "default-src 'self'; img-src 'self' data:; style-src 'self'; script-src 'self'; connect-src 'self'; frame-ancestors 'none'")
+	w.Header().Set("X-Content-Type-Options", "nosniff")
 }
 
 func htmlEscape(s string) string {
@@ -103,7 +121,7 @@ type webFunc func(ctx context.Context, w http.ResponseWriter, r *http.Request) (
 // names the operator for the audit log (webActor) and writes the answer.
 func (g *Gateway) webHandler(role Role, fn webFunc) http.Handler {
 	return g.requireRole(role, http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
-		ctx := webActor(r)
+		ctx := context.WithValue(webActor(r), remoteKey{}, r.RemoteAddr)
 		w.Header().Set("Cache-Control", "no-store")
 		w.Header().Set("X-Content-Type-Options", "nosniff")
 		v, err := fn(ctx, w, r)
