@@ -1,0 +1,665 @@
+package uplink
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"sync"
+	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/protobuf/proto"
+
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+)
+
+// Options configure a Client.
+type Options struct {
+	// Address is the gateway's gRPC address, host:port (required).
+	Address string
+	// Dial opens a connection to a gateway address (required): the caller
+	// chooses transport security.
+	Dial func(addr string) (*grpc.ClientConn, error)
+	// Token is sent as "authorization: Bearer TOKEN" when not empty.
+	Token string
+	// Intro is the device's introduction (required).
+	Intro *pb.Introduction
+	// SpoolDir keeps held messages in DIR/uplink.spool; "" keeps them in memory.
+	SpoolDir string
+	// SpoolMeta describes the owner of a new spool (JSON); an existing
+	// spool's is returned by Recovered.Meta for the caller to check.
+	SpoolMeta json.RawMessage
+	// MaxBytes bounds the encoded size of the messages held (not yet
+	// acknowledged), in memory or in the spool; 0 means 64 MiB.
+	MaxBytes int64
+	// Logf reports connection events for a person; nil discards them.
+	Logf func(format string, args ...any)
+	// Backoff is the reconnect schedule; the zero value is 100 ms growing
+	// by 1.6 up to 5 s, with jitter.
+	Backoff Backoff
+}
+
+// Recovered is what a spool held when the client was made.
+type Recovered struct {
+	Messages int             // messages still to deliver
+	Samples  int             // their samples
+	Mark     []byte          // the caller's mark of the last message ever added (nil if none)
+	Meta     json.RawMessage // the spool's owner description
+	CutBytes int64           // torn tail cut off (a crash in the middle of a write)
+}
+
+// Stats are a client's counters since it was made.
+type Stats struct {
+	SamplesAdded    uint64            // taken by Add
+	SamplesSent     uint64            // sent at least once
+	SamplesAcked    uint64            // acknowledged as durable (including recovered ones)
+	SamplesRejected uint64            // finally rejected by the gateway
+	Rejections      map[string]uint64 // samples finally rejected, by "reason field"
+	Resent          uint64            // messages sent again after a reconnect or a pause
+	Stale           uint64            // resends the gateway already held
+	RateLimited     uint64            // pauses the gateway asked for
+	Reconnects      uint64            // streams opened after the first
+	Redirects       uint64            // redirects followed
+	Renumbered      uint64            // times the held messages were renumbered after the gateway's
+	ResumeRegress   uint64            // welcomes resuming below what was acknowledged before
+	HeldMessages    int               // held now
+	HeldSamples     int64             // held now
+	HeldBytes       int64             // held now
+	HeldMaxSamples  int64             // largest HeldSamples seen
+	HeldMaxBytes    int64             // largest HeldBytes seen
+	Connected       bool              // a welcomed stream is open
+	LastError       string            // the last stream error, for progress lines
+}
+
+// ErrFull is returned by a non-blocking Add when the held messages reach
+// Options.MaxBytes.
+var ErrFull = errors.New("uplink: buffer full")
+
+type item struct {
+	seq     uint64
+	samples int
+	size    int
+	mark    []byte
+	msg     *pb.ConnectRequest // nil while only in the spool
+	off     int64              // spool: offset and length of the message
+	n       int
+	sent    bool // sent at least once
+	done    bool // finally rejected
+}
+
+// Client streams one device's messages. Make it with New, run it with Run
+// and add messages with Add from any goroutine.
+type Client struct {
+	opts  Options
+	intro *pb.ConnectRequest
+	sp    *spool
+	meta  []byte
+
+	mu          sync.Mutex
+	items       []*item // held, consecutive sequence numbers from items[head]
+	head        int
+	nextSeq     uint64
+	finished    uint64 // every message up to here is acknowledged or finally rejected
+	sentThrough uint64 // highest sequence sent on the current stream
+	welcomed    bool
+	lastMark    []byte
+	holdUntil   time.Time
+	holdOff     time.Duration
+	addr        string
+	st          Stats
+	failed      error         // a spool failure: nothing more can be taken
+	changed     chan struct{} // closed and replaced when something is acknowledged
+	kick        chan struct{} // cap 1: something to send
+}
+
+// New makes a client; with a spool it recovers what the spool holds.
+func New(opts Options) (*Client, *Recovered, error) {
+	if opts.Address == "" || opts.Dial == nil || opts.Intro == nil {
+		return nil, nil, errors.New("uplink: Address, Dial and Intro are required")
+	}
+	if opts.MaxBytes <= 0 {
+		opts.MaxBytes = 64 << 20
+	}
+	if opts.Logf == nil {
+		opts.Logf = func(string, ...any) {}
+	}
+	c := &Client{opts: opts, nextSeq: 1, addr: opts.Address, changed: make(chan struct{}), kick: make(chan struct{}, 1),
+		intro: &pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: opts.Intro}}}
+	c.st.Rejections = map[string]uint64{}
+	rec := &Recovered{}
+	if opts.SpoolDir != "" {
+		sp, r, err := openSpool(opts.SpoolDir, opts.SpoolMeta)
+		if err != nil {
+			return nil, nil, err
+		}
+		c.sp, c.meta = sp, r.meta
+		c.welcomed, c.finished, c.lastMark = r.welcomed, r.finished, r.lastMark
+		c.items = r.items
+		c.nextSeq = max(r.lastSeq, r.finished) + 1
+		for _, it := range r.items {
+			c.st.HeldBytes += int64(it.n)
+			c.st.HeldSamples += int64(it.samples)
+			it.size = it.n
+			rec.Samples += it.samples
+		}
+		c.st.HeldMessages = len(r.items)
+		c.st.HeldMaxBytes, c.st.HeldMaxSamples = c.st.HeldBytes, c.st.HeldSamples
+		rec.Messages, rec.Mark, rec.Meta, rec.CutBytes = len(r.items), r.lastMark, r.meta, r.cut
+	}
+	return c, rec, nil
+}
+
+// Close syncs and closes the spool. Call it after Run has returned.
+func (c *Client) Close() error {
+	if c.sp == nil {
+		return nil
+	}
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return c.sp.close()
+}
+
+// Stats returns a copy of the counters.
+func (c *Client) Stats() Stats {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	s := c.st
+	s.Rejections = make(map[string]uint64, len(c.st.Rejections))
+	for k, v := range c.st.Rejections {
+		s.Rejections[k] = v
+	}
+	return s
+}
+
+// setSeq sets the sequence number inside a data message.
+func setSeq(m *pb.ConnectRequest, seq uint64) {
+	switch k := m.Kind.(type) {
+	case *pb.ConnectRequest_RawChunk:
+		k.RawChunk.Sequence = seq
+	case *pb.ConnectRequest_Summary:
+		k.Summary.Sequence = seq
+	}
+}
+
+// Add numbers a data message (raw chunk or summary) holding samples
+// samples and keeps it until the gateway acknowledges it; mark is the
+// caller's note of where its input stood after this message (kept in the
+// spool, returned by New as Recovered.Mark). When the held messages reach
+// Options.MaxBytes, Add waits for acknowledgements if block is true and
+// returns ErrFull otherwise. With a spool the message is in the spool file
+// when Add returns. Add takes ownership of m.
+func (c *Client) Add(ctx context.Context, m *pb.ConnectRequest, samples int, mark []byte, block bool) error {
+	size := proto.Size(m) + 8
+	c.mu.Lock()
+	for {
+		if c.failed != nil {
+			c.mu.Unlock()
+			return c.failed
+		}
+		if c.st.HeldBytes == 0 || c.st.HeldBytes+int64(size) <= c.opts.MaxBytes {
+			break
+		}
+		if !block {
+			c.mu.Unlock()
+			return ErrFull
+		}
+		ch := c.changed
+		c.mu.Unlock()
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-ch:
+		}
+		c.mu.Lock()
+	}
+	defer c.mu.Unlock()
+	it := &item{seq: c.nextSeq, samples: samples, size: size, mark: mark, msg: m}
+	setSeq(m, it.seq)
+	if c.sp != nil {
+		b, err := proto.Marshal(m)
+		if err != nil {
+			return fmt.Errorf("uplink: encode message: %w", err)
+		}
+		if err := c.sp.addData(it, b); err != nil {
+			c.failed = err
+			return err
+		}
+		it.size, it.msg = it.n, nil
+	}
+	c.nextSeq++
+	c.lastMark = mark
+	c.items = append(c.items, it)
+	c.st.SamplesAdded += uint64(samples)
+	c.st.HeldMessages++
+	c.st.HeldBytes += int64(it.size)
+	c.st.HeldSamples += int64(samples)
+	c.st.HeldMaxBytes = max(c.st.HeldMaxBytes, c.st.HeldBytes)
+	c.st.HeldMaxSamples = max(c.st.HeldMaxSamples, c.st.HeldSamples)
+	select {
+	case c.kick <- struct{}{}:
+	default:
+	}
+	return nil
+}
+
+// Wait returns nil once nothing is held (everything added was acknowledged
+// or finally rejected), or ctx's error.
+func (c *Client) Wait(ctx context.Context) error {
+	for {
+		c.mu.Lock()
+		n, ch, failed := len(c.items)-c.head, c.changed, c.failed
+		c.mu.Unlock()
+		if failed != nil {
+			return failed
+		}
+		if n == 0 {
+			return nil
+		}
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-ch:
+		}
+	}
+}
+
+// notify wakes Add and Wait; mu held.
+func (c *Client) notify() {
+	close(c.changed)
+	c.changed = make(chan struct{})
+}
+
+// Run connects, streams and reconnects until ctx ends.
+func (c *Client) Run(ctx context.Context) {
+	var conn *grpc.ClientConn
+	var connAddr string
+	defer func() {
+		if conn != nil {
+			conn.Close()
+		}
+	}()
+	timer := time.NewTimer(time.Hour)
+	defer timer.Stop()
+	b := c.opts.Backoff
+	redirects := 0
+	for first := true; ctx.Err() == nil; first = false {
+		c.mu.Lock()
+		addr := c.addr
+		if !first {
+			c.st.Reconnects++
+		}
+		c.mu.Unlock()
+		var err error
+		welcomed := false
+		if conn == nil || connAddr != addr {
+			if conn != nil {
+				conn.Close()
+				conn = nil
+			}
+			conn, err = c.opts.Dial(addr)
+			connAddr = addr
+		}
+		if err == nil {
+			welcomed, err = c.stream(ctx, conn, addr)
+		}
+		if ctx.Err() != nil {
+			return
+		}
+		var re *RedirectError
+		var wait time.Duration
+		switch {
+		case errors.As(err, &re):
+			redirects++
+			c.mu.Lock()
+			c.st.Redirects++
+			if re.Address != "" {
+				c.addr = re.Address
+			}
+			c.mu.Unlock()
+			c.opts.Logf("gateway %s: device belongs to %s; reconnecting there", addr, re.Address)
+			wait = 10 * time.Millisecond
+			if redirects > 3 {
+				wait = b.Next()
+			}
+		case welcomed:
+			redirects = 0
+			b.Reset()
+			wait = b.Short()
+			if err != nil {
+				c.noteErr(err)
+				c.opts.Logf("gateway %s: stream ended: %v; reconnecting", addr, err)
+			}
+		default:
+			c.noteErr(err)
+			wait = b.Next()
+			c.opts.Logf("gateway %s: %v; retrying in %v", addr, err, wait.Round(time.Millisecond))
+		}
+		timer.Reset(wait)
+		select {
+		case <-ctx.Done():
+			return
+		case <-timer.C:
+		}
+	}
+}
+
+func (c *Client) noteErr(err error) {
+	if err == nil {
+		return
+	}
+	c.mu.Lock()
+	c.st.LastError = err.Error()
+	c.mu.Unlock()
+}
+
+// stream runs one stream until it ends; welcomed says whether the gateway
+// accepted the introduction.
+func (c *Client) stream(ctx context.Context, conn *grpc.ClientConn, addr string) (welcomed bool, err error) {
+	sctx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	st, w, err := Open(sctx, conn, c.opts.Token, c.intro)
+	if err != nil {
+		return false, err
+	}
+	if err := c.welcome(w.GetResumeAfterSequence()); err != nil {
+		return true, err
+	}
+	c.opts.Logf("gateway %s: welcomed; it holds through message %d", addr, w.GetResumeAfterSequence())
+	c.mu.Lock()
+	c.st.Connected = true
+	c.mu.Unlock()
+	defer func() {
+		c.mu.Lock()
+		c.st.Connected = false
+		c.mu.Unlock()
+	}()
+	sendErr := make(chan error, 1)
+	var wg sync.WaitGroup
+	wg.Add(1)
+	go func() {
+		defer wg.Done()
+		sendErr <- c.sender(sctx, st)
+	}()
+	defer wg.Wait()
+	defer cancel()
+	recvErr := make(chan error, 1)
+	wg.Add(1)
+	go func() { // Recv ends when sctx is cancelled
+		defer wg.Done()
+		for {
+			m, err := st.Recv()
+			if err != nil {
+				recvErr <- err
+				return
+			}
+			switch k := m.Kind.(type) {
+			case *pb.ConnectResponse_Ack:
+				c.onAck(k.Ack.GetThroughSequence())
+			case *pb.ConnectResponse_Rejection:
+				c.onReject(k.Rejection)
+			case *pb.ConnectResponse_Redirect:
+				recvErr <- &RedirectError{Address: k.Redirect.GetAddress(), Detail: k.Redirect.GetDetail()}
+				return
+			}
+		}
+	}()
+	select {
+	case err = <-recvErr:
+	case err = <-sendErr:
+		if err == nil {
+			err = ctx.Err()
+		}
+	}
+	cancel()
+	if err != nil && errors.Is(err, io.EOF) {
+		err = errors.New("gateway closed the stream")
+	}
+	return true, err
+}
+
+// welcome applies the gateway's resume point.
+func (c *Client) welcome(resume uint64) error {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	held := c.items[c.head:]
+	renumber := false
+	switch {
+	case !c.welcomed && resume > 0:
+		// First meeting with a gateway that knows this device id from an
+		// earlier life: nothing was sent before, so renumbering is safe.
+		renumber = true
+	case c.welcomed && resume >= c.nextSeq:
+		// The gateway holds more than this client ever numbered: another
+		// client used the id meanwhile. Follow its numbering.
+		renumber = true
+		c.opts.Logf("gateway holds device messages through %d, beyond the %d this client numbered: renumbering what it holds", resume, c.nextSeq-1)
+	}
+	if renumber {
+		c.st.Renumbered++
+		if len(held) > 0 && c.sp != nil {
+			if err := c.sp.renumbered(held[0].seq, resume+1); err != nil {
+				c.failed = err
+				return err
+			}
+		}
+		for i, it := range held {
+			it.seq = resume + 1 + uint64(i)
+			it.sent = false
+		}
+		c.nextSeq = resume + 1 + uint64(len(held))
+		c.finished = resume
+	}
+	if resume < c.finished {
+		c.st.ResumeRegress++
+		c.opts.Logf("gateway resumes after message %d, below the %d it acknowledged before: messages %d..%d are gone from its store", resume, c.finished, resume+1, c.finished)
+	}
+	if !c.welcomed {
+		c.welcomed = true
+		if c.sp != nil {
+			if err := c.sp.append('W'); err != nil {
+				c.failed = err
+				return err
+			}
+		}
+	}
+	c.ackLocked(resume)
+	c.sentThrough = resume
+	if c.head < len(c.items) && c.items[c.head].seq > resume+1 {
+		c.sentThrough = c.items[c.head].seq - 1
+	}
+	return nil
+}
+
+// sender sends held messages the stream has not carried, in order.
+func (c *Client) sender(ctx context.Context, st pb.IngestService_ConnectClient) error {
+	timer := time.NewTimer(time.Hour)
+	defer timer.Stop()
+	for {
+		c.mu.Lock()
+		var it *item
+		wait := time.Until(c.holdUntil)
+		if wait <= 0 {
+			for i := c.head; i < len(c.items); i++ {
+				if x := c.items[i]; x.seq > c.sentThrough && !x.done {
+					it = x
+					break
+				}
+			}
+		}
+		var m *pb.ConnectRequest
+		var err error
+		if it != nil {
+			m, err = c.load(it)
+			if err == nil {
+				c.sentThrough = it.seq
+				if it.sent {
+					c.st.Resent++
+				} else {
+					it.sent = true
+					c.st.SamplesSent += uint64(it.samples)
+				}
+			}
+		}
+		c.mu.Unlock()
+		if err != nil {
+			return err
+		}
+		if it == nil {
+			if wait <= 0 {
+				wait = time.Hour
+			}
+			timer.Reset(wait)
+			select {
+			case <-ctx.Done():
+				return nil
+			case <-c.kick:
+			case <-timer.C:
+			}
+			continue
+		}
+		if err := st.Send(m); err != nil {
+			return recvError(st, err)
+		}
+	}
+}
+
+// load returns the message of it, read from the spool when needed; mu held.
+func (c *Client) load(it *item) (*pb.ConnectRequest, error) {
+	m := it.msg
+	if m == nil {
+		b, err := c.sp.read(it)
+		if err != nil {
+			return nil, err
+		}
+		m = &pb.ConnectRequest{}
+		if err := proto.Unmarshal(b, m); err != nil {
+			return nil, fmt.Errorf("spool: message %d: %w", it.seq, err)
+		}
+	}
+	setSeq(m, it.seq)
+	return m, nil
+}
+
+func (c *Client) onAck(through uint64) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	c.ackLocked(through)
+	c.holdOff = 0
+}
+
+// ackLocked takes every held message up to through as durable; mu held.
+func (c *Client) ackLocked(through uint64) {
+	if through <= c.finished && (c.head == len(c.items) || c.items[c.head].seq > through) {
+		return
+	}
+	for c.head < len(c.items) && c.items[c.head].seq <= through {
+		it := c.items[c.head]
+		if !it.done {
+			c.st.SamplesAcked += uint64(it.samples)
+		}
+		c.pop()
+	}
+	c.finished = max(c.finished, through)
+	c.settle()
+}
+
+// pop drops the oldest held message; mu held.
+func (c *Client) pop() {
+	it := c.items[c.head]
+	c.items[c.head] = nil
+	c.head++
+	c.st.HeldMessages--
+	c.st.HeldBytes -= int64(it.size)
+	c.st.HeldSamples -= int64(it.samples)
+	if c.head == len(c.items) {
+		c.items, c.head = c.items[:0], 0
+	} else if c.head > 1024 && c.head*2 > len(c.items) {
+		n := copy(c.items, c.items[c.head:])
+		clear(c.items[n:])
+		c.items, c.head = c.items[:n], 0
+	}
+}
+
+// settle records progress in the spool, compacts it when the finished part
+// dominates, and wakes waiters; mu held.
+func (c *Client) settle() {
+	if c.sp != nil && c.failed == nil {
+		err := c.sp.finished(c.finished)
+		slack := max(8<<20, c.opts.MaxBytes/4)
+		if err == nil && c.sp.size > c.st.HeldBytes+slack {
+			err = c.sp.rewrite(c.meta, c.welcomed, c.finished, c.lastMark, c.items[c.head:])
+		}
+		if err != nil {
+			c.failed = err
+			c.opts.Logf("%v", err)
+		}
+	}
+	c.notify()
+}
+
+// find returns the held message with sequence seq, or nil; mu held.
+func (c *Client) find(seq uint64) *item {
+	if c.head == len(c.items) {
+		return nil
+	}
+	first := c.items[c.head].seq
+	if seq < first || seq-first >= uint64(len(c.items)-c.head) {
+		return nil
+	}
+	return c.items[c.head+int(seq-first)]
+}
+
+func (c *Client) onReject(r *pb.Rejection) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	it := c.find(r.GetSequence())
+	switch r.GetReason() {
+	case pb.RejectReason_REJECT_REASON_STALE_SEQUENCE:
+		// Already held by the gateway; its acknowledgement covers it.
+		c.st.Stale++
+		return
+	case pb.RejectReason_REJECT_REASON_RATE_LIMITED:
+		// Pause, then resend from this message.
+		c.st.RateLimited++
+		if it != nil && !it.done && it.seq <= c.sentThrough {
+			c.sentThrough = it.seq - 1
+		}
+		c.holdOff = min(max(2*c.holdOff, 50*time.Millisecond), 2*time.Second)
+		c.holdUntil = time.Now().Add(c.holdOff)
+		return
+	}
+	if it == nil || it.done {
+		return
+	}
+	it.done = true
+	key := reasonName(r.GetReason()) + " " + r.GetField()
+	c.st.Rejections[key] += uint64(it.samples)
+	c.st.SamplesRejected += uint64(it.samples)
+	c.opts.Logf("gateway rejected message %d (%d samples): %s: %s", it.seq, it.samples, r.GetField(), r.GetDetail())
+	advanced := false
+	for c.head < len(c.items) && c.items[c.head].done {
+		c.finished = max(c.finished, c.items[c.head].seq)
+		c.pop()
+		advanced = true
+	}
+	if advanced {
+		c.settle()
+	}
+}
+
+// reasonName is the short name of a rejection reason.
+func reasonName(r pb.RejectReason) string {
+	switch r {
+	case pb.RejectReason_REJECT_REASON_INVALID_FIELD:
+		return "invalid_field"
+	case pb.RejectReason_REJECT_REASON_NOT_INTRODUCED:
+		return "not_introduced"
+	case pb.RejectReason_REJECT_REASON_TOO_LARGE:
+		return "too_large"
+	case pb.RejectReason_REJECT_REASON_WRONG_MODE:
+		return "wrong_mode"
+	}
+	return "other"
+}
