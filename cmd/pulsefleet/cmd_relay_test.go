@@ -13,18 +13,23 @@ import (
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
-// relayRun1 runs the relay command in-process and decodes its JSON line.
+// relayCmd runs the relay command in-process and decodes its JSON line.
 func relayCmd(t *testing.T, ctx context.Context, stdin string, args ...string) (code int, rep relayReport, stderr string) {
 	t.Helper()
 	var out, errb bytes.Buffer
 	code = run(ctx, append([]string{"relay"}, args...), stdio{in: strings.NewReader(stdin), out: &out, err: &errb})
-	lines := strings.Split(strings.TrimSpace(out.String()), "\n")
+	return code, decodeRelayJSON(t, out.String(), errb.String()), errb.String()
+}
+
+func decodeRelayJSON(t *testing.T, stdout, stderr string) (rep relayReport) {
+	t.Helper()
+	lines := strings.Split(strings.TrimSpace(stdout), "\n")
 	if last := lines[len(lines)-1]; last != "" {
 		if err := json.Unmarshal([]byte(last), &rep); err != nil {
-			t.Fatalf("relay's last stdout line is not JSON: %q (%v); stderr:\n%s", last, err, errb.String())
+			t.Errorf("relay's last stdout line is not JSON: %q (%v); stderr:\n%s", last, err, stderr)
 		}
 	}
-	return code, rep, errb.String()
+	return rep
 }
 
 func writeLines(t *testing.T, path string, lines []string) {
