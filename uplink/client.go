@@ -139,9 +139,9 @@ func New(opts Options) (*Client, *Recovered, error) {
 		c.items = r.items
 		c.nextSeq = max(r.lastSeq, r.finished) + 1
 		for _, it := range r.items {
-			c.st.HeldBytes += int64(it.n)
+			it.size = it.n + 8
+			c.st.HeldBytes += int64(it.size)
 			c.st.HeldSamples += int64(it.samples)
-			it.size = it.n
 			rec.Samples += it.samples
 		}
 		c.st.HeldMessages = len(r.items)
@@ -226,7 +226,7 @@ func (c *Client) Add(ctx context.Context, m *pb.ConnectRequest, samples int, mar
 			c.failed = err
 			return err
 		}
-		it.size, it.msg = it.n, nil
+		it.msg = nil
 	}
 	c.nextSeq++
 	c.lastMark = mark
