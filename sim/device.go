@@ -11,11 +11,10 @@ import (
 	"sync/atomic"
 	"time"
 
-	"google.golang.org/grpc/metadata"
-
 	"github.com/pulsefleet/pulsefleet/ppgmodel"
 	pulsefleetv1 "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/sim/scenario"
+	"github.com/pulsefleet/pulsefleet/uplink"
 )
 
 // ADCBits is the converter resolution simulated raw devices declare.
@@ -524,8 +523,7 @@ var errPlanned = errors.New("stream ended by the simulator")
 // to be online, receives, and reconnects with backoff. helpers tracks the
 // short-lived goroutines that resend after a reconnect.
 func (d *device) session(ctx context.Context, helpers *sync.WaitGroup) {
-	const base, ceiling = 100 * time.Millisecond, 5 * time.Second
-	backoff := base
+	var b uplink.Backoff // 100 ms growing by 1.6 to 5 s, with jitter
 	timer := time.NewTimer(time.Hour)
 	defer timer.Stop()
 	opened := false
@@ -551,18 +549,17 @@ func (d *device) session(ctx context.Context, helpers *sync.WaitGroup) {
 		case errors.Is(err, errRedirect):
 			wait = 10 * time.Millisecond
 		case welcomed && (err == nil || errors.Is(err, errPlanned)):
-			backoff = base
-			wait = time.Duration((0.5 + rand.Float64()) * float64(base))
+			b.Reset()
+			wait = b.Short()
 		default:
 			if err != nil && !errors.Is(err, errPlanned) {
 				d.f.c.streamErrors.Add(1)
 				d.f.noteErr(fmt.Errorf("device %s: %w", d.id, err))
 			}
 			if welcomed {
-				backoff = base
+				b.Reset()
 			}
-			wait = time.Duration((0.8 + 0.4*rand.Float64()) * float64(backoff))
-			backoff = min(ceiling, time.Duration(float64(backoff)*1.6))
+			wait = b.Next()
 		}
 		timer.Reset(wait)
 		select {
@@ -587,31 +584,16 @@ func (d *device) connect(ctx context.Context, helpers *sync.WaitGroup) (welcomed
 	}
 	sctx, cancel := context.WithCancel(ctx)
 	defer cancel()
-	if d.token != "" {
-		sctx = metadata.AppendToOutgoingContext(sctx, "authorization", "Bearer "+d.token)
-	}
-	st, err := pulsefleetv1.NewIngestServiceClient(conn).Connect(sctx)
-	if err != nil {
-		return false, fmt.Errorf("open stream to %s: %w", addr, err)
-	}
-	if err := st.Send(d.intro); err != nil {
-		return false, fmt.Errorf("send introduction: %w", recvError(st, err))
-	}
-	m, err := st.Recv()
-	if err != nil {
-		return false, fmt.Errorf("await welcome: %w", err)
-	}
-	switch k := m.Kind.(type) {
-	case *pulsefleetv1.ConnectResponse_Welcome:
-		d.welcome(k.Welcome.GetResumeAfterSequence(), st, cancel)
-	case *pulsefleetv1.ConnectResponse_Redirect:
-		d.redirect(k.Redirect)
+	st, w, err := uplink.Open(sctx, conn, d.token, d.intro)
+	var re *uplink.RedirectError
+	switch {
+	case errors.As(err, &re):
+		d.redirect(&pulsefleetv1.Redirect{Address: re.Address, Detail: re.Detail})
 		return false, errRedirect
-	case *pulsefleetv1.ConnectResponse_Rejection:
-		return false, fmt.Errorf("introduction rejected: %s: %s", k.Rejection.GetField(), k.Rejection.GetDetail())
-	default:
-		return false, fmt.Errorf("first answer is %T, want a welcome", m.Kind)
+	case err != nil:
+		return false, fmt.Errorf("%s: %w", addr, err)
 	}
+	d.welcome(w.GetResumeAfterSequence(), st, cancel)
 	d.f.c.connected.Add(1)
 	defer d.f.c.connected.Add(-1)
 	helpers.Add(1)
@@ -651,16 +633,6 @@ func (d *device) detach(st pulsefleetv1.IngestService_ConnectClient) (planned bo
 		return false
 	}
 	return d.breakPlanned
-}
-
-func recvError(st pulsefleetv1.IngestService_ConnectClient, err error) error {
-	if errors.Is(err, io.EOF) {
-		// The real error is returned by Recv.
-		if _, rerr := st.Recv(); rerr != nil {
-			return rerr
-		}
-	}
-	return err
 }
 
 func (d *device) redirect(r *pulsefleetv1.Redirect) {

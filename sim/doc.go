@@ -9,7 +9,9 @@
 // Welcome says: chunks at or below Welcome.resume_after_sequence are dropped
 // from the resend buffer, the rest are resent in order; a Rejection as
 // REJECT_REASON_STALE_SEQUENCE means the gateway already holds that chunk.
-// A Redirect is followed by reconnecting to the named address.
+// A Redirect is followed by reconnecting to the named address. The
+// introduction handshake and the reconnect schedule are package uplink's
+// (Open, Backoff), shared with the relay command's single-device client.
 //
 // Faults can be injected: streams dropped every so often, corrupt chunks
 // (out-of-range codes, mismatched lengths, absurd sample rates; each
