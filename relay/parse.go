@@ -143,18 +143,27 @@ func (p *Parser) Parse(line []byte) (s Sample, ok bool, reason string, header bo
 		return s, false, ReasonTooLong, false, nil
 	}
 	p.split(line)
-	if !p.started || p.nFields == 0 {
-		p.started = true
+	if !p.started {
 		if !allNumbers(p.fields) {
 			names := make([]string, len(p.fields))
+			known := false
 			for i, f := range p.fields {
 				names[i] = string(f)
+				_, ok := colNames[strings.ToLower(strings.TrimSpace(strings.TrimPrefix(names[i], "\ufeff")))]
+				known = known || ok
+			}
+			if !known {
+				// A boot banner or other chatter before the header or
+				// the first sample: rejected, and the next line may
+				// still be the header.
+				return s, false, ReasonNumber, false, nil
 			}
 			if err := p.setColumns(names, false); err != nil {
 				return s, false, "", true, fmt.Errorf("header: %w", err)
 			}
 			return s, false, "", true, nil
 		}
+		p.started = true
 	}
 	if len(p.fields) != p.nFields {
 		return s, false, ReasonFields, false, nil
