@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"net/http"
@@ -280,8 +281,8 @@ func TestWebJSON(t *testing.T) {
 	if d := byID["home-fern-07"]; d.Connected || d.Priority != "" {
 		t.Errorf("home-fern-07: connected %v priority %q, want offline without alarm", d.Connected, d.Priority)
 	}
-	if !strings.Contains(fleet.Caution, "NOT a certified medical alarm") {
-		t.Errorf("caution %q", fleet.Caution)
+	if fleet.Caution != caution.Text { // docs/contracts.md, "The caution on every output"
+		t.Errorf("caution %q, want the project's caution text", fleet.Caution)
 	}
 
 	var dev struct {
@@ -498,7 +499,7 @@ func TestWebPageInChromium(t *testing.T) {
 	row := func(id string) string { return fmt.Sprintf(`#fleet tr[data-device="%s"]`, id) }
 
 	do("fleet page", chromedp.Navigate(base+"/"), chromedp.WaitVisible(row("proto-raw-01")), chromedp.WaitVisible(`#live.on`))
-	if c := text("#caution"); !strings.Contains(c, "NOT a certified medical alarm") {
+	if c := text("#caution"); !strings.Contains(c, caution.Text) {
 		t.Errorf("caution banner %q", c)
 	}
 	if n := eval(`document.querySelectorAll('#fleet tbody tr').length + ''`); n != "6" {

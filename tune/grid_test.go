@@ -2,6 +2,7 @@ package tune
 
 import (
 	"context"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
 	"os"
 	"path/filepath"
@@ -54,8 +55,10 @@ func TestHandFilesWithAnnotatedEvents(t *testing.T) {
 	if err := WriteSummaryCSV(&b, res); err != nil {
 		t.Fatal(err)
 	}
-	lines := strings.Split(strings.TrimSpace(b.String()), "\n")
-	if len(lines) != 9 || !strings.HasPrefix(lines[5], "hand-g5,90,0s,0,4,") {
+	// The caution line first (docs/contracts.md, "The caution on every output").
+	rest, ok := strings.CutPrefix(b.String(), caution.Comment)
+	lines := strings.Split(strings.TrimSpace(rest), "\n")
+	if !ok || len(lines) != 9 || !strings.HasPrefix(lines[5], "hand-g5,90,0s,0,4,") {
 		t.Errorf("summary:\n%s", b.String())
 	}
 }

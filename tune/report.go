@@ -3,6 +3,7 @@ package tune
 import (
 	"encoding/csv"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"html/template"
 	"io"
 	"os"
@@ -24,8 +25,7 @@ type ReportInfo struct {
 
 // Caution is printed in the report and by the command.
 const Caution = "These figures replay recorded history; they do not predict the future. " +
-	"Alarm settings are the clinical team's decision, under local regulations, ethics approval " +
-	"and licensed clinical practice. pulsefleet is a research and engineering tool, not a certified medical device."
+	"Alarm settings are the clinical team's decision. " + caution.Text
 
 // BestRows returns the indexes of the Pareto-optimal rows, by increasing
 // alarm burden.
@@ -200,9 +200,13 @@ func TrendFile(averaging string) string {
 }
 
 // WriteTrendCSV writes trends in the replay/tune trend format
-// (t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi; missing values empty), every
-// value exactly as held, so reading it back gives the same samples.
+// (t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi; missing values empty) after
+// the caution comment line, every value exactly as held, so reading it back
+// gives the same samples.
 func WriteTrendCSV(w io.Writer, trends []alarms.Trend) error {
+	if err := caution.WriteComment(w); err != nil {
+		return fmt.Errorf("write trend: %w", err)
+	}
 	cw := csv.NewWriter(w)
 	if err := cw.Write([]string{"t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi"}); err != nil {
 		return fmt.Errorf("write trend: %w", err)
@@ -269,6 +273,7 @@ func WriteOutputs(dir string, res *Result, info ReportInfo) error {
 		if err != nil {
 			return err
 		}
+		b = append([]byte(caution.Comment), b...)
 		if err := os.WriteFile(filepath.Join(dir, "profiles", pt.Name+".yaml"), b, 0o644); err != nil {
 			return fmt.Errorf("write profile: %w", err)
 		}

@@ -3,6 +3,7 @@ package tune
 import (
 	"bytes"
 	"context"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"image/png"
 	"os"
 	"path/filepath"
@@ -17,13 +18,13 @@ const chromiumPath = "/usr/bin/chromium"
 
 // headless starts Debian's chromium (installed by .ci/deps.d/chromium.sh)
 // with the network-quiet flags and returns a browser context. Without
-// chromium the test fails under PULSEFLEET_REQUIRE_TOOLS=1 (CI) and is
-// skipped otherwise.
+// chromium the test fails when PULSEFLEET_REQUIRE_TOOLS is set (CI sets 1;
+// any non-empty value counts, as everywhere else) and is skipped otherwise.
 func headless(t *testing.T) context.Context {
 	t.Helper()
 	if _, err := os.Stat(chromiumPath); err != nil {
-		if os.Getenv("PULSEFLEET_REQUIRE_TOOLS") == "1" {
-			t.Fatalf("chromium missing at %s (PULSEFLEET_REQUIRE_TOOLS=1; .ci/deps.d/chromium.sh installs it): %v", chromiumPath, err)
+		if os.Getenv("PULSEFLEET_REQUIRE_TOOLS") != "" {
+			t.Fatalf("chromium missing at %s (PULSEFLEET_REQUIRE_TOOLS is set; .ci/deps.d/chromium.sh installs it): %v", chromiumPath, err)
 		}
 		t.Skipf("chromium missing at %s: %v", chromiumPath, err)
 	}
@@ -103,7 +104,7 @@ reference:
 		t.Errorf("chart title has width %v: text not rendered", w)
 	}
 	body := evalT[string](t, ctx, `document.body.innerText`)
-	for _, want := range []string{"not a certified medical device", "clinical team's decision", "Best profiles", "Exact settings used", "Matching rule"} {
+	for _, want := range []string{caution.Text, "clinical team's decision", "Best profiles", "Exact settings used", "Matching rule"} {
 		if !strings.Contains(body, want) {
 			t.Errorf("report lacks %q", want)
 		}

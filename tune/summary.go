@@ -3,6 +3,7 @@ package tune
 import (
 	"encoding/csv"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"strconv"
 
@@ -27,9 +28,13 @@ func SummaryColumns(g *Grid) []string {
 	return append(cols, "pareto")
 }
 
-// WriteSummaryCSV writes one row per grid point, in grid order. Figures
+// WriteSummaryCSV writes the caution comment line, the header and one row
+// per grid point, in grid order. Figures
 // that are undefined (no events, no episodes) are empty cells.
 func WriteSummaryCSV(w io.Writer, res *Result) error {
+	if err := caution.WriteComment(w); err != nil {
+		return fmt.Errorf("write summary: %w", err)
+	}
 	cw := csv.NewWriter(w)
 	if err := cw.Write(SummaryColumns(res.Grid)); err != nil {
 		return fmt.Errorf("write summary: %w", err)

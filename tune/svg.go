@@ -2,6 +2,7 @@ package tune
 
 import (
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"html"
 	"math"
 	"slices"
@@ -65,8 +66,9 @@ func (p *plot) frame() {
 }
 
 func (p *plot) svg() string {
-	return fmt.Sprintf(`<svg xmlns="http://www.w3.org/2000/svg" width="%g" height="%g" viewBox="0 0 %g %g" font-family="DejaVu Sans, Arial, sans-serif">%s</svg>`,
-		p.w, p.h, p.w, p.h, p.b.String())
+	h := p.h + caution.SVGNoteHeight // the caution below the chart, so a saved chart carries it
+	return fmt.Sprintf(`<svg xmlns="http://www.w3.org/2000/svg" width="%g" height="%g" viewBox="0 0 %g %g" font-family="DejaVu Sans, Arial, sans-serif">%s%s</svg>`,
+		p.w, h, p.w, h, p.b.String(), caution.SVGNote(p.left, p.h+6))
 }
 
 // niceTicks picks about five round tick values covering [lo, hi] and

@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/csv"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -53,14 +54,15 @@ func tuneTrendCSV(t *testing.T, devices, seconds int, seed uint64) string {
 	return path
 }
 
+// readCSV reads a CSV file that tune wrote: the caution line, then the
+// header and rows.
 func readCSV(t *testing.T, path string) [][]string {
 	t.Helper()
-	f, err := os.Open(path)
+	b, err := os.ReadFile(path)
 	if err != nil {
 		t.Fatal(err)
 	}
-	defer f.Close()
-	recs, err := csv.NewReader(f).ReadAll()
+	recs, err := csv.NewReader(strings.NewReader(afterCaution(t, path, string(b)))).ReadAll()
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -95,8 +97,26 @@ reference:
 	if code != 0 {
 		t.Fatalf("exit %d: %s", code, stderr)
 	}
-	if !strings.Contains(stdout, "not a certified medical device") {
+	// Every output a person may keep carries the caution (docs/contracts.md,
+	// "The caution on every output"): summary.csv (readCSV checks it), the
+	// generated profiles, the chart, the report and the command's output.
+	if !strings.Contains(stdout, caution.Text) {
 		t.Errorf("stdout lacks the caution:\n%s", stdout)
+	}
+	profs, _ := filepath.Glob(filepath.Join(out, "profiles", "*.yaml"))
+	for _, p := range profs {
+		b, _ := os.ReadFile(p)
+		afterCaution(t, p, string(b))
+	}
+	if len(profs) != 12 {
+		t.Errorf("%d generated profiles, want 12", len(profs))
+	}
+	if b, err := os.ReadFile(filepath.Join(out, "frontier.svg")); err != nil || !strings.Contains(string(b), `class="caution"`) ||
+		!strings.Contains(string(b), "NOT a certified medical alarm") {
+		t.Errorf("frontier.svg lacks the caution note (%v)", err)
+	}
+	if b, err := os.ReadFile(filepath.Join(out, "report.html")); err != nil || !strings.Contains(string(b), caution.HTML()) {
+		t.Errorf("report.html lacks the caution (%v)", err)
 	}
 	if strings.Contains(stderr, "\r") || !strings.Contains(stderr, "100%") {
 		t.Errorf("stderr (not a terminal) should have plain progress lines ending at 100%%, got %q", stderr)
@@ -302,6 +322,7 @@ func TestTuneCommandAveraging(t *testing.T) {
 	low := map[string]int{} // spo2_low episodes by averaging time
 	for _, rec := range recs[1:] {
 		trend := filepath.Join(out, "trends", "averaging-"+rec[1]+".csv")
+		readCSV(t, trend) // starts with the caution line; replay reads it as is
 		code, eps, stderr := replayRun(t, "", "replay", "--profile", filepath.Join(out, "profiles", rec[0]+".yaml"), "--in", trend)
 		if code != 0 {
 			t.Fatalf("replay %s over %s: exit %d: %s", rec[0], trend, code, stderr)
