@@ -38,11 +38,11 @@ const (
 func init() {
 	register(command{
 		name: "relay",
-		summary: `Stream a prototype's text output (one sample per line from a serial port, a
-TCP connection, a file or standard input) to a gateway as one device, with the
-same delivery guarantees as the simulator: numbered messages, a resend buffer,
-resume from the gateway's acknowledged sequence, redirects, reconnects with
-exponential backoff and jitter.
+		summary: `Stream a prototype's text lines (serial port, TCP, file) to a gateway as one device.
+It reads one sample per line from a serial port, a TCP connection, a file or
+standard input and gives them the simulator's delivery guarantees: numbered
+messages, a resend buffer, resume from the gateway's acknowledged sequence,
+redirects, reconnects with exponential backoff and jitter.
 
 Lines: red,ir[,ambient] samples (--format csv) or spo2,pulse,pi[,sqi] once a
 second (--format summary), separated by commas, semicolons, tabs or spaces;
@@ -107,7 +107,7 @@ func (o *relayOptions) register(fs *flag.FlagSet) {
 	fs.Float64Var(&o.irNM, "ir-nm", 940, "second channel's wavelength, nm")
 	fs.StringVar(&o.calibration, "calibration", "", `calibration the device asks for ("name" or "name@vN"); empty: the gateway's assignment`)
 	fs.StringVar(&o.spool, "spool", "", "keep unacknowledged data in DIR on disk (survives a gateway outage and a relay restart)")
-	fs.IntVar(&o.spoolMaxMiB, "spool-max", defaultSpoolMaxMiB, "bound of the unacknowledged data in the spool, MiB (the spool file stays under 1.25 x this + 8 MiB); when reached a recording waits and a live source's lines are rejected as buffer_full")
+	fs.IntVar(&o.spoolMaxMiB, "spool-max", defaultSpoolMaxMiB, "bound of the unacknowledged data in the spool, MiB (the spool file stays under this plus the larger of 8 MiB and a quarter of it); when reached a recording waits and a live source's lines are rejected as buffer_full")
 	fs.IntVar(&o.memoryMaxMiB, "memory-max", defaultMemoryMaxMiB, "without --spool: bound of the unacknowledged data held in memory, MiB (lost if the relay stops)")
 	fs.StringVar(&o.token, "token", "", "device bearer token (default: $PULSEFLEET_TOKEN)")
 	fs.StringVar(&o.caFile, "ca", "", "CA certificate (PEM) to verify the gateway's TLS certificate; enables TLS")
