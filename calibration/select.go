@@ -158,6 +158,7 @@ func LeaveOneSubjectOutWith(cands []Candidate, model string, choose Chooser) (*N
 		out.Candidates = append(out.Candidates, c.Name)
 	}
 	subs := subjects(all)
+	slices.Sort(subs)
 	if len(subs) < 3 {
 		return nil, fmt.Errorf("pairs: %d subjects, nested leave-one-subject-out needs >= 3", len(subs))
 	}

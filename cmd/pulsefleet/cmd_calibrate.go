@@ -12,6 +12,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/calibration"
 	"github.com/pulsefleet/pulsefleet/calibration/pairing"
+	"github.com/pulsefleet/pulsefleet/estimator"
 )
 
 const calibrateSummary = `Fit and score a calibration curve (SpO2 from R); 'calibrate pairs' builds pairs from recordings.
@@ -19,7 +20,8 @@ const calibrateSummary = `Fit and score a calibration curve (SpO2 from R); 'cali
 Fits a linear or quadratic curve to pairs recorded beside a reference oximeter and scores it: Arms, bias, SD, Bland-Altman limits of
 agreement, Arms per decade, leave-one-subject-out when pairs name subjects.
 Pairs CSV: header with ratio,reference_pct and optionally subject.
-'calibrate pairs --help' builds pairs from raw recordings and a reference file.`
+'calibrate pairs --help' builds pairs from raw recordings and a reference file; 'calibrate study --help' compares
+channel pairs, ratio methods and reference lags by leave-one-subject-out without tuning on the held-out subject.`
 
 // calibrateOptions are the flags of 'calibrate'.
 type calibrateOptions struct {
@@ -35,6 +37,9 @@ func init() {
 func runCalibrate(ctx context.Context, args []string, s stdio) error {
 	if len(args) > 0 && args[0] == "pairs" {
 		return runCalibratePairs(ctx, args[1:], s)
+	}
+	if len(args) > 0 && args[0] == "study" {
+		return runCalibrateStudy(ctx, args[1:], s)
 	}
 	fs := newFlagSet("calibrate", "--pairs FILE --model linear|quadratic [--out FILE] [--report DIR] [--format text|json]", s.err)
 	var o calibrateOptions
@@ -207,6 +212,9 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 	fs.Float64Var(&o.Align.MinSQI, "min-sqi", 0.5, "a device second counts when its SQI is at least this (0..1)")
 	fs.Float64Var(&o.Align.MinValidFraction, "min-valid", 0.5, "share of a window's seconds that need a ratio with good SQI")
 	fs.IntVar(&o.Align.ReferenceLagS, "lag", 0, "compare device second k with reference second k+lag")
+	var ratio string
+	fs.StringVar(&ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope over each beat) or derivative (of the differenced channels)")
+	fs.BoolVar(&o.Align.QualityWeights, "quality-weights", false, "SQI-weighted window ratio and a weight column for a weighted fit")
 	fs.StringVar(&out, "out", "", "write the pairs CSV here (default: standard output)")
 	if err := parseFlags(fs, args); err != nil {
 		return err
@@ -223,6 +231,11 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 	case o.RateHz <= 0:
 		return usagef("--rate: required, in Hz")
 	}
+	r, err := parseRatio(ratio)
+	if err != nil {
+		return err
+	}
+	o.Ratio = r
 	var all []calibration.Pair
 	var total calibration.AlignReport
 	summary := s.err

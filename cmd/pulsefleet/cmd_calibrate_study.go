@@ -1,0 +1,201 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"os"
+	"path/filepath"
+	"slices"
+	"strconv"
+	"strings"
+
+	"github.com/pulsefleet/pulsefleet/calibration"
+	"github.com/pulsefleet/pulsefleet/calibration/pairing"
+	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/estimator"
+)
+
+const calibrateStudySynopsis = "study --raw FILE --reference FILE [--subject NAME] ... --rate HZ [--channels A/B,...] [--ratios slope,derivative] [--lags 0,5,...] [--format text|json]"
+
+// runCalibrateStudy pairs recordings under every variant (channel pair,
+// ratio method, reference lag) and scores two ways of choosing among them
+// by leave-one-subject-out, neither of which sees the held-out subject.
+func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
+	fs := newFlagSet("calibrate", calibrateStudySynopsis, s.err)
+	var raws, refs, subs stringList
+	var channels, ratios, lags, ruleRatio, model, format string
+	o := pairing.Options{Align: calibration.AlignOptions{}}
+	fs.Var(&raws, "raw", "raw CSV with every channel column named in --channels; repeat for several recordings (both hands of a person: same --subject)")
+	fs.Var(&refs, "reference", "reference CSV: t_s,spo2_ref_pct (or reference_pct); one per --raw, or one for all")
+	fs.Var(&subs, "subject", "subject of each --raw (repeat in order; default: the raw file's folder name); leave-one-subject-out holds out a subject's recordings together")
+	fs.Float64Var(&o.RateHz, "rate", 0, "raw sample rate, Hz (required)")
+	fs.StringVar(&channels, "channels", "red/ir", "channel pairs to compare, first/second, comma-separated (e.g. r/g,b/g,r/b)")
+	fs.StringVar(&ratios, "ratios", "slope,derivative", "ratio methods to compare: slope, derivative")
+	fs.StringVar(&lags, "lags", "0,5,10,15,20,25,30", "reference lags to compare, s (device second k against reference second k+lag)")
+	fs.StringVar(&ruleRatio, "rule-ratio", string(estimator.RatioDerivativeSlope), "the ratio method the rule fixes beforehand")
+	fs.StringVar(&model, "model", calibration.Linear, "curve model: linear or quadratic")
+	fs.IntVar(&o.ADCBits, "adc-bits", 0, "converter resolution in bits; 0 = unknown (float input)")
+	fs.IntVar(&o.Align.WindowS, "window", 30, "pairing window, s: one pair per stable window")
+	fs.Float64Var(&o.Align.MaxReferenceSpreadPct, "max-spread", 2, "stable: reference max-min within a window at most this, % SpO2")
+	fs.Float64Var(&o.Align.MinSQI, "min-sqi", 0.5, "a device second counts when its SQI is at least this (0..1)")
+	fs.BoolVar(&o.Align.QualityWeights, "quality-weights", true, "SQI-weighted window ratio and weighted fit")
+	fs.StringVar(&format, "format", "text", "output: text or json")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	switch {
+	case len(raws) == 0:
+		return usagef("--raw: required")
+	case len(refs) == 0:
+		return usagef("--reference: required")
+	case len(refs) != 1 && len(refs) != len(raws):
+		return usagef("--reference: %d files for %d --raw, want 1 or %d", len(refs), len(raws), len(raws))
+	case len(subs) != 0 && len(subs) != len(raws):
+		return usagef("--subject: %d names for %d --raw, want %d", len(subs), len(raws), len(raws))
+	case o.RateHz <= 0:
+		return usagef("--rate: required, in Hz")
+	case model != calibration.Linear && model != calibration.Quadratic:
+		return usagef("--model: %q, want linear or quadratic", model)
+	case format != "text" && format != "json":
+		return usagef("--format: %q, want text or json", format)
+	}
+	pairsList, cols, err := parseChannelPairs(channels)
+	if err != nil {
+		return err
+	}
+	var methods []estimator.RatioMethod
+	for _, r := range strings.Split(ratios, ",") {
+		m, err := parseRatio(strings.TrimSpace(r))
+		if err != nil {
+			return usagef("--ratios: %v", err)
+		}
+		methods = append(methods, m)
+	}
+	rule, err := parseRatio(ruleRatio)
+	if err != nil {
+		return usagef("--rule-ratio: %v", err)
+	}
+	if !slices.Contains(methods, rule) {
+		return usagef("--rule-ratio: %q is not among --ratios %q", rule, ratios)
+	}
+	var lagList []int
+	for _, l := range strings.Split(lags, ",") {
+		v, err := strconv.Atoi(strings.TrimSpace(l))
+		if err != nil || v < -600 || v > 600 {
+			return usagef("--lags: %q, want integers -600..600 s", l)
+		}
+		lagList = append(lagList, v)
+	}
+	var recs []pairing.Recording
+	for i, raw := range raws {
+		ref := refs[0]
+		if len(refs) > 1 {
+			ref = refs[i]
+		}
+		subject := filepath.Base(filepath.Dir(raw))
+		if len(subs) > 0 {
+			subject = subs[i]
+		}
+		rec, err := readStudyRecording(raw, ref, subject, cols)
+		if err != nil {
+			return err
+		}
+		recs = append(recs, rec)
+	}
+	st, err := pairing.NewStudy(recs, pairing.Variants(pairsList, methods, lagList), o)
+	if err != nil {
+		return err
+	}
+	nested, err := calibration.NestedLeaveOneSubjectOut(st.Candidates, model)
+	if err != nil {
+		return fmt.Errorf("nested leave-one-subject-out: %w", err)
+	}
+	ruled, err := calibration.LeaveOneSubjectOutWith(st.Candidates, model, st.RuleChooser(rule))
+	if err != nil {
+		return fmt.Errorf("rule leave-one-subject-out: %w", err)
+	}
+	// What each chooser picks on all subjects: the variant to pair with.
+	var all []string
+	for _, r := range recs {
+		if !slices.Contains(all, r.Subject) {
+			all = append(all, r.Subject)
+		}
+	}
+	finalNested, err := calibration.InnerLOSO(st.Candidates, model)(all)
+	if err != nil {
+		return fmt.Errorf("choice on all subjects: %w", err)
+	}
+	finalRule, err := st.RuleChooser(rule)(all)
+	if err != nil {
+		return fmt.Errorf("choice on all subjects: %w", err)
+	}
+	if format == "json" {
+		return calibration.WriteStudyJSON(s.out, map[string]*calibration.Nested{"nested": nested, "rule": ruled}, map[string]any{
+			"variants": len(st.Candidates), "subjects": all,
+			"choice_nested": st.Candidates[finalNested.Index].Name, "choice_rule": st.Candidates[finalRule.Index].Name,
+		})
+	}
+	fmt.Fprintf(s.out, "%d recordings of %d subjects, %d variants (channels x ratio methods x lags)\n\n", len(recs), len(all), len(st.Candidates))
+	if err := nested.WriteText(s.out, "nested: variant with the lowest inner leave-one-subject-out MAE"); err != nil {
+		return err
+	}
+	fmt.Fprintln(s.out)
+	if err := ruled.WriteText(s.out, fmt.Sprintf("rule: ratio %s fixed beforehand, channels by usable seconds, lag by within-recording tracking", rule)); err != nil {
+		return err
+	}
+	fmt.Fprintf(s.out, "\non all subjects: nested picks %s; rule picks %s\n", st.Candidates[finalNested.Index].Name, st.Candidates[finalRule.Index].Name)
+	fmt.Fprintln(s.out, "fit a curve with: calibrate pairs (--red-col/--ir-col/--ratio/--lag of the pick, --quality-weights) then calibrate --pairs.")
+	fmt.Fprintln(s.out, "bias = mean(predicted - reference); SD = population SD; Arms^2 = bias^2 + SD^2; the mean predictor predicts the training subjects' mean reference.")
+	fmt.Fprintf(s.out, "\n%s\n", caution.Line)
+	return nil
+}
+
+// parseChannelPairs reads "a/b,c/d" into pairs and the distinct columns.
+func parseChannelPairs(s string) ([][2]string, []string, error) {
+	var out [][2]string
+	var cols []string
+	for _, p := range strings.Split(s, ",") {
+		a, b, ok := strings.Cut(strings.TrimSpace(p), "/")
+		if !ok || a == "" || b == "" || a == b {
+			return nil, nil, usagef("--channels: %q, want first/second with two different column names", p)
+		}
+		out = append(out, [2]string{a, b})
+		for _, c := range []string{a, b} {
+			if !slices.Contains(cols, c) {
+				cols = append(cols, c)
+			}
+		}
+	}
+	return out, cols, nil
+}
+
+func parseRatio(s string) (estimator.RatioMethod, error) {
+	for _, m := range estimator.RatioMethods {
+		if string(m) == s {
+			return m, nil
+		}
+	}
+	return "", usagef("--ratio: %q, want %s or %s", s, estimator.RatioBeatSlope, estimator.RatioDerivativeSlope)
+}
+
+func readStudyRecording(rawPath, refPath, subject string, cols []string) (pairing.Recording, error) {
+	raw, err := os.Open(rawPath)
+	if err != nil {
+		return pairing.Recording{}, err
+	}
+	defer raw.Close()
+	ch, err := pairing.ReadChannels(raw, cols)
+	if err != nil {
+		return pairing.Recording{}, fmt.Errorf("%s: %w", rawPath, err)
+	}
+	ref, err := os.Open(refPath)
+	if err != nil {
+		return pairing.Recording{}, err
+	}
+	defer ref.Close()
+	rs, err := pairing.ReadReference(ref, "")
+	if err != nil {
+		return pairing.Recording{}, fmt.Errorf("%s: %w", refPath, err)
+	}
+	return pairing.Recording{Subject: subject, Channels: ch, Reference: rs}, nil
+}

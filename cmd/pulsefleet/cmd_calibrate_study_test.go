@@ -1,0 +1,108 @@
+package main
+
+import (
+	"encoding/json"
+	"fmt"
+	"os"
+	"strings"
+	"testing"
+
+	"github.com/pulsefleet/pulsefleet/caution"
+)
+
+// cameraDir is the camera-oximetry open data (Hoffman et al., npj Digit.
+// Med. 5, 146 (2022), MIT licence; docs/references.md "Open data").
+const cameraDir = "../../testdata/camera-oximetry"
+
+func cameraStudyArgs() []string {
+	args := []string{"calibrate", "study", "--rate", "30", "--channels", "r/g,b/g", "--lags", "0,10"}
+	for s := 1; s <= 4; s++ {
+		for _, h := range []string{"left", "right"} {
+			args = append(args, "--raw", fmt.Sprintf("%s/subject-%d/ppg_%s.csv", cameraDir, s, h),
+				"--reference", fmt.Sprintf("%s/subject-%d/reference.csv", cameraDir, s))
+		}
+	}
+	return args
+}
+
+// The study prints, for both ways of choosing, every held-out subject's
+// choice and scores beside the mean predictor, the pooled rows and the
+// caution; the figures themselves are checked in calibration/pairing.
+func TestCalibrateStudyReportsBothChoosers(t *testing.T) {
+	code, stdout, stderr := runCmd(cameraStudyArgs()...)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	for _, want := range []string{
+		"8 recordings of 4 subjects, 8 variants",
+		"nested: variant with the lowest inner leave-one-subject-out MAE",
+		"rule: ratio derivative fixed beforehand",
+		"subject-1: chose ", "subject-4: chose ",
+		"mean predictor MAE / Arms %", "  pooled", "lower than the mean predictor's",
+		"on all subjects: nested picks ", caution.Line,
+	} {
+		if !strings.Contains(stdout, want) {
+			t.Errorf("study output lacks %q:\n%s", want, stdout)
+		}
+	}
+	code, stdout, stderr = runCmd(append(cameraStudyArgs(), "--format", "json")...)
+	if code != 0 {
+		t.Fatalf("json: exit %d: %s", code, stderr)
+	}
+	var v struct {
+		Caution string `json:"caution"`
+		Rule    struct {
+			Folds  []struct{ Subject, Chosen string } `json:"folds"`
+			Pooled struct {
+				N int `json:"n"`
+			} `json:"pooled"`
+			Improvement float64 `json:"improvement"`
+		} `json:"rule"`
+	}
+	if err := json.Unmarshal([]byte(stdout), &v); err != nil {
+		t.Fatalf("json: %v\n%s", err, stdout)
+	}
+	if v.Caution != caution.Text || len(v.Rule.Folds) != 4 || v.Rule.Pooled.N < 100 {
+		t.Errorf("json: caution %q, %d rule folds, pooled n %d; want the caution, 4 folds, >= 100 pairs", v.Caution, len(v.Rule.Folds), v.Rule.Pooled.N)
+	}
+}
+
+func TestCalibrateStudyUsage(t *testing.T) {
+	for _, tc := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"calibrate", "study", "--reference", "r.csv", "--rate", "30"}, "--raw: required"},
+		{[]string{"calibrate", "study", "--raw", "a.csv", "--reference", "r.csv", "--rate", "30", "--channels", "r-g"}, "--channels: \"r-g\""},
+		{[]string{"calibrate", "study", "--raw", "a.csv", "--reference", "r.csv", "--rate", "30", "--ratios", "peak"}, "--ratios"},
+		{[]string{"calibrate", "study", "--raw", "a.csv", "--reference", "r.csv", "--rate", "30", "--lags", "0,x"}, "--lags: \"x\""},
+		{[]string{"calibrate", "study", "--raw", "a.csv", "--reference", "r.csv", "--rate", "30", "--ratios", "slope"}, "--rule-ratio"},
+	} {
+		code, _, stderr := runCmd(tc.args...)
+		if code != 2 || !strings.Contains(stderr, tc.want) {
+			t.Errorf("%v: exit %d, %q; want exit 2 and %q", tc.args, code, stderr, tc.want)
+		}
+	}
+}
+
+// calibrate pairs takes the study's pick: channels, ratio method, lag and
+// quality weights; the weights land in the pairs file and calibrate reads
+// them back.
+func TestCalibratePairsWithRatioAndWeights(t *testing.T) {
+	out := t.TempDir() + "/pairs.csv"
+	code, _, stderr := runCmd("calibrate", "pairs", "--raw", cameraSubject2+"/ppg_left.csv", "--reference", cameraSubject2+"/reference.csv",
+		"--rate", "30", "--red-col", "b", "--ir-col", "g", "--ratio", "derivative", "--lag", "10", "--quality-weights", "--out", out)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	if f, err := os.ReadFile(out); err != nil || !strings.Contains(string(f), "\nratio,reference_pct,subject,weight\n") {
+		t.Errorf("pairs file lacks the weight column (%v):\n%.300s", err, f)
+	}
+	code, stdout, stderr := runCmd("calibrate", "--pairs", out, "--model", "linear")
+	if code != 0 || !strings.Contains(stdout, "fit (in sample)") {
+		t.Fatalf("calibrate on the weighted pairs: exit %d: %s%s", code, stdout, stderr)
+	}
+	if code, _, stderr := runCmd("calibrate", "pairs", "--raw", "a.csv", "--reference", "r.csv", "--rate", "30", "--ratio", "fft"); code != 2 || !strings.Contains(stderr, `--ratio: "fft"`) {
+		t.Errorf("--ratio fft: exit %d, %q; want exit 2 naming --ratio", code, stderr)
+	}
+}
