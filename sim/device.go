@@ -446,6 +446,16 @@ func (d *device) flush(block bool) {
 		first := c.sentAt == 0
 		if first {
 			c.sentAt = f.since()
+			// Counted when first handed to a stream, before Send: a send
+			// that fails may still have reached the gateway, and a message
+			// whose first send failed is acknowledged after a resend; an
+			// acknowledgement can also arrive before Send returns. Counting
+			// after a successful Send left frames_sent below frames_acked.
+			f.c.framesSent.Add(1)
+			f.c.samplesSent.Add(uint64(c.samples))
+			if c.corrupt {
+				f.c.corruptSent.Add(1)
+			}
 		}
 		d.sentThrough = c.seq
 		c.sending = true
@@ -464,13 +474,7 @@ func (d *device) flush(block bool) {
 			d.breakStream(s, false)
 			return
 		}
-		if first {
-			f.c.framesSent.Add(1)
-			f.c.samplesSent.Add(uint64(c.samples))
-			if c.corrupt {
-				f.c.corruptSent.Add(1)
-			}
-		} else {
+		if !first {
 			f.c.resent.Add(1)
 		}
 	}

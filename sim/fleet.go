@@ -310,12 +310,14 @@ func (f *fleet) progress(ctx context.Context) (stop func()) {
 			case <-pctx.Done():
 				return
 			case now := <-t.C:
+				acked := f.c.framesAcked.Load() // before sent: see report
+				sent := f.c.framesSent.Load()
 				s := f.c.samplesAcked.Load()
 				rate := float64(s-lastSamples) / now.Sub(last).Seconds()
 				lastSamples, last = s, now
 				fmt.Fprintf(f.opts.Progress, "sim: %5.0fs connected=%d/%d sent=%d acked=%d rejected=%d reconnects=%d acked_samples/s=%.0f ack_p99_ms=%.1f\n",
-					now.Sub(f.t0).Seconds(), f.c.connected.Load(), len(f.devices), f.c.framesSent.Load(),
-					f.c.framesAcked.Load(), f.c.rejected.Load(), f.c.reconnects.Load(), rate, f.hist.Quantile(0.99))
+					now.Sub(f.t0).Seconds(), f.c.connected.Load(), len(f.devices), sent,
+					acked, f.c.rejected.Load(), f.c.reconnects.Load(), rate, f.hist.Quantile(0.99))
 			}
 		}
 	}()
@@ -324,11 +326,14 @@ func (f *fleet) progress(ctx context.Context) (stop func()) {
 
 func (f *fleet) report(sending time.Duration) *Report {
 	c := &f.c
+	// Acknowledged before sent: every message is counted sent before it can
+	// be acknowledged, so read in this order sent is never below acked.
+	framesAcked, samplesAcked := c.framesAcked.Load(), c.samplesAcked.Load()
 	r := &Report{
-		Devices: len(f.devices), FramesSent: c.framesSent.Load(), FramesAcked: c.framesAcked.Load(),
+		Devices: len(f.devices), FramesSent: c.framesSent.Load(), FramesAcked: framesAcked,
 		SamplesSent: c.samplesSent.Load(), Rejected: c.rejected.Load(),
 		AckP50Ms: round3(f.hist.Quantile(0.5)), AckP99Ms: round3(f.hist.Quantile(0.99)),
-		SamplesAcked: c.samplesAcked.Load(), CorruptSent: c.corruptSent.Load(),
+		SamplesAcked: samplesAcked, CorruptSent: c.corruptSent.Load(),
 		CorruptAcked: c.corruptAcked.Load(), CorruptSkipped: c.corruptSkipped.Load(),
 		RejectedValid: c.rejectedValid.Load(), Stale: c.stale.Load(), DuplicatesResent: c.resent.Load(),
 		Reconnects: c.reconnects.Load(), DropsInjected: c.drops.Load(), Redirects: c.redirects.Load(),

@@ -219,3 +219,25 @@ func TestScenarioDeviceGoesOfflineAndCatchesUp(t *testing.T) {
 		t.Error("offline device never reconnected")
 	}
 }
+
+// Streams that end under the device while its sends are in flight (a
+// gateway whose store write failed) make sends fail; a message whose first
+// send failed and that is acknowledged after a resend was counted as
+// acknowledged but never as sent (frames_sent counted only after a
+// successful first Send). frames_sent counts every distinct message handed
+// to a stream, before the send, so it is never below frames_acked.
+func TestSentNeverBelowAckedWhenStreamsEnd(t *testing.T) {
+	s := startSink(t, sink.Options{EndStreamEvery: 20})
+	rep := run(t, Options{
+		Gateway: s.Addr(), Devices: 10, Mode: ModeSummary, Speed: 200,
+		Duration: 1500 * time.Millisecond, Seed: 5,
+	})
+	checkDelivery(t, rep, s)
+	if rep.Reconnects == 0 || rep.StreamErrors == 0 {
+		t.Fatalf("streams never ended: %+v", *rep)
+	}
+	if rep.FramesSent < rep.FramesAcked || rep.SamplesSent < rep.SamplesAcked {
+		t.Errorf("sent %d frames / %d samples, acknowledged %d / %d: acknowledged more than sent",
+			rep.FramesSent, rep.SamplesSent, rep.FramesAcked, rep.SamplesAcked)
+	}
+}

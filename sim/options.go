@@ -130,7 +130,7 @@ func (o Options) check() error {
 // number counted once.
 type Report struct {
 	Devices      int     `json:"devices"`
-	FramesSent   uint64  `json:"frames_sent"`   // distinct data messages sent at least once
+	FramesSent   uint64  `json:"frames_sent"`   // distinct data messages handed to a stream at least once (counted before the send, so never below frames_acked)
 	FramesAcked  uint64  `json:"frames_acked"`  // distinct valid messages the gateway confirmed durable (Ack, Welcome or stale rejection)
 	SamplesSent  uint64  `json:"samples_sent"`  // samples in frames_sent (a summary counts as one)
 	Rejected     uint64  `json:"rejected"`      // distinct frames rejected for a reason other than stale sequence

@@ -46,6 +46,11 @@ type Options struct {
 	// and the bearer token from the "authorization" metadata ("" when
 	// absent); an error ends the stream as UNAUTHENTICATED.
 	Authorize func(deviceID, token string) error
+	// EndStreamEvery, when set, ends a stream (UNAVAILABLE) after it has
+	// accepted this many messages, before acknowledging the last, as a
+	// gateway does when a store write fails; the device's sends in flight
+	// then fail. For tests of device resend and counting. 0 = never.
+	EndStreamEvery uint64
 }
 
 // Server is the sink. Safe for concurrent use.
@@ -213,6 +218,7 @@ func (s *Server) Connect(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectReq
 	}
 	ack := &pulsefleetv1.Ack{}
 	ackMsg := &pulsefleetv1.ConnectResponse{Kind: &pulsefleetv1.ConnectResponse_Ack{Ack: ack}}
+	var acceptedHere uint64
 	for {
 		m, err := stream.Recv()
 		if err != nil {
@@ -275,6 +281,9 @@ func (s *Server) Connect(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectReq
 		d.mu.Unlock()
 		s.accepted.Add(1)
 		s.samples.Add(uint64(n))
+		if acceptedHere++; s.opts.EndStreamEvery > 0 && acceptedHere >= s.opts.EndStreamEvery {
+			return status.Errorf(codes.Unavailable, "sink: stream ended after %d accepted messages (EndStreamEvery)", acceptedHere)
+		}
 		if through == 0 {
 			continue
 		}
