@@ -16,6 +16,14 @@
 //     Arms per decade of reference (70-80, 80-90, 90-100 %).
 //   - LOSO/LeaveOneSubjectOut: each subject held out in turn, scored beside a
 //     baseline that predicts the other subjects' mean reference.
+//   - Candidate/Nested: several ways of pairing the same recordings
+//     (channels, ratio method, lag); LeaveOneSubjectOutWith holds each
+//     subject out and lets a Chooser pick a candidate knowing only the other
+//     subjects: InnerLOSO (nested leave-one-subject-out, Varma & Simon 2006)
+//     or a rule (package pairing). The held-out subject never influences
+//     the choice it is scored with.
+//   - Pair.Weight: weighted least squares (Align's QualityWeights sets it
+//     from the device's SQI); scores never weigh.
 //   - Result/Calibrate: all of the above with text, JSON, SVG and HTML output.
 //   - Align: per-second device ratios and reference readings into pairs over
 //     stable, good-quality windows, with counts of what was dropped and why.

@@ -6,7 +6,7 @@ import (
 	"testing"
 )
 
-// Subjects a, b, c, d on SpO2 = 110 - 25 R (REFERENCES.md empirical line,
+// Subjects a, b, c, d on SpO2 = 110 - 25 R (docs/references.md "The empirical calibration line",
 // common practice) under candidate "clean"; candidate "scrambled" gives the
 // same references with ratios that carry nothing (reversed order within
 // each subject, so the pooled ratio range is the same).
