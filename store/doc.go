@@ -6,7 +6,7 @@
 // Layout (bucket paths; keys are big-endian so cursors range-scan in order;
 // every value starts with a version byte):
 //
-//	meta                          schema version
+//	meta                          schema version, store_id (also in the identity file pulsefleet.id beside the store)
 //	devices/ID                    Device (JSON), written when its description changes
 //	cursors/ID                    Cursor (binary): resume point and counters, written with every batch
 //	trend/ID/DAY/TIME_MS          Point (24 bytes binary)
@@ -28,6 +28,13 @@
 // per sample, and when it returns nil every record in it is durable (bbolt
 // fsyncs on commit). No *bolt.Tx escapes the package; byte slices read inside
 // a transaction are copied before it ends.
+//
+// A damaged file never panics out of the package: transactions run under
+// a recover (damage.go) that turns bbolt's panics into a *DamagedError
+// naming the file and what to do. Open runs a quick check (meta pages,
+// length, freelist page, first and last records of every bucket); Verify
+// (verify.go) is the full check. The identity file makes a store that
+// vanished or became empty refuse to open instead of starting empty.
 //
 // Caveats: bbolt allows one writer at a time and takes an exclusive file lock,
 // so only one process opens a data directory; a second Open waits Options.Timeout

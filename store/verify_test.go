@@ -335,3 +335,34 @@ func TestIdentityFileGuardsAgainstAVanishedStore(t *testing.T) {
 		t.Fatalf("verify of a foreign store: %v %v", rep, err)
 	}
 }
+
+// The quick check runs on every Open; the full check is Verify. Both on the
+// same seeded store (12 devices x 600 points, ledger, audit):
+//
+//	go test ./store -run x -bench 'Open|Verify' -benchtime 20x
+func BenchmarkOpenWithQuickCheck(b *testing.B) {
+	dir := b.TempDir()
+	seedStore(b, dir)
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		db, err := Open(dir, Options{ReadOnly: true})
+		if err != nil {
+			b.Fatal(err)
+		}
+		db.Close()
+	}
+}
+
+func BenchmarkVerifyFile(b *testing.B) {
+	dir := b.TempDir()
+	seedStore(b, dir)
+	fi, _ := os.Stat(filepath.Join(dir, FileName))
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		rep, err := VerifyFile(filepath.Join(dir, FileName), VerifyOptions{})
+		if err != nil || !rep.OK() {
+			b.Fatal(err, rep.Problems)
+		}
+	}
+	b.ReportMetric(float64(fi.Size())/(1<<20), "file_MiB")
+}
