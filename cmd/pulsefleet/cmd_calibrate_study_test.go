@@ -106,3 +106,31 @@ func TestCalibratePairsWithRatioAndWeights(t *testing.T) {
 		t.Errorf("--ratio fft: exit %d, %q; want exit 2 naming --ratio", code, stderr)
 	}
 }
+
+// estimate takes the same ratio methods; on a real recording both give a
+// ratio on most seconds, and not the same one.
+func TestEstimateRatioMethod(t *testing.T) {
+	ratios := map[string][]string{}
+	for _, m := range []string{"slope", "derivative"} {
+		code, stdout, stderr := runCmd("estimate", "--in", cameraSubject2+"/ppg_left.csv", "--red-col", "b", "--ir-col", "g",
+			"--rate", "30", "--adc-bits", "0", "--ratio", m)
+		if code != 0 {
+			t.Fatalf("--ratio %s: exit %d: %s", m, code, stderr)
+		}
+		for _, line := range strings.Split(stdout, "\n") {
+			f := strings.Split(line, ",")
+			if len(f) >= 6 && f[5] != "" && f[5] != "ratio" {
+				ratios[m] = append(ratios[m], f[5])
+			}
+		}
+	}
+	if len(ratios["slope"]) < 500 || len(ratios["derivative"]) < 500 {
+		t.Errorf("ratios on %d (slope) and %d (derivative) seconds of 1121, want most", len(ratios["slope"]), len(ratios["derivative"]))
+	}
+	if strings.Join(ratios["slope"], ";") == strings.Join(ratios["derivative"], ";") {
+		t.Error("--ratio derivative gave the same ratios as slope")
+	}
+	if code, _, stderr := runCmd("estimate", "--in", cameraSubject2+"/ppg_left.csv", "--rate", "30", "--ratio", "fft"); code != 2 || !strings.Contains(stderr, `--ratio: "fft"`) {
+		t.Errorf("--ratio fft: exit %d, %q; want exit 2 naming --ratio", code, stderr)
+	}
+}

@@ -34,6 +34,7 @@ type estimateOptions struct {
 	redNM, irNM               float64
 	adcBits                   int
 	window                    string
+	ratio                     string
 	in, out                   string
 	flags                     bool
 }
@@ -54,6 +55,7 @@ func runEstimateCmd(ctx context.Context, args []string, s stdio) error {
 	fs.Float64Var(&o.irNM, "ir-nm", 940, "second channel's wavelength, nm (used by beer-lambert)")
 	fs.IntVar(&o.adcBits, "adc-bits", 16, fmt.Sprintf("converter resolution (%d..%d) for the clipping, sensor-off and resolution checks; 0 = unknown (float data such as camera frame means: those checks are skipped)", estimator.MinADCBits, estimator.MaxADCBits))
 	fs.StringVar(&o.window, "window", "", fmt.Sprintf("averaging window, seconds or a duration such as 8s (%v..%v s; default %v s)", estimator.MinAveragingS, estimator.MaxAveragingS, estimator.DefaultAveragingS))
+	fs.StringVar(&o.ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope of the channels over each beat) or derivative (of their first differences)")
 	fs.StringVar(&o.in, "in", "-", "input CSV; - for standard input")
 	fs.StringVar(&o.out, "out", "-", "output CSV; - for standard output")
 	fs.BoolVar(&o.flags, "flags", false, "append a flags column saying why values were withheld (no_pulse|sensor_off|clipping|motion|low_resolution)")
@@ -83,6 +85,9 @@ func runEstimate(ctx context.Context, o estimateOptions, s stdio) error {
 	cal, err := resolveCalibration(o.calibration, o.redNM, o.irNM)
 	if err != nil {
 		return usageError{err.Error()}
+	}
+	if _, err := parseRatio(o.ratio); err != nil {
+		return err
 	}
 
 	in := s.in
@@ -348,7 +353,7 @@ func (e *estimateRun) start(rate float64) error {
 		return fmt.Errorf("%s: sample rate inferred from t_s is %v Hz, want %v..%v Hz (set --rate to override)",
 			e.name, rate, estimator.MinSampleRateHz, estimator.MaxSampleRateHz)
 	}
-	st, err := estimator.New(estimator.Config{SampleRateHz: rate, ADCBits: e.opts.adcBits, Calibration: e.cal, AveragingS: e.window})
+	st, err := estimator.New(estimator.Config{SampleRateHz: rate, ADCBits: e.opts.adcBits, Calibration: e.cal, AveragingS: e.window, Ratio: estimator.RatioMethod(e.opts.ratio)})
 	if err != nil {
 		return err
 	}
