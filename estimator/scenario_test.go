@@ -19,6 +19,7 @@ type scenario struct {
 	rate      float64
 	bits      int
 	relation  ppgmodel.Relation
+	relFunc   func(spo2Pct float64) float64 // when set, drives the model instead of relation
 	plateauS  float64
 	rampS     float64
 	levels    []level
@@ -43,7 +44,7 @@ type scored struct {
 
 func (sc scenario) run(t testing.TB) []scored {
 	t.Helper()
-	src := ppgmodel.New(ppgmodel.Config{SampleRateHz: sc.rate, ADCBits: sc.bits, Relation: sc.relation, Seed: sc.seed, Shape: sc.shape, NoiseRMS: sc.noiseFrac})
+	src := ppgmodel.New(ppgmodel.Config{SampleRateHz: sc.rate, ADCBits: sc.bits, Relation: sc.relation, RatioFunc: sc.relFunc, Seed: sc.seed, Shape: sc.shape, NoiseRMS: sc.noiseFrac})
 	cal := sc.cal
 	if cal == nil {
 		cal = Empirical()

@@ -43,7 +43,7 @@ func TestBeerLambertWorkedValues660940(t *testing.T) {
 // The empirical line, common practice (docs/references.md; Webster 1997 from
 // memory): R 0.4 -> 100, 0.5 -> 97.5, 1.0 -> 85.
 func TestEmpiricalLine(t *testing.T) {
-	for _, c := range []struct{ r, spo2 float64 }{{0.4, 100}, {0.5, 97.5}, {1.0, 85}} {
+	for _, c := range []struct{ r, spo2 float64 }{{0.4, 100}, {0.5, 97.5}, {0.52, 97}, {0.8, 90}, {1.0, 85}, {1.6, 70}} {
 		if got := EmpiricalSpO2(c.r); math.Abs(got-c.spo2) > 1e-9 {
 			t.Errorf("EmpiricalSpO2(%v) = %v, want %v", c.r, got, c.spo2)
 		}
@@ -102,8 +102,13 @@ func contains(s, sub string) bool {
 
 // The generated signal carries the perfusion index and ratio it was asked
 // for: AC/DC of the infrared is PI, and the red's relative swing is R times
-// it (definition of the ratio of ratios; docs/references.md).
+// it (definition of the ratio of ratios; docs/references.md). The expected
+// R at 90 % comes from docs/references.md, not from the model: the
+// empirical line gives (110 - 90) / 25 = 0.8 (common practice); the
+// Beer-Lambert model at 660/940 nm gives 610.296 / 1161.944 = 0.5252
+// (computed from Prahl's table, seen).
 func TestSignalCarriesPIAndRatio(t *testing.T) {
+	published := map[Relation]float64{RelationEmpirical: 0.8, RelationBeerLambert: 0.5252}
 	for _, rel := range []Relation{RelationEmpirical, RelationBeerLambert} {
 		src := New(Config{SampleRateHz: 100, ADCBits: 0, Relation: rel, Seed: 1, NoiseRMS: -1, HRV: -1})
 		v := Vitals{SpO2Pct: 90, PulseBPM: 60, PIPct: 2}
@@ -114,7 +119,10 @@ func TestSignalCarriesPIAndRatio(t *testing.T) {
 		acI, dcI := swing(ir[100:])
 		pi := acI / dcI * 100
 		ratio := (acR / dcR) / (acI / dcI)
-		want := src.Truth().Ratio
+		want := published[rel]
+		if got := src.Truth().Ratio; math.Abs(got-want) > 0.00005 {
+			t.Errorf("%v: the model's R at 90 %% is %.5f, want %.4f", rel, got, want)
+		}
 		// exp(-k z) swings by 1 - exp(-k) ~ k(1 - k/2): 1 % off at PI 2 %.
 		if math.Abs(pi-2) > 0.05 {
 			t.Errorf("%v: PI = %.3f %%, want 2 %%", rel, pi)
@@ -229,5 +237,13 @@ func BenchmarkFill(b *testing.B) {
 			}
 			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*len(red)), "ns/pair")
 		})
+	}
+}
+
+// A RatioFunc replaces the configured relation.
+func TestRatioFuncReplacesRelation(t *testing.T) {
+	src := New(Config{SampleRateHz: 100, Relation: RelationBeerLambert, RatioFunc: func(s float64) float64 { return s / 100 }})
+	if r := src.Ratio(70); r != 0.7 {
+		t.Errorf("Ratio(70) = %v with RatioFunc s/100, want 0.7", r)
 	}
 }

@@ -53,6 +53,11 @@ type Config struct {
 	NoiseRMS     float64  // white detector noise, fraction of DC (rms); 0 = 1e-4; negative = none
 	Shape        Shape    // pulse shape; zero = ShapeExcellent
 	HRV          float64  // beat-to-beat SD of the beat period, fraction (the beat amplitude varies by 1.5 x this); 0 = 0.02; negative = none
+	// RatioFunc, when not nil, replaces Relation: it maps the target SpO2
+	// (%, 0..100) to the ratio of ratios R (finite, > 0). Tests use it to
+	// drive the model with a relation written independently of this
+	// package's tables.
+	RatioFunc func(spo2Pct float64) float64
 }
 
 func (c Config) withDefaults() Config {
@@ -170,9 +175,12 @@ func New(cfg Config) *Source {
 func (s *Source) FullScale() float64 { return s.fs }
 
 // Ratio is the ratio of ratios the model produces for a saturation, through
-// the configured Relation.
+// the configured RatioFunc or Relation.
 func (s *Source) Ratio(spo2Pct float64) float64 {
 	spo2Pct = clamp(spo2Pct, 0, 100)
+	if s.cfg.RatioFunc != nil {
+		return s.cfg.RatioFunc(spo2Pct)
+	}
 	if s.cfg.Relation == RelationBeerLambert {
 		return s.tw.Ratio(spo2Pct / 100)
 	}
