@@ -335,7 +335,8 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	s.id = d.id + "-" + strconv.FormatInt(nowMS, 36)
 	s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Welcome{Welcome: &pb.Welcome{
 		ResumeAfterSequence: resume, GatewayTimeUnixMs: nowMS, SessionId: s.id, Calibration: s.calRef,
-		Notice: caution.Text,
+		Notice:       caution.Text,
+		Capabilities: negotiateCapabilities(in.GetCapabilities()),
 	}}})
 	if g.opt.CaptureRaw && s.mode == pb.Mode_MODE_RAW {
 		s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Config{Config: &pb.ConfigPush{RawCapture: true}}})

@@ -93,7 +93,7 @@ func validateIntroduction(in *pb.Introduction) *pb.Rejection {
 			return invalid(0, "introduction.labels", "value of %q: length %d, want 0..%d", k, len(v), maxLabelValLen)
 		}
 	}
-	return nil
+	return validateCapabilities(in.GetCapabilities())
 }
 
 // validateRaw checks a raw chunk against the device's declared sensor.

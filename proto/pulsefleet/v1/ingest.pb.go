@@ -282,7 +282,12 @@ type Introduction struct {
 	Mode Mode `protobuf:"varint,8,opt,name=mode,proto3,enum=pulsefleet.v1.Mode" json:"mode,omitempty"`
 	// Optional labels for the operator, for example the bed or home name. At most 8, each
 	// key 1..32 and value 0..64 characters.
-	Labels        map[string]string `protobuf:"bytes,9,rep,name=labels,proto3" json:"labels,omitempty" protobuf_key:"bytes,1,opt,name=key" protobuf_val:"bytes,2,opt,name=value"`
+	Labels map[string]string `protobuf:"bytes,9,rep,name=labels,proto3" json:"labels,omitempty" protobuf_key:"bytes,1,opt,name=key" protobuf_val:"bytes,2,opt,name=value"`
+	// Protocol behaviours beyond the v1 baseline that the device supports, by name (at most 16,
+	// each 1..64 characters of [a-z0-9.-]). The gateway ignores names it does not know and uses
+	// a behaviour only when its Welcome lists it too. Empty (as for every device built before
+	// this field existed) means the v1 baseline behaviour throughout.
+	Capabilities  []string `protobuf:"bytes,10,rep,name=capabilities,proto3" json:"capabilities,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -376,6 +381,13 @@ func (x *Introduction) GetMode() Mode {
 func (x *Introduction) GetLabels() map[string]string {
 	if x != nil {
 		return x.Labels
+	}
+	return nil
+}
+
+func (x *Introduction) GetCapabilities() []string {
+	if x != nil {
+		return x.Capabilities
 	}
 	return nil
 }
@@ -802,7 +814,11 @@ type Welcome struct {
 	// The calibration the gateway will apply ("name@vN"), for raw mode.
 	Calibration string `protobuf:"bytes,4,opt,name=calibration,proto3" json:"calibration,omitempty"`
 	// Non-normative caution shown to device developers.
-	Notice        string `protobuf:"bytes,5,opt,name=notice,proto3" json:"notice,omitempty"`
+	Notice string `protobuf:"bytes,5,opt,name=notice,proto3" json:"notice,omitempty"`
+	// The capabilities of the introduction that this gateway will use on this stream; every
+	// behaviour not named here stays as in the v1 baseline. Empty when none was offered or none
+	// is known to this gateway.
+	Capabilities  []string `protobuf:"bytes,6,rep,name=capabilities,proto3" json:"capabilities,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -870,6 +886,13 @@ func (x *Welcome) GetNotice() string {
 		return x.Notice
 	}
 	return ""
+}
+
+func (x *Welcome) GetCapabilities() []string {
+	if x != nil {
+		return x.Capabilities
+	}
+	return nil
 }
 
 // Ack acknowledges durability.
@@ -1112,7 +1135,7 @@ const file_pulsefleet_v1_ingest_proto_rawDesc = "" +
 	"\traw_chunk\x18\x02 \x01(\v2\x17.pulsefleet.v1.RawChunkH\x00R\brawChunk\x122\n" +
 	"\asummary\x18\x03 \x01(\v2\x16.pulsefleet.v1.SummaryH\x00R\asummary\x125\n" +
 	"\x06status\x18\x04 \x01(\v2\x1b.pulsefleet.v1.DeviceStatusH\x00R\x06statusB\x06\n" +
-	"\x04kind\"\x9a\x03\n" +
+	"\x04kind\"\xbe\x03\n" +
 	"\fIntroduction\x12\x1b\n" +
 	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12\x14\n" +
 	"\x05model\x18\x02 \x01(\tR\x05model\x12\x1a\n" +
@@ -1122,7 +1145,9 @@ const file_pulsefleet_v1_ingest_proto_rawDesc = "" +
 	"\badc_bits\x18\x06 \x01(\rR\aadcBits\x12%\n" +
 	"\x0ecalibration_id\x18\a \x01(\tR\rcalibrationId\x12'\n" +
 	"\x04mode\x18\b \x01(\x0e2\x13.pulsefleet.v1.ModeR\x04mode\x12?\n" +
-	"\x06labels\x18\t \x03(\v2'.pulsefleet.v1.Introduction.LabelsEntryR\x06labels\x1a9\n" +
+	"\x06labels\x18\t \x03(\v2'.pulsefleet.v1.Introduction.LabelsEntryR\x06labels\x12\"\n" +
+	"\fcapabilities\x18\n" +
+	" \x03(\tR\fcapabilities\x1a9\n" +
 	"\vLabelsEntry\x12\x10\n" +
 	"\x03key\x18\x01 \x01(\tR\x03key\x12\x14\n" +
 	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01\"\xed\x01\n" +
@@ -1161,14 +1186,15 @@ const file_pulsefleet_v1_ingest_proto_rawDesc = "" +
 	"\trejection\x18\x03 \x01(\v2\x18.pulsefleet.v1.RejectionH\x00R\trejection\x123\n" +
 	"\x06config\x18\x04 \x01(\v2\x19.pulsefleet.v1.ConfigPushH\x00R\x06config\x125\n" +
 	"\bredirect\x18\x05 \x01(\v2\x17.pulsefleet.v1.RedirectH\x00R\bredirectB\x06\n" +
-	"\x04kind\"\xc7\x01\n" +
+	"\x04kind\"\xeb\x01\n" +
 	"\aWelcome\x122\n" +
 	"\x15resume_after_sequence\x18\x01 \x01(\x04R\x13resumeAfterSequence\x12/\n" +
 	"\x14gateway_time_unix_ms\x18\x02 \x01(\x03R\x11gatewayTimeUnixMs\x12\x1d\n" +
 	"\n" +
 	"session_id\x18\x03 \x01(\tR\tsessionId\x12 \n" +
 	"\vcalibration\x18\x04 \x01(\tR\vcalibration\x12\x16\n" +
-	"\x06notice\x18\x05 \x01(\tR\x06notice\"0\n" +
+	"\x06notice\x18\x05 \x01(\tR\x06notice\x12\"\n" +
+	"\fcapabilities\x18\x06 \x03(\tR\fcapabilities\"0\n" +
 	"\x03Ack\x12)\n" +
 	"\x10through_sequence\x18\x01 \x01(\x04R\x0fthroughSequence\"\x8a\x01\n" +
 	"\tRejection\x12\x1a\n" +
