@@ -1,6 +1,7 @@
 package profiles
 
 import (
+	"github.com/pulsefleet/pulsefleet/caution"
 	"strings"
 	"testing"
 
@@ -45,12 +46,15 @@ func TestBuiltinProfilesParse(t *testing.T) {
 // choice", and every file carries the caution that settings are the
 // clinical team's decision.
 func TestBuiltinProfilesCiteEveryValue(t *testing.T) {
+	// A named published source (listed in docs/references.md, "Alarm settings
+	// in published practice") or the words "team choice". A priority's
+	// meaning ("prompt response") or a pointer to a file is not a source.
 	sources := []string{"team choice", "Welch 2011", "Taenzer 2010", "Lansdowne 2016", "BTS 2017", "AASM",
-		"IEC 60601-1-8", "docs/references.md", "prompt response", "immediate response", "awareness"}
+		"IEC 60601-1-8", "ISO 80601-2-61"}
 	for _, n := range Names() {
 		b, _ := Bytes(n)
-		if !strings.Contains(string(b), "clinical team's decision") || !strings.Contains(string(b), "NOT a certified") {
-			t.Errorf("%s: missing the caution", n)
+		if !strings.Contains(string(b), "clinical team's decision") || !strings.Contains(string(b), caution.Comment) {
+			t.Errorf("%s: missing the caution line %q or the clinical team's decision", n, caution.Comment)
 		}
 		var root yaml.Node
 		if err := yaml.Unmarshal(b, &root); err != nil {
@@ -75,6 +79,12 @@ func TestBuiltinProfilesCiteEveryValue(t *testing.T) {
 						}
 						if !ok {
 							t.Errorf("%s%s (line %d): comment %q names no source and no team choice", n, p, k.Line, c)
+						}
+						// IEC 60601-1-8 gives a priority's meaning, not which
+						// condition gets it (docs/references.md, "Alarm
+						// systems"): every priority is a team choice.
+						if k.Value == "priority" && !strings.Contains(c, "team choice") {
+							t.Errorf("%s%s (line %d): comment %q: a priority is a team choice", n, p, k.Line, c)
 						}
 					}
 					walk(v, p)
