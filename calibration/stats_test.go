@@ -12,7 +12,8 @@ func TestScoreWorkedExample(t *testing.T) {
 	// Differences d = 2, 0, 4, 2 (worked by hand):
 	// bias = 2; population SD = sqrt((0+4+4+0)/4) = sqrt 2; Arms = sqrt((4+0+16+4)/4) = sqrt 6.
 	// The sample SD sqrt(8/3) would break Arms^2 = bias^2 + SD^2, which
-	// ISO 80601-2-61 relies on (docs/references.md, memory): population form.
+	// ISO 80601-2-61 relies on (docs/references.md, "Accuracy standards": Arms
+	// seen in secondary sources; the identity is algebra): population form.
 	ref := []float64{95, 90, 85, 80}
 	pred := []float64{97, 90, 89, 82}
 	s, err := Score(pred, ref, nil)
@@ -43,7 +44,7 @@ func TestScoreIdentitiesHoldForAnyData(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		// ISO 80601-2-61 (docs/references.md, memory): Arms^2 = bias^2 + SD^2,
+		// ISO 80601-2-61 Arms (docs/references.md, seen in secondary sources): Arms^2 = bias^2 + SD^2 (algebra),
 		// SD in the population form. Arms is computed from d^2 directly.
 		if got, want := s.ArmsPct*s.ArmsPct, s.BiasPct*s.BiasPct+s.SDPct*s.SDPct; math.Abs(got-want) > 1e-9*math.Max(1, want) {
 			t.Fatalf("Arms^2 = %.15g, bias^2 + SD^2 = %.15g", got, want)

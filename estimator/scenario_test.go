@@ -144,7 +144,8 @@ func score(res []scored, settleS float64) accuracy {
 
 // armsBiasSD is the accuracy root-mean-square of ISO 80601-2-61,
 // Arms = sqrt(mean(d^2)), with bias = mean(d) and SD the population standard
-// deviation, so that Arms^2 = bias^2 + SD^2 (docs/references.md, memory).
+// deviation, so that Arms^2 = bias^2 + SD^2 (docs/references.md, "Accuracy
+// standards": the definition seen in secondary sources, the identity is algebra).
 func armsBiasSD(d []float64) (arms, bias, sd float64) {
 	if len(d) == 0 {
 		return math.NaN(), math.NaN(), math.NaN()

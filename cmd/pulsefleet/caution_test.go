@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"encoding/json"
 	"strings"
 	"testing"
@@ -56,4 +57,27 @@ func TestCalibrateJSONCarriesTheCaution(t *testing.T) {
 	if v[caution.JSONKey] != caution.Text {
 		t.Errorf("calibrate JSON %q = %v, want the caution", caution.JSONKey, v[caution.JSONKey])
 	}
+}
+
+// estimate's reader skips '#' lines, so a raw file that starts with the
+// caution line (or notes of the person who recorded it) is read as is.
+func TestEstimateReaderSkipsCommentLines(t *testing.T) {
+	in := caution.Comment + "# bench recording, finger probe\nred,ir\n"
+	for i := 0; i < 200; i++ {
+		in += "1000,900\n"
+	}
+	code, out, stderr := runCmdIn(in, "estimate", "--rate", "100")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	rows := strings.Split(strings.TrimSpace(afterCaution(t, "estimate output", out)), "\n")
+	if rows[0] != "t_s,spo2_pct,pulse_bpm,pi_pct,sqi,ratio" || len(rows) != 3 {
+		t.Errorf("estimate over 2 s after two comment lines: %q", rows)
+	}
+}
+
+func runCmdIn(stdin string, args ...string) (code int, stdout, stderr string) {
+	var o, e strings.Builder
+	code = run(context.Background(), args, stdio{in: strings.NewReader(stdin), out: &o, err: &e})
+	return code, o.String(), e.String()
 }

@@ -3,6 +3,7 @@ package main
 import (
 	"bytes"
 	"context"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"strings"
 	"sync"
 	"testing"
@@ -63,7 +64,7 @@ func TestDemoShowsDevicesAndAnAlarm(t *testing.T) {
 		t.Fatalf("demo exit %d after stop: %s", code, errb.String())
 	}
 	got := out.String()
-	for _, want := range []string{"NOT a certified medical alarm", "web page: http://127.0.0.1:", "metrics:  http://127.0.0.1:",
+	for _, want := range []string{caution.Line, "web page: http://127.0.0.1:", "metrics:  http://127.0.0.1:",
 		"gRPC:     127.0.0.1:", "live: ", "pulsefleet demo: stopped."} {
 		if !strings.Contains(got, want) {
 			t.Errorf("demo output lacks %q:\n%s", want, got)
