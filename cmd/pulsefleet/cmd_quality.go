@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/csv"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"sort"
 	"strconv"
@@ -150,6 +151,9 @@ func batteryCell(v float64) string {
 }
 
 func writeQualityCSV(w io.Writer, qs []*pb.DeviceQuality) error {
+	if err := caution.WriteComment(w); err != nil {
+		return err
+	}
 	cw := csv.NewWriter(w)
 	if err := cw.Write(qualityColumns); err != nil {
 		return err

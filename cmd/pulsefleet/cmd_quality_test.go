@@ -98,7 +98,7 @@ func TestQualityCommandMergesGateways(t *testing.T) {
 	if code != 0 {
 		t.Fatalf("exit %d: %s", code, errOut)
 	}
-	rows, err := csv.NewReader(strings.NewReader(out)).ReadAll()
+	rows, err := csv.NewReader(strings.NewReader(afterCaution(t, "quality CSV", out))).ReadAll()
 	if err != nil {
 		t.Fatal(err)
 	}
