@@ -120,7 +120,7 @@ func (p *Parser) setColumns(names []string, strict bool) error {
 	}
 	for _, r := range need {
 		if p.idx[r] < 0 {
-			return fmt.Errorf("columns %s: want at least %s", strings.Join(names, ","), what)
+			return fmt.Errorf("columns %q: want at least %s", strings.Join(names, ","), what)
 		}
 	}
 	p.started = true
