@@ -129,7 +129,7 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 	db, err := store.Open(o.data, store.Options{ReadOnly: true, Timeout: o.wait})
 	if err != nil {
 		if errors.Is(err, store.ErrLocked) {
-			return fmt.Errorf("--data %s: %w\nexport opens the store read-only but a running gateway holds it: stop the gateway, or use 'pulsefleet trend --gateway ADDR --device ID' for one device's trend as CSV through it", o.data, err)
+			return fmt.Errorf("--data %s: %w: export opens the store read-only but a running gateway holds it: stop the gateway, or use 'pulsefleet trend --gateway ADDR --device ID' for one device's trend as CSV through it", o.data, err)
 		}
 		return fmt.Errorf("--data %s: %w", o.data, err)
 	}

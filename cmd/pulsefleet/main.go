@@ -114,10 +114,11 @@ func run(ctx context.Context, args []string, s stdio) int {
 	case err == nil, errors.Is(err, errHelp):
 		return 0
 	case errors.As(err, &ue):
-		fmt.Fprintf(s.err, "pulsefleet %s: %v\n(run 'pulsefleet %s --help' for usage)\n", c.name, err, c.name)
+		fmt.Fprintf(s.err, "pulsefleet %s: %s\n(run 'pulsefleet %s --help' for usage)\n", c.name, safeText(err.Error()), c.name)
 		return 2
 	default:
-		fmt.Fprintf(s.err, "pulsefleet %s: %v\n", c.name, err)
+		// Errors can carry a gateway's or a file's text: escape controls.
+		fmt.Fprintf(s.err, "pulsefleet %s: %s\n", c.name, safeText(err.Error()))
 		return 1
 	}
 }

@@ -42,10 +42,16 @@ func writeProtoJSON[M proto.Message](w io.Writer, ms []M, opts ...protojson.Mars
 // that are not UTF-8 are shown as Go escapes instead (\n, \r, \t, \x1b,
 // \u009b, \u202e); a backslash is doubled so an escape in the input cannot
 // pass for one made here.
-func safeCell(s string) string {
+func safeCell(s string) string { return escapeControls(s, true) }
+
+// safeText is safeCell for a line of prose (an error message): control
+// characters are escaped, a backslash is left as it is.
+func safeText(s string) string { return escapeControls(s, false) }
+
+func escapeControls(s string, backslash bool) string {
 	clean := true
 	for _, r := range s {
-		if r == '\\' || r == utf8.RuneError || needsEscape(r) {
+		if (backslash && r == '\\') || r == utf8.RuneError || needsEscape(r) {
 			clean = false
 			break
 		}
@@ -59,7 +65,7 @@ func safeCell(s string) string {
 		switch {
 		case r == utf8.RuneError && n <= 1:
 			fmt.Fprintf(&b, `\x%02x`, s[i])
-		case r == '\\':
+		case r == '\\' && backslash:
 			b.WriteString(`\\`)
 		case r == '\n':
 			b.WriteString(`\n`)

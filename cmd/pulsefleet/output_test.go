@@ -2,6 +2,8 @@ package main
 
 import (
 	"bytes"
+	"context"
+	"errors"
 	"strings"
 	"testing"
 	"time"
@@ -106,5 +108,22 @@ func TestSafeCell(t *testing.T) {
 		if got := safeCell(in); got != want {
 			t.Errorf("safeCell(%q) = %q, want %q", in, got, want)
 		}
+	}
+}
+
+// A failing command's one-line error can carry text from a gateway or a
+// file: its control characters are escaped too, so it stays one line.
+func TestErrorLineEscapesControlCharacters(t *testing.T) {
+	register(command{name: "test-hostile-error", run: func(context.Context, []string, stdio) error {
+		return errors.New("gateway said: bed\n7\x1b]0;owned\x07 C:\\data")
+	}})
+	defer delete(commands, "test-hostile-error")
+	var out, errb bytes.Buffer
+	if code := run(context.Background(), []string{"test-hostile-error"}, stdio{out: &out, err: &errb}); code != 1 {
+		t.Fatalf("exit %d, want 1", code)
+	}
+	checkTerminalSafe(t, "error line", errb.String(), 1)
+	if want := `gateway said: bed\n7\x1b]0;owned\x07 C:\data`; !strings.Contains(errb.String(), want) {
+		t.Errorf("error line %q lacks %q", errb.String(), want)
 	}
 }
