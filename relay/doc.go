@@ -12,6 +12,7 @@
 // which; without one the configured columns apply (raw: red,ir; summary:
 // spo2,pulse,pi). Known names: red, ir, ambient, t_s, t_ms (raw) and spo2,
 // pulse, pi, sqi, t_s, t_ms (summary); unknown header names are ignored.
+// Empty lines and lines starting with # (debug prints, comments) are skipped.
 // A bad line is rejected with one reason (Reason*) and never stops the
 // stream.
 //

@@ -133,11 +133,12 @@ func (p *Parser) HasTime() bool { return p.idx[colTS] >= 0 || p.idx[colTMS] >= 0
 // Parse reads one line (without its newline). It returns header true for a
 // first line of column names (err is then about a header that lacks a
 // needed column, which ends the input); otherwise a sample, or the reason
-// the line is rejected. Empty lines give reason "" and ok false: skip them.
+// the line is rejected. Empty lines and comments (starting with #) give
+// reason "" and ok false: skip them.
 func (p *Parser) Parse(line []byte) (s Sample, ok bool, reason string, header bool, err error) {
 	line = bytes.TrimSpace(line)
-	if len(line) == 0 {
-		return s, false, "", false, nil
+	if len(line) == 0 || line[0] == '#' {
+		return s, false, "", false, nil // empty, or a comment (a debug print, a caution line)
 	}
 	if len(line) > MaxLineBytes {
 		return s, false, ReasonTooLong, false, nil

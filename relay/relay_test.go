@@ -46,7 +46,10 @@ func TestParserReasonsAndFormats(t *testing.T) {
 	}
 
 	h, _ := NewParser(Raw, nil, 18)
-	if _, ok, reason, header, err := h.Parse([]byte("# proto fw 0.3 booting")); ok || header || err != nil || reason != ReasonNumber {
+	if _, ok, reason, _, _ := h.Parse([]byte("# a comment")); ok || reason != "" {
+		t.Errorf("a comment: ok %v reason %q, want skipped", ok, reason)
+	}
+	if _, ok, reason, header, err := h.Parse([]byte("proto fw 0.3 booting")); ok || header || err != nil || reason != ReasonNumber {
 		t.Errorf("a banner before the header: ok %v header %v err %v reason %q, want rejected as %s", ok, header, err, reason, ReasonNumber)
 	}
 	if _, _, _, header, err := h.Parse([]byte("t_ms,ir,red,ambient,temp")); !header || err != nil {

@@ -48,7 +48,8 @@ Lines: red,ir[,ambient] samples (--format csv) or spo2,pulse,pi[,sqi] once a
 second (--format summary), separated by commas, semicolons, tabs or spaces;
 an optional header line names the columns, else --columns does. A t_s or t_ms
 column time-stamps samples; without one they are stamped by --rate from the
-first sample. A bad line is counted by reason and skipped. See
+first sample. Lines starting with # are comments. A bad line is counted by
+reason and skipped. See
 docs/device-protocol.md for the line format and the protocol underneath.
 
 With --spool DIR unacknowledged data is kept on disk (at most --spool-max MiB)
