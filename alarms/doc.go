@@ -33,8 +33,15 @@
 //     clears when the drop is below limit - hysteresis;
 //   - signal_lost is present from the first sample without a valid SpO2 to
 //     the next sample with one; signal_poor is SQI < limit; perfusion_low is
-//     PI < limit; device_offline follows Engine.SetOffline, and Engine.Tick
-//     lets time pass for these two without samples;
+//     PI < limit; device_offline follows Engine.SetOffline and
+//     device_clock_fault Engine.SetClockFault, and Engine.Tick lets time pass
+//     for these three without samples;
+//   - device_clock_fault (the gateway refuses or distrusts the device's
+//     clock) is always evaluated: a profile without one gets
+//     DefaultClockFault, since an alarm system must not be silently
+//     disabled (IEC 60601-1-8);
+//   - Engine.Rewind brings a clock that is ahead of now back (a restored
+//     state with a future time), erring towards announcing;
 //   - samples whose time is not after the last evaluated one are ignored, so
 //     a sample resent after a reconnect never counts twice;
 //   - differences of times and of SpO2 (t - onset >= delay, baseline - SpO2

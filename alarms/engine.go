@@ -17,7 +17,7 @@ const (
 	slotPulse          // /min
 	slotPI             // %
 	slotSQI            // 0..1
-	slotNone           // always NaN: conditions fed outside samples (device_offline)
+	slotNone           // always NaN: conditions fed outside samples (device_offline, device_clock_fault)
 	slotPresent        // 1 when SpO2 is valid, 0 when not (signal_lost)
 	numSlots
 )
@@ -68,11 +68,12 @@ type Engine struct {
 	device  string
 	conds   []cond
 	st      []condState
-	tech    []int // indexes of signal_lost and device_offline conditions
+	tech    []int // indexes of signal_lost, device_offline and device_clock_fault conditions
 
-	lastT    float64 // time of the last evaluated sample; -Inf before the first
-	prevSpO2 float64 // valid SpO2 of the last sample, NaN if it had none
-	offline  bool
+	lastT      float64 // time of the last evaluated sample; -Inf before the first
+	prevSpO2   float64 // valid SpO2 of the last sample, NaN if it had none
+	offline    bool
+	clockFault bool
 
 	pauseUntil float64 // +Inf when not paused
 	pauseFrom  float64
@@ -107,15 +108,21 @@ func secs(d interface{ Seconds() float64 }) float64 { return d.Seconds() }
 
 func (e *Engine) compile(p *Profile) {
 	e.profile = p.Clone()
-	e.conds = make([]cond, len(p.Conditions))
-	e.st = make([]condState, len(p.Conditions))
+	pcs := p.Conditions
+	if !hasKind(p, DeviceClockFault) {
+		// The technical condition for a refused device clock cannot be
+		// left out: a profile without one gets DefaultClockFault.
+		pcs = append(pcs[:len(pcs):len(pcs)], DefaultClockFault)
+	}
+	e.conds = make([]cond, len(pcs))
+	e.st = make([]condState, len(pcs))
 	e.tech = e.tech[:0]
 	e.pauseMax = secs(DefaultPauseMax)
 	if p.PauseMax > 0 {
 		e.pauseMax = secs(p.PauseMax)
 	}
-	for i := range p.Conditions {
-		pc := &p.Conditions[i]
+	for i := range pcs {
+		pc := &pcs[i]
 		ki := kinds[pc.Kind]
 		c := cond{name: pc.ConditionName(), kind: pc.Kind, latching: pc.Latching, sign: 1,
 			limit: pc.Limit, clear: pc.Limit + pc.Hysteresis, esc: math.Inf(-1),
@@ -134,10 +141,10 @@ func (e *Engine) compile(p *Profile) {
 			c.sign, c.limit, c.clear = -1, -pc.Limit, -(pc.Limit - pc.Hysteresis)
 		}
 		switch pc.Kind {
-		case SignalLost, DeviceOffline:
-			// 0 = no valid SpO2 / offline, 1 = valid / online.
+		case SignalLost, DeviceOffline, DeviceClockFault:
+			// 0 = no valid SpO2 / offline / clock refused, 1 = valid / online / clock trusted.
 			c.slot, c.limit, c.clear = slotPresent, 0.5, 1
-			if pc.Kind == DeviceOffline {
+			if pc.Kind != SignalLost {
 				c.slot = slotNone
 			}
 			e.tech = append(e.tech, i)
@@ -167,12 +174,22 @@ func (e *Engine) compile(p *Profile) {
 	}
 }
 
+func hasKind(p *Profile, k Kind) bool {
+	for i := range p.Conditions {
+		if p.Conditions[i].Kind == k {
+			return true
+		}
+	}
+	return false
+}
+
 // Reset returns the engine to its freshly created state (no episodes, not
-// paused, online), keeping its buffers. Episode IDs start again at 1.
+// paused, online, clock trusted), keeping its buffers. Episode IDs start
+// again at 1.
 func (e *Engine) Reset() {
 	e.lastT = math.Inf(-1)
 	e.prevSpO2 = math.NaN()
-	e.offline = false
+	e.offline, e.clockFault = false, false
 	e.pauseUntil, e.pauseFrom, e.pausedBy = math.Inf(1), math.NaN(), ""
 	e.nextID, e.revision, e.ignored = 0, 0, 0
 	for i := range e.st {
@@ -441,6 +458,80 @@ func (e *Engine) SetOffline(offline bool, t float64, emit func(Event)) {
 
 // Offline reports the last SetOffline state.
 func (e *Engine) Offline() bool { return e.offline }
+
+// SetClockFault reports at t that the gateway refuses or distrusts the
+// device's clock (fault) or trusts it again. It drives the
+// device_clock_fault condition like SetOffline drives device_offline:
+// present from the first fault report, announced once present for its
+// delay (at a later report or Tick), cleared by the first report of a
+// trusted clock. It never changes the time of the last evaluated sample.
+func (e *Engine) SetClockFault(fault bool, t float64, emit func(Event)) {
+	if t != t {
+		return
+	}
+	if t >= e.pauseUntil {
+		e.expirePause(emit)
+	}
+	if e.clockFault != fault {
+		e.clockFault = fault
+		e.revision++
+	}
+	x := 1.0
+	if fault {
+		x = 0
+	}
+	for _, i := range e.tech {
+		c, st := &e.conds[i], &e.st[i]
+		if c.kind != DeviceClockFault {
+			continue
+		}
+		if c.phase == Inactive {
+			if !fault {
+				continue
+			}
+			e.onset(c, st, t, math.NaN(), c.limit, emit)
+		} else if x >= c.clear {
+			e.clearCond(c, st, t, emit)
+			continue
+		}
+		e.advance(c, st, t, x, emit)
+	}
+}
+
+// ClockFault reports the last SetClockFault state.
+func (e *Engine) ClockFault() bool { return e.clockFault }
+
+// Rewind brings an engine whose clock is ahead of t back to t: the time of
+// the last evaluated sample becomes t, so samples after t are evaluated
+// again. It is for a state that carries a future time (restored from a store
+// written before device times were bounded, or a gateway clock stepped
+// back); every change errs towards announcing: open episodes keep their
+// phase and any time after t moves to t (a pending episode is announced no
+// later than its delay after t), desaturation baselines start afresh, and a
+// pause that starts after t or would last beyond pause_max from t ends at
+// once. It reports whether anything changed.
+func (e *Engine) Rewind(t float64, emit func(Event)) bool {
+	if !(e.lastT > t) || t != t {
+		return false
+	}
+	e.lastT = t
+	for i := range e.st {
+		st := &e.st[i]
+		if e.conds[i].phase != Inactive {
+			for _, f := range []*float64{&st.ep.OnsetS, &st.ep.AnnouncedS, &st.ep.EscalatedS, &st.ep.AckedS} {
+				if *f > t {
+					*f = t
+				}
+			}
+		}
+		st.win.reset()
+	}
+	if !math.IsInf(e.pauseUntil, 1) && (e.pauseFrom > t || e.pauseUntil > t+e.pauseMax) {
+		e.endPause("", t, emit)
+	}
+	e.revision++
+	return true
+}
 
 // Acknowledge records an operator's acknowledgement at t of every announced
 // episode not yet acknowledged at its current priority, and stops the signal

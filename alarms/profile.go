@@ -21,6 +21,15 @@ const DefaultPauseMax = 2 * time.Minute
 // scoring software).
 const DefaultBaseline = 120 * time.Second
 
+// DefaultClockFault is the device_clock_fault condition an Engine adds when
+// its profile has none: an alarm system must not be silently disabled (IEC
+// 60601-1-8), and a device whose data the gateway refuses for its clock is
+// not monitored. Delay 10 s (team choice: shorter than the 15 s spo2_low
+// delay of adult-ward-pilot, so a refused clock is announced no later than
+// the low SpO2 it may hide would have been), priority medium (team choice;
+// IEC 60601-1-8 medium = prompt response, as signal_lost after escalation).
+var DefaultClockFault = Condition{Kind: DeviceClockFault, Delay: 10 * time.Second, Priority: PriorityMedium}
+
 // Profile is a set of alarm conditions for a stream.
 //
 // File format (YAML; the CONTRACT keys are name and conditions[].kind, limit,
@@ -50,7 +59,8 @@ type Profile struct {
 // Condition is one alarm condition of a profile. Units of Limit and
 // Hysteresis follow the kind: SpO2 in %, pulse in /min, PI in %, SQI 0..1;
 // for Desaturation Limit is the drop in SpO2 points below the baseline (3 or
-// 4 in sleep-medicine scoring). SignalLost and DeviceOffline use neither.
+// 4 in sleep-medicine scoring). SignalLost, DeviceOffline and
+// DeviceClockFault use neither.
 type Condition struct {
 	Name       string        // unique in the profile; "" means Kind.String()
 	Kind       Kind          //
@@ -329,15 +339,16 @@ const (
 )
 
 var kinds = [numKinds]kindInfo{
-	SpO2Low:       {field: fieldSpO2, hasLimit: true, limitLo: 50, limitHi: 100, hystHi: 10, unit: "%"},
-	SpO2High:      {field: fieldSpO2, high: true, hasLimit: true, limitLo: 50, limitHi: 100, hystHi: 10, unit: "%"},
-	PulseLow:      {field: fieldPulse, hasLimit: true, limitLo: 20, limitHi: 300, hystHi: 50, unit: "/min"},
-	PulseHigh:     {field: fieldPulse, high: true, hasLimit: true, limitLo: 20, limitHi: 300, hystHi: 50, unit: "/min"},
-	Desaturation:  {field: fieldSpO2, hasLimit: true, limitLo: 1, limitHi: 20, hystHi: 20, unit: "points"},
-	SignalLost:    {field: fieldNone},
-	SignalPoor:    {field: fieldSQI, hasLimit: true, limitLo: 0.01, limitHi: 1, hystHi: 1},
-	PerfusionLow:  {field: fieldPI, hasLimit: true, limitLo: 0.01, limitHi: 20, hystHi: 20, unit: "%"},
-	DeviceOffline: {field: fieldNone},
+	SpO2Low:          {field: fieldSpO2, hasLimit: true, limitLo: 50, limitHi: 100, hystHi: 10, unit: "%"},
+	SpO2High:         {field: fieldSpO2, high: true, hasLimit: true, limitLo: 50, limitHi: 100, hystHi: 10, unit: "%"},
+	PulseLow:         {field: fieldPulse, hasLimit: true, limitLo: 20, limitHi: 300, hystHi: 50, unit: "/min"},
+	PulseHigh:        {field: fieldPulse, high: true, hasLimit: true, limitLo: 20, limitHi: 300, hystHi: 50, unit: "/min"},
+	Desaturation:     {field: fieldSpO2, hasLimit: true, limitLo: 1, limitHi: 20, hystHi: 20, unit: "points"},
+	SignalLost:       {field: fieldNone},
+	SignalPoor:       {field: fieldSQI, hasLimit: true, limitLo: 0.01, limitHi: 1, hystHi: 1},
+	PerfusionLow:     {field: fieldPI, hasLimit: true, limitLo: 0.01, limitHi: 20, hystHi: 20, unit: "%"},
+	DeviceOffline:    {field: fieldNone},
+	DeviceClockFault: {field: fieldNone},
 }
 
 const maxDelay = 10 * time.Minute
@@ -389,7 +400,7 @@ func fmtF(f float64) string { return strconv.FormatFloat(f, 'g', -1, 64) }
 
 func (c *Condition) validate(path string) error {
 	if c.Kind == KindInvalid || c.Kind >= numKinds {
-		return fieldErr(path+".kind", "missing, want one of spo2_low, spo2_high, pulse_low, pulse_high, desaturation, signal_lost, signal_poor, perfusion_low, device_offline")
+		return fieldErr(path+".kind", "missing, want one of spo2_low, spo2_high, pulse_low, pulse_high, desaturation, signal_lost, signal_poor, perfusion_low, device_offline, device_clock_fault")
 	}
 	if len(c.Name) > 64 {
 		return fieldErr(path+".name", "length %d, want <= 64", len(c.Name))

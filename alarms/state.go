@@ -24,6 +24,7 @@ type State struct {
 	LastS      *float64         `json:"last_s,omitempty"`        // time of the last evaluated sample
 	PrevSpO2   *float64         `json:"prev_spo2_pct,omitempty"` // its valid SpO2
 	Offline    bool             `json:"offline,omitempty"`
+	ClockFault bool             `json:"clock_fault,omitempty"`
 	Pause      *PauseState      `json:"pause,omitempty"`
 	Conditions []ConditionState `json:"conditions"`
 }
@@ -63,7 +64,7 @@ func fromOpt(p *float64) float64 {
 func (e *Engine) Snapshot() State {
 	s := State{Version: StateVersion, Device: e.device, Profile: e.profile.Name,
 		Revision: e.revision, NextID: e.nextID, LastS: optF(e.lastT),
-		PrevSpO2: optF(e.prevSpO2), Offline: e.offline}
+		PrevSpO2: optF(e.prevSpO2), Offline: e.offline, ClockFault: e.clockFault}
 	if !math.IsInf(e.pauseUntil, 1) {
 		s.Pause = &PauseState{By: e.pausedBy, FromS: e.pauseFrom, UntilS: e.pauseUntil}
 	}
@@ -153,7 +154,7 @@ func Restore(p *Profile, st State) (*Engine, error) {
 		e.lastT = *st.LastS
 	}
 	e.prevSpO2 = fromOpt(st.PrevSpO2)
-	e.offline = st.Offline
+	e.offline, e.clockFault = st.Offline, st.ClockFault
 	if ps := st.Pause; ps != nil {
 		e.pauseUntil, e.pauseFrom, e.pausedBy = ps.UntilS, ps.FromS, ps.By
 	}

@@ -53,26 +53,31 @@ func (p *Priority) UnmarshalText(b []byte) error {
 
 // Kind is what an alarm condition watches. Physiological kinds compare a
 // measured value with a limit; technical kinds (SignalLost, SignalPoor,
-// PerfusionLow, DeviceOffline) describe the measurement itself.
+// PerfusionLow, DeviceOffline, DeviceClockFault) describe the measurement
+// itself or the equipment.
 type Kind uint8
 
 // Kinds of alarm condition. The zero Kind is invalid.
 const (
-	KindInvalid   Kind = iota
-	SpO2Low            // SpO2 < limit (%)
-	SpO2High           // SpO2 > limit (%)
-	PulseLow           // pulse rate < limit (/min)
-	PulseHigh          // pulse rate > limit (/min)
-	Desaturation       // SpO2 at least limit points below a running baseline
-	SignalLost         // no valid SpO2
-	SignalPoor         // signal quality index < limit (0..1)
-	PerfusionLow       // perfusion index < limit (%)
-	DeviceOffline      // the gateway reports the device offline (SetOffline)
+	KindInvalid      Kind = iota
+	SpO2Low               // SpO2 < limit (%)
+	SpO2High              // SpO2 > limit (%)
+	PulseLow              // pulse rate < limit (/min)
+	PulseHigh             // pulse rate > limit (/min)
+	Desaturation          // SpO2 at least limit points below a running baseline
+	SignalLost            // no valid SpO2
+	SignalPoor            // signal quality index < limit (0..1)
+	PerfusionLow          // perfusion index < limit (%)
+	DeviceOffline         // the gateway reports the device offline (SetOffline)
+	DeviceClockFault      // the gateway refuses or distrusts the device's clock (SetClockFault)
 	numKinds
 )
 
 var kindNames = [...]string{"invalid", "spo2_low", "spo2_high", "pulse_low", "pulse_high",
-	"desaturation", "signal_lost", "signal_poor", "perfusion_low", "device_offline"}
+	"desaturation", "signal_lost", "signal_poor", "perfusion_low", "device_offline", "device_clock_fault"}
+
+var kindLabels = [...]string{"invalid", "SpO2 low", "SpO2 high", "pulse rate low", "pulse rate high",
+	"desaturation", "SpO2 signal lost", "poor signal", "low perfusion", "device offline", "device clock fault"}
 
 // String returns the profile-file name of the kind, e.g. spo2_low.
 func (k Kind) String() string {
@@ -80,6 +85,14 @@ func (k Kind) String() string {
 		return kindNames[k]
 	}
 	return fmt.Sprintf("kind(%d)", k)
+}
+
+// Label returns a readable label of the kind, e.g. "device clock fault".
+func (k Kind) Label() string {
+	if int(k) < len(kindLabels) {
+		return kindLabels[k]
+	}
+	return k.String()
 }
 
 // Technical reports whether k is a technical alarm condition (about the
@@ -93,7 +106,7 @@ func ParseKind(s string) (Kind, error) {
 			return Kind(i), nil
 		}
 	}
-	return KindInvalid, fmt.Errorf("kind %q, want one of spo2_low, spo2_high, pulse_low, pulse_high, desaturation, signal_lost, signal_poor, perfusion_low, device_offline", s)
+	return KindInvalid, fmt.Errorf("kind %q, want one of spo2_low, spo2_high, pulse_low, pulse_high, desaturation, signal_lost, signal_poor, perfusion_low, device_offline, device_clock_fault", s)
 }
 
 // MarshalText encodes the kind by name.
