@@ -22,6 +22,13 @@ type Batch struct {
 	Episodes    []*Episode
 	AlarmStates map[string][]byte // device -> opaque snapshot; nil value deletes
 	Audit       []*AuditEntry
+
+	// KeptOut is set by Write: how many of Points it did not write because
+	// the store already held a point of that device at that time (earlier
+	// in the same batch included). Stored history is never rewritten: the
+	// first value at a device time stays (keepfirst.go). Write removes them
+	// from Points.
+	KeptOut int
 }
 
 // Len is the number of records in the batch.
@@ -45,6 +52,7 @@ func (b *Batch) Reset() {
 	clear(b.AlarmStates)
 	clear(b.Audit)
 	b.Audit = b.Audit[:0]
+	b.KeptOut = 0
 }
 
 // indexCache maps device ids to ledger indices; filled lazily.
@@ -63,6 +71,7 @@ func (db *DB) Write(b *Batch) error {
 	defer db.writeMu.Unlock()
 	plan := db.tail.planCompaction(time.Now())
 	newIdx := map[string]uint32{}
+	var pendingNewest map[string]int64 // newest trend times of this batch, recorded once it commits
 	// index returns a device's ledger index, creating a bare record for a
 	// device first seen in this batch's trend points.
 	var index func(tx *bolt.Tx, id string) (uint32, error)
@@ -122,6 +131,7 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
+		b.Points, b.KeptOut, pendingNewest = db.keepFirst(tx, b.Points)
 		if err := writeRecent(tx, db.tail.gen, b.Points, func(id string) (uint32, error) { return index(tx, id) }); err != nil {
 			return err
 		}
@@ -219,6 +229,9 @@ func (db *DB) Write(b *Batch) error {
 		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
 	}
 	db.tail.afterCommit(b.Points, plan)
+	for dev, t := range pendingNewest {
+		db.newest[dev] = t
+	}
 	if len(newIdx) > 0 {
 		db.idx.mu.Lock()
 		for id, i := range newIdx {

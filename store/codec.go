@@ -95,25 +95,34 @@ func decodeRaw(v []byte, r *RawCapture) error {
 	return nil
 }
 
-const cursorSize = 1 + 7*8 + 8
+// cursorSize is a cursor record with LastDeviceMS; cursorSizeV0 one written
+// before it existed (decoded with LastDeviceMS 0: unknown).
+const (
+	cursorSizeV0 = 1 + 7*8 + 8
+	cursorSize   = cursorSizeV0 + 8
+)
 
 func encodeCursor(c *Cursor) []byte {
 	b := make([]byte, 0, cursorSize)
 	b = append(b, vCursor)
-	for _, v := range []uint64{c.LastSeq, c.Chunks, c.Samples, c.Lost, c.Duplicates, c.Rejected, c.Late, uint64(c.LastSeenMS)} {
+	for _, v := range []uint64{c.LastSeq, c.Chunks, c.Samples, c.Lost, c.Duplicates, c.Rejected, c.Late, uint64(c.LastSeenMS), uint64(c.LastDeviceMS)} {
 		b = binary.BigEndian.AppendUint64(b, v)
 	}
 	return b
 }
 
 func decodeCursor(v []byte, c *Cursor) error {
-	if len(v) != cursorSize || v[0] != vCursor {
-		return fmt.Errorf("bad cursor record")
+	if (len(v) != cursorSize && len(v) != cursorSizeV0) || v[0] != vCursor {
+		return fmt.Errorf("bad cursor record (%d bytes, version %d)", len(v), firstByte(v))
 	}
 	f := []*uint64{&c.LastSeq, &c.Chunks, &c.Samples, &c.Lost, &c.Duplicates, &c.Rejected, &c.Late}
 	for i, p := range f {
 		*p = binary.BigEndian.Uint64(v[1+8*i:])
 	}
 	c.LastSeenMS = int64(binary.BigEndian.Uint64(v[1+8*7:]))
+	c.LastDeviceMS = 0
+	if len(v) == cursorSize {
+		c.LastDeviceMS = int64(binary.BigEndian.Uint64(v[1+8*8:]))
+	}
 	return nil
 }

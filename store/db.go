@@ -26,7 +26,7 @@ const (
 	vPoint  = 1
 	vChunk  = 1
 	vRaw    = 1
-	vCursor = 1
+	vCursor = 1 // version 1 carries LastDeviceMS when 8 bytes longer (older cursors lack it)
 )
 
 // Sentinel errors.
@@ -82,6 +82,7 @@ type DB struct {
 
 	writeMu sync.Mutex // serialises Write (bbolt does too) and guards the tail's generations
 	tail    trendTail
+	newest  map[string]int64 // per device, the newest trend time committed (keepfirst.go); guarded by writeMu
 }
 
 // Open opens (creating when needed) the store in directory dir.
@@ -148,7 +149,7 @@ func Open(dir string, opt Options) (*DB, error) {
 			return nil, damaged(path, "%s", strings.Join(p, "; "))
 		}
 	}
-	db := &DB{path: path, idx: indexCache{m: map[string]uint32{}}}
+	db := &DB{path: path, idx: indexCache{m: map[string]uint32{}}, newest: map[string]int64{}}
 	err = guard(path, func() error { return db.open(opt, ident) })
 	if err != nil {
 		if db.bolt != nil {

@@ -36,6 +36,15 @@
 // (verify.go) is the full check. The identity file makes a store that
 // vanished or became empty refuse to open instead of starting empty.
 //
+// Keep the first: stored history is never rewritten. Write does not write a
+// trend point at a device time the store already holds for that device (in
+// the day buckets, the recent log, or earlier in the batch); it removes it
+// from Batch.Points and counts it in Batch.KeptOut (keepfirst.go). The
+// gateway refuses such a resend before it gets here (the device time of a
+// data message must be after Cursor.LastDeviceMS) and tells the device
+// which message was refused; this is the store's own guarantee beneath
+// that. Cursors written before LastDeviceMS existed read as 0 (unknown).
+//
 // Caveats: bbolt allows one writer at a time and takes an exclusive file lock,
 // so only one process opens a data directory; a second Open waits Options.Timeout
 // and fails with ErrLocked.

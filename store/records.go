@@ -37,6 +37,10 @@ type Cursor struct {
 	Rejected   uint64 // messages rejected for any reason
 	Late       uint64 // accepted messages far behind the gateway clock
 	LastSeenMS int64  // gateway clock at the last accepted message
+	// LastDeviceMS is the device time of the message at LastSeq (0 =
+	// unknown): a later message must carry a later device time, so a
+	// resend of stored device times is refused as stale (gateway/doc.go).
+	LastDeviceMS int64
 }
 
 // Point is one trend point: one second of a device's values. NaN marks a

@@ -55,7 +55,8 @@ func TestRecentPointsSurviveReopen(t *testing.T) {
 
 // A sealed generation is moved device by device over later writes, queries
 // see every point throughout, and the generation's bucket is dropped at the
-// end. A point rewritten later wins over the earlier write.
+// end. A point written again later is kept out: the first write stays
+// (keepfirst.go), wherever the first one is at the time.
 func TestCompactionMovesGenerationsAcrossWrites(t *testing.T) {
 	db, _ := mustOpen(t)
 	const devices = compactPerWrite + 44
@@ -70,10 +71,13 @@ func TestCompactionMovesGenerationsAcrossWrites(t *testing.T) {
 	}
 	db.tail.genStart = time.Time{} // the generation is old enough: the next write seals it
 	for w := 0; w < 3; w++ {
-		// Each write rewrites d000's second 4 and adds a new point.
+		// Each write tries to rewrite d000's second 4 and adds a new point.
 		nb := &Batch{Points: []Point{{Device: "d000", TimeMS: 4000, SpO2: float64(80 + w)}, {Device: "d001", TimeMS: 10_000 + int64(w)*1000, SpO2: 91}}}
 		if err := db.Write(nb); err != nil {
 			t.Fatal(err)
+		}
+		if nb.KeptOut != 1 {
+			t.Errorf("write %d: KeptOut %d, want 1 (d000 at 4 s)", w, nb.KeptOut)
 		}
 		for _, dev := range []string{"d000", "d100", fmt.Sprintf("d%03d", devices-1)} {
 			if n, _ := countTrend(t, db, dev); n != 5 {
@@ -88,8 +92,8 @@ func TestCompactionMovesGenerationsAcrossWrites(t *testing.T) {
 		t.Errorf("%d generations in the recent log, want 1 (the current)", g)
 	}
 	_, last := countTrend(t, db, "d000")
-	if last.SpO2 != 82 {
-		t.Errorf("d000 at 4 s: %v, want the last write (82)", last.SpO2)
+	if last.SpO2 != 90 {
+		t.Errorf("d000 at 4 s: %v, want the first write (90)", last.SpO2)
 	}
 	if n, _ := countTrend(t, db, "d001"); n != 8 {
 		t.Errorf("d001: %d points, want 8", n)
@@ -101,7 +105,7 @@ func TestCompactionMovesGenerationsAcrossWrites(t *testing.T) {
 		t.Errorf("%d generations after CompactAll, want 0", g)
 	}
 	_, last = countTrend(t, db, "d000")
-	if last.SpO2 != 82 || len(db.tail.devices()) != 0 {
+	if last.SpO2 != 90 || len(db.tail.devices()) != 0 {
 		t.Errorf("after CompactAll: d000 at 4 s %v, tail devices %d", last.SpO2, len(db.tail.devices()))
 	}
 }
