@@ -28,5 +28,7 @@
 // Time: the wall clock paces sending (a device sends a chunk every
 // chunk/rate seconds of device time, divided by the speed-up); device clocks
 // and the patient's state follow scenario time, which is wall time since the
-// start times the speed-up.
+// start times the speed-up. A compressed run replays the past: device clocks
+// start before the wall clock by what they gain over the run, so they never
+// run ahead of the gateway's clock (Options.Start).
 package sim

@@ -47,7 +47,11 @@ type Options struct {
 	// Seed derives every device's patient, clock drift and faults.
 	Seed uint64
 	// Start is the device clock at scenario time 0; zero = the wall clock
-	// when Run starts.
+	// when Run starts, or with Speed > 1 as far before it as the device
+	// clocks gain over the run (scenario time covered minus wall time), so
+	// they reach the wall clock when the run ends and are never ahead of a
+	// gateway's clock (it refuses device times more than 5 s ahead). An
+	// open-ended compressed run covers 24 h of scenario time that way.
 	Start time.Time
 
 	// DropEvery drops each device's stream about this often (wall time,
