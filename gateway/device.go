@@ -28,6 +28,7 @@ type device struct {
 	alarmRev    uint64                // engine revision last persisted
 	sessionMS   int64                 // start of the current or last session (gateway clock)
 	q           quality               // signal-quality and uptime accumulators
+	clock       deviceClock           // device time policy (clock.go)
 	activeGauge map[[2]string]float64 // this device's share of pulsefleet_alarms_active
 }
 
@@ -35,6 +36,15 @@ func (d *device) markDurable(seq uint64) {
 	d.mu.Lock()
 	if seq > d.durableSeq {
 		d.durableSeq = seq
+	}
+	// The device time of the newest durable message (clock.go).
+	n := 0
+	for n < len(d.clock.pending) && d.clock.pending[n].seq <= seq {
+		d.clock.durableMS = d.clock.pending[n].devMS
+		n++
+	}
+	if n > 0 {
+		d.clock.pending = append(d.clock.pending[:0], d.clock.pending[n:]...)
 	}
 	d.mu.Unlock()
 }

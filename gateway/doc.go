@@ -23,7 +23,59 @@
 // Delivery: a data message is acknowledged only after the batch that holds
 // its effects (ledger record, trend points, cursor) has committed. A device
 // that reconnects is told the highest durable sequence number; anything at or
-// below the last accepted number is rejected as stale and never stored twice.
+// below the last accepted number is rejected as stale and never stored twice;
+// so is a message whose device time is not after the last accepted one
+// (Device time, below).
+//
+// Device time: alarms are evaluated on the device's clock (trend points,
+// episodes and alarm delays are in device time), so a wrong device clock
+// must neither freeze evaluation nor rewrite history, and must never pass
+// silently. With IEC 60601-1-8 in mind (an alarm system must not be
+// silently disabled; a technical alarm condition signals that the equipment
+// cannot do its job), the gateway applies one rule to every data message
+// (raw chunk or summary), after its sequence number is found new
+// (clock.go):
+//
+//   - Ahead: a device time more than 5 s (clockAheadMax) ahead of the
+//     gateway clock is refused: REJECT_REASON_INVALID_FIELD naming
+//     *.device_time_unix_ms, how far ahead it is and the bound. Nothing of
+//     the message is stored or evaluated, so no single message can push the
+//     alarm engine's clock (or a stored episode) into the future.
+//   - Too old: a device time more than a year behind the gateway clock is
+//     refused the same way.
+//   - Not after the last accepted device time of the device (a clock set
+//     back, or a resend of device times already stored under new sequence
+//     numbers): refused as stale, REJECT_REASON_STALE_SEQUENCE naming
+//     *.device_time_unix_ms and the last accepted time. Stored history keeps
+//     the first values at a device time and is never rewritten (store/doc.go,
+//     "Keep the first"). The last accepted device time is part of the
+//     durable cursor, so the rule holds across restarts.
+//   - Lagging: within a session, a message more than 60 s (clockLagMax)
+//     further behind the gateway clock than the session's least-behind
+//     message means a clock that runs slow or stands still (it would stretch
+//     every alarm delay). Such messages are stored and evaluated, but the
+//     clock is distrusted. A resent backlog comes first in a session and
+//     does not count.
+//
+// Every refused or distrusted message makes the technical alarm condition
+// device_clock_fault ("device clock fault") present; the first message
+// accepted with a trusted clock clears it. Its delay and priority come from
+// the profile (adult-ward-pilot: 10 s, medium); a profile without one gets
+// alarms.DefaultClockFault (10 s, medium): it cannot be left out. The
+// gateway times it on its own clock, mapped to device time, so it is
+// announced while every message is being refused. The rule this gives,
+// checked by a property test over random timestamp sequences
+// (TestPropertyNoDeviceTimestampsSilenceLowSpO2): no combination of device
+// timestamps leaves a device whose SpO2 stays below the limit without an
+// announced spo2_low or device_clock_fault.
+//
+// The gateway does not re-anchor a wrong clock to its own: it cannot tell a
+// real-time message from a resent one, and stamping an old value with the
+// arrival time would show it as current. A device sets its clock from
+// Welcome.gateway_time_unix_ms. At start-up an alarm state or cursor that
+// carries a time more than clockAheadMax ahead of the gateway clock (from a
+// store written before this rule, or a gateway clock set back) is rewound
+// to the gateway clock (alarms.Engine.Rewind), erring towards announcing.
 //
 // Not a certified medical alarm: a research and engineering tool.
 package gateway

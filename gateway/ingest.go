@@ -315,7 +315,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	g.ensureEngine(d)
 	var evs []alarms.Event
 	if d.engine != nil && d.engine.Offline() {
-		d.engine.SetOffline(false, d.deviceTimeS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
+		d.engine.SetOffline(false, d.engineNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
 	}
 	rec := &record{dev: d, desc: &desc, session: &store.Session{Device: d.id, StartMS: nowMS, Remote: s.remote, Mode: desc.Mode}}
 	g.alarmEffects(d, evs, rec)
@@ -330,7 +330,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	d.mu.Lock()
 	d.desc.Index = rec.desc.Index // assigned by the store on the device's first write
 	resume := d.durableSeq
-	d.cur.LastSeq = resume // anything not durable is resent by the device
+	d.rewindToDurable() // anything not durable is resent by the device
 	d.mu.Unlock()
 	s.id = d.id + "-" + strconv.FormatInt(nowMS, 36)
 	s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Welcome{Welcome: &pb.Welcome{
@@ -402,12 +402,12 @@ func (s *stream) handle(ctx context.Context, m *pb.ConnectRequest) error {
 			s.rejectMsg(reject(k.Summary.GetSequence(), pb.RejectReason_REJECT_REASON_WRONG_MODE, "summary", "device introduced itself in raw mode"))
 			return nil
 		}
-		if r := validateSummary(k.Summary, nowMS); r != nil {
+		if r := validateSummary(k.Summary); r != nil {
 			s.countReject()
 			s.rejectMsg(r)
 			return nil
 		}
-		return s.accept(ctx, k.Summary.GetSequence(), k.Summary.GetDeviceTimeUnixMs(), 0, nowMS, func(rec *record) {
+		return s.accept(ctx, k.Summary.GetSequence(), "summary.device_time_unix_ms", k.Summary.GetDeviceTimeUnixMs(), 0, 0, nowMS, func(rec *record) {
 			sm := k.Summary
 			p := store.Point{Device: s.dev.id, TimeMS: sm.GetDeviceTimeUnixMs(), SpO2: val(sm.Spo2Pct), Pulse: val(sm.PulseBpm),
 				PI: val(sm.PiPct), SQI: val(sm.Quality), Ratio: math.NaN(), Source: uint8(pb.Source_SOURCE_DEVICE)}
@@ -420,12 +420,13 @@ func (s *stream) handle(ctx context.Context, m *pb.ConnectRequest) error {
 			s.rejectMsg(reject(c.GetSequence(), pb.RejectReason_REJECT_REASON_WRONG_MODE, "raw_chunk", "device introduced itself in summary mode"))
 			return nil
 		}
-		if r := validateRaw(c, s.adc, g.opt.MaxChunkSamples, nowMS); r != nil {
+		if r := validateRaw(c, s.adc, g.opt.MaxChunkSamples); r != nil {
 			s.countReject()
 			s.rejectMsg(r)
 			return nil
 		}
-		return s.accept(ctx, c.GetSequence(), c.GetDeviceTimeUnixMs(), uint32(len(c.GetRed())), nowMS, func(rec *record) {
+		spanMS := int64(float64(len(c.GetRed())) * 1000 / c.GetSampleRateHz())
+		return s.accept(ctx, c.GetSequence(), "raw_chunk.device_time_unix_ms", c.GetDeviceTimeUnixMs(), uint32(len(c.GetRed())), spanMS, nowMS, func(rec *record) {
 			s.estimate(c, rec)
 			if g.opt.CaptureRaw {
 				rec.raw = &store.RawCapture{Device: s.dev.id, Seq: c.GetSequence(), DeviceTimeMS: c.GetDeviceTimeUnixMs(),
@@ -452,9 +453,11 @@ func (s *stream) countReject() {
 	s.dev.mu.Unlock()
 }
 
-// accept applies the sequence rules to a valid data message, lets fill add
-// its effects, runs the alarm engine over new points, and queues the record.
-func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples uint32, nowMS int64, fill func(*record)) error {
+// accept applies the sequence rules and the device time policy (clock.go)
+// to a valid data message, lets fill add its effects, runs the alarm engine
+// over new points, and queues the record. field names the message's device
+// time; spanMS is the device time it covers (raw chunks).
+func (s *stream) accept(ctx context.Context, seq uint64, field string, devMS int64, samples uint32, spanMS, nowMS int64, fill func(*record)) error {
 	g, d := s.g, s.dev
 	d.mu.Lock()
 	last := d.cur.LastSeq
@@ -466,6 +469,24 @@ func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples ui
 			"%d is not above %d, the last accepted; it is already held (never stored twice)", seq, last))
 		return nil
 	}
+	var evs []alarms.Event
+	collect := func(e alarms.Event) { evs = append(evs, e) }
+	rej, late := d.admitTime(seq, field, devMS, samples, spanMS, nowMS, g.opt.LateAfter, collect)
+	if rej != nil {
+		// Refused for its device time: nothing of it is stored or
+		// evaluated; the clock fault it raised is.
+		d.cur.Rejected++
+		rec := &record{dev: d}
+		g.alarmEffects(d, evs, rec)
+		d.mu.Unlock()
+		s.rejectMsg(rej)
+		if rec.alarm != nil || len(rec.episodes) > 0 {
+			if err := g.w.submit(ctx, rec); err != nil {
+				return status.Errorf(codes.Unavailable, "store: %v", err)
+			}
+		}
+		return nil
+	}
 	gap := seq - last - 1
 	if last == 0 && d.durableSeq == 0 && d.cur.Chunks == 0 {
 		gap = 0 // a device's first message may start anywhere
@@ -475,9 +496,9 @@ func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples ui
 	d.cur.Chunks++
 	d.cur.Samples += uint64(samples)
 	d.cur.LastSeenMS = nowMS
-	// Quality accounting: clock drift, effective rate, and lateness against
-	// the least-delayed recent messages (immune to resent backlogs).
-	late := d.q.addChunk(nowMS, devMS, samples, g.opt.LateAfter)
+	// Quality accounting (admitTime): clock drift, effective rate, and
+	// lateness against the least-delayed recent messages (immune to resent
+	// backlogs).
 	if late {
 		d.cur.Late++
 	}
@@ -497,14 +518,10 @@ func (s *stream) accept(ctx context.Context, seq uint64, devMS int64, samples ui
 	fill(rec)
 
 	d.mu.Lock()
-	var evs []alarms.Event
 	for i := range rec.points {
 		p := &rec.points[i]
 		d.q.addPoint(p)
-		if d.engine != nil {
-			d.engine.Eval(alarms.Sample{T: float64(p.TimeMS) / 1000, SpO2: p.SpO2, Pulse: p.Pulse, PI: p.PI, SQI: p.SQI},
-				func(e alarms.Event) { evs = append(evs, e) })
-		}
+		d.evalPoint(p, collect)
 	}
 	if n := len(rec.points); n > 0 {
 		d.latest = pointProto(&rec.points[n-1])

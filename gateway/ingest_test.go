@@ -80,7 +80,7 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 	// A raw device with every kind of bad chunk.
 	bad.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: rawIntro("bad-raw", 16)}})
 	chunk := func(seq uint64, rate float64, n int, v uint32) *pb.ConnectRequest {
-		c := &pb.RawChunk{Sequence: seq, DeviceTimeUnixMs: base, SampleRateHz: rate}
+		c := &pb.RawChunk{Sequence: seq, DeviceTimeUnixMs: base + int64(seq)*250, SampleRateHz: rate}
 		for i := 0; i < n; i++ {
 			c.Red, c.Ir = append(c.Red, v), append(c.Ir, v)
 		}

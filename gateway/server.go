@@ -152,6 +152,9 @@ func (g *Gateway) load() error {
 				}
 			}
 		}
+		if d.restoreClock(g.nowMS()) {
+			g.log.Warn("alarm state carried a time ahead of the gateway clock; evaluation rewound to now", "device", desc.ID)
+		}
 		g.refreshActive(d)
 	}
 	return nil
@@ -191,7 +194,7 @@ func (g *Gateway) storeFailed(err error) {
 		if s := d.stream; s != nil {
 			s.cancel(fmt.Errorf("store write failed: %w", err))
 		}
-		d.cur.LastSeq = d.durableSeq
+		d.rewindToDurable()
 		d.mu.Unlock()
 	}
 }
@@ -327,7 +330,10 @@ func (g *Gateway) watchdog(ctx context.Context) {
 		nowMS := g.nowMS()
 		for _, d := range g.devices.all() {
 			d.mu.Lock()
-			if d.stream != nil || d.engine == nil {
+			// Streams move their own engines, but a device whose every
+			// message is refused for its clock still needs time to pass
+			// for device_clock_fault to be announced.
+			if d.engine == nil || d.stream != nil && !d.engine.ClockFault() {
 				d.mu.Unlock()
 				continue
 			}

@@ -19,8 +19,10 @@ const (
 	maxLabels      = 8
 	maxLabelKeyLen = 32
 	maxLabelValLen = 64
-	// maxClockSkew bounds a device clock against the gateway's: a device time
-	// further away than this is refused (a device with no clock must set one).
+	// maxClockSkew bounds how far a device time may be behind the gateway
+	// clock: older is refused (a device with no clock must set one). The
+	// bound ahead is clockAheadMax; both are applied by admitTime (clock.go),
+	// which raises device_clock_fault for every message it refuses.
 	maxClockSkew = 366 * 24 * 3600 * 1000
 )
 
@@ -97,7 +99,8 @@ func validateIntroduction(in *pb.Introduction) *pb.Rejection {
 }
 
 // validateRaw checks a raw chunk against the device's declared sensor.
-func validateRaw(c *pb.RawChunk, adcBits uint32, maxSamples int, nowMS int64) *pb.Rejection {
+// Its device time is checked by admitTime (clock.go).
+func validateRaw(c *pb.RawChunk, adcBits uint32, maxSamples int) *pb.Rejection {
 	seq := c.GetSequence()
 	if seq == 0 {
 		return invalid(0, "raw_chunk.sequence", "0, want >= 1")
@@ -132,18 +135,12 @@ func validateRaw(c *pb.RawChunk, adcBits uint32, maxSamples int, nowMS int64) *p
 	if g := c.GetGain(); !(g >= 0 && g <= 1000) {
 		return invalid(seq, "raw_chunk.gain", "%v, want 0..1000", g)
 	}
-	return validateDeviceTime(seq, "raw_chunk.device_time_unix_ms", c.GetDeviceTimeUnixMs(), nowMS)
-}
-
-func validateDeviceTime(seq uint64, field string, t, nowMS int64) *pb.Rejection {
-	if t <= 0 || t < nowMS-maxClockSkew || t > nowMS+maxClockSkew {
-		return invalid(seq, field, "%d, want within one year of the gateway clock (%d)", t, nowMS)
-	}
 	return nil
 }
 
-// validateSummary checks a device-computed second.
-func validateSummary(s *pb.Summary, nowMS int64) *pb.Rejection {
+// validateSummary checks a device-computed second. Its device time is
+// checked by admitTime (clock.go).
+func validateSummary(s *pb.Summary) *pb.Rejection {
 	seq := s.GetSequence()
 	if seq == 0 {
 		return invalid(0, "summary.sequence", "0, want >= 1")
@@ -169,7 +166,7 @@ func validateSummary(s *pb.Summary, nowMS int64) *pb.Rejection {
 	if r := check("summary.quality", s.Quality, 0, 1, ""); r != nil {
 		return r
 	}
-	return validateDeviceTime(seq, "summary.device_time_unix_ms", s.GetDeviceTimeUnixMs(), nowMS)
+	return nil
 }
 
 // validateStatus checks a housekeeping report.

@@ -82,7 +82,8 @@ const (
 	RejectReason_REJECT_REASON_INVALID_FIELD RejectReason = 1
 	// Data before the introduction, or a second introduction.
 	RejectReason_REJECT_REASON_NOT_INTRODUCED RejectReason = 2
-	// Sequence number not above the last accepted one.
+	// Sequence number not above the last accepted one, or device time not after
+	// the last accepted one: already held (or would rewrite history); do not resend.
 	RejectReason_REJECT_REASON_STALE_SEQUENCE RejectReason = 3
 	// Message larger than allowed.
 	RejectReason_REJECT_REASON_TOO_LARGE RejectReason = 4
@@ -398,7 +399,8 @@ type RawChunk struct {
 	// Sequence number: the previous accepted one plus one (a larger jump is accepted and
 	// counted as lost chunks; a smaller or equal one is rejected as stale).
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
-	// Device clock at the first sample, milliseconds since the Unix epoch.
+	// Device clock at the first sample, milliseconds since the Unix epoch: after
+	// the previous accepted message's, at most 5 s ahead of the gateway clock.
 	DeviceTimeUnixMs int64 `protobuf:"varint,2,opt,name=device_time_unix_ms,json=deviceTimeUnixMs,proto3" json:"device_time_unix_ms,omitempty"`
 	// Sampling rate in hertz, 25..1000.
 	SampleRateHz float64 `protobuf:"fixed64,3,opt,name=sample_rate_hz,json=sampleRateHz,proto3" json:"sample_rate_hz,omitempty"`
@@ -507,7 +509,8 @@ type Summary struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Sequence number, as for RawChunk.
 	Sequence uint64 `protobuf:"varint,1,opt,name=sequence,proto3" json:"sequence,omitempty"`
-	// Device clock at the end of the second, milliseconds since the Unix epoch.
+	// Device clock at the end of the second, milliseconds since the Unix epoch:
+	// after the previous accepted message's, at most 5 s ahead of the gateway clock.
 	DeviceTimeUnixMs int64 `protobuf:"varint,2,opt,name=device_time_unix_ms,json=deviceTimeUnixMs,proto3" json:"device_time_unix_ms,omitempty"`
 	// Oxygen saturation in percent, 0..100; absent when the device has no valid value.
 	Spo2Pct *float64 `protobuf:"fixed64,3,opt,name=spo2_pct,json=spo2Pct,proto3,oneof" json:"spo2_pct,omitempty"`
@@ -807,7 +810,8 @@ type Welcome struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Highest sequence number held durably for this device (0 when none): resend from the next.
 	ResumeAfterSequence uint64 `protobuf:"varint,1,opt,name=resume_after_sequence,json=resumeAfterSequence,proto3" json:"resume_after_sequence,omitempty"`
-	// Gateway clock, milliseconds since the Unix epoch, for clock-drift estimation.
+	// Gateway clock, milliseconds since the Unix epoch: set the device clock from it
+	// (device times more than 5 s ahead of the gateway clock are refused).
 	GatewayTimeUnixMs int64 `protobuf:"varint,2,opt,name=gateway_time_unix_ms,json=gatewayTimeUnixMs,proto3" json:"gateway_time_unix_ms,omitempty"`
 	// Identifier of this session (one per stream), for logs.
 	SessionId string `protobuf:"bytes,3,opt,name=session_id,json=sessionId,proto3" json:"session_id,omitempty"`

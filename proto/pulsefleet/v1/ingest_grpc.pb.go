@@ -38,6 +38,14 @@ const (
 // survives a crash of the gateway. A resent message the gateway already holds
 // is rejected as REJECT_REASON_STALE_SEQUENCE and is never stored twice. A bad
 // message gets a Rejection naming the field and the bound; the stream goes on.
+//
+// Device time: each data message's device_time_unix_ms must be after the
+// previous accepted one's (else REJECT_REASON_STALE_SEQUENCE: stored history
+// keeps the first values and is never rewritten), at most 5 s ahead of the
+// gateway clock and at most a year behind it (else
+// REJECT_REASON_INVALID_FIELD). A refused message is neither stored nor
+// evaluated; the gateway raises the technical alarm condition
+// device_clock_fault for it. Set the clock from Welcome.gateway_time_unix_ms.
 type IngestServiceClient interface {
 	// Connect opens the device's stream. Authentication: gRPC metadata
 	// "authorization: Bearer TOKEN" with a device token, when the gateway
@@ -82,6 +90,14 @@ type IngestService_ConnectClient = grpc.BidiStreamingClient[ConnectRequest, Conn
 // survives a crash of the gateway. A resent message the gateway already holds
 // is rejected as REJECT_REASON_STALE_SEQUENCE and is never stored twice. A bad
 // message gets a Rejection naming the field and the bound; the stream goes on.
+//
+// Device time: each data message's device_time_unix_ms must be after the
+// previous accepted one's (else REJECT_REASON_STALE_SEQUENCE: stored history
+// keeps the first values and is never rewritten), at most 5 s ahead of the
+// gateway clock and at most a year behind it (else
+// REJECT_REASON_INVALID_FIELD). A refused message is neither stored nor
+// evaluated; the gateway raises the technical alarm condition
+// device_clock_fault for it. Set the clock from Welcome.gateway_time_unix_ms.
 type IngestServiceServer interface {
 	// Connect opens the device's stream. Authentication: gRPC metadata
 	// "authorization: Bearer TOKEN" with a device token, when the gateway

@@ -1,0 +1,136 @@
+package gateway
+
+import (
+	"math"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/store"
+)
+
+// Device time policy (the rule and its reasons are in doc.go, "Device
+// time"). Alarm evaluation runs on device time; the gateway admits a data
+// message's device time only when it cannot freeze evaluation or rewrite
+// history, and raises the technical condition device_clock_fault whenever it
+// refuses or distrusts a device's clock.
+const (
+	// clockAheadMax is how far a device time may be ahead of the gateway
+	// clock. Beyond it the message is refused (INVALID_FIELD naming
+	// *.device_time_unix_ms and the bound): a time ahead of now would hold
+	// back every later message of a correct clock for as long (team choice:
+	// well above the error of a device clock set from Welcome's gateway
+	// time, well below the 10 s delay of device_clock_fault and the 15 s
+	// spo2_low delay of adult-ward-pilot).
+	clockAheadMax = 5 * time.Second
+	// clockLagMax is how far a session's messages may fall behind the
+	// least-behind message of the same session (device minus gateway time)
+	// before the clock is distrusted: a clock that runs slow or stands
+	// still would stretch every alarm delay. Such messages are still
+	// stored and evaluated (team choice: a minute of lag; a resent backlog
+	// comes first in a session and never counts).
+	clockLagMax = 60 * time.Second
+)
+
+// seqTime is an accepted data message not yet known durable.
+type seqTime struct {
+	seq   uint64
+	devMS int64
+}
+
+// deviceClock is the gateway's view of one device's clock. Guarded by the
+// device's mutex.
+type deviceClock struct {
+	durableMS int64     // device time of the newest durable data message (0 = none)
+	pending   []seqTime // accepted but not yet durable, ascending
+	maxOffMS  int64     // session: largest (device end - gateway) time of an accepted message
+	sessOK    bool      // maxOffMS is set
+}
+
+// admitTime applies the device time policy to a data message with device
+// time devMS covering spanMS (raw chunks; 0 for a summary), received at
+// gateway time nowMS, after its sequence number was found new. It returns
+// the rejection when the message is refused (nothing of it may be stored or
+// evaluated), else records the time as accepted, accounts clock quality and
+// reports whether the message is late. Either way it sets or clears the
+// device_clock_fault condition, calling emit with the engine's events.
+// Caller holds d.mu.
+func (d *device) admitTime(seq uint64, field string, devMS int64, samples uint32, spanMS, nowMS int64, lateAfter time.Duration, emit func(alarms.Event)) (*pb.Rejection, bool) {
+	var rej *pb.Rejection
+	last := d.cur.LastDeviceMS
+	switch ahead := devMS - nowMS; {
+	case devMS <= 0 || devMS < nowMS-maxClockSkew:
+		rej = invalid(seq, field, "%d, want after %d (at most one year before the gateway clock)", devMS, nowMS-maxClockSkew)
+	case ahead > clockAheadMax.Milliseconds():
+		rej = invalid(seq, field, "%d is %v ahead of the gateway clock (%d), want at most %v ahead (%d); set the device clock from Welcome.gateway_time_unix_ms",
+			devMS, time.Duration(ahead)*time.Millisecond, nowMS, clockAheadMax, nowMS+clockAheadMax.Milliseconds())
+	case last != 0 && devMS <= last:
+		rej = reject(seq, pb.RejectReason_REJECT_REASON_STALE_SEQUENCE, field,
+			"%d is not after %d, the device time of the last accepted message; the first values stored at a device time are kept, never rewritten", devMS, last)
+	}
+	if rej != nil {
+		d.setClockFault(true, nowMS, emit)
+		return rej, false
+	}
+	d.cur.LastDeviceMS = devMS
+	d.clock.pending = append(d.clock.pending, seqTime{seq, devMS})
+	late := d.q.addChunk(nowMS, devMS, samples, lateAfter)
+	off := devMS + spanMS - nowMS
+	if !d.clock.sessOK || off > d.clock.maxOffMS {
+		d.clock.maxOffMS, d.clock.sessOK = off, true
+	}
+	d.setClockFault(d.clock.maxOffMS-off > clockLagMax.Milliseconds(), nowMS, emit)
+	return nil, late
+}
+
+// setClockFault reports the device's clock refused or distrusted (fault) or
+// trusted at gateway time nowMS to its alarm engine. Caller holds d.mu.
+func (d *device) setClockFault(fault bool, nowMS int64, emit func(alarms.Event)) {
+	if d.engine == nil || (!fault && !d.engine.ClockFault()) {
+		return
+	}
+	d.engine.SetClockFault(fault, d.engineNowS(nowMS), emit)
+}
+
+// engineNowS is gateway time nowMS on the alarm engine's clock (device
+// time), never before the last evaluated sample. Caller holds d.mu.
+func (d *device) engineNowS(nowMS int64) float64 {
+	t := d.deviceTimeS(nowMS)
+	if d.engine != nil {
+		t = math.Max(t, d.engine.LastT())
+	}
+	return t
+}
+
+// evalPoint feeds one trend point to the device's alarm engine. Caller holds d.mu.
+func (d *device) evalPoint(p *store.Point, emit func(alarms.Event)) {
+	if d.engine != nil {
+		d.engine.Eval(alarms.Sample{T: float64(p.TimeMS) / 1000, SpO2: p.SpO2, Pulse: p.Pulse, PI: p.PI, SQI: p.SQI}, emit)
+	}
+}
+
+// rewindToDurable forgets what was accepted but is not durable (a new
+// stream starts, or a batch failed): the device resends it from its durable
+// point, and its device times are accepted again. A new session of
+// lag measurement starts. Caller holds d.mu.
+func (d *device) rewindToDurable() {
+	d.cur.LastSeq = d.durableSeq
+	d.cur.LastDeviceMS = d.clock.durableMS
+	d.clock.pending = d.clock.pending[:0]
+	d.clock.sessOK = false
+}
+
+// restoreClock bounds what a store holds about a device's clock and alarm
+// engine by the gateway clock at start-up: a device time or an engine clock
+// ahead of nowMS by more than clockAheadMax (written before device times
+// were bounded, or the gateway clock was set back) would refuse or ignore
+// every later message of a correct clock. It reports whether it changed the
+// engine. Caller holds d.mu (or owns d alone).
+func (d *device) restoreClock(nowMS int64) bool {
+	bound := nowMS + clockAheadMax.Milliseconds()
+	if d.cur.LastDeviceMS > bound {
+		d.cur.LastDeviceMS = nowMS
+	}
+	d.clock.durableMS = d.cur.LastDeviceMS
+	return d.engine != nil && d.engine.LastT() > float64(bound)/1000 && d.engine.Rewind(float64(nowMS)/1000, nil)
+}
