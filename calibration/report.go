@@ -37,6 +37,10 @@ func (r *Result) WriteText(w io.Writer) error {
 		row("  pooled", l.Pooled)
 		decades(l.Pooled)
 		row("  mean predictor", l.Baseline)
+		for _, sc := range l.Subjects {
+			row("    "+sc.Subject, sc.Baseline)
+		}
+		fmt.Fprintf(&b, "pooled MAE %.1f %% lower than the mean predictor's (negative: worse)\n", 100*(1-l.Pooled.MAEPct/l.Baseline.MAEPct))
 	}
 	fmt.Fprintln(&b, "\nbias = mean(predicted - reference); SD = population SD; Arms^2 = bias^2 + SD^2; LoA = bias -/+ 1.96 SD.")
 	if ws := r.Warnings(); len(ws) > 0 {
