@@ -553,7 +553,13 @@ func (g *Gateway) streamGuard(srv any, ss grpc.ServerStream, info *grpc.StreamSe
 		}
 		defer g.auth.closeStream(p.TokenID, hd)
 	}
-	return h(srv, &guardedStream{ServerStream: ss, ctx: ctx})
+	err = h(srv, &guardedStream{ServerStream: ss, ctx: ctx})
+	if errors.Is(context.Cause(ctx), errRevoked) {
+		// Whatever the handler saw (a cancelled context, a broken send),
+		// the stream ended because its credential was revoked.
+		return status.Errorf(codes.Unauthenticated, "credential revoked; the stream ended (%s)", info.FullMethod)
+	}
+	return err
 }
 
 // maxDeviceStreams bounds the concurrent streams of one device credential.

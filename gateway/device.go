@@ -5,6 +5,7 @@ import (
 	"math"
 	"sort"
 	"sync"
+	"sync/atomic"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
@@ -16,10 +17,15 @@ import (
 type device struct {
 	id string
 
-	mu          sync.Mutex
-	desc        store.Device   // description, persisted when it changes
-	cur         store.Cursor   // accepted position and counters (ahead of durable)
-	durableSeq  uint64         // highest sequence number known durable
+	mu         sync.Mutex
+	desc       store.Device // description, persisted when it changes
+	cur        store.Cursor // accepted position and counters (ahead of durable)
+	durableSeq uint64       // highest sequence number known durable
+	// epoch counts the batches with this device's data that failed to
+	// commit. A data record carries the epoch it was accepted in; the writer
+	// writes and acknowledges it only while the device is still in that
+	// epoch (writer.go). Written under mu by the writer; read without it.
+	epoch       atomic.Uint64
 	stream      *stream        // the open stream, nil when disconnected
 	latest      *pb.TrendPoint // last trend point
 	engine      *alarms.Engine // nil when no profile applies
@@ -30,6 +36,13 @@ type device struct {
 	q           quality               // signal-quality and uptime accumulators
 	clock       deviceClock           // device time policy (clock.go)
 	activeGauge map[[2]string]float64 // this device's share of pulsefleet_alarms_active
+}
+
+// streamNow returns the device's open stream (nil when none).
+func (d *device) streamNow() *stream {
+	d.mu.Lock()
+	defer d.mu.Unlock()
+	return d.stream
 }
 
 func (d *device) markDurable(seq uint64) {

@@ -13,9 +13,14 @@
 //     (stop accepting, let streams finish their current message, flush the
 //     writer, acknowledge, close nothing it did not open: the caller closes
 //     the store).
-//   - Each device stream runs in the gRPC handler goroutine (receive,
-//     validate, estimate, evaluate alarms, enqueue for the writer) and one
-//     sender goroutine it starts and waits for (acks, rejections, pushes).
+//   - Each device stream runs in the gRPC handler goroutine (validate,
+//     estimate, evaluate alarms, enqueue for the writer) with a reader that
+//     owns Recv and a sender that owns Send. The handler never blocks on the
+//     device, so a stream replaced by a newer one of the same device ends
+//     within milliseconds; it waits at most 2 s for its sender to deliver
+//     the last answers, and the reader and sender return when the RPC ends.
+//     A device that stops reading is cut off once one Send has been blocked
+//     for 20 s (the watchdog checks every second).
 //   - The writer goroutine commits batches: one bbolt transaction per batch,
 //     at most Options.BatchDelay after the first record or when
 //     Options.BatchRecords records are waiting, then acknowledges.
@@ -76,6 +81,51 @@
 // carries a time more than clockAheadMax ahead of the gateway clock (from a
 // store written before this rule, or a gateway clock set back) is rewound
 // to the gateway clock (alarms.Engine.Rewind), erring towards announcing.
+//
+// # Delivery
+//
+// Rule: a data message is acknowledged only when its own effects (ledger
+// record, trend points, raw capture, cursor) committed, and after a batch
+// holding data of a device fails to commit, nothing of that device accepted
+// before the failure is written, acknowledged or moves its durable cursor;
+// the device resends from its last durable message.
+//
+// Mechanism: each device has a write epoch. A data record carries the epoch
+// its device was in when the handler accepted it, and the stream the epoch
+// it attached in. When a batch fails, the writer, before it takes another
+// record, raises the epoch of every device with data in that batch, sets
+// the device's accepted position back to its durable one, and cancels its
+// stream (which ends with RESOURCE_EXHAUSTED "store full" or UNAVAILABLE, so
+// the device backs off and reconnects). The writer writes a data record's
+// data and acknowledges it only while its epoch is the device's current
+// one; the handler accepts a message only while its stream's epoch is
+// current. The welcome of the next stream carries the durable position as
+// the resume point.
+//
+// Why it holds: (1) An acknowledgement is sent only by the writer after the
+// batch holding the record committed, so an acknowledged record's own
+// effects are durable. (2) The records of one device reach the writer in
+// the order the handler accepted them (one handler feeds a device at a time
+// and a replacing stream waits until the old handler has returned), with
+// increasing sequence numbers within an epoch. (3) If the batch holding
+// sequence s of epoch e fails, the epoch becomes e+1 before the writer adds
+// any later record, so every record of epoch e after s (queued or still to
+// be submitted) is dropped, and the handler accepts nothing more on the
+// epoch-e stream. Hence the committed records of an epoch are a prefix of
+// what it accepted, the durable sequence never passes a failed one, and an
+// acknowledgement "through n" (the largest committed sequence) covers only
+// committed messages. (4) A new stream starts after a barrier (its start
+// record is committed behind everything queued before it), with the
+// accepted position set back to the durable one, so the failed range is
+// accepted again when resent; anything at or below the durable position is
+// rejected as stale and never stored twice. Non-data parts of a failed
+// batch (descriptions, sessions, alarm episodes and states, audit entries)
+// are carried into the next batch, bounded, so a full disk does not lose an
+// alarm episode either.
+//
+// Readiness: /readyz answers 503 from a failed commit until a write commits
+// again; while it fails the watchdog probes with a small write every
+// second, so readiness comes back even when no device writes.
 //
 // Not a certified medical alarm: a research and engineering tool.
 package gateway

@@ -22,7 +22,7 @@ func (g *Gateway) httpHandler() http.Handler {
 	})
 	mux.HandleFunc("GET /readyz", func(w http.ResponseWriter, r *http.Request) {
 		w.Header().Set("Content-Type", "text/plain; charset=utf-8")
-		if !g.ready.Load() {
+		if !g.Ready() {
 			w.WriteHeader(http.StatusServiceUnavailable)
 			if e := g.failed.Load(); e != nil {
 				fmt.Fprintf(w, "not ready: store write failed: %v\n", *e)

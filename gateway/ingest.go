@@ -3,11 +3,13 @@ package gateway
 import (
 	"context"
 	"errors"
+	"fmt"
 	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"runtime/debug"
 	"strconv"
+	"sync"
 	"sync/atomic"
 	"time"
 
@@ -22,11 +24,21 @@ import (
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
-// Limits on a stream before it is introduced.
+// Limits on a stream.
 const (
 	introTimeout          = 30 * time.Second
 	maxRejectsBeforeIntro = 100
 	sendQueue             = 64
+	// sendStall: a stream whose device has not taken an answer for this
+	// long (one Send blocked: the transport's buffers for it, about 128 KiB,
+	// are full because the device does not read) is ended. The watchdog
+	// checks every Options.WatchdogEvery, so it ends within sendStall plus
+	// that.
+	sendStall = 20 * time.Second
+	// senderDrain bounds how long an ending stream waits for its sender to
+	// deliver the answers and ack already due; the device id is free for a
+	// new stream before that wait.
+	senderDrain = 2 * time.Second
 )
 
 // stream is one open Connect call of one device.
@@ -34,27 +46,35 @@ type stream struct {
 	g      *Gateway
 	dev    *device
 	grpc   pb.IngestService_ConnectServer
+	ctx    context.Context // the handler's; cancelled with a cause
 	cancel context.CancelCauseFunc
 	ended  chan struct{} // closed when the handler has returned
 	remote string
 	id     string
 
+	epoch    uint64 // the device's write epoch this stream feeds (set when attached)
+	attached bool   // start made it the device's stream: finish must run
+
 	acked   atomic.Uint64 // durable through this sequence (set by the writer)
-	wake    chan struct{} // cap 1: there is an ack to send
 	msgs    chan *pb.ConnectRequest
 	recvErr chan error
-	// Output, owned by the handler goroutine: queued messages and the last
-	// ack sent. Bounded: beyond sendQueue, messages are dropped and counted.
-	outq    []*pb.ConnectResponse
-	sentAck uint64
-	drops   uint64
-	mode    pb.Mode
-	adc     uint32
-	redNM   float64
-	irNM    float64
-	calRef  string
-	cal     estimator.Calibration
-	bucket  tokenBucket // message-rate limit (ratelimit.go)
+	// Output: the handler (and the writer, for acks) queue, the sender
+	// goroutine sends, so the handler never blocks on a device that does
+	// not read. Bounded: beyond sendQueue, messages are dropped and counted.
+	outMu        sync.Mutex
+	outq         []*pb.ConnectResponse
+	drops        uint64
+	wake         chan struct{} // cap 1: output or an ack is due
+	closing      chan struct{} // closed by the handler: send what is due and stop
+	senderDone   chan struct{}
+	sendingSince atomic.Int64 // wall-clock ms when the Send in progress began, 0 when none
+	mode         pb.Mode
+	adc          uint32
+	redNM        float64
+	irNM         float64
+	calRef       string
+	cal          estimator.Calibration
+	bucket       tokenBucket // message-rate limit (ratelimit.go)
 
 	// raw pipeline (owned by the handler goroutine)
 	tl     *estimator.Timeline // nil until the first raw chunk
@@ -76,34 +96,98 @@ func (s *stream) ackThrough(seq uint64) {
 	}
 }
 
-// send queues a message for the device; the handler sends it before it
-// next waits. When sendQueue messages wait (a device that does not read its
-// stream), it is dropped and counted rather than held.
+// send queues a message for the device and wakes the sender. When
+// sendQueue messages wait (a device that does not read its stream), it is
+// dropped and counted rather than held.
 func (s *stream) send(m *pb.ConnectResponse) {
+	s.outMu.Lock()
 	if len(s.outq) >= sendQueue {
 		s.drops++
+		s.outMu.Unlock()
 		return
 	}
 	s.outq = append(s.outq, m)
+	s.outMu.Unlock()
+	select {
+	case s.wake <- struct{}{}:
+	default:
+	}
 }
 
-// flush sends the queued messages and an ack when the durable sequence has
-// advanced since the last one. Only the handler goroutine calls it.
-func (s *stream) flush() error {
-	for i, m := range s.outq {
-		if err := s.grpc.Send(m); err != nil {
-			clear(s.outq)
-			s.outq = s.outq[:0]
-			return err
+// sender owns gRPC's Send: it sends queued messages, then an ack when the
+// durable sequence has advanced since the last one. It stops after one
+// last round once the handler closes s.closing, or when a Send fails (the
+// stream is then cancelled). A Send blocked by a device that does not read
+// returns when the RPC ends: the handler does not wait for it longer than
+// senderDrain, and the watchdog ends such a stream after sendStall.
+func (s *stream) sender() {
+	defer close(s.senderDone)
+	var (
+		batch   []*pb.ConnectResponse
+		sentAck uint64
+	)
+	for {
+		last := false
+		select {
+		case <-s.wake:
+		case <-s.closing:
+			last = true
 		}
-		s.outq[i] = nil
+		s.outMu.Lock()
+		batch = append(batch[:0], s.outq...)
+		clear(s.outq)
+		s.outq = s.outq[:0]
+		s.outMu.Unlock()
+		for i, m := range batch {
+			if err := s.sendOne(m); err != nil {
+				s.cancel(fmt.Errorf("send to device: %w", err))
+				return
+			}
+			batch[i] = nil
+		}
+		if a := s.acked.Load(); a > sentAck {
+			sentAck = a
+			if err := s.sendOne(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Ack{Ack: &pb.Ack{ThroughSequence: a}}}); err != nil {
+				s.cancel(fmt.Errorf("send to device: %w", err))
+				return
+			}
+		}
+		if last {
+			return
+		}
 	}
-	s.outq = s.outq[:0]
-	if a := s.acked.Load(); a > s.sentAck {
-		s.sentAck = a
-		return s.grpc.Send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Ack{Ack: &pb.Ack{ThroughSequence: a}}})
+}
+
+func (s *stream) sendOne(m *pb.ConnectResponse) error {
+	s.sendingSince.Store(time.Now().UnixMilli())
+	err := s.grpc.Send(m)
+	s.sendingSince.Store(0)
+	return err
+}
+
+var errSendStalled = fmt.Errorf("the device did not read its answers for %v", sendStall)
+
+// checkStall ends the stream when one Send has been blocked for sendStall
+// (the watchdog calls it). Wall clock: it measures the transport, not the
+// gateway's injected clock.
+func (s *stream) checkStall() {
+	if t := s.sendingSince.Load(); t != 0 && time.Now().UnixMilli()-t > s.g.opt.sendStall.Milliseconds() {
+		if context.Cause(s.ctx) == nil {
+			s.g.m.sendStalls.Inc()
+		}
+		s.cancel(errSendStalled)
 	}
-	return nil
+}
+
+// drainSender lets the sender deliver what is due, for at most senderDrain.
+func (s *stream) drainSender() {
+	close(s.closing)
+	t := time.NewTimer(senderDrain)
+	defer t.Stop()
+	select {
+	case <-s.senderDone:
+	case <-t.C:
+	}
 }
 
 func (s *stream) rejectMsg(r *pb.Rejection) {
@@ -133,12 +217,22 @@ func reasonLabel(r pb.RejectReason) string {
 func (g *Gateway) Connect(gs pb.IngestService_ConnectServer) (err error) {
 	ctx, cancel := context.WithCancelCause(gs.Context())
 	defer cancel(nil)
-	s := &stream{g: g, grpc: gs, cancel: cancel, ended: make(chan struct{}),
-		wake: make(chan struct{}, 1), msgs: make(chan *pb.ConnectRequest), recvErr: make(chan error, 1)}
-	defer close(s.ended)
+	s := &stream{g: g, grpc: gs, ctx: ctx, cancel: cancel, ended: make(chan struct{}),
+		wake: make(chan struct{}, 1), closing: make(chan struct{}), senderDone: make(chan struct{}),
+		msgs: make(chan *pb.ConnectRequest), recvErr: make(chan error, 1)}
 	if p, ok := peer.FromContext(ctx); ok {
 		s.remote = p.Addr.String()
 	}
+	// Three goroutines serve a stream: this handler (validate, estimate,
+	// evaluate, queue for the writer), the reader, which owns Recv, and the
+	// sender, which owns Send, so the handler can end the RPC at once when
+	// the stream is cancelled (gRPC's Recv and Send do not see a derived
+	// context; they return when the RPC ends).
+	go s.reader(ctx)
+	go s.sender()
+	// Whatever way the stream ends, answers and acks already due go out.
+	defer s.drainSender()
+	defer close(s.ended)
 	defer func() {
 		if p := recover(); p != nil {
 			g.m.panics.Inc()
@@ -146,20 +240,57 @@ func (g *Gateway) Connect(gs pb.IngestService_ConnectServer) (err error) {
 			err = status.Errorf(codes.Internal, "internal error in this stream (recovered; the gateway goes on)")
 		}
 	}()
-
-	// Two goroutines serve a stream: this handler (validate, estimate,
-	// evaluate, queue for the writer, send answers and acks) and the reader,
-	// which owns Recv so the handler can end the RPC when the stream is
-	// cancelled (gRPC's Recv does not see a derived context).
-	go s.reader(ctx)
-	// Whatever way the stream ends, answers and acks already due go out.
-	defer func() { _ = s.flush() }()
+	defer func() {
+		if s.attached {
+			s.finish(ctx)
+		}
+	}()
 
 	if err := s.introduce(ctx); err != nil {
+		return s.endStatus(ctx, err)
+	}
+	return s.endStatus(ctx, s.loop(ctx))
+}
+
+// endStatus turns the reason a stream ended into the status the device
+// reads: nil for its own end, RESOURCE_EXHAUSTED or UNAVAILABLE when the
+// store failed (back off, resend from the next welcome's resume point),
+// ABORTED when a newer stream replaced it, UNAUTHENTICATED when its
+// credential was revoked, UNAVAILABLE at shutdown.
+func (s *stream) endStatus(ctx context.Context, err error) error {
+	if err == nil || errors.Is(err, io.EOF) {
+		return nil
+	}
+	cause := context.Cause(ctx)
+	if cause == nil {
+		cause = err
+	}
+	var sf *storeFault
+	switch {
+	case errors.As(cause, &sf):
+		var resume uint64
+		if s.dev != nil {
+			s.dev.mu.Lock()
+			resume = s.dev.durableSeq
+			s.dev.mu.Unlock()
+		}
+		if store.IsFull(sf.err) {
+			return status.Errorf(codes.ResourceExhausted, "store full: %v; back off and resend everything after sequence %d", sf.err, resume)
+		}
+		return status.Errorf(codes.Unavailable, "store write failed: %v; back off and resend everything after sequence %d", sf.err, resume)
+	case errors.Is(cause, errReplaced):
+		return status.Error(codes.Aborted, errReplaced.Error())
+	case errors.Is(cause, errRevoked):
+		return status.Error(codes.Unauthenticated, "the stream's credential was revoked")
+	case errors.Is(cause, errSendStalled):
+		return status.Error(codes.DeadlineExceeded, errSendStalled.Error())
+	case s.g.stopping.Load():
+		return status.Error(codes.Unavailable, "gateway shutting down; reconnect")
+	}
+	if _, ok := status.FromError(err); ok {
 		return err
 	}
-	defer s.finish(ctx)
-	return s.loop(ctx)
+	return status.Error(codes.Unavailable, err.Error())
 }
 
 func (s *stream) devID() string {
@@ -169,24 +300,17 @@ func (s *stream) devID() string {
 	return s.dev.id
 }
 
-// recv sends what is due (answers, acks as the writer makes messages
-// durable) and returns the next message from the device, or the stream's
-// end: the transport's error, or the cause when the stream is cancelled
-// (replaced by a newer stream, gateway shutting down).
+// recv returns the next message from the device, or the stream's end: the
+// transport's error, or the cause when the stream is cancelled (replaced by
+// a newer stream, store failure, gateway shutting down).
 func (s *stream) recv(ctx context.Context) (*pb.ConnectRequest, error) {
-	for {
-		if err := s.flush(); err != nil {
-			return nil, err
-		}
-		select {
-		case m := <-s.msgs:
-			return m, nil
-		case err := <-s.recvErr:
-			return nil, err
-		case <-s.wake:
-		case <-ctx.Done():
-			return nil, context.Cause(ctx)
-		}
+	select {
+	case m := <-s.msgs:
+		return m, nil
+	case err := <-s.recvErr:
+		return nil, err
+	case <-ctx.Done():
+		return nil, context.Cause(ctx)
 	}
 }
 
@@ -197,7 +321,7 @@ func (s *stream) reader(ctx context.Context) {
 	for {
 		m, err := s.grpc.Recv()
 		if err != nil {
-			s.recvErr <- err
+			s.recvErr <- err // buffered: never blocks
 			return
 		}
 		select {
@@ -273,12 +397,18 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	old := d.stream
 	d.mu.Unlock()
 	if old != nil {
+		// The old handler only waits on channels (its reader and sender own
+		// the blocking calls), so it ends within milliseconds even when its
+		// device neither sends nor reads.
 		old.cancel(errReplaced)
+		t := time.NewTimer(10 * time.Second)
 		select {
 		case <-old.ended:
+			t.Stop()
 		case <-ctx.Done():
+			t.Stop()
 			return context.Cause(ctx)
-		case <-time.After(10 * time.Second):
+		case <-t.C:
 			return status.Errorf(codes.Unavailable, "device %s: the previous stream did not end; retry", d.id)
 		}
 		g.m.replaced.Inc()
@@ -301,6 +431,8 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	nowMS := g.nowMS()
 	d.mu.Lock()
 	d.stream = s
+	s.attached = true // from here on, finish undoes what follows whatever happens
+	s.epoch = d.epoch.Load()
 	d.desc.Model, d.desc.Firmware, d.desc.Labels = in.GetModel(), in.GetFirmware(), in.GetLabels()
 	d.desc.Mode = map[pb.Mode]string{pb.Mode_MODE_RAW: "raw", pb.Mode_MODE_SUMMARY: "summary"}[s.mode]
 	d.desc.RedNM, d.desc.IRNM, d.desc.ADCBits, d.desc.Calibration = s.redNM, s.irNM, s.adc, s.calRef
@@ -325,12 +457,19 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	// A barrier: the description and everything queued before are durable,
 	// so the resume point below is what the store holds.
 	if err := g.w.sync(ctx, rec); err != nil {
-		return status.Errorf(codes.Unavailable, "store: %v", err)
+		if c := context.Cause(ctx); c != nil {
+			return c // endStatus says why
+		}
+		if store.IsFull(err) {
+			return status.Errorf(codes.ResourceExhausted, "store full: %v; back off and reconnect", err)
+		}
+		return status.Errorf(codes.Unavailable, "store write failed: %v; back off and reconnect", err)
 	}
 	d.mu.Lock()
 	d.desc.Index = rec.desc.Index // assigned by the store on the device's first write
 	resume := d.durableSeq
 	d.rewindToDurable() // anything not durable is resent by the device
+	s.epoch = d.epoch.Load()
 	d.mu.Unlock()
 	s.id = d.id + "-" + strconv.FormatInt(nowMS, 36)
 	s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Welcome{Welcome: &pb.Welcome{
@@ -353,16 +492,7 @@ func (s *stream) loop(ctx context.Context) error {
 	for {
 		m, err := s.recv(ctx)
 		if err != nil {
-			if errors.Is(err, io.EOF) {
-				return nil
-			}
-			if c := context.Cause(ctx); errors.Is(c, errReplaced) {
-				return status.Error(codes.Aborted, errReplaced.Error())
-			}
-			if s.g.stopping.Load() {
-				return status.Error(codes.Unavailable, "gateway shutting down; reconnect")
-			}
-			return err
+			return err // endStatus maps it
 		}
 		if err := s.handle(ctx, m); err != nil {
 			return err
@@ -460,6 +590,15 @@ func (s *stream) countReject() {
 func (s *stream) accept(ctx context.Context, seq uint64, field string, devMS int64, samples uint32, spanMS, nowMS int64, fill func(*record)) error {
 	g, d := s.g, s.dev
 	d.mu.Lock()
+	if d.stream != s || d.epoch.Load() != s.epoch {
+		// A batch with this device's data failed (or a newer stream took
+		// over): nothing more is accepted on this stream.
+		d.mu.Unlock()
+		if c := context.Cause(ctx); c != nil {
+			return c
+		}
+		return errReplaced
+	}
 	last := d.cur.LastSeq
 	if seq <= last {
 		d.cur.Duplicates++
@@ -510,7 +649,7 @@ func (s *stream) accept(ctx context.Context, seq uint64, field string, devMS int
 		g.m.late.Inc()
 	}
 
-	rec := &record{dev: d, stream: s, seq: seq, received: time.UnixMilli(nowMS),
+	rec := &record{dev: d, stream: s, seq: seq, epoch: s.epoch, received: time.UnixMilli(nowMS),
 		chunk: &store.Chunk{Device: d.id, Seq: seq, DeviceTimeMS: devMS, ArrivalMS: nowMS, Samples: samples}}
 	if gap > 0 && s.tl != nil {
 		s.tl.Gap() // samples are missing: the estimator must not bridge them
@@ -543,6 +682,9 @@ func (s *stream) accept(ctx context.Context, seq uint64, field string, devMS int
 		}
 	}
 	if err := g.w.submit(ctx, rec); err != nil {
+		if c := context.Cause(ctx); c != nil {
+			return c
+		}
 		return status.Errorf(codes.Unavailable, "store: %v", err)
 	}
 	return nil
@@ -632,7 +774,10 @@ func (s *stream) finish(ctx context.Context) {
 	if !replaced {
 		g.publishDevice(d, "disconnected")
 	}
-	g.log.Info("device disconnected", "device", d.id, "reason", reason, "dropped_sends", s.drops)
+	s.outMu.Lock()
+	drops := s.drops
+	s.outMu.Unlock()
+	g.log.Info("device disconnected", "device", d.id, "reason", reason, "dropped_sends", drops)
 }
 
 func (g *Gateway) nowMS() int64 { return g.opt.Now().UnixMilli() }

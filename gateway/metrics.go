@@ -31,6 +31,9 @@ type metrics struct {
 	durableSeconds   prometheus.Histogram
 	writerQueue      prometheus.Gauge
 	storeErrors      prometheus.Counter
+	discarded        prometheus.Counter // accepted messages not written: an earlier batch of their device failed
+	carryDropped     prometheus.Counter
+	sendStalls       prometheus.Counter
 	alarmsActive     *prometheus.GaugeVec   // by condition, priority
 	announcements    *prometheus.CounterVec // by condition, priority
 	episodeEvents    *prometheus.CounterVec // by transition
@@ -84,6 +87,12 @@ func newMetrics(reg prometheus.Registerer, storeSize func() float64) (*metrics, 
 			Help: "Records waiting for the store writer."}),
 		storeErrors: prometheus.NewCounter(prometheus.CounterOpts{Name: "pulsefleet_store_write_errors_total",
 			Help: "Batches the store failed to commit (their messages were not acknowledged)."}),
+		discarded: prometheus.NewCounter(prometheus.CounterOpts{Name: "pulsefleet_store_discarded_messages_total",
+			Help: "Accepted data messages not written nor acknowledged because an earlier batch of their device failed (the device resends them)."}),
+		carryDropped: prometheus.NewCounter(prometheus.CounterOpts{Name: "pulsefleet_store_carry_dropped_records_total",
+			Help: "Episode, session and audit records of failed batches dropped because too many waited for the store."}),
+		sendStalls: prometheus.NewCounter(prometheus.CounterOpts{Name: "pulsefleet_stream_send_stalls_total",
+			Help: "Device streams ended because the device did not read its answers in time."}),
 		alarmsActive: prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "pulsefleet_alarms_active",
 			Help: "Announced, not yet ended (or latched) alarm episodes, by condition and priority."}, []string{"condition", "priority"}),
 		announcements: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "pulsefleet_alarm_announcements_total",
@@ -109,7 +118,7 @@ func newMetrics(reg prometheus.Registerer, storeSize func() float64) (*metrics, 
 		Help: "Size of the store file."}, storeSize)
 	cs := []prometheus.Collector{m.connected, m.streams, m.messages, m.samples, m.rejected, m.duplicates, m.lost,
 		m.late, m.replaced, m.panics, m.trendPoints, m.estimatorSeconds, m.estimatorFlags, m.commitSeconds,
-		m.batchRecords, m.durableSeconds, m.writerQueue, m.storeErrors, m.alarmsActive, m.announcements,
+		m.batchRecords, m.durableSeconds, m.writerQueue, m.storeErrors, m.discarded, m.carryDropped, m.sendStalls, m.alarmsActive, m.announcements,
 		m.episodeEvents, m.watchers, m.watchDropped, m.authFailures, m.storeBytes,
 		m.devConnected, m.devValidSpO2, m.devDrift, m.devBattery}
 	for _, c := range cs {

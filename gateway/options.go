@@ -64,6 +64,8 @@ type Options struct {
 	Self  string
 	// GRPCServerOptions are added to the gRPC server's (TLS credentials, interceptors).
 	GRPCServerOptions []grpc.ServerOption
+
+	sendStall time.Duration // tests shorten it; 0 means sendStall (ingest.go)
 }
 
 func (o *Options) setDefaults() error {
@@ -116,6 +118,9 @@ func (o *Options) setDefaults() error {
 		if !found {
 			return fmt.Errorf("gateway: Options.Self %q is not one of Options.Peers %v", o.Self, o.Peers)
 		}
+	}
+	if o.sendStall == 0 {
+		o.sendStall = sendStall
 	}
 	if o.GracefulTimeout == 0 {
 		o.GracefulTimeout = 10 * time.Second

@@ -752,13 +752,29 @@ func TestRevocationEndsOpenStreams(t *testing.T) {
 		defer h.g.auth.mu.RUnlock()
 		return len(h.g.auth.streams[tokenID(viewer)]) == 1
 	}, "watch open")
+	// A device streaming with its own credential.
+	devTok := issue(t, h, admin, &pb.IssueTokenRequest{DeviceId: "bed-rv"})
+	dev := h.openAs(t, devTok)
+	dev.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: summaryIntro("bed-rv")}})
+	dev.waitFor(func() bool { return len(dev.other) > 0 }, "welcome")
+	dev.send(summary(1, time.Now().Add(-time.Second).UnixMilli(), 97))
+	dev.waitAck(1)
 	if _, err := h.admin().RevokeToken(bearer(admin), &pb.RevokeTokenRequest{TokenId: tokenID(viewer)}); err != nil {
 		t.Fatal(err)
 	}
 	select {
-	case <-ended:
+	case err := <-ended:
+		if status.Code(err) != codes.Unauthenticated {
+			t.Errorf("watch of a revoked credential ended with %v, want Unauthenticated", err)
+		}
 	case <-time.After(20 * time.Second):
 		t.Fatal("the watch of a revoked credential goes on")
+	}
+	if _, err := h.admin().RevokeToken(bearer(admin), &pb.RevokeTokenRequest{TokenId: tokenID(devTok)}); err != nil {
+		t.Fatal(err)
+	}
+	if c := dev.endCode(); c != codes.Unauthenticated {
+		t.Errorf("device stream of a revoked credential ended with %v, want Unauthenticated", c)
 	}
 	// A new watch with it is refused (with the stream's first answer).
 	w2, err := h.fleet().WatchEvents(bearer(viewer), &pb.WatchEventsRequest{})

@@ -85,7 +85,7 @@ func New(opt Options) (*Gateway, error) {
 	if err := g.initAuth(); err != nil {
 		return nil, err
 	}
-	g.w = newWriter(opt.Store, opt.BatchDelay, opt.BatchRecords, m, opt.Now, g.storeFailed)
+	g.w = newWriter(opt.Store, opt.BatchDelay, opt.BatchRecords, m, opt.Now, g.storeFailed, g.storeWorks)
 	if err := g.load(); err != nil {
 		return nil, err
 	}
@@ -182,22 +182,44 @@ func (g *Gateway) ensureEngine(d *device) {
 	d.engine, d.profile = e, p
 }
 
-// storeFailed is called by the writer when a batch did not commit: nothing in
-// it was acknowledged. The gateway stops being ready and closes every stream
-// so devices keep their data and resend it once the store is healthy.
-func (g *Gateway) storeFailed(err error) {
-	g.log.Error("store write failed; closing device streams", "err", err)
+// storeFailed is called by the writer when a batch did not commit: nothing
+// in it was acknowledged. The gateway stops being ready until a write
+// commits again. Each device with data in the batch enters a new write
+// epoch: what it sent after the failed range and is still queued is not
+// written nor acknowledged (writer.go), its cursor goes back to the last
+// durable message, and its stream ends with RESOURCE_EXHAUSTED (store full)
+// or UNAVAILABLE, so the device backs off and resends from the resume point
+// of its next welcome. Streams of other devices go on. Runs in the writer
+// goroutine, before the writer takes any later record.
+func (g *Gateway) storeFailed(err error, devs map[*device]bool) {
+	g.log.Error("store write failed; ending the streams of the devices in the batch", "err", err, "devices", len(devs))
 	g.failed.Store(&err)
-	g.ready.Store(false)
-	for _, d := range g.devices.all() {
+	for d := range devs {
 		d.mu.Lock()
-		if s := d.stream; s != nil {
-			s.cancel(fmt.Errorf("store write failed: %w", err))
-		}
+		d.epoch.Add(1)
 		d.rewindToDurable()
+		s := d.stream
 		d.mu.Unlock()
+		if s != nil {
+			s.cancel(&storeFault{err: err})
+		}
 	}
 }
+
+// storeWorks is called by the writer after a batch committed.
+func (g *Gateway) storeWorks() {
+	if g.failed.Load() != nil {
+		g.failed.Store(nil)
+		g.log.Info("store writes succeed again")
+	}
+}
+
+// storeFault is the cause of a stream ended because a batch with its
+// device's data failed to commit.
+type storeFault struct{ err error }
+
+func (e *storeFault) Error() string { return "store write failed: " + e.err.Error() }
+func (e *storeFault) Unwrap() error { return e.err }
 
 // Serve runs the gRPC server on grpcLis and the HTTP server on httpLis
 // (either may be nil) until ctx ends, then shuts down gracefully: stop
@@ -303,8 +325,9 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	return serveErr
 }
 
-// Ready reports whether the gateway serves (for tests and /readyz).
-func (g *Gateway) Ready() bool { return g.ready.Load() }
+// Ready reports whether the gateway serves and its last store write
+// committed (for tests and /readyz).
+func (g *Gateway) Ready() bool { return g.ready.Load() && g.failed.Load() == nil }
 
 // watchdog lets time pass for the alarm engines of devices without a stream,
 // so device_offline (and signal_lost) can be announced, and persists changes;
@@ -327,8 +350,18 @@ func (g *Gateway) watchdog(ctx context.Context) {
 				g.log.Info("retention dropped old day buckets", "buckets", n)
 			}
 		}
+		if g.failed.Load() != nil {
+			// Readiness must come back when writes do, even if no device
+			// writes (a load balancer sends none to an unready gateway).
+			if err := g.db.Probe(g.opt.Now()); err == nil {
+				g.storeWorks()
+			}
+		}
 		nowMS := g.nowMS()
 		for _, d := range g.devices.all() {
+			if s := d.streamNow(); s != nil {
+				s.checkStall()
+			}
 			d.mu.Lock()
 			// Streams move their own engines, but a device whose every
 			// message is refused for its clock still needs time to pass

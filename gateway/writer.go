@@ -16,6 +16,7 @@ type record struct {
 	dev      *device       // device whose cursor the record advances (nil = none)
 	stream   *stream       // stream to acknowledge (nil = none)
 	seq      uint64        // data message sequence, 0 when none
+	epoch    uint64        // the device's write epoch when the message was accepted (data records)
 	cursor   store.Cursor  // the device's cursor after this record (when seq > 0)
 	received time.Time     // arrival of the data message
 	chunk    *store.Chunk  // ledger record
@@ -40,14 +41,26 @@ type writer struct {
 	maxRecs int
 	m       *metrics
 	now     func() time.Time
-	onFail  func(error)
+	onFail  func(err error, devs map[*device]bool) // a batch did not commit; devs had data in it
+	onOK    func()                                 // a batch committed
+
+	// carry holds the parts of failed records that are not a device's data
+	// (descriptions, sessions, alarm episodes and states, audit entries):
+	// they go into the next batch, so a disk-full spell does not lose an
+	// alarm episode. Bounded by maxCarry; owned by run.
+	carry []*record
 
 	mu     sync.Mutex
 	closed bool
 }
 
-func newWriter(db *store.DB, maxWait time.Duration, maxRecs int, m *metrics, now func() time.Time, onFail func(error)) *writer {
-	return &writer{db: db, in: make(chan *record, 4*maxRecs), maxWait: maxWait, maxRecs: maxRecs, m: m, now: now, onFail: onFail}
+// maxCarry bounds the records carried over failed batches (about 1 KiB each).
+const maxCarry = 100_000
+
+func newWriter(db *store.DB, maxWait time.Duration, maxRecs int, m *metrics, now func() time.Time,
+	onFail func(error, map[*device]bool), onOK func()) *writer {
+	return &writer{db: db, in: make(chan *record, 4*maxRecs), maxWait: maxWait, maxRecs: maxRecs, m: m, now: now,
+		onFail: onFail, onOK: onOK}
 }
 
 // submit queues a record; it blocks when the queue is full (back-pressure on
@@ -64,7 +77,7 @@ func (w *writer) submit(ctx context.Context, r *record) error {
 		w.m.writerQueue.Inc()
 		return nil
 	case <-ctx.Done():
-		return ctx.Err()
+		return context.Cause(ctx)
 	}
 }
 
@@ -81,7 +94,7 @@ func (w *writer) sync(ctx context.Context, r *record) error {
 	case err := <-r.done:
 		return err
 	case <-ctx.Done():
-		return ctx.Err()
+		return context.Cause(ctx)
 	}
 }
 
@@ -106,8 +119,16 @@ func (w *writer) run() {
 	)
 	timer.Stop()
 	add := func(r *record) {
-		w.m.writerQueue.Dec()
 		recs = append(recs, r)
+		if r.seq > 0 && r.dev != nil && r.epoch != r.dev.epoch.Load() {
+			// Accepted before a batch with this device's data failed:
+			// everything of the device after the failed range waits for
+			// the device to resend from its durable point (store/doc.go
+			// states the rule and why it holds). The data goes; what is
+			// not data (alarm episodes and state) is still written.
+			w.m.discarded.Inc()
+			r.seq, r.stream, r.chunk, r.points, r.raw = 0, nil, nil, nil, nil
+		}
 		if r.desc != nil {
 			b.Devices = append(b.Devices, r.desc)
 		}
@@ -138,6 +159,13 @@ func (w *writer) run() {
 		}
 		b.Audit = append(b.Audit, r.audit...)
 	}
+	takeCarry := func() {
+		for _, r := range w.carry {
+			add(r)
+		}
+		clear(w.carry)
+		w.carry = w.carry[:0]
+	}
 	commit := func() {
 		if len(recs) == 0 {
 			return
@@ -149,7 +177,22 @@ func (w *writer) run() {
 		w.m.batchRecords.Observe(float64(len(recs)))
 		if err != nil {
 			w.m.storeErrors.Inc()
-			w.onFail(err)
+			clear(devSeen)
+			for _, r := range recs {
+				if r.seq > 0 && r.dev != nil {
+					devSeen[r.dev] = true
+				}
+				if c := r.control(); c != nil && len(w.carry) < maxCarry {
+					w.carry = append(w.carry, c)
+				} else if c != nil {
+					w.m.carryDropped.Inc()
+				}
+			}
+			// Before any later record is added: from here on, records of
+			// these devices accepted before now are not data any more.
+			w.onFail(err, devSeen)
+		} else {
+			w.onOK()
 		}
 		clear(devSeen)
 		for _, r := range recs {
@@ -174,9 +217,12 @@ func (w *writer) run() {
 	for {
 		r, ok := <-w.in
 		if !ok {
+			takeCarry()
 			commit()
 			return
 		}
+		w.m.writerQueue.Dec()
+		takeCarry()
 		add(r)
 		timer.Reset(w.maxWait)
 	collect:
@@ -186,6 +232,7 @@ func (w *writer) run() {
 				if !ok {
 					break collect
 				}
+				w.m.writerQueue.Dec()
 				add(r)
 			case <-timer.C:
 				break collect
@@ -194,4 +241,13 @@ func (w *writer) run() {
 		timer.Stop()
 		commit()
 	}
+}
+
+// control returns a record with r's parts that are not a device's data (nil
+// when there are none): what a failed batch carries into the next one.
+func (r *record) control() *record {
+	if r.desc == nil && r.session == nil && len(r.episodes) == 0 && r.alarm == nil && len(r.audit) == 0 {
+		return nil
+	}
+	return &record{dev: r.dev, desc: r.desc, session: r.session, episodes: r.episodes, alarm: r.alarm, audit: r.audit}
 }

@@ -72,6 +72,10 @@ func (db *DB) Write(b *Batch) error {
 	plan := db.tail.planCompaction(time.Now())
 	newIdx := map[string]uint32{}
 	var pendingNewest map[string]int64 // newest trend times of this batch, recorded once it commits
+	var (
+		assignedDev []*Device
+		assignedEp  []*Episode
+	)
 	// index returns a device's ledger index, creating a bare record for a
 	// device first seen in this batch's trend points.
 	var index func(tx *bolt.Tx, id string) (uint32, error)
@@ -79,7 +83,7 @@ func (db *DB) Write(b *Batch) error {
 		if idx, ok := newIdx[id]; ok {
 			return idx, nil
 		}
-		if idx, ok := db.cachedIndex(tx, id); ok {
+		if idx, ok := db.lookupIndex(tx, id, newIdx); ok {
 			return idx, nil
 		}
 		devs := tx.Bucket(bDevices)
@@ -105,7 +109,7 @@ func (db *DB) Write(b *Batch) error {
 				return fmt.Errorf("device: empty id")
 			}
 			if d.Index == 0 {
-				if idx, ok := db.cachedIndex(tx, d.ID); ok {
+				if idx, ok := db.lookupIndex(tx, d.ID, newIdx); ok {
 					d.Index = idx
 				} else {
 					seq, err := devs.NextSequence()
@@ -114,6 +118,7 @@ func (db *DB) Write(b *Batch) error {
 					}
 					d.Index = uint32(seq)
 					newIdx[d.ID] = d.Index
+					assignedDev = append(assignedDev, d)
 				}
 			}
 			v, err := encJSON(d)
@@ -150,7 +155,7 @@ func (db *DB) Write(b *Batch) error {
 				c := &b.Chunks[i]
 				idx, ok := newIdx[c.Device]
 				if !ok {
-					if idx, ok = db.cachedIndex(tx, c.Device); !ok {
+					if idx, ok = db.lookupIndex(tx, c.Device, newIdx); !ok {
 						return fmt.Errorf("ledger: device %q has no record", c.Device)
 					}
 				}
@@ -202,6 +207,7 @@ func (db *DB) Write(b *Batch) error {
 					return err
 				}
 				e.ID = id
+				assignedEp = append(assignedEp, e)
 			}
 			v, err := encJSON(e)
 			if err != nil {
@@ -223,9 +229,23 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
-		return appendAudit(tx, b.Audit)
+		if err := appendAudit(tx, b.Audit); err != nil {
+			return err
+		}
+		if f := db.fault.Load(); f != nil {
+			return (*f)(b)
+		}
+		return nil
 	})
 	if err != nil {
+		// Nothing was written: numbers handed out in the transaction were
+		// rolled back with it, so a batch written again must draw them anew.
+		for _, d := range assignedDev {
+			d.Index = 0
+		}
+		for _, e := range assignedEp {
+			e.ID = 0
+		}
 		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
 	}
 	db.tail.afterCommit(b.Points, plan)
@@ -242,8 +262,16 @@ func (db *DB) Write(b *Batch) error {
 	return nil
 }
 
-// cachedIndex returns a device's ledger index from the cache or the devices bucket.
-func (db *DB) cachedIndex(tx *bolt.Tx, id string) (uint32, bool) {
+// lookupIndex returns a device's ledger index from this write's new
+// indices, the cache of committed ones, or the devices bucket. What it reads
+// from the bucket goes into pending, which reaches the cache only when the
+// transaction commits: a device record written earlier in a transaction that
+// then fails must not leave its index cached (the index would be handed out
+// again and two devices would share ledger records).
+func (db *DB) lookupIndex(tx *bolt.Tx, id string, pending map[string]uint32) (uint32, bool) {
+	if i, ok := pending[id]; ok {
+		return i, true
+	}
 	db.idx.mu.Lock()
 	i, ok := db.idx.m[id]
 	db.idx.mu.Unlock()
@@ -258,9 +286,7 @@ func (db *DB) cachedIndex(tx *bolt.Tx, id string) (uint32, bool) {
 	if decJSON(v, &d) != nil || d.Index == 0 {
 		return 0, false
 	}
-	db.idx.mu.Lock()
-	db.idx.m[id] = d.Index
-	db.idx.mu.Unlock()
+	pending[id] = d.Index
 	return d.Index, true
 }
 

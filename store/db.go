@@ -8,6 +8,7 @@ import (
 	"path/filepath"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"time"
 
 	bolt "go.etcd.io/bbolt"
@@ -83,6 +84,8 @@ type DB struct {
 	writeMu sync.Mutex // serialises Write (bbolt does too) and guards the tail's generations
 	tail    trendTail
 	newest  map[string]int64 // per device, the newest trend time committed (keepfirst.go); guarded by writeMu
+
+	fault atomic.Pointer[WriteFault] // tests: fails writes (fault.go)
 }
 
 // Open opens (creating when needed) the store in directory dir.

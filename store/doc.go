@@ -45,6 +45,23 @@
 // which message was refused; this is the store's own guarantee beneath
 // that. Cursors written before LastDeviceMS existed read as 0 (unknown).
 //
+// A failed Write (a full disk, an I/O error, an injected fault) leaves the
+// file as it was: bbolt writes a commit's pages first and its meta page
+// last, and rolls its free list back when a commit fails. Write then also
+// forgets what it handed out in the failed transaction (device indices,
+// episode ids), so a batch written again draws them anew and two devices
+// never share a ledger index. IsFull tells a full disk from other failures.
+//
+// # Delivery rule
+//
+// The gateway acknowledges a device's message only when the batch holding
+// its effects (ledger record, trend points, cursor) committed, and after a
+// batch with a device's data fails, nothing of that device accepted before
+// the failure is written, acknowledged or allowed to move its cursor; the
+// device resends from its last durable message. The gateway's writer
+// enforces it with a per-device write epoch (gateway/writer.go); why it
+// holds is argued in package gateway's documentation.
+//
 // Caveats: bbolt allows one writer at a time and takes an exclusive file lock,
 // so only one process opens a data directory; a second Open waits Options.Timeout
 // and fails with ErrLocked.
