@@ -298,7 +298,7 @@ func replay(t *testing.T, conn *grpc.ClientConn, recs []recorded, id string) *de
 		}
 	}()
 	rep := &deviceReport{Rejections: []rejectReport{}}
-	probing, rateFrom := false, uint64(0)
+	probing, rateFrom, lastBulk := false, uint64(0), uint64(0)
 	book := func(m *pb.ConnectResponse) {
 		switch k := m.Kind.(type) {
 		case *pb.ConnectResponse_Ack:
@@ -315,6 +315,7 @@ func replay(t *testing.T, conn *grpc.ClientConn, recs []recorded, id string) *de
 				}
 			case !probing:
 				rep.BulkRejected++
+				lastBulk = r.GetSequence()
 			default:
 				rep.Rejections = append(rep.Rejections, rejectReport{r.GetSequence(), r.GetReason().String(), r.GetField()})
 			}
@@ -375,11 +376,14 @@ func replay(t *testing.T, conn *grpc.ClientConn, recs []recorded, id string) *de
 		for s := from; s <= n; s++ {
 			send(data[s-1])
 		}
-		for rateFrom = 0; rep.Acked < n && rateFrom == 0; {
+		for rateFrom = 0; rep.Acked < n && rateFrom == 0 && lastBulk != n; {
 			next()
 		}
 		if rep.Acked >= n {
 			break
+		}
+		if rateFrom == 0 {
+			t.Fatalf("current client %s: data rejected, acknowledged through %d of %d: %+v", id, rep.Acked, n, *rep)
 		}
 		time.Sleep(200 * time.Millisecond)
 		for drained := false; !drained; {
@@ -520,12 +524,11 @@ func TestFrozenDevicesAgainstCurrentGateway(t *testing.T) {
 			recPath := filepath.Join(t.TempDir(), "sent.bin")
 			var old deviceReport
 			runOld(t, &old, "device", "-addr", addr, "-id", oldID, "-mode", mode, "-start-ms", fmt.Sprint(startMS), "-record", recPath)
-			recs := readRecording(t, recPath)
-			cur := replay(t, conn, recs, curID)
 
 			// What the old device understood, against the baseline contract.
-			if old.StreamError != "" || old.Redirect != nil || old.Welcome == nil {
-				t.Fatalf("frozen %s device: welcome %v, redirect %v, stream error %q", mode, old.Welcome, old.Redirect, old.StreamError)
+			if old.StreamError != "" || old.Redirect != nil || old.Welcome == nil || old.Acked == 0 {
+				t.Fatalf("frozen %s device: welcome %v, redirect %v, stream error %q, acknowledged through %d of %d (%d rejected)",
+					mode, old.Welcome, old.Redirect, old.StreamError, old.Acked, old.DataSent, old.BulkRejected)
 			}
 			n := uint64(old.DataSent)
 			wantData := map[string]uint64{"raw": 80, "summary": 90}[mode] // testdata/oldclient/main.go: 40 s in 50-sample chunks at 100 Hz; 90 summaries
@@ -557,6 +560,8 @@ func TestFrozenDevicesAgainstCurrentGateway(t *testing.T) {
 				t.Errorf("frozen %s device: the invalid field is named %q, want %q", mode, f, badField)
 			}
 			// ... and exactly what a current client gets for the same messages.
+			recs := readRecording(t, recPath)
+			cur := replay(t, conn, recs, curID)
 			if !reflect.DeepEqual(&old, cur) {
 				t.Errorf("frozen and current %s clients were answered differently:\nfrozen  %+v\ncurrent %+v", mode, old, *cur)
 			}

@@ -171,6 +171,7 @@ type device struct {
 	endErr   error
 	probing  bool   // sending the messages that must be rejected
 	rateFrom uint64 // lowest sequence refused by the rate limit since the last resend (0 = none)
+	lastBulk uint64 // sequence of the last data message rejected for another reason
 }
 
 func (d *device) read() {
@@ -242,6 +243,7 @@ func (d *device) book(m *pb.ConnectResponse) {
 			}
 		case !d.probing:
 			d.rep.BulkRejected++ // stale resends after a rate limit
+			d.lastBulk = r.GetSequence()
 		default:
 			d.rep.Rejections = append(d.rep.Rejections, RejectReport{Sequence: r.GetSequence(), Reason: r.GetReason().String(), Field: r.GetField()})
 		}
@@ -304,13 +306,16 @@ func (d *device) run(id, mode string, startMS int64) error {
 			}
 		}
 		d.rateFrom = 0
-		for d.rep.Acked < n && d.rateFrom == 0 {
+		for d.rep.Acked < n && d.rateFrom == 0 && d.lastBulk != n {
 			if _, ok := d.next(answerWait); !ok {
 				return nil
 			}
 		}
 		if d.rep.Acked >= n {
 			break
+		}
+		if d.rateFrom == 0 { // the last message was rejected: nothing more will be acknowledged
+			return nil
 		}
 		time.Sleep(200 * time.Millisecond)
 		for m, ok := d.next(0); m != nil; m, ok = d.next(0) {
