@@ -6,6 +6,7 @@ import (
 	"errors"
 	"flag"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
 	"math"
 	"os"
@@ -137,7 +138,7 @@ type relayReport struct {
 	Caution        string            `json:"caution"`
 }
 
-const relayCaution = "research and engineering tool, not a certified medical alarm"
+const relayCaution = caution.Text
 
 // check validates the flags and returns the source.
 func (o *relayOptions) check(s stdio, logf func(string, ...any)) (relay.Source, relay.Format, error) {

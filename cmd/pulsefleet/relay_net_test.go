@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"fmt"
+	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
 	"net"
 	"strings"
@@ -126,6 +127,9 @@ func TestRelaySummaryLinesFromStdin(t *testing.T) {
 		"--in", "-", "--format", "summary")
 	if code != 0 || rep.SamplesAcked != 59 || rep.RejectedReason["out_of_range"] != 1 {
 		t.Fatalf("exit %d, %+v; stderr:\n%s", code, rep, stderr)
+	}
+	if rep.Caution != caution.Text { // docs/contracts.md, "The caution on every output"
+		t.Errorf("relay JSON caution %q, want the project's caution text", rep.Caution)
 	}
 	if err := stop(); err != nil {
 		t.Fatal(err)
