@@ -57,8 +57,8 @@ func (c Config) Validate() error {
 	if c.AveragingS != 0 && (math.IsNaN(c.AveragingS) || c.AveragingS < MinAveragingS || c.AveragingS > MaxAveragingS) {
 		return fmt.Errorf("AveragingS: %v s, want 0 (default %v s) or %v..%v s", c.AveragingS, DefaultAveragingS, MinAveragingS, MaxAveragingS)
 	}
-	if c.Ratio != "" && c.Ratio != RatioBeatSlope && c.Ratio != RatioDerivativeSlope {
-		return fmt.Errorf("Ratio: %q, want \"\" (default %s), %s or %s", c.Ratio, RatioBeatSlope, RatioBeatSlope, RatioDerivativeSlope)
+	if c.Ratio != "" && c.Ratio != RatioBeatSlope && c.Ratio != RatioDerivativeSlope && c.Ratio != RatioSpectral {
+		return fmt.Errorf("Ratio: %q, want \"\" (default %s), %s, %s or %s", c.Ratio, RatioBeatSlope, RatioBeatSlope, RatioDerivativeSlope, RatioSpectral)
 	}
 	return nil
 }
@@ -81,7 +81,15 @@ const (
 	// less. It is noisier at low perfusion, since differencing raises
 	// wide-band noise relative to the pulse.
 	RatioDerivativeSlope RatioMethod = "derivative"
+	// RatioSpectral takes the ratio at the pulse frequency: the
+	// cross-spectrum of the Hann-windowed band-passed channels over the
+	// averaging window at the pulse rate and its second harmonic, divided by
+	// the infrared power there (the least-squares slope restricted to the
+	// pulse harmonics), times DC_second / DC_first over the window. Noise
+	// between the harmonics does not enter. Beats still decide whether a
+	// value is given (SQI); only the ratio's value comes from the spectrum.
+	RatioSpectral RatioMethod = "spectral"
 )
 
 // RatioMethods lists the accepted methods.
-var RatioMethods = []RatioMethod{RatioBeatSlope, RatioDerivativeSlope}
+var RatioMethods = []RatioMethod{RatioBeatSlope, RatioDerivativeSlope, RatioSpectral}

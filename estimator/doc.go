@@ -31,9 +31,14 @@
 //     that of the first differences of the band-passed channels instead (a
 //     derivative-based ratio): the systolic upstroke weighs most and slow
 //     components the channels do not share weigh less; noisier at low
-//     perfusion. On the synthetic stepped desaturation it reads closer
-//     (Arms 0.06 against 0.16 %); on the camera recordings it transfers
-//     better across people (README "Calibrating prototypes").
+//     perfusion. With RatioSpectral the ratio's value is the cross-spectrum
+//     of the Hann-windowed band-passed channels over the averaging window
+//     at the pulse rate and its second harmonic over the infrared power
+//     there (the ratio at the pulse frequency; the beats still decide
+//     whether there is a value). On the synthetic stepped desaturation
+//     Arms is 0.16 % (slope), 0.06 % (derivative), 0.05 % (spectral); on the
+//     camera recordings the derivative transfers best across people
+//     (README "Calibrating prototypes").
 //     The ratio of ratios is R = slope x DC_ir / DC_red, the perfusion index
 //     PI = AC_ir / DC_ir x 100, and rho is the red/infrared correlation.
 //  6. A beat counts for pulse rate and PI when its period is 0.2-2 s and,

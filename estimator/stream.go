@@ -110,11 +110,15 @@ type Stream struct {
 	winSamples, minPeriod, maxPeriod int64
 	envDecay, dcAlpha                float64
 
-	red, ir        bandPass
-	derivative     bool    // Config.Ratio == RatioDerivativeSlope
-	lastFr, lastFi float64 // previous band-passed samples, for first differences
-	started        bool
-	dcR, dcI       float64
+	red, ir    bandPass
+	derivative bool // Config.Ratio == RatioDerivativeSlope
+	// RatioSpectral: the window's band-passed and raw samples, oldest at
+	// ringHead once full (ringN == len).
+	ringFr, ringFi, ringR, ringI []float64
+	ringHead, ringN              int
+	lastFr, lastFi               float64 // previous band-passed samples, for first differences
+	started                      bool
+	dcR, dcI                     float64
 
 	// beat detector on y = -(band-passed infrared): systolic peaks up
 	env               float64
@@ -160,6 +164,10 @@ func New(cfg Config) (*Stream, error) {
 		s.cfg.Ratio = RatioBeatSlope
 	}
 	s.derivative = s.cfg.Ratio == RatioDerivativeSlope
+	if s.cfg.Ratio == RatioSpectral {
+		w := int(math.Round(s.cfg.AveragingS * s.rate))
+		s.ringFr, s.ringFi, s.ringR, s.ringI = make([]float64, w), make([]float64, w), make([]float64, w), make([]float64, w)
+	}
 	if cfg.ADCBits > 0 {
 		s.fs = math.Ldexp(1, cfg.ADCBits)
 	}
@@ -254,6 +262,7 @@ func (s *Stream) sample(r, i float64) {
 		s.red.settle(r)
 		s.ir.settle(i)
 		s.lastFr, s.lastFi = 0, 0 // the settled band-pass output
+		s.ringHead, s.ringN = 0, 0
 		s.dcR, s.dcI = r, i
 		s.restartDetector()
 		s.beatN, s.histN, s.histHead = 0, 0, 0
@@ -291,6 +300,11 @@ func (s *Stream) sample(r, i float64) {
 	a.dri += dr * di
 	a.dii += di * di
 	s.lastFr, s.lastFi = fr, fi
+	if s.ringFr != nil {
+		s.ringFr[s.ringHead], s.ringFi[s.ringHead], s.ringR[s.ringHead], s.ringI[s.ringHead] = fr, fi, r, i
+		s.ringHead = (s.ringHead + 1) % len(s.ringFr)
+		s.ringN = min(s.ringN+1, len(s.ringFr))
+	}
 	s.n++
 }
 
@@ -495,12 +509,69 @@ func (s *Stream) emit() Estimate {
 		}
 		if e.SQI >= minSQIForRatio {
 			e.Ratio = interquartileMean(rs)
+			if s.ringFr != nil {
+				e.Ratio = s.spectralRatio(e.PulseBPM / 60)
+			}
 			if v, ok := s.cal.SpO2(e.Ratio); ok {
 				e.SpO2Pct = v
 			}
 		}
 	}
 	return e
+}
+
+// spectralRatio is the ratio at the pulse frequency f0 (Hz) and its second
+// harmonic over the samples in the window ring (RatioSpectral): with X_r and
+// X_i the Hann-windowed discrete-time Fourier transforms of the band-passed
+// channels at a harmonic, R = sum Re(X_r conj(X_i)) / sum |X_i|^2 x
+// DC_i / DC_r. NaN without a pulse rate or before the ring holds two pulse
+// periods. The sines and cosines come from rotations, one per sample.
+func (s *Stream) spectralRatio(f0 float64) float64 {
+	n := s.ringN
+	if !(f0 > 0) || float64(n) < 2*s.rate/f0 {
+		return math.NaN()
+	}
+	start := s.ringHead - n
+	if start < 0 {
+		start += len(s.ringFr)
+	}
+	var num, den, dcR, dcI float64
+	for h := 1.0; h <= 2; h++ {
+		w := 2 * math.Pi * h * f0 / s.rate
+		if w >= math.Pi {
+			break
+		}
+		cw, sw := math.Cos(w), math.Sin(w)
+		hw := 2 * math.Pi / float64(n-1)
+		ch, sh := math.Cos(hw), math.Sin(hw)
+		c, si := 1.0, 0.0  // cos, sin of w k
+		hc, hs := 1.0, 0.0 // cos, sin of hw k (Hann window)
+		var rr, ri, ir, ii float64
+		j := start
+		for k := 0; k < n; k++ {
+			win := 0.5 - 0.5*hc
+			xr, xi := win*s.ringFr[j], win*s.ringFi[j]
+			rr += xr * c
+			ri -= xr * si
+			ir += xi * c
+			ii -= xi * si
+			if h == 1 {
+				dcR += s.ringR[j]
+				dcI += s.ringI[j]
+			}
+			c, si = c*cw-si*sw, si*cw+c*sw
+			hc, hs = hc*ch-hs*sh, hs*ch+hc*sh
+			if j++; j == len(s.ringFr) {
+				j = 0
+			}
+		}
+		num += rr*ir + ri*ii
+		den += ir*ir + ii*ii
+	}
+	if !(den > 0) || !(dcR > 0) || !(dcI > 0) {
+		return math.NaN()
+	}
+	return num / den * dcI / dcR
 }
 
 func clamp01(x float64) float64 { return math.Max(0, math.Min(1, x)) }

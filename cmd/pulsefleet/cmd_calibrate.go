@@ -213,7 +213,7 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 	fs.Float64Var(&o.Align.MinValidFraction, "min-valid", 0.5, "share of a window's seconds that need a ratio with good SQI")
 	fs.IntVar(&o.Align.ReferenceLagS, "lag", 0, "compare device second k with reference second k+lag")
 	var ratio string
-	fs.StringVar(&ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope over each beat) or derivative (of the differenced channels)")
+	fs.StringVar(&ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope over each beat), derivative (of the differenced channels) or spectral (at the pulse frequency)")
 	fs.BoolVar(&o.Align.QualityWeights, "quality-weights", false, "SQI-weighted window ratio and a weight column for a weighted fit")
 	fs.StringVar(&out, "out", "", "write the pairs CSV here (default: standard output)")
 	if err := parseFlags(fs, args); err != nil {

@@ -15,7 +15,7 @@ import (
 	"github.com/pulsefleet/pulsefleet/estimator"
 )
 
-const calibrateStudySynopsis = "study --raw FILE --reference FILE [--subject NAME] ... --rate HZ [--channels A/B,...] [--ratios slope,derivative] [--lags 0,5,...] [--format text|json]"
+const calibrateStudySynopsis = "study --raw FILE --reference FILE [--subject NAME] ... --rate HZ [--channels A/B,...] [--ratios slope,derivative,spectral] [--lags 0,5,...] [--format text|json]"
 
 // runCalibrateStudy pairs recordings under every variant (channel pair,
 // ratio method, reference lag) and scores two ways of choosing among them
@@ -30,7 +30,7 @@ func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 	fs.Var(&subs, "subject", "subject of each --raw (repeat in order; default: the raw file's folder name); leave-one-subject-out holds out a subject's recordings together")
 	fs.Float64Var(&o.RateHz, "rate", 0, "raw sample rate, Hz (required)")
 	fs.StringVar(&channels, "channels", "red/ir", "channel pairs to compare, first/second, comma-separated (e.g. r/g,b/g,r/b)")
-	fs.StringVar(&ratios, "ratios", "slope,derivative", "ratio methods to compare: slope, derivative")
+	fs.StringVar(&ratios, "ratios", "slope,derivative,spectral", "ratio methods to compare: slope, derivative, spectral")
 	fs.StringVar(&lags, "lags", "0,5,10,15,20,25,30", "reference lags to compare, s (device second k against reference second k+lag)")
 	fs.StringVar(&ruleRatio, "rule-ratio", string(estimator.RatioDerivativeSlope), "the ratio method the rule fixes beforehand")
 	fs.StringVar(&model, "model", calibration.Linear, "curve model: linear or quadratic")
@@ -175,7 +175,7 @@ func parseRatio(s string) (estimator.RatioMethod, error) {
 			return m, nil
 		}
 	}
-	return "", usagef("--ratio: %q, want %s or %s", s, estimator.RatioBeatSlope, estimator.RatioDerivativeSlope)
+	return "", usagef("--ratio: %q, want %s, %s or %s", s, estimator.RatioBeatSlope, estimator.RatioDerivativeSlope, estimator.RatioSpectral)
 }
 
 func readStudyRecording(rawPath, refPath, subject string, cols []string) (pairing.Recording, error) {

@@ -34,7 +34,7 @@ func TestCalibrateStudyReportsBothChoosers(t *testing.T) {
 		t.Fatalf("exit %d: %s", code, stderr)
 	}
 	for _, want := range []string{
-		"8 recordings of 4 subjects, 8 variants",
+		"8 recordings of 4 subjects, 12 variants",
 		"nested: variant with the lowest inner leave-one-subject-out MAE",
 		"rule: ratio derivative fixed beforehand",
 		"subject-1: chose ", "subject-4: chose ",

@@ -55,7 +55,7 @@ func runEstimateCmd(ctx context.Context, args []string, s stdio) error {
 	fs.Float64Var(&o.irNM, "ir-nm", 940, "second channel's wavelength, nm (used by beer-lambert)")
 	fs.IntVar(&o.adcBits, "adc-bits", 16, fmt.Sprintf("converter resolution (%d..%d) for the clipping, sensor-off and resolution checks; 0 = unknown (float data such as camera frame means: those checks are skipped)", estimator.MinADCBits, estimator.MaxADCBits))
 	fs.StringVar(&o.window, "window", "", fmt.Sprintf("averaging window, seconds or a duration such as 8s (%v..%v s; default %v s)", estimator.MinAveragingS, estimator.MaxAveragingS, estimator.DefaultAveragingS))
-	fs.StringVar(&o.ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope of the channels over each beat) or derivative (of their first differences)")
+	fs.StringVar(&o.ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope of the channels over each beat), derivative (of their first differences) or spectral (at the pulse frequency)")
 	fs.StringVar(&o.in, "in", "-", "input CSV; - for standard input")
 	fs.StringVar(&o.out, "out", "-", "output CSV; - for standard output")
 	fs.BoolVar(&o.flags, "flags", false, "append a flags column saying why values were withheld (no_pulse|sensor_off|clipping|motion|low_resolution)")
