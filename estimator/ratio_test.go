@@ -93,3 +93,33 @@ func TestRatioMethodsPushDoesNotAllocate(t *testing.T) {
 		}
 	}
 }
+
+// BenchmarkStreamRatioMethods is BenchmarkStream for each ratio method
+// (100 Hz, 16 bit, 25-sample chunks): the spectral method adds one pass
+// over the window per second.
+func BenchmarkStreamRatioMethods(b *testing.B) {
+	const rate, chunk, seconds = 100, 25, 60
+	src := ppgmodel.New(ppgmodel.Config{SampleRateHz: rate, ADCBits: 16, Seed: 1})
+	n := rate * seconds
+	red, ir := make([]float64, n), make([]float64, n)
+	src.Fill(red, ir, nil, ppgmodel.DefaultVitals())
+	for _, m := range RatioMethods {
+		b.Run(string(m), func(b *testing.B) {
+			st, err := New(Config{SampleRateHz: rate, ADCBits: 16, Ratio: m})
+			if err != nil {
+				b.Fatal(err)
+			}
+			out := make([]Estimate, 0, 4)
+			b.ReportAllocs()
+			pairs := 0
+			for b.Loop() {
+				for i := 0; i < n; i += chunk {
+					out = st.Push(red[i:i+chunk], ir[i:i+chunk], nil, out[:0])
+				}
+				pairs += n
+			}
+			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(pairs), "ns/pair")
+			b.ReportMetric(0, "ns/op")
+		})
+	}
+}
