@@ -7,14 +7,19 @@ import (
 	"math"
 	"net/http"
 	"regexp"
+	"runtime"
 	"strconv"
 	"strings"
+	"sync"
 	"sync/atomic"
 	"testing"
 	"time"
 
 	"google.golang.org/grpc"
+	grpccodes "google.golang.org/grpc/codes"
 	"google.golang.org/grpc/credentials/insecure"
+	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/proto"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/sim"
@@ -254,5 +259,156 @@ func waitFor(t *testing.T, limit time.Duration, what string, cond func() bool) {
 			t.Fatalf("timed out waiting until %s", what)
 		}
 		time.Sleep(20 * time.Millisecond)
+	}
+}
+
+// Finding: messages up to the 8 MiB transport limit were received whole
+// before the 64 KiB check; 20 such streams took the gateway from 58 to 272
+// MiB. The transport limit is now the largest valid message (plus a
+// quarter): the largest valid raw chunk is accepted, and 20 streams sending
+// 7 MiB messages over and over leave the heap bounded while honest devices
+// keep every acknowledged message.
+func TestOversizedMessagesKeepMemoryBounded(t *testing.T) {
+	h := newHarness(t, nil)
+	// The largest valid message goes through a real stream.
+	d, _ := h.connect(t, &pb.Introduction{DeviceId: "max-raw", Mode: pb.Mode_MODE_RAW, AdcBits: maxADCBits})
+	codes := make([]uint32, 1000)
+	for i := range codes {
+		codes[i] = 1<<maxADCBits - 1
+	}
+	d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{Sequence: 1,
+		DeviceTimeUnixMs: time.Now().UnixMilli() - 2000, SampleRateHz: 1000, Red: codes, Ir: codes, Ambient: codes, LedDriveMa: 255, Gain: 1000}}})
+	d.waitAck(1)
+	// A device message above MaxMessageBytes is rejected with a reason and
+	// the stream goes on; one above the transport limit ends its stream
+	// before it is read, with RESOURCE_EXHAUSTED.
+	tooBig := make([]uint32, defaultMaxMessageBytes(1000)/2+10)
+	d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{Sequence: 2,
+		DeviceTimeUnixMs: time.Now().UnixMilli() - 1000, SampleRateHz: 100, Red: tooBig, Ir: tooBig}}})
+	if r := d.waitRejections(1); r[0].GetReason() != pb.RejectReason_REJECT_REASON_TOO_LARGE {
+		t.Errorf("a message above MaxMessageBytes: %v, want TOO_LARGE", r[0])
+	}
+	over := make([]uint32, transportMaxBytes/2+10)
+	d.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{Sequence: 2,
+		DeviceTimeUnixMs: time.Now().UnixMilli() - 1000, SampleRateHz: 100, Red: over, Ir: over}}})
+	select {
+	case err := <-d.ended:
+		if status.Code(err) != grpccodes.ResourceExhausted {
+			t.Errorf("a message above the transport limit ended the stream with %v, want ResourceExhausted", err)
+		}
+	case <-time.After(20 * time.Second):
+		t.Fatal("a message above the transport limit did not end the stream")
+	}
+	// The transport limit lets the largest valid request of any service through.
+	if n := largestValidRequest(); n > transportMaxBytes || largestValidMessage(1000) > defaultMaxMessageBytes(1000) {
+		t.Errorf("largest valid request %d bytes, transport limit %d", n, transportMaxBytes)
+	}
+
+	// One 7 MiB message, encoded once and shared by every hostile stream
+	// (rawCodec sends the bytes as they are), so the test's own memory does
+	// not grow with the streams.
+	big, err := proto.Marshal(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{Sequence: 1,
+		DeviceTimeUnixMs: time.Now().UnixMilli(), SampleRateHz: 100, Red: make([]uint32, 7<<20/2), Ir: make([]uint32, 7<<20/2)}}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	intro, _ := proto.Marshal(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: summaryIntro("hostile")}})
+	heap := func() uint64 {
+		runtime.GC()
+		var ms runtime.MemStats
+		runtime.ReadMemStats(&ms)
+		return ms.HeapInuse
+	}
+	before := heap()
+	ctx, cancel := context.WithCancel(context.Background())
+	var hw sync.WaitGroup
+	var bigSent atomic.Int64
+	const hostile = 20
+	for i := 0; i < hostile; i++ {
+		hw.Add(1)
+		go func() {
+			defer hw.Done()
+			conn, err := grpc.NewClient(h.grpcAddr, grpc.WithTransportCredentials(insecure.NewCredentials()))
+			if err != nil {
+				t.Error(err)
+				return
+			}
+			defer conn.Close()
+			for ctx.Err() == nil {
+				st, err := conn.NewStream(ctx, &pb.IngestService_ServiceDesc.Streams[0], pb.IngestService_Connect_FullMethodName, grpc.ForceCodec(rawCodec{}))
+				if err != nil {
+					continue
+				}
+				_ = st.SendMsg(&intro)
+				for k := 0; k < 3 && ctx.Err() == nil; k++ {
+					bigSent.Add(1)
+					if st.SendMsg(&big) != nil {
+						break
+					}
+				}
+				var b []byte
+				for st.RecvMsg(&b) == nil {
+				}
+			}
+		}()
+	}
+	// Honest devices stream meanwhile.
+	var peak uint64
+	stopPeak := make(chan struct{})
+	peakDone := make(chan struct{})
+	go func() {
+		defer close(peakDone)
+		for {
+			select {
+			case <-stopPeak:
+				return
+			case <-time.After(100 * time.Millisecond):
+			}
+			var ms runtime.MemStats
+			runtime.ReadMemStats(&ms)
+			peak = max(peak, ms.HeapInuse)
+		}
+	}()
+	base := time.Now().Add(-time.Minute).UnixMilli()
+	var wg sync.WaitGroup
+	for i := 0; i < 10; i++ {
+		wg.Add(1)
+		go func(i int) {
+			defer wg.Done()
+			d, _ := h.connect(t, summaryIntro(fmt.Sprintf("honest-%02d", i)))
+			for s := uint64(1); s <= 40; s++ {
+				d.send(summary(s, base+int64(s)*1000, 96))
+				time.Sleep(50 * time.Millisecond)
+			}
+			d.waitAck(40)
+		}(i)
+	}
+	wg.Wait()
+	time.Sleep(time.Second)
+	cancel()
+	hw.Wait()
+	close(stopPeak)
+	<-peakDone
+	grew := int64(peak) - int64(before)
+	t.Logf("heap in use %d MiB before, peak %d MiB while %d hostile streams sent %d messages of %d MiB",
+		before>>20, peak>>20, hostile, bigSent.Load(), len(big)>>20)
+	if bigSent.Load() < hostile {
+		t.Fatalf("only %d oversized messages sent: the test proved nothing", bigSent.Load())
+	}
+	// Bound (gateway/options.go): 144 KiB of received bytes per stream,
+	// plus the transport's and the honest streams' own working memory.
+	// Receiving the messages whole would take 20 x 7 MiB = 140 MiB.
+	if grew > 48<<20 {
+		t.Errorf("heap grew by %d MiB while hostile streams sent oversized messages, want < 48 MiB", grew>>20)
+	}
+	tot, err := h.db.LedgerTotals()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := 0; i < 10; i++ {
+		id := fmt.Sprintf("honest-%02d", i)
+		if lt := tot[id]; lt.Chunks != 40 || !lt.Distinct {
+			t.Errorf("%s: ledger %+v, want the 40 acknowledged messages once", id, lt)
+		}
 	}
 }

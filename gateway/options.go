@@ -2,14 +2,19 @@ package gateway
 
 import (
 	"fmt"
-	"google.golang.org/grpc"
 	"log/slog"
+	"math"
+	"strings"
 	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/protobuf/proto"
 
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/estimator"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
@@ -30,9 +35,13 @@ type Options struct {
 	BatchDelay time.Duration
 	// BatchRecords commits early when this many data messages wait; 0 means 4096.
 	BatchRecords int
-	// MaxMessageBytes bounds one message from a device; 0 means 64 KiB. Larger
-	// messages up to the transport limit (8 MiB) are rejected with a reason and
-	// the stream goes on; beyond it the transport ends the stream.
+	// MaxMessageBytes bounds one message from a device: a larger one (up to
+	// the transport limit, transportMaxBytes) is rejected with
+	// REJECT_REASON_TOO_LARGE and the stream goes on. 0 means the largest
+	// valid device message for MaxChunkSamples (largestValidMessage: a raw
+	// chunk of that many 24-bit samples on three channels, 12,060 bytes at
+	// 1,000) plus a quarter for fields a newer device may add, rounded up to
+	// 4 KiB: 16 KiB by default.
 	MaxMessageBytes int
 	// MaxChunkSamples bounds samples per raw chunk; 0 means 1000.
 	MaxChunkSamples int
@@ -98,11 +107,15 @@ func (o *Options) setDefaults() error {
 	if o.BatchRecords == 0 {
 		o.BatchRecords = 4096
 	}
-	if o.MaxMessageBytes == 0 {
-		o.MaxMessageBytes = 64 << 10
-	}
 	if o.MaxChunkSamples == 0 {
 		o.MaxChunkSamples = 1000
+	}
+	if o.MaxMessageBytes == 0 {
+		o.MaxMessageBytes = defaultMaxMessageBytes(o.MaxChunkSamples)
+	}
+	if n := largestValidMessage(o.MaxChunkSamples); o.MaxMessageBytes < n || o.MaxMessageBytes > transportMaxBytes {
+		return fmt.Errorf("gateway: Options.MaxMessageBytes %d, want %d (the largest valid message: a raw chunk of %d samples) .. %d (the transport limit)",
+			o.MaxMessageBytes, n, o.MaxChunkSamples, transportMaxBytes)
 	}
 	if o.LateAfter == 0 {
 		o.LateAfter = 10 * time.Second
@@ -128,5 +141,61 @@ func (o *Options) setDefaults() error {
 	return nil
 }
 
-// transportMaxBytes is the gRPC receive limit: above it the transport ends the stream.
-const transportMaxBytes = 8 << 20
+// Transport bounds on what one stream can make the gateway hold. The gRPC
+// receive limit (transportMaxBytes) is the largest valid request of any
+// service, plus room for fields a newer client may add: a message above it
+// ends its stream with RESOURCE_EXHAUSTED before it is read (gRPC reads the
+// length first), so no stream makes the gateway buffer more for one
+// message. Each stream holds at most one message being received plus what
+// its flow-control window lets a client send ahead of the gateway reading
+// (streamWindow); a connection's streams together at most connWindow
+// ahead, and a connection carries at most maxStreamsPerConn streams. So N
+// hostile streams on their own connections hold at most N x (80 + 64) KiB
+// = N x 144 KiB of received bytes, 20 of them under 3 MiB.
+const (
+	transportMaxBytes = 80 << 10
+	streamWindow      = 64 << 10
+	connWindow        = 1 << 20
+	maxStreamsPerConn = 1024
+)
+
+// largestValidRequest is the encoded size of the largest request an
+// operator can send that passes validation: SetAlarmProfile with a 64 KiB
+// profile, a 64-character device id and a 500-character reason (66,109
+// bytes; PutCalibration's 64 KiB curve is a little smaller).
+func largestValidRequest() int {
+	return proto.Size(&pb.SetAlarmProfileRequest{DeviceId: strings.Repeat("x", maxIDLen),
+		ProfileYaml: strings.Repeat("y", 64<<10), Reason: strings.Repeat("r", 500)})
+}
+
+// largestValidMessage is the encoded size of the largest message a device
+// can send that passes validation: a raw chunk of maxSamples samples of a
+// 24-bit ADC (4-byte varints) on the red, infrared and ambient channels,
+// with every other field at its largest encoding. An introduction is
+// smaller (ids of 64 bytes, 8 labels of 32 + 64 bytes: about 1.2 KB), and
+// so is a summary or a status.
+func largestValidMessage(maxSamples int) int {
+	codes := make([]uint32, maxSamples)
+	for i := range codes {
+		codes[i] = 1<<maxADCBits - 1
+	}
+	chunk := &pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{
+		Sequence: math.MaxUint64, DeviceTimeUnixMs: math.MaxInt64, SampleRateHz: maxRateHz,
+		Red: codes, Ir: codes, Ambient: codes, LedDriveMa: 255, Gain: 1000}}}
+	id := strings.Repeat("x", maxIDLen)
+	labels := map[string]string{}
+	for i := 0; i < maxLabels; i++ {
+		labels[fmt.Sprintf("%0*d", maxLabelKeyLen, i)] = strings.Repeat("v", maxLabelValLen)
+	}
+	intro := &pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: &pb.Introduction{
+		DeviceId: id, Model: id, Firmware: id, CalibrationId: id, Mode: pb.Mode_MODE_RAW, AdcBits: maxADCBits,
+		RedWavelengthNm: maxWavelength, IrWavelengthNm: maxWavelength, Labels: labels}}}
+	return max(proto.Size(chunk), proto.Size(intro))
+}
+
+// defaultMaxMessageBytes is the largest valid message plus a quarter,
+// rounded up to 4 KiB.
+func defaultMaxMessageBytes(maxSamples int) int {
+	n := largestValidMessage(maxSamples) * 5 / 4
+	return (n + 4095) / 4096 * 4096
+}

@@ -520,7 +520,7 @@ func TestFloodOfMalformedMessagesLeavesHonestStreamsWhole(t *testing.T) {
 	//   1 a wrong credential: refused at once; reopen;
 	//   2 data before an introduction: rejected, the stream ends after 100; reopen;
 	//   3 introduced, then chunks with NaN rates and mismatched channels: each rejected;
-	//   4 introduced, then oversized, zero-sequence and empty messages: each rejected.
+	//   4 introduced, then too many samples, zero-sequence and empty messages: each rejected.
 	var fw sync.WaitGroup
 	for f := 0; f < flooders; f++ {
 		fw.Add(1)
@@ -575,7 +575,9 @@ func TestFloodOfMalformedMessagesLeavesHonestStreamsWhole(t *testing.T) {
 				case 4:
 					switch k % 3 {
 					case 0:
-						c := &pb.RawChunk{Sequence: uint64(k + 1), DeviceTimeUnixMs: base, SampleRateHz: 100, Red: make([]uint32, 40000), Ir: make([]uint32, 40000)}
+						// Too many samples, within the transport's size limit
+						// (a larger message ends the stream: TestOversizedMessagesKeepMemoryBounded).
+						c := &pb.RawChunk{Sequence: uint64(k + 1), DeviceTimeUnixMs: base, SampleRateHz: 100, Red: make([]uint32, 4000), Ir: make([]uint32, 4000)}
 						b = enc(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: c}})
 					case 1:
 						b = enc(&pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{Sequence: 0, Red: make([]uint32, 200)}}})

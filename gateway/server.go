@@ -227,11 +227,11 @@ func (e *storeFault) Unwrap() error { return e.err }
 func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) error {
 	opts := append([]grpc.ServerOption{
 		grpc.MaxRecvMsgSize(transportMaxBytes),
-		grpc.MaxConcurrentStreams(1 << 16),
+		grpc.MaxConcurrentStreams(maxStreamsPerConn),
 		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 5 * time.Second, PermitWithoutStream: true}),
 		grpc.KeepaliveParams(keepalive.ServerParameters{Time: 30 * time.Second, Timeout: 10 * time.Second}),
-		grpc.InitialWindowSize(64 << 10),
-		grpc.InitialConnWindowSize(1 << 20),
+		grpc.InitialWindowSize(streamWindow),
+		grpc.InitialConnWindowSize(connWindow),
 		grpc.ReadBufferSize(16 << 10),
 		grpc.WriteBufferSize(16 << 10),
 	}, g.opt.GRPCServerOptions...)

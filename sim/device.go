@@ -11,6 +11,9 @@ import (
 	"sync/atomic"
 	"time"
 
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
 	"github.com/pulsefleet/pulsefleet/ppgmodel"
 	pulsefleetv1 "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/sim/scenario"
@@ -560,7 +563,9 @@ func (d *device) session(ctx context.Context, helpers *sync.WaitGroup) {
 				d.f.c.streamErrors.Add(1)
 				d.f.noteErr(fmt.Errorf("device %s: %w", d.id, err))
 			}
-			if welcomed {
+			// A gateway whose store is full (RESOURCE_EXHAUSTED) is given
+			// time: the backoff keeps growing even after a welcome.
+			if welcomed && !backOffFor(err) {
 				b.Reset()
 			}
 			wait = b.Next()
@@ -741,4 +746,12 @@ func (d *device) onReject(r *pulsefleetv1.Rejection) {
 	for d.head < len(d.buf) && d.buf[d.head].done {
 		d.popFront()
 	}
+}
+
+// backOffFor reports whether a stream's end asks the device to slow down
+// its reconnects: RESOURCE_EXHAUSTED (the gateway's store is full, or too
+// many streams). UNAVAILABLE (a stream ended to rebalance, a shutdown, a
+// failed write) keeps the quick reconnect after a welcome.
+func backOffFor(err error) bool {
+	return status.Code(err) == codes.ResourceExhausted // also when wrapped
 }
