@@ -70,7 +70,7 @@ func TestRatioMethodValidated(t *testing.T) {
 }
 
 // The spectral method keeps the window's samples in rings sized at New: Push
-// still does not allocate (DESIGN.md performance targets, as
+// still does not allocate (docs/references.md, "Project targets", as
 // TestPushDoesNotAllocate).
 func TestRatioMethodsPushDoesNotAllocate(t *testing.T) {
 	const rate = 100
