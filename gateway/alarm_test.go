@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -75,7 +76,7 @@ func TestAlarmsSurviveRestartWithoutDoubleAnnouncement(t *testing.T) {
 	waitUntil(t, func() bool { return count(get(), "bed-1", "announced") == 1 }, "bed-1 announced")
 
 	// An operator acknowledges bed-1 (audited with who).
-	ctx := context.WithValue(context.Background(), actorKey{}, "nurse-ilse")
+	ctx := auth.WithActor(context.Background(), "nurse-ilse")
 	if _, err := h.g.AcknowledgeAlarm(ctx, &pb.AcknowledgeAlarmRequest{DeviceId: "bed-1"}); err != nil {
 		t.Fatal(err)
 	}
@@ -144,7 +145,7 @@ func TestPauseKeepsLogging(t *testing.T) {
 	d, _ := h.connect(t, summaryIntro("home-3"))
 	d.send(summary(1, t0, 96))
 	d.waitAck(1)
-	ctx := context.WithValue(context.Background(), actorKey{}, "op-jun")
+	ctx := auth.WithActor(context.Background(), "op-jun")
 	if _, err := h.g.PauseAlarms(ctx, &pb.PauseAlarmsRequest{DeviceId: "home-3", DurationS: 60}); err != nil {
 		t.Fatal(err)
 	}
@@ -168,7 +169,7 @@ func TestPauseKeepsLogging(t *testing.T) {
 // Setting a profile is validated, stored, audited and applied.
 func TestSetAlarmProfile(t *testing.T) {
 	h := newHarness(t, func(o *Options) { o.DefaultProfile = testProfile(t) })
-	ctx := context.WithValue(context.Background(), actorKey{}, "admin-ro")
+	ctx := auth.WithActor(context.Background(), "admin-ro")
 	_, err := h.g.SetAlarmProfile(ctx, &pb.SetAlarmProfileRequest{ProfileYaml: "name: x\nconditions:\n  - kind: spo2_low\n    limit: 90\n    delay: -5s\n    priority: medium\n"})
 	if err == nil {
 		t.Fatal("a negative delay must be refused")

@@ -209,9 +209,7 @@ func TestWebEventStreamEndsOnRevocation(t *testing.T) {
 	done := make(chan struct{})
 	go func() { io.Copy(io.Discard, resp.Body); close(done) }()
 	secWaitUntil(t, func() bool {
-		h.g.auth.mu.RLock()
-		defer h.g.auth.mu.RUnlock()
-		return len(h.g.auth.streams[tokenID(viewer)]) == 1
+		return h.g.auth.OpenStreams(tokenID(viewer)) == 1
 	}, "event stream open")
 	if _, err := h.admin().RevokeToken(bearer(admin), &pb.RevokeTokenRequest{TokenId: tokenID(viewer)}); err != nil {
 		t.Fatal(err)

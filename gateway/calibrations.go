@@ -10,6 +10,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -33,9 +34,9 @@ func (g *Gateway) PutCalibration(ctx context.Context, req *pb.PutCalibrationRequ
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "curve_yaml: %v", err)
 	}
-	who := actorFrom(ctx)
+	who := auth.ActorFrom(ctx)
 	sc, err := g.db.PutCalibration(store.Calibration{Name: c.Name, CurveYAML: req.GetCurveYaml(), CreatedMS: g.nowMS(), CreatedBy: who},
-		&store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.put", Detail: "calibration " + c.Name + ": " + c.Equation(), Remote: remoteFrom(ctx)})
+		&store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.put", Detail: "calibration " + c.Name + ": " + c.Equation(), Remote: auth.RemoteFrom(ctx)})
 	if err != nil {
 		return nil, status.Errorf(codes.Unavailable, "%v", err)
 	}
@@ -93,9 +94,9 @@ func (g *Gateway) AssignCalibration(ctx context.Context, req *pb.AssignCalibrati
 			ref = applied // pin the version assigned
 		}
 	}
-	who := actorFrom(ctx)
+	who := auth.ActorFrom(ctx)
 	if err := g.db.AssignCalibration(target, ref, &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.assign",
-		Device: req.GetDeviceId(), Detail: target + " -> " + ref, Remote: remoteFrom(ctx)}); err != nil {
+		Device: req.GetDeviceId(), Detail: target + " -> " + ref, Remote: auth.RemoteFrom(ctx)}); err != nil {
 		return nil, status.Errorf(codes.Unavailable, "%v", err)
 	}
 	g.calMu.Lock()

@@ -6,6 +6,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	"github.com/pulsefleet/pulsefleet/ppgmodel"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
@@ -15,7 +16,7 @@ import (
 // next stream of a device of that model, named in its welcome, and audited.
 func TestAssignedCalibrationIsApplied(t *testing.T) {
 	h := newHarness(t, nil)
-	ctx := context.WithValue(context.Background(), actorKey{}, "eng-tove")
+	ctx := auth.WithActor(context.Background(), "eng-tove")
 	// Deliberately offset curve: SpO2 = 100 - 25 R (the textbook line minus 10
 	// points), so the estimates show which curve was used.
 	curve := "name: proto-c-shifted\nversion: 1\nmodel: linear\ncoefficients: [100, -25]\nratio_min: 0.2\nratio_max: 2\n"

@@ -5,7 +5,9 @@
 // writer that acknowledges only what is durable, the fan-out of live events,
 // and the HTTP listener (/metrics, /healthz, /readyz and the web page).
 //
-// It is the only package that knows gRPC status codes.
+// Credentials, roles and the gRPC guards are in internal/auth; Options.Security
+// configures them. Apart from those guards, this is the only package that
+// knows gRPC status codes.
 //
 // Ownership of goroutines:
 //   - Gateway.Serve owns the gRPC and HTTP servers, the writer and the

@@ -11,6 +11,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -203,7 +204,7 @@ func (g *Gateway) operatorAction(ctx context.Context, id, why string, fn func(d 
 	g.alarmEffects(d, evs, rec)
 	d.mu.Unlock()
 	for _, a := range rec.audit {
-		a.Remote = remoteFrom(ctx)
+		a.Remote = auth.RemoteFrom(ctx)
 		if why != "" {
 			a.Detail += "; " + why
 		}
@@ -219,7 +220,7 @@ func (g *Gateway) AcknowledgeAlarm(ctx context.Context, req *pb.AcknowledgeAlarm
 	if n := len(req.GetNote()); n > 500 {
 		return nil, status.Errorf(codes.InvalidArgument, "note: %d characters, want at most 500", n)
 	}
-	who := actorFrom(ctx)
+	who := auth.ActorFrom(ctx)
 	note := ""
 	if req.GetNote() != "" {
 		note = "note: " + req.GetNote()
@@ -254,7 +255,7 @@ func (g *Gateway) PauseAlarms(ctx context.Context, req *pb.PauseAlarmsRequest) (
 	if n := len(req.GetReason()); n > 500 {
 		return nil, status.Errorf(codes.InvalidArgument, "reason: %d characters, want at most 500", n)
 	}
-	who := actorFrom(ctx)
+	who := auth.ActorFrom(ctx)
 	var until float64
 	reason := ""
 	if req.GetReason() != "" {
@@ -320,9 +321,9 @@ func (g *Gateway) SetAlarmProfile(ctx context.Context, req *pb.SetAlarmProfileRe
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "profile_yaml: %v", err)
 	}
-	who := actorFrom(ctx)
+	who := auth.ActorFrom(ctx)
 	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "profile.set", Device: req.GetDeviceId(),
-		Detail: fmt.Sprintf("profile %s; reason: %s", p.Name, req.GetReason()), Remote: remoteFrom(ctx)}
+		Detail: fmt.Sprintf("profile %s; reason: %s", p.Name, req.GetReason()), Remote: auth.RemoteFrom(ctx)}
 	targets := g.devices.all()
 	if req.GetDeviceId() != "" {
 		d, err := g.device(req.GetDeviceId())

@@ -34,8 +34,5 @@ func (g *Gateway) httpHandler() http.Handler {
 		fmt.Fprintln(w, "ready")
 	})
 	g.webRoutes(mux) // the web page and its JSON (web.go)
-	if g.httpRoutes != nil {
-		g.httpRoutes(mux)
-	}
 	return mux
 }

@@ -20,6 +20,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -280,7 +281,7 @@ func (s *stream) endStatus(ctx context.Context, err error) error {
 		return status.Errorf(codes.Unavailable, "store write failed: %v; back off and resend everything after sequence %d", sf.err, resume)
 	case errors.Is(cause, errReplaced):
 		return status.Error(codes.Aborted, errReplaced.Error())
-	case errors.Is(cause, errRevoked):
+	case errors.Is(cause, auth.ErrRevoked):
 		return status.Error(codes.Unauthenticated, "the stream's credential was revoked")
 	case errors.Is(cause, errSendStalled):
 		return status.Error(codes.DeadlineExceeded, errSendStalled.Error())
@@ -357,7 +358,7 @@ func (s *stream) introduce(ctx context.Context) error {
 			rej = validateIntroduction(in)
 		}
 		if rej == nil {
-			if err := g.authorizeDevice(ctx, in.GetDeviceId(), s.remote); err != nil {
+			if err := g.auth.AuthorizeDevice(ctx, in.GetDeviceId()); err != nil {
 				return err
 			}
 			return s.start(ctx, in)

@@ -39,7 +39,6 @@ type metrics struct {
 	episodeEvents    *prometheus.CounterVec // by transition
 	watchers         prometheus.Gauge
 	watchDropped     prometheus.Counter
-	authFailures     *prometheus.CounterVec // by reason
 	storeBytes       prometheus.GaugeFunc
 
 	// per device (label "device")
@@ -103,8 +102,6 @@ func newMetrics(reg prometheus.Registerer, storeSize func() float64) (*metrics, 
 			Help: "Open live-event subscriptions (gRPC watches and web pages)."}),
 		watchDropped: prometheus.NewCounter(prometheus.CounterOpts{Name: "pulsefleet_watch_events_dropped_total",
 			Help: "Live events dropped because a watcher was too slow."}),
-		authFailures: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "pulsefleet_auth_failures_total",
-			Help: "Refused credentials, by reason."}, []string{"reason"}),
 	}
 	m.devConnected = prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "pulsefleet_device_connected",
 		Help: "1 while the device has an open ingest stream, 0 otherwise (one series per known device)."}, []string{"device"})
@@ -119,7 +116,7 @@ func newMetrics(reg prometheus.Registerer, storeSize func() float64) (*metrics, 
 	cs := []prometheus.Collector{m.connected, m.streams, m.messages, m.samples, m.rejected, m.duplicates, m.lost,
 		m.late, m.replaced, m.panics, m.trendPoints, m.estimatorSeconds, m.estimatorFlags, m.commitSeconds,
 		m.batchRecords, m.durableSeconds, m.writerQueue, m.storeErrors, m.discarded, m.carryDropped, m.sendStalls, m.alarmsActive, m.announcements,
-		m.episodeEvents, m.watchers, m.watchDropped, m.authFailures, m.storeBytes,
+		m.episodeEvents, m.watchers, m.watchDropped, m.storeBytes,
 		m.devConnected, m.devValidSpO2, m.devDrift, m.devBattery}
 	for _, c := range cs {
 		if err := reg.Register(c); err != nil {

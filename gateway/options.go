@@ -48,9 +48,9 @@ type Options struct {
 	// LateAfter: a message whose device time is this far behind the gateway
 	// clock (after drift correction) counts as late; 0 means 10 s.
 	LateAfter time.Duration
-	// OfflineAfter: a device without a stream is fed to its alarm engine as
-	// offline at once; the device_offline condition's delay applies. The
-	// watchdog evaluates offline devices every WatchdogEvery; 0 means 1 s.
+	// WatchdogEvery is how often the watchdog evaluates devices without a
+	// stream; 0 means 1 s. Such a device is fed to its alarm engine as
+	// offline at once; the device_offline condition's delay applies.
 	WatchdogEvery time.Duration
 	// DefaultProfile is the alarm profile for devices without their own; nil
 	// means the built-in adult-ward-pilot (set by the caller) or none.
@@ -63,8 +63,10 @@ type Options struct {
 	CaptureRaw bool
 	// Retention of history; zero fields keep forever.
 	Retention store.Retention
-	// MaxPause bounds PauseAlarms; 0 means the profile's pause_max.
-	GracefulTimeout time.Duration // 0 means 10 s
+	// GracefulTimeout bounds each stage of a shutdown (flushing the store,
+	// waiting for streams to end) before the gateway stops harder; 0 means
+	// 10 s. PauseAlarms is bounded by the profile's pause_max.
+	GracefulTimeout time.Duration
 	// Peers is the gRPC address of every gateway sharing the fleet (the same
 	// list on each); empty means this gateway serves every device. Self is
 	// this gateway's entry in Peers. A device whose rendezvous owner
@@ -73,6 +75,9 @@ type Options struct {
 	Self  string
 	// GRPCServerOptions are added to the gRPC server's (TLS credentials, interceptors).
 	GRPCServerOptions []grpc.ServerOption
+	// Security configures credential enforcement, web sessions and the
+	// per-stream message rate.
+	Security SecurityOptions
 
 	sendStall time.Duration // tests shorten it; 0 means sendStall (ingest.go)
 }
@@ -138,6 +143,10 @@ func (o *Options) setDefaults() error {
 	if o.GracefulTimeout == 0 {
 		o.GracefulTimeout = 10 * time.Second
 	}
+	if err := o.Security.validate(); err != nil {
+		return err
+	}
+	o.Security.setDefaults()
 	return nil
 }
 

@@ -2,6 +2,7 @@ package gateway
 
 import (
 	"context"
+	"crypto/rand"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -20,6 +21,7 @@ import (
 	"google.golang.org/grpc/reflection"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/shard"
 	"github.com/pulsefleet/pulsefleet/store"
@@ -52,10 +54,10 @@ type Gateway struct {
 	calMu     sync.RWMutex
 	calAssign map[string]string // calibration assignments: "device:ID"/"model:M" -> "name@vN"
 
-	// Extension points set by other parts of the package (auth, sharding, web).
-	auth       *authState // credentials, roles, limits (auth.go)
-	grpcOpts   []grpc.ServerOption
-	httpRoutes func(mux *http.ServeMux)
+	auth       *auth.Authenticator // credentials, roles, the gRPC guards
+	secMu      sync.RWMutex
+	sec        SecurityOptions // in effect (applySecurity)
+	sessionKey []byte          // HMAC key of web sessions; new each start
 }
 
 // New builds a gateway over an open store: it loads devices, cursors and
@@ -82,9 +84,15 @@ func New(opt Options) (*Gateway, error) {
 		g.opt.ResolveCalibration = g.resolveStoredCalibration
 	}
 	g.hub = newHub(m)
-	if err := g.initAuth(); err != nil {
-		return nil, err
+	a, err := auth.New(auth.Config{Store: opt.Store, Registerer: opt.Registerer, Log: opt.Logger, NowMS: g.nowMS, Audit: g.audit},
+		auth.Options{RequireTokens: opt.Security.RequireTokens, AuditPerMinute: opt.Security.AuthAuditPerMinute})
+	if err != nil {
+		return nil, fmt.Errorf("gateway: %w", err)
 	}
+	g.auth = a
+	g.applySecurity(opt.Security)
+	g.sessionKey = make([]byte, 32)
+	_, _ = rand.Read(g.sessionKey)
 	g.w = newWriter(opt.Store, opt.BatchDelay, opt.BatchRecords, m, opt.Now, g.storeFailed, g.storeWorks)
 	if err := g.load(); err != nil {
 		return nil, err
@@ -235,7 +243,7 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 		grpc.ReadBufferSize(16 << 10),
 		grpc.WriteBufferSize(16 << 10),
 	}, g.opt.GRPCServerOptions...)
-	opts = append(opts, g.grpcOpts...)
+	opts = append(opts, g.auth.ServerOptions()...)
 	srv := grpc.NewServer(opts...)
 	pb.RegisterIngestServiceServer(srv, g)
 	pb.RegisterFleetServiceServer(srv, g)

@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"math"
 
+	"github.com/pulsefleet/pulsefleet/internal/ids"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
@@ -15,7 +16,7 @@ const (
 	maxADCBits     = 24
 	minWavelength  = 500
 	maxWavelength  = 1100
-	maxIDLen       = 64
+	maxIDLen       = ids.MaxLen
 	maxLabels      = 8
 	maxLabelKeyLen = 32
 	maxLabelValLen = 64
@@ -35,19 +36,8 @@ func invalid(seq uint64, field, format string, args ...any) *pb.Rejection {
 	return reject(seq, pb.RejectReason_REJECT_REASON_INVALID_FIELD, field, format, args...)
 }
 
-// validID checks a device id: 1..64 of [A-Za-z0-9._-].
-func validID(field, id string) error {
-	if n := len(id); n < 1 || n > maxIDLen {
-		return fmt.Errorf("%s: length %d, want 1..%d", field, n, maxIDLen)
-	}
-	for i := 0; i < len(id); i++ {
-		c := id[i]
-		if !(c >= 'a' && c <= 'z' || c >= 'A' && c <= 'Z' || c >= '0' && c <= '9' || c == '.' || c == '_' || c == '-') {
-			return fmt.Errorf("%s: %q has character %q, want only A-Z a-z 0-9 . _ -", field, id, c)
-		}
-	}
-	return nil
-}
+// validID checks a device id: 1..64 of [A-Za-z0-9._-] (internal/ids).
+func validID(field, id string) error { return ids.Check(field, id) }
 
 // validateIntroduction checks an introduction and fills defaults.
 func validateIntroduction(in *pb.Introduction) *pb.Rejection {

@@ -18,6 +18,7 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -71,17 +72,17 @@ func (g *Gateway) webRoutes(mux *http.ServeMux) {
 		}
 		w.Header().Set("Content-Type", "text/html; charset=utf-8")
 		pageHeaders(w)
-		html := strings.NewReplacer("{{CAUTION}}", webCaution, "{{CSRF}}", g.webCSRFToken(r), "{{ACTOR}}", htmlEscape(actorFrom(webActor(r)))).Replace(string(b))
+		html := strings.NewReplacer("{{CAUTION}}", webCaution, "{{CSRF}}", g.webCSRFToken(r), "{{ACTOR}}", htmlEscape(auth.ActorFrom(webActor(r)))).Replace(string(b))
 		_, _ = w.Write([]byte(html))
 	})
 	g.authRoutes(mux)
-	mux.Handle("GET /{$}", g.requireRole(RoleViewer, page))
-	mux.Handle("GET /device/{id}", g.requireRole(RoleViewer, page))
+	mux.Handle("GET /{$}", g.requireRole(auth.RoleViewer, page))
+	mux.Handle("GET /device/{id}", g.requireRole(auth.RoleViewer, page))
 	// The page's assets need the viewer role like the page, carry the same
 	// headers, and never include the page's template (index.html, with its
 	// placeholders), which only the page handler serves, filled in.
 	assets := http.StripPrefix("/ui/", http.FileServerFS(ui))
-	mux.Handle("GET /ui/", g.requireRole(RoleViewer, http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+	mux.Handle("GET /ui/", g.requireRole(auth.RoleViewer, http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		pageHeaders(w)
 		if name := strings.TrimPrefix(r.URL.Path, "/ui/"); name == "" || name == "index.html" || strings.HasSuffix(name, "/") {
 			http.NotFound(w, r)
@@ -90,13 +91,13 @@ func (g *Gateway) webRoutes(mux *http.ServeMux) {
 		assets.ServeHTTP(w, r)
 	})))
 
-	mux.Handle("GET /api/fleet", g.webHandler(RoleViewer, g.webFleet))
-	mux.Handle("GET /api/device/{id}", g.webHandler(RoleViewer, g.webDevice))
-	mux.Handle("GET /api/device/{id}/trend", g.webHandler(RoleViewer, g.webTrend))
-	mux.Handle("GET /api/device/{id}/raw", g.webHandler(RoleViewer, g.webRaw))
-	mux.Handle("POST /api/device/{id}/acknowledge", g.webHandler(RoleOperator, g.webAcknowledge))
-	mux.Handle("POST /api/device/{id}/pause", g.webHandler(RoleOperator, g.webPause))
-	mux.Handle("GET /api/events", g.webHandler(RoleViewer, g.webEvents))
+	mux.Handle("GET /api/fleet", g.webHandler(auth.RoleViewer, g.webFleet))
+	mux.Handle("GET /api/device/{id}", g.webHandler(auth.RoleViewer, g.webDevice))
+	mux.Handle("GET /api/device/{id}/trend", g.webHandler(auth.RoleViewer, g.webTrend))
+	mux.Handle("GET /api/device/{id}/raw", g.webHandler(auth.RoleViewer, g.webRaw))
+	mux.Handle("POST /api/device/{id}/acknowledge", g.webHandler(auth.RoleOperator, g.webAcknowledge))
+	mux.Handle("POST /api/device/{id}/pause", g.webHandler(auth.RoleOperator, g.webPause))
+	mux.Handle("GET /api/events", g.webHandler(auth.RoleViewer, g.webEvents))
 }
 
 // pageHeaders sets the security headers of the page and its assets: no
@@ -119,9 +120,9 @@ type webFunc func(ctx context.Context, w http.ResponseWriter, r *http.Request) (
 // webHandler is the single entry of every JSON handler: it checks the
 // caller's role (auth.go: bearer header or session cookie with CSRF token),
 // names the operator for the audit log (webActor) and writes the answer.
-func (g *Gateway) webHandler(role Role, fn webFunc) http.Handler {
+func (g *Gateway) webHandler(role auth.Role, fn webFunc) http.Handler {
 	return g.requireRole(role, http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
-		ctx := context.WithValue(webActor(r), remoteKey{}, r.RemoteAddr)
+		ctx := auth.WithRemote(webActor(r), r.RemoteAddr)
 		w.Header().Set("Cache-Control", "no-store")
 		w.Header().Set("X-Content-Type-Options", "nosniff")
 		v, err := fn(ctx, w, r)
@@ -141,14 +142,14 @@ func (g *Gateway) webHandler(role Role, fn webFunc) http.Handler {
 // the audit log: the logged-in operator, or, on an open gateway without
 // tokens, "web@HOST" (the client's address) instead of "anonymous".
 func webActor(r *http.Request) context.Context {
-	if a := actorFrom(r.Context()); a != "anonymous" {
+	if a := auth.ActorFrom(r.Context()); a != "anonymous" {
 		return r.Context()
 	}
 	host, _, err := net.SplitHostPort(r.RemoteAddr)
 	if err != nil {
 		host = r.RemoteAddr
 	}
-	return context.WithValue(r.Context(), actorKey{}, "web@"+host)
+	return auth.WithActor(r.Context(), "web@"+host)
 }
 
 func writeWebError(w http.ResponseWriter, err error) {

@@ -243,13 +243,9 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		db.Close()
 		return nil, nil, err
 	}
-	sec.apply(&opt)
+	sec.apply(&opt, c)
 	gw, err := gateway.New(opt)
 	if err != nil {
-		db.Close()
-		return nil, nil, err
-	}
-	if err := gw.SetSecurity(sec.gatewayOptions(c)); err != nil {
 		db.Close()
 		return nil, nil, err
 	}

@@ -13,7 +13,7 @@ import (
 
 	"google.golang.org/grpc"
 
-	"github.com/pulsefleet/pulsefleet/gateway"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -125,12 +125,12 @@ type localAdmin struct {
 }
 
 func (l *localAdmin) IssueToken(_ context.Context, in *pb.IssueTokenRequest, _ ...grpc.CallOption) (*pb.IssueTokenResponse, error) {
-	spec := gateway.TokenSpec{Device: in.GetDeviceId(), Operator: in.GetOperator(), Role: gateway.RoleFromProto(in.GetRole())}
-	secret, t, err := gateway.IssueToken(l.db, spec, l.actor, "local", time.Now())
+	spec := auth.TokenSpec{Device: in.GetDeviceId(), Operator: in.GetOperator(), Role: auth.RoleFromProto(in.GetRole())}
+	secret, t, err := auth.IssueToken(l.db, spec, l.actor, "local", time.Now())
 	if err != nil {
 		return nil, err
 	}
-	return &pb.IssueTokenResponse{Secret: secret, Token: gateway.TokenProto(t)}, nil
+	return &pb.IssueTokenResponse{Secret: secret, Token: auth.TokenProto(t)}, nil
 }
 
 func (l *localAdmin) ListTokens(context.Context, *pb.ListTokensRequest, ...grpc.CallOption) (*pb.ListTokensResponse, error) {
@@ -140,20 +140,20 @@ func (l *localAdmin) ListTokens(context.Context, *pb.ListTokensRequest, ...grpc.
 	}
 	out := &pb.ListTokensResponse{}
 	for _, t := range ts {
-		out.Tokens = append(out.Tokens, gateway.TokenProto(t))
+		out.Tokens = append(out.Tokens, auth.TokenProto(t))
 	}
 	return out, nil
 }
 
 func (l *localAdmin) RevokeToken(_ context.Context, in *pb.RevokeTokenRequest, _ ...grpc.CallOption) (*pb.RevokeTokenResponse, error) {
-	t, err := gateway.RevokeToken(l.db, in.GetTokenId(), l.actor, "local", time.Now())
+	t, err := auth.RevokeToken(l.db, in.GetTokenId(), l.actor, "local", time.Now())
 	if errors.Is(err, store.ErrNotFound) {
 		return nil, fmt.Errorf("--id: %q is not a credential in this store (see 'pulsefleet token list')", in.GetTokenId())
 	}
 	if err != nil {
 		return nil, err
 	}
-	return &pb.RevokeTokenResponse{Token: gateway.TokenProto(t)}, nil
+	return &pb.RevokeTokenResponse{Token: auth.TokenProto(t)}, nil
 }
 
 func (l *localAdmin) ListAudit(_ context.Context, in *pb.ListAuditRequest, _ ...grpc.CallOption) (*pb.ListAuditResponse, error) {
@@ -163,7 +163,7 @@ func (l *localAdmin) ListAudit(_ context.Context, in *pb.ListAuditRequest, _ ...
 	}
 	out := &pb.ListAuditResponse{}
 	for _, e := range es {
-		out.Entries = append(out.Entries, gateway.AuditProto(e))
+		out.Entries = append(out.Entries, auth.AuditProto(e))
 	}
 	return out, nil
 }
@@ -196,11 +196,11 @@ func runToken(ctx context.Context, args []string, s stdio) error {
 		case device != "" && role != "":
 			return usagef("--role: only with --operator (a device token may only stream)")
 		case operator != "":
-			r, err := gateway.ParseRole(role)
+			r, err := auth.ParseRole(role)
 			if err != nil {
 				return usagef("--role: %q, want viewer, operator or admin", role)
 			}
-			req.Role = gateway.RoleProto(r)
+			req.Role = auth.RoleProto(r)
 		}
 		api, cctx, closeFn, err := af.open(ctx, true)
 		if err != nil {

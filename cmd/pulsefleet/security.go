@@ -62,8 +62,9 @@ func (s *security) gatewayOptions(c serveConfig) gateway.SecurityOptions {
 	}
 }
 
-func (s *security) apply(o *gateway.Options) {
+func (s *security) apply(o *gateway.Options, c serveConfig) {
 	o.GRPCServerOptions = append(o.GRPCServerOptions, s.grpc...)
+	o.Security = s.gatewayOptions(c)
 }
 
 func (s *security) wrapHTTP(l net.Listener) net.Listener {

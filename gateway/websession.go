@@ -1,0 +1,271 @@
+package gateway
+
+import (
+	"crypto/hmac"
+	"crypto/rand"
+	"crypto/sha256"
+	"crypto/subtle"
+	"encoding/base64"
+	"errors"
+	"fmt"
+	"net"
+	"net/http"
+	"strconv"
+	"strings"
+
+	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
+)
+
+// ---- Web: login, session cookie, CSRF, role checks ----
+//
+// The web page uses the same credentials. POST /login with form field
+// "token" checks it like a bearer token and sets a session cookie
+// (HMAC-signed, HttpOnly, SameSite=Strict, Secure over TLS) that names the
+// credential, so revoking the token ends the session at once. Unsafe
+// requests (POST, PUT, PATCH, DELETE) made with the cookie must carry the
+// session's CSRF token in the X-CSRF-Token header or the "csrf" form field,
+// and pass the browser's cross-origin check (Sec-Fetch-Site / Origin).
+// Requests may instead carry "Authorization: Bearer TOKEN" (scripts); those
+// need no CSRF token.
+
+const sessionCookie = "pulsefleet_session"
+
+// session is the content of a session cookie.
+type session struct {
+	tokenHash string // credential the session was made from ("" = anonymous on an open gateway)
+	expiresMS int64
+	nonce     string // random, ties the CSRF token to this session
+}
+
+func (g *Gateway) sign(payload string) string {
+	m := hmac.New(sha256.New, g.sessionKey)
+	m.Write([]byte(payload))
+	return base64.RawURLEncoding.EncodeToString(m.Sum(nil))
+}
+
+// issueSession starts a web session for the credential token (already
+// checked) and returns its CSRF token.
+func (g *Gateway) issueSession(w http.ResponseWriter, r *http.Request, token string) string {
+	var nb [16]byte
+	_, _ = rand.Read(nb[:])
+	sec := g.security()
+	ttl, secure := sec.SessionTTL, sec.SecureCookies
+	s := session{expiresMS: g.nowMS() + ttl.Milliseconds(), nonce: base64.RawURLEncoding.EncodeToString(nb[:])}
+	if token != "" {
+		s.tokenHash = auth.HashSecret(token)
+	}
+	payload := "v1." + s.tokenHash + "." + strconv.FormatInt(s.expiresMS, 10) + "." + s.nonce
+	http.SetCookie(w, &http.Cookie{Name: sessionCookie, Value: payload + "." + g.sign(payload), Path: "/",
+		MaxAge: int(ttl.Seconds()), HttpOnly: true, Secure: secure || r.TLS != nil, SameSite: http.SameSiteStrictMode})
+	return g.csrfFor(s)
+}
+
+// clearSession ends the browser's session.
+func (g *Gateway) clearSession(w http.ResponseWriter, r *http.Request) {
+	secure := g.security().SecureCookies
+	http.SetCookie(w, &http.Cookie{Name: sessionCookie, Value: "", Path: "/", MaxAge: -1, HttpOnly: true,
+		Secure: secure || r.TLS != nil, SameSite: http.SameSiteStrictMode})
+}
+
+func (g *Gateway) csrfFor(s session) string { return g.sign("csrf." + s.nonce) }
+
+// sessionFrom checks the session cookie of r.
+func (g *Gateway) sessionFrom(r *http.Request) (session, error) {
+	c, err := r.Cookie(sessionCookie)
+	if err != nil {
+		return session{}, auth.ErrNoCredential
+	}
+	parts := strings.Split(c.Value, ".")
+	if len(parts) != 5 || parts[0] != "v1" {
+		return session{}, fmt.Errorf("%w: malformed session cookie", auth.ErrUnknownCredential)
+	}
+	payload := strings.Join(parts[:4], ".")
+	if !hmac.Equal([]byte(parts[4]), []byte(g.sign(payload))) {
+		return session{}, fmt.Errorf("%w: session cookie signature does not match (the gateway restarted, or the cookie was altered)", auth.ErrUnknownCredential)
+	}
+	exp, err := strconv.ParseInt(parts[2], 10, 64)
+	if err != nil {
+		return session{}, fmt.Errorf("%w: malformed session expiry", auth.ErrUnknownCredential)
+	}
+	if exp < g.nowMS() {
+		return session{}, fmt.Errorf("%w: session expired", auth.ErrUnknownCredential)
+	}
+	return session{tokenHash: parts[1], expiresMS: exp, nonce: parts[3]}, nil
+}
+
+// principalOfSession maps a checked session to its principal, looking the
+// credential up again so revocation applies at once.
+func (g *Gateway) principalOfSession(s session, remote net.Addr) (auth.Principal, error) {
+	if s.tokenHash == "" {
+		if g.auth.Open(remote) {
+			return auth.Anonymous, nil
+		}
+		return auth.Principal{}, fmt.Errorf("%w: an anonymous session, but the gateway now requires tokens", auth.ErrUnknownCredential)
+	}
+	return g.auth.OperatorByHash(s.tokenHash)
+}
+
+// checkCSRF verifies the CSRF token of an unsafe request made with session s.
+func (g *Gateway) checkCSRF(r *http.Request, s session) error {
+	got := r.Header.Get("X-CSRF-Token")
+	if got == "" {
+		got = r.PostFormValue("csrf")
+	}
+	if got == "" || subtle.ConstantTimeCompare([]byte(got), []byte(g.csrfFor(s))) != 1 {
+		return errors.New("missing or wrong CSRF token")
+	}
+	return nil
+}
+
+// webCSRFToken returns the CSRF token of r's session ("" without one), for
+// pages to embed in forms and scripts.
+func (g *Gateway) webCSRFToken(r *http.Request) string {
+	s, err := g.sessionFrom(r)
+	if err != nil {
+		return ""
+	}
+	return g.csrfFor(s)
+}
+
+var crossOrigin = http.NewCrossOriginProtection()
+
+func unsafeMethod(m string) bool {
+	return m != http.MethodGet && m != http.MethodHead && m != http.MethodOptions
+}
+
+func httpRemote(r *http.Request) net.Addr {
+	if ap, err := net.ResolveTCPAddr("tcp", r.RemoteAddr); err == nil {
+		return ap
+	}
+	return nil
+}
+
+// webPrincipal authenticates an HTTP request: a bearer header, else the
+// session cookie (with CSRF checks on unsafe methods), else anonymous on an
+// open gateway.
+func (g *Gateway) webPrincipal(r *http.Request) (auth.Principal, int, error) {
+	remote := httpRemote(r)
+	if tok, ok := auth.CutBearer(r.Header.Get("Authorization")); ok {
+		p, err := g.auth.Authenticate(tok)
+		if err != nil {
+			return p, http.StatusUnauthorized, err
+		}
+		return p, 0, nil
+	}
+	s, err := g.sessionFrom(r)
+	if errors.Is(err, auth.ErrNoCredential) && g.auth.Open(remote) {
+		return auth.Anonymous, 0, nil
+	}
+	if err != nil {
+		return auth.Principal{}, http.StatusUnauthorized, err
+	}
+	p, err := g.principalOfSession(s, remote)
+	if err != nil {
+		return p, http.StatusUnauthorized, err
+	}
+	if unsafeMethod(r.Method) {
+		if err := crossOrigin.Check(r); err != nil {
+			return p, http.StatusForbidden, err
+		}
+		if err := g.checkCSRF(r, s); err != nil {
+			return p, http.StatusForbidden, err
+		}
+	}
+	return p, 0, nil
+}
+
+// requireRole wraps an HTTP handler: the caller must be authenticated with
+// at least role; its principal is in the request context (actorFrom works).
+// Refusals answer 401 (not logged in) or 403 and are audited like gRPC ones.
+func (g *Gateway) requireRole(role auth.Role, h http.Handler) http.Handler {
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		p, code, err := g.webPrincipal(r)
+		if err == nil && (p.Kind == "device" || p.Role < role) {
+			code, err = http.StatusForbidden, fmt.Errorf("needs role %s; %s has role %s", role, p.Actor(), p.Role)
+		}
+		if err != nil {
+			action := "auth.failure"
+			if code == http.StatusForbidden {
+				action = "auth.denied"
+			}
+			g.auth.Failed(r.Context(), r.RemoteAddr, action, p, "", fmt.Sprintf("web %s %s: %v", r.Method, r.URL.Path, err))
+			if code == http.StatusUnauthorized && r.Method == http.MethodGet && strings.Contains(r.Header.Get("Accept"), "text/html") {
+				http.Redirect(w, r, "/login", http.StatusSeeOther)
+				return
+			}
+			http.Error(w, http.StatusText(code)+": "+err.Error(), code)
+			return
+		}
+		ctx := auth.WithPrincipal(r.Context(), p)
+		if p.TokenID != "" {
+			// Long requests (the page's event stream) end when the
+			// credential is revoked, like gRPC streams.
+			var release func()
+			ctx, release, _ = g.auth.OpenStream(ctx, p)
+			defer release()
+		}
+		h.ServeHTTP(w, r.WithContext(ctx))
+	})
+}
+
+// authRoutes adds GET/POST /login and POST /logout. The web code calls it
+// from its route set-up (or the gateway does when there is no web page).
+func (g *Gateway) authRoutes(mux *http.ServeMux) {
+	mux.HandleFunc("GET /login", g.handleLoginForm)
+	mux.HandleFunc("POST /login", g.handleLogin)
+	mux.Handle("POST /logout", g.requireRole(auth.RoleViewer, http.HandlerFunc(g.handleLogout)))
+}
+
+const loginPage = `<!doctype html>
+<html lang="en"><head><meta charset="utf-8"><title>pulsefleet: log in</title>
+<meta name="viewport" content="width=device-width, initial-scale=1"></head>
+<body><main>
+<h1>pulsefleet</h1>
+<p>` + caution.Text + `</p>
+<form method="post" action="/login">
+<label for="token">Operator token</label>
+<input id="token" name="token" type="password" autocomplete="current-password" required>
+<button type="submit">Log in</button>
+</form>
+%s
+</main></body></html>
+`
+
+func (g *Gateway) handleLoginForm(w http.ResponseWriter, r *http.Request) {
+	w.Header().Set("Content-Type", "text/html; charset=utf-8")
+	w.Header().Set("Cache-Control", "no-store")
+	w.Header().Set("Content-Security-Policy", "default-src 'none'; form-action 'self'; frame-ancestors 'none'")
+	msg := ""
+	if r.URL.Query().Get("failed") != "" {
+		msg = `<p role="alert">That token was not accepted.</p>`
+	}
+	fmt.Fprintf(w, loginPage, msg)
+}
+
+// handleLogin checks the token of the login form and starts a session.
+func (g *Gateway) handleLogin(w http.ResponseWriter, r *http.Request) {
+	if err := crossOrigin.Check(r); err != nil {
+		http.Error(w, "Forbidden: "+err.Error(), http.StatusForbidden)
+		return
+	}
+	r.Body = http.MaxBytesReader(w, r.Body, 4<<10)
+	tok := strings.TrimSpace(r.PostFormValue("token"))
+	p, err := g.auth.Authenticate(tok)
+	if err == nil && p.Kind != "operator" {
+		err = errors.New("device credentials cannot log in to the web page")
+	}
+	if err != nil {
+		g.auth.Failed(r.Context(), r.RemoteAddr, "auth.failure", p, "", "web login: "+err.Error())
+		http.Redirect(w, r, "/login?failed=1", http.StatusSeeOther)
+		return
+	}
+	g.issueSession(w, r, tok)
+	g.audit(r.Context(), p.Actor(), "auth.login", "", "web login with credential "+p.TokenID, r.RemoteAddr)
+	http.Redirect(w, r, "/", http.StatusSeeOther)
+}
+
+func (g *Gateway) handleLogout(w http.ResponseWriter, r *http.Request) {
+	g.clearSession(w, r)
+	http.Redirect(w, r, "/login", http.StatusSeeOther)
+}
