@@ -448,7 +448,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	g.ensureEngine(d)
 	var evs []alarms.Event
 	if d.engine != nil && d.engine.Offline() {
-		d.engine.SetOffline(false, d.engineNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
+		d.engine.SetOffline(false, d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
 	}
 	rec := &record{dev: d, desc: &desc, session: &store.Session{Device: d.id, StartMS: nowMS, Remote: s.remote, Mode: desc.Mode}}
 	g.alarmEffects(d, evs, rec)
@@ -752,8 +752,7 @@ func (s *stream) finish(ctx context.Context) {
 	}
 	var evs []alarms.Event
 	if !replaced && d.engine != nil {
-		t := math.Max(d.deviceTimeS(nowMS), d.engine.LastT())
-		d.engine.SetOffline(true, t, func(e alarms.Event) { evs = append(evs, e) })
+		d.engine.SetOffline(true, d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
 	}
 	reason := "closed"
 	if c := context.Cause(ctx); c != nil && !errors.Is(c, context.Canceled) {

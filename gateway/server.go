@@ -379,8 +379,7 @@ func (g *Gateway) watchdog(ctx context.Context) {
 				continue
 			}
 			var evs []alarms.Event
-			tt := math.Max(d.deviceTimeS(nowMS), d.engine.LastT())
-			d.engine.Tick(tt, func(e alarms.Event) { evs = append(evs, e) })
+			d.engine.Tick(d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
 			rec := &record{dev: d}
 			g.alarmEffects(d, evs, rec)
 			d.mu.Unlock()
