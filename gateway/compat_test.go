@@ -1,6 +1,11 @@
 package gateway
 
-import "github.com/pulsefleet/pulsefleet/internal/auth"
+import (
+	"net/http"
+
+	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/web"
+)
 
 // Names the gateway's tests used before credentials moved to internal/auth.
 
@@ -25,3 +30,20 @@ var (
 )
 
 const maxDeviceStreams = auth.MaxDeviceStreams
+
+// Names the gateway's tests used before the page moved to internal/web.
+
+const sessionCookie = web.SessionCookie
+
+type (
+	webDevice  = web.DeviceJSON
+	webQuality = web.QualityJSON
+	webBucket  = web.BucketJSON
+	webEpisode = web.EpisodeJSON
+)
+
+func (g *Gateway) webCSRFToken(r *http.Request) string { return g.web.CSRFToken(r) }
+
+func (g *Gateway) sessionFrom(r *http.Request) (struct{}, error) {
+	return struct{}{}, g.web.CheckSession(r)
+}

@@ -8,7 +8,7 @@ import (
 )
 
 // httpHandler serves /metrics, /healthz, /readyz, and the web page and its
-// JSON (web.go).
+// JSON (internal/web).
 func (g *Gateway) httpHandler() http.Handler {
 	mux := http.NewServeMux()
 	metricsH := promhttp.HandlerFor(g.opt.Gatherer, promhttp.HandlerOpts{ErrorLog: nil, Registry: g.opt.Registerer})
@@ -33,6 +33,6 @@ func (g *Gateway) httpHandler() http.Handler {
 		}
 		fmt.Fprintln(w, "ready")
 	})
-	g.webRoutes(mux) // the web page and its JSON (web.go)
+	g.web.Routes(mux) // the web page, its JSON and the login (internal/web)
 	return mux
 }

@@ -2,7 +2,6 @@ package gateway
 
 import (
 	"context"
-	"crypto/rand"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -22,6 +21,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/web"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/shard"
 	"github.com/pulsefleet/pulsefleet/store"
@@ -54,10 +54,10 @@ type Gateway struct {
 	calMu     sync.RWMutex
 	calAssign map[string]string // calibration assignments: "device:ID"/"model:M" -> "name@vN"
 
-	auth       *auth.Authenticator // credentials, roles, the gRPC guards
-	secMu      sync.RWMutex
-	sec        SecurityOptions // in effect (applySecurity)
-	sessionKey []byte          // HMAC key of web sessions; new each start
+	auth  *auth.Authenticator // credentials, roles, the gRPC guards
+	secMu sync.RWMutex
+	sec   SecurityOptions // in effect (applySecurity)
+	web   *web.Server     // the page, its JSON and the login
 }
 
 // New builds a gateway over an open store: it loads devices, cursors and
@@ -91,8 +91,7 @@ func New(opt Options) (*Gateway, error) {
 	}
 	g.auth = a
 	g.applySecurity(opt.Security)
-	g.sessionKey = make([]byte, 32)
-	_, _ = rand.Read(g.sessionKey)
+	g.web = g.newWeb()
 	g.w = newWriter(opt.Store, opt.BatchDelay, opt.BatchRecords, m, opt.Now, g.storeFailed, g.storeWorks)
 	if err := g.load(); err != nil {
 		return nil, err

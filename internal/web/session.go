@@ -1,4 +1,4 @@
-package gateway
+package web
 
 import (
 	"crypto/hmac"
@@ -29,7 +29,8 @@ import (
 // Requests may instead carry "Authorization: Bearer TOKEN" (scripts); those
 // need no CSRF token.
 
-const sessionCookie = "pulsefleet_session"
+// SessionCookie is the name of the session cookie.
+const SessionCookie = "pulsefleet_session"
 
 // session is the content of a session cookie.
 type session struct {
@@ -38,41 +39,41 @@ type session struct {
 	nonce     string // random, ties the CSRF token to this session
 }
 
-func (g *Gateway) sign(payload string) string {
-	m := hmac.New(sha256.New, g.sessionKey)
+func (sv *Server) sign(payload string) string {
+	m := hmac.New(sha256.New, sv.sessionKey)
 	m.Write([]byte(payload))
 	return base64.RawURLEncoding.EncodeToString(m.Sum(nil))
 }
 
 // issueSession starts a web session for the credential token (already
 // checked) and returns its CSRF token.
-func (g *Gateway) issueSession(w http.ResponseWriter, r *http.Request, token string) string {
+func (sv *Server) issueSession(w http.ResponseWriter, r *http.Request, token string) string {
 	var nb [16]byte
 	_, _ = rand.Read(nb[:])
-	sec := g.security()
-	ttl, secure := sec.SessionTTL, sec.SecureCookies
-	s := session{expiresMS: g.nowMS() + ttl.Milliseconds(), nonce: base64.RawURLEncoding.EncodeToString(nb[:])}
+	sec := sv.cfg.Sessions()
+	ttl, secure := sec.TTL, sec.SecureCookies
+	s := session{expiresMS: sv.fleet.NowMS() + ttl.Milliseconds(), nonce: base64.RawURLEncoding.EncodeToString(nb[:])}
 	if token != "" {
 		s.tokenHash = auth.HashSecret(token)
 	}
 	payload := "v1." + s.tokenHash + "." + strconv.FormatInt(s.expiresMS, 10) + "." + s.nonce
-	http.SetCookie(w, &http.Cookie{Name: sessionCookie, Value: payload + "." + g.sign(payload), Path: "/",
+	http.SetCookie(w, &http.Cookie{Name: SessionCookie, Value: payload + "." + sv.sign(payload), Path: "/",
 		MaxAge: int(ttl.Seconds()), HttpOnly: true, Secure: secure || r.TLS != nil, SameSite: http.SameSiteStrictMode})
-	return g.csrfFor(s)
+	return sv.csrfFor(s)
 }
 
 // clearSession ends the browser's session.
-func (g *Gateway) clearSession(w http.ResponseWriter, r *http.Request) {
-	secure := g.security().SecureCookies
-	http.SetCookie(w, &http.Cookie{Name: sessionCookie, Value: "", Path: "/", MaxAge: -1, HttpOnly: true,
+func (sv *Server) clearSession(w http.ResponseWriter, r *http.Request) {
+	secure := sv.cfg.Sessions().SecureCookies
+	http.SetCookie(w, &http.Cookie{Name: SessionCookie, Value: "", Path: "/", MaxAge: -1, HttpOnly: true,
 		Secure: secure || r.TLS != nil, SameSite: http.SameSiteStrictMode})
 }
 
-func (g *Gateway) csrfFor(s session) string { return g.sign("csrf." + s.nonce) }
+func (sv *Server) csrfFor(s session) string { return sv.sign("csrf." + s.nonce) }
 
 // sessionFrom checks the session cookie of r.
-func (g *Gateway) sessionFrom(r *http.Request) (session, error) {
-	c, err := r.Cookie(sessionCookie)
+func (sv *Server) sessionFrom(r *http.Request) (session, error) {
+	c, err := r.Cookie(SessionCookie)
 	if err != nil {
 		return session{}, auth.ErrNoCredential
 	}
@@ -81,14 +82,14 @@ func (g *Gateway) sessionFrom(r *http.Request) (session, error) {
 		return session{}, fmt.Errorf("%w: malformed session cookie", auth.ErrUnknownCredential)
 	}
 	payload := strings.Join(parts[:4], ".")
-	if !hmac.Equal([]byte(parts[4]), []byte(g.sign(payload))) {
+	if !hmac.Equal([]byte(parts[4]), []byte(sv.sign(payload))) {
 		return session{}, fmt.Errorf("%w: session cookie signature does not match (the gateway restarted, or the cookie was altered)", auth.ErrUnknownCredential)
 	}
 	exp, err := strconv.ParseInt(parts[2], 10, 64)
 	if err != nil {
 		return session{}, fmt.Errorf("%w: malformed session expiry", auth.ErrUnknownCredential)
 	}
-	if exp < g.nowMS() {
+	if exp < sv.fleet.NowMS() {
 		return session{}, fmt.Errorf("%w: session expired", auth.ErrUnknownCredential)
 	}
 	return session{tokenHash: parts[1], expiresMS: exp, nonce: parts[3]}, nil
@@ -96,36 +97,36 @@ func (g *Gateway) sessionFrom(r *http.Request) (session, error) {
 
 // principalOfSession maps a checked session to its principal, looking the
 // credential up again so revocation applies at once.
-func (g *Gateway) principalOfSession(s session, remote net.Addr) (auth.Principal, error) {
+func (sv *Server) principalOfSession(s session, remote net.Addr) (auth.Principal, error) {
 	if s.tokenHash == "" {
-		if g.auth.Open(remote) {
+		if sv.auth.Open(remote) {
 			return auth.Anonymous, nil
 		}
 		return auth.Principal{}, fmt.Errorf("%w: an anonymous session, but the gateway now requires tokens", auth.ErrUnknownCredential)
 	}
-	return g.auth.OperatorByHash(s.tokenHash)
+	return sv.auth.OperatorByHash(s.tokenHash)
 }
 
 // checkCSRF verifies the CSRF token of an unsafe request made with session s.
-func (g *Gateway) checkCSRF(r *http.Request, s session) error {
+func (sv *Server) checkCSRF(r *http.Request, s session) error {
 	got := r.Header.Get("X-CSRF-Token")
 	if got == "" {
 		got = r.PostFormValue("csrf")
 	}
-	if got == "" || subtle.ConstantTimeCompare([]byte(got), []byte(g.csrfFor(s))) != 1 {
+	if got == "" || subtle.ConstantTimeCompare([]byte(got), []byte(sv.csrfFor(s))) != 1 {
 		return errors.New("missing or wrong CSRF token")
 	}
 	return nil
 }
 
-// webCSRFToken returns the CSRF token of r's session ("" without one), for
+// CSRFToken returns the CSRF token of r's session ("" without one), for
 // pages to embed in forms and scripts.
-func (g *Gateway) webCSRFToken(r *http.Request) string {
-	s, err := g.sessionFrom(r)
+func (sv *Server) CSRFToken(r *http.Request) string {
+	s, err := sv.sessionFrom(r)
 	if err != nil {
 		return ""
 	}
-	return g.csrfFor(s)
+	return sv.csrfFor(s)
 }
 
 var crossOrigin = http.NewCrossOriginProtection()
@@ -144,23 +145,23 @@ func httpRemote(r *http.Request) net.Addr {
 // webPrincipal authenticates an HTTP request: a bearer header, else the
 // session cookie (with CSRF checks on unsafe methods), else anonymous on an
 // open gateway.
-func (g *Gateway) webPrincipal(r *http.Request) (auth.Principal, int, error) {
+func (sv *Server) webPrincipal(r *http.Request) (auth.Principal, int, error) {
 	remote := httpRemote(r)
 	if tok, ok := auth.CutBearer(r.Header.Get("Authorization")); ok {
-		p, err := g.auth.Authenticate(tok)
+		p, err := sv.auth.Authenticate(tok)
 		if err != nil {
 			return p, http.StatusUnauthorized, err
 		}
 		return p, 0, nil
 	}
-	s, err := g.sessionFrom(r)
-	if errors.Is(err, auth.ErrNoCredential) && g.auth.Open(remote) {
+	s, err := sv.sessionFrom(r)
+	if errors.Is(err, auth.ErrNoCredential) && sv.auth.Open(remote) {
 		return auth.Anonymous, 0, nil
 	}
 	if err != nil {
 		return auth.Principal{}, http.StatusUnauthorized, err
 	}
-	p, err := g.principalOfSession(s, remote)
+	p, err := sv.principalOfSession(s, remote)
 	if err != nil {
 		return p, http.StatusUnauthorized, err
 	}
@@ -168,7 +169,7 @@ func (g *Gateway) webPrincipal(r *http.Request) (auth.Principal, int, error) {
 		if err := crossOrigin.Check(r); err != nil {
 			return p, http.StatusForbidden, err
 		}
-		if err := g.checkCSRF(r, s); err != nil {
+		if err := sv.checkCSRF(r, s); err != nil {
 			return p, http.StatusForbidden, err
 		}
 	}
@@ -178,9 +179,9 @@ func (g *Gateway) webPrincipal(r *http.Request) (auth.Principal, int, error) {
 // requireRole wraps an HTTP handler: the caller must be authenticated with
 // at least role; its principal is in the request context (actorFrom works).
 // Refusals answer 401 (not logged in) or 403 and are audited like gRPC ones.
-func (g *Gateway) requireRole(role auth.Role, h http.Handler) http.Handler {
+func (sv *Server) requireRole(role auth.Role, h http.Handler) http.Handler {
 	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
-		p, code, err := g.webPrincipal(r)
+		p, code, err := sv.webPrincipal(r)
 		if err == nil && (p.Kind == "device" || p.Role < role) {
 			code, err = http.StatusForbidden, fmt.Errorf("needs role %s; %s has role %s", role, p.Actor(), p.Role)
 		}
@@ -189,7 +190,7 @@ func (g *Gateway) requireRole(role auth.Role, h http.Handler) http.Handler {
 			if code == http.StatusForbidden {
 				action = "auth.denied"
 			}
-			g.auth.Failed(r.Context(), r.RemoteAddr, action, p, "", fmt.Sprintf("web %s %s: %v", r.Method, r.URL.Path, err))
+			sv.auth.Failed(r.Context(), r.RemoteAddr, action, p, "", fmt.Sprintf("web %s %s: %v", r.Method, r.URL.Path, err))
 			if code == http.StatusUnauthorized && r.Method == http.MethodGet && strings.Contains(r.Header.Get("Accept"), "text/html") {
 				http.Redirect(w, r, "/login", http.StatusSeeOther)
 				return
@@ -202,7 +203,7 @@ func (g *Gateway) requireRole(role auth.Role, h http.Handler) http.Handler {
 			// Long requests (the page's event stream) end when the
 			// credential is revoked, like gRPC streams.
 			var release func()
-			ctx, release, _ = g.auth.OpenStream(ctx, p)
+			ctx, release, _ = sv.auth.OpenStream(ctx, p)
 			defer release()
 		}
 		h.ServeHTTP(w, r.WithContext(ctx))
@@ -211,10 +212,10 @@ func (g *Gateway) requireRole(role auth.Role, h http.Handler) http.Handler {
 
 // authRoutes adds GET/POST /login and POST /logout. The web code calls it
 // from its route set-up (or the gateway does when there is no web page).
-func (g *Gateway) authRoutes(mux *http.ServeMux) {
-	mux.HandleFunc("GET /login", g.handleLoginForm)
-	mux.HandleFunc("POST /login", g.handleLogin)
-	mux.Handle("POST /logout", g.requireRole(auth.RoleViewer, http.HandlerFunc(g.handleLogout)))
+func (sv *Server) authRoutes(mux *http.ServeMux) {
+	mux.HandleFunc("GET /login", sv.handleLoginForm)
+	mux.HandleFunc("POST /login", sv.handleLogin)
+	mux.Handle("POST /logout", sv.requireRole(auth.RoleViewer, http.HandlerFunc(sv.handleLogout)))
 }
 
 const loginPage = `<!doctype html>
@@ -232,7 +233,7 @@ const loginPage = `<!doctype html>
 </main></body></html>
 `
 
-func (g *Gateway) handleLoginForm(w http.ResponseWriter, r *http.Request) {
+func (sv *Server) handleLoginForm(w http.ResponseWriter, r *http.Request) {
 	w.Header().Set("Content-Type", "text/html; charset=utf-8")
 	w.Header().Set("Cache-Control", "no-store")
 	w.Header().Set("Content-Security-Policy", "default-src 'none'; form-action 'self'; frame-ancestors 'none'")
@@ -244,28 +245,34 @@ func (g *Gateway) handleLoginForm(w http.ResponseWriter, r *http.Request) {
 }
 
 // handleLogin checks the token of the login form and starts a session.
-func (g *Gateway) handleLogin(w http.ResponseWriter, r *http.Request) {
+func (sv *Server) handleLogin(w http.ResponseWriter, r *http.Request) {
 	if err := crossOrigin.Check(r); err != nil {
 		http.Error(w, "Forbidden: "+err.Error(), http.StatusForbidden)
 		return
 	}
 	r.Body = http.MaxBytesReader(w, r.Body, 4<<10)
 	tok := strings.TrimSpace(r.PostFormValue("token"))
-	p, err := g.auth.Authenticate(tok)
+	p, err := sv.auth.Authenticate(tok)
 	if err == nil && p.Kind != "operator" {
 		err = errors.New("device credentials cannot log in to the web page")
 	}
 	if err != nil {
-		g.auth.Failed(r.Context(), r.RemoteAddr, "auth.failure", p, "", "web login: "+err.Error())
+		sv.auth.Failed(r.Context(), r.RemoteAddr, "auth.failure", p, "", "web login: "+err.Error())
 		http.Redirect(w, r, "/login?failed=1", http.StatusSeeOther)
 		return
 	}
-	g.issueSession(w, r, tok)
-	g.audit(r.Context(), p.Actor(), "auth.login", "", "web login with credential "+p.TokenID, r.RemoteAddr)
+	sv.issueSession(w, r, tok)
+	sv.cfg.Audit(r.Context(), p.Actor(), "auth.login", "", "web login with credential "+p.TokenID, r.RemoteAddr)
 	http.Redirect(w, r, "/", http.StatusSeeOther)
 }
 
-func (g *Gateway) handleLogout(w http.ResponseWriter, r *http.Request) {
-	g.clearSession(w, r)
+func (sv *Server) handleLogout(w http.ResponseWriter, r *http.Request) {
+	sv.clearSession(w, r)
 	http.Redirect(w, r, "/login", http.StatusSeeOther)
+}
+
+// CheckSession reports why r's session cookie is not valid (nil when it is).
+func (sv *Server) CheckSession(r *http.Request) error {
+	_, err := sv.sessionFrom(r)
+	return err
 }

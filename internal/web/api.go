@@ -1,0 +1,456 @@
+package web
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"net"
+	"net/http"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/ids"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/store"
+)
+
+// Bounds of the page's queries.
+const (
+	sparkMinutes    = 30
+	sparkStepMS     = 60_000
+	maxTrendMinutes = 7 * 24 * 60
+	maxRawSeconds   = 30
+	sseKeepalive    = 15 * time.Second
+	sseStopCheck    = 250 * time.Millisecond
+	sseBuffer       = 512
+	maxWebBody      = 4 << 10
+)
+
+// webFunc answers one JSON request; a returned error becomes a JSON error
+// with the HTTP status matching its gRPC code.
+type webFunc func(ctx context.Context, w http.ResponseWriter, r *http.Request) (any, error)
+
+// webHandler is the single entry of every JSON handler: it checks the
+// caller's role (session.go: bearer header or session cookie with CSRF token),
+// names the operator for the audit log (webActor) and writes the answer.
+func (s *Server) webHandler(role auth.Role, fn webFunc) http.Handler {
+	return s.requireRole(role, http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		ctx := auth.WithRemote(webActor(r), r.RemoteAddr)
+		w.Header().Set("Cache-Control", "no-store")
+		w.Header().Set("X-Content-Type-Options", "nosniff")
+		v, err := fn(ctx, w, r)
+		if err != nil {
+			s.writeWebError(w, err)
+			return
+		}
+		if v == nil {
+			return // the handler wrote its own answer (events)
+		}
+		w.Header().Set("Content-Type", "application/json")
+		_ = json.NewEncoder(w).Encode(v)
+	}))
+}
+
+// webActor returns the request's context carrying the operator's name for
+// the audit log: the logged-in operator, or, on an open gateway without
+// tokens, "web@HOST" (the client's address) instead of "anonymous".
+func webActor(r *http.Request) context.Context {
+	if a := auth.ActorFrom(r.Context()); a != "anonymous" {
+		return r.Context()
+	}
+	host, _, err := net.SplitHostPort(r.RemoteAddr)
+	if err != nil {
+		host = r.RemoteAddr
+	}
+	return auth.WithActor(r.Context(), "web@"+host)
+}
+
+func (s *Server) writeWebError(w http.ResponseWriter, err error) {
+	var e *Error
+	if !errors.As(err, &e) {
+		e = &Error{Status: http.StatusInternalServerError, Message: err.Error()}
+		if s.cfg.HTTPError != nil {
+			e.Status, e.Message = s.cfg.HTTPError(err)
+		}
+	}
+	w.Header().Set("Content-Type", "application/json")
+	w.WriteHeader(e.Status)
+	_ = json.NewEncoder(w).Encode(map[string]string{"error": e.Message})
+}
+
+func badRequest(format string, args ...any) error {
+	return &Error{Status: http.StatusBadRequest, Message: fmt.Sprintf(format, args...)}
+}
+
+// JSON shapes of the page. Times are Unix milliseconds; null = no value.
+
+// trendEnd is where a device's charts end: its newest point (device clock),
+// else the gateway clock.
+func (s *Server) trendEnd(d *pb.Device) int64 {
+	if l := d.GetLatest(); l != nil && l.GetTimeUnixMs() > 0 {
+		return l.GetTimeUnixMs() + 1
+	}
+	return s.fleet.NowMS()
+}
+
+func (s *Server) webFleet(ctx context.Context, _ http.ResponseWriter, _ *http.Request) (any, error) {
+	devs, err := s.fleet.ListDevices(ctx, &pb.ListDevicesRequest{})
+	if err != nil {
+		return nil, err
+	}
+	qs, err := s.fleet.ListDeviceQuality(ctx, &pb.ListDeviceQualityRequest{})
+	if err != nil {
+		return nil, err
+	}
+	up := map[string]*pb.DeviceQuality{}
+	for _, q := range qs.GetQualities() {
+		up[q.GetDeviceId()] = q
+	}
+	eps, err := s.fleet.ListEpisodes(ctx, &pb.ListEpisodesRequest{ActiveOnly: true, Limit: 10000})
+	if err != nil {
+		return nil, err
+	}
+	active := map[string][]webEpisode{}
+	for _, e := range eps.GetEpisodes() {
+		active[e.GetDeviceId()] = append(active[e.GetDeviceId()], webEpisodeOf(e))
+	}
+	out := struct {
+		NowMS   int64       `json:"now_ms"`
+		Caution string      `json:"caution"`
+		Devices []webDevice `json:"devices"`
+	}{NowMS: s.fleet.NowMS(), Caution: webCaution, Devices: []webDevice{}}
+	for _, d := range devs.GetDevices() {
+		wd := webDeviceOf(d)
+		if q := up[d.GetDeviceId()]; q != nil {
+			wd.Uptime1h, wd.Uptime24h = q.GetUptime_1H(), q.GetUptime_24H()
+		}
+		if a := active[d.GetDeviceId()]; a != nil {
+			wd.Active = a
+		}
+		if d.GetLatest() != nil {
+			to := s.trendEnd(d)
+			tr, err := s.fleet.QueryTrend(ctx, &pb.QueryTrendRequest{DeviceId: d.GetDeviceId(), FromUnixMs: to - sparkMinutes*60_000, ToUnixMs: to, StepMs: sparkStepMS})
+			if err != nil {
+				return nil, err
+			}
+			for _, b := range tr.GetBuckets() {
+				wd.Spark = append(wd.Spark, webSpark{TimeMS: b.GetStartUnixMs(), SpO2: statMean(b.GetSpo2Pct())})
+			}
+		}
+		out.Devices = append(out.Devices, wd)
+	}
+	return out, nil
+}
+
+func (s *Server) webDevice(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
+	id := r.PathValue("id")
+	d, err := s.fleet.GetDevice(ctx, &pb.GetDeviceRequest{DeviceId: id})
+	if err != nil {
+		return nil, err
+	}
+	q, err := s.fleet.GetDeviceQuality(ctx, &pb.GetDeviceQualityRequest{DeviceId: id})
+	if err != nil {
+		return nil, err
+	}
+	eps, err := s.fleet.ListEpisodes(ctx, &pb.ListEpisodesRequest{DeviceId: id, Limit: 20})
+	if err != nil {
+		return nil, err
+	}
+	out := struct {
+		NowMS    int64        `json:"now_ms"`
+		Device   webDevice    `json:"device"`
+		Quality  *webQuality  `json:"quality"`
+		Episodes []webEpisode `json:"episodes"`
+	}{NowMS: s.fleet.NowMS(), Device: webDeviceOf(d.GetDevice()), Quality: webQualityOf(q.GetQuality()), Episodes: []webEpisode{}}
+	for _, e := range eps.GetEpisodes() {
+		we := webEpisodeOf(e)
+		out.Episodes = append(out.Episodes, we)
+		if e.GetActive() {
+			out.Device.Active = append(out.Device.Active, we)
+		}
+	}
+	return out, nil
+}
+
+// queryInt reads an integer query parameter within [lo, hi]; def when absent.
+func queryInt(r *http.Request, name string, def, lo, hi int64) (int64, error) {
+	s := r.URL.Query().Get(name)
+	if s == "" {
+		return def, nil
+	}
+	v, err := strconv.ParseInt(s, 10, 64)
+	if err != nil || v < lo || v > hi {
+		return 0, badRequest("%s: %q, want an integer %d..%d", name, s, lo, hi)
+	}
+	return v, nil
+}
+
+func (s *Server) webTrend(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
+	id := r.PathValue("id")
+	minutes, err := queryInt(r, "minutes", 60, 1, maxTrendMinutes)
+	if err != nil {
+		return nil, err
+	}
+	// About 360 buckets by default, never finer than a second.
+	step, err := queryInt(r, "step_s", max(1, minutes*60/360), 1, 86400)
+	if err != nil {
+		return nil, err
+	}
+	if minutes*60/step > 5000 {
+		return nil, badRequest("step_s: %d gives %d buckets over %d minutes, want at most 5000", step, minutes*60/step, minutes)
+	}
+	d, err := s.fleet.GetDevice(ctx, &pb.GetDeviceRequest{DeviceId: id})
+	if err != nil {
+		return nil, err
+	}
+	to := s.trendEnd(d.GetDevice())
+	to = (to/(step*1000) + 1) * step * 1000 // whole buckets
+	from := to - minutes*60_000
+	tr, err := s.fleet.QueryTrend(ctx, &pb.QueryTrendRequest{DeviceId: id, FromUnixMs: from, ToUnixMs: to, StepMs: step * 1000})
+	if err != nil {
+		return nil, err
+	}
+	out := struct {
+		FromMS  int64       `json:"from_ms"`
+		ToMS    int64       `json:"to_ms"`
+		StepS   int64       `json:"step_s"`
+		Buckets []webBucket `json:"buckets"`
+	}{FromMS: from, ToMS: to, StepS: step, Buckets: []webBucket{}}
+	for _, b := range tr.GetBuckets() {
+		out.Buckets = append(out.Buckets, webBucket{StartMS: b.GetStartUnixMs(), Points: b.GetPoints(),
+			SpO2: statMean(b.GetSpo2Pct()), SpO2Min: statMin(b.GetSpo2Pct()), SpO2Max: statMax(b.GetSpo2Pct()),
+			Pulse: statMean(b.GetPulseBpm()), PI: statMean(b.GetPiPct()), SQI: statMean(b.GetSqi()), SQIMin: statMin(b.GetSqi()),
+			Coverage: math.Min(1, float64(b.GetPoints())/float64(step))})
+	}
+	return out, nil
+}
+
+func (s *Server) webRaw(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
+	id := r.PathValue("id")
+	secs, err := queryInt(r, "seconds", 5, 1, maxRawSeconds)
+	if err != nil {
+		return nil, err
+	}
+	d, err := s.fleet.GetDevice(ctx, &pb.GetDeviceRequest{DeviceId: id})
+	if err != nil {
+		return nil, err
+	}
+	to := s.trendEnd(d.GetDevice())
+	from := to - secs*1000 - 60_000 // a minute of slack: trend time ends a second after its samples
+	var caps []store.RawCapture
+	err = s.fleet.RawCaptures(id, from, to+60_000, func(c store.RawCapture) bool {
+		caps = append(caps, c)
+		return true
+	})
+	if err != nil {
+		return nil, &Error{Status: http.StatusInternalServerError, Message: fmt.Sprintf("raw captures of %s: %v", id, err)}
+	}
+	out := struct {
+		Captured bool     `json:"captured"`
+		StartMS  int64    `json:"start_ms"`
+		RateHz   float64  `json:"rate_hz"`
+		Red      []uint32 `json:"red"`
+		IR       []uint32 `json:"ir"`
+	}{Red: []uint32{}, IR: []uint32{}}
+	if len(caps) == 0 {
+		return out, nil
+	}
+	// The newest contiguous run of chunks at one rate, cut to the last secs seconds.
+	last := caps[len(caps)-1]
+	rate := last.RateHz
+	want := int(float64(secs) * rate)
+	i := len(caps) - 1
+	n := len(last.Red)
+	for i > 0 && n < want && caps[i-1].RateHz == rate && caps[i-1].Seq+1 == caps[i].Seq {
+		i--
+		n += len(caps[i].Red)
+	}
+	for _, c := range caps[i:] {
+		out.Red, out.IR = append(out.Red, c.Red...), append(out.IR, c.IR...)
+	}
+	start := caps[i].DeviceTimeMS
+	if cut := len(out.Red) - want; cut > 0 {
+		out.Red, out.IR = out.Red[cut:], out.IR[cut:]
+		start += int64(float64(cut) * 1000 / rate)
+	}
+	out.Captured, out.StartMS, out.RateHz = true, start, rate
+	return out, nil
+}
+
+// readJSON decodes a small JSON body into v, rejecting unknown fields.
+func readJSON(r *http.Request, v any) error {
+	body, err := io.ReadAll(io.LimitReader(r.Body, maxWebBody+1))
+	if err != nil {
+		return badRequest("body: %v", err)
+	}
+	if len(body) > maxWebBody {
+		return badRequest("body: more than %d bytes", maxWebBody)
+	}
+	if len(strings.TrimSpace(string(body))) == 0 {
+		return nil
+	}
+	dec := json.NewDecoder(strings.NewReader(string(body)))
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(v); err != nil {
+		return badRequest("body: %v", err)
+	}
+	return nil
+}
+
+// checkSameOrigin refuses state changes from other sites' pages: a POST
+// must carry the page's JSON content type (which a cross-site form cannot
+// send without a preflight) and, when the browser names an Origin, come
+// from this host.
+func checkSameOrigin(r *http.Request) error {
+	if ct := r.Header.Get("Content-Type"); !strings.HasPrefix(ct, "application/json") {
+		return badRequest("Content-Type: %q, want application/json", ct)
+	}
+	if o := r.Header.Get("Origin"); o != "" && o != "null" {
+		if o != "http://"+r.Host && o != "https://"+r.Host {
+			return &Error{Status: http.StatusForbidden, Message: fmt.Sprintf("origin %s is not this gateway (%s)", o, r.Host)}
+		}
+	}
+	return nil
+}
+
+func (s *Server) webAcknowledge(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
+	if err := checkSameOrigin(r); err != nil {
+		return nil, err
+	}
+	var req struct {
+		EpisodeID string `json:"episode_id"` // "" or "0" = every active episode
+		Note      string `json:"note"`
+	}
+	if err := readJSON(r, &req); err != nil {
+		return nil, err
+	}
+	var epID uint64
+	if req.EpisodeID != "" {
+		v, err := strconv.ParseUint(req.EpisodeID, 10, 64)
+		if err != nil {
+			return nil, badRequest("episode_id: %q, want a decimal episode id", req.EpisodeID)
+		}
+		epID = v
+	}
+	resp, err := s.fleet.AcknowledgeAlarm(ctx, &pb.AcknowledgeAlarmRequest{DeviceId: r.PathValue("id"), EpisodeId: epID, Note: req.Note})
+	if err != nil {
+		return nil, err
+	}
+	out := struct {
+		Acknowledged []webEpisode `json:"acknowledged"`
+	}{Acknowledged: []webEpisode{}}
+	for _, e := range resp.GetEpisodes() {
+		out.Acknowledged = append(out.Acknowledged, webEpisodeOf(e))
+	}
+	return out, nil
+}
+
+func (s *Server) webPause(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
+	if err := checkSameOrigin(r); err != nil {
+		return nil, err
+	}
+	var req struct {
+		DurationS int64  `json:"duration_s"`
+		Reason    string `json:"reason"`
+	}
+	if err := readJSON(r, &req); err != nil {
+		return nil, err
+	}
+	if req.DurationS < 0 || req.DurationS > math.MaxUint32 {
+		return nil, badRequest("duration_s: %d, want 0 (resume) or more seconds", req.DurationS)
+	}
+	resp, err := s.fleet.PauseAlarms(ctx, &pb.PauseAlarmsRequest{DeviceId: r.PathValue("id"), DurationS: uint32(req.DurationS), Reason: req.Reason})
+	if err != nil {
+		return nil, err
+	}
+	return map[string]int64{"paused_until_ms": resp.GetPausedUntilUnixMs()}, nil
+}
+
+// webEvents streams live events as Server-Sent Events until the client goes
+// away or the gateway stops. ?device=ID (repeatable) limits them to devices;
+// ?points=0 leaves out trend points.
+func (s *Server) webEvents(ctx context.Context, w http.ResponseWriter, r *http.Request) (any, error) {
+	fl, ok := w.(http.Flusher)
+	if !ok {
+		return nil, &Error{Status: http.StatusInternalServerError, Message: "streaming is not supported by this connection"}
+	}
+	devices := r.URL.Query()["device"]
+	for _, id := range devices {
+		if err := ids.Check("device", id); err != nil {
+			return nil, badRequest("%v", err)
+		}
+	}
+	events, unsubscribe := s.fleet.Watch(devices, r.URL.Query().Get("points") != "0", sseBuffer)
+	defer unsubscribe()
+	w.Header().Set("Content-Type", "text/event-stream")
+	w.Header().Set("Cache-Control", "no-store")
+	w.Header().Set("X-Accel-Buffering", "no")
+	w.WriteHeader(http.StatusOK)
+	fmt.Fprintf(w, "retry: 2000\n\n")
+	fl.Flush()
+	stop := time.NewTicker(sseStopCheck)
+	defer stop.Stop()
+	lastWrite := time.Now()
+	for {
+		select {
+		case <-ctx.Done():
+			return nil, nil
+		case <-stop.C:
+			if s.fleet.Stopping() {
+				return nil, nil // the gateway shuts down: let the server close the connection
+			}
+			if time.Since(lastWrite) >= sseKeepalive {
+				if _, err := fmt.Fprint(w, ": keepalive\n\n"); err != nil {
+					return nil, nil
+				}
+				fl.Flush()
+				lastWrite = time.Now()
+			}
+		case ev := <-events:
+			name, data := sseEvent(ev)
+			if name == "" {
+				continue
+			}
+			b, err := json.Marshal(data)
+			if err != nil {
+				continue
+			}
+			if _, err := fmt.Fprintf(w, "event: %s\ndata: %s\n\n", name, b); err != nil {
+				return nil, nil
+			}
+			// Flush when nothing else is waiting, so bursts go out together.
+			if len(events) == 0 {
+				fl.Flush()
+			}
+			lastWrite = time.Now()
+		}
+	}
+}
+
+// sseEvent maps a live event to the page's event name and JSON.
+func sseEvent(ev *pb.WatchEventsResponse) (string, any) {
+	switch e := ev.Event.(type) {
+	case *pb.WatchEventsResponse_TrendPoint:
+		return "point", struct {
+			Device string `json:"device"`
+			*webPoint
+		}{e.TrendPoint.GetDeviceId(), webPointOf(e.TrendPoint)}
+	case *pb.WatchEventsResponse_DeviceChange:
+		return "device", struct {
+			Change string    `json:"change"`
+			Device webDevice `json:"device"`
+		}{e.DeviceChange.GetChange(), webDeviceOf(e.DeviceChange.GetDevice())}
+	case *pb.WatchEventsResponse_EpisodeEvent:
+		return "episode", struct {
+			Transition string     `json:"transition"`
+			Actor      string     `json:"actor,omitempty"`
+			Episode    webEpisode `json:"episode"`
+		}{e.EpisodeEvent.GetTransition(), e.EpisodeEvent.GetActor(), webEpisodeOf(e.EpisodeEvent.GetEpisode())}
+	}
+	return "", nil
+}

@@ -1,0 +1,149 @@
+package web
+
+import (
+	"context"
+	"crypto/rand"
+	"embed"
+	"io/fs"
+	"net/http"
+	"strings"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/store"
+)
+
+// Fleet is what the page reads and changes: the FleetService calls it
+// needs (the gateway's own, with their checks and audit entries), raw
+// captures, live events and the gateway clock.
+type Fleet interface {
+	ListDevices(context.Context, *pb.ListDevicesRequest) (*pb.ListDevicesResponse, error)
+	GetDevice(context.Context, *pb.GetDeviceRequest) (*pb.GetDeviceResponse, error)
+	ListDeviceQuality(context.Context, *pb.ListDeviceQualityRequest) (*pb.ListDeviceQualityResponse, error)
+	GetDeviceQuality(context.Context, *pb.GetDeviceQualityRequest) (*pb.GetDeviceQualityResponse, error)
+	ListEpisodes(context.Context, *pb.ListEpisodesRequest) (*pb.ListEpisodesResponse, error)
+	QueryTrend(context.Context, *pb.QueryTrendRequest) (*pb.QueryTrendResponse, error)
+	AcknowledgeAlarm(context.Context, *pb.AcknowledgeAlarmRequest) (*pb.AcknowledgeAlarmResponse, error)
+	PauseAlarms(context.Context, *pb.PauseAlarmsRequest) (*pb.PauseAlarmsResponse, error)
+
+	// RawCaptures calls fn with the device's captured raw chunks between
+	// fromMS and toMS (device time) in order, until fn returns false.
+	RawCaptures(deviceID string, fromMS, toMS int64, fn func(store.RawCapture) bool) error
+	// Watch subscribes to live events of devices (all when empty), trend
+	// points only when points; the channel holds buffer events, beyond which
+	// the slow watcher's events are dropped. cancel ends the subscription.
+	Watch(devices []string, points bool, buffer int) (events <-chan *pb.WatchEventsResponse, cancel func())
+	// Stopping reports that the gateway shuts down (event streams end).
+	Stopping() bool
+	// NowMS is the gateway clock.
+	NowMS() int64
+}
+
+// SessionOptions configure the session cookie.
+type SessionOptions struct {
+	// TTL is how long a web login lasts.
+	TTL time.Duration
+	// SecureCookies marks cookies Secure even when the request did not
+	// arrive over TLS (a TLS-terminating proxy in front); requests over TLS
+	// always get Secure cookies.
+	SecureCookies bool
+}
+
+// Config wires the web page to its gateway.
+type Config struct {
+	Fleet Fleet
+	Auth  *auth.Authenticator
+	// Sessions returns the session options in effect (read per request).
+	Sessions func() SessionOptions
+	// Audit writes one audit entry (logins).
+	Audit func(ctx context.Context, actor, action, device, detail, remote string)
+	// HTTPError maps an error of a Fleet call to an HTTP status and the
+	// message the client sees; nil answers 500 with the error's text.
+	HTTPError func(error) (status int, message string)
+}
+
+// Server serves the page, its JSON and the login.
+type Server struct {
+	cfg        Config
+	fleet      Fleet
+	auth       *auth.Authenticator
+	sessionKey []byte // HMAC key of web sessions; new each start
+}
+
+// New makes the web server of one gateway run.
+func New(cfg Config) *Server {
+	s := &Server{cfg: cfg, fleet: cfg.Fleet, auth: cfg.Auth, sessionKey: make([]byte, 32)}
+	_, _ = rand.Read(s.sessionKey)
+	return s
+}
+
+// Error is an error with the HTTP status it answers.
+type Error struct {
+	Status  int
+	Message string
+}
+
+func (e *Error) Error() string { return e.Message }
+
+//go:embed webui
+var webAssets embed.FS
+
+// webCaution is shown at the top of every page.
+const webCaution = caution.Text
+
+// Routes mounts the page, its JSON and the login (session.go) on mux. The
+// page and every JSON read need the viewer role; acknowledging and pausing
+// need the operator role (on an open loopback gateway, without tokens,
+// everyone is an anonymous admin; see internal/auth).
+func (s *Server) Routes(mux *http.ServeMux) {
+	ui, _ := fs.Sub(webAssets, "webui")
+	page := http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		b, err := fs.ReadFile(ui, "index.html")
+		if err != nil {
+			http.Error(w, "page missing from this build", http.StatusInternalServerError)
+			return
+		}
+		w.Header().Set("Content-Type", "text/html; charset=utf-8")
+		pageHeaders(w)
+		html := strings.NewReplacer("{{CAUTION}}", webCaution, "{{CSRF}}", s.CSRFToken(r), "{{ACTOR}}", htmlEscape(auth.ActorFrom(webActor(r)))).Replace(string(b))
+		_, _ = w.Write([]byte(html))
+	})
+	s.authRoutes(mux)
+	mux.Handle("GET /{$}", s.requireRole(auth.RoleViewer, page))
+	mux.Handle("GET /device/{id}", s.requireRole(auth.RoleViewer, page))
+	// The page's assets need the viewer role like the page, carry the same
+	// headers, and never include the page's template (index.html, with its
+	// placeholders), which only the page handler serves, filled in.
+	assets := http.StripPrefix("/ui/", http.FileServerFS(ui))
+	mux.Handle("GET /ui/", s.requireRole(auth.RoleViewer, http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		pageHeaders(w)
+		if name := strings.TrimPrefix(r.URL.Path, "/ui/"); name == "" || name == "index.html" || strings.HasSuffix(name, "/") {
+			http.NotFound(w, r)
+			return
+		}
+		assets.ServeHTTP(w, r)
+	})))
+
+	mux.Handle("GET /api/fleet", s.webHandler(auth.RoleViewer, s.webFleet))
+	mux.Handle("GET /api/device/{id}", s.webHandler(auth.RoleViewer, s.webDevice))
+	mux.Handle("GET /api/device/{id}/trend", s.webHandler(auth.RoleViewer, s.webTrend))
+	mux.Handle("GET /api/device/{id}/raw", s.webHandler(auth.RoleViewer, s.webRaw))
+	mux.Handle("POST /api/device/{id}/acknowledge", s.webHandler(auth.RoleOperator, s.webAcknowledge))
+	mux.Handle("POST /api/device/{id}/pause", s.webHandler(auth.RoleOperator, s.webPause))
+	mux.Handle("GET /api/events", s.webHandler(auth.RoleViewer, s.webEvents))
+}
+
+// pageHeaders sets the security headers of the page and its assets: no
+// caching, a content security policy allowing only this origin's own
+// scripts, styles and connections and no framing, and no content sniffing.
+func pageHeaders(w http.ResponseWriter) {
+	w.Header().Set("Cache-Control", "no-store")
+	w.Header().Set("Content-Security-Policy", "default-src 'self'; img-src 'self' data:; style-src 'self'; script-src 'self'; connect-src 'self'; frame-ancestors 'none'")
+	w.Header().Set("X-Content-Type-Options", "nosniff")
+}
+
+func htmlEscape(s string) string {
+	return strings.NewReplacer("&", "&amp;", "<", "&lt;", ">", "&gt;", `"`, "&quot;", "'", "&#39;").Replace(s)
+}
