@@ -71,7 +71,6 @@ func (db *DB) Write(b *Batch) error {
 	defer db.writeMu.Unlock()
 	plan := db.tail.planCompaction(time.Now())
 	newIdx := map[string]uint32{}
-	var pendingNewest map[string]int64 // newest trend times of this batch, recorded once it commits
 	var (
 		assignedDev []*Device
 		assignedEp  []*Episode
@@ -136,7 +135,7 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
-		b.Points, b.KeptOut, pendingNewest = db.keepFirst(tx, b.Points)
+		b.Points, b.KeptOut = db.keepFirst(tx, b.Points)
 		if err := writeRecent(tx, db.tail.gen, b.Points, func(id string) (uint32, error) { return index(tx, id) }); err != nil {
 			return err
 		}
@@ -249,9 +248,6 @@ func (db *DB) Write(b *Batch) error {
 		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
 	}
 	db.tail.afterCommit(b.Points, plan)
-	for dev, t := range pendingNewest {
-		db.newest[dev] = t
-	}
 	if len(newIdx) > 0 {
 		db.idx.mu.Lock()
 		for id, i := range newIdx {

@@ -83,7 +83,7 @@ type DB struct {
 
 	writeMu sync.Mutex // serialises Write (bbolt does too) and guards the tail's generations
 	tail    trendTail
-	newest  map[string]int64 // per device, the newest trend time committed (keepfirst.go); guarded by writeMu
+	newest  map[string]int64 // per device, at least the newest trend time stored (keepfirst.go); guarded by writeMu
 
 	fault atomic.Pointer[WriteFault] // tests: fails writes (fault.go)
 }

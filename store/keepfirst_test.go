@@ -1,8 +1,11 @@
 package store
 
 import (
+	"fmt"
 	"math"
 	"testing"
+
+	bolt "go.etcd.io/bbolt"
 )
 
 // Stored history is never rewritten (store/doc.go, "Keep the first"): a
@@ -56,8 +59,8 @@ func TestTrendKeepsTheFirstPointAtEachTime(t *testing.T) {
 		if err := db.Trend(dev, 0, math.MaxInt64, func(p Point) bool { got = append(got, p); return true }); err != nil {
 			t.Fatal(err)
 		}
-		if len(got) != 12 {
-			t.Fatalf("%s: %d points, want 12", when, len(got))
+		if len(got) != 13 {
+			t.Fatalf("%s: %d points, want 13", when, len(got))
 		}
 		for i, p := range got {
 			want := 95.0
@@ -66,11 +69,24 @@ func TestTrendKeepsTheFirstPointAtEachTime(t *testing.T) {
 				want = 96
 			case 11:
 				want = 97
+			case 12:
+				want = 98
 			}
 			if p.TimeMS != t0+int64(i)*1000 || p.SpO2 != want {
 				t.Errorf("%s: point %d = %d ms %v %%, want %d ms %v %% (the first value)", when, i, p.TimeMS-t0, p.SpO2, int64(i)*1000, want)
 			}
 		}
+	}
+	// A batch that fails to commit keeps nothing out later: its times are
+	// not stored, so the resend is written (with whatever values it has).
+	db.InjectWriteFault(func(*Batch) error { return ErrInjected })
+	if err := db.Write(&Batch{Points: []Point{pt(12, 50)}}); err == nil {
+		t.Fatal("write with an injected fault succeeded")
+	}
+	db.InjectWriteFault(nil)
+	b = &Batch{Points: []Point{pt(12, 98)}}
+	if err := db.Write(b); err != nil || b.KeptOut != 0 {
+		t.Fatalf("resend after a failed batch: err %v, KeptOut %d, want written", err, b.KeptOut)
 	}
 	check(db, "before reopen")
 	if err := db.Check(); err != nil {
@@ -95,4 +111,33 @@ func TestTrendKeepsTheFirstPointAtEachTime(t *testing.T) {
 		t.Errorf("resend after reopen: KeptOut %d, want 2", b.KeptOut)
 	}
 	check(db2, "after reopen")
+}
+
+// BenchmarkKeepFirstInOrder measures the keep-the-first check on the common
+// path (each device's points later than its newest stored one): ns per point.
+func BenchmarkKeepFirstInOrder(b *testing.B) {
+	db, _ := mustOpen(b)
+	const devices = 5000
+	pts := make([]Point, devices)
+	for i := range pts {
+		pts[i] = Point{Device: fmt.Sprintf("dev-%04d", i), TimeMS: 1000, SpO2: 97}
+	}
+	if err := db.Write(&Batch{Points: append([]Point(nil), pts...)}); err != nil {
+		b.Fatal(err)
+	}
+	b.ResetTimer()
+	err := db.bolt.View(func(tx *bolt.Tx) error {
+		for i := 0; i < b.N; i += devices {
+			for j := range pts {
+				pts[j].TimeMS = 2000 + int64(i)
+			}
+			if _, n := db.keepFirst(tx, pts); n != 0 {
+				b.Fatalf("kept out %d in-order points", n)
+			}
+		}
+		return nil
+	})
+	if err != nil {
+		b.Fatal(err)
+	}
 }
