@@ -2,10 +2,8 @@ package alarms
 
 import (
 	"encoding/csv"
-	"errors"
 	"fmt"
 	"io"
-	"math"
 	"sort"
 	"strconv"
 	"strings"
@@ -98,103 +96,6 @@ func ReplayTrends(p *Profile, trends []Trend) ([]Episode, error) {
 		out[i] = all[i].ep
 	}
 	return out, nil
-}
-
-// Trend CSV columns (CONTRACT).
-var trendColumns = []string{"t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi"}
-
-// trend CSV bounds per value column: a value outside is an error; spo2_pct
-// 0 means "no reading" and is kept as missing.
-var trendBounds = map[string][2]float64{
-	"spo2_pct": {0, 100}, "pulse_bpm": {0, 350}, "pi_pct": {0, 100}, "sqi": {0, 1},
-}
-
-// ReadTrendCSV reads the replay/tune trend format:
-// t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi with a header row (columns in any
-// order; t_s and spo2_pct required, the others optional, unknown columns
-// ignored). Empty cells are missing values; an empty or absent device is the
-// stream "". Rows of different devices may interleave; each device's times
-// must increase. Devices are returned in order of first appearance. Errors
-// name the line, the column and the bound.
-func ReadTrendCSV(r io.Reader) ([]Trend, error) {
-	cr := csv.NewReader(r)
-	cr.FieldsPerRecord = -1
-	cr.ReuseRecord = true
-	cr.Comment = '#'
-	head, err := cr.Read()
-	if err != nil {
-		if errors.Is(err, io.EOF) {
-			return nil, errors.New("trend csv: empty input, want a header row t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi")
-		}
-		return nil, fmt.Errorf("trend csv: header: %w", err)
-	}
-	col := map[string]int{}
-	for i, h := range head {
-		h = strings.TrimSpace(strings.TrimPrefix(h, "\ufeff"))
-		if _, dup := col[h]; dup {
-			return nil, fmt.Errorf("trend csv: header: column %q twice", h)
-		}
-		col[h] = i
-	}
-	for _, need := range []string{"t_s", "spo2_pct"} {
-		if _, ok := col[need]; !ok {
-			return nil, fmt.Errorf("trend csv: header: no %s column, want %s", need, strings.Join(trendColumns, ","))
-		}
-	}
-	var trends []Trend
-	byDev := map[string]int{}
-	for {
-		rec, err := cr.Read()
-		if errors.Is(err, io.EOF) {
-			break
-		}
-		if err != nil {
-			return nil, fmt.Errorf("trend csv: %w", err)
-		}
-		line, _ := cr.FieldPos(0)
-		cell := func(name string) string {
-			if i, ok := col[name]; ok && i < len(rec) {
-				return strings.TrimSpace(rec[i])
-			}
-			return ""
-		}
-		ts := cell("t_s")
-		t, err := strconv.ParseFloat(ts, 64)
-		if err != nil || math.IsNaN(t) || math.IsInf(t, 0) {
-			return nil, fmt.Errorf("trend csv: line %d: t_s %q, want a finite number of seconds", line, ts)
-		}
-		s := Sample{T: t}
-		for _, f := range []struct {
-			name string
-			dst  *float64
-		}{{"spo2_pct", &s.SpO2}, {"pulse_bpm", &s.Pulse}, {"pi_pct", &s.PI}, {"sqi", &s.SQI}} {
-			*f.dst = math.NaN()
-			c := cell(f.name)
-			if c == "" {
-				continue
-			}
-			v, err := strconv.ParseFloat(c, 64)
-			b := trendBounds[f.name]
-			if err != nil || !(v >= b[0] && v <= b[1]) {
-				return nil, fmt.Errorf("trend csv: line %d: %s %q, want a number in [%g, %g] or empty", line, f.name, c, b[0], b[1])
-			}
-			*f.dst = v
-		}
-		dev := cell("device")
-		i, ok := byDev[dev]
-		if !ok {
-			i = len(trends)
-			byDev[dev] = i
-			trends = append(trends, Trend{Device: dev})
-		}
-		tr := &trends[i]
-		if n := len(tr.Samples); n > 0 && !(t > tr.Samples[n-1].T) {
-			return nil, fmt.Errorf("trend csv: line %d: t_s %s for device %q, want after %s (times must increase per device)",
-				line, ts, dev, strconv.FormatFloat(tr.Samples[n-1].T, 'f', -1, 64))
-		}
-		tr.Samples = append(tr.Samples, s)
-	}
-	return trends, nil
 }
 
 // EpisodeColumns is the replay output header (CONTRACT).

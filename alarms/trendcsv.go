@@ -1,0 +1,599 @@
+package alarms
+
+import (
+	"bufio"
+	"bytes"
+	"encoding/csv"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"runtime"
+	"strconv"
+	"strings"
+	"sync"
+)
+
+// Trend CSV columns (CONTRACT).
+var trendColumns = []string{"t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi"}
+
+// Value columns of the trend CSV, in Sample field order after T.
+const (
+	tcSpO2 = iota
+	tcPulse
+	tcPI
+	tcSQI
+	numTrendValues
+)
+
+// trendValueNames and trendValueBounds: the value columns and their bounds
+// (a value outside is an error; spo2_pct 0 means "no reading" and is kept as
+// missing).
+var (
+	trendValueNames  = [numTrendValues]string{"spo2_pct", "pulse_bpm", "pi_pct", "sqi"}
+	trendValueBounds = [numTrendValues][2]float64{{0, 100}, {0, 350}, {0, 100}, {0, 1}}
+)
+
+// ReadTrendCSV reads the replay/tune trend format:
+// t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi with a header row (columns in any
+// order; t_s and spo2_pct required, the others optional, unknown columns
+// ignored). Empty cells are missing values; an empty or absent device is the
+// stream "". Lines starting with '#' (the caution line) and empty lines are
+// skipped. Rows of different devices may interleave; each device's times
+// must increase. Devices are returned in order of first appearance. Errors
+// name the line, the column and the bound.
+//
+// It reads RFC 4180 CSV exactly like encoding/csv, but without allocating
+// per cell: lines without quotes or stray carriage returns (everything the
+// project writes) are split in place and their numbers parsed from the
+// bytes; from the first line that needs it on, encoding/csv reads the rest.
+func ReadTrendCSV(r io.Reader) ([]Trend, error) {
+	tr := &trendReader{byDev: map[string]int{}, last: -1}
+	br := bufio.NewReaderSize(r, 1<<20)
+	line, end, err := tr.seq(br, 0, true)
+	if err != nil {
+		return nil, err
+	}
+	if !end {
+		if err := tr.blocks(br, line); err != nil {
+			return nil, err
+		}
+	}
+	return tr.end()
+}
+
+// seq reads br line by line from line+1 on: up to and including the
+// header when headerOnly, else to the end of the input. It reports the
+// last line read and whether the input has ended.
+func (tr *trendReader) seq(br *bufio.Reader, line int, headerOnly bool) (int, bool, error) {
+	var long []byte // a line longer than br's buffer
+	for {
+		if headerOnly && tr.header {
+			return line, false, nil
+		}
+		b, err := br.ReadSlice('\n')
+		if errors.Is(err, bufio.ErrBufferFull) {
+			long = append(long[:0], b...)
+			for errors.Is(err, bufio.ErrBufferFull) {
+				b, err = br.ReadSlice('\n')
+				long = append(long, b...)
+			}
+			b = long
+		}
+		if err != nil && !errors.Is(err, io.EOF) {
+			return line, true, fmt.Errorf("trend csv: %w", err)
+		}
+		if len(b) == 0 && err != nil {
+			return line, true, nil
+		}
+		line++
+		body := b
+		if n := len(body); n > 0 && body[n-1] == '\n' {
+			body = body[:n-1]
+			if n := len(body); n > 0 && body[n-1] == '\r' {
+				body = body[:n-1]
+			}
+		}
+		if len(body) > 0 && body[0] != '#' {
+			if bytes.IndexByte(body, '"') >= 0 || bytes.IndexByte(body, '\r') >= 0 {
+				// encoding/csv reads this line and the rest.
+				return line, true, tr.finishStd(io.MultiReader(bytes.NewReader(append([]byte(nil), b...)), br), line-1)
+			}
+			if e := tr.fastRecord(body, line); e != nil {
+				return line, true, e
+			}
+		}
+		if err != nil {
+			return line, true, nil
+		}
+	}
+}
+
+// trendBlock is the size of the blocks of lines parsed in parallel.
+var trendBlock = 4 << 20 // a variable for the tests
+
+// blocks reads the rows after the header (line is the header's) in blocks
+// of whole lines, parses up to GOMAXPROCS blocks at once, each into its own
+// trends, and appends those to tr's in input order, checking that times
+// still increase across blocks. Errors are those of a line-by-line read:
+// the first line at fault in the input. A block with a quote or a carriage
+// return goes, with everything after it, to seq.
+func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
+	workers := max(1, runtime.GOMAXPROCS(0))
+	bufs := make([][]byte, workers)
+	parts := make([]*trendReader, workers)
+	var carry []byte
+	for {
+		var blocks [][]byte
+		eof := false
+		for len(blocks) < workers && !eof {
+			k := len(blocks)
+			if bufs[k] == nil {
+				bufs[k] = make([]byte, trendBlock)
+			}
+			buf := bufs[k]
+			c := copy(buf, carry)
+			n, err := io.ReadFull(br, buf[c:])
+			n += c
+			switch {
+			case errors.Is(err, io.EOF) || errors.Is(err, io.ErrUnexpectedEOF):
+				eof = true
+				carry = nil
+				if n > 0 {
+					blocks = append(blocks, buf[:n])
+				}
+				continue
+			case err != nil:
+				return fmt.Errorf("trend csv: %w", err)
+			}
+			nl := bytes.LastIndexByte(buf[:n], '\n')
+			if nl < 0 { // a line longer than a block
+				rest := io.MultiReader(bytes.NewReader(slicesConcat(blocks, buf[:n])), br)
+				return tr.seqRest(rest, line)
+			}
+			carry = append([]byte(nil), buf[nl+1:n]...)
+			blocks = append(blocks, buf[:nl+1])
+		}
+		slow := len(blocks)
+		for k, b := range blocks {
+			if bytes.IndexByte(b, '"') >= 0 || bytes.IndexByte(b, '\r') >= 0 {
+				slow = k
+				break
+			}
+		}
+		var wg sync.WaitGroup
+		for k := range blocks[:slow] {
+			if parts[k] == nil {
+				parts[k] = &trendReader{}
+			}
+			p := parts[k]
+			p.reset(tr)
+			wg.Go(func() { p.parseBlock(blocks[k]) })
+		}
+		wg.Wait()
+		for k := range blocks[:slow] {
+			if err := tr.merge(parts[k], line); err != nil {
+				return err
+			}
+			line += bytes.Count(blocks[k], []byte{'\n'})
+		}
+		if slow < len(blocks) {
+			rest := io.MultiReader(bytes.NewReader(slicesConcat(blocks[slow:], carry)), br)
+			return tr.seqRest(rest, line)
+		}
+		if eof {
+			return nil
+		}
+	}
+}
+
+// seqRest reads the rest of the input line by line after line.
+func (tr *trendReader) seqRest(r io.Reader, line int) error {
+	_, _, err := tr.seq(bufio.NewReaderSize(r, 1<<20), line, false)
+	return err
+}
+
+// slicesConcat is the concatenation of bs and last, copied.
+func slicesConcat(bs [][]byte, last []byte) []byte {
+	var out []byte
+	for _, b := range bs {
+		out = append(out, b...)
+	}
+	return append(out, last...)
+}
+
+// reset makes p an empty block parser with the columns of tr.
+func (p *trendReader) reset(tr *trendReader) {
+	*p = trendReader{header: true, tCol: tr.tCol, devCol: tr.devCol, valCol: tr.valCol,
+		byDev: map[string]int{}, last: -1, block: true, ends: p.ends}
+}
+
+// parseBlock parses the lines of b (whole lines, no quotes, no carriage
+// returns), numbering them from 1, up to the first error (kept in p.err).
+func (p *trendReader) parseBlock(b []byte) {
+	line := 0
+	for len(b) > 0 {
+		i := bytes.IndexByte(b, '\n')
+		body := b
+		if i >= 0 {
+			body, b = b[:i], b[i+1:]
+		} else {
+			b = nil
+		}
+		line++
+		if len(body) == 0 || body[0] == '#' {
+			continue
+		}
+		if err := p.fastRecord(body, line); err != nil {
+			p.err = err
+			return
+		}
+	}
+}
+
+// merge appends block p's trends (its lines numbered after line) to tr's.
+func (tr *trendReader) merge(p *trendReader, line int) error {
+	var first *rowError
+	for d := range p.trends {
+		pt := &p.trends[d]
+		g, ok := tr.byDev[pt.Device]
+		if !ok {
+			g = len(tr.trends)
+			tr.byDev[pt.Device] = g
+			tr.trends = append(tr.trends, Trend{Device: pt.Device})
+		}
+		gt := &tr.trends[g]
+		if n := len(gt.Samples); n > 0 && !(pt.Samples[0].T > gt.Samples[n-1].T) {
+			f := p.first[d]
+			if first == nil || f.line < first.line {
+				first = &rowError{line: f.line, msg: fmt.Sprintf("t_s %s for device %q, want after %s (times must increase per device)",
+					f.ts, pt.Device, strconv.FormatFloat(gt.Samples[n-1].T, 'f', -1, 64))}
+			}
+			continue
+		}
+		if first == nil {
+			gt.Samples = append(gt.Samples, pt.Samples...)
+		}
+	}
+	tr.last = -1
+	if first == nil {
+		if re, ok := p.err.(*rowError); ok {
+			first = re
+		} else if p.err != nil {
+			return p.err
+		}
+	} else if re, ok := p.err.(*rowError); ok && re.line < first.line {
+		first = re
+	}
+	if first != nil {
+		return &rowError{line: first.line + line, msg: first.msg}
+	}
+	return nil
+}
+
+// rowError is an error of one row: "trend csv: line N: msg".
+type rowError struct {
+	line int
+	msg  string
+}
+
+func (e *rowError) Error() string { return fmt.Sprintf("trend csv: line %d: %s", e.line, e.msg) }
+
+// fastRecord splits line (no quotes) at commas in place and takes it as a
+// record; only the ends of the fields are kept (no pointers, so no write
+// barriers), and the header goes the general way.
+func (tr *trendReader) fastRecord(line []byte, n int) error {
+	if !tr.header {
+		tr.fields = splitComma(tr.fields[:0], line)
+		return tr.record(tr.fields, n)
+	}
+	ends := tr.ends[:0]
+	for off := 0; ; {
+		i := bytes.IndexByte(line[off:], ',')
+		if i < 0 {
+			ends = append(ends, len(line))
+			break
+		}
+		off += i
+		ends = append(ends, off)
+		off++
+	}
+	tr.ends = ends
+	cell := func(i int) []byte {
+		if i < 0 || i >= len(ends) {
+			return nil
+		}
+		lo := 0
+		if i > 0 {
+			lo = ends[i-1] + 1
+		}
+		return trimSpace(line[lo:ends[i]])
+	}
+	var cells [2 + numTrendValues][]byte
+	cells[0], cells[1] = cell(tr.tCol), cell(tr.devCol)
+	for k := range numTrendValues {
+		cells[2+k] = cell(tr.valCol[k])
+	}
+	return tr.sample(&cells, n)
+}
+
+// splitComma appends the comma-separated fields of line to dst.
+func splitComma(dst [][]byte, line []byte) [][]byte {
+	for {
+		i := bytes.IndexByte(line, ',')
+		if i < 0 {
+			return append(dst, line)
+		}
+		dst = append(dst, line[:i])
+		line = line[i+1:]
+	}
+}
+
+// trendReader is ReadTrendCSV's state.
+type trendReader struct {
+	header bool // the header has been read
+	tCol   int
+	devCol int // -1 when absent
+	valCol [numTrendValues]int
+	fields [][]byte
+	ends   []int
+
+	trends  []Trend
+	byDev   map[string]int
+	block   bool       // parsing one block of a parallel read: first is kept
+	first   []firstRow // per trend: its first row (block only)
+	err     error      // the block's first error
+	last    int        // index of the previous row's device, -1 before any
+	lastDev []byte
+}
+
+// firstRow is where a block's trend starts: its line and t_s as written.
+type firstRow struct {
+	line int
+	ts   string
+}
+
+// finishStd reads the rest of the input with encoding/csv; off is the
+// number of lines already read before rest.
+func (tr *trendReader) finishStd(rest io.Reader, off int) error {
+	cr := csv.NewReader(rest)
+	cr.FieldsPerRecord = -1
+	cr.ReuseRecord = true
+	cr.Comment = '#'
+	for {
+		rec, err := cr.Read()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			var pe *csv.ParseError
+			if errors.As(err, &pe) {
+				pe.StartLine += off
+				pe.Line += off
+			}
+			if !tr.header {
+				return fmt.Errorf("trend csv: header: %w", err)
+			}
+			return fmt.Errorf("trend csv: %w", err)
+		}
+		line, _ := cr.FieldPos(0)
+		tr.fields = tr.fields[:0]
+		for _, f := range rec {
+			tr.fields = append(tr.fields, []byte(f))
+		}
+		if err := tr.record(tr.fields, line+off); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+func (tr *trendReader) end() ([]Trend, error) {
+	if !tr.header {
+		return nil, errors.New("trend csv: empty input, want a header row t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi")
+	}
+	return tr.trends, nil
+}
+
+// record takes one CSV record (the header first) read at line.
+func (tr *trendReader) record(rec [][]byte, line int) error {
+	if !tr.header {
+		return tr.readHeader(rec)
+	}
+	cell := func(i int) []byte {
+		if i >= 0 && i < len(rec) {
+			return trimSpace(rec[i])
+		}
+		return nil
+	}
+	var cells [2 + numTrendValues][]byte
+	cells[0], cells[1] = cell(tr.tCol), cell(tr.devCol)
+	for k := range numTrendValues {
+		cells[2+k] = cell(tr.valCol[k])
+	}
+	return tr.sample(&cells, line)
+}
+
+// sample takes one row's cells: t_s, device, then the values.
+func (tr *trendReader) sample(cells *[2 + numTrendValues][]byte, line int) error {
+	ts := cells[0]
+	t, ok := parseFloat(ts)
+	if !ok || math.IsNaN(t) || math.IsInf(t, 0) {
+		return &rowError{line, fmt.Sprintf("t_s %q, want a finite number of seconds", ts)}
+	}
+	var vals [numTrendValues]float64
+	for k := range vals {
+		vals[k] = math.NaN()
+		c := cells[2+k]
+		if len(c) == 0 {
+			continue
+		}
+		v, ok := parseFloat(c)
+		b := trendValueBounds[k]
+		if !ok || !(v >= b[0] && v <= b[1]) {
+			return &rowError{line, fmt.Sprintf("%s %q, want a number in [%g, %g] or empty", trendValueNames[k], c, b[0], b[1])}
+		}
+		vals[k] = v
+	}
+	dev := cells[1]
+	i := tr.last
+	if i < 0 || !bytes.Equal(dev, tr.lastDev) {
+		var ok bool
+		if i, ok = tr.byDev[string(dev)]; !ok {
+			i = len(tr.trends)
+			tr.byDev[string(dev)] = i
+			tr.trends = append(tr.trends, Trend{Device: string(dev)})
+			if tr.block {
+				tr.first = append(tr.first, firstRow{line, string(ts)})
+			}
+		}
+		tr.last = i
+		tr.lastDev = append(tr.lastDev[:0], dev...)
+	}
+	trend := &tr.trends[i]
+	if n := len(trend.Samples); n > 0 && !(t > trend.Samples[n-1].T) {
+		return &rowError{line, fmt.Sprintf("t_s %s for device %q, want after %s (times must increase per device)",
+			ts, trend.Device, strconv.FormatFloat(trend.Samples[n-1].T, 'f', -1, 64))}
+	}
+	trend.Samples = append(trend.Samples, Sample{T: t, SpO2: vals[tcSpO2], Pulse: vals[tcPulse], PI: vals[tcPI], SQI: vals[tcSQI]})
+	return nil
+}
+
+func (tr *trendReader) readHeader(rec [][]byte) error {
+	col := map[string]int{}
+	for i, h := range rec {
+		name := strings.TrimSpace(strings.TrimPrefix(string(h), "\ufeff"))
+		if _, dup := col[name]; dup {
+			return fmt.Errorf("trend csv: header: column %q twice", name)
+		}
+		col[name] = i
+	}
+	for _, need := range []string{"t_s", "spo2_pct"} {
+		if _, ok := col[need]; !ok {
+			return fmt.Errorf("trend csv: header: no %s column, want %s", need, strings.Join(trendColumns, ","))
+		}
+	}
+	idx := func(name string) int {
+		if i, ok := col[name]; ok {
+			return i
+		}
+		return -1
+	}
+	tr.tCol, tr.devCol = idx("t_s"), idx("device")
+	for k, name := range trendValueNames {
+		tr.valCol[k] = idx(name)
+	}
+	tr.header = true
+	return nil
+}
+
+// trimSpace is bytes.TrimSpace without a call for the usual cell that has
+// no space at either end.
+func trimSpace(b []byte) []byte {
+	if len(b) == 0 || (b[0] > ' ' && b[0] < 0x80 && b[len(b)-1] > ' ' && b[len(b)-1] < 0x80) {
+		return b
+	}
+	return bytes.TrimSpace(b)
+}
+
+// pow10 holds the powers of ten that float64 represents exactly.
+var pow10 = [...]float64{1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10,
+	1e11, 1e12, 1e13, 1e14, 1e15, 1e16, 1e17, 1e18, 1e19, 1e20, 1e21, 1e22}
+
+// parseFloat parses a decimal number like strconv.ParseFloat(string(b), 64)
+// and gives the same result. The numbers the project writes (at most 15
+// significant digits, 'f' or 'g' format) take the exact fast path: a
+// mantissa below 2^53 times or divided by an exactly representable power of
+// ten is one correctly rounded operation (Clinger 1990, "How to read
+// floating point numbers accurately"). Anything else goes to strconv.
+func parseFloat(b []byte) (float64, bool) {
+	if v, ok := parseFloatFast(b); ok {
+		return v, true
+	}
+	v, err := strconv.ParseFloat(string(b), 64)
+	return v, err == nil
+}
+
+func parseFloatFast(b []byte) (float64, bool) {
+	i, n := 0, len(b)
+	neg := false
+	if i < n && (b[i] == '-' || b[i] == '+') {
+		neg = b[i] == '-'
+		i++
+	}
+	var mant uint64
+	digits, frac, exp := 0, 0, 0
+	sawDigit, sawDot := false, false
+	for ; i < n; i++ {
+		c := b[i]
+		switch {
+		case c >= '0' && c <= '9':
+			sawDigit = true
+			if mant == 0 && c == '0' {
+				if sawDot {
+					frac++
+				}
+				continue
+			}
+			if digits >= 19 {
+				return 0, false
+			}
+			mant = mant*10 + uint64(c-'0')
+			digits++
+			if sawDot {
+				frac++
+			}
+			continue
+		case c == '.' && !sawDot:
+			sawDot = true
+			continue
+		}
+		break
+	}
+	if !sawDigit {
+		return 0, false
+	}
+	if i < n {
+		if b[i] != 'e' && b[i] != 'E' {
+			return 0, false
+		}
+		i++
+		eneg := false
+		if i < n && (b[i] == '-' || b[i] == '+') {
+			eneg = b[i] == '-'
+			i++
+		}
+		if i == n {
+			return 0, false
+		}
+		for ; i < n; i++ {
+			c := b[i]
+			if c < '0' || c > '9' || exp > 1000 {
+				return 0, false
+			}
+			exp = exp*10 + int(c-'0')
+		}
+		if eneg {
+			exp = -exp
+		}
+	}
+	if mant > 1<<53 {
+		return 0, false
+	}
+	e := exp - frac
+	f := float64(mant)
+	switch {
+	case mant == 0:
+	case e == 0:
+	case e > 0 && e <= 22:
+		f *= pow10[e]
+	case e < 0 && e >= -22:
+		f /= pow10[-e]
+	default:
+		return 0, false
+	}
+	if neg {
+		f = -f
+	}
+	return f, true
+}
