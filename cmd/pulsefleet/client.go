@@ -46,7 +46,10 @@ func (c *clientFlags) addrs() ([]string, error) {
 }
 
 // dial opens a client connection to one gateway with the credentials given.
-func (c *clientFlags) dial(addr string) (*grpc.ClientConn, error) {
+func (c *clientFlags) dial(addr string) (*grpc.ClientConn, error) { return c.dialWith(addr) }
+
+// dialWith is dial with further options.
+func (c *clientFlags) dialWith(addr string, opts ...grpc.DialOption) (*grpc.ClientConn, error) {
 	creds := insecure.NewCredentials()
 	if c.caFile != "" || c.certFile != "" {
 		cfg := &tls.Config{MinVersion: tls.VersionTLS12}
@@ -70,7 +73,7 @@ func (c *clientFlags) dial(addr string) (*grpc.ClientConn, error) {
 		}
 		creds = credentials.NewTLS(cfg)
 	}
-	conn, err := grpc.NewClient(addr, grpc.WithTransportCredentials(creds))
+	conn, err := grpc.NewClient(addr, append([]grpc.DialOption{grpc.WithTransportCredentials(creds)}, opts...)...)
 	if err != nil {
 		return nil, fmt.Errorf("--gateway %s: %w", addr, err)
 	}

@@ -85,6 +85,7 @@ var methodRoles = map[string]Role{
 	pb.FleetService_GetAlarmProfile_FullMethodName:   RoleViewer,
 	pb.FleetService_GetDeviceQuality_FullMethodName:  RoleViewer,
 	pb.FleetService_ListDeviceQuality_FullMethodName: RoleViewer,
+	pb.FleetService_ExportTrend_FullMethodName:       RoleViewer,
 	pb.FleetService_AcknowledgeAlarm_FullMethodName:  RoleOperator,
 	pb.FleetService_PauseAlarms_FullMethodName:       RoleOperator,
 	pb.FleetService_SetAlarmProfile_FullMethodName:   RoleAdmin,
@@ -96,4 +97,5 @@ var methodRoles = map[string]Role{
 	pb.AdminService_RevokeToken_FullMethodName:       RoleAdmin,
 	pb.AdminService_PutCalibration_FullMethodName:    RoleAdmin,
 	pb.AdminService_AssignCalibration_FullMethodName: RoleAdmin,
+	pb.AdminService_Backup_FullMethodName:            RoleAdmin,
 }

@@ -1113,6 +1113,127 @@ func (x *AssignCalibrationResponse) GetAssignment() *CalibrationAssignment {
 	return nil
 }
 
+// BackupRequest asks for a snapshot of the store.
+type BackupRequest struct {
+	state         protoimpl.MessageState `protogen:"open.v1"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *BackupRequest) Reset() {
+	*x = BackupRequest{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[18]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *BackupRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*BackupRequest) ProtoMessage() {}
+
+func (x *BackupRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[18]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use BackupRequest.ProtoReflect.Descriptor instead.
+func (*BackupRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{18}
+}
+
+// BackupResponse is one message of a snapshot stream.
+type BackupResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Size of the snapshot in bytes (first message only).
+	SizeBytes int64 `protobuf:"varint,1,opt,name=size_bytes,json=sizeBytes,proto3" json:"size_bytes,omitempty"`
+	// The store's id (meta/store_id; first message only).
+	StoreId string `protobuf:"bytes,2,opt,name=store_id,json=storeId,proto3" json:"store_id,omitempty"`
+	// The next bytes of the snapshot file (at most 256 KiB).
+	Chunk []byte `protobuf:"bytes,3,opt,name=chunk,proto3" json:"chunk,omitempty"`
+	// Lower-case hex SHA-256 of every chunk in order (last message only; it
+	// marks the snapshot complete).
+	Sha256 string `protobuf:"bytes,4,opt,name=sha256,proto3" json:"sha256,omitempty"`
+	// When the snapshot's read transaction began, milliseconds since the Unix
+	// epoch (first message only): every message acknowledged before it is in it.
+	TakenUnixMs   int64 `protobuf:"varint,5,opt,name=taken_unix_ms,json=takenUnixMs,proto3" json:"taken_unix_ms,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *BackupResponse) Reset() {
+	*x = BackupResponse{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[19]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *BackupResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*BackupResponse) ProtoMessage() {}
+
+func (x *BackupResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[19]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use BackupResponse.ProtoReflect.Descriptor instead.
+func (*BackupResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{19}
+}
+
+func (x *BackupResponse) GetSizeBytes() int64 {
+	if x != nil {
+		return x.SizeBytes
+	}
+	return 0
+}
+
+func (x *BackupResponse) GetStoreId() string {
+	if x != nil {
+		return x.StoreId
+	}
+	return ""
+}
+
+func (x *BackupResponse) GetChunk() []byte {
+	if x != nil {
+		return x.Chunk
+	}
+	return nil
+}
+
+func (x *BackupResponse) GetSha256() string {
+	if x != nil {
+		return x.Sha256
+	}
+	return ""
+}
+
+func (x *BackupResponse) GetTakenUnixMs() int64 {
+	if x != nil {
+		return x.TakenUnixMs
+	}
+	return 0
+}
+
 var File_pulsefleet_v1_admin_proto protoreflect.FileDescriptor
 
 const file_pulsefleet_v1_admin_proto_rawDesc = "" +
@@ -1184,13 +1305,21 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"\x19AssignCalibrationResponse\x12D\n" +
 	"\n" +
 	"assignment\x18\x01 \x01(\v2$.pulsefleet.v1.CalibrationAssignmentR\n" +
-	"assignment*P\n" +
+	"assignment\"\x0f\n" +
+	"\rBackupRequest\"\x9c\x01\n" +
+	"\x0eBackupResponse\x12\x1d\n" +
+	"\n" +
+	"size_bytes\x18\x01 \x01(\x03R\tsizeBytes\x12\x19\n" +
+	"\bstore_id\x18\x02 \x01(\tR\astoreId\x12\x14\n" +
+	"\x05chunk\x18\x03 \x01(\fR\x05chunk\x12\x16\n" +
+	"\x06sha256\x18\x04 \x01(\tR\x06sha256\x12\"\n" +
+	"\rtaken_unix_ms\x18\x05 \x01(\x03R\vtakenUnixMs*P\n" +
 	"\x04Role\x12\x14\n" +
 	"\x10ROLE_UNSPECIFIED\x10\x00\x12\x0f\n" +
 	"\vROLE_VIEWER\x10\x01\x12\x11\n" +
 	"\rROLE_OPERATOR\x10\x02\x12\x0e\n" +
 	"\n" +
-	"ROLE_ADMIN\x10\x032\x86\x05\n" +
+	"ROLE_ADMIN\x10\x032\xcf\x05\n" +
 	"\fAdminService\x12Q\n" +
 	"\n" +
 	"IssueToken\x12 .pulsefleet.v1.IssueTokenRequest\x1a!.pulsefleet.v1.IssueTokenResponse\x12Q\n" +
@@ -1200,7 +1329,8 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"\tListAudit\x12\x1f.pulsefleet.v1.ListAuditRequest\x1a .pulsefleet.v1.ListAuditResponse\x12]\n" +
 	"\x0ePutCalibration\x12$.pulsefleet.v1.PutCalibrationRequest\x1a%.pulsefleet.v1.PutCalibrationResponse\x12c\n" +
 	"\x10ListCalibrations\x12&.pulsefleet.v1.ListCalibrationsRequest\x1a'.pulsefleet.v1.ListCalibrationsResponse\x12f\n" +
-	"\x11AssignCalibration\x12'.pulsefleet.v1.AssignCalibrationRequest\x1a(.pulsefleet.v1.AssignCalibrationResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
+	"\x11AssignCalibration\x12'.pulsefleet.v1.AssignCalibrationRequest\x1a(.pulsefleet.v1.AssignCalibrationResponse\x12G\n" +
+	"\x06Backup\x12\x1c.pulsefleet.v1.BackupRequest\x1a\x1d.pulsefleet.v1.BackupResponse0\x01BCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
 var (
 	file_pulsefleet_v1_admin_proto_rawDescOnce sync.Once
@@ -1215,7 +1345,7 @@ func file_pulsefleet_v1_admin_proto_rawDescGZIP() []byte {
 }
 
 var file_pulsefleet_v1_admin_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
-var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 18)
+var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 20)
 var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(Role)(0),                         // 0: pulsefleet.v1.Role
 	(*Token)(nil),                     // 1: pulsefleet.v1.Token
@@ -1236,6 +1366,8 @@ var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(*ListCalibrationsResponse)(nil),  // 16: pulsefleet.v1.ListCalibrationsResponse
 	(*AssignCalibrationRequest)(nil),  // 17: pulsefleet.v1.AssignCalibrationRequest
 	(*AssignCalibrationResponse)(nil), // 18: pulsefleet.v1.AssignCalibrationResponse
+	(*BackupRequest)(nil),             // 19: pulsefleet.v1.BackupRequest
+	(*BackupResponse)(nil),            // 20: pulsefleet.v1.BackupResponse
 }
 var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	0,  // 0: pulsefleet.v1.Token.role:type_name -> pulsefleet.v1.Role
@@ -1255,15 +1387,17 @@ var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	12, // 14: pulsefleet.v1.AdminService.PutCalibration:input_type -> pulsefleet.v1.PutCalibrationRequest
 	14, // 15: pulsefleet.v1.AdminService.ListCalibrations:input_type -> pulsefleet.v1.ListCalibrationsRequest
 	17, // 16: pulsefleet.v1.AdminService.AssignCalibration:input_type -> pulsefleet.v1.AssignCalibrationRequest
-	3,  // 17: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
-	5,  // 18: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
-	7,  // 19: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
-	10, // 20: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
-	13, // 21: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
-	16, // 22: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
-	18, // 23: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
-	17, // [17:24] is the sub-list for method output_type
-	10, // [10:17] is the sub-list for method input_type
+	19, // 17: pulsefleet.v1.AdminService.Backup:input_type -> pulsefleet.v1.BackupRequest
+	3,  // 18: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
+	5,  // 19: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
+	7,  // 20: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
+	10, // 21: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
+	13, // 22: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
+	16, // 23: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
+	18, // 24: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
+	20, // 25: pulsefleet.v1.AdminService.Backup:output_type -> pulsefleet.v1.BackupResponse
+	18, // [18:26] is the sub-list for method output_type
+	10, // [10:18] is the sub-list for method input_type
 	10, // [10:10] is the sub-list for extension type_name
 	10, // [10:10] is the sub-list for extension extendee
 	0,  // [0:10] is the sub-list for field type_name
@@ -1280,7 +1414,7 @@ func file_pulsefleet_v1_admin_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_pulsefleet_v1_admin_proto_rawDesc), len(file_pulsefleet_v1_admin_proto_rawDesc)),
 			NumEnums:      1,
-			NumMessages:   18,
+			NumMessages:   20,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

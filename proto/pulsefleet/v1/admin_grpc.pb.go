@@ -26,6 +26,7 @@ const (
 	AdminService_PutCalibration_FullMethodName    = "/pulsefleet.v1.AdminService/PutCalibration"
 	AdminService_ListCalibrations_FullMethodName  = "/pulsefleet.v1.AdminService/ListCalibrations"
 	AdminService_AssignCalibration_FullMethodName = "/pulsefleet.v1.AdminService/AssignCalibration"
+	AdminService_Backup_FullMethodName            = "/pulsefleet.v1.AdminService/Backup"
 )
 
 // AdminServiceClient is the client API for AdminService service.
@@ -51,6 +52,12 @@ type AdminServiceClient interface {
 	ListCalibrations(ctx context.Context, in *ListCalibrationsRequest, opts ...grpc.CallOption) (*ListCalibrationsResponse, error)
 	// AssignCalibration assigns a calibration to a device model or one device.
 	AssignCalibration(ctx context.Context, in *AssignCalibrationRequest, opts ...grpc.CallOption) (*AssignCalibrationResponse, error)
+	// Backup streams a consistent snapshot of the whole store, taken in one read
+	// transaction while the gateway goes on ingesting: the first message carries
+	// the snapshot's size and store id, then chunks of the file in order, and the
+	// last message the SHA-256 of all chunks. A stream that ends without that last
+	// message is not a backup. Admin role; audited.
+	Backup(ctx context.Context, in *BackupRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[BackupResponse], error)
 }
 
 type adminServiceClient struct {
@@ -131,6 +138,25 @@ func (c *adminServiceClient) AssignCalibration(ctx context.Context, in *AssignCa
 	return out, nil
 }
 
+func (c *adminServiceClient) Backup(ctx context.Context, in *BackupRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[BackupResponse], error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	stream, err := c.cc.NewStream(ctx, &AdminService_ServiceDesc.Streams[0], AdminService_Backup_FullMethodName, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	x := &grpc.GenericClientStream[BackupRequest, BackupResponse]{ClientStream: stream}
+	if err := x.ClientStream.SendMsg(in); err != nil {
+		return nil, err
+	}
+	if err := x.ClientStream.CloseSend(); err != nil {
+		return nil, err
+	}
+	return x, nil
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type AdminService_BackupClient = grpc.ServerStreamingClient[BackupResponse]
+
 // AdminServiceServer is the server API for AdminService service.
 // All implementations must embed UnimplementedAdminServiceServer
 // for forward compatibility.
@@ -154,6 +180,12 @@ type AdminServiceServer interface {
 	ListCalibrations(context.Context, *ListCalibrationsRequest) (*ListCalibrationsResponse, error)
 	// AssignCalibration assigns a calibration to a device model or one device.
 	AssignCalibration(context.Context, *AssignCalibrationRequest) (*AssignCalibrationResponse, error)
+	// Backup streams a consistent snapshot of the whole store, taken in one read
+	// transaction while the gateway goes on ingesting: the first message carries
+	// the snapshot's size and store id, then chunks of the file in order, and the
+	// last message the SHA-256 of all chunks. A stream that ends without that last
+	// message is not a backup. Admin role; audited.
+	Backup(*BackupRequest, grpc.ServerStreamingServer[BackupResponse]) error
 	mustEmbedUnimplementedAdminServiceServer()
 }
 
@@ -184,6 +216,9 @@ func (UnimplementedAdminServiceServer) ListCalibrations(context.Context, *ListCa
 }
 func (UnimplementedAdminServiceServer) AssignCalibration(context.Context, *AssignCalibrationRequest) (*AssignCalibrationResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method AssignCalibration not implemented")
+}
+func (UnimplementedAdminServiceServer) Backup(*BackupRequest, grpc.ServerStreamingServer[BackupResponse]) error {
+	return status.Error(codes.Unimplemented, "method Backup not implemented")
 }
 func (UnimplementedAdminServiceServer) mustEmbedUnimplementedAdminServiceServer() {}
 func (UnimplementedAdminServiceServer) testEmbeddedByValue()                      {}
@@ -332,6 +367,17 @@ func _AdminService_AssignCalibration_Handler(srv interface{}, ctx context.Contex
 	return interceptor(ctx, in, info, handler)
 }
 
+func _AdminService_Backup_Handler(srv interface{}, stream grpc.ServerStream) error {
+	m := new(BackupRequest)
+	if err := stream.RecvMsg(m); err != nil {
+		return err
+	}
+	return srv.(AdminServiceServer).Backup(m, &grpc.GenericServerStream[BackupRequest, BackupResponse]{ServerStream: stream})
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type AdminService_BackupServer = grpc.ServerStreamingServer[BackupResponse]
+
 // AdminService_ServiceDesc is the grpc.ServiceDesc for AdminService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -368,6 +414,12 @@ var AdminService_ServiceDesc = grpc.ServiceDesc{
 			Handler:    _AdminService_AssignCalibration_Handler,
 		},
 	},
-	Streams:  []grpc.StreamDesc{},
+	Streams: []grpc.StreamDesc{
+		{
+			StreamName:    "Backup",
+			Handler:       _AdminService_Backup_Handler,
+			ServerStreams: true,
+		},
+	},
 	Metadata: "pulsefleet/v1/admin.proto",
 }

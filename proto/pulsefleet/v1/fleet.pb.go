@@ -2464,6 +2464,145 @@ func (x *ListDeviceQualityResponse) GetQualities() []*DeviceQuality {
 	return nil
 }
 
+// ExportTrendRequest selects what ExportTrend streams.
+type ExportTrendRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Devices whose points to stream, in this order (empty = every device with trend
+	// points, ordered by id).
+	DeviceIds []string `protobuf:"bytes,1,rep,name=device_ids,json=deviceIds,proto3" json:"device_ids,omitempty"`
+	// Start of the range (inclusive), milliseconds since the Unix epoch; 0 = the beginning.
+	FromUnixMs int64 `protobuf:"varint,2,opt,name=from_unix_ms,json=fromUnixMs,proto3" json:"from_unix_ms,omitempty"`
+	// End of the range (exclusive), milliseconds since the Unix epoch; 0 = no end.
+	ToUnixMs int64 `protobuf:"varint,3,opt,name=to_unix_ms,json=toUnixMs,proto3" json:"to_unix_ms,omitempty"`
+	// Only the first message (the device lists), no points.
+	DevicesOnly   bool `protobuf:"varint,4,opt,name=devices_only,json=devicesOnly,proto3" json:"devices_only,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ExportTrendRequest) Reset() {
+	*x = ExportTrendRequest{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[33]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ExportTrendRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ExportTrendRequest) ProtoMessage() {}
+
+func (x *ExportTrendRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[33]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ExportTrendRequest.ProtoReflect.Descriptor instead.
+func (*ExportTrendRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{33}
+}
+
+func (x *ExportTrendRequest) GetDeviceIds() []string {
+	if x != nil {
+		return x.DeviceIds
+	}
+	return nil
+}
+
+func (x *ExportTrendRequest) GetFromUnixMs() int64 {
+	if x != nil {
+		return x.FromUnixMs
+	}
+	return 0
+}
+
+func (x *ExportTrendRequest) GetToUnixMs() int64 {
+	if x != nil {
+		return x.ToUnixMs
+	}
+	return 0
+}
+
+func (x *ExportTrendRequest) GetDevicesOnly() bool {
+	if x != nil {
+		return x.DevicesOnly
+	}
+	return false
+}
+
+// ExportTrendResponse is one message of an export stream.
+type ExportTrendResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// First message only: every device record of this gateway (device_id, model,
+	// firmware and mode set).
+	Devices []*Device `protobuf:"bytes,1,rep,name=devices,proto3" json:"devices,omitempty"`
+	// First message only: the devices that have trend points, ordered by id.
+	TrendDeviceIds []string `protobuf:"bytes,2,rep,name=trend_device_ids,json=trendDeviceIds,proto3" json:"trend_device_ids,omitempty"`
+	// The next points (device_id set), per device oldest first.
+	Points        []*TrendPoint `protobuf:"bytes,3,rep,name=points,proto3" json:"points,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ExportTrendResponse) Reset() {
+	*x = ExportTrendResponse{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[34]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ExportTrendResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ExportTrendResponse) ProtoMessage() {}
+
+func (x *ExportTrendResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[34]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ExportTrendResponse.ProtoReflect.Descriptor instead.
+func (*ExportTrendResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{34}
+}
+
+func (x *ExportTrendResponse) GetDevices() []*Device {
+	if x != nil {
+		return x.Devices
+	}
+	return nil
+}
+
+func (x *ExportTrendResponse) GetTrendDeviceIds() []string {
+	if x != nil {
+		return x.TrendDeviceIds
+	}
+	return nil
+}
+
+func (x *ExportTrendResponse) GetPoints() []*TrendPoint {
+	if x != nil {
+		return x.Points
+	}
+	return nil
+}
+
 var File_pulsefleet_v1_fleet_proto protoreflect.FileDescriptor
 
 const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
@@ -2661,7 +2800,19 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\aquality\x18\x01 \x01(\v2\x1c.pulsefleet.v1.DeviceQualityR\aquality\"\x1a\n" +
 	"\x18ListDeviceQualityRequest\"W\n" +
 	"\x19ListDeviceQualityResponse\x12:\n" +
-	"\tqualities\x18\x01 \x03(\v2\x1c.pulsefleet.v1.DeviceQualityR\tqualities*^\n" +
+	"\tqualities\x18\x01 \x03(\v2\x1c.pulsefleet.v1.DeviceQualityR\tqualities\"\x96\x01\n" +
+	"\x12ExportTrendRequest\x12\x1d\n" +
+	"\n" +
+	"device_ids\x18\x01 \x03(\tR\tdeviceIds\x12 \n" +
+	"\ffrom_unix_ms\x18\x02 \x01(\x03R\n" +
+	"fromUnixMs\x12\x1c\n" +
+	"\n" +
+	"to_unix_ms\x18\x03 \x01(\x03R\btoUnixMs\x12!\n" +
+	"\fdevices_only\x18\x04 \x01(\bR\vdevicesOnly\"\xa3\x01\n" +
+	"\x13ExportTrendResponse\x12/\n" +
+	"\adevices\x18\x01 \x03(\v2\x15.pulsefleet.v1.DeviceR\adevices\x12(\n" +
+	"\x10trend_device_ids\x18\x02 \x03(\tR\x0etrendDeviceIds\x121\n" +
+	"\x06points\x18\x03 \x03(\v2\x19.pulsefleet.v1.TrendPointR\x06points*^\n" +
 	"\bPriority\x12\x18\n" +
 	"\x14PRIORITY_UNSPECIFIED\x10\x00\x12\x10\n" +
 	"\fPRIORITY_LOW\x10\x01\x12\x13\n" +
@@ -2670,7 +2821,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x06Source\x12\x16\n" +
 	"\x12SOURCE_UNSPECIFIED\x10\x00\x12\x12\n" +
 	"\x0eSOURCE_GATEWAY\x10\x01\x12\x11\n" +
-	"\rSOURCE_DEVICE\x10\x022\xe2\b\n" +
+	"\rSOURCE_DEVICE\x10\x022\xba\t\n" +
 	"\fFleetService\x12T\n" +
 	"\vListDevices\x12!.pulsefleet.v1.ListDevicesRequest\x1a\".pulsefleet.v1.ListDevicesResponse\x12N\n" +
 	"\tGetDevice\x12\x1f.pulsefleet.v1.GetDeviceRequest\x1a .pulsefleet.v1.GetDeviceResponse\x12Q\n" +
@@ -2684,7 +2835,8 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x0fGetAlarmProfile\x12%.pulsefleet.v1.GetAlarmProfileRequest\x1a&.pulsefleet.v1.GetAlarmProfileResponse\x12`\n" +
 	"\x0fSetAlarmProfile\x12%.pulsefleet.v1.SetAlarmProfileRequest\x1a&.pulsefleet.v1.SetAlarmProfileResponse\x12c\n" +
 	"\x10GetDeviceQuality\x12&.pulsefleet.v1.GetDeviceQualityRequest\x1a'.pulsefleet.v1.GetDeviceQualityResponse\x12f\n" +
-	"\x11ListDeviceQuality\x12'.pulsefleet.v1.ListDeviceQualityRequest\x1a(.pulsefleet.v1.ListDeviceQualityResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
+	"\x11ListDeviceQuality\x12'.pulsefleet.v1.ListDeviceQualityRequest\x1a(.pulsefleet.v1.ListDeviceQualityResponse\x12V\n" +
+	"\vExportTrend\x12!.pulsefleet.v1.ExportTrendRequest\x1a\".pulsefleet.v1.ExportTrendResponse0\x01BCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
 var (
 	file_pulsefleet_v1_fleet_proto_rawDescOnce sync.Once
@@ -2699,7 +2851,7 @@ func file_pulsefleet_v1_fleet_proto_rawDescGZIP() []byte {
 }
 
 var file_pulsefleet_v1_fleet_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
-var file_pulsefleet_v1_fleet_proto_msgTypes = make([]protoimpl.MessageInfo, 34)
+var file_pulsefleet_v1_fleet_proto_msgTypes = make([]protoimpl.MessageInfo, 36)
 var file_pulsefleet_v1_fleet_proto_goTypes = []any{
 	(Priority)(0),                     // 0: pulsefleet.v1.Priority
 	(Source)(0),                       // 1: pulsefleet.v1.Source
@@ -2736,8 +2888,10 @@ var file_pulsefleet_v1_fleet_proto_goTypes = []any{
 	(*GetDeviceQualityResponse)(nil),  // 32: pulsefleet.v1.GetDeviceQualityResponse
 	(*ListDeviceQualityRequest)(nil),  // 33: pulsefleet.v1.ListDeviceQualityRequest
 	(*ListDeviceQualityResponse)(nil), // 34: pulsefleet.v1.ListDeviceQualityResponse
-	nil,                               // 35: pulsefleet.v1.Device.LabelsEntry
-	(Mode)(0),                         // 36: pulsefleet.v1.Mode
+	(*ExportTrendRequest)(nil),        // 35: pulsefleet.v1.ExportTrendRequest
+	(*ExportTrendResponse)(nil),       // 36: pulsefleet.v1.ExportTrendResponse
+	nil,                               // 37: pulsefleet.v1.Device.LabelsEntry
+	(Mode)(0),                         // 38: pulsefleet.v1.Mode
 }
 var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	1,  // 0: pulsefleet.v1.TrendPoint.source:type_name -> pulsefleet.v1.Source
@@ -2745,8 +2899,8 @@ var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	3,  // 2: pulsefleet.v1.TrendBucket.pulse_bpm:type_name -> pulsefleet.v1.Stat
 	3,  // 3: pulsefleet.v1.TrendBucket.pi_pct:type_name -> pulsefleet.v1.Stat
 	3,  // 4: pulsefleet.v1.TrendBucket.sqi:type_name -> pulsefleet.v1.Stat
-	36, // 5: pulsefleet.v1.Device.mode:type_name -> pulsefleet.v1.Mode
-	35, // 6: pulsefleet.v1.Device.labels:type_name -> pulsefleet.v1.Device.LabelsEntry
+	38, // 5: pulsefleet.v1.Device.mode:type_name -> pulsefleet.v1.Mode
+	37, // 6: pulsefleet.v1.Device.labels:type_name -> pulsefleet.v1.Device.LabelsEntry
 	2,  // 7: pulsefleet.v1.Device.latest:type_name -> pulsefleet.v1.TrendPoint
 	0,  // 8: pulsefleet.v1.Device.alarm_priority:type_name -> pulsefleet.v1.Priority
 	5,  // 9: pulsefleet.v1.ListDevicesResponse.devices:type_name -> pulsefleet.v1.Device
@@ -2766,35 +2920,39 @@ var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	29, // 23: pulsefleet.v1.DeviceQuality.pi_pct:type_name -> pulsefleet.v1.Distribution
 	30, // 24: pulsefleet.v1.GetDeviceQualityResponse.quality:type_name -> pulsefleet.v1.DeviceQuality
 	30, // 25: pulsefleet.v1.ListDeviceQualityResponse.qualities:type_name -> pulsefleet.v1.DeviceQuality
-	6,  // 26: pulsefleet.v1.FleetService.ListDevices:input_type -> pulsefleet.v1.ListDevicesRequest
-	8,  // 27: pulsefleet.v1.FleetService.GetDevice:input_type -> pulsefleet.v1.GetDeviceRequest
-	10, // 28: pulsefleet.v1.FleetService.QueryTrend:input_type -> pulsefleet.v1.QueryTrendRequest
-	12, // 29: pulsefleet.v1.FleetService.WatchEvents:input_type -> pulsefleet.v1.WatchEventsRequest
-	17, // 30: pulsefleet.v1.FleetService.ListEpisodes:input_type -> pulsefleet.v1.ListEpisodesRequest
-	19, // 31: pulsefleet.v1.FleetService.WatchEpisodes:input_type -> pulsefleet.v1.WatchEpisodesRequest
-	21, // 32: pulsefleet.v1.FleetService.AcknowledgeAlarm:input_type -> pulsefleet.v1.AcknowledgeAlarmRequest
-	23, // 33: pulsefleet.v1.FleetService.PauseAlarms:input_type -> pulsefleet.v1.PauseAlarmsRequest
-	25, // 34: pulsefleet.v1.FleetService.GetAlarmProfile:input_type -> pulsefleet.v1.GetAlarmProfileRequest
-	27, // 35: pulsefleet.v1.FleetService.SetAlarmProfile:input_type -> pulsefleet.v1.SetAlarmProfileRequest
-	31, // 36: pulsefleet.v1.FleetService.GetDeviceQuality:input_type -> pulsefleet.v1.GetDeviceQualityRequest
-	33, // 37: pulsefleet.v1.FleetService.ListDeviceQuality:input_type -> pulsefleet.v1.ListDeviceQualityRequest
-	7,  // 38: pulsefleet.v1.FleetService.ListDevices:output_type -> pulsefleet.v1.ListDevicesResponse
-	9,  // 39: pulsefleet.v1.FleetService.GetDevice:output_type -> pulsefleet.v1.GetDeviceResponse
-	11, // 40: pulsefleet.v1.FleetService.QueryTrend:output_type -> pulsefleet.v1.QueryTrendResponse
-	14, // 41: pulsefleet.v1.FleetService.WatchEvents:output_type -> pulsefleet.v1.WatchEventsResponse
-	18, // 42: pulsefleet.v1.FleetService.ListEpisodes:output_type -> pulsefleet.v1.ListEpisodesResponse
-	20, // 43: pulsefleet.v1.FleetService.WatchEpisodes:output_type -> pulsefleet.v1.WatchEpisodesResponse
-	22, // 44: pulsefleet.v1.FleetService.AcknowledgeAlarm:output_type -> pulsefleet.v1.AcknowledgeAlarmResponse
-	24, // 45: pulsefleet.v1.FleetService.PauseAlarms:output_type -> pulsefleet.v1.PauseAlarmsResponse
-	26, // 46: pulsefleet.v1.FleetService.GetAlarmProfile:output_type -> pulsefleet.v1.GetAlarmProfileResponse
-	28, // 47: pulsefleet.v1.FleetService.SetAlarmProfile:output_type -> pulsefleet.v1.SetAlarmProfileResponse
-	32, // 48: pulsefleet.v1.FleetService.GetDeviceQuality:output_type -> pulsefleet.v1.GetDeviceQualityResponse
-	34, // 49: pulsefleet.v1.FleetService.ListDeviceQuality:output_type -> pulsefleet.v1.ListDeviceQualityResponse
-	38, // [38:50] is the sub-list for method output_type
-	26, // [26:38] is the sub-list for method input_type
-	26, // [26:26] is the sub-list for extension type_name
-	26, // [26:26] is the sub-list for extension extendee
-	0,  // [0:26] is the sub-list for field type_name
+	5,  // 26: pulsefleet.v1.ExportTrendResponse.devices:type_name -> pulsefleet.v1.Device
+	2,  // 27: pulsefleet.v1.ExportTrendResponse.points:type_name -> pulsefleet.v1.TrendPoint
+	6,  // 28: pulsefleet.v1.FleetService.ListDevices:input_type -> pulsefleet.v1.ListDevicesRequest
+	8,  // 29: pulsefleet.v1.FleetService.GetDevice:input_type -> pulsefleet.v1.GetDeviceRequest
+	10, // 30: pulsefleet.v1.FleetService.QueryTrend:input_type -> pulsefleet.v1.QueryTrendRequest
+	12, // 31: pulsefleet.v1.FleetService.WatchEvents:input_type -> pulsefleet.v1.WatchEventsRequest
+	17, // 32: pulsefleet.v1.FleetService.ListEpisodes:input_type -> pulsefleet.v1.ListEpisodesRequest
+	19, // 33: pulsefleet.v1.FleetService.WatchEpisodes:input_type -> pulsefleet.v1.WatchEpisodesRequest
+	21, // 34: pulsefleet.v1.FleetService.AcknowledgeAlarm:input_type -> pulsefleet.v1.AcknowledgeAlarmRequest
+	23, // 35: pulsefleet.v1.FleetService.PauseAlarms:input_type -> pulsefleet.v1.PauseAlarmsRequest
+	25, // 36: pulsefleet.v1.FleetService.GetAlarmProfile:input_type -> pulsefleet.v1.GetAlarmProfileRequest
+	27, // 37: pulsefleet.v1.FleetService.SetAlarmProfile:input_type -> pulsefleet.v1.SetAlarmProfileRequest
+	31, // 38: pulsefleet.v1.FleetService.GetDeviceQuality:input_type -> pulsefleet.v1.GetDeviceQualityRequest
+	33, // 39: pulsefleet.v1.FleetService.ListDeviceQuality:input_type -> pulsefleet.v1.ListDeviceQualityRequest
+	35, // 40: pulsefleet.v1.FleetService.ExportTrend:input_type -> pulsefleet.v1.ExportTrendRequest
+	7,  // 41: pulsefleet.v1.FleetService.ListDevices:output_type -> pulsefleet.v1.ListDevicesResponse
+	9,  // 42: pulsefleet.v1.FleetService.GetDevice:output_type -> pulsefleet.v1.GetDeviceResponse
+	11, // 43: pulsefleet.v1.FleetService.QueryTrend:output_type -> pulsefleet.v1.QueryTrendResponse
+	14, // 44: pulsefleet.v1.FleetService.WatchEvents:output_type -> pulsefleet.v1.WatchEventsResponse
+	18, // 45: pulsefleet.v1.FleetService.ListEpisodes:output_type -> pulsefleet.v1.ListEpisodesResponse
+	20, // 46: pulsefleet.v1.FleetService.WatchEpisodes:output_type -> pulsefleet.v1.WatchEpisodesResponse
+	22, // 47: pulsefleet.v1.FleetService.AcknowledgeAlarm:output_type -> pulsefleet.v1.AcknowledgeAlarmResponse
+	24, // 48: pulsefleet.v1.FleetService.PauseAlarms:output_type -> pulsefleet.v1.PauseAlarmsResponse
+	26, // 49: pulsefleet.v1.FleetService.GetAlarmProfile:output_type -> pulsefleet.v1.GetAlarmProfileResponse
+	28, // 50: pulsefleet.v1.FleetService.SetAlarmProfile:output_type -> pulsefleet.v1.SetAlarmProfileResponse
+	32, // 51: pulsefleet.v1.FleetService.GetDeviceQuality:output_type -> pulsefleet.v1.GetDeviceQualityResponse
+	34, // 52: pulsefleet.v1.FleetService.ListDeviceQuality:output_type -> pulsefleet.v1.ListDeviceQualityResponse
+	36, // 53: pulsefleet.v1.FleetService.ExportTrend:output_type -> pulsefleet.v1.ExportTrendResponse
+	41, // [41:54] is the sub-list for method output_type
+	28, // [28:41] is the sub-list for method input_type
+	28, // [28:28] is the sub-list for extension type_name
+	28, // [28:28] is the sub-list for extension extendee
+	0,  // [0:28] is the sub-list for field type_name
 }
 
 func init() { file_pulsefleet_v1_fleet_proto_init() }
@@ -2817,7 +2975,7 @@ func file_pulsefleet_v1_fleet_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_pulsefleet_v1_fleet_proto_rawDesc), len(file_pulsefleet_v1_fleet_proto_rawDesc)),
 			NumEnums:      2,
-			NumMessages:   34,
+			NumMessages:   36,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

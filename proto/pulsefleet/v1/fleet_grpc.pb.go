@@ -31,6 +31,7 @@ const (
 	FleetService_SetAlarmProfile_FullMethodName   = "/pulsefleet.v1.FleetService/SetAlarmProfile"
 	FleetService_GetDeviceQuality_FullMethodName  = "/pulsefleet.v1.FleetService/GetDeviceQuality"
 	FleetService_ListDeviceQuality_FullMethodName = "/pulsefleet.v1.FleetService/ListDeviceQuality"
+	FleetService_ExportTrend_FullMethodName       = "/pulsefleet.v1.FleetService/ExportTrend"
 )
 
 // FleetServiceClient is the client API for FleetService service.
@@ -70,6 +71,12 @@ type FleetServiceClient interface {
 	GetDeviceQuality(ctx context.Context, in *GetDeviceQualityRequest, opts ...grpc.CallOption) (*GetDeviceQualityResponse, error)
 	// ListDeviceQuality returns the quality figures of every device.
 	ListDeviceQuality(ctx context.Context, in *ListDeviceQualityRequest, opts ...grpc.CallOption) (*ListDeviceQualityResponse, error)
+	// ExportTrend streams stored trend points for an export while the gateway runs:
+	// the first message lists the devices (records and which have trend points),
+	// then points of the requested devices, per device oldest first, in messages
+	// of at most 1,000 points. The store is read in bounded slices (a short read
+	// transaction each), so a long export does not hold one transaction open.
+	ExportTrend(ctx context.Context, in *ExportTrendRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[ExportTrendResponse], error)
 }
 
 type fleetServiceClient struct {
@@ -218,6 +225,25 @@ func (c *fleetServiceClient) ListDeviceQuality(ctx context.Context, in *ListDevi
 	return out, nil
 }
 
+func (c *fleetServiceClient) ExportTrend(ctx context.Context, in *ExportTrendRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[ExportTrendResponse], error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	stream, err := c.cc.NewStream(ctx, &FleetService_ServiceDesc.Streams[2], FleetService_ExportTrend_FullMethodName, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	x := &grpc.GenericClientStream[ExportTrendRequest, ExportTrendResponse]{ClientStream: stream}
+	if err := x.ClientStream.SendMsg(in); err != nil {
+		return nil, err
+	}
+	if err := x.ClientStream.CloseSend(); err != nil {
+		return nil, err
+	}
+	return x, nil
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type FleetService_ExportTrendClient = grpc.ServerStreamingClient[ExportTrendResponse]
+
 // FleetServiceServer is the server API for FleetService service.
 // All implementations must embed UnimplementedFleetServiceServer
 // for forward compatibility.
@@ -255,6 +281,12 @@ type FleetServiceServer interface {
 	GetDeviceQuality(context.Context, *GetDeviceQualityRequest) (*GetDeviceQualityResponse, error)
 	// ListDeviceQuality returns the quality figures of every device.
 	ListDeviceQuality(context.Context, *ListDeviceQualityRequest) (*ListDeviceQualityResponse, error)
+	// ExportTrend streams stored trend points for an export while the gateway runs:
+	// the first message lists the devices (records and which have trend points),
+	// then points of the requested devices, per device oldest first, in messages
+	// of at most 1,000 points. The store is read in bounded slices (a short read
+	// transaction each), so a long export does not hold one transaction open.
+	ExportTrend(*ExportTrendRequest, grpc.ServerStreamingServer[ExportTrendResponse]) error
 	mustEmbedUnimplementedFleetServiceServer()
 }
 
@@ -300,6 +332,9 @@ func (UnimplementedFleetServiceServer) GetDeviceQuality(context.Context, *GetDev
 }
 func (UnimplementedFleetServiceServer) ListDeviceQuality(context.Context, *ListDeviceQualityRequest) (*ListDeviceQualityResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method ListDeviceQuality not implemented")
+}
+func (UnimplementedFleetServiceServer) ExportTrend(*ExportTrendRequest, grpc.ServerStreamingServer[ExportTrendResponse]) error {
+	return status.Error(codes.Unimplemented, "method ExportTrend not implemented")
 }
 func (UnimplementedFleetServiceServer) mustEmbedUnimplementedFleetServiceServer() {}
 func (UnimplementedFleetServiceServer) testEmbeddedByValue()                      {}
@@ -524,6 +559,17 @@ func _FleetService_ListDeviceQuality_Handler(srv interface{}, ctx context.Contex
 	return interceptor(ctx, in, info, handler)
 }
 
+func _FleetService_ExportTrend_Handler(srv interface{}, stream grpc.ServerStream) error {
+	m := new(ExportTrendRequest)
+	if err := stream.RecvMsg(m); err != nil {
+		return err
+	}
+	return srv.(FleetServiceServer).ExportTrend(m, &grpc.GenericServerStream[ExportTrendRequest, ExportTrendResponse]{ServerStream: stream})
+}
+
+// This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
+type FleetService_ExportTrendServer = grpc.ServerStreamingServer[ExportTrendResponse]
+
 // FleetService_ServiceDesc is the grpc.ServiceDesc for FleetService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -581,6 +627,11 @@ var FleetService_ServiceDesc = grpc.ServiceDesc{
 		{
 			StreamName:    "WatchEpisodes",
 			Handler:       _FleetService_WatchEpisodes_Handler,
+			ServerStreams: true,
+		},
+		{
+			StreamName:    "ExportTrend",
+			Handler:       _FleetService_ExportTrend_Handler,
 			ServerStreams: true,
 		},
 	},
