@@ -47,3 +47,25 @@ func (g *Gateway) webCSRFToken(r *http.Request) string { return g.web.CSRFToken(
 func (g *Gateway) sessionFrom(r *http.Request) (struct{}, error) {
 	return struct{}{}, g.web.CheckSession(r)
 }
+
+// forgetDevice (a test helper) drops a device without a stream from memory and deletes its
+// labelled series, so fleet churn does not leak series. Its stored history
+// stays. It reports whether the device was forgotten (false when unknown or
+// connected).
+func (g *Gateway) forgetDevice(id string) bool {
+	g.devices.mu.Lock()
+	d, ok := g.devices.m[id]
+	if ok {
+		d.mu.Lock()
+		ok = d.stream == nil
+		d.mu.Unlock()
+		if ok {
+			delete(g.devices.m, id)
+		}
+	}
+	g.devices.mu.Unlock()
+	if ok {
+		g.m.deleteDevice(id)
+	}
+	return ok
+}

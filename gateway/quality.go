@@ -364,25 +364,3 @@ func (g *Gateway) refreshDeviceSeries() {
 		g.m.deviceSeries(d.id, connected, valid, drift, battery)
 	}
 }
-
-// forgetDevice drops a device without a stream from memory and deletes its
-// labelled series, so fleet churn does not leak series. Its stored history
-// stays. It reports whether the device was forgotten (false when unknown or
-// connected).
-func (g *Gateway) forgetDevice(id string) bool {
-	g.devices.mu.Lock()
-	d, ok := g.devices.m[id]
-	if ok {
-		d.mu.Lock()
-		ok = d.stream == nil
-		d.mu.Unlock()
-		if ok {
-			delete(g.devices.m, id)
-		}
-	}
-	g.devices.mu.Unlock()
-	if ok {
-		g.m.deleteDevice(id)
-	}
-	return ok
-}

@@ -413,7 +413,7 @@ func (x *TrendBucket) GetSqi() *Stat {
 	return nil
 }
 
-// DeviceLatest is a device's live state.
+// Device is a device's live state: its description, connection and latest values.
 type Device struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
 	// Device identifier.
