@@ -84,6 +84,8 @@ type Assembler struct {
 	firstAt      time.Time // arrival of the current chunk's first sample
 	endMark      Mark
 	gaps         int
+	lastStart    float64 // device time of the last message's start (rounded ms)
+	started      bool
 }
 
 // NewAssembler returns an assembler; resume (from a spool) continues the
@@ -96,6 +98,7 @@ func NewAssembler(cfg AssemblerConfig, resume *Mark) *Assembler {
 	a.m.RateHz = cfg.RateHz
 	if resume != nil && resume.Started {
 		a.m = *resume
+		a.lastStart, a.started = math.Round(resume.LastMS), true
 		if cfg.RateHz != 0 {
 			a.m.RateHz = cfg.RateHz
 		}
@@ -205,6 +208,28 @@ func (a *Assembler) add(s Sample, off int64, at time.Time, out []Chunk) []Chunk 
 	if gap {
 		a.gaps++
 		out = a.flush(out)
+	}
+	if a.cfg.Format == Summary || len(a.red) == 0 {
+		// A message starts here. Its device time must be after the last
+		// message's (the gateway keeps the first values at a device time)
+		// and, for a live source, not after the arrival of its first
+		// sample: a clock running fast (a device faster than its declared
+		// rate, a board's crystal) is pulled back to the arrival time, so
+		// device time never runs ahead of the gateway's clock. The pull
+		// stays below a second between messages while the clocks agree
+		// roughly, and the gateway's estimator goes on across it.
+		start := math.Round(dev)
+		if a.cfg.Live && !m.Absolute && start > atMS {
+			start = math.Floor(atMS)
+		}
+		if a.started && start <= a.lastStart {
+			start = a.lastStart + 1
+		}
+		if start != dev && !m.Absolute {
+			m.AnchorMS += start - dev
+			dev = start
+		}
+		a.lastStart, a.started = start, true
 	}
 	m.LastMS = dev
 	m.Offset = off

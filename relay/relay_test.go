@@ -174,3 +174,47 @@ func TestAssemblerLiveStallIsAGap(t *testing.T) {
 		t.Errorf("clock after the stall at %v, want the arrival", m.LastMS)
 	}
 }
+
+// A live source whose lines come faster than the declared rate (or whose
+// board clock runs fast) is pulled back to the arrival time: no message is
+// stamped after its first sample arrived, and message times still increase.
+func TestAssemblerLiveNeverAheadOfArrival(t *testing.T) {
+	a := NewAssembler(AssemblerConfig{Format: Raw, RateHz: 100, Live: true, MaxChunk: 25}, nil)
+	t0 := time.UnixMilli(1_700_000_000_000)
+	var chunks []Chunk
+	var arrivals []time.Time
+	for i := 0; i < 400; i++ {
+		at := t0.Add(time.Duration(i) * 5 * time.Millisecond) // 200 lines/s against a declared 100 Hz
+		if i%25 == 0 {
+			arrivals = append(arrivals, at)
+		}
+		chunks = append(chunks, a.Add(Sample{TimeMS: math.NaN()}, 0, at)...)
+	}
+	prev := int64(0)
+	for i, c := range chunks {
+		st := raw(c).DeviceTimeUnixMs
+		if st > arrivals[i].UnixMilli() || st <= prev {
+			t.Errorf("chunk %d at %d: first sample arrived at %d, previous chunk at %d", i, st, arrivals[i].UnixMilli(), prev)
+		}
+		prev = st
+	}
+}
+
+// Lines that all arrive at once (a burst after a stall) still give
+// messages with strictly increasing device times.
+func TestAssemblerBurstKeepsTimesIncreasing(t *testing.T) {
+	a := NewAssembler(AssemblerConfig{Format: Raw, RateHz: 100, Live: true}, nil)
+	at := time.Unix(1_700_000_000, 123_456_789)
+	var chunks []Chunk
+	for i := 0; i < 1000; i++ {
+		chunks = append(chunks, a.Add(Sample{TimeMS: math.NaN()}, 0, at)...)
+	}
+	prev := int64(0)
+	for i, c := range chunks {
+		st := raw(c).DeviceTimeUnixMs
+		if st <= prev || st > at.UnixMilli()+int64(i)+1 {
+			t.Errorf("chunk %d at %d after %d (arrival %d)", i, st, prev, at.UnixMilli())
+		}
+		prev = st
+	}
+}

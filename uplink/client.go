@@ -10,6 +10,8 @@ import (
 	"time"
 
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
@@ -309,6 +311,15 @@ func (c *Client) Run(ctx context.Context) {
 		}
 		var re *RedirectError
 		var wait time.Duration
+		if refused(err) {
+			c.mu.Lock()
+			c.failed = fmt.Errorf("gateway %s refused device %s: %w", addr, c.opts.Intro.GetDeviceId(), err)
+			c.st.LastError = err.Error()
+			c.notify()
+			c.mu.Unlock()
+			c.opts.Logf("%v; giving up (retrying cannot help)", c.failed)
+			return
+		}
 		switch {
 		case errors.As(err, &re):
 			redirects++
@@ -343,6 +354,28 @@ func (c *Client) Run(ctx context.Context) {
 		case <-timer.C:
 		}
 	}
+}
+
+// refused reports an answer that retrying cannot change: an introduction
+// the gateway rejects, a missing or wrong credential.
+func refused(err error) bool {
+	var rj *RejectedError
+	if errors.As(err, &rj) {
+		return true
+	}
+	switch status.Code(err) {
+	case codes.Unauthenticated, codes.PermissionDenied:
+		return true
+	}
+	return false
+}
+
+// Err returns why the client gave up (a refused introduction or
+// credential, a spool that cannot be written), or nil.
+func (c *Client) Err() error {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return c.failed
 }
 
 func (c *Client) noteErr(err error) {
@@ -617,9 +650,14 @@ func (c *Client) onReject(r *pb.Rejection) {
 	it := c.find(r.GetSequence())
 	switch r.GetReason() {
 	case pb.RejectReason_REJECT_REASON_STALE_SEQUENCE:
-		// Already held by the gateway; its acknowledgement covers it.
-		c.st.Stale++
-		return
+		if r.GetField() == "sequence" {
+			// Already held by the gateway; its acknowledgement covers it.
+			c.st.Stale++
+			return
+		}
+		// Stale by another field (a device time not after the last one
+		// the gateway accepted): refused, not held. Final, like any
+		// other rejection.
 	case pb.RejectReason_REJECT_REASON_RATE_LIMITED:
 		// Pause, then resend from this message.
 		c.st.RateLimited++
@@ -660,6 +698,8 @@ func reasonName(r pb.RejectReason) string {
 		return "too_large"
 	case pb.RejectReason_REJECT_REASON_WRONG_MODE:
 		return "wrong_mode"
+	case pb.RejectReason_REJECT_REASON_STALE_SEQUENCE:
+		return "stale"
 	}
 	return "other"
 }

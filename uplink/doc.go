@@ -24,6 +24,12 @@
 // id the gateway already knows (Welcome resume point above 0 before anything
 // was sent) renumbers what it holds to follow the gateway's numbering.
 //
+// Giving up: a refused introduction, a missing or wrong credential
+// (Unauthenticated, PermissionDenied) and a spool that cannot be written
+// end the client at once (Err, and Add and Wait return the reason);
+// everything else (an unreachable gateway, a stream cut, a shutting-down
+// gateway) is retried.
+//
 // Ownership: [Client.Run] owns the connection and the goroutines of each
 // stream (one receives, one sends) and waits for them before it returns.
 package uplink

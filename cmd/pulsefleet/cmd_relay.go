@@ -330,8 +330,10 @@ func (o *relayOptions) run(ctx context.Context, s stdio) error {
 
 func (r *relayRun) run(ctx context.Context, format relay.Format, resume *relay.Mark) error {
 	o := r.o
-	ac := relay.AssemblerConfig{Format: format, RateHz: o.rate, Live: r.live || o.realtime}
-	if !ac.Live && resume == nil {
+	// A --realtime recording is stamped by its own clock from now on (and
+	// paced to it), not by when lines were read.
+	ac := relay.AssemblerConfig{Format: format, RateHz: o.rate, Live: r.live, AnchorMS: float64(time.Now().UnixMilli())}
+	if !ac.Live && !o.realtime && resume == nil {
 		anchor, err := r.anchor(format)
 		if err != nil {
 			return err
@@ -381,6 +383,10 @@ func (r *relayRun) run(ctx context.Context, format relay.Format, resume *relay.M
 			}
 			failure = r.batch(ctx, b)
 		case now := <-tick.C:
+			if err := r.client.Err(); err != nil {
+				failure = err
+				break
+			}
 			if r.asm.Due(now, chunkLatency) && (r.live || o.realtime) {
 				failure = r.add(ctx, r.asm.Flush(false))
 			}
@@ -526,19 +532,30 @@ func (r *relayRun) add(ctx context.Context, chunks []relay.Chunk) error {
 	return nil
 }
 
-// anchor places a recording so that its last sample is now: it reads the
-// file once to measure its span. Standard input that is not a file starts
-// now.
+// anchor places a recording so that its last sample is now (the gateway
+// refuses device times ahead of its clock): it reads the file once to
+// measure its span. Standard input that cannot be rewound starts now.
 func (r *relayRun) anchor(format relay.Format) (float64, error) {
 	now := float64(time.Now().UnixMilli())
-	if r.input == "" {
+	var in io.Reader
+	if r.input != "" {
+		fh, err := os.Open(r.input)
+		if err != nil {
+			return 0, fmt.Errorf("--in: %w", err)
+		}
+		defer fh.Close()
+		in = fh
+	} else if rs, ok := r.s.in.(io.ReadSeeker); ok && !r.o.realtime {
+		// Standard input redirected from a file: measure it, then rewind.
+		start, err := rs.Seek(0, io.SeekCurrent)
+		if err != nil {
+			return now, nil
+		}
+		defer rs.Seek(start, io.SeekStart)
+		in = rs
+	} else {
 		return now, nil
 	}
-	fh, err := os.Open(r.input)
-	if err != nil {
-		return 0, fmt.Errorf("--in: %w", err)
-	}
-	defer fh.Close()
 	p, err := relay.NewParser(format, r.columns(), r.o.adcBits)
 	if err != nil {
 		return 0, usageError{err.Error()}
@@ -550,7 +567,7 @@ func (r *relayRun) anchor(format relay.Format) (float64, error) {
 	var n int
 	first, last := math.NaN(), math.NaN()
 	span := 0.0
-	err = relay.EachLine(fh, func(line []byte) {
+	err = relay.EachLine(in, func(line []byte) {
 		s, ok, _, _, _ := p.Parse(line)
 		if !ok {
 			return

@@ -4,13 +4,14 @@ import (
 	"bytes"
 	"context"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"io"
 	"math"
 	"net"
 	"strings"
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/caution"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/shard"
 	"github.com/pulsefleet/pulsefleet/store"
@@ -25,10 +26,11 @@ func TestRelayOverTCPBothWays(t *testing.T) {
 	}
 	addr, dir, stop := startTestGateway(t)
 	first, second := ppgLines(3, 100, 16, 8, false), ppgLines(3, 100, 16, 9, false)
-	send := func(c net.Conn, lines []string) {
-		for i := 0; i < len(lines); i += 50 {
-			fmt.Fprint(c, strings.Join(lines[i:min(i+50, len(lines))], "\n")+"\n")
-			time.Sleep(50 * time.Millisecond)
+	send := func(c net.Conn, lines []string) { // at 100 Hz, 10 lines at a time
+		start := time.Now()
+		for i := 0; i < len(lines); i += 10 {
+			fmt.Fprint(c, strings.Join(lines[i:min(i+10, len(lines))], "\n")+"\n")
+			time.Sleep(time.Until(start.Add(time.Duration(i+10) * 10 * time.Millisecond)))
 		}
 		c.Close()
 	}
@@ -89,7 +91,7 @@ func TestRelayOverTCPBothWays(t *testing.T) {
 	ctx2, cancel2 := context.WithCancel(context.Background())
 	defer cancel2()
 	done := relayInBackground(t, ctx2, "--gateway", addr, "--device", "relay-tcp", "--model", "proto-t", "--tcp", ln.Addr().String(), "--rate", "100")
-	time.Sleep(6 * time.Second) // two parts of 3 s, a reconnect after 1 s
+	time.Sleep(9 * time.Second) // two parts of 3 s, a reconnect after 1 s
 	cancel2()
 	r = <-done
 	if r.code != 0 || r.rep.SamplesAcked != want || !strings.Contains(r.stderr, "open again") {
@@ -183,5 +185,28 @@ func TestRelayFollowsRedirect(t *testing.T) {
 		if tot[id].Samples != want {
 			t.Errorf("gateway %s: %d samples, want %d", sg.addrs[i], tot[id].Samples, want)
 		}
+	}
+}
+
+// A gateway that requires tokens refuses the relay's wrong one: the relay
+// gives up at once (retrying cannot help), says why and exits 1 with its
+// JSON line, instead of retrying for --drain.
+func TestRelayGivesUpOnARefusedCredential(t *testing.T) {
+	c := defaultServeConfig()
+	c.Data, c.GRPCListen, c.HTTPListen, c.LogLevel, c.RequireToken = t.TempDir(), "127.0.0.1:0", "127.0.0.1:0", "error", true
+	rg, stop, err := startGateway(context.Background(), c, io.Discard)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer stop()
+	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
+	defer cancel()
+	code, rep, stderr := relayCmd(t, ctx, strings.Join(ppgLines(2, 100, 16, 1, false), "\n"), "--gateway", rg.GRPCAddr,
+		"--device", "relay-denied", "--model", "proto-t", "--in", "-", "--rate", "100", "--token", "not-a-token")
+	if code != 1 || !strings.Contains(stderr, "refused device relay-denied") || rep.SamplesAcked != 0 || rep.Unacked != 200 {
+		t.Errorf("exit %d, %+v; want exit 1 naming the refusal with 200 samples unacknowledged; stderr:\n%s", code, rep, stderr)
+	}
+	if ctx.Err() != nil {
+		t.Error("the relay kept retrying a refused credential")
 	}
 }
