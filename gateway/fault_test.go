@@ -412,3 +412,40 @@ func TestOversizedMessagesKeepMemoryBounded(t *testing.T) {
 		}
 	}
 }
+
+// Finding: the per-stream limit counted messages only, so one device could
+// send 190 times real time. Device time is limited too: with 1 device
+// second per second and a 10 s burst, a stopped clock takes 10 summaries
+// (1 s each) and refuses the rest, naming the limit; once the clock moves
+// 10 s the device resends from the refused one and everything is kept.
+func TestDeviceTimeRateLimit(t *testing.T) {
+	var nowMS atomic.Int64
+	nowMS.Store(time.Date(2026, 11, 30, 22, 0, 0, 0, time.UTC).UnixMilli())
+	h := newHarness(t, func(o *Options) { o.Now = func() time.Time { return time.UnixMilli(nowMS.Load()) } })
+	if err := h.g.SetSecurity(SecurityOptions{DeviceRate: 1e6, DeviceBurst: 1e6, DeviceTimeRate: 1, DeviceTimeBurst: 10 * time.Second}); err != nil {
+		t.Fatal(err)
+	}
+	base := nowMS.Load() - 120_000
+	d, _ := h.connect(t, summaryIntro("fast-clock"))
+	for s := uint64(1); s <= 30; s++ {
+		d.send(summary(s, base+int64(s)*1000, 95))
+	}
+	rejs := d.waitRejections(20)
+	if r := rejs[0]; r.GetReason() != pb.RejectReason_REJECT_REASON_RATE_LIMITED || r.GetSequence() != 11 || r.GetField() != "device_time" ||
+		!strings.Contains(r.GetDetail(), "1 s of device time per second") {
+		t.Errorf("first refusal: %v, want RATE_LIMITED device_time for sequence 11", r)
+	}
+	d.waitAck(10)
+	nowMS.Add(10_000)
+	for s := uint64(11); s <= 20; s++ {
+		d.send(summary(s, base+int64(s)*1000, 95))
+	}
+	d.waitAck(20)
+	tot, err := h.db.LedgerTotals()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if lt := tot["fast-clock"]; lt.Chunks != 20 || !lt.Distinct {
+		t.Errorf("ledger %+v, want the 20 accepted messages", lt)
+	}
+}

@@ -191,7 +191,7 @@ func newFuzzGateway(f *testing.F) *fuzzGateway {
 	if err != nil {
 		f.Fatal(err)
 	}
-	if err := g.SetSecurity(SecurityOptions{DeviceRate: 1e6, DeviceBurst: 1e6}); err != nil {
+	if err := g.SetSecurity(SecurityOptions{DeviceRate: 1e6, DeviceBurst: 1e6, DeviceTimeRate: 1e6, DeviceTimeBurst: 24 * time.Hour}); err != nil {
 		f.Fatal(err)
 	}
 	fg := &fuzzGateway{g: g, db: db}

@@ -76,6 +76,7 @@ type stream struct {
 	calRef       string
 	cal          estimator.Calibration
 	bucket       tokenBucket // message-rate limit (ratelimit.go)
+	span         tokenBucket // device-time rate limit, in device seconds (ratelimit.go)
 
 	// raw pipeline (owned by the handler goroutine)
 	tl     *estimator.Timeline // nil until the first raw chunk

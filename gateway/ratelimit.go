@@ -28,17 +28,40 @@ func (b *tokenBucket) init(perSecond float64, burst int, nowMS int64) {
 	b.rate, b.burst, b.tokens, b.lastMS = perSecond/1000, float64(burst), float64(burst), nowMS
 }
 
-// allow takes one token if there is one.
-func (b *tokenBucket) allow(nowMS int64) bool {
+// refill adds the tokens due since the last call.
+func (b *tokenBucket) refill(nowMS int64) {
 	if dt := nowMS - b.lastMS; dt > 0 {
 		b.tokens = min(b.burst, b.tokens+float64(dt)*b.rate)
 		b.lastMS = nowMS
 	}
-	if b.tokens >= 1 {
-		b.tokens--
+}
+
+// allow takes one token if there is one.
+func (b *tokenBucket) allow(nowMS int64) bool { return b.allowN(nowMS, 1) }
+
+// allowN takes n tokens if there are that many.
+func (b *tokenBucket) allowN(nowMS int64, n float64) bool {
+	b.refill(nowMS)
+	if b.tokens >= n {
+		b.tokens -= n
 		return true
 	}
 	return false
+}
+
+// deviceSpanS is the device time a message covers, in seconds: 1 for a
+// summary, samples over rate for a raw chunk (0 when its rate is invalid:
+// validation rejects it), 0 for anything else.
+func deviceSpanS(m *pb.ConnectRequest) float64 {
+	switch k := m.Kind.(type) {
+	case *pb.ConnectRequest_Summary:
+		return 1
+	case *pb.ConnectRequest_RawChunk:
+		if r := k.RawChunk.GetSampleRateHz(); r >= minRateHz && r <= maxRateHz {
+			return float64(len(k.RawChunk.GetRed())) / r
+		}
+	}
+	return 0
 }
 
 // rateLimited applies the stream's message-rate limit to m: over it, m is
@@ -52,6 +75,7 @@ func (s *stream) rateLimited(m *pb.ConnectRequest, nowMS int64) bool {
 	if s.bucket.burst == 0 {
 		sec := s.g.security()
 		s.bucket.init(sec.DeviceRate, sec.DeviceBurst, nowMS)
+		s.span.rate, s.span.burst, s.span.tokens, s.span.lastMS = sec.DeviceTimeRate/1000, sec.DeviceTimeBurst.Seconds(), sec.DeviceTimeBurst.Seconds(), nowMS
 	}
 	seq := seqOf(m)
 	if s.bucket.holdFrom != 0 && nowMS-s.bucket.holdMS > rateHoldMS {
@@ -63,7 +87,13 @@ func (s *stream) rateLimited(m *pb.ConnectRequest, nowMS int64) bool {
 			"rate limited: resend from sequence %d first (it was refused over the limit)", h))
 		return true
 	}
-	if s.bucket.allow(nowMS) {
+	span := deviceSpanS(m)
+	s.bucket.refill(nowMS)
+	s.span.refill(nowMS)
+	msgOK, spanOK := s.bucket.tokens >= 1, s.span.tokens >= span
+	if msgOK && spanOK {
+		s.bucket.tokens--
+		s.span.tokens -= span
 		if seq != 0 && seq <= s.bucket.holdFrom {
 			s.bucket.holdFrom = 0 // the device resent from the refused message
 		}
@@ -73,8 +103,14 @@ func (s *stream) rateLimited(m *pb.ConnectRequest, nowMS int64) bool {
 		s.bucket.holdFrom, s.bucket.holdMS = seq, nowMS
 	}
 	s.countReject()
-	s.rejectMsg(reject(seq, pb.RejectReason_REJECT_REASON_RATE_LIMITED, "message",
-		"more than %g messages/s (burst %g) on this stream; slow down and resend from sequence %d", s.bucket.rate*1000, s.bucket.burst, seq))
+	if !msgOK {
+		s.rejectMsg(reject(seq, pb.RejectReason_REJECT_REASON_RATE_LIMITED, "message",
+			"more than %g messages/s (burst %g) on this stream; slow down and resend from sequence %d", s.bucket.rate*1000, s.bucket.burst, seq))
+	} else {
+		s.rejectMsg(reject(seq, pb.RejectReason_REJECT_REASON_RATE_LIMITED, "device_time",
+			"more than %g s of device time per second (burst %g s) on this stream; slow down and resend from sequence %d",
+			s.span.rate*1000, s.span.burst, seq))
+	}
 	return true
 }
 

@@ -23,6 +23,17 @@ type SecurityOptions struct {
 	// DeviceBurst is how many messages a stream may send at once above the
 	// rate (a device catching up after a reconnect); 0 means 400.
 	DeviceBurst int
+	// DeviceTimeRate bounds the device time one stream may send per second
+	// of gateway time, in device seconds per second: a summary covers 1 s,
+	// a raw chunk its samples over its sample rate. A device sending faster
+	// than that (a resent backlog, or a device that lies about its clock) is
+	// rejected with REJECT_REASON_RATE_LIMITED like one over DeviceRate. 0
+	// means 30 (a backlog drains at 30 times real time; the simulator's
+	// --speed 20 fits).
+	DeviceTimeRate float64
+	// DeviceTimeBurst is how much device time a stream may send at once
+	// above DeviceTimeRate (a backlog after a reconnect); 0 means 600 s.
+	DeviceTimeBurst time.Duration
 	// AuthAuditPerMinute bounds audit entries for failed authentication or
 	// authorization per remote host per minute; 0 means 10.
 	AuthAuditPerMinute int
@@ -41,6 +52,12 @@ func (o *SecurityOptions) setDefaults() {
 	if o.DeviceBurst == 0 {
 		o.DeviceBurst = 400
 	}
+	if o.DeviceTimeRate == 0 {
+		o.DeviceTimeRate = 30
+	}
+	if o.DeviceTimeBurst == 0 {
+		o.DeviceTimeBurst = 600 * time.Second
+	}
 	if o.AuthAuditPerMinute == 0 {
 		o.AuthAuditPerMinute = 10
 	}
@@ -55,6 +72,10 @@ func (o SecurityOptions) validate() error {
 		return fmt.Errorf("gateway: SecurityOptions.DeviceRate: %v, want 0..1e6 messages/s (0 = 200)", o.DeviceRate)
 	case o.DeviceBurst < 0 || o.DeviceBurst > 1e6:
 		return fmt.Errorf("gateway: SecurityOptions.DeviceBurst: %d, want 0..1e6 (0 = 400)", o.DeviceBurst)
+	case o.DeviceTimeRate < 0 || o.DeviceTimeRate > 1e6:
+		return fmt.Errorf("gateway: SecurityOptions.DeviceTimeRate: %v, want 0..1e6 device seconds per second (0 = 30)", o.DeviceTimeRate)
+	case o.DeviceTimeBurst < 0 || o.DeviceTimeBurst > 1e6*time.Second:
+		return fmt.Errorf("gateway: SecurityOptions.DeviceTimeBurst: %v, want 0..1e6s (0 = 600s)", o.DeviceTimeBurst)
 	case o.AuthAuditPerMinute < 0:
 		return fmt.Errorf("gateway: SecurityOptions.AuthAuditPerMinute: %d, want >= 0 (0 = 10)", o.AuthAuditPerMinute)
 	case o.SessionTTL < 0:

@@ -93,7 +93,7 @@ func webFleet(t *testing.T, h *harness, clk *shiftClock) map[string]*testDevice 
 	const minutes = 30
 	// The history arrives time-compressed, like a device catching up after
 	// a long outage: lift the per-stream message rate limit.
-	if err := h.g.SetSecurity(SecurityOptions{DeviceRate: 1e6, DeviceBurst: 1e6}); err != nil {
+	if err := h.g.SetSecurity(SecurityOptions{DeviceRate: 1e6, DeviceBurst: 1e6, DeviceTimeRate: 1e6, DeviceTimeBurst: 24 * time.Hour}); err != nil {
 		t.Fatal(err)
 	}
 	end := time.Now().Add(-2 * time.Second).Truncate(time.Second)

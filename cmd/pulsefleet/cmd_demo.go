@@ -51,6 +51,13 @@ func runDemo(ctx context.Context, args []string, s stdio) error {
 
 	c := defaultServeConfig()
 	c.GRPCListen, c.HTTPListen, c.LogLevel = *grpcListen, *httpListen, "warn"
+	// A compressed scenario sends device time faster than real time: let
+	// the demo's gateway take it (with room for resends after a reconnect).
+	sp := *speed
+	if sp == 0 {
+		sp = sc.Speed
+	}
+	c.DeviceTimeRate = max(c.DeviceTimeRate, 2*sp)
 	if err := c.validate(); err != nil {
 		return usageError{err.Error()}
 	}

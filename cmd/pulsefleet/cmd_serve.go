@@ -50,6 +50,8 @@ type serveConfig struct {
 	Self         string        `yaml:"self"`
 	VerifyStore  string        `yaml:"verify_store"`
 	NewStore     bool          `yaml:"new_store"`
+	// DeviceTimeRate: device seconds one stream may send per second.
+	DeviceTimeRate float64 `yaml:"device_time_rate"`
 }
 
 const (
@@ -89,6 +91,8 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.StringVar(&c.VerifyStore, "verify-store", c.VerifyStore, "store check before serving: quick (always: meta pages, length, buckets, first and last records) or full (also `pulsefleet verify`: every page and record; takes a while on a big store)")
 	fs.BoolVar(&c.NewStore, "new-store", c.NewStore, "start an empty store on purpose where pulsefleet.id says one was created but pulsefleet.db is missing or empty "+
 		"(without it the gateway refuses: an empty store would hold no credential); refused when a store file with data is there")
+	fs.Float64Var(&c.DeviceTimeRate, "device-time-rate", c.DeviceTimeRate, "device seconds one stream may send per second of real time (a backlog drains this fast; more is refused as rate limited and resent); "+
+		"10 minutes of device time may come at once")
 	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
 }
 
@@ -120,6 +124,9 @@ func (c *serveConfig) validate() error {
 		if f.v < 0 || f.v > 36500 {
 			return fmt.Errorf("%s: %d, want 0..36500 (0 = forever)", f.key, f.v)
 		}
+	}
+	if c.DeviceTimeRate < 1 || c.DeviceTimeRate > 1e6 {
+		return fmt.Errorf("device-time-rate: %v, want 1..1e6 device seconds per second", c.DeviceTimeRate)
 	}
 	if c.BatchDelay < time.Millisecond || c.BatchDelay > 2*time.Second {
 		return fmt.Errorf("batch-delay: %v, want 1ms..2s", c.BatchDelay)
@@ -185,7 +192,7 @@ func isLoopback(addr string) bool {
 
 func defaultServeConfig() serveConfig {
 	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
-		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, VerifyStore: "quick"}
+		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, VerifyStore: "quick", DeviceTimeRate: 30}
 }
 
 // runningGateway describes a started gateway.

@@ -57,8 +57,9 @@ func securityOptions(c serveConfig) (*security, error) {
 func (s *security) gatewayOptions(c serveConfig) gateway.SecurityOptions {
 	loopbackOnly := isLoopback(c.GRPCListen) && isLoopback(c.HTTPListen)
 	return gateway.SecurityOptions{
-		RequireTokens: c.RequireToken || c.TLSCert != "" || !loopbackOnly,
-		SecureCookies: c.TLSCert != "",
+		RequireTokens:  c.RequireToken || c.TLSCert != "" || !loopbackOnly,
+		SecureCookies:  c.TLSCert != "",
+		DeviceTimeRate: c.DeviceTimeRate,
 	}
 }
 
