@@ -34,8 +34,9 @@
 // (the gateway's) maps them to HTTP statuses.
 //
 // Caveats: a gateway restart makes every session cookie invalid (the key is
-// new each start); the page's HTML is filled in with a string replacer and
-// an escaper here, and its JSON is hand-mapped from the API's messages.
+// new each start); the page is webui/index.html run as an html/template
+// (server.go), and its JSON is still hand-mapped from the API's messages
+// (json.go) rather than written through protojson.
 //
 // Not a certified medical alarm: the page says so at its top.
 package web

@@ -4,6 +4,7 @@ import (
 	"context"
 	"crypto/rand"
 	"embed"
+	"html/template"
 	"io/fs"
 	"net/http"
 	"strings"
@@ -90,6 +91,24 @@ func (e *Error) Error() string { return e.Message }
 //go:embed webui
 var webAssets embed.FS
 
+// pageTemplate is webui/index.html as an html/template: its placeholders
+// {{CAUTION}}, {{CSRF}} and {{ACTOR}} are the fields of pageData, filled in
+// and escaped for their context (text or attribute) on every request. The
+// file keeps the bare names so that a page served without filling them in
+// shows that it was (the tests look for "{{CSRF}}").
+var pageTemplate, pageErr = parsePage()
+
+type pageData struct{ CAUTION, CSRF, ACTOR string }
+
+func parsePage() (*template.Template, error) {
+	b, err := webAssets.ReadFile("webui/index.html")
+	if err != nil {
+		return nil, err
+	}
+	src := strings.NewReplacer("{{CAUTION}}", "{{.CAUTION}}", "{{CSRF}}", "{{.CSRF}}", "{{ACTOR}}", "{{.ACTOR}}").Replace(string(b))
+	return template.New("index.html").Parse(src)
+}
+
 // webCaution is shown at the top of every page.
 const webCaution = caution.Text
 
@@ -100,15 +119,13 @@ const webCaution = caution.Text
 func (s *Server) Routes(mux *http.ServeMux) {
 	ui, _ := fs.Sub(webAssets, "webui")
 	page := http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
-		b, err := fs.ReadFile(ui, "index.html")
-		if err != nil {
-			http.Error(w, "page missing from this build", http.StatusInternalServerError)
+		if pageErr != nil {
+			http.Error(w, "page missing from this build: "+pageErr.Error(), http.StatusInternalServerError)
 			return
 		}
 		w.Header().Set("Content-Type", "text/html; charset=utf-8")
 		pageHeaders(w)
-		html := strings.NewReplacer("{{CAUTION}}", webCaution, "{{CSRF}}", s.CSRFToken(r), "{{ACTOR}}", htmlEscape(auth.ActorFrom(webActor(r)))).Replace(string(b))
-		_, _ = w.Write([]byte(html))
+		_ = pageTemplate.Execute(w, pageData{CAUTION: webCaution, CSRF: s.CSRFToken(r), ACTOR: auth.ActorFrom(webActor(r))})
 	})
 	s.authRoutes(mux)
 	mux.Handle("GET /{$}", s.requireRole(auth.RoleViewer, page))
@@ -142,8 +159,4 @@ func pageHeaders(w http.ResponseWriter) {
 	w.Header().Set("Cache-Control", "no-store")
 	w.Header().Set("Content-Security-Policy", "default-src 'self'; img-src 'self' data:; style-src 'self'; script-src 'self'; connect-src 'self'; frame-ancestors 'none'")
 	w.Header().Set("X-Content-Type-Options", "nosniff")
-}
-
-func htmlEscape(s string) string {
-	return strings.NewReplacer("&", "&amp;", "<", "&lt;", ">", "&gt;", `"`, "&quot;", "'", "&#39;").Replace(s)
 }
