@@ -1,12 +1,14 @@
-// Package gateway is pulsefleet's server: the gRPC services devices and
-// operators use (IngestService, FleetService, AdminService, plus standard
-// health checking and reflection), the per-stream pipeline from raw samples
-// or device summaries to trend points and alarm episodes, the batched store
-// writer that acknowledges only what is durable, the fan-out of live events,
-// and the HTTP listener (/metrics, /healthz, /readyz and the web page).
+// Package gateway is pulsefleet's server, assembled from its parts: the gRPC
+// services devices and operators use (IngestService, FleetService,
+// AdminService, plus standard health checking and reflection), the
+// per-stream pipeline from raw samples or device summaries to trend points
+// and alarm episodes, the batched store writer that acknowledges only what
+// is durable, the fan-out of live events, and the HTTP listener (/metrics,
+// /healthz, /readyz, and the web page of internal/web).
 //
-// Credentials, roles and the gRPC guards are in internal/auth; Options.Security
-// configures them. Apart from those guards, this is the only package that
+// Credentials, roles and the gRPC guards are in internal/auth;
+// Options.Security configures them, the web sessions and the per-stream
+// message rate. Apart from those guards, this is the only package that
 // knows gRPC status codes.
 //
 // Ownership of goroutines:
