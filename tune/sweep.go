@@ -29,6 +29,8 @@ type Options struct {
 	// Progress, when non-nil, is called with units of work done and the
 	// total, a few times a second and once at the end; never concurrently.
 	Progress func(done, total int)
+
+	engineOnly bool // tests: every variant through the engine, no interval shortcut
 }
 
 // Result is the outcome of a sweep: one Row per grid point, in grid order.
@@ -272,23 +274,75 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	stopProgress := startProgress(opt.Progress, &done, total)
 	defer stopProgress()
 
-	// Phase 1: the engine over every (device, block of variants).
+	// Phase 1: every variant's episodes over every (set, device). A
+	// threshold condition's episodes follow from its presence intervals,
+	// which depend only on its Threshold: found once per Threshold and
+	// device, they give every variant sharing it (delays, escalations,
+	// latching) without re-running the engine. Desaturation, and trends
+	// whose times do not strictly increase, go through the engine.
 	res.spans = make([][][]span, len(vars))
 	for v := range res.spans {
 		res.spans[v] = make([][]span, flat)
+	}
+	rules := make([]alarms.ThresholdRule, len(vars))
+	var groups [][]int // variants by Threshold, in order of first appearance
+	var engineVars []int
+	groupOf := map[alarms.Threshold]int{}
+	for v := range vars {
+		r, ok := alarms.NewThresholdRule(vars[v].profile.Conditions[0])
+		if !ok || opt.engineOnly {
+			engineVars = append(engineVars, v)
+			continue
+		}
+		rules[v] = r
+		k, seen := groupOf[r.Threshold]
+		if !seen {
+			k = len(groups)
+			groupOf[r.Threshold] = k
+			groups = append(groups, nil)
+		}
+		groups[k] = append(groups[k], v)
+	}
+	type job struct {
+		f     int
+		vars  []int // run through the engine
+		group []int // derived from the presence intervals of their Threshold
+	}
+	var jobs []job
+	var allVars []int
+	for v := range vars {
+		allVars = append(allVars, v)
+	}
+	for f := range flat {
+		samples := sets[f/nd][f%nd].Samples
+		ev := engineVars
+		if !increasing(samples) {
+			ev = allVars
+		} else {
+			for _, g := range groups {
+				jobs = append(jobs, job{f: f, group: g})
+			}
+		}
+		for lo := 0; lo < len(ev); lo += variantBlock {
+			jobs = append(jobs, job{f: f, vars: ev[lo:min(len(ev), lo+variantBlock)]})
+		}
 	}
 	runners := make([]runner, workers)
 	for w := range runners {
 		runners[w].slots = make([]*slot, len(vars))
 	}
-	blocks := (len(vars) + variantBlock - 1) / variantBlock
-	err = parallel(ctx, workers, flat*blocks, func(w, job int) error {
-		f, blk := job/blocks, job%blocks
-		lo, hi := blk*variantBlock, min(len(vars), (blk+1)*variantBlock)
-		if err := runners[w].run(vars, lo, hi, sets[f/nd][f%nd].Samples, res.spans, f); err != nil {
+	err = parallel(ctx, workers, len(jobs), func(w, j int) error {
+		jb := jobs[j]
+		samples := sets[jb.f/nd][jb.f%nd].Samples
+		if jb.group != nil {
+			runners[w].derive(rules, vars, jb.group, samples, res.spans, jb.f)
+			done.Add(int64(len(jb.group)))
+			return nil
+		}
+		if err := runners[w].run(vars, jb.vars, samples, res.spans, jb.f); err != nil {
 			return err
 		}
-		done.Add(int64(hi - lo))
+		done.Add(int64(len(jb.vars)))
 		return nil
 	})
 	if err != nil {
@@ -340,9 +394,46 @@ func (s *slot) add(ep *alarms.Episode) {
 		ann: ep.AnnouncedS, esc: ep.EscalatedS, end: ep.EndedS})
 }
 
-// runner is one worker's engines, created on first use.
+// runner is one worker's engines, created on first use, and its buffer
+// of presence intervals.
 type runner struct {
 	slots []*slot
+	pres  []alarms.Presence
+}
+
+// derive finds the presence intervals of the Threshold shared by the
+// variants of group over one device's samples (strictly increasing times)
+// and stores each variant's announced episodes in spans[v][d]: the same
+// episodes, in the same order, as run gives (TestIntervalSweepAgrees).
+func (r *runner) derive(rules []alarms.ThresholdRule, vars []variant, group []int, samples []alarms.Sample, spans [][][]span, d int) {
+	r.pres, _ = rules[group[0]].Presences(samples, r.pres[:0])
+	for _, v := range group {
+		rule := &rules[v]
+		cond, prio0 := int32(vars[v].cond), vars[v].profile.Conditions[0].Priority
+		var out []span
+		for _, p := range r.pres {
+			ep, ok := rule.Episode(samples, p)
+			if !ok {
+				continue
+			}
+			out = append(out, span{cond: cond, prio0: prio0, prio: ep.Priority, onset: ep.Onset,
+				ann: ep.Announced, esc: ep.Escalated, end: ep.Ended})
+		}
+		spans[v][d] = out
+	}
+}
+
+// increasing reports whether sample times strictly increase (the engine
+// skips a sample that is not after the previous one).
+func increasing(s []alarms.Sample) bool {
+	prev := math.Inf(-1)
+	for i := range s {
+		if !(s[i].T > prev) {
+			return false
+		}
+		prev = s[i].T
+	}
+	return true
 }
 
 // run evaluates variants lo..hi-1 over one device's samples, chunk by
@@ -350,8 +441,8 @@ type runner struct {
 // episodes as alarms.Engine.Run (ended ones as they end, then those still
 // active after the last sample); TestTuneAgreesWithReplay checks this
 // against alarms.ReplayTrends.
-func (r *runner) run(vars []variant, lo, hi int, samples []alarms.Sample, spans [][][]span, d int) error {
-	for v := lo; v < hi; v++ {
+func (r *runner) run(vars []variant, ids []int, samples []alarms.Sample, spans [][][]span, d int) error {
+	for _, v := range ids {
 		sl := r.slots[v]
 		if sl == nil {
 			e, err := alarms.NewEngine(vars[v].profile, "")
@@ -367,7 +458,7 @@ func (r *runner) run(vars []variant, lo, hi int, samples []alarms.Sample, spans 
 	}
 	for c0 := 0; c0 < len(samples); c0 += chunk {
 		part := samples[c0:min(len(samples), c0+chunk)]
-		for v := lo; v < hi; v++ {
+		for _, v := range ids {
 			sl := r.slots[v]
 			e, emit := sl.e, sl.emit
 			for i := range part {
@@ -375,7 +466,7 @@ func (r *runner) run(vars []variant, lo, hi int, samples []alarms.Sample, spans 
 			}
 		}
 	}
-	for v := lo; v < hi; v++ {
+	for _, v := range ids {
 		sl := r.slots[v]
 		sl.open = sl.e.Episodes(sl.open[:0])
 		for i := range sl.open {
