@@ -82,7 +82,7 @@ func (d *device) admitTime(seq uint64, field string, devMS int64, samples uint32
 		rej = invalid(seq, field, "%d is %v ahead of the gateway clock (%d), want at most %v ahead (%d); set the device clock from Welcome.gateway_time_unix_ms",
 			devMS, time.Duration(ahead)*time.Millisecond, nowMS, clockAheadMax, nowMS+clockAheadMax.Milliseconds())
 	case last != 0 && devMS <= last:
-		rej = reject(seq, pb.RejectReason_REJECT_REASON_STALE_SEQUENCE, field,
+		rej = reject(seq, pb.RejectReason_REJECT_REASON_STALE_DEVICE_TIME, field,
 			"%d is not after %d, the device time of the last accepted message; the first values stored at a device time are kept, never rewritten", devMS, last)
 	}
 	if rej != nil {

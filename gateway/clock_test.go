@@ -192,7 +192,7 @@ func TestDeviceClockStepBackRaisesClockFault(t *testing.T) {
 	}
 	rejs := d.waitRejections(60)
 	for i, r := range rejs {
-		if r.GetSequence() != stepFrom+uint64(i) || r.GetReason() != pb.RejectReason_REJECT_REASON_STALE_SEQUENCE ||
+		if r.GetSequence() != stepFrom+uint64(i) || r.GetReason() != pb.RejectReason_REJECT_REASON_STALE_DEVICE_TIME ||
 			r.GetField() != "summary.device_time_unix_ms" {
 			t.Fatalf("rejection %d: %v, want stale summary.device_time_unix_ms for sequence %d", i, r, stepFrom+uint64(i))
 		}
@@ -274,7 +274,7 @@ func TestStaleDeviceTimesKeepTheFirstValues(t *testing.T) {
 	}
 	rejs := d.waitRejections(30)
 	for i, r := range rejs {
-		if r.GetSequence() != uint64(31+i) || r.GetReason() != pb.RejectReason_REJECT_REASON_STALE_SEQUENCE ||
+		if r.GetSequence() != uint64(31+i) || r.GetReason() != pb.RejectReason_REJECT_REASON_STALE_DEVICE_TIME ||
 			r.GetField() != "summary.device_time_unix_ms" || !strings.Contains(r.GetDetail(), "first") {
 			t.Errorf("rejection %d: %v, want stale summary.device_time_unix_ms for sequence %d", i, r, 31+i)
 		}
@@ -301,7 +301,7 @@ func TestStaleDeviceTimesKeepTheFirstValues(t *testing.T) {
 		t.Fatalf("resume after %d, want 61", w.GetResumeAfterSequence())
 	}
 	d.send(summary(62, t0+5_000, 60)) // a stored device time again, after the restart
-	if r := d.waitRejections(1)[0]; r.GetSequence() != 62 || r.GetReason() != pb.RejectReason_REJECT_REASON_STALE_SEQUENCE {
+	if r := d.waitRejections(1)[0]; r.GetSequence() != 62 || r.GetReason() != pb.RejectReason_REJECT_REASON_STALE_DEVICE_TIME {
 		t.Errorf("after restart: rejection %v, want stale sequence 62", r)
 	}
 	d.send(summary(63, t0+32_000, 96))

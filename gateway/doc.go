@@ -54,8 +54,11 @@
 //     refused the same way.
 //   - Not after the last accepted device time of the device (a clock set
 //     back, or a resend of device times already stored under new sequence
-//     numbers): refused as stale, REJECT_REASON_STALE_SEQUENCE naming
-//     *.device_time_unix_ms and the last accepted time. Stored history keeps
+//     numbers): refused as stale, REJECT_REASON_STALE_DEVICE_TIME naming
+//     *.device_time_unix_ms and the last accepted time. (Not
+//     REJECT_REASON_STALE_SEQUENCE: that one tells the device the gateway
+//     already holds the message, so a device would count refused data as
+//     delivered.) Stored history keeps
 //     the first values at a device time and is never rewritten (store/doc.go,
 //     "Keep the first"). The last accepted device time is part of the
 //     durable cursor, so the rule holds across restarts.

@@ -211,6 +211,8 @@ func reasonLabel(r pb.RejectReason) string {
 		return "rate_limited"
 	case pb.RejectReason_REJECT_REASON_WRONG_MODE:
 		return "wrong_mode"
+	case pb.RejectReason_REJECT_REASON_STALE_DEVICE_TIME:
+		return "stale_device_time"
 	}
 	return "other"
 }

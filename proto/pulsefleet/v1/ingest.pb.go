@@ -82,8 +82,7 @@ const (
 	RejectReason_REJECT_REASON_INVALID_FIELD RejectReason = 1
 	// Data before the introduction, or a second introduction.
 	RejectReason_REJECT_REASON_NOT_INTRODUCED RejectReason = 2
-	// Sequence number not above the last accepted one, or device time not after
-	// the last accepted one: already held (or would rewrite history); do not resend.
+	// Sequence number not above the last accepted one: already held; do not resend.
 	RejectReason_REJECT_REASON_STALE_SEQUENCE RejectReason = 3
 	// Message larger than allowed.
 	RejectReason_REJECT_REASON_TOO_LARGE RejectReason = 4
@@ -91,6 +90,14 @@ const (
 	RejectReason_REJECT_REASON_RATE_LIMITED RejectReason = 5
 	// A data kind that does not match the introduced mode.
 	RejectReason_REJECT_REASON_WRONG_MODE RejectReason = 6
+	// The message's device time is not after the device time of the last
+	// accepted message (a clock set back, or stored times resent with other
+	// values). Nothing of it is stored: the values first stored at a device
+	// time are kept, never rewritten, and the device_clock_fault condition is
+	// raised. Unlike REJECT_REASON_STALE_SEQUENCE the gateway does NOT hold this
+	// message: a device counts it as refused, not delivered. (Added within v1;
+	// a client that does not know it treats it like any other refusal.)
+	RejectReason_REJECT_REASON_STALE_DEVICE_TIME RejectReason = 7
 )
 
 // Enum value maps for RejectReason.
@@ -103,15 +110,17 @@ var (
 		4: "REJECT_REASON_TOO_LARGE",
 		5: "REJECT_REASON_RATE_LIMITED",
 		6: "REJECT_REASON_WRONG_MODE",
+		7: "REJECT_REASON_STALE_DEVICE_TIME",
 	}
 	RejectReason_value = map[string]int32{
-		"REJECT_REASON_UNSPECIFIED":    0,
-		"REJECT_REASON_INVALID_FIELD":  1,
-		"REJECT_REASON_NOT_INTRODUCED": 2,
-		"REJECT_REASON_STALE_SEQUENCE": 3,
-		"REJECT_REASON_TOO_LARGE":      4,
-		"REJECT_REASON_RATE_LIMITED":   5,
-		"REJECT_REASON_WRONG_MODE":     6,
+		"REJECT_REASON_UNSPECIFIED":       0,
+		"REJECT_REASON_INVALID_FIELD":     1,
+		"REJECT_REASON_NOT_INTRODUCED":    2,
+		"REJECT_REASON_STALE_SEQUENCE":    3,
+		"REJECT_REASON_TOO_LARGE":         4,
+		"REJECT_REASON_RATE_LIMITED":      5,
+		"REJECT_REASON_WRONG_MODE":        6,
+		"REJECT_REASON_STALE_DEVICE_TIME": 7,
 	}
 )
 
@@ -1217,7 +1226,7 @@ const file_pulsefleet_v1_ingest_proto_rawDesc = "" +
 	"\x04Mode\x12\x14\n" +
 	"\x10MODE_UNSPECIFIED\x10\x00\x12\f\n" +
 	"\bMODE_RAW\x10\x01\x12\x10\n" +
-	"\fMODE_SUMMARY\x10\x02*\xed\x01\n" +
+	"\fMODE_SUMMARY\x10\x02*\x92\x02\n" +
 	"\fRejectReason\x12\x1d\n" +
 	"\x19REJECT_REASON_UNSPECIFIED\x10\x00\x12\x1f\n" +
 	"\x1bREJECT_REASON_INVALID_FIELD\x10\x01\x12 \n" +
@@ -1225,7 +1234,8 @@ const file_pulsefleet_v1_ingest_proto_rawDesc = "" +
 	"\x1cREJECT_REASON_STALE_SEQUENCE\x10\x03\x12\x1b\n" +
 	"\x17REJECT_REASON_TOO_LARGE\x10\x04\x12\x1e\n" +
 	"\x1aREJECT_REASON_RATE_LIMITED\x10\x05\x12\x1c\n" +
-	"\x18REJECT_REASON_WRONG_MODE\x10\x062]\n" +
+	"\x18REJECT_REASON_WRONG_MODE\x10\x06\x12#\n" +
+	"\x1fREJECT_REASON_STALE_DEVICE_TIME\x10\a2]\n" +
 	"\rIngestService\x12L\n" +
 	"\aConnect\x12\x1d.pulsefleet.v1.ConnectRequest\x1a\x1e.pulsefleet.v1.ConnectResponse(\x010\x01BCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
