@@ -63,6 +63,9 @@ type Options struct {
 	CaptureRaw bool
 	// Retention of history; zero fields keep forever.
 	Retention store.Retention
+	// Backups takes scheduled snapshots of the store (backup_schedule.go);
+	// the zero value takes none.
+	Backups BackupSchedule
 	// GracefulTimeout bounds each stage of a shutdown (flushing the store,
 	// waiting for streams to end) before the gateway stops harder; 0 means
 	// 10 s. PauseAlarms is bounded by the profile's pause_max.

@@ -35,6 +35,7 @@ type Gateway struct {
 
 	opt     Options
 	log     *slog.Logger
+	backups *backupMetrics
 	m       *metrics
 	db      *store.DB
 	w       *writer
@@ -73,6 +74,9 @@ func New(opt Options) (*Gateway, error) {
 		return nil, fmt.Errorf("gateway: metrics: %w", err)
 	}
 	g.m = m
+	if g.backups, err = newBackupMetrics(opt.Registerer, opt.Backups, opt.Store.ID()); err != nil {
+		return nil, fmt.Errorf("gateway: metrics: %w", err)
+	}
 	if len(opt.Peers) > 0 {
 		r, err := shard.NewRing(opt.Peers)
 		if err != nil {
@@ -258,6 +262,8 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	wdCtx, wdStop := context.WithCancel(context.Background())
 	wg.Add(1)
 	go func() { defer wg.Done(); g.watchdog(wdCtx) }()
+	wg.Add(1)
+	go func() { defer wg.Done(); g.runBackups(ctx) }()
 
 	var hs *http.Server
 	if httpLis != nil {

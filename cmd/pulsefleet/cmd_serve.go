@@ -51,7 +51,10 @@ type serveConfig struct {
 	VerifyStore  string        `yaml:"verify_store"`
 	NewStore     bool          `yaml:"new_store"`
 	// DeviceTimeRate: device seconds one stream may send per second.
-	DeviceTimeRate float64 `yaml:"device_time_rate"`
+	DeviceTimeRate float64       `yaml:"device_time_rate"`
+	BackupDir      string        `yaml:"backup_dir"`
+	BackupEvery    time.Duration `yaml:"backup_every"`
+	BackupKeep     int           `yaml:"backup_keep"`
 }
 
 const (
@@ -93,6 +96,9 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 		"(without it the gateway refuses: an empty store would hold no credential); refused when a store file with data is there")
 	fs.Float64Var(&c.DeviceTimeRate, "device-time-rate", c.DeviceTimeRate, "device seconds one stream may send per second of real time (a backlog drains this fast; more is refused as rate limited and resent); "+
 		"10 minutes of device time may come at once")
+	fs.StringVar(&c.BackupDir, "backup-dir", c.BackupDir, "take scheduled snapshots of the store into this directory (pulsefleet-TIME.db with .sha256; see `pulsefleet backup`); empty takes none")
+	fs.DurationVar(&c.BackupEvery, "backup-every", c.BackupEvery, "interval of scheduled snapshots, 1s..720h")
+	fs.IntVar(&c.BackupKeep, "backup-keep", c.BackupKeep, "complete scheduled snapshots kept; older ones are removed")
 	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
 }
 
@@ -167,6 +173,9 @@ func (c *serveConfig) validate() error {
 	} else if c.Self != "" {
 		return fmt.Errorf("self: given without --peers")
 	}
+	if err := c.backups().Validate(); err != nil {
+		return err
+	}
 	if c.VerifyStore != "quick" && c.VerifyStore != "full" {
 		return fmt.Errorf("verify-store: %q, want quick or full", c.VerifyStore)
 	}
@@ -192,7 +201,12 @@ func isLoopback(addr string) bool {
 
 func defaultServeConfig() serveConfig {
 	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
-		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, VerifyStore: "quick", DeviceTimeRate: 30}
+		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, VerifyStore: "quick", DeviceTimeRate: 30,
+		BackupEvery: 24 * time.Hour, BackupKeep: 7}
+}
+
+func (c *serveConfig) backups() gateway.BackupSchedule {
+	return gateway.BackupSchedule{Dir: c.BackupDir, Every: c.BackupEvery, Keep: c.BackupKeep}
 }
 
 // runningGateway describes a started gateway.
@@ -244,7 +258,8 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		return nil, nil, err
 	}
 	opt := gateway.Options{Store: db, Registerer: reg, Logger: log, DefaultProfile: prof, CaptureRaw: c.CaptureRaw,
-		BatchDelay: c.BatchDelay, Peers: c.Peers, Self: c.Self, Retention: store.Retention{TrendDays: c.TrendDays, RawDays: c.RawDays, LedgerDays: c.LedgerDays}}
+		BatchDelay: c.BatchDelay, Peers: c.Peers, Self: c.Self, Retention: store.Retention{TrendDays: c.TrendDays, RawDays: c.RawDays, LedgerDays: c.LedgerDays},
+		Backups: c.backups()}
 	sec, err := securityOptions(c)
 	if err != nil {
 		db.Close()
