@@ -112,6 +112,7 @@ func BenchmarkStreamRatioMethods(b *testing.B) {
 			out := make([]Estimate, 0, 4)
 			b.ReportAllocs()
 			pairs := 0
+			cpu0 := cpuTime()
 			for b.Loop() {
 				for i := 0; i < n; i += chunk {
 					out = st.Push(red[i:i+chunk], ir[i:i+chunk], nil, out[:0])
@@ -119,6 +120,7 @@ func BenchmarkStreamRatioMethods(b *testing.B) {
 				pairs += n
 			}
 			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(pairs), "ns/pair")
+			b.ReportMetric(float64((cpuTime()-cpu0).Nanoseconds())/float64(pairs), "cpu-ns/pair")
 			b.ReportMetric(0, "ns/op")
 		})
 	}

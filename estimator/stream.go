@@ -270,17 +270,26 @@ func (s *Stream) sample(r, i float64) {
 	}
 	s.dcR += s.dcAlpha * (r - s.dcR)
 	s.dcI += s.dcAlpha * (i - s.dcI)
-	fr := s.red.step(r)
-	fi := s.ir.step(i)
+	fr, fi := stepPair(&s.red, &s.ir, r, i)
 
 	c := &s.cur
 	c.n++
 	c.sumR += r
 	c.sumI += i
-	c.loR = math.Min(c.loR, fr)
-	c.hiR = math.Max(c.hiR, fr)
-	c.loI = math.Min(c.loI, fi)
-	c.hiI = math.Max(c.hiI, fi)
+	// Plain comparisons, not math.Min/Max (calls): fr and fi are finite
+	// (Push replaces what is not), so the result is the same.
+	if fr < c.loR {
+		c.loR = fr
+	}
+	if fr > c.hiR {
+		c.hiR = fr
+	}
+	if fi < c.loI {
+		c.loI = fi
+	}
+	if fi > c.hiI {
+		c.hiI = fi
+	}
 
 	s.detect(-fi)
 	s.prevY = -fi
@@ -302,8 +311,12 @@ func (s *Stream) sample(r, i float64) {
 	s.lastFr, s.lastFi = fr, fi
 	if s.ringFr != nil {
 		s.ringFr[s.ringHead], s.ringFi[s.ringHead], s.ringR[s.ringHead], s.ringI[s.ringHead] = fr, fi, r, i
-		s.ringHead = (s.ringHead + 1) % len(s.ringFr)
-		s.ringN = min(s.ringN+1, len(s.ringFr))
+		if s.ringHead++; s.ringHead == len(s.ringFr) { // not %: a division per sample
+			s.ringHead = 0
+		}
+		if s.ringN < len(s.ringFr) {
+			s.ringN++
+		}
 	}
 	s.n++
 }
