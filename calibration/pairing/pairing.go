@@ -22,7 +22,9 @@ type Options struct {
 	// columns of the raw CSV; "" = "red" and "ir". For other sensors any two
 	// channels, e.g. "r" and "b" of a camera.
 	RedCol, IRCol string
-	// ADCBits is the converter resolution; 0 = unknown (float inputs).
+	// ADCBits is the converter resolution; 0 = unknown (float inputs);
+	// estimator.ADCBitsAuto chooses from the samples (estimator.ResolveADCBits),
+	// as the estimate command does by default.
 	ADCBits int
 	// AveragingS is the estimator's averaging window in seconds; 0 = the
 	// estimator's default.
@@ -166,7 +168,8 @@ func ReadReference(r io.Reader, subject string) ([]calibration.ReferenceSecond, 
 // DeviceSeconds runs the estimator over a recording and returns its
 // per-second ratio and signal quality.
 func DeviceSeconds(raw Raw, o Options) ([]calibration.DeviceSecond, error) {
-	s, err := estimator.New(estimator.Config{SampleRateHz: o.RateHz, ADCBits: o.ADCBits, AveragingS: o.AveragingS, Ratio: o.Ratio})
+	bits, _ := estimator.ResolveADCBits(o.ADCBits, raw.Red, raw.IR)
+	s, err := estimator.New(estimator.Config{SampleRateHz: o.RateHz, ADCBits: bits, AveragingS: o.AveragingS, Ratio: o.Ratio})
 	if err != nil {
 		return nil, fmt.Errorf("estimator: %w", err)
 	}

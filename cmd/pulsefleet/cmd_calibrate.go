@@ -205,7 +205,7 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 	fs.Float64Var(&o.RateHz, "rate", 0, "raw sample rate, Hz (required)")
 	fs.StringVar(&o.RedCol, "red-col", "red", "first channel column (red, or the longer camera wavelength)")
 	fs.StringVar(&o.IRCol, "ir-col", "ir", "second channel column (infrared, or a camera's g or b)")
-	fs.IntVar(&o.ADCBits, "adc-bits", 0, "converter resolution in bits; 0 = unknown (float input)")
+	fs.IntVar(&o.ADCBits, "adc-bits", estimator.ADCBitsAuto, adcBitsUsage)
 	fs.Float64Var(&o.AveragingS, "averaging", 0, "estimator averaging window, s (0 = the estimator's default)")
 	fs.IntVar(&o.Align.WindowS, "window", 30, "pairing window, s: one pair per stable window")
 	fs.Float64Var(&o.Align.MaxReferenceSpreadPct, "max-spread", 2, "stable: reference max-min within a window at most this, % SpO2")
@@ -230,6 +230,9 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 		return usagef("--subject: %d names for %d --raw, want %d", len(subs), len(raws), len(raws))
 	case o.RateHz <= 0:
 		return usagef("--rate: required, in Hz")
+	}
+	if err := checkADCBits(o.ADCBits); err != nil {
+		return err
 	}
 	r, err := parseRatio(ratio)
 	if err != nil {

@@ -53,7 +53,7 @@ func runEstimateCmd(ctx context.Context, args []string, s stdio) error {
 	fs.StringVar(&o.calibration, "calibration", calibrationEmpirical, "empirical (110 - 25 R), beer-lambert (model at --red-nm/--ir-nm), or a curve file from 'calibrate'")
 	fs.Float64Var(&o.redNM, "red-nm", 660, "first channel's wavelength, nm (used by beer-lambert; table covers 650..950)")
 	fs.Float64Var(&o.irNM, "ir-nm", 940, "second channel's wavelength, nm (used by beer-lambert)")
-	fs.IntVar(&o.adcBits, "adc-bits", 16, fmt.Sprintf("converter resolution (%d..%d) for the clipping, sensor-off and resolution checks; 0 = unknown (float data such as camera frame means: those checks are skipped)", estimator.MinADCBits, estimator.MaxADCBits))
+	fs.IntVar(&o.adcBits, "adc-bits", estimator.ADCBitsAuto, adcBitsUsage)
 	fs.StringVar(&o.window, "window", "", fmt.Sprintf("averaging window, seconds or a duration such as 8s (%v..%v s; default %v s)", estimator.MinAveragingS, estimator.MaxAveragingS, estimator.DefaultAveragingS))
 	fs.StringVar(&o.ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope of the channels over each beat), derivative (of their first differences) or spectral (at the pulse frequency)")
 	fs.StringVar(&o.in, "in", "-", "input CSV; - for standard input")
@@ -76,8 +76,8 @@ func runEstimate(ctx context.Context, o estimateOptions, s stdio) error {
 			return err
 		}
 	}
-	if o.adcBits != 0 && (o.adcBits < estimator.MinADCBits || o.adcBits > estimator.MaxADCBits) {
-		return usagef("--adc-bits: %d, want 0 (unknown) or %d..%d", o.adcBits, estimator.MinADCBits, estimator.MaxADCBits)
+	if err := checkADCBits(o.adcBits); err != nil {
+		return err
 	}
 	if o.redCol == "" || o.irCol == "" || o.redCol == o.irCol {
 		return usagef("--red-col %q and --ir-col %q: want two different column names", o.redCol, o.irCol)
@@ -114,10 +114,11 @@ func runEstimate(ctx context.Context, o estimateOptions, s stdio) error {
 	}
 	defer commit(false)
 	w := bufio.NewWriterSize(out, 64<<10)
-	e := &estimateRun{opts: o, cal: cal, window: window, name: name, w: w, progress: progressWriter(s.err, size)}
+	e := &estimateRun{opts: o, cal: cal, window: window, name: name, w: w, progress: progressWriter(s.err, size), warn: s.err}
 	if err := e.run(ctx, in); err != nil {
 		return err
 	}
+	e.warnWithheld()
 	if err := w.Flush(); err != nil {
 		return fmt.Errorf("write output: %w", err)
 	}
@@ -194,6 +195,10 @@ type estimateRun struct {
 	name     string // input, for messages
 	w        *bufio.Writer
 	progress func(seconds int64, done bool)
+	warn     io.Writer // notes and warnings (standard error)
+
+	seconds, withheld int64                          // seconds written, and those without SpO2
+	flagSeconds       [len(estimatorFlagNames)]int64 // withheld seconds per flag
 
 	st           *estimator.Stream
 	t0           float64
@@ -316,7 +321,9 @@ func (e *estimateRun) run(ctx context.Context, in io.Reader) error {
 				return err
 			}
 		}
-		if rate != 0 && e.st == nil {
+		// Start once a chunk is buffered, so the resolution check under
+		// --adc-bits auto sees more than the first row.
+		if rate != 0 && e.st == nil && len(e.red) >= chunk {
 			if err := e.start(rate); err != nil {
 				return err
 			}
@@ -353,7 +360,8 @@ func (e *estimateRun) start(rate float64) error {
 		return fmt.Errorf("%s: sample rate inferred from t_s is %v Hz, want %v..%v Hz (set --rate to override)",
 			e.name, rate, estimator.MinSampleRateHz, estimator.MaxSampleRateHz)
 	}
-	st, err := estimator.New(estimator.Config{SampleRateHz: rate, ADCBits: e.opts.adcBits, Calibration: e.cal, AveragingS: e.window, Ratio: estimator.RatioMethod(e.opts.ratio)})
+	bits := e.resolveADCBits()
+	st, err := estimator.New(estimator.Config{SampleRateHz: rate, ADCBits: bits, Calibration: e.cal, AveragingS: e.window, Ratio: estimator.RatioMethod(e.opts.ratio)})
 	if err != nil {
 		return err
 	}
@@ -384,6 +392,7 @@ func (e *estimateRun) flush() error {
 		e.amb = e.amb[:0]
 	}
 	for _, x := range e.est {
+		e.count(x)
 		b := e.line[:0]
 		b = strconv.AppendFloat(b, e.t0+float64(x.Second), 'f', -1, 64)
 		b = appendCell(b, x.SpO2Pct, 1)

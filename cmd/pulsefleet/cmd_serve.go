@@ -112,7 +112,7 @@ func loadServeConfig(path string, into *serveConfig) error {
 	dec := yaml.NewDecoder(bytes.NewReader(data))
 	dec.KnownFields(true)
 	if err := dec.Decode(into); err != nil && !errors.Is(err, io.EOF) {
-		return fmt.Errorf("config %s: %w", path, err)
+		return configError(path, err)
 	}
 	return nil
 }

@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"context"
 	"encoding/json"
+	"errors"
 	"flag"
 	"fmt"
 	"os"
@@ -98,7 +99,24 @@ func runSim(ctx context.Context, args []string, s stdio) error {
 			return err
 		}
 	}
-	return writeJSONLine(s, rep)
+	if err := writeJSONLine(s, rep); err != nil {
+		return err
+	}
+	return nothingAcked(rep, opts.Gateway)
+}
+
+// nothingAcked fails a run in which data was due but the gateway
+// acknowledged none of it: the run did not do its job, whatever it sent.
+func nothingAcked(rep *sim.Report, gateway string) error {
+	if rep.FramesAcked > 0 || rep.Devices == 0 {
+		return nil
+	}
+	last := ""
+	if rep.LastError != "" {
+		last = "; last error: " + errorText(errors.New(rep.LastError))
+	}
+	return fmt.Errorf("nothing acknowledged: the gateway at %s confirmed none of %d frames sent (%d stream errors)%s",
+		gateway, rep.FramesSent, rep.StreamErrors, last)
 }
 
 // writePerDevice writes the per-device CSV of --per-device-out.

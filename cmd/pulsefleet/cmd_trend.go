@@ -9,7 +9,11 @@ import (
 	"math"
 	"sort"
 	"strconv"
+	"strings"
 	"time"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -81,10 +85,40 @@ func runTrend(ctx context.Context, args []string, s stdio) error {
 		points = append(points, resp.GetPoints()...)
 		buckets = append(buckets, resp.GetBuckets()...)
 	}
+	if len(points) == 0 && len(buckets) == 0 {
+		// An empty answer is either a known device without data in the
+		// range or a device no gateway knows: say which, and fail for the
+		// second.
+		if err := anyGatewayKnows(ctx, &cf, addrs, *device); err != nil {
+			return err
+		}
+	}
 	if *step > 0 {
 		return writeBuckets(s.out, *device, mergeBuckets(buckets))
 	}
 	return writeTrendPoints(s.out, *device, mergePoints(points))
+}
+
+// anyGatewayKnows returns nil when at least one gateway knows the device,
+// and an error saying NotFound when none does.
+func anyGatewayKnows(ctx context.Context, cf *clientFlags, addrs []string, device string) error {
+	for _, a := range addrs {
+		conn, err := cf.dial(a)
+		if err != nil {
+			return err
+		}
+		cctx, cancel := context.WithTimeout(cf.ctx(ctx), time.Minute)
+		_, err = pb.NewFleetServiceClient(conn).GetDevice(cctx, &pb.GetDeviceRequest{DeviceId: device})
+		cancel()
+		conn.Close()
+		if err == nil {
+			return nil
+		}
+		if status.Code(err) != codes.NotFound {
+			return fmt.Errorf("gateway %s: %w", a, err)
+		}
+	}
+	return fmt.Errorf("NotFound: device %q is not known to %s (no trend and no device record)", device, strings.Join(addrs, ", "))
 }
 
 func parseTrendTime(flag, v string, now time.Time) (time.Time, error) {

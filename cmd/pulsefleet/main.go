@@ -8,6 +8,7 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"flag"
@@ -60,6 +61,7 @@ func newFlagSet(name, synopsis string, w io.Writer) *flag.FlagSet {
 	fs := flag.NewFlagSet(name, flag.ContinueOnError)
 	fs.SetOutput(w)
 	fs.Usage = func() {
+		w := fs.Output()
 		fmt.Fprintf(w, "usage: pulsefleet %s %s\n", name, synopsis)
 		if c, ok := commands[name]; ok && c.summary != "" {
 			fmt.Fprintf(w, "\n%s\n", c.summary)
@@ -72,12 +74,20 @@ func newFlagSet(name, synopsis string, w io.Writer) *flag.FlagSet {
 
 // parseFlags parses args and maps flag errors to usage errors; -h/--help
 // yields errHelp, which exits 0.
+// On a bad flag only the one-sentence error is printed (by run), not the
+// flag package's own message and the whole usage.
 func parseFlags(fs *flag.FlagSet, args []string) error {
-	if err := fs.Parse(args); err != nil {
+	real := fs.Output()
+	var held bytes.Buffer
+	fs.SetOutput(&held)
+	err := fs.Parse(args)
+	fs.SetOutput(real)
+	if err != nil {
 		if errors.Is(err, flag.ErrHelp) {
+			real.Write(held.Bytes())
 			return errHelp
 		}
-		return usageError{err.Error()}
+		return flagError(fs, err)
 	}
 	if fs.NArg() > 0 {
 		return usagef("%s: unexpected argument %q", fs.Name(), fs.Arg(0))
@@ -114,11 +124,11 @@ func run(ctx context.Context, args []string, s stdio) int {
 	case err == nil, errors.Is(err, errHelp):
 		return 0
 	case errors.As(err, &ue):
-		fmt.Fprintf(s.err, "pulsefleet %s: %s\n(run 'pulsefleet %s --help' for usage)\n", c.name, safeText(err.Error()), c.name)
+		fmt.Fprintf(s.err, "pulsefleet %s: %s\n(run 'pulsefleet %s --help' for usage)\n", c.name, safeText(errorText(err)), c.name)
 		return 2
 	default:
 		// Errors can carry a gateway's or a file's text: escape controls.
-		fmt.Fprintf(s.err, "pulsefleet %s: %s\n", c.name, safeText(err.Error()))
+		fmt.Fprintf(s.err, "pulsefleet %s: %s\n", c.name, safeText(errorText(err)))
 		return 1
 	}
 }
