@@ -17,8 +17,9 @@
 //
 // Caveats: the FHIR output is plain FHIR R4 (it validates against the
 // official JSON schema) and claims no implementation guide; Observations have
-// no subject because a pilot's store links devices, not patients. The store
-// is read in one read transaction per device; a running gateway holds the
-// file lock, so export runs on a stopped gateway's data directory (exporting
-// through a running gateway is future work).
+// no subject because a pilot's store links devices, not patients. A Source
+// is a stopped gateway's *store.DB (one read transaction per device) or,
+// in cmd/pulsefleet, running gateways through FleetService.ExportTrend
+// (which read in bounded slices): the writers see the same points either
+// way, so the output is the same.
 package export

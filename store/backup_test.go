@@ -153,3 +153,37 @@ func TestRestoreRefusesBadSnapshots(t *testing.T) {
 		t.Errorf("an aborted backup left %v", ents)
 	}
 }
+
+// TrendSliced yields exactly what Trend yields, in slices of a few points
+// (one read transaction each), across days and with the tail merged in.
+func TestTrendSlicedEqualsTrend(t *testing.T) {
+	db, _ := mustOpen(t)
+	var pts []Point
+	for i := int64(0); i < 50; i++ {
+		pts = append(pts, Point{Device: "s", TimeMS: i * 3_600_000, SpO2: 90 + float64(i%7), Pulse: 60, Source: 2})
+	}
+	if err := db.Write(&Batch{Devices: []*Device{{ID: "s"}}, Points: pts}); err != nil {
+		t.Fatal(err)
+	}
+	var whole, sliced []Point
+	db.Trend("s", 0, 1<<62, func(p Point) bool { whole = append(whole, p); return true })
+	for _, per := range []int{1, 3, 7, 50, 0} {
+		sliced = sliced[:0]
+		if err := db.TrendSliced("s", 0, 1<<62, per, func(p Point) bool { sliced = append(sliced, p); return true }); err != nil {
+			t.Fatal(err)
+		}
+		if len(sliced) != len(whole) || len(whole) != 50 {
+			t.Fatalf("per %d: %d points sliced, %d whole, want 50", per, len(sliced), len(whole))
+		}
+		for i := range whole {
+			if sliced[i].TimeMS != whole[i].TimeMS || sliced[i].SpO2 != whole[i].SpO2 {
+				t.Fatalf("per %d: point %d differs", per, i)
+			}
+		}
+	}
+	n := 0
+	db.TrendSliced("s", 0, 1<<62, 4, func(Point) bool { n++; return n < 10 })
+	if n != 10 {
+		t.Errorf("stopping after 10 points gave %d", n)
+	}
+}

@@ -421,3 +421,31 @@ func (db *DB) Cursors() (map[string]Cursor, error) {
 	}
 	return out, nil
 }
+
+// TrendSliced is Trend read in slices of at most perTx points, each in its
+// own short read transaction (0 means 10,000): a long export never holds
+// one read transaction open for long, so bbolt can reuse the pages that
+// ingest frees meanwhile and the file does not grow. Points have distinct
+// times per device, so each slice resumes after the last time sent.
+func (db *DB) TrendSliced(device string, fromMS, toMS int64, perTx int, fn func(Point) bool) error {
+	if perTx <= 0 {
+		perTx = 10_000
+	}
+	for fromMS < toMS {
+		n, stopped := 0, false
+		last := fromMS
+		err := db.Trend(device, fromMS, toMS, func(p Point) bool {
+			if !fn(p) {
+				stopped = true
+				return false
+			}
+			last, n = p.TimeMS, n+1
+			return n < perTx
+		})
+		if err != nil || stopped || n < perTx {
+			return err
+		}
+		fromMS = last + 1
+	}
+	return nil
+}

@@ -34,10 +34,11 @@ memory); --out FILE is written under a temporary name and renamed when
 complete (mode 0600: exports hold health data). Progress goes to stderr when
 it is a terminal.
 
-The store is opened read-only. A running gateway holds the store's lock: stop
-the gateway first, or take one device's trend as CSV through the gateway with
-'pulsefleet trend --gateway ADDR --device ID'. A FHIR export through a running
-gateway is future work.
+--data DIR opens a stopped gateway's store read-only. --gateway ADDR[,ADDR...]
+exports through running gateways (FleetService.ExportTrend, viewer role;
+--token or $PULSEFLEET_TOKEN) with the same output byte for byte (CSV),
+merged across the gateways of a sharded fleet; each gateway reads its store
+in bounded slices, never holding one read transaction open for long.
 
 Research tool, not a certified medical device.`
 
@@ -45,6 +46,7 @@ Research tool, not a certified medical device.`
 type exportOptions struct {
 	data, format, out, from, to, base string
 	devices                           exportDevices
+	client                            clientFlags
 	wait                              time.Duration
 	noPI                              bool
 }
@@ -68,8 +70,9 @@ func init() {
 		summary: exportSummary,
 		run: func(ctx context.Context, args []string, s stdio) error {
 			var o exportOptions
-			fs := newFlagSet("export", "--data DIR [--device ID] [--from T --to T] --format csv|fhir [--out FILE]", s.err)
-			fs.StringVar(&o.data, "data", "", "data directory of a stopped gateway (required)")
+			fs := newFlagSet("export", "(--data DIR | --gateway ADDR[,ADDR...]) [--device ID] [--from T --to T] --format csv|fhir [--out FILE]", s.err)
+			fs.StringVar(&o.data, "data", "", "data directory of a stopped gateway")
+			o.client.register(fs)
 			fs.Var(&o.devices, "device", "device id to export; repeat or comma-separate for several (default: every device with trend points)")
 			fs.StringVar(&o.from, "from", "", "first time exported, RFC 3339 or Unix seconds (default: the beginning)")
 			fs.StringVar(&o.to, "to", "", "end of the range, exclusive, RFC 3339 or Unix seconds (default: no end)")
@@ -81,8 +84,8 @@ func init() {
 			if err := parseFlags(fs, args); err != nil {
 				return err
 			}
-			if o.data == "" {
-				return usagef("--data is required")
+			if (o.data == "") == (o.client.gateways == "") {
+				return usagef("--data, --gateway: give exactly one")
 			}
 			if o.format != "csv" && o.format != "fhir" {
 				return usagef("--format %q, want csv or fhir", o.format)
@@ -126,15 +129,26 @@ func parseExportTime(flag, v string) (int64, error) {
 }
 
 func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio) error {
-	db, err := store.Open(o.data, store.Options{ReadOnly: true, Timeout: o.wait})
-	if err != nil {
-		if errors.Is(err, store.ErrLocked) {
-			return fmt.Errorf("--data %s: %w: export opens the store read-only but a running gateway holds it: stop the gateway, or use 'pulsefleet trend --gateway ADDR --device ID' for one device's trend as CSV through it", o.data, err)
+	var src export.Source
+	if o.client.gateways != "" {
+		addrs, err := o.client.addrs()
+		if err != nil {
+			return err
 		}
-		return fmt.Errorf("--data %s: %w", o.data, err)
+		rs, err := newRemoteSource(ctx, &o.client, addrs)
+		if err != nil {
+			return err
+		}
+		defer rs.Close()
+		src = rs
+	} else {
+		db, err := openExportStore(o)
+		if err != nil {
+			return err
+		}
+		defer db.Close()
+		src = db
 	}
-	defer db.Close()
-
 	progress := newExportProgress(s.err)
 	opt.Progress = progress.update
 	return writeExportFile(o.out, s.out, func(w io.Writer) error {
@@ -144,10 +158,21 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 		} else {
 			wr = export.NewFHIRWriter(w, export.FHIROptions{Timestamp: time.Now(), BaseURL: o.base, SkipPI: o.noPI})
 		}
-		st, err := export.Run(ctx, db, wr, opt)
+		st, err := export.Run(ctx, src, wr, opt)
 		progress.finish(st, err)
 		return err
 	})
+}
+
+func openExportStore(o exportOptions) (*store.DB, error) {
+	db, err := store.Open(o.data, store.Options{ReadOnly: true, Timeout: o.wait})
+	if err != nil {
+		if errors.Is(err, store.ErrLocked) {
+			return nil, fmt.Errorf("--data %s: %w: export opens the store read-only but a running gateway holds it: export through it with 'pulsefleet export --gateway ADDR', or stop the gateway", o.data, err)
+		}
+		return nil, fmt.Errorf("--data %s: %w", o.data, err)
+	}
+	return db, nil
 }
 
 // writeExportFile streams into path through a temporary file in the same

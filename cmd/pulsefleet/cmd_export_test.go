@@ -103,7 +103,7 @@ func TestExportCommandLockedStore(t *testing.T) {
 	defer db.Close()
 	outDir := t.TempDir()
 	code, _, errs := exportRun(t, "--data", dir, "--format", "csv", "--wait", "50ms", "--out", filepath.Join(outDir, "x.csv"))
-	if code != 1 || !strings.Contains(errs, "stop the gateway, or use 'pulsefleet trend") || !strings.Contains(errs, "locked") {
+	if code != 1 || !strings.Contains(errs, "export through it with 'pulsefleet export --gateway ADDR'") || !strings.Contains(errs, "locked") {
 		t.Errorf("exit %d, stderr %q", code, errs)
 	}
 	if ents, _ := os.ReadDir(outDir); len(ents) != 0 {
@@ -120,7 +120,7 @@ func TestExportCommandErrors(t *testing.T) {
 		code int
 		want string
 	}{
-		{"no data", []string{"--format", "csv"}, 2, "--data is required"},
+		{"no data", []string{"--format", "csv"}, 2, "--data, --gateway: give exactly one"},
 		{"bad format", []string{"--data", dir, "--format", "xml"}, 2, `--format "xml", want csv or fhir`},
 		{"bad time", []string{"--data", dir, "--format", "csv", "--from", "yesterday"}, 2, `--from "yesterday", want RFC 3339`},
 		{"reversed range", []string{"--data", dir, "--format", "csv", "--from", "20", "--to", "10"}, 2, "--to 10 is not after --from 20"},
@@ -139,9 +139,9 @@ func TestExportCommandErrors(t *testing.T) {
 	}
 }
 
-func TestExportHelpSaysGatewayExportIsFutureWork(t *testing.T) {
+func TestExportHelpNamesBothSources(t *testing.T) {
 	code, _, errs := exportRun(t, "--help")
-	if code != 0 || !strings.Contains(errs, "future work") || !strings.Contains(errs, "--format") {
+	if code != 0 || !strings.Contains(errs, "--gateway ADDR[,ADDR...]") || !strings.Contains(errs, "byte for byte") || !strings.Contains(errs, "--format") {
 		t.Errorf("exit %d, help %q", code, errs)
 	}
 }
