@@ -163,10 +163,8 @@ func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 		}
 		var wg sync.WaitGroup
 		for k := range blocks[:slow] {
-			if parts[k] == nil {
-				parts[k] = &trendReader{}
-			}
-			p := parts[k]
+			p := &trendReader{}
+			parts[k] = p
 			p.reset(tr)
 			wg.Go(func() { p.parseBlock(blocks[k]) })
 		}
@@ -182,6 +180,7 @@ func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 			return tr.seqRest(rest, line)
 		}
 		if eof {
+			tr.assemble()
 			return nil
 		}
 	}
@@ -189,6 +188,7 @@ func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 
 // seqRest reads the rest of the input line by line after line.
 func (tr *trendReader) seqRest(r io.Reader, line int) error {
+	tr.assemble()
 	_, _, err := tr.seq(bufio.NewReaderSize(r, 1<<20), line, false)
 	return err
 }
@@ -205,12 +205,15 @@ func slicesConcat(bs [][]byte, last []byte) []byte {
 // reset makes p an empty block parser with the columns of tr.
 func (p *trendReader) reset(tr *trendReader) {
 	*p = trendReader{header: true, tCol: tr.tCol, devCol: tr.devCol, valCol: tr.valCol,
-		byDev: map[string]int{}, last: -1, block: true, ends: p.ends}
+		byDev: map[string]int{}, last: -1, block: true}
 }
 
 // parseBlock parses the lines of b (whole lines, no quotes, no carriage
 // returns), numbering them from 1, up to the first error (kept in p.err).
 func (p *trendReader) parseBlock(b []byte) {
+	rows := bytes.Count(b, []byte{'\n'}) + 1
+	p.flat = make([]Sample, 0, rows)
+	p.flatDev = make([]int32, 0, rows)
 	line := 0
 	for len(b) > 0 {
 		i := bytes.IndexByte(b, '\n')
@@ -231,44 +234,68 @@ func (p *trendReader) parseBlock(b []byte) {
 	}
 }
 
-// merge appends block p's trends (its lines numbered after line) to tr's.
+// merge takes block p's rows (its lines numbered after line) after
+// those merged so far, checking that each device's times still increase;
+// assemble copies them into the trends.
 func (tr *trendReader) merge(p *trendReader, line int) error {
 	var first *rowError
+	p.toG = p.toG[:0]
 	for d := range p.trends {
-		pt := &p.trends[d]
-		g, ok := tr.byDev[pt.Device]
+		name := p.trends[d].Device
+		g, ok := tr.byDev[name]
 		if !ok {
 			g = len(tr.trends)
-			tr.byDev[pt.Device] = g
-			tr.trends = append(tr.trends, Trend{Device: pt.Device})
+			tr.byDev[name] = g
+			tr.trends = append(tr.trends, Trend{Device: name})
 		}
-		gt := &tr.trends[g]
-		if n := len(gt.Samples); n > 0 && !(pt.Samples[0].T > gt.Samples[n-1].T) {
+		for len(tr.gLast) < len(tr.trends) {
+			tr.gLast = append(tr.gLast, math.NaN())
+			tr.gCount = append(tr.gCount, 0)
+		}
+		p.toG = append(p.toG, g)
+		if tr.gCount[g] > 0 && !(p.first[d].t > tr.gLast[g]) {
 			f := p.first[d]
 			if first == nil || f.line < first.line {
 				first = &rowError{line: f.line, msg: fmt.Sprintf("t_s %s for device %q, want after %s (times must increase per device)",
-					f.ts, pt.Device, strconv.FormatFloat(gt.Samples[n-1].T, 'f', -1, 64))}
+					f.ts, name, strconv.FormatFloat(tr.gLast[g], 'f', -1, 64))}
 			}
-			continue
-		}
-		if first == nil {
-			gt.Samples = append(gt.Samples, pt.Samples...)
 		}
 	}
-	tr.last = -1
-	if first == nil {
-		if re, ok := p.err.(*rowError); ok {
-			first = re
-		} else if p.err != nil {
-			return p.err
-		}
-	} else if re, ok := p.err.(*rowError); ok && re.line < first.line {
+	if re, ok := p.err.(*rowError); ok && (first == nil || re.line < first.line) {
 		first = re
+	} else if p.err != nil && !ok {
+		return p.err
 	}
 	if first != nil {
 		return &rowError{line: first.line + line, msg: first.msg}
 	}
+	for d, g := range p.toG {
+		if p.count[d] > 0 {
+			tr.gLast[g] = p.lastT[d]
+			tr.gCount[g] += p.count[d]
+		}
+	}
+	tr.done = append(tr.done, p)
+	tr.last = -1
 	return nil
+}
+
+// assemble copies the merged blocks' rows into the trends, each sized
+// once for all its rows.
+func (tr *trendReader) assemble() {
+	for g := range tr.trends {
+		if g < len(tr.gCount) && tr.gCount[g] > 0 {
+			tr.trends[g].Samples = make([]Sample, 0, len(tr.trends[g].Samples)+tr.gCount[g])
+		}
+	}
+	for _, p := range tr.done {
+		for j := range p.flat {
+			t := &tr.trends[p.toG[p.flatDev[j]]]
+			t.Samples = append(t.Samples, p.flat[j])
+		}
+	}
+	tr.done = nil
+	clear(tr.gCount)
 }
 
 // rowError is an error of one row: "trend csv: line N: msg".
@@ -340,10 +367,18 @@ type trendReader struct {
 
 	trends  []Trend
 	byDev   map[string]int
-	block   bool       // parsing one block of a parallel read: first is kept
-	first   []firstRow // per trend: its first row (block only)
-	err     error      // the block's first error
-	last    int        // index of the previous row's device, -1 before any
+	block   bool           // parsing one block of a parallel read: first is kept
+	first   []firstRow     // per trend: its first row (block only)
+	err     error          // the block's first error
+	lastT   []float64      // block: per trend, the time of its last row
+	count   []int          // block: per trend, its rows
+	flat    []Sample       // block: the rows in input order
+	flatDev []int32        // block: each row's trend
+	toG     []int          // block, after merge: each trend's index in the whole read
+	done    []*trendReader // whole read: merged blocks waiting for assemble
+	gLast   []float64      // whole read: per trend, the time of its last merged row
+	gCount  []int          // whole read: per trend, its merged rows
+	last    int            // index of the previous row's device, -1 before any
 	lastDev []byte
 }
 
@@ -351,6 +386,7 @@ type trendReader struct {
 type firstRow struct {
 	line int
 	ts   string
+	t    float64
 }
 
 // finishStd reads the rest of the input with encoding/csv; off is the
@@ -444,13 +480,29 @@ func (tr *trendReader) sample(cells *[2 + numTrendValues][]byte, line int) error
 			tr.byDev[string(dev)] = i
 			tr.trends = append(tr.trends, Trend{Device: string(dev)})
 			if tr.block {
-				tr.first = append(tr.first, firstRow{line, string(ts)})
+				tr.first = append(tr.first, firstRow{line, string(ts), t})
+				tr.lastT = append(tr.lastT, t)
+				tr.count = append(tr.count, 0)
 			}
 		}
 		tr.last = i
 		tr.lastDev = append(tr.lastDev[:0], dev...)
 	}
 	trend := &tr.trends[i]
+	if tr.block {
+		// Flat rows in input order with their device, in a buffer sized
+		// for the block: no slice grows while parsing (assemble copies
+		// each row once into its device's exactly sized trend).
+		if tr.count[i] > 0 && !(t > tr.lastT[i]) {
+			return &rowError{line, fmt.Sprintf("t_s %s for device %q, want after %s (times must increase per device)",
+				ts, trend.Device, strconv.FormatFloat(tr.lastT[i], 'f', -1, 64))}
+		}
+		tr.flat = append(tr.flat, Sample{T: t, SpO2: vals[tcSpO2], Pulse: vals[tcPulse], PI: vals[tcPI], SQI: vals[tcSQI]})
+		tr.flatDev = append(tr.flatDev, int32(i))
+		tr.lastT[i] = t
+		tr.count[i]++
+		return nil
+	}
 	if n := len(trend.Samples); n > 0 && !(t > trend.Samples[n-1].T) {
 		return &rowError{line, fmt.Sprintf("t_s %s for device %q, want after %s (times must increase per device)",
 			ts, trend.Device, strconv.FormatFloat(trend.Samples[n-1].T, 'f', -1, 64))}
