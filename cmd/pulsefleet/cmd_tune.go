@@ -5,11 +5,13 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"path/filepath"
 	"strconv"
 	"strings"
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/store"
 	"github.com/pulsefleet/pulsefleet/tune"
 )
 
@@ -30,8 +32,10 @@ The grid file (--grid) names a base profile, the swept keys and the reference:
   averaging: [4s, 8s, 12s]         # optional: estimator averaging times, 2s..30s (needs --data)
 
 History comes from a store (--data DIR, opened read-only; stop the gateway
-first, bbolt locks the file) or a trend CSV (--in, "-" for stdin:
-t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi).
+first, bbolt locks the file), from a running gateway (--gateway ADDR: a
+snapshot taken through AdminService.Backup, admin role, into a temporary
+directory and tuned exactly as --data would tune it, then deleted) or a
+trend CSV (--in, "-" for stdin: t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi).
 
 Averaging times re-run the estimator over the raw captures kept in the
 store (serve --capture-raw), once per time, the way the gateway estimates
@@ -66,6 +70,8 @@ type tuneOptions struct {
 	from, to            string
 	workers             int
 	maxGap              time.Duration
+	client              clientFlags
+	label               string // the source's name in outputs, when not --data's
 }
 
 func init() {
@@ -78,6 +84,7 @@ func init() {
 			fs.StringVar(&o.grid, "grid", "", "tuning grid file (required)")
 			fs.StringVar(&o.data, "data", "", "data directory of a store to read trend history from (read-only)")
 			fs.StringVar(&o.in, "in", "", "trend CSV file, - for stdin (instead of --data)")
+			o.client.register(fs)
 			fs.StringVar(&o.out, "out", "", "output directory (required; created)")
 			fs.Func("device", "only these devices (comma-separated; repeatable)", func(v string) error {
 				for _, d := range strings.Split(v, ",") {
@@ -99,10 +106,8 @@ func init() {
 				return usagef("--grid is required")
 			case o.out == "":
 				return usagef("--out is required")
-			case o.data == "" && o.in == "":
-				return usagef("give --data DIR or --in TREND.csv")
-			case o.data != "" && o.in != "":
-				return usagef("--data and --in both given, want one")
+			case btoi(o.data != "")+btoi(o.in != "")+btoi(o.client.gateways != "") != 1:
+				return usagef("--data, --gateway, --in: give exactly one")
 			case o.workers < 0:
 				return usagef("--workers %d, want >= 0", o.workers)
 			case o.maxGap <= 0:
@@ -147,7 +152,47 @@ func parseTuneTime(v string) (float64, error) {
 	return float64(t.UnixMilli()) / 1000, nil
 }
 
+func btoi(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
+}
+
+// tuneSnapshot takes a snapshot of the gateway's store into a temporary
+// data directory for runTune; cleanup removes it.
+func tuneSnapshot(ctx context.Context, o *tuneOptions, s stdio) (cleanup func(), err error) {
+	addrs, err := o.client.addrs()
+	if err != nil {
+		return nil, err
+	}
+	if len(addrs) != 1 {
+		return nil, usagef("--gateway: %d addresses, want one (tune each gateway's history, or export the merged trend with 'export --gateway' and tune it with --in)", len(addrs))
+	}
+	dir, err := os.MkdirTemp("", "pulsefleet-tune-snapshot-")
+	if err != nil {
+		return nil, fmt.Errorf("tune: %w", err)
+	}
+	cleanup = func() { os.RemoveAll(dir) }
+	p := newTuneProgress(s.err, "snapshot")
+	res, err := fetchBackup(ctx, &o.client, addrs[0], filepath.Join(dir, store.FileName), func(done, total int64) { p.update(int(done>>10), int(total>>10)) })
+	p.finish()
+	if err != nil {
+		cleanup()
+		return nil, err
+	}
+	o.data, o.label = dir, fmt.Sprintf("snapshot of gateway %s (store %s)", addrs[0], res.storeID)
+	return cleanup, nil
+}
+
 func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s stdio) error {
+	if o.client.gateways != "" {
+		cleanup, err := tuneSnapshot(ctx, &o, s)
+		if err != nil {
+			return err
+		}
+		defer cleanup()
+	}
 	g, err := tune.LoadGrid(o.grid)
 	if err != nil {
 		return err
@@ -162,6 +207,9 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 	source := ""
 	if o.data != "" {
 		source = "store " + o.data
+		if o.label != "" {
+			source = o.label
+		}
 		if trends, err = tune.LoadStore(o.data, f); err != nil {
 			return err
 		}
@@ -219,6 +267,9 @@ func runTuneAveraging(ctx context.Context, o tuneOptions, f tune.Filter, g *tune
 		return err
 	}
 	source := "raw captures in store " + o.data
+	if o.label != "" {
+		source = "raw captures in the " + o.label
+	}
 	fmt.Fprintf(s.out, "tune: %d profiles (%d averaging times x %d) over %d devices with raw captures (of %d in the store), "+
 		"%d raw chunks re-estimated, %.1f monitored hours, %d reference events (rule on the %s trends)\n",
 		len(res.Points), len(g.AveragingS), len(res.Points)/len(g.AveragingS), used, used+len(est.Skipped),

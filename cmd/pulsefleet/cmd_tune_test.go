@@ -183,7 +183,7 @@ func TestTuneCommandErrors(t *testing.T) {
 		{"bad rule", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 185, for: 60s}\n",
 			nil, 1, "reference.rule.below (line 5): \"185\", want an SpO2 in (0, 100]"},
 		{"no input", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
-			[]string{"--in", ""}, 2, "give --data DIR or --in TREND.csv"},
+			[]string{"--in", ""}, 2, "--data, --gateway, --in: give exactly one"},
 		{"unknown device", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n",
 			[]string{"--device", "nope"}, 1, `device "nope" has no trend`},
 	}

@@ -68,3 +68,40 @@ func TestExportThroughGatewayEqualsOfflineExport(t *testing.T) {
 		t.Errorf("merged export of two gateways (%d bytes) is not both fleets in device order (%d bytes)", len(both), len(want))
 	}
 }
+
+// tune --gateway (a snapshot through the Backup RPC) gives the same
+// summary as tune --data on a snapshot of the same history.
+func TestTuneThroughGatewayEqualsTuneOnSnapshot(t *testing.T) {
+	if testing.Short() {
+		t.Skip("process test")
+	}
+	c := startServe(t, t.TempDir())
+	ctx, cancel := context.WithTimeout(context.Background(), 90*time.Second)
+	defer cancel()
+	rep, err := sim.Run(ctx, sim.Options{Gateway: c.grpcAddr, Devices: 3, IDPrefix: "tn", Mode: sim.ModeSummary,
+		RateHz: 100, Speed: 30, Duration: 3 * time.Second, Seed: 41})
+	if err != nil || rep.FramesAcked < 100 || rep.StreamErrors != 0 {
+		t.Fatalf("sim: %v %+v", err, rep)
+	}
+	dir := t.TempDir()
+	p := func(n string) string { return filepath.Join(dir, n) }
+	mustRun := func(args ...string) {
+		t.Helper()
+		if code, out := runBinary(t, args...); code != 0 {
+			t.Fatalf("%v: exit %d: %s", args, code, out)
+		}
+	}
+	os.WriteFile(p("grid.yaml"), []byte("base: adult-ward-pilot\nsweep:\n  spo2_low.delay: [0s, 30s]\nreference:\n  rule: {below: 92, for: 10s}\n"), 0o600)
+	mustRun("tune", "--grid", p("grid.yaml"), "--gateway", c.grpcAddr, "--out", p("live"))
+	mustRun("backup", "--gateway", c.grpcAddr, "--out", p("snap.db"))
+	mustRun("restore", "--data", p("restored"), "--from", p("snap.db"))
+	mustRun("tune", "--grid", p("grid.yaml"), "--data", p("restored"), "--out", p("offline"))
+	live, err1 := os.ReadFile(p("live/summary.csv"))
+	offline, err2 := os.ReadFile(p("offline/summary.csv"))
+	if err1 != nil || err2 != nil {
+		t.Fatal(err1, err2)
+	}
+	if bytes.Count(live, []byte("\n")) < 3 || !bytes.Equal(live, offline) {
+		t.Errorf("summary.csv through the gateway (%d bytes) differs from --data on a snapshot (%d bytes):\n%s\n---\n%s", len(live), len(offline), live, offline)
+	}
+}
