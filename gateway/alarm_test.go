@@ -2,9 +2,13 @@ package gateway
 
 import (
 	"context"
+	"strings"
 	"sync"
 	"testing"
 	"time"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
@@ -208,5 +212,29 @@ func waitUntil(t *testing.T, cond func() bool, what string) {
 			t.Fatalf("timed out waiting for %s", what)
 		}
 		time.Sleep(10 * time.Millisecond)
+	}
+}
+
+// A built-in profile can be set by its name alone (issue 15: before, the
+// name was parsed as YAML and refused with "want a mapping"); the full YAML
+// is stored, survives a restart and is audited like any other.
+func TestSetAlarmProfileByBuiltinName(t *testing.T) {
+	h := newHarness(t, func(o *Options) { o.DefaultProfile = testProfile(t) })
+	ctx := auth.WithActor(context.Background(), "admin-ro")
+	if _, err := h.g.SetAlarmProfile(ctx, &pb.SetAlarmProfileRequest{ProfileYaml: "home-overnight\n", Reason: "at home"}); err != nil {
+		t.Fatal(err)
+	}
+	h.restart()
+	got, err := h.g.GetAlarmProfile(ctx, &pb.GetAlarmProfileRequest{})
+	if err != nil || got.GetName() != "home-overnight" || !strings.Contains(got.GetProfileYaml(), "conditions:") {
+		t.Fatalf("after set by name and restart: %v %v", got, err)
+	}
+	au, _ := h.db.Audit(0, "profile.set", 0)
+	if len(au) != 1 || !strings.Contains(au[0].Detail, "home-overnight") {
+		t.Errorf("audit: %+v", au)
+	}
+	_, err = h.g.SetAlarmProfile(ctx, &pb.SetAlarmProfileRequest{ProfileYaml: "no-such-profile"})
+	if status.Code(err) != codes.InvalidArgument || !strings.Contains(err.Error(), "adult-ward-pilot") {
+		t.Errorf("unknown name: %v; want InvalidArgument listing the built-in names", err)
 	}
 }

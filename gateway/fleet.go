@@ -5,6 +5,8 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
+	"strings"
 	"time"
 
 	"google.golang.org/grpc/codes"
@@ -12,6 +14,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/profiles"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/store"
 )
@@ -317,9 +320,19 @@ func (g *Gateway) SetAlarmProfile(ctx context.Context, req *pb.SetAlarmProfileRe
 	if n := len(req.GetReason()); n > 500 {
 		return nil, status.Errorf(codes.InvalidArgument, "reason: %d characters, want at most 500", n)
 	}
-	p, err := alarms.ParseProfile([]byte(req.GetProfileYaml()))
+	text := []byte(req.GetProfileYaml())
+	if name := strings.TrimSpace(req.GetProfileYaml()); slices.Contains(profiles.Names(), name) {
+		// A built-in profile by name: the full YAML is applied and stored,
+		// so a restart or a later build with other defaults keeps it.
+		b, err := profiles.Bytes(name)
+		if err != nil {
+			return nil, status.Errorf(codes.Internal, "profile_yaml: %v", err)
+		}
+		text = b
+	}
+	p, err := alarms.ParseProfile(text)
 	if err != nil {
-		return nil, status.Errorf(codes.InvalidArgument, "profile_yaml: %v", err)
+		return nil, status.Errorf(codes.InvalidArgument, "profile_yaml: %v (or a built-in profile name: %s)", err, strings.Join(profiles.Names(), ", "))
 	}
 	who := auth.ActorFrom(ctx)
 	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "profile.set", Device: req.GetDeviceId(),
@@ -332,7 +345,7 @@ func (g *Gateway) SetAlarmProfile(ctx context.Context, req *pb.SetAlarmProfileRe
 		}
 		targets = []*device{d}
 	}
-	if err := g.db.SetProfile(req.GetDeviceId(), []byte(req.GetProfileYaml()), audit); err != nil {
+	if err := g.db.SetProfile(req.GetDeviceId(), text, audit); err != nil {
 		return nil, status.Errorf(codes.Unavailable, "store: %v", err)
 	}
 	if req.GetDeviceId() == "" {

@@ -5,12 +5,14 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"strings"
 	"sync"
 	"time"
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 
+	"github.com/pulsefleet/pulsefleet/profiles"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/scenarios"
 	"github.com/pulsefleet/pulsefleet/sim"
@@ -37,6 +39,7 @@ func runDemo(ctx context.Context, args []string, s stdio) error {
 	grpcListen := fs.String("grpc-listen", "127.0.0.1:0", "gRPC listen address (port 0 = chosen automatically)")
 	httpListen := fs.String("http-listen", "127.0.0.1:0", "HTTP listen address (port 0 = chosen automatically)")
 	seed := fs.Uint64("seed", 1, "seed of the simulated patients")
+	profile := fs.String("profile", "", "default alarm profile: a built-in name ("+strings.Join(profiles.Names(), ", ")+") or a YAML file (default: serve's default)")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -58,6 +61,9 @@ func runDemo(ctx context.Context, args []string, s stdio) error {
 		sp = sc.Speed
 	}
 	c.DeviceTimeRate = max(c.DeviceTimeRate, 2*sp)
+	if *profile != "" {
+		c.Profile = *profile
+	}
 	if err := c.validate(); err != nil {
 		return usageError{err.Error()}
 	}
