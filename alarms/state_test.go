@@ -139,3 +139,14 @@ func TestEpisodeJSONNullsForNotYet(t *testing.T) {
 		t.Errorf("round trip\n%+v\n%+v", back, ep)
 	}
 }
+
+// One table of readable condition labels (issue 15): kind names map to
+// their labels, a condition the profile named itself stays as it is.
+func TestConditionLabel(t *testing.T) {
+	for in, want := range map[string]string{"spo2_low": "SpO2 low", "device_clock_fault": "device clock fault",
+		"signal_lost": "SpO2 signal lost", "pulse_high": "pulse rate high", "night_low": "night_low"} {
+		if got := Label(in); got != want {
+			t.Errorf("Label(%q) = %q, want %q", in, got, want)
+		}
+	}
+}

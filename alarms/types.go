@@ -263,3 +263,15 @@ type Event struct {
 	// event must be logged but not announced to people.
 	Paused bool
 }
+
+// Label returns the readable label of an alarm condition as the gateway
+// reports it (a profile's condition name, by default the kind's name, e.g.
+// "spo2_low" -> "SpO2 low"); a condition the profile named itself is
+// returned as it is. It is the one table of labels for every view (CLI
+// and web page).
+func Label(condition string) string {
+	if k, err := ParseKind(condition); err == nil {
+		return k.Label()
+	}
+	return condition
+}

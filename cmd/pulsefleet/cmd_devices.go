@@ -8,6 +8,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/alarms"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
@@ -24,8 +25,16 @@ func runDevices(ctx context.Context, args []string, s stdio) error {
 	fs := newFlagSet("devices", "--gateway ADDR[,ADDR...] [--format table|json]", s.err)
 	cf.register(fs)
 	format := fs.String("format", "table", "output: table or json")
+	stale := fs.Duration("stale", 10*time.Second, "a value older than this is not shown as current: the table prints - and its age")
+	order := fs.String("order", "attention", "row order: attention (alarms by priority, longest announced first; then technical problems; then the rest) or id")
 	if err := parseFlags(fs, args); err != nil {
 		return err
+	}
+	if *stale <= 0 {
+		return usagef("--stale %v, want more than 0", *stale)
+	}
+	if *order != "attention" && *order != "id" {
+		return usagef("--order: %q, want attention or id", *order)
 	}
 	if *format != "table" && *format != "json" {
 		return usagef("--format: %q, want table or json", *format)
@@ -38,10 +47,18 @@ func runDevices(ctx context.Context, args []string, s stdio) error {
 	if err != nil {
 		return err
 	}
+	now := time.Now()
+	if *order == "attention" {
+		announced, err := announcedSince(ctx, &cf, addrs)
+		if err != nil {
+			return err
+		}
+		orderByAttention(devs, announced, now, *stale)
+	}
 	if *format == "json" {
 		return writeProtoJSON(s.out, devs)
 	}
-	return writeDevicesTable(s.out, devs, time.Now())
+	return writeDevicesTable(s.out, devs, now, *stale)
 }
 
 // listDevices asks every gateway and merges; a device reported by several
@@ -83,8 +100,8 @@ func fmtOpt(v *float64, prec int) string {
 	return fmt.Sprintf("%.*f", prec, *v)
 }
 
-func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time) error {
-	t := newTable(w, 0, "DEVICE", "STATE", "MODE", "LAST SEEN", "SpO2 %", "PULSE /min", "PI %", "SQI", "ALARM", "CONDITIONS", "LABELS")
+func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time, stale time.Duration) error {
+	t := newTable(w, 0, "DEVICE", "STATE", "MODE", "LAST SEEN", "SpO2 %", "PULSE /min", "PI %", "SQI", "VALUES", "ALARM", "CONDITIONS", "LABELS")
 	for _, d := range devs {
 		state := "offline"
 		if d.GetConnected() {
@@ -95,8 +112,16 @@ func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time) error {
 			seen = now.Sub(time.UnixMilli(ms)).Round(time.Second).String() + " ago"
 		}
 		l := d.GetLatest()
-		if l == nil {
+		age := "-"
+		switch {
+		case l == nil:
 			l = &pb.TrendPoint{}
+		case valueStale(l, now, stale):
+			// Never show an old value as current: "-" and its age.
+			age = "stale, " + now.Sub(time.UnixMilli(l.GetTimeUnixMs())).Round(time.Second).String() + " old"
+			l = &pb.TrendPoint{}
+		default:
+			age = "current"
 		}
 		alarm := strings.TrimPrefix(strings.ToLower(d.GetAlarmPriority().String()), "priority_")
 		if alarm == "unspecified" {
@@ -109,8 +134,89 @@ func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time) error {
 		sort.Strings(labels)
 		mode := strings.TrimPrefix(strings.ToLower(d.GetMode().String()), "mode_")
 		t.row(d.GetDeviceId(), state, mode, seen,
-			fmtOpt(l.Spo2Pct, 1), fmtOpt(l.PulseBpm, 0), fmtOpt(l.PiPct, 2), fmtOpt(l.Sqi, 2), alarm,
-			strings.Join(d.GetActiveConditions(), ","), strings.Join(labels, " "))
+			fmtOpt(l.Spo2Pct, 1), fmtOpt(l.PulseBpm, 0), fmtOpt(l.PiPct, 2), fmtOpt(l.Sqi, 2), age, alarm,
+			conditionLabels(d.GetActiveConditions()), strings.Join(labels, " "))
 	}
 	return t.flush()
+}
+
+// conditionLabels joins the readable labels of conditions (alarms.Label).
+func conditionLabels(cs []string) string {
+	if len(cs) == 0 {
+		return "-"
+	}
+	out := make([]string, len(cs))
+	for i, c := range cs {
+		out[i] = alarms.Label(c)
+	}
+	return strings.Join(out, ", ")
+}
+
+// valueStale reports whether a device's latest point is older than stale
+// (or has no time): it must not be shown as current.
+func valueStale(l *pb.TrendPoint, now time.Time, stale time.Duration) bool {
+	return l.GetTimeUnixMs() <= 0 || now.Sub(time.UnixMilli(l.GetTimeUnixMs())) > stale
+}
+
+// announcedSince returns, per device, when its earliest open alarm episode
+// was announced, from every gateway's active episodes.
+func announcedSince(ctx context.Context, cf *clientFlags, addrs []string) (map[string]int64, error) {
+	out := map[string]int64{}
+	for _, a := range addrs {
+		conn, err := cf.dial(a)
+		if err != nil {
+			return nil, err
+		}
+		cctx, cancel := context.WithTimeout(cf.ctx(ctx), 15*time.Second)
+		resp, err := pb.NewFleetServiceClient(conn).ListEpisodes(cctx, &pb.ListEpisodesRequest{ActiveOnly: true})
+		cancel()
+		conn.Close()
+		if err != nil {
+			return nil, fmt.Errorf("gateway %s: %w", a, err)
+		}
+		for _, e := range resp.GetEpisodes() {
+			if t := e.GetAnnouncedUnixMs(); t > 0 && (out[e.GetDeviceId()] == 0 || t < out[e.GetDeviceId()]) {
+				out[e.GetDeviceId()] = t
+			}
+		}
+	}
+	return out, nil
+}
+
+// attentionGroup ranks what a device needs: 0 an alarm, 1 a technical
+// problem (offline, never seen, or values stale), 2 nothing.
+func attentionGroup(d *pb.Device, now time.Time, stale time.Duration) int {
+	switch {
+	case d.GetAlarmPriority() != pb.Priority_PRIORITY_UNSPECIFIED || len(d.GetActiveConditions()) > 0:
+		return 0
+	case !d.GetConnected() || d.GetLatest() == nil || valueStale(d.GetLatest(), now, stale):
+		return 1
+	}
+	return 2
+}
+
+// orderByAttention sorts devices by what needs attention: devices with an
+// alarm first (high, medium, low; then the longest announced first), then
+// technical problems, then the rest; ties by id.
+func orderByAttention(devs []*pb.Device, announced map[string]int64, now time.Time, stale time.Duration) {
+	sort.SliceStable(devs, func(i, j int) bool {
+		a, b := devs[i], devs[j]
+		ga, gb := attentionGroup(a, now, stale), attentionGroup(b, now, stale)
+		if ga != gb {
+			return ga < gb
+		}
+		if ga == 0 {
+			if a.GetAlarmPriority() != b.GetAlarmPriority() {
+				return a.GetAlarmPriority() > b.GetAlarmPriority()
+			}
+			ta, tb := announced[a.GetDeviceId()], announced[b.GetDeviceId()]
+			if ta != tb && ta > 0 && tb > 0 {
+				return ta < tb
+			}
+			if (ta > 0) != (tb > 0) {
+				return ta > 0
+			}
+		}
+		return a.GetDeviceId() < b.GetDeviceId()
+	})
 }
