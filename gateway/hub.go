@@ -2,6 +2,7 @@ package gateway
 
 import (
 	"sync"
+	"sync/atomic"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -18,7 +19,7 @@ type subscription struct {
 	ch      chan *pb.WatchEventsResponse
 	devices map[string]bool // nil = all
 	points  bool            // wants every trend point
-	dropped uint64
+	dropped atomic.Uint64   // added to under the hub's read lock, so atomic
 }
 
 func newHub(m *metrics) *hub { return &hub{subs: map[*subscription]struct{}{}, m: m} }
@@ -63,7 +64,7 @@ func (h *hub) publish(device string, ev *pb.WatchEventsResponse) {
 		select {
 		case s.ch <- ev:
 		default:
-			s.dropped++
+			s.dropped.Add(1)
 			h.m.watchDropped.Inc()
 		}
 	}

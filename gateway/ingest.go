@@ -81,7 +81,6 @@ type stream struct {
 	// raw pipeline (owned by the handler goroutine)
 	tl     *estimator.Timeline // nil until the first raw chunk
 	estOut []estimator.TimedEstimate
-	events []alarms.Event
 }
 
 // ackThrough records that everything up to seq is durable and wakes the sender.

@@ -117,7 +117,6 @@ type qualityDevice struct {
 	g0       time.Time
 	ppm      float64
 	offsetMS int64
-	seq      uint64 // last sequence number used
 }
 
 // devTime is the device clock when the gateway clock reads g.

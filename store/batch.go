@@ -1,7 +1,6 @@
 package store
 
 import (
-	"bytes"
 	"fmt"
 	"sync"
 	"time"
@@ -77,8 +76,7 @@ func (db *DB) Write(b *Batch) error {
 	)
 	// index returns a device's ledger index, creating a bare record for a
 	// device first seen in this batch's trend points.
-	var index func(tx *bolt.Tx, id string) (uint32, error)
-	index = func(tx *bolt.Tx, id string) (uint32, error) {
+	index := func(tx *bolt.Tx, id string) (uint32, error) {
 		if idx, ok := newIdx[id]; ok {
 			return idx, nil
 		}
@@ -348,5 +346,3 @@ func nested(tx *bolt.Tx, root []byte, path ...[]byte) (*bolt.Bucket, error) {
 	}
 	return b, nil
 }
-
-func hasPrefix(k, p []byte) bool { return bytes.HasPrefix(k, p) }

@@ -2,12 +2,14 @@ package store
 
 import (
 	"encoding/binary"
+	"errors"
 	"fmt"
 	"sort"
 	"sync"
 	"time"
 
 	bolt "go.etcd.io/bbolt"
+	bolterrors "go.etcd.io/bbolt/errors"
 )
 
 // Trend points are written twice, cheaply:
@@ -275,7 +277,7 @@ func (db *DB) compact(tx *bolt.Tx, plan *compactPlan) error {
 		}
 	}
 	if plan.drop {
-		if err := tx.Bucket(bRecent).DeleteBucket(u32(plan.sg.gen)); err != nil && err != bolt.ErrBucketNotFound {
+		if err := tx.Bucket(bRecent).DeleteBucket(u32(plan.sg.gen)); err != nil && !errors.Is(err, bolterrors.ErrBucketNotFound) {
 			return err
 		}
 	}
