@@ -3,8 +3,11 @@ package calibration
 import (
 	"fmt"
 	"math"
+	"slices"
 	"sort"
 	"strings"
+
+	"github.com/pulsefleet/pulsefleet/stats"
 )
 
 // DeviceSecond is one second of a prototype's output as the estimator
@@ -198,7 +201,9 @@ func Align(dev []DeviceSecond, ref []ReferenceSecond, o AlignOptions) ([]Pair, A
 			rep.LowQuality++
 			continue
 		}
-		p := Pair{Ratio: median(ratios), ReferencePct: median(refs), Subject: o.Subject}
+		// ratios keeps its order (weightedMedian pairs it with sqis): the median
+		// sorts a copy.
+		p := Pair{Ratio: stats.Median(slices.Clone(ratios)), ReferencePct: stats.Median(refs), Subject: o.Subject}
 		if o.QualityWeights {
 			p.Ratio = weightedMedian(ratios, sqis)
 			sum := 0.0

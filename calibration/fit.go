@@ -3,7 +3,6 @@ package calibration
 import (
 	"fmt"
 	"math"
-	"sort"
 
 	"gonum.org/v1/gonum/mat"
 )
@@ -144,18 +143,4 @@ func polyval(c []float64, x float64) float64 {
 		v = v*x + c[i]
 	}
 	return v
-}
-
-// median returns the median of xs (NaN for none); xs is not modified.
-func median(xs []float64) float64 {
-	if len(xs) == 0 {
-		return math.NaN()
-	}
-	s := append([]float64(nil), xs...)
-	sort.Float64s(s)
-	m := len(s) / 2
-	if len(s)%2 == 1 {
-		return s[m]
-	}
-	return (s[m-1] + s[m]) / 2
 }

@@ -3,6 +3,9 @@ package estimator
 import (
 	"fmt"
 	"math"
+	"slices"
+
+	"github.com/pulsefleet/pulsefleet/stats"
 )
 
 // Estimate is one second of a stream.
@@ -438,12 +441,14 @@ func (s *Stream) closeBeat(a *sums, samples int64, periodS float64) {
 	s.beatN = min(s.beatN+1, len(s.beats))
 }
 
+// histMedian is the upper median of f over the history (the middle value,
+// the higher of the two for an even count: always a value that occurred).
 func (s *Stream) histMedian(f func(*beat) float64) float64 {
 	v := s.scratch2[:0]
 	for k := 0; k < s.histN; k++ {
 		v = append(v, f(&s.hist[k]))
 	}
-	sortFloats(v)
+	slices.Sort(v)
 	return v[len(v)/2]
 }
 
@@ -497,11 +502,11 @@ func (s *Stream) emit() Estimate {
 	}
 	window := s.cfg.AveragingS
 	gap := float64(s.n-s.lastRateBeat) / s.rate
-	if len(periods) < 2 || gap > math.Max(3, 2.5*median(periods)) {
+	if len(periods) < 2 || gap > math.Max(3, 2.5*stats.Median(periods)) {
 		e.Flags |= FlagNoPulse
 		return e
 	}
-	pi := median(pis[:np])
+	pi := stats.Median(pis[:np])
 	e.PIPct = pi
 	// Regularity: a pulse repeats; motion and noise do not.
 	devP, devA := relDev(periods), relDev(pis[:np])
@@ -593,35 +598,11 @@ func (s *Stream) spectralRatio(f0 float64) float64 {
 
 func clamp01(x float64) float64 { return math.Max(0, math.Min(1, x)) }
 
-// sortFloats is an insertion sort: the slices are short (at most the window's beats) and
-// this does not allocate.
-func sortFloats(v []float64) {
-	for i := 1; i < len(v); i++ {
-		x := v[i]
-		j := i - 1
-		for j >= 0 && v[j] > x {
-			v[j+1] = v[j]
-			j--
-		}
-		v[j+1] = x
-	}
-}
-
-// median sorts v in place and returns its middle value.
-func median(v []float64) float64 {
-	sortFloats(v)
-	n := len(v)
-	if n%2 == 1 {
-		return v[n/2]
-	}
-	return (v[n/2-1] + v[n/2]) / 2
-}
-
 // interquartileMean sorts v in place and averages its middle half (all of
 // it below four values): robust to a few outlying beats, smoother than the
 // median.
 func interquartileMean(v []float64) float64 {
-	sortFloats(v)
+	slices.Sort(v)
 	n := len(v)
 	lo, hi := 0, n
 	if n >= 4 {
@@ -640,7 +621,7 @@ func relDev(v []float64) float64 {
 	if len(v) < 2 {
 		return math.NaN()
 	}
-	m := median(v)
+	m := stats.Median(v)
 	d := 0.0
 	for _, x := range v {
 		d += math.Abs(x - m)

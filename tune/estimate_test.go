@@ -10,6 +10,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/stats"
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
@@ -135,7 +136,7 @@ func medianSpO2(s []alarms.Sample, from, to float64) float64 {
 			v = append(v, x.SpO2)
 		}
 	}
-	return median(v)
+	return stats.Median(v)
 }
 
 // TestAveragingOverRawCaptures re-estimates stored raw captures at two

@@ -11,6 +11,7 @@ import (
 	"testing"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/stats"
 )
 
 // The committed hand files (testdata/) give the same figures as the rule
@@ -198,13 +199,13 @@ func TestFilterTrends(t *testing.T) {
 }
 
 func TestQuantileAndCoverage(t *testing.T) {
-	if m := median([]float64{4, 1, 3, 2}); m != 2.5 {
+	if m := stats.Median([]float64{4, 1, 3, 2}); m != 2.5 {
 		t.Errorf("median %v, want 2.5", m)
 	}
-	if q := quantile(0.9, []float64{0, 10, 20, 30, 40, 50, 60, 70, 80, 90, 100}); q != 90 {
+	if q := stats.Quantile(0.9, []float64{0, 10, 20, 30, 40, 50, 60, 70, 80, 90, 100}); q != 90 {
 		t.Errorf("p90 %v, want 90", q)
 	}
-	if !math.IsNaN(median(nil)) {
+	if !math.IsNaN(stats.Median(nil)) {
 		t.Error("median of nothing is not NaN")
 	}
 	// Alarms [0,10) [5,20) [30,40); monitored [2,8) [15,35): 6 + 5 + 5 = 16.

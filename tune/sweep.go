@@ -12,6 +12,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/stats"
 )
 
 // DefaultMaxGap is the longest interval between consecutive samples counted
@@ -662,17 +663,17 @@ func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, 
 	days := res.MonitoredS / 86400
 	row.PerDeviceDay = ratio(float64(row.Episodes), days)
 	row.TimeInAlarmPct = 100 * ratio(alarmS[0], res.MonitoredS)
-	row.MedianEpisodeS = median(s.durs[0])
+	row.MedianEpisodeS = stats.Median(s.durs[0])
 	for p := alarms.PriorityLow; p <= alarms.PriorityHigh; p++ {
 		b := &row.ByPriority[p]
 		b.PerDeviceDay = ratio(float64(b.Episodes), days)
 		b.TimeInAlarmPct = 100 * ratio(alarmS[p], res.MonitoredS)
-		b.MedianEpisodeS = median(s.durs[p])
+		b.MedianEpisodeS = stats.Median(s.durs[p])
 	}
 	row.Sensitivity = ratio(float64(row.EventsDetected), float64(events))
 	row.PPV = ratio(float64(row.TruePositives), float64(row.ScoredEpisodes))
-	row.MedianDelayS = median(s.delays)
-	row.P90DelayS = quantile(0.9, s.delays)
+	row.MedianDelayS = stats.Median(s.delays)
+	row.P90DelayS = stats.Quantile(0.9, s.delays)
 	return row
 }
 
@@ -722,30 +723,6 @@ func coveredTime(ivs, segs [][2]float64) float64 {
 	}
 	flush(cur)
 	return total
-}
-
-// median of x (sorted in place); NaN when empty.
-func median(x []float64) float64 { return quantile(0.5, x) }
-
-// quantile of x by linear interpolation between order statistics (sorted
-// in place); NaN when empty.
-func quantile(p float64, x []float64) float64 {
-	if len(x) == 0 {
-		return math.NaN()
-	}
-	sort.Float64s(x)
-	if len(x) == 1 {
-		return x[0]
-	}
-	// Interpolate at (n-1)p, the usual convention (the median of an even
-	// count is the mean of the middle two).
-	h := p * float64(len(x)-1)
-	lo := math.Floor(h)
-	i := int(lo)
-	if i+1 >= len(x) {
-		return x[len(x)-1]
-	}
-	return x[i] + (h-lo)*(x[i+1]-x[i])
 }
 
 // markPareto marks the rows no other row dominates: fewer or equal alarms
