@@ -4,12 +4,14 @@ import (
 	"fmt"
 	"io"
 	"math"
+
+	"github.com/pulsefleet/pulsefleet/chart"
 )
 
 // WriteCurveSVG plots the pairs (reference SpO2 against R, one colour per
 // subject) with the fitted curve over its valid range.
 func (r *Result) WriteCurveSVG(w io.Writer) error {
-	c := &chart{
+	c := &figure{
 		title:  fmt.Sprintf("Calibration %s (%s)", r.Curve.CurveName(), r.Curve.Model),
 		xLabel: "ratio of ratios R (dimensionless)",
 		yLabel: "SpO2 (%)",
@@ -30,7 +32,7 @@ func (r *Result) WriteCurveSVG(w io.Writer) error {
 		line = append(line, point{x, y})
 		c.yMin, c.yMax = math.Min(c.yMin, y), math.Max(c.yMax, y)
 	}
-	c.series = append(c.series, series{name: "fitted curve", color: "#D55E00", points: line, line: true})
+	c.series = append(c.series, series{name: "fitted curve", color: chart.Vermillion, points: line, line: true})
 	c.subtitle = fmt.Sprintf("%s, valid for R in [%.4g, %.4g]", r.Curve.Equation(), r.Curve.RatioMin, r.Curve.RatioMax)
 	c.notes = []string{fmt.Sprintf("n = %d, Arms = %.2f %%", r.Fit.N, r.Fit.ArmsPct), "(in sample)"}
 	return c.write(w)
@@ -41,7 +43,7 @@ func (r *Result) WriteCurveSVG(w io.Writer) error {
 func (r *Result) subjectSeries(at func(i int) point, fallback string) []series {
 	subs := subjects(r.Pairs)
 	if len(subs) == 0 {
-		s := series{name: fallback, color: palette[0]}
+		s := series{name: fallback, color: chart.Blue}
 		for i := range r.Pairs {
 			s.points = append(s.points, at(i))
 		}
@@ -51,7 +53,7 @@ func (r *Result) subjectSeries(at func(i int) point, fallback string) []series {
 	out := make([]series, len(subs))
 	for k, sub := range subs {
 		idx[sub] = k
-		out[k] = series{name: sub, color: palette[k%len(palette)]}
+		out[k] = series{name: sub, color: chart.Color(k)}
 	}
 	for i, p := range r.Pairs {
 		k := idx[p.Subject]
@@ -72,7 +74,7 @@ func (r *Result) WriteBlandAltmanSVG(w io.Writer, heldOut bool) error {
 		}
 		pred, st, what = r.LOSO.Predicted, r.LOSO.Pooled, "leave-one-subject-out"
 	}
-	c := &chart{
+	c := &figure{
 		title:  fmt.Sprintf("Bland-Altman, %s (%s)", r.Curve.CurveName(), what),
 		xLabel: "mean of predicted and reference SpO2 (%)",
 		yLabel: "predicted - reference SpO2 (%)",
@@ -92,8 +94,8 @@ func (r *Result) WriteBlandAltmanSVG(w io.Writer, heldOut bool) error {
 	}
 	c.series = append(c.series,
 		hline(fmt.Sprintf("bias %.2f %%", st.BiasPct), "#333333", "", st.BiasPct),
-		hline(fmt.Sprintf("bias + 1.96 SD = %.2f %%", st.LoAHigh), "#D55E00", "6 4", st.LoAHigh),
-		hline(fmt.Sprintf("bias - 1.96 SD = %.2f %%", st.LoALow), "#D55E00", "6 4", st.LoALow),
+		hline(fmt.Sprintf("bias + 1.96 SD = %.2f %%", st.LoAHigh), chart.Vermillion, "6 4", st.LoAHigh),
+		hline(fmt.Sprintf("bias - 1.96 SD = %.2f %%", st.LoALow), chart.Vermillion, "6 4", st.LoALow),
 	)
 	c.subtitle = "limits of agreement: bias -/+ 1.96 SD (population SD of the differences)"
 	c.notes = []string{fmt.Sprintf("n = %d, SD = %.2f %%", st.N, st.SDPct), fmt.Sprintf("Arms = %.2f %%", st.ArmsPct)}

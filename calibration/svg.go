@@ -2,24 +2,17 @@ package calibration
 
 import (
 	"bytes"
-	"encoding/xml"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
 	"io"
-	"math"
-)
 
-// A small, dependency-free SVG chart: one plot area with ticked, labelled
-// axes, scatter series, lines and a legend. Enough for the calibration curve
-// and the Bland-Altman plot; not a plotting library.
+	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/chart"
+)
 
 const (
 	svgW, svgH                         = 780, 440
 	padLeft, padRight, padTop, padBott = 70, 200, 48, 60
 )
-
-// palette is colour-blind-safe (Okabe-Ito order), one colour per subject.
-var palette = []string{"#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000"}
 
 type point struct{ x, y float64 }
 
@@ -31,7 +24,11 @@ type series struct {
 	dash   string // stroke-dasharray for lines
 }
 
-type chart struct {
+// figure is a small SVG chart: one plot area with ticked, labelled axes,
+// scatter series, lines and a legend, on package chart's palette, ticks and
+// escaping. Enough for the calibration curve and the Bland-Altman plot; not
+// a plotting library.
+type figure struct {
 	title, subtitle        string
 	xLabel, yLabel         string
 	xMin, xMax, yMin, yMax float64
@@ -39,47 +36,10 @@ type chart struct {
 	notes                  []string // text lines drawn at the top right of the plot area
 }
 
-// niceTicks returns ticks at 1, 2 or 5 times a power of ten covering
-// [lo, hi] with about n intervals, and the rounded bounds.
-func niceTicks(lo, hi float64, n int) (ticks []float64, nlo, nhi float64) {
-	if !(hi > lo) {
-		lo, hi = lo-1, hi+1
-	}
-	raw := (hi - lo) / float64(n)
-	p := math.Pow(10, math.Floor(math.Log10(raw)))
-	step := p
-	for _, m := range []float64{1, 2, 5, 10} {
-		if m*p >= raw {
-			step = m * p
-			break
-		}
-	}
-	nlo = math.Floor(lo/step) * step
-	nhi = math.Ceil(hi/step) * step
-	for v := nlo; v <= nhi+step/2; v += step {
-		ticks = append(ticks, math.Round(v/step)*step)
-	}
-	return ticks, nlo, nhi
-}
-
-func xmlEscape(s string) string {
-	var b bytes.Buffer
-	_ = xml.EscapeText(&b, []byte(s))
-	return b.String()
-}
-
-func fmtTick(v float64) string {
-	s := fmt.Sprintf("%.6g", v)
-	if s == "-0" {
-		return "0"
-	}
-	return s
-}
-
-// write renders the chart as a standalone SVG document.
-func (c *chart) write(w io.Writer) error {
-	xt, x0, x1 := niceTicks(c.xMin, c.xMax, 6)
-	yt, y0, y1 := niceTicks(c.yMin, c.yMax, 6)
+// write renders the figure as a standalone SVG document.
+func (c *figure) write(w io.Writer) error {
+	xt, x0, x1 := chart.Ticks(c.xMin, c.xMax, 6, chart.Steps125)
+	yt, y0, y1 := chart.Ticks(c.yMin, c.yMax, 6, chart.Steps125)
 	pw := float64(svgW - padLeft - padRight)
 	ph := float64(svgH - padTop - padBott)
 	px := func(x float64) float64 { return padLeft + (x-x0)/(x1-x0)*pw }
@@ -87,26 +47,26 @@ func (c *chart) write(w io.Writer) error {
 	var b bytes.Buffer
 	h := svgH + caution.SVGNoteHeight
 	fmt.Fprintf(&b, `<svg xmlns="http://www.w3.org/2000/svg" width="%d" height="%d" viewBox="0 0 %d %d" font-family="sans-serif" font-size="12">`+"\n", svgW, h, svgW, h)
-	fmt.Fprintf(&b, `<title>%s</title>`+"\n", xmlEscape(c.title))
+	fmt.Fprintf(&b, `<title>%s</title>`+"\n", chart.Escape(c.title))
 	fmt.Fprintf(&b, `<rect width="100%%" height="100%%" fill="#fff"/>`+"\n")
-	fmt.Fprintf(&b, `<text x="%d" y="20" font-size="15" font-weight="bold">%s</text>`+"\n", padLeft, xmlEscape(c.title))
+	fmt.Fprintf(&b, `<text x="%d" y="20" font-size="15" font-weight="bold">%s</text>`+"\n", padLeft, chart.Escape(c.title))
 	if c.subtitle != "" {
-		fmt.Fprintf(&b, `<text x="%d" y="38">%s</text>`+"\n", padLeft, xmlEscape(c.subtitle))
+		fmt.Fprintf(&b, `<text x="%d" y="38">%s</text>`+"\n", padLeft, chart.Escape(c.subtitle))
 	}
 	// grid and ticks
 	for _, t := range xt {
 		x := px(t)
 		fmt.Fprintf(&b, `<line x1="%.1f" y1="%d" x2="%.1f" y2="%.1f" stroke="#e4e4e4"/>`, x, padTop, x, padTop+ph)
-		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f" text-anchor="middle">%s</text>`+"\n", x, padTop+ph+16, fmtTick(t))
+		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f" text-anchor="middle">%s</text>`+"\n", x, padTop+ph+16, chart.TickLabel(t))
 	}
 	for _, t := range yt {
 		y := py(t)
 		fmt.Fprintf(&b, `<line x1="%d" y1="%.1f" x2="%.1f" y2="%.1f" stroke="#e4e4e4"/>`, padLeft, y, padLeft+pw, y)
-		fmt.Fprintf(&b, `<text x="%d" y="%.1f" text-anchor="end">%s</text>`+"\n", padLeft-6, y+4, fmtTick(t))
+		fmt.Fprintf(&b, `<text x="%d" y="%.1f" text-anchor="end">%s</text>`+"\n", padLeft-6, y+4, chart.TickLabel(t))
 	}
 	fmt.Fprintf(&b, `<rect x="%d" y="%d" width="%.1f" height="%.1f" fill="none" stroke="#333"/>`+"\n", padLeft, padTop, pw, ph)
-	fmt.Fprintf(&b, `<text x="%.1f" y="%d" text-anchor="middle">%s</text>`+"\n", padLeft+pw/2, svgH-18, xmlEscape(c.xLabel))
-	fmt.Fprintf(&b, `<text x="16" y="%.1f" text-anchor="middle" transform="rotate(-90 16 %.1f)">%s</text>`+"\n", padTop+ph/2, padTop+ph/2, xmlEscape(c.yLabel))
+	fmt.Fprintf(&b, `<text x="%.1f" y="%d" text-anchor="middle">%s</text>`+"\n", padLeft+pw/2, svgH-18, chart.Escape(c.xLabel))
+	fmt.Fprintf(&b, `<text x="16" y="%.1f" text-anchor="middle" transform="rotate(-90 16 %.1f)">%s</text>`+"\n", padTop+ph/2, padTop+ph/2, chart.Escape(c.yLabel))
 	// data, clipped to the plot area
 	fmt.Fprintf(&b, `<clipPath id="area"><rect x="%d" y="%d" width="%.1f" height="%.1f"/></clipPath><g clip-path="url(#area)">`+"\n", padLeft, padTop, pw, ph)
 	for _, s := range c.series {
@@ -141,11 +101,11 @@ func (c *chart) write(w io.Writer) error {
 		} else {
 			fmt.Fprintf(&b, `<circle cx="%.1f" cy="%.1f" r="3.5" fill="%s"/>`, lx+9, ly-4, s.color)
 		}
-		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f">%s</text>`+"\n", lx+24, ly, xmlEscape(s.name))
+		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f">%s</text>`+"\n", lx+24, ly, chart.Escape(s.name))
 		ly += 16
 	}
 	for _, n := range c.notes {
-		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f">%s</text>`+"\n", padLeft+pw+12, ly, xmlEscape(n))
+		fmt.Fprintf(&b, `<text x="%.1f" y="%.1f">%s</text>`+"\n", padLeft+pw+12, ly, chart.Escape(n))
 		ly += 16
 	}
 	b.WriteString(caution.SVGNote(padLeft, svgH+6) + "\n")

@@ -2,19 +2,16 @@ package tune
 
 import (
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
-	"html"
 	"math"
 	"slices"
 	"strconv"
 	"strings"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/chart"
 	"github.com/pulsefleet/pulsefleet/estimator"
 )
-
-// Okabe-Ito colours (a colour-blind-safe palette, common practice).
-var palette = []string{"#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000", "#F0E442"}
 
 // plot is a minimal SVG chart: a frame, linear axes with ticks, and marks.
 type plot struct {
@@ -30,9 +27,9 @@ type plot struct {
 func newPlot(title, xlabel, ylabel string, x0, x1, y0, y1 float64) *plot {
 	p := &plot{w: 900, h: 430, left: 70, right: 20, top: 40, bot: 55,
 		title: title, xlabel: xlabel, ylabel: ylabel}
-	p.xticks, p.x0, p.x1 = niceTicks(x0, x1)
-	p.yticks, p.y0, p.y1 = niceTicks(y0, y1)
-	p.xfmt, p.yfmt = tickLabel, tickLabel
+	p.xticks, p.x0, p.x1 = chart.Ticks(x0, x1, 5, chart.Steps1225)
+	p.yticks, p.y0, p.y1 = chart.Ticks(y0, y1, 5, chart.Steps1225)
+	p.xfmt, p.yfmt = chart.TickLabel, chart.TickLabel
 	return p
 }
 
@@ -46,7 +43,7 @@ func (p *plot) Y(y float64) float64 {
 
 func (p *plot) frame() {
 	fmt.Fprintf(&p.b, `<rect x="0" y="0" width="%g" height="%g" fill="#ffffff"/>`, p.w, p.h)
-	fmt.Fprintf(&p.b, `<text x="%g" y="22" font-size="15" font-weight="bold">%s</text>`, p.left, html.EscapeString(p.title))
+	fmt.Fprintf(&p.b, `<text x="%g" y="22" font-size="15" font-weight="bold">%s</text>`, p.left, chart.Escape(p.title))
 	for _, t := range p.yticks {
 		y := p.Y(t)
 		fmt.Fprintf(&p.b, `<line x1="%g" y1="%.1f" x2="%g" y2="%.1f" stroke="#e4e4e4"/>`, p.left, y, p.w-p.right, y)
@@ -60,9 +57,9 @@ func (p *plot) frame() {
 	fmt.Fprintf(&p.b, `<rect x="%g" y="%g" width="%g" height="%g" fill="none" stroke="#555555"/>`,
 		p.left, p.top, p.w-p.left-p.right, p.h-p.top-p.bot)
 	fmt.Fprintf(&p.b, `<text x="%g" y="%g" font-size="13" text-anchor="middle">%s</text>`,
-		(p.left+p.w-p.right)/2, p.h-12, html.EscapeString(p.xlabel))
+		(p.left+p.w-p.right)/2, p.h-12, chart.Escape(p.xlabel))
 	fmt.Fprintf(&p.b, `<text transform="translate(16,%g) rotate(-90)" font-size="13" text-anchor="middle">%s</text>`,
-		(p.top+p.h-p.bot)/2, html.EscapeString(p.ylabel))
+		(p.top+p.h-p.bot)/2, chart.Escape(p.ylabel))
 }
 
 func (p *plot) svg() string {
@@ -70,31 +67,6 @@ func (p *plot) svg() string {
 	return fmt.Sprintf(`<svg xmlns="http://www.w3.org/2000/svg" width="%g" height="%g" viewBox="0 0 %g %g" font-family="DejaVu Sans, Arial, sans-serif">%s%s</svg>`,
 		p.w, h, p.w, h, p.b.String(), caution.SVGNote(p.left, p.h+6))
 }
-
-// niceTicks picks about five round tick values covering [lo, hi] and
-// returns them with the widened range.
-func niceTicks(lo, hi float64) ([]float64, float64, float64) {
-	if !(hi > lo) {
-		hi = lo + 1
-	}
-	raw := (hi - lo) / 5
-	mag := math.Pow(10, math.Floor(math.Log10(raw)))
-	step := mag
-	for _, m := range []float64{1, 2, 2.5, 5, 10} {
-		if m*mag >= raw {
-			step = m * mag
-			break
-		}
-	}
-	a, b := math.Floor(lo/step)*step, math.Ceil(hi/step)*step
-	var t []float64
-	for v := a; v <= b+step/2; v += step {
-		t = append(t, math.Round(v/step)*step)
-	}
-	return t, a, b
-}
-
-func tickLabel(v float64) string { return strconv.FormatFloat(v, 'g', 6, 64) }
 
 // FrontierSVG draws alarm burden (episodes per device-day) against
 // sensitivity for every grid point; Pareto-optimal points are filled,
@@ -140,7 +112,7 @@ func FrontierSVG(res *Result) string {
 			continue
 		}
 		fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="3.5" fill="none" stroke="#888888"><title>%s</title></circle>`,
-			p.X(r.PerDeviceDay), p.Y(sens(r)), html.EscapeString(pointTitle(res, i)))
+			p.X(r.PerDeviceDay), p.Y(sens(r)), chart.Escape(pointTitle(res, i)))
 	}
 	slices.SortFunc(front, func(a, b int) int {
 		ra, rb := res.Rows[a], res.Rows[b]
@@ -161,20 +133,20 @@ func FrontierSVG(res *Result) string {
 		fmt.Fprintf(&path, "%s%.1f,%.1f ", cmd, p.X(r.PerDeviceDay), p.Y(sens(r)))
 	}
 	if len(front) > 1 {
-		fmt.Fprintf(&p.b, `<path d="%s" fill="none" stroke="%s" stroke-width="1.5"/>`, path.String(), palette[0])
+		fmt.Fprintf(&p.b, `<path d="%s" fill="none" stroke="%s" stroke-width="1.5"/>`, path.String(), chart.Blue)
 	}
 	for k, i := range front {
 		r := res.Rows[i]
 		x, y := p.X(r.PerDeviceDay), p.Y(sens(r))
-		fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="5" fill="%s"><title>%s</title></circle>`, x, y, palette[0], html.EscapeString(pointTitle(res, i)))
+		fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="5" fill="%s"><title>%s</title></circle>`, x, y, chart.Blue, chart.Escape(pointTitle(res, i)))
 		if len(front) <= 12 || k%((len(front)+11)/12) == 0 {
-			fmt.Fprintf(&p.b, `<text x="%.1f" y="%.1f" font-size="11" fill="#333333">%s</text>`, x+7, y+13, html.EscapeString(shortName(res.Points[i].Name)))
+			fmt.Fprintf(&p.b, `<text x="%.1f" y="%.1f" font-size="11" fill="#333333">%s</text>`, x+7, y+13, chart.Escape(shortName(res.Points[i].Name)))
 		}
 	}
 	// Legend.
 	lx, ly := p.w-p.right-200, p.h-p.bot-42
 	fmt.Fprintf(&p.b, `<rect x="%g" y="%g" width="192" height="36" fill="#ffffff" stroke="#cccccc"/>`, lx, ly)
-	fmt.Fprintf(&p.b, `<circle cx="%g" cy="%g" r="5" fill="%s"/><text x="%g" y="%g" font-size="12">Pareto-optimal profile</text>`, lx+12, ly+12, palette[0], lx+24, ly+16)
+	fmt.Fprintf(&p.b, `<circle cx="%g" cy="%g" r="5" fill="%s"/><text x="%g" y="%g" font-size="12">Pareto-optimal profile</text>`, lx+12, ly+12, chart.Blue, lx+24, ly+16)
 	fmt.Fprintf(&p.b, `<circle cx="%g" cy="%g" r="3.5" fill="none" stroke="#888888"/><text x="%g" y="%g" font-size="12">other grid point</text>`, lx+12, ly+27, lx+24, ly+31)
 	return p.svg()
 }
@@ -323,7 +295,7 @@ func buildLimitChart(res *Result) limitChart {
 	}
 	slices.SortFunc(order, func(a, b int) int { return cmpF(lim[a], lim[b]) })
 	for d, dv := range delays {
-		col := palette[d%len(palette)]
+		col := chart.Color(d)
 		var path strings.Builder
 		first := true
 		for _, l := range order {
@@ -344,7 +316,7 @@ func buildLimitChart(res *Result) limitChart {
 		}
 		lx, ly := p.left+12, p.top+16+float64(d)*17
 		fmt.Fprintf(&p.b, `<line x1="%g" y1="%g" x2="%g" y2="%g" stroke="%s" stroke-width="2"/><text x="%g" y="%g" font-size="12">%s</text>`,
-			lx, ly-4, lx+20, ly-4, col, lx+26, ly, html.EscapeString(label))
+			lx, ly-4, lx+20, ly-4, col, lx+26, ly, chart.Escape(label))
 	}
 	return limitChart{cond: cond, held: heldDesc, svg: p.svg()}
 }
