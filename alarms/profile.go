@@ -10,6 +10,8 @@ import (
 	"time"
 
 	"go.yaml.in/yaml/v3"
+
+	"github.com/pulsefleet/pulsefleet/yamlwalk"
 )
 
 // DefaultPauseMax is the longest alarm pause when a profile sets none
@@ -95,21 +97,10 @@ func (c *Condition) ConditionName() string {
 
 // FieldError is a profile value out of bounds or an unknown key. Path names
 // the key like conditions[0].delay.
-type FieldError struct {
-	Path string
-	Msg  string
-	Line int // line in the file, 0 if unknown
-}
-
-func (e *FieldError) Error() string {
-	if e.Line > 0 {
-		return fmt.Sprintf("%s: %s (line %d)", e.Path, e.Msg, e.Line)
-	}
-	return e.Path + ": " + e.Msg
-}
+type FieldError = yamlwalk.Error
 
 func fieldErr(path, format string, args ...any) *FieldError {
-	return &FieldError{Path: path, Msg: fmt.Sprintf(format, args...)}
+	return yamlwalk.Errorf(path, format, args...)
 }
 
 // LoadProfile reads and validates a profile file.
@@ -145,47 +136,10 @@ func ParseProfile(data []byte) (*Profile, error) {
 	return p, nil
 }
 
-// WalkMapping walks a YAML mapping node, calling fn with each key, its value
-// and its dotted path under path; it rejects duplicate keys and a node that is
-// not a mapping with a *FieldError carrying the line. Files that build on
-// profiles (tuning grids) use it too, so their errors read the same.
-func WalkMapping(n *yaml.Node, path string, fn func(key string, v *yaml.Node, path string) error) error {
-	if n.Kind != yaml.MappingNode {
-		return &FieldError{Path: orRoot(path), Msg: "want a mapping", Line: n.Line}
-	}
-	seen := map[string]bool{}
-	for i := 0; i+1 < len(n.Content); i += 2 {
-		k, v := n.Content[i], n.Content[i+1]
-		kp := k.Value
-		if path != "" {
-			kp = path + "." + k.Value
-		}
-		if seen[k.Value] {
-			return &FieldError{Path: kp, Msg: "duplicate key", Line: k.Line}
-		}
-		seen[k.Value] = true
-		if err := fn(k.Value, v, kp); err != nil {
-			var fe *FieldError
-			if errors.As(err, &fe) && fe.Line == 0 {
-				fe.Line = v.Line
-			}
-			return err
-		}
-	}
-	return nil
-}
-
-func orRoot(p string) string {
-	if p == "" {
-		return "(document)"
-	}
-	return p
-}
-
 func unknownKey(path string) error { return fieldErr(path, "unknown key") }
 
 func decodeProfile(n *yaml.Node, p *Profile) error {
-	return WalkMapping(n, "", func(key string, v *yaml.Node, path string) error {
+	return yamlwalk.Mapping(n, "", func(key string, v *yaml.Node, path string) error {
 		switch key {
 		case "name":
 			return scalarString(v, path, &p.Name)
@@ -210,10 +164,10 @@ func decodeProfile(n *yaml.Node, p *Profile) error {
 }
 
 func decodeCondition(n *yaml.Node, path string, c *Condition) error {
-	return WalkMapping(n, path, func(key string, v *yaml.Node, path string) error {
+	return yamlwalk.Mapping(n, path, func(key string, v *yaml.Node, path string) error {
 		if key == "escalate" {
 			c.Escalate = &Escalation{}
-			return WalkMapping(v, path, func(key string, v *yaml.Node, path string) error {
+			return yamlwalk.Mapping(v, path, func(key string, v *yaml.Node, path string) error {
 				return setEscalationField(c.Escalate, key, v, path)
 			})
 		}

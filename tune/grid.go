@@ -17,6 +17,7 @@ import (
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/yamlwalk"
 )
 
 // MaxPoints is the largest grid accepted (team choice: a sweep larger than
@@ -132,7 +133,7 @@ func ParseGrid(data []byte, dir string) (*Grid, error) {
 	g := &Grid{Text: append([]byte(nil), data...)}
 	var refNode *yaml.Node
 	var sweepNode *yaml.Node
-	err := alarms.WalkMapping(root.Content[0], "", func(key string, v *yaml.Node, path string) error {
+	err := yamlwalk.Mapping(root.Content[0], "", func(key string, v *yaml.Node, path string) error {
 		switch key {
 		case "base":
 			return g.decodeBase(v, dir)
@@ -220,7 +221,7 @@ func (g *Grid) decodeBase(v *yaml.Node, dir string) error {
 }
 
 func (g *Grid) decodeSweep(n *yaml.Node) error {
-	err := alarms.WalkMapping(n, "sweep", func(key string, v *yaml.Node, path string) error {
+	err := yamlwalk.Mapping(n, "sweep", func(key string, v *yaml.Node, path string) error {
 		head, _, _ := strings.Cut(key, ".")
 		switch {
 		case head == AveragingKey || head == "estimator" || strings.HasSuffix(key, "."+AveragingKey):
@@ -319,12 +320,12 @@ func setValue(p *alarms.Profile, key, val string) *setError {
 func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
 	r := &g.Reference
 	r.Grace = DefaultGrace
-	err := alarms.WalkMapping(n, "reference", func(key string, v *yaml.Node, path string) error {
+	err := yamlwalk.Mapping(n, "reference", func(key string, v *yaml.Node, path string) error {
 		switch key {
 		case "rule":
 			rule := &Rule{}
 			var haveBelow, haveFor bool
-			err := alarms.WalkMapping(v, path, func(key string, v *yaml.Node, path string) error {
+			err := yamlwalk.Mapping(v, path, func(key string, v *yaml.Node, path string) error {
 				switch key {
 				case "below":
 					f, err := strconv.ParseFloat(strings.TrimSpace(v.Value), 64)

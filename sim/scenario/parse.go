@@ -4,6 +4,7 @@ import (
 	"cmp"
 	"errors"
 	"fmt"
+	"maps"
 	"math"
 	"os"
 	"regexp"
@@ -13,6 +14,8 @@ import (
 	"time"
 
 	"go.yaml.in/yaml/v3"
+
+	"github.com/pulsefleet/pulsefleet/yamlwalk"
 )
 
 // Bounds of the file format (docs/scenarios.md).
@@ -61,19 +64,11 @@ func (p *parser) failf(n *yaml.Node, path, format string, args ...any) {
 	if p.err != nil {
 		return
 	}
-	msg := fmt.Sprintf(format, args...)
+	e := yamlwalk.Errorf(path, format, args...)
 	if n != nil {
-		p.err = fmt.Errorf("scenario: %s: %s (line %d)", path, msg, n.Line)
-	} else {
-		p.err = fmt.Errorf("scenario: %s: %s", path, msg)
+		e.Line = n.Line
 	}
-}
-
-func join(path, key string) string {
-	if path == "" {
-		return key
-	}
-	return path + "." + key
+	p.err = fmt.Errorf("scenario: %w", e)
 }
 
 // fields walks a mapping, calling each handler by key; unknown keys are
@@ -87,29 +82,34 @@ func (p *parser) fields(n *yaml.Node, path string, handlers map[string]func(v *y
 		p.failf(n, path, "want a mapping of keys")
 		return seen
 	}
-	for i := 0; i+1 < len(n.Content); i += 2 {
-		k, v := n.Content[i], n.Content[i+1]
-		h, ok := handlers[k.Value]
+	p.walk(n, path, func(key string, v *yaml.Node, kp string) error {
+		h, ok := handlers[key]
 		if !ok {
-			keys := make([]string, 0, len(handlers))
-			for name := range handlers {
-				keys = append(keys, name)
-			}
-			slices.Sort(keys)
-			p.failf(k, join(path, k.Value), "unknown key (want one of %s)", strings.Join(keys, ", "))
-			return seen
+			keys := slices.Sorted(maps.Keys(handlers))
+			return keyErr(n, key, kp, "unknown key (want one of %s)", strings.Join(keys, ", "))
 		}
-		if seen[k.Value] {
-			p.failf(k, join(path, k.Value), "given twice")
-			return seen
-		}
-		seen[k.Value] = true
-		h(v, join(path, k.Value))
-		if p.err != nil {
-			return seen
-		}
-	}
+		seen[key] = true
+		h(v, kp)
+		return p.err
+	})
 	return seen
+}
+
+// walk runs yamlwalk.Mapping over n, keeping its first error as the
+// parser's (fn returns p.err to stop the walk at a handler's failure).
+func (p *parser) walk(n *yaml.Node, path string, fn func(key string, v *yaml.Node, path string) error) {
+	if err := yamlwalk.Mapping(n, path, fn); err != nil && p.err == nil {
+		p.err = fmt.Errorf("scenario: %w", err)
+	}
+}
+
+// keyErr is an error about key itself (not its value), at the key's line.
+func keyErr(n *yaml.Node, key, path, format string, args ...any) error {
+	e := yamlwalk.Errorf(path, format, args...)
+	if k := yamlwalk.Key(n, key); k != nil {
+		e.Line = k.Line
+	}
+	return e
 }
 
 func (p *parser) str(n *yaml.Node, path string, maxLen int) string {
@@ -212,16 +212,14 @@ func (p *parser) labels(n *yaml.Node, path string, into map[string]string) {
 		p.failf(n, path, "want a mapping of label: value")
 		return
 	}
-	for i := 0; i+1 < len(n.Content); i += 2 {
-		k, v := n.Content[i], n.Content[i+1]
-		kp := join(path, k.Value)
-		if len(k.Value) < 1 || len(k.Value) > 32 {
-			p.failf(k, kp, "label key of %d characters, want 1..32", len(k.Value))
-			return
+	p.walk(n, path, func(key string, v *yaml.Node, kp string) error {
+		if len(key) < 1 || len(key) > 32 {
+			return keyErr(n, key, kp, "label key of %d characters, want 1..32", len(key))
 		}
-		into[k.Value] = p.str(v, kp, 64)
-	}
-	if len(into) > 8 {
+		into[key] = p.str(v, kp, 64)
+		return p.err
+	})
+	if p.err == nil && len(into) > 8 {
 		p.failf(n, path, "%d labels, want at most 8", len(into))
 	}
 }
@@ -341,11 +339,11 @@ func (p *parser) scenario(n *yaml.Node) *Scenario {
 			return nil
 		}
 		if !got["id"] {
-			p.failf(dn, join(path, "id"), "required key missing")
+			p.failf(dn, yamlwalk.Join(path, "id"), "required key missing")
 			return nil
 		}
 		if j, dup := index[d.ID]; dup {
-			p.failf(dn, join(path, "id"), "%q already used by devices[%d]", d.ID, j)
+			p.failf(dn, yamlwalk.Join(path, "id"), "%q already used by devices[%d]", d.ID, j)
 			return nil
 		}
 		index[d.ID] = i
@@ -392,7 +390,7 @@ func (p *parser) events(n *yaml.Node, sc *Scenario, index map[string]int) {
 					"recover": func(v *yaml.Node, kp string) { ev.Recover = p.dur(v, kp, 0, time.Hour) },
 				})
 				if p.err == nil && !got["to"] {
-					p.failf(v, join(kp, "to"), "required key missing")
+					p.failf(v, yamlwalk.Join(kp, "to"), "required key missing")
 				}
 			}
 		}
@@ -412,7 +410,7 @@ func (p *parser) events(n *yaml.Node, sc *Scenario, index map[string]int) {
 				}
 				got := p.fields(v, kp, h)
 				if p.err == nil && !got["for"] {
-					p.failf(v, join(kp, "for"), "required key missing")
+					p.failf(v, yamlwalk.Join(kp, "for"), "required key missing")
 				}
 			}
 		}
@@ -441,13 +439,13 @@ func (p *parser) events(n *yaml.Node, sc *Scenario, index map[string]int) {
 		}
 		switch {
 		case !seen["at"]:
-			p.failf(en, join(path, "at"), "required key missing")
+			p.failf(en, yamlwalk.Join(path, "at"), "required key missing")
 		case len(targets) == 0:
-			p.failf(en, join(path, "device"), "required key missing (device or devices)")
+			p.failf(en, yamlwalk.Join(path, "device"), "required key missing (device or devices)")
 		case ev.Kind == 0:
 			p.failf(en, path, "no event kind (want one of charge, desaturate, motion, offline, perfusion, pulse, sensor_off)")
 		case sc.Duration > 0 && ev.At > sc.Duration:
-			p.failf(en, join(path, "at"), "%v is after the scenario's duration %v", ev.At, sc.Duration)
+			p.failf(en, yamlwalk.Join(path, "at"), "%v is after the scenario's duration %v", ev.At, sc.Duration)
 		}
 		if p.err != nil {
 			return
@@ -455,7 +453,7 @@ func (p *parser) events(n *yaml.Node, sc *Scenario, index map[string]int) {
 		for _, id := range targets {
 			j, ok := index[id]
 			if !ok {
-				p.failf(en, join(path, "device"), "%q is not a device of this scenario", id)
+				p.failf(en, yamlwalk.Join(path, "device"), "%q is not a device of this scenario", id)
 				return
 			}
 			sc.Devices[j].Events = append(sc.Devices[j].Events, ev)
