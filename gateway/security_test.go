@@ -629,15 +629,16 @@ func TestFloodOfMalformedMessagesLeavesHonestStreamsWhole(t *testing.T) {
 	d.waitAck(1)
 	h.stop()
 	// The refused credentials were audited within the per-host limit (all
-	// flooders share 127.0.0.1; the test may straddle a minute boundary).
+	// flooders share 127.0.0.1; the test may straddle minute boundaries, and
+	// take minutes under the race detector on a loaded machine).
 	db, err := store.Open(h.dir, store.Options{ReadOnly: true})
 	if err != nil {
 		t.Fatal(err)
 	}
 	defer db.Close()
 	es, _ := db.Audit(0, "auth.", 0)
-	if len(es) == 0 || len(es) > 2*10 {
-		t.Errorf("%d auth audit entries after the flood, want 1..20 (10 per host per minute)", len(es))
+	if n := 10 * (1 + int(time.Since(time.UnixMilli(base)).Minutes())); len(es) == 0 || len(es) > n {
+		t.Errorf("%d auth audit entries after the flood, want 1..%d (10 per host per minute)", len(es), n)
 	}
 }
 
