@@ -16,6 +16,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/progress"
 )
 
 const estimateSummary = `Estimate SpO2, pulse rate, perfusion index and signal quality, one row per
@@ -467,22 +468,15 @@ func inferRate(t []float64, line int) (float64, error) {
 // progressWriter reports progress on w when it is a terminal and the input
 // is large (over 20 MB), at most once a second; otherwise it does nothing.
 func progressWriter(w io.Writer, size int64) func(seconds int64, done bool) {
-	f, ok := w.(*os.File)
-	if !ok || size < 20<<20 {
+	line := progress.New(w, time.Second)
+	if !line.Terminal() || size < 20<<20 {
 		return func(int64, bool) {}
 	}
-	if fi, err := f.Stat(); err != nil || fi.Mode()&os.ModeCharDevice == 0 {
-		return func(int64, bool) {}
-	}
-	var last time.Time
 	return func(seconds int64, done bool) {
 		if done {
-			fmt.Fprintln(f)
+			line.End("")
 			return
 		}
-		if now := time.Now(); now.Sub(last) >= time.Second {
-			last = now
-			fmt.Fprintf(f, "\restimate: %d s of signal done", seconds)
-		}
+		line.Draw("estimate: %d s of signal done", seconds)
 	}
 }

@@ -12,9 +12,8 @@ import (
 	"strings"
 	"time"
 
-	"golang.org/x/term"
-
 	"github.com/pulsefleet/pulsefleet/export"
+	"github.com/pulsefleet/pulsefleet/progress"
 	"github.com/pulsefleet/pulsefleet/store"
 )
 
@@ -149,8 +148,8 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 		defer db.Close()
 		src = db
 	}
-	progress := newExportProgress(s.err)
-	opt.Progress = progress.update
+	prog := newExportProgress(s.err)
+	opt.Progress = prog.update
 	return writeExportFile(o.out, s.out, func(w io.Writer) error {
 		var wr export.Writer
 		if o.format == "csv" {
@@ -159,7 +158,7 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 			wr = export.NewFHIRWriter(w, export.FHIROptions{Timestamp: time.Now(), BaseURL: o.base, SkipPI: o.noPI})
 		}
 		st, err := export.Run(ctx, src, wr, opt)
-		progress.finish(st, err)
+		prog.finish(st, err)
 		return err
 	})
 }
@@ -210,37 +209,25 @@ func writeExportFile(path string, stdout io.Writer, write func(io.Writer) error)
 
 // exportProgress prints a one-line status to a terminal, at most every 200 ms.
 type exportProgress struct {
-	w     io.Writer // nil when stderr is not a terminal
+	line  *progress.Line
 	start time.Time
-	last  time.Time
 }
 
 func newExportProgress(stderr io.Writer) *exportProgress {
-	p := &exportProgress{start: time.Now()}
-	if f, ok := stderr.(*os.File); ok && term.IsTerminal(int(f.Fd())) {
-		p.w = f
-	}
-	return p
+	return &exportProgress{line: progress.New(stderr, 200*time.Millisecond), start: time.Now()}
 }
 
 func (p *exportProgress) update(pr export.Progress) {
-	if p.w == nil || pr.Done {
-		return
-	}
-	if now := time.Now(); now.Sub(p.last) >= 200*time.Millisecond {
-		p.last = now
-		fmt.Fprintf(p.w, "\r\x1b[Kexport: %d points, device %d/%d %s", pr.Points, pr.DeviceIndex, pr.DeviceCount, pr.Device)
+	if !pr.Done {
+		p.line.Draw("export: %d points, device %d/%d %s", pr.Points, pr.DeviceIndex, pr.DeviceCount, pr.Device)
 	}
 }
 
 func (p *exportProgress) finish(st export.Stats, err error) {
-	if p.w == nil {
-		return
-	}
 	secs := time.Since(p.start).Seconds()
 	state := "done"
 	if err != nil {
 		state = "stopped"
 	}
-	fmt.Fprintf(p.w, "\r\x1b[Kexport %s: %d points of %d devices in %.1f s (%.0f points/s)\n", state, st.Points, st.Devices, secs, float64(st.Points)/max(secs, 1e-9))
+	p.line.End("export %s: %d points of %d devices in %.1f s (%.0f points/s)", state, st.Points, st.Devices, secs, float64(st.Points)/max(secs, 1e-9))
 }

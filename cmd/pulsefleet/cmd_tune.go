@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/progress"
 	"github.com/pulsefleet/pulsefleet/store"
 	"github.com/pulsefleet/pulsefleet/tune"
 )
@@ -335,46 +336,35 @@ func tuneDescribeValues(res *tune.Result, i int) string {
 // tuneProgress draws a bar on a terminal, or prints a plain line every 25 %
 // otherwise, headed by its label.
 type tuneProgress struct {
-	w      io.Writer
-	label  string
-	tty    bool
-	start  time.Time
-	last   int // last quarter printed (plain)
-	drawn  bool
-	closed bool
+	line  *progress.Line
+	label string
+	start time.Time
+	last  int // last quarter printed (plain)
+	done  bool
 }
 
 func newTuneProgress(w io.Writer, label string) *tuneProgress {
-	p := &tuneProgress{w: w, label: label, start: time.Now(), last: -1}
-	if f, ok := w.(*os.File); ok {
-		if st, err := f.Stat(); err == nil && st.Mode()&os.ModeCharDevice != 0 {
-			p.tty = true
-		}
-	}
-	return p
+	return &tuneProgress{line: progress.New(w, 0), label: label, start: time.Now(), last: -1}
 }
 
 func (p *tuneProgress) update(done, total int) {
-	if total <= 0 || p.closed {
+	if total <= 0 || p.done {
 		return
 	}
 	frac := float64(done) / float64(total)
-	if p.tty {
+	if p.line.Terminal() {
 		const width = 30
 		n := int(frac * width)
-		fmt.Fprintf(p.w, "\r%-8s [%s%s] %3.0f%% %5.1fs", p.label, strings.Repeat("#", n), strings.Repeat(".", width-n), 100*frac, time.Since(p.start).Seconds())
-		p.drawn = true
+		p.line.Draw("%-8s [%s%s] %3.0f%% %5.1fs", p.label, strings.Repeat("#", n), strings.Repeat(".", width-n), 100*frac, time.Since(p.start).Seconds())
 		return
 	}
 	if q := int(frac * 4); q > p.last {
 		p.last = q
-		fmt.Fprintf(p.w, "%s: %d/%d units done (%.0f%%)\n", p.label, done, total, 100*frac)
+		p.line.Println("%s: %d/%d units done (%.0f%%)", p.label, done, total, 100*frac)
 	}
 }
 
 func (p *tuneProgress) finish() {
-	if p.tty && p.drawn {
-		fmt.Fprintln(p.w)
-	}
-	p.closed = true
+	p.line.End("")
+	p.done = true
 }
