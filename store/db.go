@@ -21,7 +21,8 @@ const FileName = "pulsefleet.db"
 // schemaVersion is written to meta/schema; Open refuses a newer one.
 const schemaVersion = 1
 
-// Value format versions (the first byte of every stored value).
+// Value format versions: the first byte of every value this package encodes
+// (doc.go names the three values stored as given, without one).
 const (
 	vJSON   = 1
 	vPoint  = 1

@@ -3,21 +3,26 @@
 // accepted data message), sessions, raw captures, alarm episodes and alarm
 // state, the audit log, alarm profiles, calibrations and credentials.
 //
-// Layout (bucket paths; keys are big-endian so cursors range-scan in order;
-// every value starts with a version byte):
+// Layout (bucket paths; keys are big-endian so cursors range-scan in order).
+// Every value this package encodes starts with a format version byte (the
+// v* constants in db.go); three kinds are stored as given and carry none:
+// the meta entries (schema version, store id), the alarm-engine snapshots
+// (JSON of alarms.State, whose own "version" field alarms.Restore checks)
+// and the calibration assignments (the text "name@vN").
 //
-//	meta                          schema version, store_id (also in the identity file pulsefleet.id beside the store)
+//	meta                          schema version (uint32), store_id (text; also in the identity file pulsefleet.id beside the store)
 //	devices/ID                    Device (JSON), written when its description changes
 //	cursors/ID                    Cursor (binary): resume point and counters, written with every batch
+//	recent/GEN/TIME_MS|DEVIDX     Point, the recent log (tail.go) until compacted into trend/
 //	trend/ID/DAY/TIME_MS          Point (24 bytes binary)
 //	ledger/DAY/ARRIVAL_MS|DEVIDX|SEQ  Chunk (binary), time-first so writing is appending
 //	raw/ID/DAY/SEQ                RawCapture (binary)
 //	sessions/ID/START_MS          Session (JSON)
 //	episodes/EPISODE_ID           Episode (JSON)
-//	alarmstate/ID                 opaque alarm-engine snapshot
+//	alarmstate/ID                 alarm-engine snapshot, stored as given (no version byte)
 //	audit/AUDIT_ID                AuditEntry (JSON)
-//	profiles/ID | "*default*"     profile YAML
-//	calibrations/NAME/VERSION     Calibration (JSON); calassign/TARGET -> "name@vN"
+//	profiles/ID | "*default*"     profile YAML (after the version byte)
+//	calibrations/NAME/VERSION     Calibration (JSON); calassign/TARGET -> "name@vN" (no version byte)
 //	tokens/HASH                   Token (JSON; only the SHA-256 of a secret is kept)
 //
 // DAY is the number of whole days since the Unix epoch (UTC, uint32), so
