@@ -30,15 +30,6 @@ func Names() []string {
 	return names
 }
 
-// Source returns the YAML text of a shipped scenario.
-func Source(name string) ([]byte, error) {
-	b, err := files.ReadFile(name + ".yaml")
-	if err != nil {
-		return nil, fmt.Errorf("no shipped scenario %q (have %s)", name, strings.Join(Names(), ", "))
-	}
-	return b, nil
-}
-
 // Load returns a shipped scenario by name, or reads a scenario file when
 // nameOrFile is not a shipped name.
 func Load(nameOrFile string) (*scenario.Scenario, error) {
