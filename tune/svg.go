@@ -238,38 +238,7 @@ func buildLimitChart(res *Result) limitChart {
 	for i, v := range limits {
 		lim[i], _ = strconv.ParseFloat(v, 64)
 	}
-	// y[delay][limit]
-	y := make([][]float64, len(delays))
-	ymax, ymin := 0.0, math.Inf(1)
-	for d := range delays {
-		y[d] = make([]float64, len(limits))
-		for l := range limits {
-			y[d][l] = math.NaN()
-		}
-	}
-	for i, pt := range res.Points {
-		ok := true
-		for k := range g.Sweep {
-			if held[k] != "" && pt.Values[k] != held[k] {
-				ok = false
-			}
-		}
-		if !ok {
-			continue
-		}
-		l := slices.Index(limits, pt.Values[li])
-		d := 0
-		if di >= 0 {
-			d = slices.Index(delays, pt.Values[di])
-		}
-		y[d][l] = res.Rows[i].PerDeviceDay
-		if finite(y[d][l]) {
-			ymax, ymin = max(ymax, y[d][l]), min(ymin, y[d][l])
-		}
-	}
-	if math.IsInf(ymin, 1) {
-		ymin = 0
-	}
+	y, ymin, ymax := limitLines(res, held, li, di, limits, delays)
 	xlo, xhi := slices.Min(lim), slices.Max(lim)
 	if xhi == xlo {
 		xlo, xhi = xlo-1, xhi+1
@@ -319,6 +288,44 @@ func buildLimitChart(res *Result) limitChart {
 			lx, ly-4, lx+20, ly-4, col, lx+26, ly, chart.Escape(label))
 	}
 	return limitChart{cond: cond, held: heldDesc, svg: p.svg()}
+}
+
+// limitLines is alarms per device-day by [delay][limit] (NaN where no grid
+// point has that pair with the other keys held), and its finite range.
+func limitLines(res *Result, held []string, li, di int, limits, delays []string) (y [][]float64, ymin, ymax float64) {
+	g := res.Grid
+	y = make([][]float64, len(delays))
+	ymax, ymin = 0.0, math.Inf(1)
+	for d := range delays {
+		y[d] = make([]float64, len(limits))
+		for l := range limits {
+			y[d][l] = math.NaN()
+		}
+	}
+	for i, pt := range res.Points {
+		ok := true
+		for k := range g.Sweep {
+			if held[k] != "" && pt.Values[k] != held[k] {
+				ok = false
+			}
+		}
+		if !ok {
+			continue
+		}
+		l := slices.Index(limits, pt.Values[li])
+		d := 0
+		if di >= 0 {
+			d = slices.Index(delays, pt.Values[di])
+		}
+		y[d][l] = res.Rows[i].PerDeviceDay
+		if finite(y[d][l]) {
+			ymax, ymin = max(ymax, y[d][l]), min(ymin, y[d][l])
+		}
+	}
+	if math.IsInf(ymin, 1) {
+		ymin = 0
+	}
+	return y, ymin, ymax
 }
 
 // baseValue is the value of s the base profile has, when it is among the

@@ -4,15 +4,12 @@ import (
 	"context"
 	"fmt"
 	"math"
-	"runtime"
 	"slices"
 	"sort"
-	"sync"
 	"sync/atomic"
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/stats"
 )
 
 // DefaultMaxGap is the longest interval between consecutive samples counted
@@ -175,15 +172,8 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	}
 	trends := sets[ref]
 	nd := len(trends)
-	for a, set := range sets {
-		if len(set) != nd {
-			return nil, fmt.Errorf("tune: trend set %d has %d devices, set %d has %d", a, len(set), ref, nd)
-		}
-		for d := range set {
-			if set[d].Device != trends[d].Device {
-				return nil, fmt.Errorf("tune: trend set %d has device %q where set %d has %q", a, set[d].Device, ref, trends[d].Device)
-			}
-		}
+	if err := checkSets(sets, ref); err != nil {
+		return nil, err
 	}
 	workers := workerCount(opt.Workers)
 	maxGap := DefaultMaxGap.Seconds()
@@ -193,71 +183,12 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	res := &Result{Grid: g, Points: pts, Rows: make([]Row, len(pts)), Devices: len(trends),
 		Scored: g.Reference.Conditions, MaxGapS: maxGap, FirstS: math.Inf(1), LastS: math.Inf(-1)}
 
-	// Distinct condition variants across the grid.
 	nc := len(g.Base.Conditions)
-	var vars []variant
-	index := make([]map[condKey]int, nc)
-	res.ptVar = make([][]int, len(pts))
-	for i, pt := range pts {
-		res.ptVar[i] = make([]int, nc)
-		for c := range nc {
-			pc := pt.Profile.Conditions[c]
-			k := condKey{c: pc}
-			k.c.Escalate = nil
-			if pc.Escalate != nil {
-				k.esc, k.hasEsc = *pc.Escalate, true
-			}
-			if index[c] == nil {
-				index[c] = map[condKey]int{}
-			}
-			v, ok := index[c][k]
-			if !ok {
-				one := &alarms.Profile{Name: g.Base.Name, PauseMax: g.Base.PauseMax,
-					Conditions: []alarms.Condition{pt.Profile.Clone().Conditions[c]}}
-				v = len(vars)
-				vars = append(vars, variant{cond: c, profile: one})
-				index[c][k] = v
-			}
-			res.ptVar[i][c] = v
-		}
-	}
+	vars, ptVar := conditionVariants(g, pts)
+	res.ptVar = ptVar
 	res.Variants = len(vars)
 
-	// Per-device facts: monitored segments, last sample, reference events.
-	devs := make([]devInfo, nd)
-	byName := map[string]int{}
-	for d, tr := range trends {
-		byName[tr.Device] = d
-		di := &devs[d]
-		di.name = tr.Device
-		res.Samples += len(tr.Samples)
-		di.segs, di.last = segments(tr.Samples, maxGap)
-		for _, s := range di.segs {
-			res.MonitoredS += s[1] - s[0]
-		}
-		if n := len(tr.Samples); n > 0 {
-			res.FirstS = min(res.FirstS, tr.Samples[0].T)
-			res.LastS = max(res.LastS, tr.Samples[n-1].T)
-		}
-		if r := g.Reference.Rule; r != nil {
-			di.events = RuleEvents(tr.Device, tr.Samples, *r)
-			res.Events += len(di.events)
-		}
-	}
-	if g.Reference.Rule == nil {
-		for _, ev := range g.Reference.Events {
-			d, ok := byName[ev.Device]
-			if !ok || len(trends[d].Samples) == 0 || ev.End < trends[d].Samples[0].T || ev.Start > devs[d].last {
-				res.EventsOutside++
-				continue
-			}
-			devs[d].events = append(devs[d].events, ev)
-			res.Events++
-		}
-		for d := range devs {
-			sort.SliceStable(devs[d].events, func(i, j int) bool { return devs[d].events[i].Start < devs[d].events[j].Start })
-		}
-	}
+	devs := deviceFacts(g, trends, maxGap, res)
 	scored := make([]bool, nc)
 	for _, name := range g.Reference.Conditions {
 		for c := range g.Base.Conditions {
@@ -362,6 +293,99 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	}
 	markPareto(res.Rows)
 	return res, nil
+}
+
+// checkSets makes sure every trend set has the devices of sets[ref], in
+// the same order.
+func checkSets(sets [][]alarms.Trend, ref int) error {
+	trends := sets[ref]
+	nd := len(trends)
+	for a, set := range sets {
+		if len(set) != nd {
+			return fmt.Errorf("tune: trend set %d has %d devices, set %d has %d", a, len(set), ref, nd)
+		}
+		for d := range set {
+			if set[d].Device != trends[d].Device {
+				return fmt.Errorf("tune: trend set %d has device %q where set %d has %q", a, set[d].Device, ref, trends[d].Device)
+			}
+		}
+	}
+	return nil
+}
+
+// conditionVariants lists the distinct condition settings across the grid
+// points (each run once, as a one-condition profile) and, per point and
+// condition, which variant it uses.
+func conditionVariants(g *Grid, pts []Point) (vars []variant, ptVar [][]int) {
+	nc := len(g.Base.Conditions)
+	index := make([]map[condKey]int, nc)
+	ptVar = make([][]int, len(pts))
+	for i, pt := range pts {
+		ptVar[i] = make([]int, nc)
+		for c := range nc {
+			pc := pt.Profile.Conditions[c]
+			k := condKey{c: pc}
+			k.c.Escalate = nil
+			if pc.Escalate != nil {
+				k.esc, k.hasEsc = *pc.Escalate, true
+			}
+			if index[c] == nil {
+				index[c] = map[condKey]int{}
+			}
+			v, ok := index[c][k]
+			if !ok {
+				one := &alarms.Profile{Name: g.Base.Name, PauseMax: g.Base.PauseMax,
+					Conditions: []alarms.Condition{pt.Profile.Clone().Conditions[c]}}
+				v = len(vars)
+				vars = append(vars, variant{cond: c, profile: one})
+				index[c][k] = v
+			}
+			ptVar[i][c] = v
+		}
+	}
+	return vars, ptVar
+}
+
+// deviceFacts finds each device's monitored segments, last sample and
+// reference events, and adds the totals (samples, monitored time, first and
+// last sample, events) to res.
+func deviceFacts(g *Grid, trends []alarms.Trend, maxGap float64, res *Result) []devInfo {
+	nd := len(trends)
+	devs := make([]devInfo, nd)
+	byName := map[string]int{}
+	for d, tr := range trends {
+		byName[tr.Device] = d
+		di := &devs[d]
+		di.name = tr.Device
+		res.Samples += len(tr.Samples)
+		di.segs, di.last = segments(tr.Samples, maxGap)
+		for _, s := range di.segs {
+			res.MonitoredS += s[1] - s[0]
+		}
+		if n := len(tr.Samples); n > 0 {
+			res.FirstS = min(res.FirstS, tr.Samples[0].T)
+			res.LastS = max(res.LastS, tr.Samples[n-1].T)
+		}
+		if r := g.Reference.Rule; r != nil {
+			di.events = RuleEvents(tr.Device, tr.Samples, *r)
+			res.Events += len(di.events)
+		}
+	}
+	if g.Reference.Rule == nil {
+		for _, ev := range g.Reference.Events {
+			d, ok := byName[ev.Device]
+			if !ok || len(trends[d].Samples) == 0 || ev.End < trends[d].Samples[0].T || ev.Start > devs[d].last {
+				res.EventsOutside++
+				continue
+			}
+			devs[d].events = append(devs[d].events, ev)
+			res.Events++
+		}
+		for d := range devs {
+			sort.SliceStable(devs[d].events, func(i, j int) bool { return devs[d].events[i].Start < devs[d].events[j].Start })
+		}
+	}
+	return devs
 }
 
 // variantBlock is how many condition variants one job evaluates together
@@ -480,78 +504,6 @@ func (r *runner) run(vars []variant, ids []int, samples []alarms.Sample, spans [
 	return nil
 }
 
-// workerCount is n, or runtime.GOMAXPROCS(0) when n <= 0.
-func workerCount(n int) int {
-	if n <= 0 {
-		return runtime.GOMAXPROCS(0)
-	}
-	return n
-}
-
-// startProgress reports done/total to fn from one goroutine a few times a
-// second until the returned stop is called, which waits for it and reports
-// the final count.
-func startProgress(fn func(done, total int), done *atomic.Int64, total int) (stop func()) {
-	if fn == nil {
-		return func() {}
-	}
-	fn(0, total)
-	quit := make(chan struct{})
-	var wg sync.WaitGroup
-	wg.Go(func() {
-		t := time.NewTicker(250 * time.Millisecond)
-		defer t.Stop()
-		last := 0
-		for {
-			select {
-			case <-quit:
-				return
-			case <-t.C:
-				if n := int(done.Load()); n != last {
-					last = n
-					fn(n, total)
-				}
-			}
-		}
-	})
-	return func() {
-		close(quit)
-		wg.Wait()
-		fn(int(done.Load()), total)
-	}
-}
-
-// parallel runs fn(worker, job) for jobs 0..n-1 on workers goroutines,
-// taking jobs in order. It returns the first error (or ctx's), after every
-// goroutine has returned.
-func parallel(ctx context.Context, workers, n int, fn func(w, job int) error) error {
-	var next atomic.Int64
-	var wg sync.WaitGroup
-	var once sync.Once
-	var first error
-	ctx, cancel := context.WithCancel(ctx)
-	defer cancel()
-	for w := range min(workers, max(n, 1)) {
-		wg.Go(func() {
-			for ctx.Err() == nil {
-				j := int(next.Add(1) - 1)
-				if j >= n {
-					return
-				}
-				if err := fn(w, j); err != nil {
-					once.Do(func() { first = err; cancel() })
-					return
-				}
-			}
-		})
-	}
-	wg.Wait()
-	if first != nil {
-		return first
-	}
-	return context.Cause(ctx)
-}
-
 // segments returns the monitored segments of a trend (gaps over maxGap
 // split them) and the last sample time.
 func segments(s []alarms.Sample, maxGap float64) ([][2]float64, float64) {
@@ -574,184 +526,4 @@ func segments(s []alarms.Sample, maxGap float64) ([][2]float64, float64) {
 		segs = append(segs, [2]float64{start, prev})
 	}
 	return segs, prev
-}
-
-// scorer holds one worker's buffers for scoring grid points.
-type scorer struct {
-	eps    []span
-	ivs    [4][][2]float64 // [0] any priority, [1..3] by priority
-	durs   [4][]float64
-	delays []float64
-	sc     []*span
-	tp     []bool
-}
-
-// score scores grid point pt over devs, whose episodes are res.spans[v][off+d].
-func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, grace float64) Row {
-	var row Row
-	var alarmS [4]float64
-	for p := range s.durs {
-		s.durs[p] = s.durs[p][:0]
-	}
-	s.delays = s.delays[:0]
-	events := 0
-	for d := range devs {
-		di := &devs[d]
-		s.eps = s.eps[:0]
-		for _, v := range res.ptVar[pt] {
-			s.eps = append(s.eps, res.spans[v][off+d]...)
-		}
-		for p := range s.ivs {
-			s.ivs[p] = s.ivs[p][:0]
-		}
-		s.sc = s.sc[:0]
-		for i := range s.eps {
-			ep := &s.eps[i]
-			end := ep.end
-			if end != end {
-				end = di.last
-			}
-			row.Episodes++
-			row.ByPriority[ep.prio].Episodes++
-			s.durs[0] = append(s.durs[0], end-ep.ann)
-			s.durs[ep.prio] = append(s.durs[ep.prio], end-ep.ann)
-			s.ivs[0] = append(s.ivs[0], [2]float64{ep.ann, end})
-			if ep.esc == ep.esc && ep.esc < end {
-				s.ivs[ep.prio0] = append(s.ivs[ep.prio0], [2]float64{ep.ann, ep.esc})
-				s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.esc, end})
-			} else {
-				s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.ann, end})
-			}
-			if scored[ep.cond] {
-				s.sc = append(s.sc, ep)
-			}
-		}
-		for p := range s.ivs {
-			alarmS[p] += coveredTime(s.ivs[p], di.segs)
-		}
-		// Matching (package doc): events against the scored episodes.
-		row.ScoredEpisodes += len(s.sc)
-		events += len(di.events)
-		if cap(s.tp) < len(s.sc) {
-			s.tp = make([]bool, len(s.sc))
-		}
-		tp := s.tp[:len(s.sc)]
-		clear(tp)
-		for _, ev := range di.events {
-			first := math.Inf(1)
-			for k, ep := range s.sc {
-				endK := ep.end
-				if endK != endK {
-					endK = math.Inf(1)
-				}
-				if ep.ann <= ev.End+grace && endK >= ev.Start {
-					tp[k] = true
-					first = min(first, ep.ann)
-				}
-			}
-			if !math.IsInf(first, 1) {
-				row.EventsDetected++
-				s.delays = append(s.delays, max(0, first-ev.Start))
-			}
-		}
-		for _, b := range tp {
-			if b {
-				row.TruePositives++
-			}
-		}
-	}
-	days := res.MonitoredS / 86400
-	row.PerDeviceDay = ratio(float64(row.Episodes), days)
-	row.TimeInAlarmPct = 100 * ratio(alarmS[0], res.MonitoredS)
-	row.MedianEpisodeS = stats.Median(s.durs[0])
-	for p := alarms.PriorityLow; p <= alarms.PriorityHigh; p++ {
-		b := &row.ByPriority[p]
-		b.PerDeviceDay = ratio(float64(b.Episodes), days)
-		b.TimeInAlarmPct = 100 * ratio(alarmS[p], res.MonitoredS)
-		b.MedianEpisodeS = stats.Median(s.durs[p])
-	}
-	row.Sensitivity = ratio(float64(row.EventsDetected), float64(events))
-	row.PPV = ratio(float64(row.TruePositives), float64(row.ScoredEpisodes))
-	row.MedianDelayS = stats.Median(s.delays)
-	row.P90DelayS = stats.Quantile(0.9, s.delays)
-	return row
-}
-
-func ratio(a, b float64) float64 {
-	if b == 0 {
-		return math.NaN()
-	}
-	return a / b
-}
-
-// coveredTime is the length of the union of ivs within segs (both sorted
-// by start on return; ivs is sorted in place).
-func coveredTime(ivs, segs [][2]float64) float64 {
-	if len(ivs) == 0 {
-		return 0
-	}
-	slices.SortFunc(ivs, func(a, b [2]float64) int {
-		switch {
-		case a[0] < b[0]:
-			return -1
-		case a[0] > b[0]:
-			return 1
-		}
-		return 0
-	})
-	total := 0.0
-	k := 0
-	cur := ivs[0]
-	flush := func(iv [2]float64) {
-		for k < len(segs) && segs[k][1] <= iv[0] {
-			k++
-		}
-		for j := k; j < len(segs) && segs[j][0] < iv[1]; j++ {
-			lo, hi := max(iv[0], segs[j][0]), min(iv[1], segs[j][1])
-			if hi > lo {
-				total += hi - lo
-			}
-		}
-	}
-	for _, iv := range ivs[1:] {
-		if iv[0] <= cur[1] {
-			cur[1] = max(cur[1], iv[1])
-			continue
-		}
-		flush(cur)
-		cur = iv
-	}
-	flush(cur)
-	return total
-}
-
-// markPareto marks the rows no other row dominates: fewer or equal alarms
-// per device-day with higher or equal sensitivity, one of them strictly.
-// Without events (NaN sensitivity), only the lowest burden is marked.
-func markPareto(rows []Row) {
-	sens := func(r *Row) float64 {
-		if r.Sensitivity != r.Sensitivity {
-			return 0
-		}
-		return r.Sensitivity
-	}
-	for i := range rows {
-		a := &rows[i]
-		if a.PerDeviceDay != a.PerDeviceDay {
-			continue
-		}
-		dominated := false
-		for j := range rows {
-			b := &rows[j]
-			if i == j || b.PerDeviceDay != b.PerDeviceDay {
-				continue
-			}
-			if b.PerDeviceDay <= a.PerDeviceDay && sens(b) >= sens(a) &&
-				(b.PerDeviceDay < a.PerDeviceDay || sens(b) > sens(a)) {
-				dominated = true
-				break
-			}
-		}
-		a.Pareto = !dominated
-	}
 }
