@@ -71,6 +71,53 @@ func EstimateStore(ctx context.Context, dir string, f Filter, averagingS []float
 		return nil, err
 	}
 	defer db.Close()
+	fromMS, toMS := storeRange(f)
+	est := &Estimated{AveragingS: slices.Clone(averagingS), Calibrations: map[string]string{}}
+	jobs, err := estimateJobs(db, dir, f, est)
+	if err != nil {
+		return nil, err
+	}
+
+	sets := make([][]alarms.Trend, len(averagingS))
+	for a := range sets {
+		sets[a] = make([]alarms.Trend, len(jobs))
+	}
+	var chunks, pairs, restarts, done atomic.Int64
+	stop := startProgress(opt.Progress, &done, len(jobs))
+	defer stop()
+	err = parallel(ctx, workerCount(opt.Workers), len(jobs), func(_, j int) error {
+		n, np, err := reestimate(ctx, db, dir, jobs[j], averagingS, fromMS, toMS, sets, j)
+		if err != nil {
+			return err
+		}
+		for a := range sets {
+			sets[a][j].Samples = timeOrder(sets[a][j].Samples, f)
+		}
+		restarts.Add(np.restarts)
+		chunks.Add(n)
+		pairs.Add(np.pairs)
+		done.Add(1)
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	est.Trends = sets
+	est.Chunks, est.SamplePairs = int(chunks.Load()), int(pairs.Load())
+	est.Restarts = int(restarts.Load()) / len(averagingS)
+	return est, nil
+}
+
+// estimateJob is one device to re-estimate, with its calibration.
+type estimateJob struct {
+	dev store.Device
+	cal estimator.Calibration
+}
+
+// estimateJobs picks the filter's devices (all when it names none) that
+// have raw captures in its range, with their calibrations; it lists the
+// others in est.Skipped and records the calibrations in est.
+func estimateJobs(db *store.DB, dir string, f Filter, est *Estimated) ([]estimateJob, error) {
 	all, err := db.Devices()
 	if err != nil {
 		return nil, fmt.Errorf("store %s: list devices: %w", dir, err)
@@ -91,14 +138,7 @@ func EstimateStore(ctx context.Context, dir string, f Filter, averagingS []float
 		}
 	}
 	fromMS, toMS := storeRange(f)
-
-	est := &Estimated{AveragingS: slices.Clone(averagingS), Calibrations: map[string]string{}}
-	// Which devices have captures in range, and their calibrations.
-	type job struct {
-		dev store.Device
-		cal estimator.Calibration
-	}
-	var jobs []job
+	var jobs []estimateJob
 	for _, id := range ids {
 		has := false
 		if err := db.RawCaptures(id, fromMS, toMS, func(store.RawCapture) bool { has = true; return false }); err != nil {
@@ -117,82 +157,75 @@ func EstimateStore(ctx context.Context, dir string, f Filter, averagingS []float
 			return nil, fmt.Errorf("device %s: calibration %q: %w", id, d.Calibration, err)
 		}
 		est.Calibrations[id] = applied
-		jobs = append(jobs, job{dev: d, cal: cal})
+		jobs = append(jobs, estimateJob{dev: d, cal: cal})
 	}
 	if len(jobs) == 0 {
 		return nil, fmt.Errorf("store %s has no raw captures%s (of %d devices); raw capture is on with `pulsefleet serve --capture-raw`",
 			dir, rangeNote(f), len(all))
 	}
+	return jobs, nil
+}
 
-	sets := make([][]alarms.Trend, len(averagingS))
-	for a := range sets {
-		sets[a] = make([]alarms.Trend, len(jobs))
-	}
-	var chunks, pairs, restarts, done atomic.Int64
-	stop := startProgress(opt.Progress, &done, len(jobs))
-	defer stop()
-	err = parallel(ctx, workerCount(opt.Workers), len(jobs), func(_, j int) error {
-		dj := jobs[j]
-		tls := make([]*estimator.Timeline, len(averagingS))
-		for a, avg := range averagingS {
-			tl, err := estimator.NewTimeline(estimator.Config{ADCBits: int(dj.dev.ADCBits), Calibration: dj.cal, AveragingS: avg})
-			if err != nil {
-				return fmt.Errorf("device %s: %w", dj.dev.ID, err)
-			}
-			tls[a] = tl
+// reestimateCounts is what re-estimating one device went through.
+type reestimateCounts struct {
+	pairs    int64 // sample pairs
+	restarts int64 // estimator restarts, over all averaging times
+}
+
+// reestimate runs one device's raw captures in [fromMS, toMS) through an
+// estimator per averaging time into sets[a][j] (device time order, as
+// stored), not bridging missing chunks; dir names the store in errors. It
+// returns the chunks read.
+func reestimate(ctx context.Context, db *store.DB, dir string, dj estimateJob, averagingS []float64, fromMS, toMS int64, sets [][]alarms.Trend, j int) (int64, reestimateCounts, error) {
+	var cnt reestimateCounts
+	tls := make([]*estimator.Timeline, len(averagingS))
+	for a, avg := range averagingS {
+		tl, err := estimator.NewTimeline(estimator.Config{ADCBits: int(dj.dev.ADCBits), Calibration: dj.cal, AveragingS: avg})
+		if err != nil {
+			return 0, cnt, fmt.Errorf("device %s: %w", dj.dev.ID, err)
 		}
-		var out []estimator.TimedEstimate
-		var lastSeq uint64
-		var n, np int64
-		var perr error
-		err := db.RawCaptures(dj.dev.ID, fromMS, toMS, func(c store.RawCapture) bool {
-			if ctx.Err() != nil {
-				perr = context.Cause(ctx)
+		tls[a] = tl
+	}
+	var out []estimator.TimedEstimate
+	var lastSeq uint64
+	var n int64
+	var perr error
+	err := db.RawCaptures(dj.dev.ID, fromMS, toMS, func(c store.RawCapture) bool {
+		if ctx.Err() != nil {
+			perr = context.Cause(ctx)
+			return false
+		}
+		gap := n > 0 && c.Seq != lastSeq+1
+		lastSeq = c.Seq
+		n++
+		cnt.pairs += int64(min(len(c.Red), len(c.IR)))
+		for a, tl := range tls {
+			if gap {
+				tl.Gap() // chunks are missing: do not bridge them
+			}
+			out, perr = tl.PushCodes(c.DeviceTimeMS, c.RateHz, c.Red, c.IR, c.Ambient, out[:0])
+			if perr != nil {
+				perr = fmt.Errorf("device %s: raw capture %d: %w", dj.dev.ID, c.Seq, perr)
 				return false
 			}
-			gap := n > 0 && c.Seq != lastSeq+1
-			lastSeq = c.Seq
-			n++
-			np += int64(min(len(c.Red), len(c.IR)))
-			for a, tl := range tls {
-				if gap {
-					tl.Gap() // chunks are missing: do not bridge them
-				}
-				out, perr = tl.PushCodes(c.DeviceTimeMS, c.RateHz, c.Red, c.IR, c.Ambient, out[:0])
-				if perr != nil {
-					perr = fmt.Errorf("device %s: raw capture %d: %w", dj.dev.ID, c.Seq, perr)
-					return false
-				}
-				tr := &sets[a][j].Samples
-				for _, e := range out {
-					*tr = append(*tr, alarms.Sample{T: float64(e.TimeMS) / 1000, SpO2: e.SpO2Pct, Pulse: e.PulseBPM, PI: e.PIPct, SQI: e.SQI})
-				}
+			tr := &sets[a][j].Samples
+			for _, e := range out {
+				*tr = append(*tr, alarms.Sample{T: float64(e.TimeMS) / 1000, SpO2: e.SpO2Pct, Pulse: e.PulseBPM, PI: e.PIPct, SQI: e.SQI})
 			}
-			return true
-		})
-		if err == nil {
-			err = perr
 		}
-		if err != nil {
-			return fmt.Errorf("store %s: %w", dir, err)
-		}
-		for a, tl := range tls {
-			sets[a][j].Device = dj.dev.ID
-			sets[a][j].Samples = timeOrder(sets[a][j].Samples, f)
-			restarts.Add(int64(tl.Restarts()))
-		}
-		chunks.Add(n)
-		pairs.Add(np)
-		done.Add(1)
-		return nil
+		return true
 	})
-	if err != nil {
-		return nil, err
+	if err == nil {
+		err = perr
 	}
-	est.Trends = sets
-	est.Chunks, est.SamplePairs = int(chunks.Load()), int(pairs.Load())
-	est.Restarts = int(restarts.Load()) / len(averagingS)
-	return est, nil
+	if err != nil {
+		return 0, cnt, fmt.Errorf("store %s: %w", dir, err)
+	}
+	for a, tl := range tls {
+		sets[a][j].Device = dj.dev.ID
+		cnt.restarts += int64(tl.Restarts())
+	}
+	return n, cnt, nil
 }
 
 // timeOrder sorts samples by time (stable), keeps the last of equal times
