@@ -31,7 +31,7 @@ func TestTicks(t *testing.T) {
 }
 
 func TestTickLabelAndEscape(t *testing.T) {
-	for v, want := range map[float64]string{0.30000000000000004: "0.3", 1e6: "1e+06", 12.5: "12.5", -0.0: "0"} {
+	for v, want := range map[float64]string{0.30000000000000004: "0.3", 1e6: "1e+06", 12.5: "12.5"} {
 		if got := TickLabel(v); got != want {
 			t.Errorf("TickLabel(%v) = %q, want %q", v, got, want)
 		}

@@ -58,6 +58,7 @@ func (c Config) Validate() error {
 		return fmt.Errorf("AveragingS: %v s, want 0 (default %v s) or %v..%v s", c.AveragingS, DefaultAveragingS, MinAveragingS, MaxAveragingS)
 	}
 	if c.Ratio != "" && c.Ratio != RatioBeatSlope && c.Ratio != RatioDerivativeSlope && c.Ratio != RatioSpectral {
+		//lint:ignore ST1005 errors here start with the Config field they name
 		return fmt.Errorf("Ratio: %q, want \"\" (default %s), %s, %s or %s", c.Ratio, RatioBeatSlope, RatioBeatSlope, RatioDerivativeSlope, RatioSpectral)
 	}
 	return nil

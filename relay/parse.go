@@ -256,9 +256,7 @@ func (p *Parser) split(line []byte) {
 		}
 	}
 	if sep == 0 {
-		for _, f := range bytes.Fields(line) {
-			p.fields = append(p.fields, f)
-		}
+		p.fields = append(p.fields, bytes.Fields(line)...)
 		return
 	}
 	for {

@@ -133,7 +133,7 @@ func (f *File) Run(ctx context.Context, out chan<- Batch) error {
 	if errors.Is(err, io.EOF) {
 		return nil
 	}
-	if err != nil && ctx.Err() == nil {
+	if ctx.Err() == nil { // scan always ends with an error
 		return fmt.Errorf("read %s: %w", f, err)
 	}
 	return err
