@@ -22,9 +22,9 @@ const (
 	frozenGoDir = "testdata/oldclient/pulsefleet/v1" // their generated code as released
 )
 
-// bufModule returns "github.com/bufbuild/buf/cmd/buf@vX.Y.Z" as pinned by the
-// go:generate line, so the test and `go generate` can never use different
-// versions.
+// bufModule returns "github.com/bufbuild/buf/cmd/buf@vX.Y.Z" as pinned by
+// the go:generate line, so the test and `go generate` can never use
+// different versions.
 func bufModule(t testing.TB) string {
 	t.Helper()
 	b, err := os.ReadFile(generateGo)
