@@ -207,13 +207,20 @@ func (h *harness) stuckDevice(t *testing.T, id string, n int) (pb.IngestService_
 	if err := st.Send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: summaryIntro(id)}}); err != nil {
 		t.Fatal(err)
 	}
+	// The sends run on their own goroutine: on a slow machine (or under the
+	// race detector) the gateway stops reading before n are sent, and a Send
+	// then blocks until stop cancels the stream.
 	now := time.Now().UnixMilli()
-	for i := 1; i <= n; i++ {
-		if err := st.Send(summary(uint64(i), now, 150)); err != nil { // spo2 150 %: rejected with a reason
-			break
+	sent := make(chan struct{})
+	go func() {
+		defer close(sent)
+		for i := 1; i <= n; i++ {
+			if err := st.Send(summary(uint64(i), now, 150)); err != nil { // spo2 150 %: rejected with a reason
+				return
+			}
 		}
-	}
-	return st, func() { cancel(); conn.Close() }
+	}()
+	return st, func() { cancel(); conn.Close(); <-sent }
 }
 
 // Finding: a stream whose device stopped reading locked its device id out:
