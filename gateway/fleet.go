@@ -449,27 +449,28 @@ func (g *Gateway) deviceQuality(d *device) (*pb.DeviceQuality, error) {
 	if n, pos := d.q.pi.quantiles(); n > 0 {
 		q.PiPct = &pb.Distribution{Count: n, P10: piValue(pos[0]), P50: piValue(pos[1]), P90: piValue(pos[2])}
 	}
+	// The device's on-stretches: stored sessions and the open one. A
+	// session never closed (the gateway stopped without closing it) counts
+	// as down.
 	open := d.stream != nil
+	var on []span
+	seenOpen := false
+	for _, s := range sessions {
+		end := s.EndMS
+		if end == 0 {
+			if !open || s.StartMS != d.sessionMS {
+				continue
+			}
+			end, seenOpen = nowMS, true
+		}
+		on = append(on, span{s.StartMS, end})
+	}
+	if open && !seenOpen && d.sessionMS < nowMS {
+		on = append(on, span{d.sessionMS, nowMS}) // the open session started before the sessions read
+	}
 	up := func(window time.Duration) float64 {
-		from := nowMS - window.Milliseconds()
-		var on int64
-		seenOpen := false
-		for _, s := range sessions {
-			end := s.EndMS
-			if end == 0 {
-				if !open || s.StartMS != d.sessionMS {
-					continue // never closed: the gateway stopped without closing it; counted as down
-				}
-				end, seenOpen = nowMS, true
-			}
-			if start := max(s.StartMS, from); min(end, nowMS) > start {
-				on += min(end, nowMS) - start
-			}
-		}
-		if open && !seenOpen && d.sessionMS < nowMS {
-			on += nowMS - max(d.sessionMS, from) // the open session started before the sessions read
-		}
-		return math.Max(0, math.Min(1, float64(on)/float64(window.Milliseconds())))
+		share, _ := uptimeShare(on, d.desc.FirstSeenMS, nowMS, window)
+		return share
 	}
 	q.Uptime_1H, q.Uptime_24H, q.Uptime_7D = up(time.Hour), up(24*time.Hour), up(week)
 	return q, nil
