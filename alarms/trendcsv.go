@@ -49,7 +49,7 @@ var (
 // bytes; from the first line that needs it on, encoding/csv reads the rest.
 func ReadTrendCSV(r io.Reader) ([]Trend, error) {
 	tr := &trendReader{byDev: map[string]int{}, last: -1}
-	br := bufio.NewReaderSize(r, 1<<20)
+	br := bufio.NewReaderSize(r, 64<<10)
 	line, end, err := tr.seq(br, 0, true)
 	if err != nil {
 		return nil, err
@@ -123,13 +123,16 @@ func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 	bufs := make([][]byte, workers)
 	parts := make([]*trendReader, workers)
 	var carry []byte
+	// Blocks start small and double up to trendBlock, so a small input
+	// does not pay for large buffers.
+	size := min(trendBlock, 256<<10)
 	for {
 		var blocks [][]byte
 		eof := false
 		for len(blocks) < workers && !eof {
 			k := len(blocks)
-			if bufs[k] == nil {
-				bufs[k] = make([]byte, trendBlock)
+			if len(bufs[k]) < size || len(carry) >= size {
+				bufs[k] = make([]byte, max(size, 2*len(carry)))
 			}
 			buf := bufs[k]
 			c := copy(buf, carry)
@@ -179,6 +182,7 @@ func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 			rest := io.MultiReader(bytes.NewReader(slicesConcat(blocks[slow:], carry)), br)
 			return tr.seqRest(rest, line)
 		}
+		size = min(trendBlock, 2*size)
 		if eof {
 			tr.assemble()
 			return nil

@@ -265,7 +265,7 @@ func trendCSVBytes(devices, seconds int) []byte {
 	row := make([]byte, 0, 64)
 	for s := range seconds {
 		for d := range devices {
-			t := 1.7646e9 + float64(s) + float64(d)*0.001
+			t := float64((1764600000+s)*10+d%10) / 10 // Unix seconds to 0.1 s, as the project writes them
 			row = strconv.AppendFloat(row[:0], t, 'g', -1, 64)
 			row = fmt.Appendf(row, ",dev-%03d,", d)
 			row = strconv.AppendFloat(row, 90+float64((s*7+d)%90)/10, 'g', -1, 64)
