@@ -7,8 +7,6 @@ import (
 	"errors"
 	"github.com/pulsefleet/pulsefleet/caution"
 	"math"
-	"os"
-	"path/filepath"
 	"regexp"
 	"slices"
 	"strconv"
@@ -199,24 +197,6 @@ func TestCancelStopsTheExport(t *testing.T) {
 	if !errors.Is(err, context.Canceled) {
 		t.Fatalf("error %v, want context.Canceled", err)
 	}
-}
-
-// fhirSchema returns the official FHIR R4 JSON schema installed by
-// .ci/deps.d/fhir-schema.sh, or skips (fails under PULSEFLEET_REQUIRE_TOOLS).
-func fhirSchemaPath(t testing.TB) string {
-	t.Helper()
-	p := os.Getenv("PULSEFLEET_FHIR_SCHEMA")
-	if p == "" {
-		p = filepath.Join("..", ".cache", "node_modules", "@asymmetrik", "fhir-json-schema-validator", "fhir.schema.json")
-	}
-	if _, err := os.Stat(p); err != nil {
-		msg := "FHIR R4 JSON schema not found (" + err.Error() + "); run .ci/deps.d/fhir-schema.sh"
-		if os.Getenv("PULSEFLEET_REQUIRE_TOOLS") != "" {
-			t.Fatal(msg)
-		}
-		t.Skip(msg)
-	}
-	return p
 }
 
 // Minimal decoding of what the test checks.

@@ -5,9 +5,11 @@ import (
 	"context"
 	"os"
 	"path/filepath"
+	"regexp"
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/export/fhirschema"
 	"github.com/pulsefleet/pulsefleet/sim"
 )
 
@@ -58,6 +60,23 @@ func TestExportThroughGatewayEqualsOfflineExport(t *testing.T) {
 	}
 	if l1, o1 := read("live1.csv"), read("offline1.csv"); !bytes.Equal(l1, o1) || len(l1) >= len(live) {
 		t.Errorf("one device: through the gateway %d bytes, offline %d bytes (whole export %d)", len(l1), len(o1), len(live))
+	}
+	// FHIR through the gateway: the same Bundle as the offline export of the
+	// snapshot (but for the Bundle's own timestamp), valid against the
+	// official R4 schema.
+	mustRun("export", "--gateway", a.grpcAddr, "--format", "fhir", "--out", p("live.json"))
+	mustRun("export", "--data", p("restored"), "--format", "fhir", "--out", p("offline.json"))
+	stamp := regexp.MustCompile(`"timestamp":"[^"]*"`)
+	liveF, offF := read("live.json"), read("offline.json")
+	if !bytes.Contains(liveF, []byte(`"resourceType":"Observation"`)) {
+		t.Fatalf("the FHIR export through the gateway holds no Observation: the test proves nothing")
+	}
+	if !bytes.Equal(stamp.ReplaceAll(liveF, nil), stamp.ReplaceAll(offF, nil)) {
+		t.Errorf("FHIR through the gateway (%d bytes) differs from the offline export of its snapshot (%d bytes) beyond the Bundle timestamp", len(liveF), len(offF))
+	}
+	schema := fhirschema.Compile(t, fhirschema.Path(t))
+	if err := fhirschema.Validate(schema, string(liveF)); err != nil {
+		t.Errorf("FHIR through the gateway is not valid FHIR R4: %v", err)
 	}
 	mustRun("export", "--gateway", a.grpcAddr+","+b.grpcAddr, "--format", "csv", "--out", p("both.csv"))
 	mustRun("export", "--gateway", b.grpcAddr, "--format", "csv", "--out", p("b.csv"))
