@@ -10,7 +10,7 @@ import (
 )
 
 // Everything the project cites is inside it: no file names the first
-// round's shared notes, every docs/NAME.md cited exists, and every section
+// round's shared notes, every file cited under docs/ exists, and every section
 // cited as docs/references.md "Name" or docs/contracts.md "Name" is a heading
 // of that file.
 func TestCitationsPointInsideTheRepository(t *testing.T) {
