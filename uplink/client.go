@@ -505,20 +505,47 @@ func (c *Client) welcome(resume uint64) error {
 	return nil
 }
 
+// answerTimeout is how long the sender waits for any answer (an
+// acknowledgement or a rejection) to messages it has sent before it resends
+// them: a safety net, since the gateway answers every message.
+const answerTimeout = 5 * time.Second
+
 // sender sends held messages the stream has not carried, in order.
 func (c *Client) sender(ctx context.Context, st pb.IngestService_ConnectClient) error {
 	timer := time.NewTimer(time.Hour)
 	defer timer.Stop()
+	c.mu.Lock()
+	lastFinished, lastProgress := c.finished, time.Now()
+	c.mu.Unlock()
 	for {
 		c.mu.Lock()
 		var it *item
 		wait := time.Until(c.holdUntil)
+		if c.finished != lastFinished {
+			lastFinished, lastProgress = c.finished, time.Now()
+		}
 		if wait <= 0 {
 			for i := c.head; i < len(c.items); i++ {
 				if x := c.items[i]; x.seq > c.sentThrough && !x.done {
 					it = x
 					break
 				}
+			}
+			// Everything is sent but some of it is unanswered: an answer
+			// that never comes must not leave the device waiting forever.
+			// After answerTimeout without progress, resend from the first
+			// unanswered message (the gateway answers what it already holds
+			// as stale and never stores it twice).
+			if it == nil && c.head < len(c.items) && c.sentThrough > c.finished {
+				since := time.Since(lastProgress)
+				if since >= answerTimeout {
+					c.opts.Logf("no answer for %v to messages %d..%d: resending them", since.Round(time.Second), c.finished+1, c.sentThrough)
+					c.sentThrough = c.finished
+					lastProgress = time.Now()
+					c.mu.Unlock()
+					continue
+				}
+				wait = answerTimeout - since
 			}
 		}
 		var m *pb.ConnectRequest
