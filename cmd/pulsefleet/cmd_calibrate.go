@@ -219,17 +219,8 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
-	switch {
-	case len(raws) == 0:
-		return usagef("--raw: required")
-	case len(refs) == 0:
-		return usagef("--reference: required")
-	case len(refs) != 1 && len(refs) != len(raws):
-		return usagef("--reference: %d files for %d --raw, want 1 or %d", len(refs), len(raws), len(raws))
-	case len(subs) != 0 && len(subs) != len(raws):
-		return usagef("--subject: %d names for %d --raw, want %d", len(subs), len(raws), len(raws))
-	case o.RateHz <= 0:
-		return usagef("--rate: required, in Hz")
+	if err := checkRecordingArgs(raws, refs, subs, o.RateHz); err != nil {
+		return err
 	}
 	if err := checkADCBits(o.ADCBits); err != nil {
 		return err
@@ -291,4 +282,22 @@ func pairRecording(rawPath, refPath string, o pairing.Options) ([]calibration.Pa
 		return nil, rep, fmt.Errorf("%s with %s: %w", rawPath, refPath, err)
 	}
 	return pairs, rep, nil
+}
+
+// checkRecordingArgs checks the recording flags that calibrate pairs and
+// calibrate study share: --raw, --reference, --subject and --rate.
+func checkRecordingArgs(raws, refs, subs []string, rateHz float64) error {
+	switch {
+	case len(raws) == 0:
+		return usagef("--raw: required")
+	case len(refs) == 0:
+		return usagef("--reference: required")
+	case len(refs) != 1 && len(refs) != len(raws):
+		return usagef("--reference: %d files for %d --raw, want 1 or %d", len(refs), len(raws), len(raws))
+	case len(subs) != 0 && len(subs) != len(raws):
+		return usagef("--subject: %d names for %d --raw, want %d", len(subs), len(raws), len(raws))
+	case rateHz <= 0:
+		return usagef("--rate: required, in Hz")
+	}
+	return nil
 }

@@ -43,17 +43,10 @@ func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
+	if err := checkRecordingArgs(raws, refs, subs, o.RateHz); err != nil {
+		return err
+	}
 	switch {
-	case len(raws) == 0:
-		return usagef("--raw: required")
-	case len(refs) == 0:
-		return usagef("--reference: required")
-	case len(refs) != 1 && len(refs) != len(raws):
-		return usagef("--reference: %d files for %d --raw, want 1 or %d", len(refs), len(raws), len(raws))
-	case len(subs) != 0 && len(subs) != len(raws):
-		return usagef("--subject: %d names for %d --raw, want %d", len(subs), len(raws), len(raws))
-	case o.RateHz <= 0:
-		return usagef("--rate: required, in Hz")
 	case model != calibration.Linear && model != calibration.Quadratic:
 		return usagef("--model: %q, want linear or quadratic", model)
 	case format != "text" && format != "json":
