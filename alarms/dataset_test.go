@@ -10,7 +10,7 @@ import (
 	"testing"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/internal/profiles"
 )
 
 // loadReference reads the 1 Hz reference oximeter trend of one subject of

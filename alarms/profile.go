@@ -11,7 +11,7 @@ import (
 
 	"go.yaml.in/yaml/v3"
 
-	"github.com/pulsefleet/pulsefleet/yamlwalk"
+	"github.com/pulsefleet/pulsefleet/internal/yamlwalk"
 )
 
 // DefaultPauseMax is the longest alarm pause when a profile sets none

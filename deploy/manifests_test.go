@@ -22,8 +22,8 @@ import (
 	sigsyaml "sigs.k8s.io/yaml"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/calibration"
-	"github.com/pulsefleet/pulsefleet/shard"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/shard"
 )
 
 // rendered is the kustomize output, decoded strictly into API types.

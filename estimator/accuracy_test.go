@@ -6,7 +6,7 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // settleS is how long after the vitals stop changing a second is scored:
@@ -154,7 +154,7 @@ func TestBeerLambertReadsPublishedPlateaus(t *testing.T) {
 // The scoring helper on the worked example of docs/references.md
 // ("Accuracy standards", computed): d = {1, -1, 2, 0} gives Arms^2 = 1.5,
 // bias = 0.5, SD^2 = 1.25. The identity Arms^2 = bias^2 + SD^2 on the
-// production scorer is checked in calibration/stats_test.go, and the
+// production scorer is checked in internal/calibration/stats_test.go, and the
 // fitted-curve cross-check (fitted_test.go) scores with calibration.Score.
 func TestScoringHelperWorkedExample(t *testing.T) {
 	arms, bias, sd := armsBiasSD([]float64{1, -1, 2, 0})

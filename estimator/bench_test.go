@@ -5,7 +5,7 @@ import (
 	"testing"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // BenchmarkStream reports the estimator's cost per red/infrared sample pair

@@ -4,7 +4,7 @@ import (
 	"fmt"
 	"math"
 
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // Calibration maps a ratio of ratios R to SpO2 in percent. ok is false when

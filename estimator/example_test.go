@@ -4,7 +4,7 @@ import (
 	"fmt"
 
 	"github.com/pulsefleet/pulsefleet/estimator"
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // A device streaming 100 Hz, 16-bit red/infrared samples in 25-sample

@@ -4,9 +4,9 @@ import (
 	"math"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // beerLambert660940 is the two-wavelength model with the coefficients of

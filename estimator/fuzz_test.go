@@ -5,7 +5,7 @@ import (
 	"math"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // FuzzPush feeds arbitrary samples (including NaN, infinities, huge and

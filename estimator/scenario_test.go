@@ -4,7 +4,7 @@ import (
 	"math"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // level is one plateau of a scripted scenario; the vitals ramp linearly

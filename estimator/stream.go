@@ -5,7 +5,7 @@ import (
 	"math"
 	"slices"
 
-	"github.com/pulsefleet/pulsefleet/stats"
+	"github.com/pulsefleet/pulsefleet/internal/stats"
 )
 
 // Estimate is one second of a stream.

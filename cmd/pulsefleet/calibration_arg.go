@@ -3,7 +3,7 @@ package main
 import (
 	"fmt"
 
-	"github.com/pulsefleet/pulsefleet/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
 )
 

@@ -7,7 +7,7 @@ import (
 	"testing"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 

@@ -10,7 +10,7 @@ import (
 	"google.golang.org/grpc"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 const backupSummary = `Take a consistent snapshot of a running gateway's store over gRPC.

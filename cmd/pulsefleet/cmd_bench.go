@@ -8,8 +8,8 @@ import (
 	"os"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/sim/bench"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/sim/bench"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 func init() {

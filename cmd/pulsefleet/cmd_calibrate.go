@@ -10,8 +10,8 @@ import (
 	"strings"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/calibration"
-	"github.com/pulsefleet/pulsefleet/calibration/pairing"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/calibration/pairing"
 	"github.com/pulsefleet/pulsefleet/estimator"
 )
 

@@ -9,9 +9,9 @@ import (
 	"strconv"
 	"strings"
 
-	"github.com/pulsefleet/pulsefleet/calibration"
-	"github.com/pulsefleet/pulsefleet/calibration/pairing"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/calibration/pairing"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/estimator"
 )
 

@@ -7,7 +7,7 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 )
 
 // cameraDir is the camera-oximetry open data (Hoffman et al., npj Digit.
@@ -27,7 +27,7 @@ func cameraStudyArgs() []string {
 
 // The study prints, for both ways of choosing, every held-out subject's
 // choice and scores beside the mean predictor, the pooled rows and the
-// caution; the figures themselves are checked in calibration/pairing.
+// caution; the figures themselves are checked in internal/calibration/pairing.
 func TestCalibrateStudyReportsBothChoosers(t *testing.T) {
 	code, stdout, stderr := runCmd(cameraStudyArgs()...)
 	if code != 0 {

@@ -5,14 +5,14 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"math"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 )
 
 // writeLinePairs writes noise-free pairs on SpO2 = 110 - 25 R (docs/references.md

@@ -8,7 +8,7 @@ import (
 	"sort"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 

@@ -12,10 +12,10 @@ import (
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 
-	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/internal/profiles"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/scenarios"
-	"github.com/pulsefleet/pulsefleet/sim"
+	"github.com/pulsefleet/pulsefleet/internal/scenarios"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
 )
 
 func init() {

@@ -6,7 +6,7 @@ import (
 	"encoding/csv"
 	"errors"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"io"
 	"math"
 	"os"
@@ -16,7 +16,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/estimator"
-	"github.com/pulsefleet/pulsefleet/progress"
+	"github.com/pulsefleet/pulsefleet/internal/progress"
 )
 
 const estimateSummary = `Estimate SpO2, pulse rate, perfusion index and signal quality, one row per

@@ -4,7 +4,7 @@ import (
 	"bytes"
 	"context"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"math"
 	"os"
 	"path/filepath"
@@ -13,7 +13,7 @@ import (
 	"testing"
 
 	"github.com/pulsefleet/pulsefleet/estimator"
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // ppgCSV writes seconds of model PPG as CSV (t_s,red,ir,note at rateHz)

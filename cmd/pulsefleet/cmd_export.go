@@ -12,9 +12,9 @@ import (
 	"strings"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/export"
-	"github.com/pulsefleet/pulsefleet/progress"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/export"
+	"github.com/pulsefleet/pulsefleet/internal/progress"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 const exportSummary = `Export trend history from a data directory as CSV or as an HL7 FHIR R4 Bundle.

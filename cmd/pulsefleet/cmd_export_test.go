@@ -10,7 +10,7 @@ import (
 	"testing"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // exportFixture writes 2 devices x 60 s of 1 Hz trend (invented values) into

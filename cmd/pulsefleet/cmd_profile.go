@@ -9,7 +9,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/internal/profiles"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 

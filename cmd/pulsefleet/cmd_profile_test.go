@@ -6,7 +6,7 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/internal/profiles"
 )
 
 // profile list/get/set against a real gateway on loopback: a built-in set

@@ -6,7 +6,7 @@ import (
 	"errors"
 	"flag"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"io"
 	"math"
 	"os"
@@ -18,7 +18,7 @@ import (
 	"golang.org/x/term"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/relay"
+	"github.com/pulsefleet/pulsefleet/internal/relay"
 	"github.com/pulsefleet/pulsefleet/uplink"
 )
 

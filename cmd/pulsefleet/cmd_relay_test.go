@@ -10,7 +10,7 @@ import (
 	"testing"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // relayCmd runs the relay command in-process and decodes its JSON line.

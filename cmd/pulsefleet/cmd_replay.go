@@ -4,14 +4,14 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"io"
 	"io/fs"
 	"os"
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/profiles"
+	"github.com/pulsefleet/pulsefleet/internal/profiles"
 )
 
 const replaySummary = `Replay a recorded trend through an alarm profile and list the announced episodes.

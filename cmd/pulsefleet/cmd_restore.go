@@ -10,7 +10,7 @@ import (
 
 	"golang.org/x/term"
 
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 const restoreSummary = `Put a snapshot (from 'pulsefleet backup' or serve --backup-dir) in place of a

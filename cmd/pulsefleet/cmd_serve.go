@@ -6,7 +6,7 @@ import (
 	"errors"
 	"flag"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"io"
 	"log/slog"
 	"net"
@@ -19,10 +19,10 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"go.yaml.in/yaml/v3"
 
-	"github.com/pulsefleet/pulsefleet/gateway"
-	"github.com/pulsefleet/pulsefleet/profiles"
-	"github.com/pulsefleet/pulsefleet/shard"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/gateway"
+	"github.com/pulsefleet/pulsefleet/internal/profiles"
+	"github.com/pulsefleet/pulsefleet/internal/shard"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // notCertified is printed at start-up (the web page shows the same text).

@@ -8,7 +8,7 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 )
 
 // A config file's unknown key or bad value is an error that names it, and

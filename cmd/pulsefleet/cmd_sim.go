@@ -13,8 +13,8 @@ import (
 	"strings"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/scenarios"
-	"github.com/pulsefleet/pulsefleet/sim"
+	"github.com/pulsefleet/pulsefleet/internal/scenarios"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
 )
 
 const simSynopsis = "--gateway ADDR --devices N --rate HZ --duration DUR --mode raw|summary [--scenario NAME|FILE] [--seed N] [faults]"

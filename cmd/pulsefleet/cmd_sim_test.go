@@ -13,9 +13,9 @@ import (
 	"testing"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/sim"
-	"github.com/pulsefleet/pulsefleet/sim/sink"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
+	"github.com/pulsefleet/pulsefleet/internal/sim/sink"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 func simRun(t *testing.T, args ...string) (code int, stdout, stderr string) {

@@ -15,7 +15,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/internal/auth"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 const tokenSummary = `Manage credentials: bearer tokens for devices and operators.

@@ -11,9 +11,9 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/progress"
-	"github.com/pulsefleet/pulsefleet/store"
-	"github.com/pulsefleet/pulsefleet/tune"
+	"github.com/pulsefleet/pulsefleet/internal/progress"
+	"github.com/pulsefleet/pulsefleet/internal/store"
+	"github.com/pulsefleet/pulsefleet/internal/tune"
 )
 
 const tuneSummary = `Sweep a grid of alarm profiles over recorded history and score each one.

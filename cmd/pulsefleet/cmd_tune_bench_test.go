@@ -14,7 +14,7 @@ import (
 	"testing"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // benchTuneGrid is the project target's grid: 10 limits x 10 delays = 100

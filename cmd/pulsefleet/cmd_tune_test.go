@@ -4,7 +4,7 @@ import (
 	"context"
 	"encoding/csv"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -16,10 +16,10 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/estimator"
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
-	"github.com/pulsefleet/pulsefleet/sim"
-	"github.com/pulsefleet/pulsefleet/store"
-	"github.com/pulsefleet/pulsefleet/tune"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
+	"github.com/pulsefleet/pulsefleet/internal/store"
+	"github.com/pulsefleet/pulsefleet/internal/tune"
 )
 
 // tuneTrendCSV writes an invented 1 Hz trend (demo data): devices around
@@ -352,7 +352,7 @@ func TestTuneCommandAveraging(t *testing.T) {
 // sent corrupt and rejected, so the restart rules are exercised too.
 // Reconnects are left out: the gateway restarts the estimator with every
 // new stream, and the store does not record which stream a capture came
-// from (tune/doc.go, caveat).
+// from (internal/tune/doc.go, caveat).
 func TestTuneReestimationMatchesLiveGateway(t *testing.T) {
 	if testing.Short() {
 		t.Skip("process test")

@@ -11,7 +11,7 @@ import (
 
 	"golang.org/x/term"
 
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 const verifySummary = `Check a store file: bbolt's consistency check and the store's own record checks.

@@ -14,8 +14,8 @@ import (
 
 	bolt "go.etcd.io/bbolt"
 
-	"github.com/pulsefleet/pulsefleet/sim"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // seedCLIStore writes a small store with devices, history, ledger, cursors

@@ -12,7 +12,7 @@ import (
 	"google.golang.org/grpc/credentials/insecure"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // summaryDevice streams summaries and waits for acknowledgements.

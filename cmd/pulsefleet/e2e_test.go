@@ -23,8 +23,8 @@ import (
 	"google.golang.org/grpc/credentials/insecure"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/sim"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 var (

@@ -10,9 +10,9 @@ import (
 
 	"google.golang.org/grpc"
 
-	"github.com/pulsefleet/pulsefleet/export"
+	"github.com/pulsefleet/pulsefleet/internal/export"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // remoteSource is an export.Source over FleetService.ExportTrend of one or

@@ -9,8 +9,8 @@ import (
 	"testing"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/export/fhirschema"
-	"github.com/pulsefleet/pulsefleet/sim"
+	"github.com/pulsefleet/pulsefleet/internal/export/fhirschema"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
 )
 
 // An export through running gateways (FleetService.ExportTrend) is byte for

@@ -4,7 +4,7 @@ import (
 	"fmt"
 	"strconv"
 
-	"github.com/pulsefleet/pulsefleet/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
 // ppgLines renders seconds of the physical PPG model (ppgmodel) at rateHz

@@ -11,10 +11,10 @@ import (
 	"testing"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/shard"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/shard"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // A device that connects to the relay (--listen) and one the relay connects

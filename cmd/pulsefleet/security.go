@@ -10,7 +10,7 @@ import (
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials"
 
-	"github.com/pulsefleet/pulsefleet/gateway"
+	"github.com/pulsefleet/pulsefleet/internal/gateway"
 )
 
 // security is the transport set-up derived from the TLS flags.

@@ -10,10 +10,10 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/gateway"
-	"github.com/pulsefleet/pulsefleet/shard"
-	"github.com/pulsefleet/pulsefleet/sim"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/gateway"
+	"github.com/pulsefleet/pulsefleet/internal/shard"
+	"github.com/pulsefleet/pulsefleet/internal/sim"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // shardGroup runs gateways sharing one peer list on loopback, each with its

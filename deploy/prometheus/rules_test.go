@@ -21,9 +21,9 @@ import (
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 
-	"github.com/pulsefleet/pulsefleet/gateway"
+	"github.com/pulsefleet/pulsefleet/internal/gateway"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 func TestMain(m *testing.M) { goleak.VerifyTestMain(m) }

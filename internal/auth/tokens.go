@@ -11,7 +11,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/internal/ids"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/store"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // TokenSpec names the subject of a new credential: exactly one of Device or

@@ -4,7 +4,7 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/caution"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 )
 
 // The page template parses, fills every placeholder, carries the caution

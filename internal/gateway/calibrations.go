@@ -1,0 +1,110 @@
+package gateway
+
+import (
+	"context"
+	"errors"
+	"fmt"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
+	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/auth"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/internal/store"
+)
+
+// resolveStoredCalibration maps a calibration reference to a curve with
+// calibration.Resolve, looking stored curves up in the gateway's store.
+func (g *Gateway) resolveStoredCalibration(ref string, redNM, irNM float64) (estimator.Calibration, string, error) {
+	c, applied, err := calibration.Resolve(ref, redNM, irNM, g.db.CalibrationCurve)
+	if errors.Is(err, store.ErrNotFound) {
+		return nil, "", fmt.Errorf("calibration %q is not stored (see `pulsefleet calibrations list`)", ref)
+	}
+	return c, applied, err
+}
+
+// PutCalibration implements AdminService: stores a new version of a curve.
+func (g *Gateway) PutCalibration(ctx context.Context, req *pb.PutCalibrationRequest) (*pb.PutCalibrationResponse, error) {
+	if n := len(req.GetCurveYaml()); n == 0 || n > 64<<10 {
+		return nil, status.Errorf(codes.InvalidArgument, "curve_yaml: %d bytes, want 1..65536", n)
+	}
+	c, err := calibration.Parse([]byte(req.GetCurveYaml()))
+	if err != nil {
+		return nil, status.Errorf(codes.InvalidArgument, "curve_yaml: %v", err)
+	}
+	who := auth.ActorFrom(ctx)
+	sc, err := g.db.PutCalibration(store.Calibration{Name: c.Name, CurveYAML: req.GetCurveYaml(), CreatedMS: g.nowMS(), CreatedBy: who},
+		&store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.put", Detail: "calibration " + c.Name + ": " + c.Equation(), Remote: auth.RemoteFrom(ctx)})
+	if err != nil {
+		return nil, status.Errorf(codes.Unavailable, "%v", err)
+	}
+	return &pb.PutCalibrationResponse{Calibration: calibrationProto(sc)}, nil
+}
+
+func calibrationProto(c store.Calibration) *pb.Calibration {
+	return &pb.Calibration{Name: c.Name, Version: c.Version, CurveYaml: c.CurveYAML, CreatedUnixMs: c.CreatedMS, CreatedBy: c.CreatedBy}
+}
+
+// ListCalibrations implements AdminService.
+func (g *Gateway) ListCalibrations(ctx context.Context, _ *pb.ListCalibrationsRequest) (*pb.ListCalibrationsResponse, error) {
+	cs, err := g.db.Calibrations()
+	if err != nil {
+		return nil, status.Errorf(codes.Internal, "%v", err)
+	}
+	as, err := g.db.CalibrationAssignments()
+	if err != nil {
+		return nil, status.Errorf(codes.Internal, "%v", err)
+	}
+	out := &pb.ListCalibrationsResponse{}
+	for _, c := range cs {
+		out.Calibrations = append(out.Calibrations, calibrationProto(c))
+	}
+	for t, r := range as {
+		out.Assignments = append(out.Assignments, &pb.CalibrationAssignment{Target: t, Calibration: r})
+	}
+	return out, nil
+}
+
+// AssignCalibration implements AdminService. It applies from the device's
+// next stream.
+func (g *Gateway) AssignCalibration(ctx context.Context, req *pb.AssignCalibrationRequest) (*pb.AssignCalibrationResponse, error) {
+	var target string
+	switch {
+	case req.GetModel() != "" && req.GetDeviceId() != "":
+		return nil, status.Error(codes.InvalidArgument, "model, device_id: give exactly one")
+	case req.GetModel() != "":
+		target = "model:" + req.GetModel()
+	case req.GetDeviceId() != "":
+		if err := validID("device_id", req.GetDeviceId()); err != nil {
+			return nil, status.Error(codes.InvalidArgument, err.Error())
+		}
+		target = "device:" + req.GetDeviceId()
+	default:
+		return nil, status.Error(codes.InvalidArgument, "model, device_id: give exactly one")
+	}
+	ref := req.GetCalibration()
+	if ref != "" {
+		_, applied, err := g.resolveStoredCalibration(ref, 660, 940)
+		if err != nil {
+			return nil, status.Errorf(codes.InvalidArgument, "calibration: %v", err)
+		}
+		if ref != "empirical" && ref != "beer-lambert" {
+			ref = applied // pin the version assigned
+		}
+	}
+	who := auth.ActorFrom(ctx)
+	if err := g.db.AssignCalibration(target, ref, &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.assign",
+		Device: req.GetDeviceId(), Detail: target + " -> " + ref, Remote: auth.RemoteFrom(ctx)}); err != nil {
+		return nil, status.Errorf(codes.Unavailable, "%v", err)
+	}
+	g.calMu.Lock()
+	if ref == "" {
+		delete(g.calAssign, target)
+	} else {
+		g.calAssign[target] = ref
+	}
+	g.calMu.Unlock()
+	return &pb.AssignCalibrationResponse{Assignment: &pb.CalibrationAssignment{Target: target, Calibration: ref}}, nil
+}

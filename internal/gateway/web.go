@@ -1,0 +1,66 @@
+package gateway
+
+import (
+	"net/http"
+
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	"github.com/pulsefleet/pulsefleet/internal/web"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/internal/store"
+)
+
+// fleetForWeb is the gateway as the web page sees it (web.Fleet): the
+// FleetService methods it embeds, plus raw captures, live events and the
+// clock.
+type fleetForWeb struct{ *Gateway }
+
+func (f fleetForWeb) RawCaptures(deviceID string, fromMS, toMS int64, fn func(store.RawCapture) bool) error {
+	return f.db.RawCaptures(deviceID, fromMS, toMS, fn)
+}
+
+func (f fleetForWeb) Watch(devices []string, points bool, buffer int) (<-chan *pb.WatchEventsResponse, func()) {
+	sub := f.hub.subscribe(devices, points, buffer)
+	return sub.ch, func() { f.hub.unsubscribe(sub) }
+}
+
+func (f fleetForWeb) Stopping() bool { return f.stopping.Load() }
+
+func (f fleetForWeb) NowMS() int64 { return f.nowMS() }
+
+// newWeb builds the web page's server over g.
+func (g *Gateway) newWeb() *web.Server {
+	return web.New(web.Config{
+		Fleet: fleetForWeb{g},
+		Auth:  g.auth,
+		Sessions: func() web.SessionOptions {
+			sec := g.security()
+			return web.SessionOptions{TTL: sec.SessionTTL, SecureCookies: sec.SecureCookies}
+		},
+		Audit:     g.audit,
+		HTTPError: httpStatusOf,
+	})
+}
+
+// httpStatusOf maps the gRPC status of a FleetService error to the HTTP
+// status the page's JSON answers with, and the message it shows.
+func httpStatusOf(err error) (int, string) {
+	code := http.StatusInternalServerError
+	st, _ := status.FromError(err)
+	switch st.Code() {
+	case codes.InvalidArgument, codes.OutOfRange:
+		code = http.StatusBadRequest
+	case codes.NotFound:
+		code = http.StatusNotFound
+	case codes.FailedPrecondition, codes.AlreadyExists, codes.Aborted:
+		code = http.StatusConflict
+	case codes.Unauthenticated:
+		code = http.StatusUnauthorized
+	case codes.PermissionDenied:
+		code = http.StatusForbidden
+	case codes.Unavailable, codes.ResourceExhausted:
+		code = http.StatusServiceUnavailable
+	}
+	return code, st.Message()
+}

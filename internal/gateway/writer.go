@@ -1,0 +1,253 @@
+package gateway
+
+import (
+	"context"
+	"errors"
+	"sync"
+	"time"
+
+	"github.com/pulsefleet/pulsefleet/internal/store"
+)
+
+// record is one unit of work for the store writer: the effects of one data
+// message, or a description/session/alarm/audit change. Everything in a record
+// becomes durable in the same transaction.
+type record struct {
+	dev      *device       // device whose cursor the record advances (nil = none)
+	stream   *stream       // stream to acknowledge (nil = none)
+	seq      uint64        // data message sequence, 0 when none
+	epoch    uint64        // the device's write epoch when the message was accepted (data records)
+	cursor   store.Cursor  // the device's cursor after this record (when seq > 0)
+	received time.Time     // arrival of the data message
+	chunk    *store.Chunk  // ledger record
+	points   []store.Point // trend points
+	raw      *store.RawCapture
+	desc     *store.Device
+	session  *store.Session
+	episodes []*store.Episode
+	alarm    []byte // alarm-engine snapshot (nil = unchanged)
+	audit    []*store.AuditEntry
+	done     chan error // closed or sent when durable (sync callers)
+}
+
+var errWriterClosed = errors.New("gateway is shutting down")
+
+// writer batches records into transactions. It is started by Serve and
+// stopped by closing its input after every producer has stopped.
+type writer struct {
+	db      *store.DB
+	in      chan *record
+	maxWait time.Duration
+	maxRecs int
+	m       *metrics
+	now     func() time.Time
+	onFail  func(err error, devs map[*device]bool) // a batch did not commit; devs had data in it
+	onOK    func()                                 // a batch committed
+
+	// carry holds the parts of failed records that are not a device's data
+	// (descriptions, sessions, alarm episodes and states, audit entries):
+	// they go into the next batch, so a disk-full spell does not lose an
+	// alarm episode. Bounded by maxCarry; owned by run.
+	carry []*record
+
+	mu     sync.Mutex
+	closed bool
+}
+
+// maxCarry bounds the records carried over failed batches (about 1 KiB each).
+const maxCarry = 100_000
+
+func newWriter(db *store.DB, maxWait time.Duration, maxRecs int, m *metrics, now func() time.Time,
+	onFail func(error, map[*device]bool), onOK func()) *writer {
+	return &writer{db: db, in: make(chan *record, 4*maxRecs), maxWait: maxWait, maxRecs: maxRecs, m: m, now: now,
+		onFail: onFail, onOK: onOK}
+}
+
+// submit queues a record; it blocks when the queue is full (back-pressure on
+// the device's stream) and fails once the writer is closing.
+func (w *writer) submit(ctx context.Context, r *record) error {
+	w.mu.Lock()
+	closed := w.closed
+	w.mu.Unlock()
+	if closed {
+		return errWriterClosed
+	}
+	select {
+	case w.in <- r:
+		w.m.writerQueue.Inc()
+		return nil
+	case <-ctx.Done():
+		return context.Cause(ctx)
+	}
+}
+
+// sync queues r (which may be empty) and waits until it is durable.
+func (w *writer) sync(ctx context.Context, r *record) error {
+	if r == nil {
+		r = &record{}
+	}
+	r.done = make(chan error, 1)
+	if err := w.submit(ctx, r); err != nil {
+		return err
+	}
+	select {
+	case err := <-r.done:
+		return err
+	case <-ctx.Done():
+		return context.Cause(ctx)
+	}
+}
+
+// close stops accepting records; run drains what is queued and returns.
+func (w *writer) close() {
+	w.mu.Lock()
+	defer w.mu.Unlock()
+	if !w.closed {
+		w.closed = true
+		close(w.in)
+	}
+}
+
+// run commits batches until the input is closed and drained.
+func (w *writer) run() {
+	var (
+		b       store.Batch
+		recs    []*record
+		curIdx  = map[*device]int{}
+		timer   = time.NewTimer(time.Hour)
+		devSeen = map[*device]bool{}
+	)
+	timer.Stop()
+	add := func(r *record) {
+		recs = append(recs, r)
+		if r.seq > 0 && r.dev != nil && r.epoch != r.dev.epoch.Load() {
+			// Accepted before a batch with this device's data failed:
+			// everything of the device after the failed range waits for
+			// the device to resend from its durable point (internal/store/doc.go
+			// states the rule and why it holds). The data goes; what is
+			// not data (alarm episodes and state) is still written.
+			w.m.discarded.Inc()
+			r.seq, r.stream, r.chunk, r.points, r.raw = 0, nil, nil, nil, nil
+		}
+		if r.desc != nil {
+			b.Devices = append(b.Devices, r.desc)
+		}
+		if r.dev != nil && r.seq > 0 {
+			if i, ok := curIdx[r.dev]; ok {
+				b.Cursors[i] = r.cursor
+			} else {
+				curIdx[r.dev] = len(b.Cursors)
+				b.Cursors = append(b.Cursors, r.cursor)
+			}
+		}
+		if r.chunk != nil {
+			b.Chunks = append(b.Chunks, *r.chunk)
+		}
+		b.Points = append(b.Points, r.points...)
+		if r.raw != nil {
+			b.Raw = append(b.Raw, *r.raw)
+		}
+		if r.session != nil {
+			b.Sessions = append(b.Sessions, *r.session)
+		}
+		b.Episodes = append(b.Episodes, r.episodes...)
+		if r.alarm != nil && r.dev != nil {
+			if b.AlarmStates == nil {
+				b.AlarmStates = map[string][]byte{}
+			}
+			b.AlarmStates[r.dev.id] = r.alarm
+		}
+		b.Audit = append(b.Audit, r.audit...)
+	}
+	takeCarry := func() {
+		for _, r := range w.carry {
+			add(r)
+		}
+		clear(w.carry)
+		w.carry = w.carry[:0]
+	}
+	commit := func() {
+		if len(recs) == 0 {
+			return
+		}
+		start := w.now()
+		err := w.db.Write(&b)
+		end := w.now()
+		w.m.commitSeconds.Observe(end.Sub(start).Seconds())
+		w.m.batchRecords.Observe(float64(len(recs)))
+		if err != nil {
+			w.m.storeErrors.Inc()
+			clear(devSeen)
+			for _, r := range recs {
+				if r.seq > 0 && r.dev != nil {
+					devSeen[r.dev] = true
+				}
+				if c := r.control(); c != nil && len(w.carry) < maxCarry {
+					w.carry = append(w.carry, c)
+				} else if c != nil {
+					w.m.carryDropped.Inc()
+				}
+			}
+			// Before any later record is added: from here on, records of
+			// these devices accepted before now are not data any more.
+			w.onFail(err, devSeen)
+		} else {
+			w.onOK()
+		}
+		clear(devSeen)
+		for _, r := range recs {
+			if err == nil && r.seq > 0 {
+				w.m.durableSeconds.Observe(end.Sub(r.received).Seconds())
+				if r.dev != nil {
+					r.dev.markDurable(r.seq)
+				}
+				if r.stream != nil {
+					r.stream.ackThrough(r.seq)
+				}
+			}
+			if r.done != nil {
+				r.done <- err
+			}
+		}
+		clear(recs)
+		recs = recs[:0]
+		clear(curIdx)
+		b.Reset()
+	}
+	for {
+		r, ok := <-w.in
+		if !ok {
+			takeCarry()
+			commit()
+			return
+		}
+		w.m.writerQueue.Dec()
+		takeCarry()
+		add(r)
+		timer.Reset(w.maxWait)
+	collect:
+		for len(recs) < w.maxRecs {
+			select {
+			case r, ok := <-w.in:
+				if !ok {
+					break collect
+				}
+				w.m.writerQueue.Dec()
+				add(r)
+			case <-timer.C:
+				break collect
+			}
+		}
+		timer.Stop()
+		commit()
+	}
+}
+
+// control returns a record with r's parts that are not a device's data (nil
+// when there are none): what a failed batch carries into the next one.
+func (r *record) control() *record {
+	if r.desc == nil && r.session == nil && len(r.episodes) == 0 && r.alarm == nil && len(r.audit) == 0 {
+		return nil
+	}
+	return &record{dev: r.dev, desc: r.desc, session: r.session, episodes: r.episodes, alarm: r.alarm, audit: r.audit}
+}
