@@ -54,12 +54,13 @@ var (
 	bCalibrations = []byte("calibrations")
 	bCalAssign    = []byte("calassign")
 	bTokens       = []byte("tokens")
+	bEnrolments   = []byte("enrolments")
 
 	keySchema  = []byte("schema")
 	keyStoreID = []byte("store_id")
 
 	allBuckets = [][]byte{bMeta, bDevices, bCursors, bRecent, bTrend, bLedger, bRaw, bSessions, bEpisodes,
-		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens}
+		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens, bEnrolments}
 )
 
 // Options tunes Open. The zero value is usable.

@@ -1,7 +1,8 @@
 // Package store keeps pulsefleet's history in one embedded bbolt file behind
 // domain methods: devices, trend points, the ingest ledger (one record per
 // accepted data message), sessions, raw captures, alarm episodes and alarm
-// state, the audit log, alarm profiles, calibrations and credentials.
+// state, the audit log, alarm profiles, calibrations, credentials and the
+// enrolments of devices to study participants.
 //
 // Layout (bucket paths; keys are big-endian so cursors range-scan in order).
 // Every value this package encodes starts with a format version byte (the
@@ -24,6 +25,7 @@
 //	profiles/ID | "*default*"     profile YAML (after the version byte)
 //	calibrations/NAME/VERSION     Calibration (JSON); calassign/TARGET -> "name@vN" (no version byte)
 //	tokens/HASH                   Token (JSON; only the SHA-256 of a secret is kept)
+//	enrolments/ENROLMENT_ID       Enrolment (JSON): a device's data in an interval belong to a pseudonymous participant (participants.go)
 //
 // DAY is the number of whole days since the Unix epoch (UTC, uint32), so
 // retention drops whole day buckets the way a time-series database drops

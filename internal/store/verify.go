@@ -201,6 +201,12 @@ var specs = map[string]bucketSpec{
 		}
 		return nil
 	}},
+	"enrolments": {record: jsonRecord(func(_ *checker, k []byte, e *Enrolment) error {
+		if err := idKey(k, e.ID); err != nil {
+			return err
+		}
+		return checkEnrolment(e)
+	})},
 	"tokens": {record: jsonRecord(func(_ *checker, k []byte, t *Token) error {
 		if t.Hash != string(k) {
 			return fmt.Errorf("credential %s under another key", t.ID)

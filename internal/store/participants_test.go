@@ -1,0 +1,132 @@
+package store
+
+import (
+	"errors"
+	"strings"
+	"testing"
+	"time"
+)
+
+func utcMS(s string) int64 {
+	t, err := time.Parse(time.RFC3339, s)
+	if err != nil {
+		panic(err)
+	}
+	return t.UnixMilli()
+}
+
+// wardTimeline enrols the timeline of internal/participants' tests:
+//
+//	P-0001  OX-A   2026-12-01 20:00 .. 2026-12-02 03:00  (battery fails at 03:00)
+//	P-0001  OX-B   2026-12-02 03:10 .. 2026-12-02 08:00  (swap at night)
+//	P-0002  OX-A   2026-12-02 10:00 .. open              (reused for the next participant)
+//
+// entered after the data are stored, as a study team does the morning after.
+func wardTimeline(t *testing.T, db *DB) {
+	t.Helper()
+	for _, e := range []Enrolment{
+		{Participant: "P-0001", Device: "OX-A", FromMS: utcMS("2026-12-01T20:00:00Z"), ToMS: utcMS("2026-12-02T03:00:00Z"), Note: "bed 4"},
+		{Participant: "P-0001", Device: "OX-B", FromMS: utcMS("2026-12-02T03:10:00Z"), ToMS: utcMS("2026-12-02T08:00:00Z"), Note: "swap: OX-A battery"},
+		{Participant: "P-0002", Device: "OX-A", FromMS: utcMS("2026-12-02T10:00:00Z")},
+	} {
+		if _, err := db.Enrol(e, &AuditEntry{Actor: "nurse", Action: "participants.enrol"}); err != nil {
+			t.Fatal(err)
+		}
+	}
+}
+
+// wardPoints stores one point a minute (at whole minutes):
+//
+//	OX-A  2026-12-01 19:00 .. 2026-12-02 11:59   17 h  = 1020 points
+//	OX-B  2026-12-02 03:05 .. 2026-12-02 08:59   355 points
+func wardPoints(t *testing.T, db *DB) {
+	t.Helper()
+	b := &Batch{Devices: []*Device{{ID: "OX-A"}, {ID: "OX-B"}}}
+	add := func(dev string, from string, n int) {
+		t0 := utcMS(from)
+		for i := 0; i < n; i++ {
+			b.Points = append(b.Points, Point{Device: dev, TimeMS: t0 + int64(i)*60_000, SpO2: 95, Pulse: 70, PI: 1, SQI: 0.9, Source: 2})
+		}
+	}
+	add("OX-A", "2026-12-01T19:00:00Z", 1020)
+	add("OX-B", "2026-12-02T03:05:00Z", 355)
+	if err := db.Write(b); err != nil {
+		t.Fatal(err)
+	}
+}
+
+func TestEnrolmentTimeline(t *testing.T) {
+	dir := t.TempDir()
+	db, err := Open(dir, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	wardPoints(t, db)
+	wardTimeline(t, db)
+
+	count := func(pid string) map[string]int {
+		n := map[string]int{}
+		err := db.ParticipantTrend(pid, utcMS("2026-12-01T00:00:00Z"), utcMS("2026-12-03T00:00:00Z"), func(p Point) bool { n[p.Device]++; return true })
+		if err != nil {
+			t.Fatal(err)
+		}
+		return n
+	}
+	// P-0001: OX-A 20:00..03:00 = 7 h = 420 points; OX-B 03:10..08:00 = 4 h 50 = 290.
+	// (OX-B's 03:05..03:09 and 08:00..08:59 belong to nobody.)
+	if got := count("P-0001"); got["OX-A"] != 420 || got["OX-B"] != 290 || len(got) != 2 {
+		t.Errorf("P-0001 stitched: %v, want OX-A 420, OX-B 290", got)
+	}
+	// P-0002: OX-A 10:00..11:59 = 120 points. Sum check for OX-A: 60 before
+	// P-0001 + 420 + 420 unassigned (03:00..10:00) + 120 = 1020.
+	if got := count("P-0002"); got["OX-A"] != 120 || len(got) != 1 {
+		t.Errorf("P-0002 stitched: %v, want OX-A 120", got)
+	}
+
+	// A third participant on OX-B from 07:00 collides with P-0001 until 08:00.
+	_, err = db.Enrol(Enrolment{Participant: "P-0003", Device: "OX-B", FromMS: utcMS("2026-12-02T07:00:00Z")}, nil)
+	if !errors.Is(err, ErrConflict) || !strings.Contains(err.Error(), "already enrolled to P-0001 for 2026-12-02T03:10:00Z..2026-12-02T08:00:00Z") ||
+		!strings.Contains(err.Error(), "P-0003 for 2026-12-02T07:00:00Z..open") {
+		t.Errorf("overlap: %v", err)
+	}
+	// Bad fields are refused naming the field.
+	for _, c := range []struct {
+		e    Enrolment
+		want string
+	}{
+		{Enrolment{Participant: "Maria", Device: "OX-C", FromMS: 1}, "participant: "},
+		{Enrolment{Participant: "P-0009", Device: "OX C", FromMS: 1}, "device: "},
+		{Enrolment{Participant: "P-0009", Device: "OX-C", FromMS: 5000, ToMS: 4000}, "to: "},
+		{Enrolment{Participant: "P-0009", Device: "OX-C", FromMS: 1, Note: strings.Repeat("x", 201)}, "note: 201 bytes, want at most 200"},
+	} {
+		if _, err := db.Enrol(c.e, nil); !errors.Is(err, ErrInvalid) || !strings.Contains(err.Error(), c.want) {
+			t.Errorf("%+v: %v, want %q", c.e, err, c.want)
+		}
+	}
+
+	// Ending: P-0002's open enrolment ends at 12:00; P-0001 has none open.
+	e, err := db.EndEnrolment("P-0002", "", utcMS("2026-12-02T12:00:00Z"), &AuditEntry{Actor: "nurse", Action: "participants.end"})
+	if err != nil || e.ToMS != utcMS("2026-12-02T12:00:00Z") || e.Device != "OX-A" {
+		t.Fatalf("end: %+v %v", e, err)
+	}
+	if _, err := db.EndEnrolment("P-0001", "", utcMS("2026-12-02T12:00:00Z"), nil); !errors.Is(err, ErrNotFound) {
+		t.Errorf("end without open enrolment: %v", err)
+	}
+	// Now OX-A is free from 12:00 on.
+	if _, err := db.Enrol(Enrolment{Participant: "P-0003", Device: "OX-A", FromMS: utcMS("2026-12-02T12:00:00Z")}, nil); err != nil {
+		t.Errorf("OX-A after P-0002 ended: %v", err)
+	}
+	es, err := db.Enrolments("", "OX-A")
+	if err != nil || len(es) != 3 || es[0].Participant != "P-0001" || es[2].Participant != "P-0003" || es[0].Note != "bed 4" {
+		t.Errorf("OX-A enrolments %+v %v", es, err)
+	}
+	if a, _ := db.Audit(0, "participants.", 0); len(a) != 4 {
+		t.Errorf("audit holds %d participants entries, want 4 (3 enrolments, 1 end)", len(a))
+	}
+	db.Close()
+	rep, err := VerifyDir(dir, VerifyOptions{})
+	if err != nil || !rep.OK() || rep.Records["enrolments"] != 4 {
+		t.Errorf("verify: %+v %v", rep, err)
+	}
+}
