@@ -73,6 +73,7 @@ func (db *DB) Write(b *Batch) error {
 	var (
 		assignedDev []*Device
 		assignedEp  []*Episode
+		queued      bool // outbox entries were written
 	)
 	// index returns a device's ledger index, creating a bare record for a
 	// device first seen in this batch's trend points.
@@ -214,6 +215,12 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
+		if kick := db.outboxKick.Load(); kick != nil {
+			var err error
+			if queued, err = queueOutbox(tx, b.Episodes, time.Now().UnixMilli()); err != nil {
+				return err
+			}
+		}
 		as := tx.Bucket(bAlarmState)
 		for dev, snap := range b.AlarmStates {
 			var err error
@@ -246,6 +253,9 @@ func (db *DB) Write(b *Batch) error {
 		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
 	}
 	db.tail.afterCommit(b.Points, plan)
+	if queued {
+		(*db.outboxKick.Load())()
+	}
 	if len(newIdx) > 0 {
 		db.idx.mu.Lock()
 		for id, i := range newIdx {

@@ -55,12 +55,13 @@ var (
 	bCalAssign    = []byte("calassign")
 	bTokens       = []byte("tokens")
 	bEnrolments   = []byte("enrolments")
+	// bOutbox is in outbox.go.
 
 	keySchema  = []byte("schema")
 	keyStoreID = []byte("store_id")
 
 	allBuckets = [][]byte{bMeta, bDevices, bCursors, bRecent, bTrend, bLedger, bRaw, bSessions, bEpisodes,
-		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens, bEnrolments}
+		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens, bEnrolments, bOutbox}
 )
 
 // Options tunes Open. The zero value is usable.
@@ -88,6 +89,8 @@ type DB struct {
 	newest  map[string]int64 // per device, at least the newest trend time stored (keepfirst.go); guarded by writeMu
 
 	fault atomic.Pointer[WriteFault] // tests: fails writes (fault.go)
+
+	outboxKick atomic.Pointer[func()] // set by EnableOutbox: Write queues notifications (outbox.go)
 }
 
 // Open opens (creating when needed) the store in directory dir.

@@ -2,7 +2,8 @@
 // domain methods: devices, trend points, the ingest ledger (one record per
 // accepted data message), sessions, raw captures, alarm episodes and alarm
 // state, the audit log, alarm profiles, calibrations, credentials and the
-// enrolments of devices to study participants.
+// enrolments of devices to study participants, and the outbox of
+// notifications waiting for Alertmanager.
 //
 // Layout (bucket paths; keys are big-endian so cursors range-scan in order).
 // Every value this package encodes starts with a format version byte (the
@@ -26,6 +27,7 @@
 //	calibrations/NAME/VERSION     Calibration (JSON); calassign/TARGET -> "name@vN" (no version byte)
 //	tokens/HASH                   Token (JSON; only the SHA-256 of a secret is kept)
 //	enrolments/ENROLMENT_ID       Enrolment (JSON): a device's data in an interval belong to a pseudonymous participant (participants.go)
+//	outbox/EPISODE_ID             OutboxEntry (JSON): a notification not yet accepted by every Alertmanager (outbox.go)
 //
 // DAY is the number of whole days since the Unix epoch (UTC, uint32), so
 // retention drops whole day buckets the way a time-series database drops

@@ -87,6 +87,10 @@ type Episode struct {
 	EscalatedMS int64   `json:"escalated_ms,omitempty"`
 	EndedMS     int64   `json:"ended_ms,omitempty"`
 	MinSpO2     float64 `json:"min_spo2"` // -1 when no valid value
+	// Limit is the condition's effective limit in its unit (for
+	// desaturation the frozen baseline minus the drop); 0 when it has none
+	// or the episode was stored before limits were.
+	Limit       float64 `json:"limit,omitempty"`
 	DeficitPctS float64 `json:"deficit_pct_s"`
 	AckedBy     string  `json:"acked_by,omitempty"`
 	AckedMS     int64   `json:"acked_ms,omitempty"`

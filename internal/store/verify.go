@@ -207,6 +207,12 @@ var specs = map[string]bucketSpec{
 		}
 		return checkEnrolment(e)
 	})},
+	"outbox": {record: jsonRecord(func(_ *checker, k []byte, e *OutboxEntry) error {
+		if e.Gen == 0 {
+			return fmt.Errorf("outbox entry of episode %d has generation 0", e.Episode)
+		}
+		return idKey(k, e.Episode)
+	})},
 	"tokens": {record: jsonRecord(func(_ *checker, k []byte, t *Token) error {
 		if t.Hash != string(k) {
 			return fmt.Errorf("credential %s under another key", t.ID)

@@ -1,0 +1,110 @@
+package store
+
+import (
+	"errors"
+	"testing"
+)
+
+// The outbox is written in the transaction that writes the episode, only
+// for announced episodes and only when enabled; an entry leaves only when
+// every target accepted its latest generation, and it survives a reopen.
+func TestOutboxQueuesInTheEpisodeTransaction(t *testing.T) {
+	dir := t.TempDir()
+	db, err := Open(dir, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Off: nothing queued.
+	if err := db.Write(&Batch{Episodes: []*Episode{{ID: 7, Device: "d1", Condition: "spo2_low", Priority: "high", OnsetMS: 1000, AnnouncedMS: 16000, Active: true}}}); err != nil {
+		t.Fatal(err)
+	}
+	if _, n, _ := db.Outbox(0); n != 0 {
+		t.Fatalf("outbox off, but %d entries queued", n)
+	}
+	kicks := 0
+	db.EnableOutbox(func() { kicks++ })
+	ann := &Episode{ID: 8, Device: "d1", Condition: "spo2_low", Priority: "high", OnsetMS: 1000, AnnouncedMS: 16000, Active: true}
+	withdrawn := &Episode{ID: 9, Device: "d1", Condition: "pulse_high", Priority: "medium", OnsetMS: 1000, EndedMS: 3000}
+	if err := db.Write(&Batch{Episodes: []*Episode{ann, withdrawn}}); err != nil {
+		t.Fatal(err)
+	}
+	got, n, err := db.Outbox(0)
+	if err != nil || n != 1 || len(got) != 1 || got[0].Episode != 8 || got[0].Gen != 1 || got[0].QueuedMS == 0 {
+		t.Fatalf("outbox after one announced and one withdrawn episode: %+v (n %d, err %v)", got, n, err)
+	}
+	if kicks != 1 {
+		t.Errorf("kick called %d times, want 1", kicks)
+	}
+	queued := got[0].QueuedMS
+	targets := []string{"http://am-a", "http://am-b"}
+	if gone, err := db.OutboxAccepted(8, 1, targets[0], targets); err != nil || gone {
+		t.Fatalf("accepted by one of two targets: gone %v, err %v", gone, err)
+	}
+	// The episode ends before the second target accepted generation 1:
+	// generation 2 must reach both, and the acceptance of 1 removes nothing.
+	ann.Active, ann.EndedMS = false, 40000
+	if err := db.Write(&Batch{Episodes: []*Episode{ann}}); err != nil {
+		t.Fatal(err)
+	}
+	if gone, err := db.OutboxAccepted(8, 1, targets[1], targets); err != nil || gone {
+		t.Fatalf("a stale generation removed the entry: gone %v, err %v", gone, err)
+	}
+	got, _, _ = db.Outbox(0)
+	if len(got) != 1 || got[0].Gen != 2 || len(got[0].Delivered) != 0 || got[0].QueuedMS != queued {
+		t.Fatalf("after the end: %+v, want generation 2, delivered to none, queued at %d", got, queued)
+	}
+	if err := db.Close(); err != nil {
+		t.Fatal(err)
+	}
+	// A restart (here: a reopen without EnableOutbox) keeps the entry.
+	db, err = Open(dir, Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	db.EnableOutbox(nil)
+	defer func() { db.Close() }()
+	if got, _, _ = db.Outbox(0); len(got) != 1 || got[0].Gen != 2 {
+		t.Fatalf("after reopen: %+v", got)
+	}
+	for i, tg := range targets {
+		gone, err := db.OutboxAccepted(8, 2, tg, targets)
+		if err != nil || gone != (i == 1) {
+			t.Fatalf("accepted by %s: gone %v, err %v", tg, gone, err)
+		}
+	}
+	if _, n, _ := db.Outbox(0); n != 0 {
+		t.Fatalf("%d entries left after both targets accepted", n)
+	}
+	e, err := db.Episode(8)
+	if err != nil || e.EndedMS != 40000 {
+		t.Fatalf("Episode(8) = %+v, %v", e, err)
+	}
+	if _, err := db.Episode(99); !errors.Is(err, ErrNotFound) {
+		t.Fatalf("Episode(99): %v, want ErrNotFound", err)
+	}
+	// An entry left in the file passes the full check.
+	if err := db.Write(&Batch{Episodes: []*Episode{{ID: 10, Device: "d1", Condition: "spo2_low", Priority: "low", AnnouncedMS: 5}}}); err != nil {
+		t.Fatal(err)
+	}
+	db.Close()
+	rep, err := VerifyDir(dir, VerifyOptions{})
+	if err != nil || !rep.OK() {
+		t.Fatalf("verify: %+v %v", rep, err)
+	}
+	db, _ = Open(dir, Options{})
+}
+
+// A failed write queues nothing: the outbox entry and the episode commit
+// together or not at all.
+func TestOutboxRollsBackWithAFailedWrite(t *testing.T) {
+	db, _ := mustOpen(t)
+	db.EnableOutbox(nil)
+	db.InjectWriteFault(func(*Batch) error { return errors.New("injected") })
+	if err := db.Write(&Batch{Episodes: []*Episode{{ID: 3, Device: "d", Condition: "spo2_low", Priority: "high", AnnouncedMS: 5}}}); err == nil {
+		t.Fatal("write with a fault succeeded")
+	}
+	db.InjectWriteFault(nil)
+	if _, n, _ := db.Outbox(0); n != 0 {
+		t.Fatalf("a failed write left %d outbox entries", n)
+	}
+}
