@@ -1,0 +1,33 @@
+// Package notify delivers alarm episodes to Prometheus Alertmanager.
+//
+// The store keeps an outbox (internal/store, outbox.go): when it is on,
+// every announced episode the gateway writes (announcement, escalation,
+// end, acknowledgement) queues a notification in the same transaction, so
+// no durable episode change lacks one. A Notifier goes through the outbox
+// and posts each episode's current state to every configured Alertmanager
+// (POST /api/v2/alerts, the JSON of Alertmanager's API v2), one goroutine
+// per Alertmanager, and an entry leaves the outbox only when every
+// Alertmanager answered 2xx for its latest change. A failed request is
+// retried with a doubling backoff (1 s to 30 s by default); a restart of
+// the gateway or of Alertmanager delays delivery but loses nothing. A
+// notification may be delivered more than once (after a crash between the
+// answer and the store update, and by the periodic resend); Alertmanager
+// deduplicates alerts by their labels, which carry the episode id.
+//
+// What an alert says is built by Build from the stored episode and device:
+// labels alertname, device, condition, priority (low, medium, high),
+// model, gateway, episode and the device's own labels (LabelName makes
+// them valid label names); annotations with the lowest SpO2 since onset,
+// the limit, the onset time, a link to the device page and the caution
+// that pulsefleet is not a certified alarm. startsAt is the announcement;
+// endsAt is set once the episode ended (or its latched signal was
+// acknowledged), which resolves the alert. Active alerts are sent again
+// every Options.Resend (1 minute), well within Alertmanager's
+// resolve_timeout (5 minutes by default), because Alertmanager resolves a
+// firing alert without endsAt that is not repeated in time.
+//
+// The client is a few lines of net/http and encoding/json over the
+// documented API rather than Alertmanager's generated Go client, which
+// would bring the go-openapi runtime and its dependencies into the
+// gateway for one POST.
+package notify

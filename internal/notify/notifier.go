@@ -1,0 +1,362 @@
+package notify
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"log/slog"
+	"sync"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+
+	"github.com/pulsefleet/pulsefleet/internal/store"
+)
+
+// Store is what the notifier needs of the history store (*store.DB).
+type Store interface {
+	Outbox(limit int) ([]store.OutboxEntry, int, error)
+	OutboxAccepted(episode, gen uint64, target string, targets []string) (bool, error)
+	OutboxDrop(episode uint64) (bool, error)
+	Episode(id uint64) (store.Episode, error)
+	Episodes(f store.EpisodeFilter) ([]store.Episode, error)
+	Device(id string) (store.Device, error)
+}
+
+// Options configure a Notifier. Zero durations take the defaults named.
+type Options struct {
+	// URLs of the Alertmanagers; every one gets every alert (a highly
+	// available Alertmanager cluster deduplicates them). Required.
+	URLs []string
+	Auth Auth
+	// Store holds the outbox; required.
+	Store Store
+	// Gateway is the gateway label of every alert (this gateway's name).
+	Gateway string
+	// PageBase is the web page's external URL, for the device-page link.
+	PageBase string
+	// Resend is how often active alerts are sent again; 0 means 1 minute,
+	// a fifth of Alertmanager's default resolve_timeout (5 minutes), so
+	// four resends in a row may fail before Alertmanager would resolve an
+	// alert on its own.
+	Resend time.Duration
+	// BackoffMin and BackoffMax bound the wait before a failed target is
+	// tried again (doubling from min to max); 0 means 1 s and 30 s.
+	BackoffMin, BackoffMax time.Duration
+	// Timeout bounds one request; 0 means 10 s.
+	Timeout time.Duration
+	// Now is the clock; nil means time.Now.
+	Now func() time.Time
+	// Metrics from NewMetrics; nil registers nowhere.
+	Metrics *Metrics
+	Logger  *slog.Logger
+}
+
+// Notifier delivers the store's outbox to Alertmanager. Run owns its
+// goroutines; Kick may be called from anywhere.
+type Notifier struct {
+	opt     Options
+	clients []*client
+	targets []string
+	kicks   []chan struct{}
+	m       *Metrics
+
+	mu     sync.Mutex
+	firing map[uint64][]Alert // episode -> its alerts as last built while active (resent every Resend)
+}
+
+// New checks the options and builds a notifier.
+func New(opt Options) (*Notifier, error) {
+	if len(opt.URLs) == 0 {
+		return nil, errors.New("notify: no Alertmanager URL")
+	}
+	if opt.Store == nil {
+		return nil, errors.New("notify: Options.Store is required")
+	}
+	if err := opt.Auth.Check(); err != nil {
+		return nil, err
+	}
+	if opt.Resend == 0 {
+		opt.Resend = time.Minute
+	}
+	if opt.BackoffMin == 0 {
+		opt.BackoffMin = time.Second
+	}
+	if opt.BackoffMax == 0 {
+		opt.BackoffMax = 30 * time.Second
+	}
+	if opt.Timeout == 0 {
+		opt.Timeout = 10 * time.Second
+	}
+	if opt.Now == nil {
+		opt.Now = time.Now
+	}
+	if opt.Logger == nil {
+		opt.Logger = slog.New(slog.DiscardHandler)
+	}
+	n := &Notifier{opt: opt, m: opt.Metrics, firing: map[uint64][]Alert{}}
+	if n.m == nil {
+		n.m, _ = NewMetrics(prometheus.NewRegistry())
+	}
+	now := opt.Now
+	n.m.now.Store(&now)
+	seen := map[string]bool{}
+	for _, raw := range opt.URLs {
+		u, err := ParseURL(raw)
+		if err != nil {
+			return nil, err
+		}
+		if seen[u] {
+			return nil, fmt.Errorf("alertmanager: %s is given twice", u)
+		}
+		seen[u] = true
+		c, err := newClient(u, opt.Auth, opt.Timeout)
+		if err != nil {
+			return nil, err
+		}
+		n.clients = append(n.clients, c)
+		n.targets = append(n.targets, u)
+		n.kicks = append(n.kicks, make(chan struct{}, 1))
+	}
+	return n, nil
+}
+
+// Targets are the Alertmanager URLs, as the outbox names them.
+func (n *Notifier) Targets() []string { return append([]string(nil), n.targets...) }
+
+// Kick tells the notifier that the outbox has new entries (it never blocks).
+func (n *Notifier) Kick() {
+	for _, k := range n.kicks {
+		select {
+		case k <- struct{}{}:
+		default:
+		}
+	}
+}
+
+// Run delivers until ctx ends: one goroutine per Alertmanager, each going
+// through the outbox on every kick, after a failure when its backoff
+// expires, and every Resend (when it also sends the active alerts again).
+// It returns when all of them have stopped. What is still in the outbox
+// stays there for the next Run.
+func (n *Notifier) Run(ctx context.Context) error {
+	if err := n.loadFiring(); err != nil {
+		return err
+	}
+	var wg sync.WaitGroup
+	for i := range n.clients {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			n.work(ctx, i)
+		}()
+	}
+	wg.Wait()
+	for _, c := range n.clients {
+		c.close()
+	}
+	return nil
+}
+
+// loadFiring seeds the resend set with the stored active, announced
+// episodes (after a restart, Alertmanager may have lost them too).
+func (n *Notifier) loadFiring() error {
+	eps, err := n.opt.Store.Episodes(store.EpisodeFilter{ActiveOnly: true})
+	if err != nil {
+		return fmt.Errorf("notify: active episodes: %w", err)
+	}
+	now := n.opt.Now()
+	devs := map[string]*store.Device{}
+	n.mu.Lock()
+	defer n.mu.Unlock()
+	for i := range eps {
+		e := &eps[i]
+		if e.AnnouncedMS <= 0 {
+			continue
+		}
+		n.firing[e.ID] = Build(e, n.device(devs, e.Device), n.opt.Gateway, n.opt.PageBase, now)[:1]
+	}
+	return nil
+}
+
+// device reads a device record once per pass (nil when unknown).
+func (n *Notifier) device(cache map[string]*store.Device, id string) *store.Device {
+	if d, ok := cache[id]; ok {
+		return d
+	}
+	var dp *store.Device
+	if d, err := n.opt.Store.Device(id); err == nil {
+		dp = &d
+	}
+	cache[id] = dp
+	return dp
+}
+
+// work is target i's loop.
+func (n *Notifier) work(ctx context.Context, i int) {
+	c, target := n.clients[i], n.targets[i]
+	backoff := time.Duration(0)
+	retry := time.NewTimer(0) // first pass at once: the outbox may hold what a previous run left
+	resend := time.NewTicker(n.opt.Resend)
+	defer retry.Stop()
+	defer resend.Stop()
+	ready := true
+	for {
+		resending := false
+		select {
+		case <-ctx.Done():
+			return
+		case <-n.kicks[i]:
+		case <-retry.C:
+			ready = true
+		case <-resend.C:
+			resending = true
+		}
+		if !ready {
+			n.refreshQueue() // the gauges move while this target waits out its backoff
+			continue
+		}
+		err := n.pass(ctx, c, target)
+		if err == nil && resending {
+			err = n.resend(ctx, c)
+		}
+		if ctx.Err() != nil {
+			return
+		}
+		if err != nil {
+			n.m.failed.WithLabelValues(target).Inc()
+			backoff = min(max(2*backoff, n.opt.BackoffMin), n.opt.BackoffMax)
+			n.opt.Logger.Warn("alertmanager did not accept alerts; will retry", "alertmanager", target, "retry_in", backoff, "err", err)
+			ready = false
+			retry.Reset(backoff)
+			continue
+		}
+		backoff = 0
+	}
+}
+
+// passBatch bounds the alerts of one request.
+const passBatch = 64
+
+// pass sends target every outbox entry it has not accepted yet, in
+// batches, and records what it accepted. It stops at the first failure.
+func (n *Notifier) pass(ctx context.Context, c *client, target string) error {
+	ents, total, err := n.opt.Store.Outbox(0)
+	if err != nil {
+		return err
+	}
+	n.setQueue(ents, total)
+	now := n.opt.Now()
+	devs := map[string]*store.Device{}
+	var (
+		alerts []Alert
+		sent   []store.OutboxEntry
+	)
+	flush := func() error {
+		if len(sent) == 0 {
+			return nil
+		}
+		if err := c.post(ctx, alerts); err != nil {
+			return err
+		}
+		n.m.sent.WithLabelValues(target).Add(float64(len(alerts)))
+		for _, e := range sent {
+			if _, err := n.opt.Store.OutboxAccepted(e.Episode, e.Gen, target, n.targets); err != nil {
+				return err
+			}
+		}
+		alerts, sent = alerts[:0], sent[:0]
+		return nil
+	}
+	for _, ent := range ents {
+		if delivered(ent, target) {
+			continue
+		}
+		ep, err := n.opt.Store.Episode(ent.Episode)
+		if errors.Is(err, store.ErrNotFound) {
+			// Deleted (a participant's data removed): nothing left to tell.
+			n.opt.Logger.Warn("outbox entry of a deleted episode dropped", "episode", ent.Episode)
+			if _, err := n.opt.Store.OutboxDrop(ent.Episode); err != nil {
+				return err
+			}
+			continue
+		} else if err != nil {
+			return err
+		}
+		as := Build(&ep, n.device(devs, ep.Device), n.opt.Gateway, n.opt.PageBase, now)
+		n.track(&ep, as)
+		alerts = append(alerts, as...)
+		sent = append(sent, ent)
+		if len(sent) >= passBatch {
+			if err := flush(); err != nil {
+				return err
+			}
+		}
+	}
+	if err := flush(); err != nil {
+		return err
+	}
+	n.refreshQueue()
+	return nil
+}
+
+func delivered(e store.OutboxEntry, target string) bool {
+	for _, d := range e.Delivered {
+		if d == target {
+			return true
+		}
+	}
+	return false
+}
+
+// track keeps the resend set in step with what was last built.
+func (n *Notifier) track(e *store.Episode, as []Alert) {
+	n.mu.Lock()
+	defer n.mu.Unlock()
+	if e.Active {
+		n.firing[e.ID] = as[:1]
+	} else {
+		delete(n.firing, e.ID)
+	}
+}
+
+// resend posts every active alert again (Alertmanager resolves a firing
+// alert that is not repeated within its resolve_timeout).
+func (n *Notifier) resend(ctx context.Context, c *client) error {
+	n.mu.Lock()
+	var alerts []Alert
+	for _, as := range n.firing {
+		alerts = append(alerts, as...)
+	}
+	n.mu.Unlock()
+	for len(alerts) > 0 {
+		k := min(len(alerts), passBatch)
+		if err := c.post(ctx, alerts[:k]); err != nil {
+			return err
+		}
+		n.m.resent.WithLabelValues(c.base).Add(float64(k))
+		alerts = alerts[k:]
+	}
+	return nil
+}
+
+// refreshQueue reads the outbox for the gauges.
+func (n *Notifier) refreshQueue() {
+	ents, total, err := n.opt.Store.Outbox(0)
+	if err != nil {
+		n.opt.Logger.Warn("outbox unreadable", "err", err)
+		return
+	}
+	n.setQueue(ents, total)
+}
+
+func (n *Notifier) setQueue(ents []store.OutboxEntry, total int) {
+	oldest := int64(0)
+	for _, e := range ents {
+		if oldest == 0 || e.QueuedMS < oldest {
+			oldest = e.QueuedMS
+		}
+	}
+	n.m.queued.Set(float64(total))
+	n.m.oldestMS.Store(oldest)
+}
