@@ -126,3 +126,38 @@ func decodeCursor(v []byte, c *Cursor) error {
 	}
 	return nil
 }
+
+// trendItems is the number of points a trend record holds.
+func trendItems(_, v []byte) int64 {
+	if len(v) > 0 && v[0] == vPoint {
+		return 1
+	}
+	return 0
+}
+
+// ledgerItems is the number of messages a ledger record stands for.
+func ledgerItems(_, v []byte) int64 {
+	if len(v) == ledgerValSize && v[0] == vChunk {
+		return 1
+	}
+	return 0
+}
+
+// rawItems is the number of raw chunks a raw record holds.
+func rawItems(_, v []byte) int64 {
+	if len(v) > 0 && v[0] == vRaw {
+		return 1
+	}
+	return 0
+}
+
+// rawSeconds is the device-seconds of samples a raw record holds.
+func rawSeconds(v []byte) float64 {
+	if len(v) >= 25 && v[0] == vRaw {
+		rate := math.Float64frombits(binary.BigEndian.Uint64(v[9:]))
+		if rate > 0 {
+			return float64(binary.BigEndian.Uint32(v[17:])) / rate
+		}
+	}
+	return 0
+}

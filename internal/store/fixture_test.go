@@ -281,3 +281,34 @@ func TestOpenStoreOfRelease1(t *testing.T) {
 		t.Fatalf("verify after compaction: %+v, %v", rep, err)
 	}
 }
+
+// TestStatsCountsWhatWasWritten checks Stats against the fixture's known
+// contents: 400 trend points (200 s of two devices), 1,000 ledger messages,
+// 240 raw chunks of 25 samples at 100 Hz (60 s).
+func TestStatsCountsWhatWasWritten(t *testing.T) {
+	for _, dir := range []string{unpackFixture(t, filepath.Join("testdata", "store-release-1")), func() string {
+		d := t.TempDir()
+		writeFixture(t, d)
+		return d
+	}()} {
+		db, err := Open(dir, Options{ReadOnly: true})
+		if err != nil {
+			t.Fatal(err)
+		}
+		st, err := db.Stats()
+		db.Close()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if st.TrendPoints != 400 || st.Kind("ledger").Items != 1000 || st.Kind("raw").Items != 240 || st.RawSeconds != 60 {
+			t.Errorf("%s: trend %d, ledger %d, raw %d chunks / %v s; want 400, 1000, 240 / 60 s",
+				dir, st.TrendPoints, st.Kind("ledger").Items, st.Kind("raw").Items, st.RawSeconds)
+		}
+		if st.Kind("episodes").Records != 1 || st.Kind("audit").Records != 1 || st.DeviceDays != 400.0/86_400 {
+			t.Errorf("%s: %+v", dir, st)
+		}
+		if st.Kind("ledger").Bytes == 0 || st.Kind("trend").Bytes == 0 || st.FileBytes < st.Kind("raw").Bytes {
+			t.Errorf("%s: bytes %+v", dir, st)
+		}
+	}
+}

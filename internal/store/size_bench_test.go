@@ -1,0 +1,137 @@
+package store
+
+import (
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"testing"
+
+	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
+)
+
+// Storage cost per device-day, measured on a store filled through Write the
+// way the gateway's writer fills it: raw devices at 100 Hz sending a
+// 25-sample chunk every 250 ms (one ledger record and one cursor each),
+// one trend point per device-second, batches of what arrives within 25 ms.
+// The raw samples come from the physical PPG model (internal/ppgmodel) at
+// 16 bits. Run with
+//
+//	go test ./internal/store -run x -bench StorageCost -benchtime 1x
+//
+// Figures are bytes of pages per device-day (trend, ledger) and per
+// device-second (raw), from Stats after the recent log is compacted; the
+// free pages a short fill leaves behind are reported apart (file_B/devday
+// counts them), as they do not grow with the days kept.
+
+const (
+	sizeDevices = 100
+	sizeSeconds = 200
+	sizeRateHz  = 100
+	sizeChunk   = 25
+	sizeBatchMS = 25
+)
+
+type sizeFill struct {
+	raw  bool
+	srcs []*ppgmodel.Source
+	rng  *rand.Rand
+	red  []float64
+	ir   []float64
+}
+
+func newSizeFill(raw bool) *sizeFill {
+	f := &sizeFill{raw: raw, rng: rand.New(rand.NewPCG(1, 2)), red: make([]float64, sizeChunk), ir: make([]float64, sizeChunk)}
+	for i := 0; i < sizeDevices; i++ {
+		f.srcs = append(f.srcs, ppgmodel.New(ppgmodel.Config{SampleRateHz: sizeRateHz, ADCBits: 16, Seed: uint64(i + 1)}))
+	}
+	return f
+}
+
+// fill writes sizeSeconds of every device into db.
+func (f *sizeFill) fill(tb testing.TB, db *DB) {
+	const t0 = int64(1_780_000_000_000)
+	seq := make([]uint64, sizeDevices)
+	phase := func(d int) int64 { return int64(d*37) % 250 }
+	b := &Batch{}
+	for i := 0; i < sizeDevices; i++ {
+		b.Devices = append(b.Devices, &Device{ID: sizeDev(i), Mode: "raw", ADCBits: 16, BatteryPct: -1})
+	}
+	vit := ppgmodel.DefaultVitals()
+	for ms := int64(0); ms < sizeSeconds*1000; ms += sizeBatchMS {
+		for d := 0; d < sizeDevices; d++ {
+			// A chunk is due every 250 ms from the device's phase: at most
+			// one falls into a 25 ms batch.
+			due := ms + (250-mod(ms-phase(d), 250))%250
+			if due < ms+sizeBatchMS {
+				f.chunk(b, d, t0+due, &seq[d], vit)
+			}
+		}
+		if b.Len() == 0 {
+			continue
+		}
+		if err := db.Write(b); err != nil {
+			tb.Fatal(err)
+		}
+		b.Reset()
+	}
+	if err := db.CompactAll(); err != nil {
+		tb.Fatal(err)
+	}
+}
+
+func sizeDev(i int) string { return fmt.Sprintf("ward%d-bed%02d", i/20+1, i%20+1) }
+
+// chunk adds one data message's effects: ledger record, cursor, raw
+// capture, and the trend point when it completes a device-second.
+func (f *sizeFill) chunk(b *Batch, d int, tms int64, seq *uint64, vit ppgmodel.Vitals) {
+	*seq++
+	id := sizeDev(d)
+	b.Chunks = append(b.Chunks, Chunk{Device: id, Seq: *seq, DeviceTimeMS: tms, ArrivalMS: tms + 35, Samples: sizeChunk})
+	b.Cursors = append(b.Cursors, Cursor{Device: id, LastSeq: *seq, Chunks: *seq, Samples: *seq * sizeChunk, LastSeenMS: tms + 35, LastDeviceMS: tms})
+	f.srcs[d].Fill(f.red, f.ir, nil, vit)
+	if f.raw {
+		r := RawCapture{Device: id, Seq: *seq, DeviceTimeMS: tms, RateHz: sizeRateHz, Red: make([]uint32, sizeChunk), IR: make([]uint32, sizeChunk)}
+		for i := range f.red {
+			r.Red[i], r.IR[i] = uint32(f.red[i]), uint32(f.ir[i])
+		}
+		b.Raw = append(b.Raw, r)
+	}
+	if *seq%4 == 0 {
+		// An estimate's values: smooth physiology plus estimator jitter.
+		s := float64(*seq / 4)
+		b.Points = append(b.Points, Point{Device: id, TimeMS: tms + 250, Source: 1,
+			SpO2:  97 + 0.8*math.Sin(s/90) + f.rng.NormFloat64()*0.4,
+			Pulse: 72 + 3*math.Sin(s/40) + f.rng.NormFloat64()*1.5,
+			PI:    2 + 0.2*math.Sin(s/60) + f.rng.NormFloat64()*0.05,
+			SQI:   min(1, 0.93+f.rng.NormFloat64()*0.03),
+			Ratio: 0.52 + f.rng.NormFloat64()*0.01})
+	}
+}
+
+func BenchmarkStorageCost(b *testing.B) {
+	for _, mode := range []struct {
+		name string
+		raw  bool
+	}{{"trend+ledger", false}, {"capture-raw", true}} {
+		b.Run(mode.name, func(b *testing.B) {
+			var st *Stats
+			for i := 0; i < b.N; i++ {
+				db, _ := mustOpen(b)
+				newSizeFill(mode.raw).fill(b, db)
+				var err error
+				if st, err = db.Stats(); err != nil {
+					b.Fatal(err)
+				}
+			}
+			trend := st.Kind("trend").Bytes + st.Kind("recent").Bytes
+			ledger := st.Kind("ledger").Bytes
+			b.ReportMetric(st.PerDeviceDay(trend)/1e6, "trend_MB/devday")
+			b.ReportMetric(st.PerDeviceDay(ledger)/1e6, "ledger_MB/devday")
+			b.ReportMetric(st.PerDeviceDay(trend+ledger)/1e6, "trend+ledger_MB/devday")
+			b.ReportMetric(st.PerDeviceDay(st.FileBytes)/1e6, "file_MB/devday")
+			if mode.raw {
+				b.ReportMetric(float64(st.Kind("raw").Bytes)/st.RawSeconds, "raw_B/devsec")
+			}
+		})
+	}
+}
