@@ -1,0 +1,56 @@
+// Package cluster makes several gateways one fleet on etcd: membership
+// under a lease, device ownership by rendezvous hashing over the live
+// members, and a per-device fence so that a device is never accepted by two
+// gateways at once.
+//
+// Membership. Each gateway (Join) puts PREFIX/members/ADDR under a lease of
+// TTL DefaultTTL (3 s) that it renews every TTL/3, and watches
+// PREFIX/members/. The owner of a device is the rendezvous winner (package
+// shard) over the live members; every gateway computes the same owner
+// without talking to the others. A gateway that dies (kill -9) stops
+// renewing: etcd expires its lease at most TTL after the last renewal, its
+// member key disappears, and every survivor owns its share of the dead
+// gateway's devices from the watch event on (Owner changes at once; no
+// operator action). A returning gateway registers, and the devices it wins
+// are let go by their current gateway (their fence's lost callback ends the
+// stream) and redirected to it. Close revokes the lease so a gateway that
+// stops cleanly hands over at once rather than after the TTL.
+//
+// Fence. Before a gateway accepts a device's stream it creates
+// PREFIX/fence/DEVICE (a transaction that succeeds only when the key does
+// not exist) attached to its member lease, and deletes it when the stream
+// ends (only the version it put: a compare on the key's mod revision). A
+// gateway that finds the key held by another gateway watches it and takes
+// it when it is deleted, for at most AcquireWait (2*TTL); otherwise the
+// stream is refused with UNAVAILABLE and the device retries. Why a lease
+// key rather than a revision check on every write: the data path (bbolt
+// writes and acknowledgements) never waits for etcd; the fence costs one
+// transaction per stream start and one per stream end, and a dead gateway's
+// fences vanish with its lease, exactly when its membership does.
+//
+// Failure modes (what the fence does and does not guarantee):
+//   - Gateway killed: its fences live until its lease expires (<= TTL), so
+//     a device that reconnects to a survivor at once waits at most that long
+//     (Acquire watches the key) and is then accepted.
+//   - Gateway cut off from etcd, etcd itself fine: this gateway keeps the
+//     streams it has (its devices are connected to it, not elsewhere) and
+//     cannot start new ones. When its lease has expired and it reaches etcd
+//     again, it learns so (LeaseNotFound), ends every stream (ErrLeaseLost)
+//     and registers anew. Between the expiry and that moment a device could
+//     be on a new stream at another gateway while a half-open old stream
+//     lingers here; the old stream carries nothing the device still sends,
+//     so no message is accepted twice through it, but the window exists.
+//   - etcd down for everyone: nobody can take a fence, so current streams
+//     go on everywhere (the data path does not depend on etcd); devices that
+//     reconnect during the outage are refused until etcd is back.
+//   - A message committed by a gateway that dies before its acknowledgement
+//     reaches the device is resent to the new owner and stored there too:
+//     duplicates across stores are bounded by the last unacknowledged batch
+//     of each device of the dead gateway (cmd/pulsefleet's failover test
+//     counts them); every acknowledged message is in some store.
+//
+// Keys (PREFIX defaults to /pulsefleet/):
+//
+//	PREFIX/members/ADDR   value ADDR, member lease
+//	PREFIX/fence/DEVICE   value ADDR of the holder, the holder's member lease
+package cluster
