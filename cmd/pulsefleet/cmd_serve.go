@@ -55,6 +55,8 @@ type serveConfig struct {
 	BackupDir      string        `yaml:"backup_dir"`
 	BackupEvery    time.Duration `yaml:"backup_every"`
 	BackupKeep     int           `yaml:"backup_keep"`
+	// Notifications through Alertmanager (serve_notify.go).
+	notifyConfig `yaml:",inline"`
 }
 
 const (
@@ -99,6 +101,7 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.StringVar(&c.BackupDir, "backup-dir", c.BackupDir, "take scheduled snapshots of the store into this directory (pulsefleet-TIME.db with .sha256; see `pulsefleet backup`); empty takes none")
 	fs.DurationVar(&c.BackupEvery, "backup-every", c.BackupEvery, "interval of scheduled snapshots, 1s..720h")
 	fs.IntVar(&c.BackupKeep, "backup-keep", c.BackupKeep, "complete scheduled snapshots kept; older ones are removed")
+	c.notifyConfig.flags(fs)
 	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
 }
 
@@ -174,6 +177,9 @@ func (c *serveConfig) validate() error {
 		return fmt.Errorf("self: given without --peers")
 	}
 	if err := c.backups().Validate(); err != nil {
+		return err
+	}
+	if err := c.notifyConfig.validate(); err != nil {
 		return err
 	}
 	if c.VerifyStore != "quick" && c.VerifyStore != "full" {
@@ -283,6 +289,17 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		return nil, nil, fmt.Errorf("http-listen %s: %w", c.HTTPListen, err)
 	}
 	hl = sec.wrapHTTP(hl)
+	scheme := "http"
+	if c.TLSCert != "" {
+		scheme = "https"
+	}
+	stopNotify, err := startNotifier(c, db, reg, log, scheme+"://"+hl.Addr().String())
+	if err != nil {
+		hl.Close()
+		gl.Close()
+		db.Close()
+		return nil, nil, err
+	}
 	sctx, cancel := context.WithCancel(context.WithoutCancel(ctx))
 	done := make(chan error, 1)
 	go func() { done <- gw.Serve(sctx, gl, hl) }()
@@ -290,6 +307,7 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 	stop := func() error {
 		cancel()
 		err := <-done
+		stopNotify() // after the gateway's last write
 		if cerr := db.Close(); err == nil {
 			err = cerr
 		}

@@ -12,10 +12,17 @@ import (
 
 // serveConfigKeys lists the YAML keys --config accepts, in struct order.
 func serveConfigKeys() []string {
-	t := reflect.TypeOf(serveConfig{})
+	return yamlKeys(reflect.TypeOf(serveConfig{}))
+}
+
+// yamlKeys lists a struct's YAML keys, those of inline fields included.
+func yamlKeys(t reflect.Type) []string {
 	keys := make([]string, 0, t.NumField())
 	for i := 0; i < t.NumField(); i++ {
-		if k, _, _ := strings.Cut(t.Field(i).Tag.Get("yaml"), ","); k != "" && k != "-" {
+		k, opts, _ := strings.Cut(t.Field(i).Tag.Get("yaml"), ",")
+		if k == "" && opts == "inline" {
+			keys = append(keys, yamlKeys(t.Field(i).Type)...)
+		} else if k != "" && k != "-" {
 			keys = append(keys, k)
 		}
 	}
