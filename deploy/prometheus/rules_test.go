@@ -22,6 +22,7 @@ import (
 	"google.golang.org/grpc/credentials/insecure"
 
 	"github.com/pulsefleet/pulsefleet/internal/gateway"
+	"github.com/pulsefleet/pulsefleet/internal/notify"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
@@ -96,6 +97,11 @@ func TestLiveMetricsAreCleanAndCoverTheRules(t *testing.T) {
 	defer db.Close()
 	reg := &describedRegistry{Registry: prometheus.NewRegistry(), names: map[string]bool{}}
 	if err := gateway.RegisterRuntime(reg); err != nil {
+		t.Fatal(err)
+	}
+	// serve registers the notifier's metrics on every gateway, with or
+	// without --alertmanager (cmd/pulsefleet/serve_notify.go).
+	if _, err := notify.NewMetrics(reg); err != nil {
 		t.Fatal(err)
 	}
 	gw, err := gateway.New(gateway.Options{Store: db, Registerer: reg, BatchDelay: 5 * time.Millisecond})
