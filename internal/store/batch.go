@@ -74,6 +74,7 @@ func (db *DB) Write(b *Batch) error {
 		assignedDev []*Device
 		assignedEp  []*Episode
 		queued      bool // outbox entries were written
+		led         *ledgerWriter
 	)
 	// index returns a device's ledger index, creating a bare record for a
 	// device first seen in this batch's trend points.
@@ -143,34 +144,17 @@ func (db *DB) Write(b *Batch) error {
 				return fmt.Errorf("compact trend generation %d: %w", plan.sg.gen, err)
 			}
 		}
-		if len(b.Chunks) > 0 {
-			led := tx.Bucket(bLedger)
-			// bbolt keeps references to keys and values until commit: one slab, no reuse.
-			slab := make([]byte, len(b.Chunks)*(ledgerKeySize+ledgerValSize))
-			var day *bolt.Bucket
-			var dayNum uint32 = ^uint32(0)
-			for i := range b.Chunks {
-				c := &b.Chunks[i]
-				idx, ok := newIdx[c.Device]
-				if !ok {
-					if idx, ok = db.lookupIndex(tx, c.Device, newIdx); !ok {
-						return fmt.Errorf("ledger: device %q has no record", c.Device)
-					}
+		led = &ledgerWriter{db: db, tx: tx, pending: map[uint32]*openRange{}}
+		for i := range b.Chunks {
+			c := &b.Chunks[i]
+			idx, ok := newIdx[c.Device]
+			if !ok {
+				if idx, ok = db.lookupIndex(tx, c.Device, newIdx); !ok {
+					return fmt.Errorf("ledger: device %q has no record", c.Device)
 				}
-				if d := dayOf(c.ArrivalMS); d != dayNum || day == nil {
-					var err error
-					if day, err = led.CreateBucketIfNotExists(u32(d)); err != nil {
-						return err
-					}
-					dayNum = d
-				}
-				k := slab[:ledgerKeySize:ledgerKeySize]
-				v := slab[ledgerKeySize : ledgerKeySize+ledgerValSize : ledgerKeySize+ledgerValSize]
-				slab = slab[ledgerKeySize+ledgerValSize:]
-				encodeChunk(k, v, c, idx)
-				if err := day.Put(k, v); err != nil {
-					return err
-				}
+			}
+			if err := led.add(c, idx); err != nil {
+				return err
 			}
 		}
 		for i := range b.Raw {
@@ -253,6 +237,7 @@ func (db *DB) Write(b *Batch) error {
 		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
 	}
 	db.tail.afterCommit(b.Points, plan)
+	led.commit()
 	if queued {
 		(*db.outboxKick.Load())()
 	}

@@ -136,11 +136,12 @@ func trendItems(_, v []byte) int64 {
 }
 
 // ledgerItems is the number of messages a ledger record stands for.
-func ledgerItems(_, v []byte) int64 {
-	if len(v) == ledgerValSize && v[0] == vChunk {
-		return 1
+func ledgerItems(k, v []byte) int64 {
+	var r ledgerRange
+	if decodeLedger(k, v, &r) != nil {
+		return 0
 	}
-	return 0
+	return int64(r.count())
 }
 
 // rawItems is the number of raw chunks a raw record holds.

@@ -26,7 +26,7 @@ const schemaVersion = 1
 const (
 	vJSON   = 1
 	vPoint  = 1
-	vChunk  = 1
+	vChunk  = 1 // one record per message; ledger ranges are vLedgerRange (ledger.go)
 	vRaw    = 1
 	vCursor = 1 // version 1 carries LastDeviceMS when 8 bytes longer (older cursors lack it)
 )
@@ -87,6 +87,9 @@ type DB struct {
 	writeMu sync.Mutex // serialises Write (bbolt does too) and guards the tail's generations
 	tail    trendTail
 	newest  map[string]int64 // per device, at least the newest trend time stored (keepfirst.go); guarded by writeMu
+	// ledgerOpen is each device's ledger range the next message may
+	// extend (ledger.go); guarded by writeMu.
+	ledgerOpen map[uint32]*openRange
 
 	fault atomic.Pointer[WriteFault] // tests: fails writes (fault.go)
 
@@ -157,7 +160,7 @@ func Open(dir string, opt Options) (*DB, error) {
 			return nil, damaged(path, "%s", strings.Join(p, "; "))
 		}
 	}
-	db := &DB{path: path, idx: indexCache{m: map[string]uint32{}}, newest: map[string]int64{}}
+	db := &DB{path: path, idx: indexCache{m: map[string]uint32{}}, newest: map[string]int64{}, ledgerOpen: map[uint32]*openRange{}}
 	err = guard(path, func() error { return db.open(opt, ident) })
 	if err != nil {
 		if db.bolt != nil {

@@ -1,6 +1,6 @@
 // Package store keeps pulsefleet's history in one embedded bbolt file behind
-// domain methods: devices, trend points, the ingest ledger (one record per
-// accepted data message), sessions, raw captures, alarm episodes and alarm
+// domain methods: devices, trend points, the ingest ledger (ranges of
+// accepted data messages), sessions, raw captures, alarm episodes and alarm
 // state, the audit log, alarm profiles, calibrations, credentials and the
 // enrolments of devices to study participants, and the outbox of
 // notifications waiting for Alertmanager.
@@ -17,7 +17,8 @@
 //	cursors/ID                    Cursor (binary): resume point and counters, written with every batch
 //	recent/GEN/TIME_MS|DEVIDX     Point, the recent log (tail.go) until compacted into trend/
 //	trend/ID/DAY/TIME_MS          Point (24 bytes binary)
-//	ledger/DAY/ARRIVAL_MS|DEVIDX|SEQ  Chunk (binary), time-first so writing is appending
+//	ledger/DAY/DEVIDX|FIRST_SEQ|N  a range of one device's accepted messages (ledger.go); a release-1 store's
+//	                              ARRIVAL_MS|DEVIDX|SEQ records (one per message) are read alike
 //	raw/ID/DAY/SEQ                RawCapture (binary)
 //	sessions/ID/START_MS          Session (JSON)
 //	episodes/EPISODE_ID           Episode (JSON)

@@ -273,6 +273,30 @@ func TestOpenStoreOfRelease1(t *testing.T) {
 		t.Fatal(err)
 	}
 	checkFixture(t, db)
+	// The current code writes on: the raw device's next messages go into
+	// ledger ranges beside the release's one-per-message records.
+	last := fixtureStart + 199_750
+	b := &Batch{}
+	for s := uint64(802); s <= 811; s++ {
+		last += 250
+		b.Chunks = append(b.Chunks, Chunk{Device: "fx-raw", Seq: s, DeviceTimeMS: last, ArrivalMS: last + 40, Samples: 25})
+	}
+	b.Cursors = []Cursor{{Device: "fx-raw", LastSeq: 811, Chunks: 810, Samples: 810 * 25, Lost: 1, LastSeenMS: last + 40, LastDeviceMS: last}}
+	if err := db.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	tot, err := db.LedgerTotals()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got := tot["fx-raw"]; got != (LedgerTotal{Chunks: 810, Samples: 810 * 25, MaxSeq: 811, Distinct: true}) {
+		t.Errorf("ledger after writing on: %+v", got)
+	}
+	for seq, want := range map[uint64]bool{1: true, 49: true, 50: false, 801: true, 802: true, 811: true, 812: false} {
+		if got, err := db.LedgerHas("fx-raw", seq); err != nil || got != want {
+			t.Errorf("LedgerHas(fx-raw, %d) = %v, %v; want %v", seq, got, err, want)
+		}
+	}
 	if err := db.Close(); err != nil {
 		t.Fatal(err)
 	}

@@ -212,58 +212,6 @@ type LedgerTotal struct {
 	Distinct bool
 }
 
-// LedgerTotals scans the whole ingest ledger and sums it per device. It is
-// meant for verification (tests, bench), not for hot paths.
-func (db *DB) LedgerTotals() (map[string]LedgerTotal, error) {
-	byIdx := map[uint32]*LedgerTotal{}
-	seen := map[[12]byte]struct{}{}
-	names := map[uint32]string{}
-	err := db.view(func(tx *bolt.Tx) error {
-		if err := tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
-			var d Device
-			if err := decJSON(v, &d); err != nil {
-				return err
-			}
-			names[d.Index] = d.ID
-			return nil
-		}); err != nil {
-			return err
-		}
-		return tx.Bucket(bLedger).ForEachBucket(func(dk []byte) error {
-			return tx.Bucket(bLedger).Bucket(dk).ForEach(func(k, v []byte) error {
-				if len(k) != ledgerKeySize || len(v) != ledgerValSize {
-					return fmt.Errorf("bad ledger record")
-				}
-				idx := binary.BigEndian.Uint32(k[8:])
-				seq := binary.BigEndian.Uint64(k[12:])
-				t := byIdx[idx]
-				if t == nil {
-					t = &LedgerTotal{Distinct: true}
-					byIdx[idx] = t
-				}
-				var sk [12]byte
-				copy(sk[:], k[8:])
-				if _, dup := seen[sk]; dup {
-					t.Distinct = false
-				}
-				seen[sk] = struct{}{}
-				t.Chunks++
-				t.Samples += uint64(binary.BigEndian.Uint32(v[9:]))
-				t.MaxSeq = max(t.MaxSeq, seq)
-				return nil
-			})
-		})
-	})
-	if err != nil {
-		return nil, fmt.Errorf("store: ledger: %w", err)
-	}
-	out := make(map[string]LedgerTotal, len(byIdx))
-	for idx, t := range byIdx {
-		out[names[idx]] = *t
-	}
-	return out, nil
-}
-
 // Sessions returns a device's sessions that started at or after fromMS, oldest first.
 func (db *DB) Sessions(device string, fromMS int64) ([]Session, error) {
 	var out []Session

@@ -153,17 +153,19 @@ var specs = map[string]bucketSpec{
 	"recent": {nestedKey: []func([]byte) error{keyLen(4)}, record: pointRecord(-1)},
 	"trend":  {nestedKey: []func([]byte) error{anyKey, keyLen(4)}, record: pointRecord(1)},
 	"ledger": {nestedKey: []func([]byte) error{keyLen(4)}, record: func(c *checker, parents [][]byte, k, v []byte) error {
-		if len(k) != ledgerKeySize || len(v) != ledgerValSize || v[0] != vChunk {
-			return fmt.Errorf("bad ledger record (key %d bytes, value %d bytes, version %d)", len(k), len(v), firstByte(v))
+		var r ledgerRange
+		if err := decodeLedger(k, v, &r); err != nil {
+			return err
 		}
-		arrival := int64(binary.BigEndian.Uint64(k))
-		if dayOf(arrival) != binary.BigEndian.Uint32(parents[0]) {
-			return fmt.Errorf("ledger record of %d ms filed under day %d", arrival, binary.BigEndian.Uint32(parents[0]))
+		if dayOf(r.firstArr) != binary.BigEndian.Uint32(parents[0]) {
+			return fmt.Errorf("ledger record of %d ms filed under day %d", r.firstArr, binary.BigEndian.Uint32(parents[0]))
+		}
+		if r.lastAr < r.firstArr || r.lastDv < r.firstDev {
+			return fmt.Errorf("ledger range %d..%d ends before it starts", r.first, r.last)
 		}
 		if c.ledgerMax != nil {
-			idx, seq := binary.BigEndian.Uint32(k[8:]), binary.BigEndian.Uint64(k[12:])
-			c.ledgerMax[idx] = max(c.ledgerMax[idx], seq)
-			c.ledgerN[idx]++
+			c.ledgerMax[r.idx] = max(c.ledgerMax[r.idx], r.last)
+			c.ledgerN[r.idx] += r.count()
 		}
 		return nil
 	}},
