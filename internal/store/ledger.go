@@ -166,8 +166,8 @@ func (w *ledgerWriter) lastRangeOf(idx uint32, day uint32) *openRange {
 	var seek [ledgerRangeKeySize]byte
 	binary.BigEndian.PutUint32(seek[:], idx+1)
 	c := b.Cursor()
-	k, v := c.Seek(seek[:])
-	if k == nil {
+	var k, v []byte
+	if k, _ = c.Seek(seek[:]); k == nil {
 		k, v = c.Last()
 	} else {
 		k, v = c.Prev()
@@ -276,7 +276,15 @@ func (db *DB) LedgerHas(device string, seq uint64) (bool, error) {
 			} else if !bytes.Equal(k, seek[:]) {
 				k, v = bc.Prev()
 			}
-			for ; k != nil && len(k) == ledgerRangeKeySize && binary.BigEndian.Uint32(k) == idx; k, v = bc.Prev() {
+			// Back through the device's ranges (release-1 keys, which may
+			// sort among them, are checked below).
+			for ; k != nil; k, v = bc.Prev() {
+				if len(k) != ledgerRangeKeySize {
+					continue
+				}
+				if binary.BigEndian.Uint32(k) != idx {
+					break
+				}
 				var r ledgerRange
 				if err := decodeLedger(k, v, &r); err != nil {
 					return err
