@@ -1,0 +1,44 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+)
+
+// Alertmanager settings that cannot work are refused before anything
+// starts, naming the setting; the YAML keys are the flag names.
+func TestServeAlertmanagerSettingsErrors(t *testing.T) {
+	dir := t.TempDir()
+	empty := filepath.Join(dir, "empty")
+	os.WriteFile(empty, nil, 0o600)
+	noColon := filepath.Join(dir, "nocolon")
+	os.WriteFile(noColon, []byte("justauser\n"), 0o600)
+	cfg := filepath.Join(dir, "c.yaml")
+	os.WriteFile(cfg, []byte("alertmanager: [\"ftp://am:9093\"]\n"), 0o600)
+	done, cancel := context.WithCancel(context.Background())
+	cancel()
+	for _, c := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"--alertmanager", "http://pulse:secret@am:9093"}, "alertmanager-basic-auth-file"},
+		{[]string{"--alertmanager", "am:9093"}, "want http://HOST:PORT"},
+		{[]string{"--alertmanager-bearer-file", empty}, "given without --alertmanager"},
+		{[]string{"--alertmanager", "http://127.0.0.1:9", "--alertmanager-bearer-file", empty}, "alertmanager-bearer-file: " + empty + " is empty"},
+		{[]string{"--alertmanager", "http://127.0.0.1:9", "--alertmanager-basic-auth-file", noColon}, "want USER:PASSWORD"},
+		{[]string{"--alertmanager", "http://127.0.0.1:9", "--alertmanager-ca-file", filepath.Join(dir, "missing.pem")}, "alertmanager-ca-file:"},
+		{[]string{"--alertmanager", "http://127.0.0.1:9", "--external-url", "ward.example"}, "external-url:"},
+		{[]string{"--config", cfg}, `"ftp://am:9093"`},
+	} {
+		var out, errb bytes.Buffer
+		args := append([]string{"serve", "--data", dir, "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0"}, c.args...)
+		code := run(done, args, stdio{in: strings.NewReader(""), out: &out, err: &errb})
+		if code == 0 || !strings.Contains(errb.String(), c.want) {
+			t.Errorf("%v: exit %d, stderr %q; want an error with %q", c.args, code, errb.String(), c.want)
+		}
+	}
+}
