@@ -569,6 +569,9 @@ func (d *device) session(ctx context.Context, helpers *sync.WaitGroup) {
 				b.Reset()
 			}
 			wait = b.Next()
+			if !welcomed {
+				d.nextGateway()
+			}
 		}
 		timer.Reset(wait)
 		select {
@@ -642,6 +645,27 @@ func (d *device) detach(st pulsefleetv1.IngestService_ConnectClient) (planned bo
 		return false
 	}
 	return d.breakPlanned
+}
+
+// nextGateway moves the device to the next of Options.Gateway and
+// Options.Fallbacks after an attempt that was not welcomed (the gateway it
+// used is down or cannot take it now).
+func (d *device) nextGateway() {
+	fb := d.f.opts.Fallbacks
+	if len(fb) == 0 {
+		return
+	}
+	all := append([]string{d.f.opts.Gateway}, fb...)
+	d.mu.Lock()
+	defer d.mu.Unlock()
+	next := all[0]
+	for i, a := range all {
+		if a == d.addr {
+			next = all[(i+1)%len(all)]
+			break
+		}
+	}
+	d.addr = next
 }
 
 func (d *device) redirect(r *pulsefleetv1.Redirect) {

@@ -258,10 +258,7 @@ func (f *fleet) conn(addr string, idx int) (*grpc.ClientConn, error) {
 	if per == 0 {
 		per = 500
 	}
-	slot := 0
-	if addr == f.opts.Gateway {
-		slot = idx / per
-	}
+	slot := idx / per // at any address: redirected devices share connections the same way
 	f.connMu.Lock()
 	defer f.connMu.Unlock()
 	cs := f.conns[addr]

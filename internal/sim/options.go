@@ -23,6 +23,12 @@ const (
 type Options struct {
 	// Gateway is the gRPC address (host:port) devices connect to. Required.
 	Gateway string
+	// Fallbacks are more gateway addresses of the same fleet: a device that
+	// cannot reach the gateway it uses (a dead member of a fleet on etcd,
+	// whose devices it had been redirected to) tries the next of Gateway
+	// and Fallbacks in turn; the gateway it reaches redirects it to the
+	// device's owner. Empty = Gateway only.
+	Fallbacks []string
 	// Scenario is the fleet and its script; nil = scenario.Generic(Devices,
 	// IDPrefix, Seed), unscripted seed-derived patients.
 	Scenario *scenario.Scenario
