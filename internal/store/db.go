@@ -56,12 +56,13 @@ var (
 	bTokens       = []byte("tokens")
 	bEnrolments   = []byte("enrolments")
 	// bOutbox is in outbox.go.
+	bReviews      = []byte("reviews")
 
 	keySchema  = []byte("schema")
 	keyStoreID = []byte("store_id")
 
 	allBuckets = [][]byte{bMeta, bDevices, bCursors, bRecent, bTrend, bLedger, bRaw, bSessions, bEpisodes,
-		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens, bEnrolments, bOutbox}
+		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens, bEnrolments, bOutbox, bReviews}
 )
 
 // Options tunes Open. The zero value is usable.

@@ -1,9 +1,9 @@
 // Package store keeps pulsefleet's history in one embedded bbolt file behind
 // domain methods: devices, trend points, the ingest ledger (ranges of
 // accepted data messages), sessions, raw captures, alarm episodes and alarm
-// state, the audit log, alarm profiles, calibrations, credentials and the
-// enrolments of devices to study participants, and the outbox of
-// notifications waiting for Alertmanager.
+// state, the audit log, alarm profiles, calibrations, credentials, the
+// enrolments of devices to study participants, the outbox of notifications
+// waiting for Alertmanager, and the operators' reviews of alarm episodes.
 //
 // Layout (bucket paths; keys are big-endian so cursors range-scan in order).
 // Every value this package encodes starts with a format version byte (the
@@ -29,6 +29,7 @@
 //	tokens/HASH                   Token (JSON; only the SHA-256 of a secret is kept)
 //	enrolments/ENROLMENT_ID       Enrolment (JSON): a device's data in an interval belong to a pseudonymous participant (participants.go)
 //	outbox/EPISODE_ID             OutboxEntry (JSON): a notification not yet accepted by every Alertmanager (outbox.go)
+//	reviews/EPISODE_ID|REVISION   Review (JSON): an operator's review of an episode; a changed review is a new revision
 //
 // DAY is the number of whole days since the Unix epoch (UTC, uint32), so
 // retention drops whole day buckets the way a time-series database drops

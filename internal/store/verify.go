@@ -215,6 +215,7 @@ var specs = map[string]bucketSpec{
 		}
 		return idKey(k, e.Episode)
 	})},
+	"reviews": {record: reviewRecord},
 	"tokens": {record: jsonRecord(func(_ *checker, k []byte, t *Token) error {
 		if t.Hash != string(k) {
 			return fmt.Errorf("credential %s under another key", t.ID)
