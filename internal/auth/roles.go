@@ -86,6 +86,8 @@ var methodRoles = map[string]Role{
 	pb.FleetService_GetDeviceQuality_FullMethodName:  RoleViewer,
 	pb.FleetService_ListDeviceQuality_FullMethodName: RoleViewer,
 	pb.FleetService_ExportTrend_FullMethodName:       RoleViewer,
+	pb.FleetService_ListReviews_FullMethodName:       RoleViewer,
+	pb.FleetService_ReviewEpisode_FullMethodName:     RoleOperator,
 	pb.FleetService_AcknowledgeAlarm_FullMethodName:  RoleOperator,
 	pb.FleetService_PauseAlarms_FullMethodName:       RoleOperator,
 	pb.FleetService_SetAlarmProfile_FullMethodName:   RoleAdmin,

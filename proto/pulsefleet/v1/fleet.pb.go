@@ -2603,6 +2603,336 @@ func (x *ExportTrendResponse) GetPoints() []*TrendPoint {
 	return nil
 }
 
+// EpisodeReview is one operator's review of an alarm episode. Labels (see
+// docs/contracts.md): "actionable", "not-actionable", "artefact", "unsure".
+type EpisodeReview struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The reviewed episode's identifier.
+	EpisodeId uint64 `protobuf:"varint,1,opt,name=episode_id,json=episodeId,proto3" json:"episode_id,omitempty"`
+	// Its device.
+	DeviceId string `protobuf:"bytes,2,opt,name=device_id,json=deviceId,proto3" json:"device_id,omitempty"`
+	// The review label.
+	Label string `protobuf:"bytes,3,opt,name=label,proto3" json:"label,omitempty"`
+	// Free text, 0..500 characters.
+	Note string `protobuf:"bytes,4,opt,name=note,proto3" json:"note,omitempty"`
+	// Who recorded it (the credential's name or the web session's user).
+	Reviewer string `protobuf:"bytes,5,opt,name=reviewer,proto3" json:"reviewer,omitempty"`
+	// When it was recorded, gateway clock, milliseconds since the Unix epoch.
+	ReviewedUnixMs int64 `protobuf:"varint,6,opt,name=reviewed_unix_ms,json=reviewedUnixMs,proto3" json:"reviewed_unix_ms,omitempty"`
+	// 1 for the episode's first review, counting up with each change.
+	Revision uint32 `protobuf:"varint,7,opt,name=revision,proto3" json:"revision,omitempty"`
+	// The episode as stored when the review was read (ListReviews) or made.
+	Episode       *Episode `protobuf:"bytes,8,opt,name=episode,proto3" json:"episode,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *EpisodeReview) Reset() {
+	*x = EpisodeReview{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[35]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *EpisodeReview) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*EpisodeReview) ProtoMessage() {}
+
+func (x *EpisodeReview) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[35]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use EpisodeReview.ProtoReflect.Descriptor instead.
+func (*EpisodeReview) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{35}
+}
+
+func (x *EpisodeReview) GetEpisodeId() uint64 {
+	if x != nil {
+		return x.EpisodeId
+	}
+	return 0
+}
+
+func (x *EpisodeReview) GetDeviceId() string {
+	if x != nil {
+		return x.DeviceId
+	}
+	return ""
+}
+
+func (x *EpisodeReview) GetLabel() string {
+	if x != nil {
+		return x.Label
+	}
+	return ""
+}
+
+func (x *EpisodeReview) GetNote() string {
+	if x != nil {
+		return x.Note
+	}
+	return ""
+}
+
+func (x *EpisodeReview) GetReviewer() string {
+	if x != nil {
+		return x.Reviewer
+	}
+	return ""
+}
+
+func (x *EpisodeReview) GetReviewedUnixMs() int64 {
+	if x != nil {
+		return x.ReviewedUnixMs
+	}
+	return 0
+}
+
+func (x *EpisodeReview) GetRevision() uint32 {
+	if x != nil {
+		return x.Revision
+	}
+	return 0
+}
+
+func (x *EpisodeReview) GetEpisode() *Episode {
+	if x != nil {
+		return x.Episode
+	}
+	return nil
+}
+
+// ReviewEpisodeRequest reviews one stored episode.
+type ReviewEpisodeRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The episode (its id as ListEpisodes gives it).
+	EpisodeId uint64 `protobuf:"varint,1,opt,name=episode_id,json=episodeId,proto3" json:"episode_id,omitempty"`
+	// One of "actionable", "not-actionable", "artefact", "unsure".
+	Label string `protobuf:"bytes,2,opt,name=label,proto3" json:"label,omitempty"`
+	// Free text, 0..500 characters.
+	Note          string `protobuf:"bytes,3,opt,name=note,proto3" json:"note,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ReviewEpisodeRequest) Reset() {
+	*x = ReviewEpisodeRequest{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[36]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ReviewEpisodeRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ReviewEpisodeRequest) ProtoMessage() {}
+
+func (x *ReviewEpisodeRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[36]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ReviewEpisodeRequest.ProtoReflect.Descriptor instead.
+func (*ReviewEpisodeRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{36}
+}
+
+func (x *ReviewEpisodeRequest) GetEpisodeId() uint64 {
+	if x != nil {
+		return x.EpisodeId
+	}
+	return 0
+}
+
+func (x *ReviewEpisodeRequest) GetLabel() string {
+	if x != nil {
+		return x.Label
+	}
+	return ""
+}
+
+func (x *ReviewEpisodeRequest) GetNote() string {
+	if x != nil {
+		return x.Note
+	}
+	return ""
+}
+
+// ReviewEpisodeResponse holds the review as stored.
+type ReviewEpisodeResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The stored review (revision assigned).
+	Review        *EpisodeReview `protobuf:"bytes,1,opt,name=review,proto3" json:"review,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ReviewEpisodeResponse) Reset() {
+	*x = ReviewEpisodeResponse{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[37]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ReviewEpisodeResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ReviewEpisodeResponse) ProtoMessage() {}
+
+func (x *ReviewEpisodeResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[37]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ReviewEpisodeResponse.ProtoReflect.Descriptor instead.
+func (*ReviewEpisodeResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{37}
+}
+
+func (x *ReviewEpisodeResponse) GetReview() *EpisodeReview {
+	if x != nil {
+		return x.Review
+	}
+	return nil
+}
+
+// ListReviewsRequest filters reviews.
+type ListReviewsRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Only this device (empty = all).
+	DeviceId string `protobuf:"bytes,1,opt,name=device_id,json=deviceId,proto3" json:"device_id,omitempty"`
+	// Only these episodes (empty = all).
+	EpisodeIds []uint64 `protobuf:"varint,2,rep,packed,name=episode_ids,json=episodeIds,proto3" json:"episode_ids,omitempty"`
+	// Every revision, oldest first per episode (false = only the newest).
+	History       bool `protobuf:"varint,3,opt,name=history,proto3" json:"history,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ListReviewsRequest) Reset() {
+	*x = ListReviewsRequest{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[38]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ListReviewsRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ListReviewsRequest) ProtoMessage() {}
+
+func (x *ListReviewsRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[38]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ListReviewsRequest.ProtoReflect.Descriptor instead.
+func (*ListReviewsRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{38}
+}
+
+func (x *ListReviewsRequest) GetDeviceId() string {
+	if x != nil {
+		return x.DeviceId
+	}
+	return ""
+}
+
+func (x *ListReviewsRequest) GetEpisodeIds() []uint64 {
+	if x != nil {
+		return x.EpisodeIds
+	}
+	return nil
+}
+
+func (x *ListReviewsRequest) GetHistory() bool {
+	if x != nil {
+		return x.History
+	}
+	return false
+}
+
+// ListReviewsResponse holds reviews ordered by episode id, then revision.
+type ListReviewsResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The reviews.
+	Reviews       []*EpisodeReview `protobuf:"bytes,1,rep,name=reviews,proto3" json:"reviews,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ListReviewsResponse) Reset() {
+	*x = ListReviewsResponse{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[39]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ListReviewsResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ListReviewsResponse) ProtoMessage() {}
+
+func (x *ListReviewsResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[39]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ListReviewsResponse.ProtoReflect.Descriptor instead.
+func (*ListReviewsResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{39}
+}
+
+func (x *ListReviewsResponse) GetReviews() []*EpisodeReview {
+	if x != nil {
+		return x.Reviews
+	}
+	return nil
+}
+
 var File_pulsefleet_v1_fleet_proto protoreflect.FileDescriptor
 
 const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
@@ -2812,7 +3142,31 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x13ExportTrendResponse\x12/\n" +
 	"\adevices\x18\x01 \x03(\v2\x15.pulsefleet.v1.DeviceR\adevices\x12(\n" +
 	"\x10trend_device_ids\x18\x02 \x03(\tR\x0etrendDeviceIds\x121\n" +
-	"\x06points\x18\x03 \x03(\v2\x19.pulsefleet.v1.TrendPointR\x06points*^\n" +
+	"\x06points\x18\x03 \x03(\v2\x19.pulsefleet.v1.TrendPointR\x06points\"\x89\x02\n" +
+	"\rEpisodeReview\x12\x1d\n" +
+	"\n" +
+	"episode_id\x18\x01 \x01(\x04R\tepisodeId\x12\x1b\n" +
+	"\tdevice_id\x18\x02 \x01(\tR\bdeviceId\x12\x14\n" +
+	"\x05label\x18\x03 \x01(\tR\x05label\x12\x12\n" +
+	"\x04note\x18\x04 \x01(\tR\x04note\x12\x1a\n" +
+	"\breviewer\x18\x05 \x01(\tR\breviewer\x12(\n" +
+	"\x10reviewed_unix_ms\x18\x06 \x01(\x03R\x0ereviewedUnixMs\x12\x1a\n" +
+	"\brevision\x18\a \x01(\rR\brevision\x120\n" +
+	"\aepisode\x18\b \x01(\v2\x16.pulsefleet.v1.EpisodeR\aepisode\"_\n" +
+	"\x14ReviewEpisodeRequest\x12\x1d\n" +
+	"\n" +
+	"episode_id\x18\x01 \x01(\x04R\tepisodeId\x12\x14\n" +
+	"\x05label\x18\x02 \x01(\tR\x05label\x12\x12\n" +
+	"\x04note\x18\x03 \x01(\tR\x04note\"M\n" +
+	"\x15ReviewEpisodeResponse\x124\n" +
+	"\x06review\x18\x01 \x01(\v2\x1c.pulsefleet.v1.EpisodeReviewR\x06review\"l\n" +
+	"\x12ListReviewsRequest\x12\x1b\n" +
+	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12\x1f\n" +
+	"\vepisode_ids\x18\x02 \x03(\x04R\n" +
+	"episodeIds\x12\x18\n" +
+	"\ahistory\x18\x03 \x01(\bR\ahistory\"M\n" +
+	"\x13ListReviewsResponse\x126\n" +
+	"\areviews\x18\x01 \x03(\v2\x1c.pulsefleet.v1.EpisodeReviewR\areviews*^\n" +
 	"\bPriority\x12\x18\n" +
 	"\x14PRIORITY_UNSPECIFIED\x10\x00\x12\x10\n" +
 	"\fPRIORITY_LOW\x10\x01\x12\x13\n" +
@@ -2821,7 +3175,8 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x06Source\x12\x16\n" +
 	"\x12SOURCE_UNSPECIFIED\x10\x00\x12\x12\n" +
 	"\x0eSOURCE_GATEWAY\x10\x01\x12\x11\n" +
-	"\rSOURCE_DEVICE\x10\x022\xba\t\n" +
+	"\rSOURCE_DEVICE\x10\x022\xec\n" +
+	"\n" +
 	"\fFleetService\x12T\n" +
 	"\vListDevices\x12!.pulsefleet.v1.ListDevicesRequest\x1a\".pulsefleet.v1.ListDevicesResponse\x12N\n" +
 	"\tGetDevice\x12\x1f.pulsefleet.v1.GetDeviceRequest\x1a .pulsefleet.v1.GetDeviceResponse\x12Q\n" +
@@ -2836,7 +3191,9 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x0fSetAlarmProfile\x12%.pulsefleet.v1.SetAlarmProfileRequest\x1a&.pulsefleet.v1.SetAlarmProfileResponse\x12c\n" +
 	"\x10GetDeviceQuality\x12&.pulsefleet.v1.GetDeviceQualityRequest\x1a'.pulsefleet.v1.GetDeviceQualityResponse\x12f\n" +
 	"\x11ListDeviceQuality\x12'.pulsefleet.v1.ListDeviceQualityRequest\x1a(.pulsefleet.v1.ListDeviceQualityResponse\x12V\n" +
-	"\vExportTrend\x12!.pulsefleet.v1.ExportTrendRequest\x1a\".pulsefleet.v1.ExportTrendResponse0\x01BCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
+	"\vExportTrend\x12!.pulsefleet.v1.ExportTrendRequest\x1a\".pulsefleet.v1.ExportTrendResponse0\x01\x12Z\n" +
+	"\rReviewEpisode\x12#.pulsefleet.v1.ReviewEpisodeRequest\x1a$.pulsefleet.v1.ReviewEpisodeResponse\x12T\n" +
+	"\vListReviews\x12!.pulsefleet.v1.ListReviewsRequest\x1a\".pulsefleet.v1.ListReviewsResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
 var (
 	file_pulsefleet_v1_fleet_proto_rawDescOnce sync.Once
@@ -2851,7 +3208,7 @@ func file_pulsefleet_v1_fleet_proto_rawDescGZIP() []byte {
 }
 
 var file_pulsefleet_v1_fleet_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
-var file_pulsefleet_v1_fleet_proto_msgTypes = make([]protoimpl.MessageInfo, 36)
+var file_pulsefleet_v1_fleet_proto_msgTypes = make([]protoimpl.MessageInfo, 41)
 var file_pulsefleet_v1_fleet_proto_goTypes = []any{
 	(Priority)(0),                     // 0: pulsefleet.v1.Priority
 	(Source)(0),                       // 1: pulsefleet.v1.Source
@@ -2890,8 +3247,13 @@ var file_pulsefleet_v1_fleet_proto_goTypes = []any{
 	(*ListDeviceQualityResponse)(nil), // 34: pulsefleet.v1.ListDeviceQualityResponse
 	(*ExportTrendRequest)(nil),        // 35: pulsefleet.v1.ExportTrendRequest
 	(*ExportTrendResponse)(nil),       // 36: pulsefleet.v1.ExportTrendResponse
-	nil,                               // 37: pulsefleet.v1.Device.LabelsEntry
-	(Mode)(0),                         // 38: pulsefleet.v1.Mode
+	(*EpisodeReview)(nil),             // 37: pulsefleet.v1.EpisodeReview
+	(*ReviewEpisodeRequest)(nil),      // 38: pulsefleet.v1.ReviewEpisodeRequest
+	(*ReviewEpisodeResponse)(nil),     // 39: pulsefleet.v1.ReviewEpisodeResponse
+	(*ListReviewsRequest)(nil),        // 40: pulsefleet.v1.ListReviewsRequest
+	(*ListReviewsResponse)(nil),       // 41: pulsefleet.v1.ListReviewsResponse
+	nil,                               // 42: pulsefleet.v1.Device.LabelsEntry
+	(Mode)(0),                         // 43: pulsefleet.v1.Mode
 }
 var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	1,  // 0: pulsefleet.v1.TrendPoint.source:type_name -> pulsefleet.v1.Source
@@ -2899,8 +3261,8 @@ var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	3,  // 2: pulsefleet.v1.TrendBucket.pulse_bpm:type_name -> pulsefleet.v1.Stat
 	3,  // 3: pulsefleet.v1.TrendBucket.pi_pct:type_name -> pulsefleet.v1.Stat
 	3,  // 4: pulsefleet.v1.TrendBucket.sqi:type_name -> pulsefleet.v1.Stat
-	38, // 5: pulsefleet.v1.Device.mode:type_name -> pulsefleet.v1.Mode
-	37, // 6: pulsefleet.v1.Device.labels:type_name -> pulsefleet.v1.Device.LabelsEntry
+	43, // 5: pulsefleet.v1.Device.mode:type_name -> pulsefleet.v1.Mode
+	42, // 6: pulsefleet.v1.Device.labels:type_name -> pulsefleet.v1.Device.LabelsEntry
 	2,  // 7: pulsefleet.v1.Device.latest:type_name -> pulsefleet.v1.TrendPoint
 	0,  // 8: pulsefleet.v1.Device.alarm_priority:type_name -> pulsefleet.v1.Priority
 	5,  // 9: pulsefleet.v1.ListDevicesResponse.devices:type_name -> pulsefleet.v1.Device
@@ -2922,37 +3284,44 @@ var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	30, // 25: pulsefleet.v1.ListDeviceQualityResponse.qualities:type_name -> pulsefleet.v1.DeviceQuality
 	5,  // 26: pulsefleet.v1.ExportTrendResponse.devices:type_name -> pulsefleet.v1.Device
 	2,  // 27: pulsefleet.v1.ExportTrendResponse.points:type_name -> pulsefleet.v1.TrendPoint
-	6,  // 28: pulsefleet.v1.FleetService.ListDevices:input_type -> pulsefleet.v1.ListDevicesRequest
-	8,  // 29: pulsefleet.v1.FleetService.GetDevice:input_type -> pulsefleet.v1.GetDeviceRequest
-	10, // 30: pulsefleet.v1.FleetService.QueryTrend:input_type -> pulsefleet.v1.QueryTrendRequest
-	12, // 31: pulsefleet.v1.FleetService.WatchEvents:input_type -> pulsefleet.v1.WatchEventsRequest
-	17, // 32: pulsefleet.v1.FleetService.ListEpisodes:input_type -> pulsefleet.v1.ListEpisodesRequest
-	19, // 33: pulsefleet.v1.FleetService.WatchEpisodes:input_type -> pulsefleet.v1.WatchEpisodesRequest
-	21, // 34: pulsefleet.v1.FleetService.AcknowledgeAlarm:input_type -> pulsefleet.v1.AcknowledgeAlarmRequest
-	23, // 35: pulsefleet.v1.FleetService.PauseAlarms:input_type -> pulsefleet.v1.PauseAlarmsRequest
-	25, // 36: pulsefleet.v1.FleetService.GetAlarmProfile:input_type -> pulsefleet.v1.GetAlarmProfileRequest
-	27, // 37: pulsefleet.v1.FleetService.SetAlarmProfile:input_type -> pulsefleet.v1.SetAlarmProfileRequest
-	31, // 38: pulsefleet.v1.FleetService.GetDeviceQuality:input_type -> pulsefleet.v1.GetDeviceQualityRequest
-	33, // 39: pulsefleet.v1.FleetService.ListDeviceQuality:input_type -> pulsefleet.v1.ListDeviceQualityRequest
-	35, // 40: pulsefleet.v1.FleetService.ExportTrend:input_type -> pulsefleet.v1.ExportTrendRequest
-	7,  // 41: pulsefleet.v1.FleetService.ListDevices:output_type -> pulsefleet.v1.ListDevicesResponse
-	9,  // 42: pulsefleet.v1.FleetService.GetDevice:output_type -> pulsefleet.v1.GetDeviceResponse
-	11, // 43: pulsefleet.v1.FleetService.QueryTrend:output_type -> pulsefleet.v1.QueryTrendResponse
-	14, // 44: pulsefleet.v1.FleetService.WatchEvents:output_type -> pulsefleet.v1.WatchEventsResponse
-	18, // 45: pulsefleet.v1.FleetService.ListEpisodes:output_type -> pulsefleet.v1.ListEpisodesResponse
-	20, // 46: pulsefleet.v1.FleetService.WatchEpisodes:output_type -> pulsefleet.v1.WatchEpisodesResponse
-	22, // 47: pulsefleet.v1.FleetService.AcknowledgeAlarm:output_type -> pulsefleet.v1.AcknowledgeAlarmResponse
-	24, // 48: pulsefleet.v1.FleetService.PauseAlarms:output_type -> pulsefleet.v1.PauseAlarmsResponse
-	26, // 49: pulsefleet.v1.FleetService.GetAlarmProfile:output_type -> pulsefleet.v1.GetAlarmProfileResponse
-	28, // 50: pulsefleet.v1.FleetService.SetAlarmProfile:output_type -> pulsefleet.v1.SetAlarmProfileResponse
-	32, // 51: pulsefleet.v1.FleetService.GetDeviceQuality:output_type -> pulsefleet.v1.GetDeviceQualityResponse
-	34, // 52: pulsefleet.v1.FleetService.ListDeviceQuality:output_type -> pulsefleet.v1.ListDeviceQualityResponse
-	36, // 53: pulsefleet.v1.FleetService.ExportTrend:output_type -> pulsefleet.v1.ExportTrendResponse
-	41, // [41:54] is the sub-list for method output_type
-	28, // [28:41] is the sub-list for method input_type
-	28, // [28:28] is the sub-list for extension type_name
-	28, // [28:28] is the sub-list for extension extendee
-	0,  // [0:28] is the sub-list for field type_name
+	15, // 28: pulsefleet.v1.EpisodeReview.episode:type_name -> pulsefleet.v1.Episode
+	37, // 29: pulsefleet.v1.ReviewEpisodeResponse.review:type_name -> pulsefleet.v1.EpisodeReview
+	37, // 30: pulsefleet.v1.ListReviewsResponse.reviews:type_name -> pulsefleet.v1.EpisodeReview
+	6,  // 31: pulsefleet.v1.FleetService.ListDevices:input_type -> pulsefleet.v1.ListDevicesRequest
+	8,  // 32: pulsefleet.v1.FleetService.GetDevice:input_type -> pulsefleet.v1.GetDeviceRequest
+	10, // 33: pulsefleet.v1.FleetService.QueryTrend:input_type -> pulsefleet.v1.QueryTrendRequest
+	12, // 34: pulsefleet.v1.FleetService.WatchEvents:input_type -> pulsefleet.v1.WatchEventsRequest
+	17, // 35: pulsefleet.v1.FleetService.ListEpisodes:input_type -> pulsefleet.v1.ListEpisodesRequest
+	19, // 36: pulsefleet.v1.FleetService.WatchEpisodes:input_type -> pulsefleet.v1.WatchEpisodesRequest
+	21, // 37: pulsefleet.v1.FleetService.AcknowledgeAlarm:input_type -> pulsefleet.v1.AcknowledgeAlarmRequest
+	23, // 38: pulsefleet.v1.FleetService.PauseAlarms:input_type -> pulsefleet.v1.PauseAlarmsRequest
+	25, // 39: pulsefleet.v1.FleetService.GetAlarmProfile:input_type -> pulsefleet.v1.GetAlarmProfileRequest
+	27, // 40: pulsefleet.v1.FleetService.SetAlarmProfile:input_type -> pulsefleet.v1.SetAlarmProfileRequest
+	31, // 41: pulsefleet.v1.FleetService.GetDeviceQuality:input_type -> pulsefleet.v1.GetDeviceQualityRequest
+	33, // 42: pulsefleet.v1.FleetService.ListDeviceQuality:input_type -> pulsefleet.v1.ListDeviceQualityRequest
+	35, // 43: pulsefleet.v1.FleetService.ExportTrend:input_type -> pulsefleet.v1.ExportTrendRequest
+	38, // 44: pulsefleet.v1.FleetService.ReviewEpisode:input_type -> pulsefleet.v1.ReviewEpisodeRequest
+	40, // 45: pulsefleet.v1.FleetService.ListReviews:input_type -> pulsefleet.v1.ListReviewsRequest
+	7,  // 46: pulsefleet.v1.FleetService.ListDevices:output_type -> pulsefleet.v1.ListDevicesResponse
+	9,  // 47: pulsefleet.v1.FleetService.GetDevice:output_type -> pulsefleet.v1.GetDeviceResponse
+	11, // 48: pulsefleet.v1.FleetService.QueryTrend:output_type -> pulsefleet.v1.QueryTrendResponse
+	14, // 49: pulsefleet.v1.FleetService.WatchEvents:output_type -> pulsefleet.v1.WatchEventsResponse
+	18, // 50: pulsefleet.v1.FleetService.ListEpisodes:output_type -> pulsefleet.v1.ListEpisodesResponse
+	20, // 51: pulsefleet.v1.FleetService.WatchEpisodes:output_type -> pulsefleet.v1.WatchEpisodesResponse
+	22, // 52: pulsefleet.v1.FleetService.AcknowledgeAlarm:output_type -> pulsefleet.v1.AcknowledgeAlarmResponse
+	24, // 53: pulsefleet.v1.FleetService.PauseAlarms:output_type -> pulsefleet.v1.PauseAlarmsResponse
+	26, // 54: pulsefleet.v1.FleetService.GetAlarmProfile:output_type -> pulsefleet.v1.GetAlarmProfileResponse
+	28, // 55: pulsefleet.v1.FleetService.SetAlarmProfile:output_type -> pulsefleet.v1.SetAlarmProfileResponse
+	32, // 56: pulsefleet.v1.FleetService.GetDeviceQuality:output_type -> pulsefleet.v1.GetDeviceQualityResponse
+	34, // 57: pulsefleet.v1.FleetService.ListDeviceQuality:output_type -> pulsefleet.v1.ListDeviceQualityResponse
+	36, // 58: pulsefleet.v1.FleetService.ExportTrend:output_type -> pulsefleet.v1.ExportTrendResponse
+	39, // 59: pulsefleet.v1.FleetService.ReviewEpisode:output_type -> pulsefleet.v1.ReviewEpisodeResponse
+	41, // 60: pulsefleet.v1.FleetService.ListReviews:output_type -> pulsefleet.v1.ListReviewsResponse
+	46, // [46:61] is the sub-list for method output_type
+	31, // [31:46] is the sub-list for method input_type
+	31, // [31:31] is the sub-list for extension type_name
+	31, // [31:31] is the sub-list for extension extendee
+	0,  // [0:31] is the sub-list for field type_name
 }
 
 func init() { file_pulsefleet_v1_fleet_proto_init() }
@@ -2975,7 +3344,7 @@ func file_pulsefleet_v1_fleet_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_pulsefleet_v1_fleet_proto_rawDesc), len(file_pulsefleet_v1_fleet_proto_rawDesc)),
 			NumEnums:      2,
-			NumMessages:   36,
+			NumMessages:   41,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

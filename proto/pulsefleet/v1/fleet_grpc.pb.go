@@ -32,6 +32,8 @@ const (
 	FleetService_GetDeviceQuality_FullMethodName  = "/pulsefleet.v1.FleetService/GetDeviceQuality"
 	FleetService_ListDeviceQuality_FullMethodName = "/pulsefleet.v1.FleetService/ListDeviceQuality"
 	FleetService_ExportTrend_FullMethodName       = "/pulsefleet.v1.FleetService/ExportTrend"
+	FleetService_ReviewEpisode_FullMethodName     = "/pulsefleet.v1.FleetService/ReviewEpisode"
+	FleetService_ListReviews_FullMethodName       = "/pulsefleet.v1.FleetService/ListReviews"
 )
 
 // FleetServiceClient is the client API for FleetService service.
@@ -77,6 +79,13 @@ type FleetServiceClient interface {
 	// of at most 1,000 points. The store is read in bounded slices (a short read
 	// transaction each), so a long export does not hold one transaction open.
 	ExportTrend(ctx context.Context, in *ExportTrendRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[ExportTrendResponse], error)
+	// ReviewEpisode records an operator's review of a stored alarm episode
+	// (operator role; audited). Reviewing again adds a revision; earlier ones
+	// are kept.
+	ReviewEpisode(ctx context.Context, in *ReviewEpisodeRequest, opts ...grpc.CallOption) (*ReviewEpisodeResponse, error)
+	// ListReviews returns the reviews of stored episodes (the newest per
+	// episode, or every revision), each with its episode.
+	ListReviews(ctx context.Context, in *ListReviewsRequest, opts ...grpc.CallOption) (*ListReviewsResponse, error)
 }
 
 type fleetServiceClient struct {
@@ -244,6 +253,26 @@ func (c *fleetServiceClient) ExportTrend(ctx context.Context, in *ExportTrendReq
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type FleetService_ExportTrendClient = grpc.ServerStreamingClient[ExportTrendResponse]
 
+func (c *fleetServiceClient) ReviewEpisode(ctx context.Context, in *ReviewEpisodeRequest, opts ...grpc.CallOption) (*ReviewEpisodeResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(ReviewEpisodeResponse)
+	err := c.cc.Invoke(ctx, FleetService_ReviewEpisode_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
+func (c *fleetServiceClient) ListReviews(ctx context.Context, in *ListReviewsRequest, opts ...grpc.CallOption) (*ListReviewsResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(ListReviewsResponse)
+	err := c.cc.Invoke(ctx, FleetService_ListReviews_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // FleetServiceServer is the server API for FleetService service.
 // All implementations must embed UnimplementedFleetServiceServer
 // for forward compatibility.
@@ -287,6 +316,13 @@ type FleetServiceServer interface {
 	// of at most 1,000 points. The store is read in bounded slices (a short read
 	// transaction each), so a long export does not hold one transaction open.
 	ExportTrend(*ExportTrendRequest, grpc.ServerStreamingServer[ExportTrendResponse]) error
+	// ReviewEpisode records an operator's review of a stored alarm episode
+	// (operator role; audited). Reviewing again adds a revision; earlier ones
+	// are kept.
+	ReviewEpisode(context.Context, *ReviewEpisodeRequest) (*ReviewEpisodeResponse, error)
+	// ListReviews returns the reviews of stored episodes (the newest per
+	// episode, or every revision), each with its episode.
+	ListReviews(context.Context, *ListReviewsRequest) (*ListReviewsResponse, error)
 	mustEmbedUnimplementedFleetServiceServer()
 }
 
@@ -335,6 +371,12 @@ func (UnimplementedFleetServiceServer) ListDeviceQuality(context.Context, *ListD
 }
 func (UnimplementedFleetServiceServer) ExportTrend(*ExportTrendRequest, grpc.ServerStreamingServer[ExportTrendResponse]) error {
 	return status.Error(codes.Unimplemented, "method ExportTrend not implemented")
+}
+func (UnimplementedFleetServiceServer) ReviewEpisode(context.Context, *ReviewEpisodeRequest) (*ReviewEpisodeResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method ReviewEpisode not implemented")
+}
+func (UnimplementedFleetServiceServer) ListReviews(context.Context, *ListReviewsRequest) (*ListReviewsResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method ListReviews not implemented")
 }
 func (UnimplementedFleetServiceServer) mustEmbedUnimplementedFleetServiceServer() {}
 func (UnimplementedFleetServiceServer) testEmbeddedByValue()                      {}
@@ -570,6 +612,42 @@ func _FleetService_ExportTrend_Handler(srv interface{}, stream grpc.ServerStream
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type FleetService_ExportTrendServer = grpc.ServerStreamingServer[ExportTrendResponse]
 
+func _FleetService_ReviewEpisode_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(ReviewEpisodeRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(FleetServiceServer).ReviewEpisode(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: FleetService_ReviewEpisode_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(FleetServiceServer).ReviewEpisode(ctx, req.(*ReviewEpisodeRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
+func _FleetService_ListReviews_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(ListReviewsRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(FleetServiceServer).ListReviews(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: FleetService_ListReviews_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(FleetServiceServer).ListReviews(ctx, req.(*ListReviewsRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // FleetService_ServiceDesc is the grpc.ServiceDesc for FleetService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -616,6 +694,14 @@ var FleetService_ServiceDesc = grpc.ServiceDesc{
 		{
 			MethodName: "ListDeviceQuality",
 			Handler:    _FleetService_ListDeviceQuality_Handler,
+		},
+		{
+			MethodName: "ReviewEpisode",
+			Handler:    _FleetService_ReviewEpisode_Handler,
+		},
+		{
+			MethodName: "ListReviews",
+			Handler:    _FleetService_ListReviews_Handler,
 		},
 	},
 	Streams: []grpc.StreamDesc{

@@ -11,4 +11,4 @@
 // plugins come from the Go module proxy at pinned versions (no protoc needed).
 package pulsefleetv1
 
-//go:generate sh -c "cd ../.. && go run github.com/bufbuild/buf/cmd/buf@v1.75.0 lint && go run github.com/bufbuild/buf/cmd/buf@v1.75.0 breaking --against ../compat/testdata/v1baseline && go run github.com/bufbuild/buf/cmd/buf@v1.75.0 generate"
+//go:generate sh -c "cd ../.. && go run github.com/bufbuild/buf/cmd/buf@v1.75.0 lint && go run github.com/bufbuild/buf/cmd/buf@v1.75.0 breaking --against ../internal/compat/testdata/v1baseline && go run github.com/bufbuild/buf/cmd/buf@v1.75.0 generate"
