@@ -1,0 +1,307 @@
+package main
+
+import (
+	"context"
+	"encoding/csv"
+	"encoding/json"
+	"fmt"
+	"io"
+	"sort"
+	"strconv"
+	"strings"
+	"time"
+
+	"google.golang.org/protobuf/encoding/protojson"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+)
+
+func init() {
+	register(command{
+		name: "episodes",
+		summary: `List stored alarm episodes of one or more running gateways, newest onset first, with their review.
+Per episode: the gateway that stored it and its id there (episode ids are per
+gateway), device, condition, priority, onset, announced, ended, lowest SpO2,
+who acknowledged it, and the newest review (label, reviewer, when, note,
+revision). Several gateways (comma-separated) are merged. A gateway that
+cannot be read is named on stderr after the episodes of the others, and the
+command exits 1: a listing never silently lacks a gateway. The CSV is the
+review export (one row per episode, empty review columns when unreviewed);
+'pulsefleet reviews' exports every revision.`,
+		run: runEpisodes,
+	})
+}
+
+// episodeColumns is the CSV header (times RFC 3339 UTC; empty = not happened).
+var episodeColumns = []string{"gateway", "episode_id", "device", "condition", "priority", "onset", "announced", "ended",
+	"min_spo2_pct", "acknowledged_by", "acknowledged", "review", "reviewer", "reviewed", "review_note", "review_revision"}
+
+// episodeLimit is how many episodes one ListEpisodes call may return.
+const episodeLimit = 10_000
+
+// episodeRow is one episode with its gateway and newest review (nil = none).
+type episodeRow struct {
+	Gateway string
+	Episode *pb.Episode
+	Review  *pb.EpisodeReview
+}
+
+func runEpisodes(ctx context.Context, args []string, s stdio) error {
+	var cf clientFlags
+	fs := newFlagSet("episodes", "--gateway ADDR[,ADDR...] [--device ID] [--since DUR] [--format table|csv|json]", s.err)
+	cf.register(fs)
+	device := fs.String("device", "", "only this device")
+	since := fs.Duration("since", 0, "only episodes with onset within this long before now (0 = every stored episode)")
+	format := fs.String("format", "table", "output: table (readable), csv or json")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	switch *format {
+	case "table", "csv", "json":
+	default:
+		return usagef("--format: %q, want table, csv or json", *format)
+	}
+	if *since < 0 {
+		return usagef("--since %v, want 0 or more", *since)
+	}
+	addrs, err := cf.addrs()
+	if err != nil {
+		return err
+	}
+	var fromMS int64
+	if *since > 0 {
+		fromMS = time.Now().Add(-*since).UnixMilli()
+	}
+	rows, failed := fetchEpisodes(ctx, &cf, addrs, *device, fromMS)
+	for _, a := range addrs {
+		if n := countGateway(rows, a); n >= episodeLimit {
+			fmt.Fprintf(s.err, "pulsefleet episodes: warning: gateway %s gave its limit of %d episodes; older ones are not listed (narrow with --since or --device)\n", a, episodeLimit)
+		}
+	}
+	switch *format {
+	case "csv":
+		err = writeEpisodesCSV(s.out, rows)
+	case "json":
+		err = writeEpisodesJSON(s.out, rows, failed)
+	default:
+		err = writeEpisodesTable(s.out, rows, len(addrs) > 1)
+	}
+	if err != nil {
+		return err
+	}
+	return gatewayFailures("episodes", len(addrs), failed)
+}
+
+// gatewayError is a gateway that could not be read.
+type gatewayError struct {
+	Addr string
+	Err  error
+}
+
+// gatewayFailures is the error of a merged listing that lacks gateways: it
+// names each and what went wrong (nil when none failed).
+func gatewayFailures(what string, total int, failed []gatewayError) error {
+	if len(failed) == 0 {
+		return nil
+	}
+	var parts []string
+	for _, f := range failed {
+		parts = append(parts, fmt.Sprintf("gateway %s: %v", f.Addr, f.Err))
+	}
+	return fmt.Errorf("%d of %d gateways could not be read, so the %s listed lack theirs: %s",
+		len(failed), total, what, strings.Join(parts, "; "))
+}
+
+func countGateway(rows []episodeRow, addr string) int {
+	n := 0
+	for _, r := range rows {
+		if r.Gateway == addr {
+			n++
+		}
+	}
+	return n
+}
+
+// fetchEpisodes reads every gateway's episodes and newest reviews; a
+// gateway that fails is returned in failed, the others' rows are kept.
+// Rows are ordered by onset, newest first (then gateway, then id).
+func fetchEpisodes(ctx context.Context, cf *clientFlags, addrs []string, device string, fromMS int64) (rows []episodeRow, failed []gatewayError) {
+	for _, a := range addrs {
+		got, err := gatewayEpisodes(ctx, cf, a, device, fromMS)
+		if err != nil {
+			failed = append(failed, gatewayError{a, err})
+			continue
+		}
+		rows = append(rows, got...)
+	}
+	sort.SliceStable(rows, func(i, j int) bool {
+		ei, ej := rows[i].Episode, rows[j].Episode
+		if ei.GetOnsetUnixMs() != ej.GetOnsetUnixMs() {
+			return ei.GetOnsetUnixMs() > ej.GetOnsetUnixMs()
+		}
+		if rows[i].Gateway != rows[j].Gateway {
+			return rows[i].Gateway < rows[j].Gateway
+		}
+		return ei.GetEpisodeId() > ej.GetEpisodeId()
+	})
+	return rows, failed
+}
+
+func gatewayEpisodes(ctx context.Context, cf *clientFlags, addr, device string, fromMS int64) ([]episodeRow, error) {
+	conn, err := cf.dial(addr)
+	if err != nil {
+		return nil, err
+	}
+	defer conn.Close()
+	cctx, cancel := context.WithTimeout(cf.ctx(ctx), 30*time.Second)
+	defer cancel()
+	fc := pb.NewFleetServiceClient(conn)
+	eps, err := fc.ListEpisodes(cctx, &pb.ListEpisodesRequest{DeviceId: device, FromUnixMs: fromMS, Limit: episodeLimit})
+	if err != nil {
+		return nil, err
+	}
+	rvs, err := fc.ListReviews(cctx, &pb.ListReviewsRequest{DeviceId: device})
+	if err != nil {
+		return nil, fmt.Errorf("reviews: %w", err)
+	}
+	byID := map[uint64]*pb.EpisodeReview{}
+	for _, r := range rvs.GetReviews() {
+		byID[r.GetEpisodeId()] = r
+	}
+	out := make([]episodeRow, 0, len(eps.GetEpisodes()))
+	for _, e := range eps.GetEpisodes() {
+		out = append(out, episodeRow{Gateway: addr, Episode: e, Review: byID[e.GetEpisodeId()]})
+	}
+	return out, nil
+}
+
+// msTime is an RFC 3339 UTC time, or "" for 0 (not happened).
+func msTime(ms int64) string {
+	if ms == 0 {
+		return ""
+	}
+	return time.UnixMilli(ms).UTC().Format(time.RFC3339)
+}
+
+func priorityWord(p pb.Priority) string {
+	if p == pb.Priority_PRIORITY_UNSPECIFIED {
+		return ""
+	}
+	return strings.TrimPrefix(strings.ToLower(p.String()), "priority_")
+}
+
+// episodeCells are a row's values in episodeColumns order.
+func episodeCells(r episodeRow) []string {
+	e, rv := r.Episode, r.Review
+	cells := []string{r.Gateway, strconv.FormatUint(e.GetEpisodeId(), 10), e.GetDeviceId(), e.GetCondition(),
+		priorityWord(e.GetPriority()), msTime(e.GetOnsetUnixMs()), msTime(e.GetAnnouncedUnixMs()), msTime(e.GetEndedUnixMs()),
+		estCell(e.MinSpo2Pct, 1), e.GetAcknowledgedBy(), msTime(e.GetAcknowledgedUnixMs())}
+	if rv == nil {
+		return append(cells, "", "", "", "", "")
+	}
+	return append(cells, rv.GetLabel(), rv.GetReviewer(), msTime(rv.GetReviewedUnixMs()), rv.GetNote(), strconv.FormatUint(uint64(rv.GetRevision()), 10))
+}
+
+func writeEpisodesCSV(w io.Writer, rows []episodeRow) error {
+	if err := caution.WriteComment(w); err != nil {
+		return err
+	}
+	cw := csv.NewWriter(w)
+	if err := cw.Write(episodeColumns); err != nil {
+		return err
+	}
+	for _, r := range rows {
+		if err := cw.Write(episodeCells(r)); err != nil {
+			return err
+		}
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+
+func writeEpisodesJSON(w io.Writer, rows []episodeRow, failed []gatewayError) error {
+	mo := protojson.MarshalOptions{UseProtoNames: true}
+	type item struct {
+		Gateway string          `json:"gateway"`
+		Episode json.RawMessage `json:"episode"`
+		Review  json.RawMessage `json:"review,omitempty"`
+	}
+	out := struct {
+		Caution     string   `json:"caution"`
+		Episodes    []item   `json:"episodes"`
+		Unreachable []string `json:"unreadable_gateways,omitempty"`
+	}{Caution: caution.Text, Episodes: []item{}}
+	for _, r := range rows {
+		eb, err := mo.Marshal(r.Episode)
+		if err != nil {
+			return err
+		}
+		it := item{Gateway: r.Gateway, Episode: eb}
+		if r.Review != nil {
+			rv := &pb.EpisodeReview{EpisodeId: r.Review.GetEpisodeId(), DeviceId: r.Review.GetDeviceId(), Label: r.Review.GetLabel(),
+				Note: r.Review.GetNote(), Reviewer: r.Review.GetReviewer(), ReviewedUnixMs: r.Review.GetReviewedUnixMs(), Revision: r.Review.GetRevision()}
+			if it.Review, err = mo.Marshal(rv); err != nil {
+				return err
+			}
+		}
+		out.Episodes = append(out.Episodes, it)
+	}
+	for _, f := range failed {
+		out.Unreachable = append(out.Unreachable, f.Addr)
+	}
+	enc := json.NewEncoder(w)
+	enc.SetIndent("", "  ")
+	return enc.Encode(out)
+}
+
+func writeEpisodesTable(w io.Writer, rows []episodeRow, withGateway bool) error {
+	head := []string{"EPISODE", "DEVICE", "CONDITION", "PRIORITY", "ONSET (UTC)", "ANNOUNCED", "ENDED", "MIN SpO2 %", "ACK BY", "REVIEW", "REVIEWER"}
+	if withGateway {
+		head = append([]string{"GATEWAY"}, head...)
+	}
+	t := newTable(w, 0, head...)
+	short := func(ms int64) string {
+		if ms == 0 {
+			return "-"
+		}
+		return time.UnixMilli(ms).UTC().Format("2006-01-02 15:04:05")
+	}
+	for _, r := range rows {
+		e := r.Episode
+		day := time.UnixMilli(e.GetOnsetUnixMs()).UTC().Format("2006-01-02")
+		clock := func(ms int64) string { // on the onset's day the time of day is enough
+			if ms == 0 {
+				return "-"
+			}
+			if t := time.UnixMilli(ms).UTC(); t.Format("2006-01-02") == day {
+				return t.Format("15:04:05")
+			}
+			return short(ms)
+		}
+		ended := clock(e.GetEndedUnixMs())
+		if e.GetEndedUnixMs() == 0 && e.GetActive() {
+			ended = "active"
+		}
+		label, who := "-", "-"
+		if r.Review != nil {
+			label, who = r.Review.GetLabel(), r.Review.GetReviewer()
+			if r.Review.GetRevision() > 1 {
+				label += fmt.Sprintf(" (rev %d)", r.Review.GetRevision())
+			}
+		}
+		cells := []string{strconv.FormatUint(e.GetEpisodeId(), 10), e.GetDeviceId(), alarms.Label(e.GetCondition()),
+			orDash(priorityWord(e.GetPriority())), short(e.GetOnsetUnixMs()), clock(e.GetAnnouncedUnixMs()), ended,
+			fmtOpt(e.MinSpo2Pct, 1), orDash(e.GetAcknowledgedBy()), label, who}
+		if withGateway {
+			cells = append([]string{r.Gateway}, cells...)
+		}
+		t.row(cells...)
+	}
+	if len(rows) == 0 {
+		fmt.Fprintln(w, "(no episodes)")
+	}
+	return t.flush()
+}
