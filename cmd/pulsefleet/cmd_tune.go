@@ -28,6 +28,7 @@ The grid file (--grid) names a base profile, the swept keys and the reference:
     spo2_low.escalate.below: [80, 85]
   reference:                       # what counts as a real event
     rule: {below: 85, for: 60s}    # or: file: events.csv (device,start_s,end_s,label)
+                                   # or: reviews: {positive: [actionable], negative: [not-actionable, artefact]}
     grace: 60s                     # optional
     conditions: [spo2_low]         # optional, the conditions scored (default: spo2_low ones)
   averaging: [4s, 8s, 12s]         # optional: estimator averaging times, 2s..30s (needs --data)
@@ -60,6 +61,14 @@ Matching: an event is detected when a scored episode of the same device is
 in alarm at some time between the event's start and its end + grace; an
 episode is a true positive when its alarm span meets an event (+ grace).
 Sensitivity = detected / events; PPV = true-positive / scored episodes.
+
+With reference reviews (--data or --gateway: the operators' reviews of the
+gateway's stored episodes, 'pulsefleet review'), the events are the
+reviewed-positive episodes of the scored conditions (onset to end), matched
+as above; per profile the report gives the reviewed-positive episodes it
+still raises (sensitivity), the reviewed-negative ones it would avoid (no
+scored episode matches them) and its alarms that match no reviewed episode
+at all (unreviewed: nobody said whether they were real, so PPV is n/a).
 
 Research tool, not a certified medical device: alarm settings are the
 clinical team's decision.`
@@ -198,6 +207,14 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 	if err != nil {
 		return err
 	}
+	if g.Reference.Reviews != nil {
+		if o.data == "" {
+			return fmt.Errorf("grid %s: reference reviews: needs --data or --gateway (the reviews are kept in the gateway's store); a trend CSV (--in) has none", o.grid)
+		}
+		if g.Reference.Reviewed, err = tune.LoadReviewed(o.data, f); err != nil {
+			return err
+		}
+	}
 	if g.HasAveraging() {
 		if o.data == "" {
 			return fmt.Errorf("grid %s: averaging: needs --data with raw captures; --in gives estimated trends, which cannot be re-estimated", o.grid)
@@ -288,6 +305,10 @@ func tuneList(names []string, max int) string {
 
 // tuneWrite writes the outputs and prints the best profiles.
 func tuneWrite(o tuneOptions, f tune.Filter, res *tune.Result, source string, args []string, s stdio) error {
+	if rs := res.Grid.Reference.Reviews; rs != nil {
+		fmt.Fprintf(s.out, "tune: reviewed episodes of the scored conditions: %d positive (%s), %d negative (%s), %d reviewed otherwise (scored as neither); %d outside the data\n",
+			res.ReviewedPositive, strings.Join(rs.Positive, ", "), res.ReviewedNegative, strings.Join(rs.Negative, ", "), res.ReviewedOther, res.ReviewsOutside)
+	}
 	info := tune.ReportInfo{Source: source, Filters: f.String(), Command: "pulsefleet tune " + strings.Join(args, " ")}
 	if err := tune.WriteOutputs(o.out, res, info); err != nil {
 		return err
@@ -299,6 +320,12 @@ func tuneWrite(o tuneOptions, f tune.Filter, res *tune.Result, source string, ar
 			break
 		}
 		r := res.Rows[i]
+		if res.Grid.Reference.Reviews != nil {
+			fmt.Fprintf(s.out, "  %-28s %6.2f alarms/device-day  reviewed positives raised %d/%d  reviewed negatives avoided %d/%d  unreviewed alarms %d  (%s)\n",
+				safeCell(res.Points[i].Name), r.PerDeviceDay, r.EventsDetected, res.ReviewedPositive, r.NegativesAvoided, res.ReviewedNegative,
+				r.UnreviewedAlarms, tuneDescribeValues(res, i))
+			continue
+		}
 		fmt.Fprintf(s.out, "  %-28s %6.2f alarms/device-day  sensitivity %s  ppv %s  (%s)\n", safeCell(res.Points[i].Name),
 			r.PerDeviceDay, tunePct(r.Sensitivity), tunePct(r.PPV), tuneDescribeValues(res, i))
 	}

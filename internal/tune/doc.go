@@ -5,8 +5,8 @@
 // summary CSV, a frontier chart and a self-contained HTML report.
 //
 // Nouns: Grid (the tuning grid file: a base profile, swept keys, the
-// reference, optional averaging times), Reference (real events, from a rule
-// or an annotated file), Estimated (trends re-estimated from raw captures,
+// reference, optional averaging times), Reference (real events, from a rule,
+// an annotated file or the operators' reviews of stored episodes), Estimated (trends re-estimated from raw captures,
 // one set per averaging time), Result (one Row of metrics per grid point,
 // in grid order).
 //
@@ -19,6 +19,7 @@
 //	  spo2_low.escalate.below: [80, 85]
 //	reference:
 //	  rule: {below: 85, for: 60s}    # or: file: events.csv (device,start_s,end_s,label)
+//	                                 # or: reviews: {positive: [actionable], negative: [not-actionable, artefact]}
 //	  grace: 60s                     # optional, default 60s
 //	  conditions: [spo2_low]         # optional: the conditions scored; default every spo2_low condition
 //	averaging: [4s, 8s, 12s]         # optional: estimator averaging times (needs raw captures)
@@ -97,6 +98,10 @@
 //     meets [start, end+G] of some event of the same device;
 //   - sensitivity = detected events / events; positive predictive value =
 //     true-positive episodes / scored episodes (empty when undefined).
+//
+// Reference reviews: the events are the reviewed-positive episodes (onset to
+// end), matched by the same rule; reviews.go says what else is counted
+// (negatives avoided, unreviewed alarms) and why PPV is left undefined.
 //
 // Reference rule {below: B, for: D}: an event starts at the first valid
 // sample with SpO2 < B and ends at the next valid sample with SpO2 >= B (or

@@ -61,12 +61,18 @@ type Sweep struct {
 	lines  []int // line of each value in the grid file
 }
 
-// Reference says what a real event is. Exactly one of Rule and Events is
-// used: Rule when it is non-nil.
+// Reference says what a real event is: Rule when it is non-nil, the
+// operators' reviews when Reviews is non-nil, else the annotated Events.
 type Reference struct {
 	Rule   *Rule
 	File   string  // the events file, when the events came from one
 	Events []Event // annotated events (File)
+	// Reviews says which review labels count as real events (positive) and
+	// which as alarms better avoided (negative); the reviewed episodes
+	// themselves come from the store (LoadReviewed) into Reviewed before
+	// the sweep runs.
+	Reviews  *ReviewSets
+	Reviewed []ReviewedEpisode
 	// Grace extends an event's end for matching; zero means no grace (the
 	// grid file's default is DefaultGrace).
 	Grace time.Duration
@@ -389,17 +395,24 @@ func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
 				r.Conditions = append(r.Conditions, cn.Value)
 			}
 			return nil
+		case "reviews":
+			rs, err := decodeReviewSets(v, path)
+			if err != nil {
+				return err
+			}
+			r.Reviews = rs
+			return nil
 		}
-		return fmt.Errorf("%s (line %d): unknown key, want rule, file, grace or conditions", path, v.Line)
+		return fmt.Errorf("%s (line %d): unknown key, want rule, file, reviews, grace or conditions", path, v.Line)
 	})
 	if err != nil {
 		return err
 	}
-	switch {
-	case r.Rule == nil && r.File == "":
-		return errors.New("reference: want rule: {below: 85, for: 60s} or file: events.csv")
-	case r.Rule != nil && r.File != "":
-		return errors.New("reference: both rule and file, want one of them")
+	switch n := btoi(r.Rule != nil) + btoi(r.File != "") + btoi(r.Reviews != nil); {
+	case n == 0:
+		return errors.New("reference: want rule: {below: 85, for: 60s}, file: events.csv or reviews: {positive: [actionable], negative: [not-actionable, artefact]}")
+	case n > 1:
+		return errors.New("reference: more than one of rule, file and reviews, want one of them")
 	}
 	if len(r.Conditions) == 0 {
 		for _, c := range g.Base.Conditions {

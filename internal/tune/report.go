@@ -47,6 +47,7 @@ type reportRow struct {
 	PerDay, InAlarm, Sens, PPV, Delay, P90, MedS string
 	High, Medium, Low                            string
 	Pareto                                       bool
+	Raised, Avoided, Unreviewed                  int // against reviews
 }
 
 func toReportRow(res *Result, i int) reportRow {
@@ -59,7 +60,7 @@ func toReportRow(res *Result, i int) reportRow {
 		High:   num(r.ByPriority[alarms.PriorityHigh].PerDeviceDay, 2),
 		Medium: num(r.ByPriority[alarms.PriorityMedium].PerDeviceDay, 2),
 		Low:    num(r.ByPriority[alarms.PriorityLow].PerDeviceDay, 2),
-		Pareto: r.Pareto}
+		Pareto: r.Pareto, Raised: r.EventsDetected, Avoided: r.NegativesAvoided, Unreviewed: r.UnreviewedAlarms}
 }
 
 // WriteReport writes the self-contained HTML report (no external
@@ -89,6 +90,9 @@ func WriteReport(w io.Writer, res *Result, info ReportInfo) error {
 		if res.ReferenceAveraging != "" {
 			ref += " on the trends re-estimated at averaging " + res.ReferenceAveraging + " (the shortest), for every row"
 		}
+	} else if rs := g.Reference.Reviews; rs != nil {
+		ref = fmt.Sprintf("operators' reviews of the gateway's episodes (%s): %d positive, %d negative, %d reviewed otherwise (neither), %d outside the data; the events are the positive ones",
+			rs, res.ReviewedPositive, res.ReviewedNegative, res.ReviewedOther, res.ReviewsOutside)
 	} else {
 		ref = "annotated events from " + g.Reference.File
 	}
@@ -119,6 +123,9 @@ func WriteReport(w io.Writer, res *Result, info ReportInfo) error {
 		"Range":      fmtRange(res.FirstS, res.LastS),
 		"MaxGap":     fmtDur(time.Duration(res.MaxGapS * float64(time.Second))),
 		"Estimated":  estimatedNote(res),
+		"Reviews":    g.Reference.Reviews != nil,
+		"Positive":   res.ReviewedPositive,
+		"Negative":   res.ReviewedNegative,
 	}
 	return reportTmpl.Execute(w, data)
 }
@@ -174,6 +181,15 @@ delays from event start to announcement.</p>
 <td>{{.Sens}}</td><td>{{.PPV}}</td><td>{{.Delay}}</td><td>{{.P90}}</td></tr>
 {{end}}</table>
 
+{{if .Reviews}}<h2>Against the reviews</h2>
+<p>Per profile: reviewed-positive episodes it still raises (an alarm of a scored condition matches them by the rule above),
+reviewed-negative episodes it would avoid (no alarm matches them), and its alarms that match no reviewed episode of any label:
+nobody reviewed those, so whether they were real is not known, and PPV is not given.</p>
+<table><tr><th class="l">profile</th>{{range .KeysHTML}}<th>{{.}}</th>{{end}}<th>alarms per day</th><th>positives raised (of {{.Positive}})</th>
+<th>sensitivity %</th><th>negatives avoided (of {{.Negative}})</th><th>unreviewed alarms</th></tr>
+{{range .All}}<tr><td class="l">{{.Short}}</td>{{range .Values}}<td>{{.}}</td>{{end}}<td>{{.PerDay}}</td><td>{{.Raised}}</td><td>{{.Sens}}</td><td>{{.Avoided}}</td><td>{{.Unreviewed}}</td></tr>
+{{end}}</table>
+{{end}}
 <h2>Exact settings used</h2>
 <p>Base profile ({{.BaseSource}}); every grid point is this profile with the swept values set. Each grid point's
 full profile is in <code>profiles/NAME.yaml</code> beside this report, so any row can be checked with

@@ -22,6 +22,7 @@ type scorer struct {
 
 // score scores grid point pt over devs, whose episodes are res.spans[v][off+d].
 func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, grace float64) Row {
+	reviews := res.Grid.Reference.Reviews != nil
 	var row Row
 	var alarmS [4]float64
 	for p := range s.durs {
@@ -71,14 +72,11 @@ func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, 
 		}
 		tp := s.tp[:len(s.sc)]
 		clear(tp)
-		for _, ev := range di.events {
+		for e := range di.events {
+			ev := &di.events[e]
 			first := math.Inf(1)
 			for k, ep := range s.sc {
-				endK := ep.end
-				if endK != endK {
-					endK = math.Inf(1)
-				}
-				if ep.ann <= ev.End+grace && endK >= ev.Start {
+				if matches(ep, ev, grace) {
 					tp[k] = true
 					first = min(first, ep.ann)
 				}
@@ -93,6 +91,9 @@ func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, 
 				row.TruePositives++
 			}
 		}
+		if reviews {
+			scoreReviews(&row, di, s.sc, grace)
+		}
 	}
 	days := res.MonitoredS / 86400
 	row.PerDeviceDay = ratio(float64(row.Episodes), days)
@@ -106,6 +107,9 @@ func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, 
 	}
 	row.Sensitivity = ratio(float64(row.EventsDetected), float64(events))
 	row.PPV = ratio(float64(row.TruePositives), float64(row.ScoredEpisodes))
+	if reviews {
+		row.PPV = math.NaN() // unreviewed alarms may be real or not: the reviews do not say
+	}
 	row.MedianDelayS = stats.Median(s.delays)
 	row.P90DelayS = stats.Quantile(0.9, s.delays)
 	return row

@@ -25,8 +25,17 @@ func SummaryColumns(g *Grid) []string {
 		n := p.String()
 		cols = append(cols, "episodes_"+n, "episodes_per_device_day_"+n, "time_in_alarm_"+n+"_pct", "median_episode_"+n+"_s")
 	}
-	return append(cols, "pareto")
+	cols = append(cols, "pareto")
+	if g.Reference.Reviews != nil {
+		cols = append(cols, reviewColumns...)
+	}
+	return cols
 }
+
+// reviewColumns end summary.csv with reference reviews: the reviewed
+// episodes of the scored conditions (positive, negative) and per profile
+// the positives raised, negatives avoided and alarms nobody reviewed.
+var reviewColumns = []string{"reviewed_positive", "positive_raised", "reviewed_negative", "negative_avoided", "unreviewed_alarms"}
 
 // WriteSummaryCSV writes the caution comment line, the header and one row
 // per grid point, in grid order. Figures
@@ -50,6 +59,10 @@ func WriteSummaryCSV(w io.Writer, res *Result) error {
 			rec = append(rec, strconv.Itoa(b.Episodes), num(b.PerDeviceDay, 3), num(b.TimeInAlarmPct, 3), num(b.MedianEpisodeS, 1))
 		}
 		rec = append(rec, strconv.FormatBool(r.Pareto))
+		if res.Grid.Reference.Reviews != nil {
+			rec = append(rec, strconv.Itoa(res.ReviewedPositive), strconv.Itoa(r.EventsDetected),
+				strconv.Itoa(res.ReviewedNegative), strconv.Itoa(r.NegativesAvoided), strconv.Itoa(r.UnreviewedAlarms))
+		}
 		if err := cw.Write(rec); err != nil {
 			return fmt.Errorf("write summary: %w", err)
 		}

@@ -46,6 +46,10 @@ type Result struct {
 	// EventsOutside counts events of a file that fell outside it (another
 	// device or time) and were not scored.
 	Events, EventsOutside int
+	// With reference reviews: the reviewed episodes of the scored
+	// conditions within the data, by how their label counts (Events =
+	// ReviewedPositive), and those outside the data (not scored).
+	ReviewedPositive, ReviewedNegative, ReviewedOther, ReviewsOutside int
 	// Scored names the conditions scored against the events.
 	Scored []string
 	// Variants is how many distinct condition variants the engine ran.
@@ -93,6 +97,11 @@ type Row struct {
 	PPV            float64 // TruePositives / ScoredEpisodes (NaN without scored episodes)
 	MedianDelayS   float64 // median detection delay, s (NaN if nothing detected)
 	P90DelayS      float64 // 90th percentile detection delay, s
+	// With reference reviews (reviews.go): reviewed-negative episodes no
+	// scored episode matches, and scored episodes that match no reviewed
+	// episode. Reviewed-positive episodes raised are EventsDetected.
+	NegativesAvoided int
+	UnreviewedAlarms int
 	Pareto         bool    // no other row has fewer alarms per device-day and at least the sensitivity (or as few and more)
 }
 
@@ -106,10 +115,13 @@ type span struct {
 
 // devInfo is what scoring needs to know about one trend.
 type devInfo struct {
-	name   string
-	last   float64
-	segs   [][2]float64 // monitored segments
-	events []Event
+	name        string
+	first, last float64
+	segs        [][2]float64 // monitored segments
+	events      []Event
+	// With reference reviews: the reviewed-negative episodes and every
+	// reviewed episode of the scored conditions (events are the positives).
+	negatives, reviewed []Event
 }
 
 // variant is one distinct condition setting, run as a one-condition profile.
@@ -363,6 +375,7 @@ func deviceFacts(g *Grid, trends []alarms.Trend, maxGap float64, res *Result) []
 			res.MonitoredS += s[1] - s[0]
 		}
 		if n := len(tr.Samples); n > 0 {
+			di.first = tr.Samples[0].T
 			res.FirstS = min(res.FirstS, tr.Samples[0].T)
 			res.LastS = max(res.LastS, tr.Samples[n-1].T)
 		}
@@ -371,7 +384,9 @@ func deviceFacts(g *Grid, trends []alarms.Trend, maxGap float64, res *Result) []
 			res.Events += len(di.events)
 		}
 	}
-	if g.Reference.Rule == nil {
+	if g.Reference.Reviews != nil {
+		reviewFacts(g, devs, byName, res)
+	} else if g.Reference.Rule == nil {
 		for _, ev := range g.Reference.Events {
 			d, ok := byName[ev.Device]
 			if !ok || len(trends[d].Samples) == 0 || ev.End < trends[d].Samples[0].T || ev.Start > devs[d].last {
