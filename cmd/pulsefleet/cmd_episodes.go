@@ -221,7 +221,6 @@ func writeEpisodesCSV(w io.Writer, rows []episodeRow) error {
 	return cw.Error()
 }
 
-
 func writeEpisodesJSON(w io.Writer, rows []episodeRow, failed []gatewayError) error {
 	mo := protojson.MarshalOptions{UseProtoNames: true}
 	type item struct {

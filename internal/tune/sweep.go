@@ -102,7 +102,7 @@ type Row struct {
 	// episode. Reviewed-positive episodes raised are EventsDetected.
 	NegativesAvoided int
 	UnreviewedAlarms int
-	Pareto         bool    // no other row has fewer alarms per device-day and at least the sensitivity (or as few and more)
+	Pareto           bool // no other row has fewer alarms per device-day and at least the sensitivity (or as few and more)
 }
 
 // span is one announced episode, compact.
