@@ -171,7 +171,7 @@ func ParseGrid(data []byte, dir string) (*Grid, error) {
 		return nil, errors.New("sweep: missing, want CONDITION.KEY: [values...]")
 	}
 	if refNode == nil {
-		return nil, errors.New("reference: missing, want rule: {below: 85, for: 60s} or file: events.csv")
+		return nil, errors.New("reference: missing, want rule: {below: 85, for: 60s}, file: events.csv or reviews: {positive: [actionable]}")
 	}
 	if err := g.decodeReference(refNode, dir); err != nil {
 		return nil, err

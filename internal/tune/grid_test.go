@@ -93,7 +93,7 @@ func TestGridErrors(t *testing.T) {
 		{"averaging_times", "base: adult-ward-pilot\naveraging_times: [4s]\n" + ref, "averaging_times (line 2): unknown key; averaging times are the top-level key averaging"},
 		{"no sweep nor averaging", "base: adult-ward-pilot\n" + ref, "sweep: missing"},
 		{"duplicate key", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\n  spo2_low.limit: [90]\n" + ref, "sweep.spo2_low.limit: duplicate key (line 4)"},
-		{"rule and file", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n  file: testdata/hand-events.csv\n", "reference: both rule and file"},
+		{"rule and file", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n  file: testdata/hand-events.csv\n", "reference: more than one of rule, file and reviews"},
 		{"rule incomplete", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85}\n", "want both below and for"},
 		{"rule negative for", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: -1s}\n", `reference.rule.for (line 5): "-1s", want a duration in [0, 24h]`},
 		{"grace over bound", "base: adult-ward-pilot\nsweep:\n  spo2_low.limit: [88]\nreference:\n  rule: {below: 85, for: 60s}\n  grace: 2h\n", `reference.grace (line 6): "2h", want a duration in [0, 1h]`},
