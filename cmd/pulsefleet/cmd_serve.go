@@ -55,6 +55,7 @@ type serveConfig struct {
 	BackupDir      string        `yaml:"backup_dir"`
 	BackupEvery    time.Duration `yaml:"backup_every"`
 	BackupKeep     int           `yaml:"backup_keep"`
+	ExportRate     int           `yaml:"export_rate"`
 	// Notifications through Alertmanager (serve_notify.go).
 	notifyConfig `yaml:",inline"`
 }
@@ -101,6 +102,7 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.StringVar(&c.BackupDir, "backup-dir", c.BackupDir, "take scheduled snapshots of the store into this directory (pulsefleet-TIME.db with .sha256; see `pulsefleet backup`); empty takes none")
 	fs.DurationVar(&c.BackupEvery, "backup-every", c.BackupEvery, "interval of scheduled snapshots, 1s..720h")
 	fs.IntVar(&c.BackupKeep, "backup-keep", c.BackupKeep, "complete scheduled snapshots kept; older ones are removed")
+	fs.IntVar(&c.ExportRate, "export-rate", c.ExportRate, "history points per second that exports through this gateway read together (so a long export leaves the cores to live ingest); 0 = no bound")
 	c.notifyConfig.flags(fs)
 	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
 }
@@ -136,6 +138,9 @@ func (c *serveConfig) validate() error {
 	}
 	if c.DeviceTimeRate < 1 || c.DeviceTimeRate > 1e6 {
 		return fmt.Errorf("device-time-rate: %v, want 1..1e6 device seconds per second", c.DeviceTimeRate)
+	}
+	if c.ExportRate < 0 {
+		return fmt.Errorf("export-rate: %d, want >= 0 points/s (0 = no bound)", c.ExportRate)
 	}
 	if c.BatchDelay < time.Millisecond || c.BatchDelay > 2*time.Second {
 		return fmt.Errorf("batch-delay: %v, want 1ms..2s", c.BatchDelay)
@@ -208,7 +213,7 @@ func isLoopback(addr string) bool {
 func defaultServeConfig() serveConfig {
 	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
 		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, VerifyStore: "quick", DeviceTimeRate: 30,
-		BackupEvery: 24 * time.Hour, BackupKeep: 7}
+		BackupEvery: 24 * time.Hour, BackupKeep: 7, ExportRate: 100_000}
 }
 
 func (c *serveConfig) backups() gateway.BackupSchedule {
@@ -264,7 +269,7 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		return nil, nil, err
 	}
 	opt := gateway.Options{Store: db, Registerer: reg, Logger: log, DefaultProfile: prof, CaptureRaw: c.CaptureRaw,
-		BatchDelay: c.BatchDelay, Peers: c.Peers, Self: c.Self, Retention: store.Retention{TrendDays: c.TrendDays, RawDays: c.RawDays, LedgerDays: c.LedgerDays},
+		BatchDelay: c.BatchDelay, ExportRate: exportRate(c.ExportRate), Peers: c.Peers, Self: c.Self, Retention: store.Retention{TrendDays: c.TrendDays, RawDays: c.RawDays, LedgerDays: c.LedgerDays},
 		Backups: c.backups()}
 	sec, err := securityOptions(c)
 	if err != nil {
@@ -377,4 +382,13 @@ func (p *peersFlag) Set(v string) error {
 	}
 	*p = l
 	return nil
+}
+
+// exportRate maps --export-rate (0 = no bound) to gateway.Options.ExportRate
+// (0 = the default, negative = no bound).
+func exportRate(flagValue int) int {
+	if flagValue == 0 {
+		return -1
+	}
+	return flagValue
 }

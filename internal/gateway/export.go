@@ -10,13 +10,14 @@ import (
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
-const (
-	exportBatch = 1000   // points per ExportTrendResponse
-	exportPerTx = 10_000 // points per read transaction
-)
+// exportBatch is the points per ExportTrendResponse, each page read in its
+// own read transaction.
+const exportBatch = 1000
 
 // ExportTrend implements FleetService: the device lists, then the points
-// of the requested devices, read in bounded slices (store.DB.TrendSliced).
+// of the requested devices, read in pages of exportBatch points, one short
+// read transaction each, and paced by the gateway's history budget
+// (Options.ExportRate, shared by every export).
 func (g *Gateway) ExportTrend(req *pb.ExportTrendRequest, ss pb.FleetService_ExportTrendServer) error {
 	from, to := max(req.GetFromUnixMs(), 0), req.GetToUnixMs()
 	if to == 0 {
@@ -61,32 +62,65 @@ func (g *Gateway) ExportTrend(req *pb.ExportTrendRequest, ss pb.FleetService_Exp
 		}
 	}
 	ctx := ss.Context()
-	batch := &pb.ExportTrendResponse{}
-	var sendErr error
+	var page []store.Point
 	for _, id := range ids {
-		err := g.db.TrendSliced(id, from, to, exportPerTx, func(p store.Point) bool {
-			p.Device = id
-			batch.Points = append(batch.Points, pointProto(&p))
-			if len(batch.Points) >= exportBatch {
-				if sendErr = ss.Send(batch); sendErr != nil {
-					return false
-				}
-				batch = &pb.ExportTrendResponse{}
+		for next := from; next < to; {
+			// One short read transaction per page, closed before the page
+			// is sent: a slow reader never holds a transaction open.
+			page, next, err = trendPage(g.db, id, next, to, page[:0])
+			if err != nil {
+				return status.Errorf(codes.Internal, "%v", err)
 			}
-			return ctx.Err() == nil
-		})
-		if sendErr != nil {
-			return sendErr
+			if len(page) == 0 {
+				break
+			}
+			if err := g.history.take(ctx, len(page)); err != nil {
+				return status.FromContextError(err).Err()
+			}
+			if err := ss.Send(pageProto(id, page)); err != nil {
+				return err
+			}
 		}
-		if ctx.Err() != nil {
-			return status.FromContextError(ctx.Err()).Err()
-		}
-		if err != nil {
-			return status.Errorf(codes.Internal, "%v", err)
-		}
-	}
-	if len(batch.Points) > 0 {
-		return ss.Send(batch)
 	}
 	return nil
+}
+
+// trendPage reads up to exportBatch points of device from [from, to) in one
+// read transaction into buf and returns them with the time to resume from
+// (to when the range is done). Points have distinct times per device.
+func trendPage(db *store.DB, device string, from, to int64, buf []store.Point) ([]store.Point, int64, error) {
+	next := to
+	err := db.Trend(device, from, to, func(p store.Point) bool {
+		buf = append(buf, p)
+		if len(buf) < exportBatch {
+			return true
+		}
+		next = p.TimeMS + 1
+		return false
+	})
+	return buf, next, err
+}
+
+// pageProto is one ExportTrendResponse of the page's points, allocated in
+// slabs (a few allocations per page instead of six per point); the values
+// are pointProto's.
+func pageProto(device string, page []store.Point) *pb.ExportTrendResponse {
+	slab := make([]pb.TrendPoint, len(page))
+	vals := make([]float64, 0, 5*len(page))
+	opt := func(v float64) *float64 {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return nil
+		}
+		vals = append(vals, v)
+		return &vals[len(vals)-1]
+	}
+	out := &pb.ExportTrendResponse{Points: make([]*pb.TrendPoint, len(page))}
+	for i := range page {
+		p, t := &page[i], &slab[i]
+		t.DeviceId, t.TimeUnixMs = device, p.TimeMS
+		t.Spo2Pct, t.PulseBpm, t.PiPct, t.Sqi, t.Ratio = opt(p.SpO2), opt(p.Pulse), opt(p.PI), opt(p.SQI), opt(p.Ratio)
+		t.Flags, t.Source = uint32(p.Flags), pb.Source(p.Source)
+		out.Points[i] = t
+	}
+	return out
 }

@@ -66,6 +66,12 @@ type Options struct {
 	// Backups takes scheduled snapshots of the store (backup_schedule.go);
 	// the zero value takes none.
 	Backups BackupSchedule
+	// ExportRate bounds the history points per second that
+	// FleetService.ExportTrend reads, shared by every export running at
+	// once, so reading history does not take the cores live ingest needs;
+	// 0 means defaultExportRate (100,000: an hour of 1,000 devices' 1 Hz
+	// trend in 36 s), negative means no bound.
+	ExportRate int
 	// GracefulTimeout bounds each stage of a shutdown (flushing the store,
 	// waiting for streams to end) before the gateway stops harder; 0 means
 	// 10 s. PauseAlarms is bounded by the profile's pause_max.
@@ -142,6 +148,9 @@ func (o *Options) setDefaults() error {
 	}
 	if o.sendStall == 0 {
 		o.sendStall = sendStall
+	}
+	if o.ExportRate == 0 {
+		o.ExportRate = defaultExportRate
 	}
 	if o.GracefulTimeout == 0 {
 		o.GracefulTimeout = 10 * time.Second

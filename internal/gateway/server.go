@@ -36,6 +36,7 @@ type Gateway struct {
 	opt     Options
 	log     *slog.Logger
 	backups *backupMetrics
+	history *pacer // paces ExportTrend's reads (Options.ExportRate)
 	m       *metrics
 	db      *store.DB
 	w       *writer
@@ -67,7 +68,7 @@ func New(opt Options) (*Gateway, error) {
 	if err := opt.setDefaults(); err != nil {
 		return nil, err
 	}
-	g := &Gateway{opt: opt, log: opt.Logger, db: opt.Store, devices: registry{m: map[string]*device{}},
+	g := &Gateway{opt: opt, log: opt.Logger, db: opt.Store, history: newPacer(opt.ExportRate), devices: registry{m: map[string]*device{}},
 		defaultProfile: opt.DefaultProfile}
 	m, err := newMetrics(opt.Registerer, func() float64 { return float64(opt.Store.Size()) })
 	if err != nil {

@@ -102,6 +102,9 @@ type PhaseResult struct {
 	PeakRSSBytes int64   // peak resident set of this process during the phase
 	RSSExact     bool    // true when the kernel high-water mark was reset for the phase
 	CPUCores     float64 // this process's CPU time / wall time during sending
+	// CPUNsPerSample is this process's CPU time during the phase per
+	// acknowledged sample (unrounded; CPURatio compares it).
+	CPUNsPerSample float64
 	Client       ClientUsage
 	ClientCores  float64 // a separate client's CPU time / wall time
 	// RSSAnonEnd and RSSFileEnd split this process's resident set when the
@@ -136,6 +139,11 @@ type Result struct {
 	SinkCPUCores        float64 `json:"sink_cpu_cores"`
 	GatewayCPUCores     float64 `json:"gateway_cpu_cores"`
 	ClientCPUCores      float64 `json:"client_cpu_cores,omitempty"`
+	// CPURatio is the gateway's CPU per acknowledged sample over the bare
+	// sink's, both from this run: (gateway_cpu_cores /
+	// gateway_samples_per_s) / (sink_cpu_cores / sink_samples_per_s); 0 when
+	// either phase acknowledged nothing or used no measurable CPU.
+	CPURatio float64 `json:"cpu_ratio"`
 	Rejected            uint64  `json:"rejected"`
 	Reconnects          uint64  `json:"reconnects"`
 	UnackedAtEnd        uint64  `json:"unacked_at_end"`
@@ -228,8 +236,18 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 	res.AnonPerDeviceBytes = last.RSSAnonEnd / int64(opts.Devices)
 	res.SinkCPUCores, res.GatewayCPUCores = first.CPUCores, last.CPUCores
 	res.ClientPeakRSSBytes, res.ClientCPUCores = last.Client.PeakRSSBytes, last.ClientCores
+	res.CPURatio = cpuRatio(first, last)
 	res.Rejected, res.Reconnects, res.UnackedAtEnd = last.Report.Rejected, last.Report.Reconnects, last.Report.UnackedAtEnd
 	return res, nil
+}
+
+// cpuRatio is the CPU per acknowledged sample of phase b over phase a's
+// (Result.CPURatio), to three decimals.
+func cpuRatio(a, b PhaseResult) float64 {
+	if a.CPUNsPerSample <= 0 || b.CPUNsPerSample <= 0 {
+		return 0
+	}
+	return math.Round(b.CPUNsPerSample/a.CPUNsPerSample*1000) / 1000
 }
 
 func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error) {
@@ -300,6 +318,9 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 	if w := wall1.Sub(wall0).Seconds(); w > 0 {
 		pr.CPUCores = math.Round((cpu1-cpu0).Seconds()/w*100) / 100
 		pr.ClientCores = math.Round(usage.CPU.Seconds()/w*100) / 100
+	}
+	if n := rep.SamplesAcked; n > 0 {
+		pr.CPUNsPerSample = float64(cpu1-cpu0) / float64(n)
 	}
 	stopped = true
 	held, err := tgt.Stop(context.WithoutCancel(ctx))

@@ -2,6 +2,7 @@ package bench
 
 import (
 	"context"
+	"math"
 	"testing"
 	"time"
 
@@ -26,10 +27,27 @@ func TestRunComparesPhases(t *testing.T) {
 	if len(res.Phases) != 2 || res.Lost != 0 || res.SinkSamplesPerS <= 0 || res.GatewaySamplesPerS <= 0 || res.Ratio <= 0 {
 		t.Errorf("result %+v", *res)
 	}
+	if res.CPURatio <= 0 || math.IsInf(res.CPURatio, 0) {
+		t.Errorf("cpu ratio %v, want a positive finite ratio", res.CPURatio)
+	}
 	if res.PeakRSSBytes <= 0 || res.SinkPeakRSSBytes <= 0 || res.GatewayPeakRSSBytes <= 0 {
 		t.Errorf("peak RSS not measured: %+v", *res)
 	}
 	if res.UnackedAtEnd != 0 || res.Rejected != 0 {
 		t.Errorf("unacknowledged %d, rejected %d against a sink", res.UnackedAtEnd, res.Rejected)
+	}
+}
+
+// cpu_ratio is CPU per acknowledged sample of the system under test over
+// the sink's: a sink using 1 s of CPU for 500,000 samples (2,000 ns each)
+// and a gateway using 2 s for 400,000 (5,000 ns each) give 2.5.
+func TestCPURatio(t *testing.T) {
+	sink := PhaseResult{CPUNsPerSample: 1e9 / 500_000.0}
+	gw := PhaseResult{CPUNsPerSample: 2e9 / 400_000.0}
+	if got := cpuRatio(sink, gw); got != 2.5 {
+		t.Errorf("cpu ratio %v, want 2.5", got)
+	}
+	if got := cpuRatio(PhaseResult{}, gw); got != 0 {
+		t.Errorf("cpu ratio with an unmeasured sink %v, want 0", got)
 	}
 }
