@@ -16,7 +16,7 @@ import (
 // Store is what the notifier needs of the history store (*store.DB).
 type Store interface {
 	Outbox(limit int) ([]store.OutboxEntry, int, error)
-	OutboxAccepted(episode, gen uint64, target string, targets []string) (bool, error)
+	OutboxAccepted(target string, targets []string, accepted []store.OutboxEntry) (int, error)
 	OutboxDrop(episode uint64) (bool, error)
 	Episode(id uint64) (store.Episode, error)
 	Episodes(f store.EpisodeFilter) ([]store.Episode, error)
@@ -235,8 +235,10 @@ func (n *Notifier) work(ctx context.Context, i int) {
 	}
 }
 
-// passBatch bounds the alerts of one request.
-const passBatch = 64
+// passBatch bounds the notifications of one request (about 1 KiB of JSON
+// each) and of one store transaction recording their acceptance: the
+// transaction's fsync, not the request, is what a drain waits for.
+const passBatch = 256
 
 // pass sends target every outbox entry it has not accepted yet, in
 // batches, and records what it accepted. It stops at the first failure.
@@ -260,10 +262,8 @@ func (n *Notifier) pass(ctx context.Context, c *client, target string) error {
 			return err
 		}
 		n.m.sent.WithLabelValues(target).Add(float64(len(alerts)))
-		for _, e := range sent {
-			if _, err := n.opt.Store.OutboxAccepted(e.Episode, e.Gen, target, n.targets); err != nil {
-				return err
-			}
+		if _, err := n.opt.Store.OutboxAccepted(target, n.targets, sent); err != nil {
+			return err
 		}
 		alerts, sent = alerts[:0], sent[:0]
 		return nil

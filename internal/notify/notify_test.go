@@ -16,6 +16,14 @@ import (
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
+// runFor runs n until the returned stop is called (and waits for it).
+func runFor(n *Notifier) (stop func()) {
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan struct{})
+	go func() { defer close(done); _ = n.Run(ctx) }()
+	return func() { cancel(); <-done }
+}
+
 // rig is a real store with the outbox on, a notifier running on it, and
 // its metrics.
 type rig struct {

@@ -104,47 +104,56 @@ func (db *DB) Outbox(limit int) ([]OutboxEntry, int, error) {
 	return out, n, nil
 }
 
-// OutboxAccepted records that target accepted generation gen of the
-// episode's notification, and removes the entry once every one of targets
-// has accepted that generation. A newer generation queued meanwhile is
-// kept (and must still go to every target). It reports whether the entry
-// is gone; an entry already gone is not an error.
-func (db *DB) OutboxAccepted(episode, gen uint64, target string, targets []string) (bool, error) {
-	removed := false
+// OutboxAccepted records that target accepted the given generations of
+// notifications (one transaction for all), and removes each entry once
+// every one of targets has accepted its generation. An entry whose
+// generation moved on meanwhile is kept (the newer change must still go to
+// every target); an entry already gone is skipped. It returns how many
+// entries it removed.
+func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxEntry) (int, error) {
+	removed := 0
 	err := db.update(func(tx *bolt.Tx) error {
+		removed = 0
 		ob := tx.Bucket(bOutbox)
-		k := u64(episode)
-		v := ob.Get(k)
-		if v == nil {
-			removed = true
-			return nil
+		for _, a := range accepted {
+			k := u64(a.Episode)
+			v := ob.Get(k)
+			if v == nil {
+				continue
+			}
+			var e OutboxEntry
+			if err := decJSON(v, &e); err != nil {
+				return fmt.Errorf("outbox entry %d: %w", a.Episode, err)
+			}
+			if e.Gen != a.Gen {
+				continue
+			}
+			if !slices.Contains(e.Delivered, target) {
+				e.Delivered = append(e.Delivered, target)
+			}
+			all := true
+			for _, t := range targets {
+				all = all && slices.Contains(e.Delivered, t)
+			}
+			if all {
+				removed++
+				if err := ob.Delete(k); err != nil {
+					return err
+				}
+				continue
+			}
+			nv, err := encJSON(&e)
+			if err != nil {
+				return err
+			}
+			if err := ob.Put(k, nv); err != nil {
+				return err
+			}
 		}
-		var e OutboxEntry
-		if err := decJSON(v, &e); err != nil {
-			return fmt.Errorf("outbox entry %d: %w", episode, err)
-		}
-		if e.Gen != gen {
-			return nil
-		}
-		if !slices.Contains(e.Delivered, target) {
-			e.Delivered = append(e.Delivered, target)
-		}
-		all := true
-		for _, t := range targets {
-			all = all && slices.Contains(e.Delivered, t)
-		}
-		if all {
-			removed = true
-			return ob.Delete(k)
-		}
-		nv, err := encJSON(&e)
-		if err != nil {
-			return err
-		}
-		return ob.Put(k, nv)
+		return nil
 	})
 	if err != nil {
-		return false, fmt.Errorf("store: outbox: accept episode %d: %w", episode, err)
+		return 0, fmt.Errorf("store: outbox: record %d accepted by %s: %w", len(accepted), target, err)
 	}
 	return removed, nil
 }
