@@ -28,7 +28,7 @@ func afterCaution(t testing.TB, what, out string) string {
 func TestTrendOutputCarriesTheCaution(t *testing.T) {
 	spo2, pulse := 95.0, 61.0
 	var b strings.Builder
-	if err := writeTrendPoints(&b, "bed-1", []*pb.TrendPoint{{TimeUnixMs: 1000, Spo2Pct: &spo2, PulseBpm: &pulse}}); err != nil {
+	if err := writeTrendPoints(&b, "bed-1", "", []*pb.TrendPoint{{TimeUnixMs: 1000, Spo2Pct: &spo2, PulseBpm: &pulse}}, true); err != nil {
 		t.Fatal(err)
 	}
 	trends, err := alarms.ReadTrendCSV(strings.NewReader(afterCaution(t, "trend points", b.String())))
@@ -36,7 +36,7 @@ func TestTrendOutputCarriesTheCaution(t *testing.T) {
 		t.Errorf("trend points read back as %+v, %v", trends, err)
 	}
 	b.Reset()
-	if err := writeBuckets(&b, "bed-1", []*pb.TrendBucket{{StartUnixMs: 0, Points: 1}}); err != nil {
+	if err := writeBuckets(&b, "bed-1", "", []*pb.TrendBucket{{StartUnixMs: 0, Points: 1}}, true); err != nil {
 		t.Fatal(err)
 	}
 	if rest := afterCaution(t, "trend steps", b.String()); !strings.HasPrefix(rest, "start_s,device,points") {

@@ -9,13 +9,14 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/participants"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 func init() {
 	register(command{
 		name:    "devices",
-		summary: "List the devices of one or more running gateways with their live status.",
+		summary: "List the devices of one or more running gateways with their live status and the study participant enrolled to each now.",
 		run:     runDevices,
 	})
 }
@@ -58,7 +59,15 @@ func runDevices(ctx context.Context, args []string, s stdio) error {
 	if *format == "json" {
 		return writeProtoJSON(s.out, devs)
 	}
-	return writeDevicesTable(s.out, devs, now, *stale)
+	ivs, err := remoteEnrolments(ctx, &cf, addrs)
+	if err != nil {
+		return err
+	}
+	holders := map[string]string{}
+	for _, d := range devs {
+		holders[d.GetDeviceId()] = participants.Holder(ivs, d.GetDeviceId(), now.UnixMilli())
+	}
+	return writeDevicesTable(s.out, devs, holders, now, *stale)
 }
 
 // listDevices asks every gateway and merges; a device reported by several
@@ -100,8 +109,10 @@ func fmtOpt(v *float64, prec int) string {
 	return fmt.Sprintf("%.*f", prec, *v)
 }
 
-func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time, stale time.Duration) error {
-	t := newTable(w, 0, "DEVICE", "STATE", "MODE", "LAST SEEN", "SpO2 %", "PULSE /min", "PI %", "SQI", "VALUES", "ALARM", "CONDITIONS", "LABELS")
+// writeDevicesTable prints the devices; holders maps a device to the
+// participant enrolled to it now ("-" when none).
+func writeDevicesTable(w io.Writer, devs []*pb.Device, holders map[string]string, now time.Time, stale time.Duration) error {
+	t := newTable(w, 0, "DEVICE", "PARTICIPANT", "STATE", "MODE", "LAST SEEN", "SpO2 %", "PULSE /min", "PI %", "SQI", "VALUES", "ALARM", "CONDITIONS", "LABELS")
 	for _, d := range devs {
 		state := "offline"
 		if d.GetConnected() {
@@ -133,7 +144,11 @@ func writeDevicesTable(w io.Writer, devs []*pb.Device, now time.Time, stale time
 		}
 		sort.Strings(labels)
 		mode := strings.TrimPrefix(strings.ToLower(d.GetMode().String()), "mode_")
-		t.row(d.GetDeviceId(), state, mode, seen,
+		pid := holders[d.GetDeviceId()]
+		if pid == "" {
+			pid = "-"
+		}
+		t.row(d.GetDeviceId(), pid, state, mode, seen,
 			fmtOpt(l.Spo2Pct, 1), fmtOpt(l.PulseBpm, 0), fmtOpt(l.PiPct, 2), fmtOpt(l.Sqi, 2), age, alarm,
 			conditionLabels(d.GetActiveConditions()), strings.Join(labels, " "))
 	}

@@ -54,19 +54,22 @@ func TestDevicesTableStaleAndLabels(t *testing.T) {
 			AlarmPriority: pb.Priority_PRIORITY_HIGH, ActiveConditions: []string{"spo2_low", "device_clock_fault", "my_rule"}},
 	}
 	var b bytes.Buffer
-	if err := writeDevicesTable(&b, devs, now, 10*time.Second); err != nil {
+	if err := writeDevicesTable(&b, devs, map[string]string{"new-1": "P-0042"}, now, 10*time.Second); err != nil {
 		t.Fatal(err)
 	}
 	out := b.String()
 	if strings.Contains(out, "98.2") || !strings.Contains(out, "stale, 14s old") {
 		t.Errorf("stale value shown as current or without its age:\n%s", out)
 	}
+	if !strings.Contains(out, "new-1   P-0042  ") || !strings.Contains(out, "old-1   -  ") {
+		t.Errorf("participant column:\n%s", out)
+	}
 	if !strings.Contains(out, "87.4") || !strings.Contains(out, "SpO2 low, device clock fault, my_rule") {
 		t.Errorf("fresh value or readable labels missing:\n%s", out)
 	}
 	// A longer --stale shows the same value as current.
 	b.Reset()
-	if err := writeDevicesTable(&b, devs[:1], now, time.Minute); err != nil {
+	if err := writeDevicesTable(&b, devs[:1], nil, now, time.Minute); err != nil {
 		t.Fatal(err)
 	}
 	if !strings.Contains(b.String(), "98.2") {

@@ -13,19 +13,28 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/internal/export"
+	"github.com/pulsefleet/pulsefleet/internal/participants"
 	"github.com/pulsefleet/pulsefleet/internal/progress"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 const exportSummary = `Export trend history from a data directory as CSV or as an HL7 FHIR R4 Bundle.
 
---format csv: t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source, one
-row per stored point (t_s in Unix seconds, empty cells for missing values);
-the first six columns are the replay/tune trend input, so the file replays as is.
+--format csv: t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source,participant,
+one row per stored point (t_s in Unix seconds, empty cells for missing values;
+participant: the study participant enrolled to the device at that time, empty
+when none); the first six columns are the replay/tune trend input, so the file
+replays as is.
 --format fhir: a Bundle (type collection) with one Device per device and
 Observations: SpO2 (LOINC 59408-5 and 2708-6, UCUM %), pulse rate (LOINC
 8867-4, UCUM /min), perfusion index (ISO/IEEE 11073 150448, UCUM %), status
 final, effectiveDateTime in RFC 3339 UTC. Missing values give no Observation.
+An Observation taken while its device was enrolled has a subject: a Patient
+resource carrying only the participant's pseudonymous identifier (system from
+--patient-system).
+
+--participant PID exports one participant's history: each enrolled device's
+points inside its enrolment, one enrolment after the other (not with --device).
 
 T (--from, --to) is RFC 3339 (2026-11-30T22:00:00Z) or Unix seconds; points
 with from <= t < to are exported. Output is streamed (large ranges do not fill
@@ -44,6 +53,7 @@ Research tool, not a certified medical device.`
 // exportOptions are the flags of `pulsefleet export`.
 type exportOptions struct {
 	data, format, out, from, to, base string
+	participant, patientSystem        string
 	devices                           exportDevices
 	client                            clientFlags
 	wait                              time.Duration
@@ -79,6 +89,8 @@ func init() {
 			fs.StringVar(&o.out, "out", "-", "output file, - for stdout")
 			fs.StringVar(&o.base, "fhir-base", "", "fhir: base URL for entry fullUrls, e.g. https://fhir.example.org/r4 (default: no fullUrl)")
 			fs.BoolVar(&o.noPI, "no-pi", false, "fhir: leave out perfusion index Observations")
+			fs.StringVar(&o.participant, "participant", "", "export only this participant's history, stitched from the enrolments of their devices")
+			fs.StringVar(&o.patientSystem, "patient-system", "", "fhir: identifier system URI of the Patient resources standing for participants, e.g. https://study.example.org/participant-id")
 			fs.DurationVar(&o.wait, "wait", time.Second, "how long to wait for the store's lock")
 			if err := parseFlags(fs, args); err != nil {
 				return err
@@ -95,6 +107,15 @@ func init() {
 			var opt export.Options
 			var err error
 			opt.Devices = o.devices
+			if o.participant != "" {
+				if err := participants.CheckID("--participant", o.participant); err != nil {
+					return usagef("%v", err)
+				}
+				if len(o.devices) > 0 {
+					return usagef("--participant, --device: give one (a participant's devices come from the enrolments)")
+				}
+				opt.Participant = o.participant
+			}
 			if opt.FromMS, err = parseExportTime("--from", o.from); err != nil {
 				return err
 			}
@@ -140,6 +161,9 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 		}
 		defer rs.Close()
 		src = rs
+		if opt.Enrolments, err = remoteEnrolments(ctx, &o.client, addrs); err != nil {
+			return err
+		}
 	} else {
 		db, err := openExportStore(o)
 		if err != nil {
@@ -147,6 +171,13 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 		}
 		defer db.Close()
 		src = db
+		es, err := db.Enrolments("", "")
+		if err != nil {
+			return err
+		}
+		for _, e := range es {
+			opt.Enrolments = append(opt.Enrolments, e.Interval())
+		}
 	}
 	prog := newExportProgress(s.err)
 	opt.Progress = prog.update
@@ -155,7 +186,7 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 		if o.format == "csv" {
 			wr = export.NewCSVWriter(w)
 		} else {
-			wr = export.NewFHIRWriter(w, export.FHIROptions{Timestamp: time.Now(), BaseURL: o.base, SkipPI: o.noPI})
+			wr = export.NewFHIRWriter(w, export.FHIROptions{Timestamp: time.Now(), BaseURL: o.base, SkipPI: o.noPI, PatientSystem: o.patientSystem})
 		}
 		st, err := export.Run(ctx, src, wr, opt)
 		prog.finish(st, err)

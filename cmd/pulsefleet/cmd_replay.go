@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/participants"
 	"github.com/pulsefleet/pulsefleet/internal/profiles"
 )
 
@@ -32,12 +33,22 @@ moves ODI by about 21 %). Events: drop below the highest valid SpO2 of the
 last --odi-baseline, lasting --odi-min-duration, ending when the drop is
 under 1 point less than the depth.
 
+--participant PID replays only the rows whose participant column is PID (the
+stitched history that "trend --participant" and "export --format csv" write),
+and --indices then gives one row per participant-night and device:
+participant,night,night_from,night_to,device,valid_hours,... A night is the
+local-time window --night (default 22:00-07:00, a team choice) in time zone
+--tz (IANA name, default UTC), named by the local date it starts on; samples
+outside every night are not scored. A prototype and a reference oximeter worn
+at once are scored separately, never mixed.
+
 Research tool, not a certified medical alarm.`
 
 // replayOptions are the flags of `pulsefleet replay`.
 type replayOptions struct {
 	profile, in, out, indices string
 	odiBaseline, odiMin       time.Duration
+	participant, night, tz    string
 }
 
 func init() {
@@ -53,6 +64,9 @@ func init() {
 			fs.StringVar(&o.indices, "indices", "", "also write the per-device desaturation summary (ODI 3/4 %, T90, valid hours) to this file, - for stdout")
 			fs.DurationVar(&o.odiBaseline, "odi-baseline", alarms.DefaultBaseline, "indices: running-baseline window")
 			fs.DurationVar(&o.odiMin, "odi-min-duration", 10*time.Second, "indices: shortest desaturation counted (common practice, from memory)")
+			fs.StringVar(&o.participant, "participant", "", "replay only this participant's rows (participant column); --indices per participant-night")
+			fs.StringVar(&o.night, "night", participants.DefaultNight, "with --participant: the local-time window of a night, HH:MM-HH:MM")
+			fs.StringVar(&o.tz, "tz", "UTC", "with --participant: time zone of --night, an IANA name such as Europe/Berlin")
 			if err := parseFlags(fs, args); err != nil {
 				return err
 			}
@@ -67,6 +81,11 @@ func init() {
 				return usagef("--odi-baseline %v, want in [10s, 10m]", o.odiBaseline)
 			case o.odiMin < 0 || o.odiMin > 10*time.Minute:
 				return usagef("--odi-min-duration %v, want in [0, 10m]", o.odiMin)
+			}
+			if o.participant != "" {
+				if err := participants.CheckID("--participant", o.participant); err != nil {
+					return usagef("%v", err)
+				}
 			}
 			return runReplay(o, s)
 		},
@@ -100,6 +119,23 @@ func runReplay(o replayOptions, s stdio) error {
 		defer f.Close()
 		in = f
 	}
+	var win participants.NightWindow
+	if o.participant != "" {
+		loc, err := time.LoadLocation(o.tz)
+		if err != nil {
+			return usagef("--tz %q: %v (want an IANA name such as Europe/Berlin)", o.tz, err)
+		}
+		if win, err = participants.ParseNight(o.night, loc); err != nil {
+			return usagef("--%v", err)
+		}
+		var n int
+		if in, n, err = participantRows(in, o.in, o.participant); err != nil {
+			return err
+		}
+		if n == 0 {
+			return fmt.Errorf("%s: no row of participant %s", o.in, o.participant)
+		}
+	}
 	trends, err := alarms.ReadTrendCSV(in)
 	if err != nil {
 		return fmt.Errorf("%s: %w", o.in, err)
@@ -116,7 +152,17 @@ func runReplay(o replayOptions, s stdio) error {
 	if o.indices == "" {
 		return nil
 	}
-	rows, err := alarms.TrendIndices(trends, alarms.IndexOptions{Baseline: o.odiBaseline, MinDuration: o.odiMin, Hysteresis: 1})
+	iopt := alarms.IndexOptions{Baseline: o.odiBaseline, MinDuration: o.odiMin, Hysteresis: 1}
+	if o.participant != "" {
+		nrows, err := participantNightIndices(o.participant, trends, win, iopt)
+		if err != nil {
+			return err
+		}
+		return writeTo(o.indices, s.out, func(w io.Writer) error {
+			return withCaution(w, func() error { return writeNightIndices(w, nrows, win) })
+		})
+	}
+	rows, err := alarms.TrendIndices(trends, iopt)
 	if err != nil {
 		return err
 	}

@@ -5,6 +5,7 @@ import (
 	"encoding/csv"
 	"fmt"
 	"github.com/pulsefleet/pulsefleet/internal/caution"
+	"github.com/pulsefleet/pulsefleet/internal/participants"
 	"io"
 	"math"
 	"sort"
@@ -31,17 +32,23 @@ func init() {
 
 func runTrend(ctx context.Context, args []string, s stdio) error {
 	var cf clientFlags
-	fs := newFlagSet("trend", "--gateway ADDR[,ADDR...] --device ID [--from T] [--to T] [--step DUR]", s.err)
+	fs := newFlagSet("trend", "--gateway ADDR[,ADDR...] (--device ID | --participant PID) [--from T] [--to T] [--step DUR]", s.err)
 	cf.register(fs)
-	device := fs.String("device", "", "device id (required)")
+	device := fs.String("device", "", "device id (this or --participant)")
+	pid := fs.String("participant", "", "participant id: their devices' trend inside their enrolments, stitched, with a participant column")
 	fromArg := fs.String("from", "24h", "start: RFC 3339, Unix seconds, or a duration before now (24h)")
 	toArg := fs.String("to", "", "end: RFC 3339 or Unix seconds (default now)")
 	step := fs.Duration("step", 0, "downsampling step (0 = every point)")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
-	if *device == "" {
-		return usagef("--device: required")
+	if (*device == "") == (*pid == "") {
+		return usagef("--device, --participant: give exactly one")
+	}
+	if *pid != "" {
+		if err := participants.CheckID("--participant", *pid); err != nil {
+			return usagef("%v", err)
+		}
 	}
 	now := time.Now()
 	from, err := parseTrendTime("--from", *fromArg, now)
@@ -64,26 +71,13 @@ func runTrend(ctx context.Context, args []string, s stdio) error {
 	if err != nil {
 		return err
 	}
+	if *pid != "" {
+		return participantTrend(ctx, &cf, addrs, *pid, from, to, *step, s)
+	}
 	req := &pb.QueryTrendRequest{DeviceId: *device, FromUnixMs: from.UnixMilli(), ToUnixMs: to.UnixMilli(), StepMs: step.Milliseconds()}
-	var points []*pb.TrendPoint
-	var buckets []*pb.TrendBucket
-	for _, a := range addrs {
-		conn, err := cf.dial(a)
-		if err != nil {
-			return err
-		}
-		cctx, cancel := context.WithTimeout(cf.ctx(ctx), time.Minute)
-		resp, err := pb.NewFleetServiceClient(conn).QueryTrend(cctx, req)
-		cancel()
-		conn.Close()
-		if err != nil {
-			return fmt.Errorf("gateway %s: %w", a, err)
-		}
-		if resp.GetTruncated() {
-			fmt.Fprintf(s.err, "pulsefleet trend: gateway %s cut its answer at its point limit; use --step or a shorter range\n", a)
-		}
-		points = append(points, resp.GetPoints()...)
-		buckets = append(buckets, resp.GetBuckets()...)
+	points, buckets, err := queryTrend(ctx, &cf, addrs, req, s)
+	if err != nil {
+		return err
 	}
 	if len(points) == 0 && len(buckets) == 0 {
 		// An empty answer is either a known device without data in the
@@ -94,9 +88,65 @@ func runTrend(ctx context.Context, args []string, s stdio) error {
 		}
 	}
 	if *step > 0 {
-		return writeBuckets(s.out, *device, mergeBuckets(buckets))
+		return writeBuckets(s.out, *device, "", mergeBuckets(buckets), true)
 	}
-	return writeTrendPoints(s.out, *device, mergePoints(points))
+	return writeTrendPoints(s.out, *device, "", mergePoints(points), true)
+}
+
+// queryTrend asks every gateway for req and returns the answers unmerged.
+func queryTrend(ctx context.Context, cf *clientFlags, addrs []string, req *pb.QueryTrendRequest, s stdio) ([]*pb.TrendPoint, []*pb.TrendBucket, error) {
+	var points []*pb.TrendPoint
+	var buckets []*pb.TrendBucket
+	for _, a := range addrs {
+		conn, err := cf.dial(a)
+		if err != nil {
+			return nil, nil, err
+		}
+		cctx, cancel := context.WithTimeout(cf.ctx(ctx), time.Minute)
+		resp, err := pb.NewFleetServiceClient(conn).QueryTrend(cctx, req)
+		cancel()
+		conn.Close()
+		if err != nil {
+			return nil, nil, fmt.Errorf("gateway %s: %w", a, err)
+		}
+		if resp.GetTruncated() {
+			fmt.Fprintf(s.err, "pulsefleet trend: gateway %s cut its answer at its point limit; use --step or a shorter range\n", a)
+		}
+		points = append(points, resp.GetPoints()...)
+		buckets = append(buckets, resp.GetBuckets()...)
+	}
+	return points, buckets, nil
+}
+
+// participantTrend writes pid's history: each enrolled device's trend
+// inside its enrolment, one enrolment after the other, with a participant
+// column.
+func participantTrend(ctx context.Context, cf *clientFlags, addrs []string, pid string, from, to time.Time, step time.Duration, s stdio) error {
+	ivs, err := remoteEnrolments(ctx, cf, addrs)
+	if err != nil {
+		return err
+	}
+	segs := participants.Stitch(ivs, pid, from.UnixMilli(), to.UnixMilli())
+	if len(segs) == 0 {
+		return fmt.Errorf("NotFound: participant %s has no enrolment between %s and %s on %s", pid,
+			from.UTC().Format(time.RFC3339), to.UTC().Format(time.RFC3339), strings.Join(addrs, ", "))
+	}
+	for i, sg := range segs {
+		req := &pb.QueryTrendRequest{DeviceId: sg.Device, FromUnixMs: sg.FromMS, ToUnixMs: sg.ToMS, StepMs: step.Milliseconds()}
+		points, buckets, err := queryTrend(ctx, cf, addrs, req, s)
+		if err != nil {
+			return err
+		}
+		if step > 0 {
+			err = writeBuckets(s.out, sg.Device, pid, mergeBuckets(buckets), i == 0)
+		} else {
+			err = writeTrendPoints(s.out, sg.Device, pid, mergePoints(points), i == 0)
+		}
+		if err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // anyGatewayKnows returns nil when at least one gateway knows the device,
@@ -183,31 +233,50 @@ func optCell(v *float64, prec int) string {
 	return strconv.FormatFloat(*v, 'f', prec, 64)
 }
 
-func writeTrendPoints(w io.Writer, device string, ps []*pb.TrendPoint) error {
-	if err := caution.WriteComment(w); err != nil {
-		return err
-	}
+// writeTrendPoints writes points as trend CSV; with pid, a participant
+// column too. head writes the caution line and the header first.
+func writeTrendPoints(w io.Writer, device, pid string, ps []*pb.TrendPoint, head bool) error {
 	cw := csv.NewWriter(w)
-	cw.Write([]string{"t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi", "ratio", "flags", "source"})
+	if head {
+		if err := caution.WriteComment(w); err != nil {
+			return err
+		}
+		cw.Write(withParticipant(pid, "t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi", "ratio", "flags", "source"))
+	}
 	for _, p := range ps {
 		src := "gateway"
 		if p.GetSource() == pb.Source_SOURCE_DEVICE {
 			src = "device"
 		}
-		cw.Write([]string{strconv.FormatFloat(float64(p.GetTimeUnixMs())/1000, 'f', 3, 64), device,
+		cw.Write(withParticipant(pid, strconv.FormatFloat(float64(p.GetTimeUnixMs())/1000, 'f', 3, 64), device,
 			optCell(p.Spo2Pct, 1), optCell(p.PulseBpm, 1), optCell(p.PiPct, 3), optCell(p.Sqi, 3), optCell(p.Ratio, 4),
-			strconv.FormatUint(uint64(p.GetFlags()), 10), src})
+			strconv.FormatUint(uint64(p.GetFlags()), 10), src))
 	}
 	cw.Flush()
 	return cw.Error()
 }
 
-func writeBuckets(w io.Writer, device string, bs []*pb.TrendBucket) error {
-	if err := caution.WriteComment(w); err != nil {
-		return err
+// withParticipant returns cells, with pid appended when it is not "" (the
+// header's cell is "participant").
+func withParticipant(pid string, cells ...string) []string {
+	if pid == "" {
+		return cells
 	}
+	if cells[0] == "t_s" || cells[0] == "start_s" {
+		return append(cells, "participant")
+	}
+	return append(cells, pid)
+}
+
+// writeBuckets writes steps as CSV; pid and head as for writeTrendPoints.
+func writeBuckets(w io.Writer, device, pid string, bs []*pb.TrendBucket, head bool) error {
 	cw := csv.NewWriter(w)
-	cw.Write([]string{"start_s", "device", "points", "spo2_min", "spo2_mean", "spo2_max", "pulse_min", "pulse_mean", "pulse_max", "pi_mean", "sqi_mean"})
+	if head {
+		if err := caution.WriteComment(w); err != nil {
+			return err
+		}
+		cw.Write(withParticipant(pid, "start_s", "device", "points", "spo2_min", "spo2_mean", "spo2_max", "pulse_min", "pulse_mean", "pulse_max", "pi_mean", "sqi_mean"))
+	}
 	stat := func(s *pb.Stat, f float64, prec int) string {
 		if s.GetCount() == 0 {
 			return ""
@@ -215,10 +284,10 @@ func writeBuckets(w io.Writer, device string, bs []*pb.TrendBucket) error {
 		return strconv.FormatFloat(f, 'f', prec, 64)
 	}
 	for _, b := range bs {
-		cw.Write([]string{strconv.FormatFloat(float64(b.GetStartUnixMs())/1000, 'f', 0, 64), device, strconv.FormatUint(uint64(b.GetPoints()), 10),
+		cw.Write(withParticipant(pid, strconv.FormatFloat(float64(b.GetStartUnixMs())/1000, 'f', 0, 64), device, strconv.FormatUint(uint64(b.GetPoints()), 10),
 			stat(b.Spo2Pct, b.Spo2Pct.GetMin(), 1), stat(b.Spo2Pct, b.Spo2Pct.GetMean(), 2), stat(b.Spo2Pct, b.Spo2Pct.GetMax(), 1),
 			stat(b.PulseBpm, b.PulseBpm.GetMin(), 1), stat(b.PulseBpm, b.PulseBpm.GetMean(), 2), stat(b.PulseBpm, b.PulseBpm.GetMax(), 1),
-			stat(b.PiPct, b.PiPct.GetMean(), 3), stat(b.Sqi, b.Sqi.GetMean(), 3)})
+			stat(b.PiPct, b.PiPct.GetMean(), 3), stat(b.Sqi, b.Sqi.GetMean(), 3)))
 	}
 	cw.Flush()
 	return cw.Error()

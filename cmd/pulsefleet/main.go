@@ -19,6 +19,7 @@ import (
 	"sort"
 	"strings"
 	"syscall"
+	_ "time/tzdata" // --tz of replay --participant works on hosts without a zone database
 )
 
 // command is one subcommand of the binary.

@@ -74,7 +74,7 @@ func TestTablesEscapeControlCharacters(t *testing.T) {
 		lines int
 	}{
 		{"audit", func(b *bytes.Buffer) error { return writeAuditTable(b, audits) }, n + 1},
-		{"devices", func(b *bytes.Buffer) error { return writeDevicesTable(b, devs, now, 10*time.Second) }, n + 1},
+		{"devices", func(b *bytes.Buffer) error { return writeDevicesTable(b, devs, nil, now, 10*time.Second) }, n + 1},
 		{"token list", func(b *bytes.Buffer) error { return writeTokensTable(b, toks) }, n + 1},
 		{"quality", func(b *bytes.Buffer) error { return writeQualityTable(b, quals) }, n + 1},
 		{"calibrations", func(b *bytes.Buffer) error { return writeCalibrationsTable(b, cals) }, 2*(n+1) + 1},

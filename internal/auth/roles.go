@@ -100,4 +100,10 @@ var methodRoles = map[string]Role{
 	pb.AdminService_PutCalibration_FullMethodName:    RoleAdmin,
 	pb.AdminService_AssignCalibration_FullMethodName: RoleAdmin,
 	pb.AdminService_Backup_FullMethodName:            RoleAdmin,
+
+	// Enrolment is a bedside task (operator); deletion destroys data (admin).
+	pb.ParticipantService_ListEnrolments_FullMethodName:    RoleViewer,
+	pb.ParticipantService_Enrol_FullMethodName:             RoleOperator,
+	pb.ParticipantService_EndEnrolment_FullMethodName:      RoleOperator,
+	pb.ParticipantService_DeleteParticipant_FullMethodName: RoleAdmin,
 }

@@ -14,10 +14,11 @@ import (
 
 // CSVHeader is the CSV export's header: the replay/tune trend columns
 // (docs/contracts.md, "CSV formats") first, then ratio of ratios, estimator
-// flags and the source of the values (gateway estimate or device summary).
+// flags, the source of the values (gateway estimate or device summary) and
+// the participant enrolled to the device at that time (empty when none).
 // It follows the caution comment line (caution.Comment), which every
 // pulsefleet CSV reader skips.
-const CSVHeader = "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source"
+const CSVHeader = "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source,participant"
 
 // CSVWriter writes trend points as CSV, one row per point, with an empty cell
 // for every missing value. t_s is Unix seconds with millisecond resolution.
@@ -26,6 +27,7 @@ type CSVWriter struct {
 	line   []byte
 	dev    string // device of the cached field
 	devCSV []byte // dev as a CSV field
+	pid    string // participant of the next points (ParticipantWriter)
 	closed bool
 }
 
@@ -64,11 +66,19 @@ func (c *CSVWriter) Point(p *store.Point) error {
 	b = strconv.AppendUint(b, uint64(p.Flags), 10)
 	b = append(b, ',')
 	b = append(b, sourceName(p.Source)...)
+	b = append(b, ',')
+	b = append(b, c.pid...) // participant ids need no quoting (participants.CheckID)
 	b = append(b, '\n')
 	c.line = b
 	if _, err := c.w.Write(b); err != nil {
 		return fmt.Errorf("csv: %w", err)
 	}
+	return nil
+}
+
+// Participant sets the participant column of the rows that follow.
+func (c *CSVWriter) Participant(pid string) error {
+	c.pid = pid
 	return nil
 }
 

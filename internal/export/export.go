@@ -8,6 +8,7 @@ import (
 	"slices"
 	"strings"
 
+	"github.com/pulsefleet/pulsefleet/internal/participants"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
@@ -29,8 +30,22 @@ type Writer interface {
 	Close() error
 }
 
+// ParticipantWriter is a Writer that also names the participant of the
+// points that follow (Run calls Participant before the first point and
+// whenever it changes; "" = no participant enrolled at that time).
+type ParticipantWriter interface {
+	Participant(pid string) error
+}
+
 // Options selects what Run exports.
 type Options struct {
+	// Enrolments say whose each point is: a point of device D at time t is
+	// the participant's whose enrolment on D contains t ("" when none).
+	Enrolments []participants.Interval
+	// Participant, when set, exports only that participant's history,
+	// stitched from Enrolments (one stretch per enrolment, in start order);
+	// Devices must then be empty.
+	Participant string
 	// Devices to export, in this order; empty means every device with trend
 	// points, ordered by id. A listed device unknown to the store is an error.
 	Devices []string
@@ -75,7 +90,7 @@ func Run(ctx context.Context, src Source, w Writer, opt Options) (Stats, error) 
 	if every <= 0 {
 		every = 100_000
 	}
-	devs, err := selectDevices(src, opt.Devices)
+	segs, devs, err := plan(src, opt, from, to)
 	if err != nil {
 		return st, err
 	}
@@ -89,14 +104,23 @@ func Run(ctx context.Context, src Source, w Writer, opt Options) (Stats, error) 
 		}
 	}
 	var cur store.Point
-	for i, d := range devs {
+	pw, _ := w.(ParticipantWriter)
+	named, said := "", false
+	for i, sg := range segs {
 		if err := ctx.Err(); err != nil {
 			return st, fmt.Errorf("export: %w", err)
 		}
-		pr := Progress{Device: d.ID, DeviceIndex: i + 1, DeviceCount: len(devs), Points: st.Points}
+		pr := Progress{Device: sg.Device, DeviceIndex: i + 1, DeviceCount: len(segs), Points: st.Points}
 		report(pr)
+		hold := newHolder(opt.Enrolments, sg.Device)
 		var werr error
-		err := src.Trend(d.ID, from, to, func(p store.Point) bool {
+		err := src.Trend(sg.Device, sg.FromMS, sg.ToMS, func(p store.Point) bool {
+			if pid := hold.at(p.TimeMS); pw != nil && (pid != named || !said) {
+				if werr = pw.Participant(pid); werr != nil {
+					return false
+				}
+				named, said = pid, true
+			}
 			cur = p // one heap copy for the whole export, not one per point
 			if werr = w.Point(&cur); werr != nil {
 				return false
@@ -112,7 +136,7 @@ func Run(ctx context.Context, src Source, w Writer, opt Options) (Stats, error) 
 			return true
 		})
 		if werr != nil {
-			return st, fmt.Errorf("export: device %q: %w", d.ID, werr)
+			return st, fmt.Errorf("export: device %q: %w", sg.Device, werr)
 		}
 		if err != nil {
 			return st, fmt.Errorf("export: %w", err)
@@ -121,8 +145,89 @@ func Run(ctx context.Context, src Source, w Writer, opt Options) (Stats, error) 
 	if err := w.Close(); err != nil {
 		return st, fmt.Errorf("export: %w", err)
 	}
-	report(Progress{DeviceIndex: len(devs), DeviceCount: len(devs), Points: st.Points, Done: true})
+	report(Progress{DeviceIndex: len(segs), DeviceCount: len(segs), Points: st.Points, Done: true})
 	return st, nil
+}
+
+// plan returns the stretches to export, in order, and the device records of
+// the export: one stretch per device over [from, to), or with
+// opt.Participant one per enrolment of that participant.
+func plan(src Source, opt Options, from, to int64) ([]participants.Segment, []store.Device, error) {
+	if opt.Participant == "" {
+		devs, err := selectDevices(src, opt.Devices)
+		segs := make([]participants.Segment, len(devs))
+		for i, d := range devs {
+			segs[i] = participants.Segment{Device: d.ID, FromMS: from, ToMS: to}
+		}
+		return segs, devs, err
+	}
+	if len(opt.Devices) > 0 {
+		return nil, nil, fmt.Errorf("export: --participant and --device: give one of them (a participant's devices come from the enrolments)")
+	}
+	segs := participants.Stitch(opt.Enrolments, opt.Participant, from, to)
+	if len(segs) == 0 {
+		return nil, nil, fmt.Errorf("export: participant %s has no enrolment in the range", opt.Participant)
+	}
+	var ids []string
+	for _, sg := range segs {
+		if !slices.Contains(ids, sg.Device) {
+			ids = append(ids, sg.Device)
+		}
+	}
+	recs, err := src.Devices()
+	if err != nil {
+		return nil, nil, fmt.Errorf("export: %w", err)
+	}
+	devs := make([]store.Device, 0, len(ids))
+	for _, id := range ids {
+		d := store.Device{ID: id}
+		for _, r := range recs {
+			if r.ID == id {
+				d = r
+			}
+		}
+		devs = append(devs, d)
+	}
+	return segs, devs, nil
+}
+
+// holder finds the participant of one device's points, which come in time
+// order: it walks the device's enrolments along.
+type holder struct {
+	ivs []participants.Interval // the device's, by start
+}
+
+func newHolder(all []participants.Interval, device string) *holder {
+	h := &holder{}
+	for _, iv := range all {
+		if iv.Device == device {
+			h.ivs = append(h.ivs, iv)
+		}
+	}
+	slices.SortFunc(h.ivs, func(a, b participants.Interval) int { return cmpInt(a.FromMS, b.FromMS) })
+	return h
+}
+
+func cmpInt(a, b int64) int {
+	switch {
+	case a < b:
+		return -1
+	case a > b:
+		return 1
+	}
+	return 0
+}
+
+// at returns the participant holding the device at t ("" when none). Times
+// only increase between calls, so passed enrolments are dropped.
+func (h *holder) at(t int64) string {
+	for len(h.ivs) > 0 && h.ivs[0].End() <= t {
+		h.ivs = h.ivs[1:]
+	}
+	if len(h.ivs) > 0 && h.ivs[0].Contains(t) {
+		return h.ivs[0].Participant
+	}
+	return ""
 }
 
 // selectDevices returns the device records to export, in export order. A

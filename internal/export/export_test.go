@@ -150,7 +150,7 @@ func TestCSVExportReplaysDirectly(t *testing.T) {
 		}
 	}
 	// The all-missing row: every value cell empty, flags and source kept.
-	wantRow := strconv.FormatInt((start+12_000)/1000, 10) + ",ward3-bed2,,,,,,3,device"
+	wantRow := strconv.FormatInt((start+12_000)/1000, 10) + ",ward3-bed2,,,,,,3,device,"
 	if !strings.Contains(out, "\n"+wantRow+"\n") {
 		t.Errorf("no row %q for the all-missing point", wantRow)
 	}

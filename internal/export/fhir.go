@@ -41,9 +41,14 @@ type FHIROptions struct {
 	// SkipPI leaves out the perfusion index Observations (they carry an
 	// ISO/IEEE 11073 code only; LOINC has no perfusion index code).
 	SkipPI bool
+	// PatientSystem is the identifier system (a URI the study team
+	// chooses, e.g. https://study.example.org/participant-id) of the Patient
+	// resources that stand for participants; empty leaves system out.
+	PatientSystem string
 }
 
-// FHIRWriter writes an HL7 FHIR R4 Bundle (type collection) of Device and
+// FHIRWriter writes an HL7 FHIR R4 Bundle (type collection) of Device,
+// Patient (one per participant, pseudonymous identifier only) and
 // Observation resources as JSON, one entry at a time: it never holds more
 // than one entry in memory. Observations have ids DEVICEID.TIMEMS.KIND
 // (KIND spo2, pr or pi), so a re-export of the same data has the same ids.
@@ -60,6 +65,9 @@ type FHIRWriter struct {
 
 	baseJSON []byte // opt.BaseURL as a JSON string
 	id       []byte // scratch for Observation ids
+
+	subjRef  []byte          // {"reference":"Patient/ID"} of the current participant, nil for none
+	patients map[string]bool // Patient entries written
 }
 
 // NewFHIRWriter returns a FHIRWriter writing to w (buffered; Close flushes).
@@ -123,6 +131,44 @@ func (f *FHIRWriter) entry(typ string, id, res []byte) error {
 	return nil
 }
 
+// Participant makes the Observations that follow reference pid's Patient
+// resource as their subject ("" = none), writing that Patient entry the
+// first time: it carries only the pseudonymous identifier, nothing else
+// about the person.
+func (f *FHIRWriter) Participant(pid string) error {
+	if f.closed || !f.begun {
+		return errClosed
+	}
+	if pid == "" {
+		f.subjRef = nil
+		return nil
+	}
+	id := FHIRID(pid)
+	ref, _ := json.Marshal(map[string]string{"reference": "Patient/" + id})
+	f.subjRef = ref
+	if f.patients[id] {
+		return nil
+	}
+	if f.patients == nil {
+		f.patients = map[string]bool{}
+	}
+	f.patients[id] = true
+	res, err := json.Marshal(fhirPatient{ResourceType: "Patient", ID: id,
+		Identifier: []fhirIdentifier{{System: f.opt.PatientSystem, Value: pid}}})
+	if err != nil {
+		return fmt.Errorf("fhir: participant %q: %w", pid, err)
+	}
+	return f.entry("Patient", []byte(id), res)
+}
+
+// fhirPatient is a FHIR R4 Patient reduced to its id and the participant's
+// pseudonymous identifier.
+type fhirPatient struct {
+	ResourceType string           `json:"resourceType"`
+	ID           string           `json:"id"`
+	Identifier   []fhirIdentifier `json:"identifier"`
+}
+
 // Point writes one Observation per valid value of p (SpO2, pulse rate,
 // perfusion index); a point without valid values writes nothing.
 func (f *FHIRWriter) Point(p *store.Point) error {
@@ -151,7 +197,12 @@ func (f *FHIRWriter) Point(p *store.Point) error {
 		b = append(b, k.head...)
 		b = append(b, `,"effectiveDateTime":"`...)
 		b = time.UnixMilli(p.TimeMS).UTC().AppendFormat(b, "2006-01-02T15:04:05.000Z07:00")
-		b = append(b, `","device":`...)
+		b = append(b, '"')
+		if f.subjRef != nil {
+			b = append(b, `,"subject":`...)
+			b = append(b, f.subjRef...)
+		}
+		b = append(b, `,"device":`...)
 		b = append(b, f.devRef...)
 		if m := methodText(p.Source); m != "" {
 			b = append(b, `,"method":{"text":"`...)

@@ -58,7 +58,7 @@ func FuzzCSVDeviceField(f *testing.F) {
 		if bytes.ContainsRune([]byte(id), '\r') {
 			return
 		}
-		if len(recs) != 2 || len(recs[1]) != 9 || recs[1][1] != id || recs[1][0] != "1.5" || recs[1][2] != "97" {
+		if len(recs) != 2 || len(recs[1]) != 10 || recs[1][1] != id || recs[1][0] != "1.5" || recs[1][2] != "97" {
 			t.Fatalf("id %q read back as %q", id, recs)
 		}
 	})

@@ -252,6 +252,7 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	pb.RegisterIngestServiceServer(srv, g)
 	pb.RegisterFleetServiceServer(srv, g)
 	pb.RegisterAdminServiceServer(srv, g)
+	pb.RegisterParticipantServiceServer(srv, &participantService{g: g})
 	g.health = health.NewServer()
 	healthpb.RegisterHealthServer(srv, g.health)
 	reflection.Register(srv)

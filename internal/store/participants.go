@@ -19,6 +19,8 @@ var (
 	ErrConflict = errors.New("enrolment conflict")
 	// ErrInvalid: a field is out of its bounds (the message names it).
 	ErrInvalid = errors.New("invalid")
+	// ErrStillOpen: the participant has an open enrolment (end it first).
+	ErrStillOpen = errors.New("enrolment still open")
 )
 
 // MaxNoteLen bounds an enrolment note.

@@ -2,6 +2,7 @@ package store
 
 import (
 	"errors"
+	"fmt"
 	"strings"
 	"testing"
 	"time"
@@ -128,5 +129,79 @@ func TestEnrolmentTimeline(t *testing.T) {
 	rep, err := VerifyDir(dir, VerifyOptions{})
 	if err != nil || !rep.OK() || rep.Records["enrolments"] != 4 {
 		t.Errorf("verify: %+v %v", rep, err)
+	}
+}
+
+// Withdrawal in the store: P-0001's points, raw captures and episodes go,
+// everything else stays byte for byte, and the audit says what happened.
+func TestDeleteParticipant(t *testing.T) {
+	db, _ := mustOpen(t)
+	wardPoints(t, db)
+	wardTimeline(t, db)
+	// Raw captures of OX-A, one every 30 min from 19:00 to 11:30 (34):
+	// inside P-0001's 20:00..03:00 are 20:00, 20:30, ..., 02:30 = 14.
+	// Episodes: OX-A at 01:00 (P-0001's), OX-A at 19:30 (nobody's), OX-B
+	// at 05:00 (P-0001's), OX-A at 10:30 (P-0002's).
+	b := &Batch{}
+	t0 := utcMS("2026-12-01T19:00:00Z")
+	for i := int64(0); i < 34; i++ {
+		b.Raw = append(b.Raw, RawCapture{Device: "OX-A", Seq: uint64(i + 1), DeviceTimeMS: t0 + i*1_800_000, RateHz: 100, Red: []uint32{1, 2}, IR: []uint32{3, 4}})
+	}
+	for _, e := range []struct{ dev, at string }{{"OX-A", "2026-12-02T01:00:00Z"}, {"OX-A", "2026-12-01T19:30:00Z"}, {"OX-B", "2026-12-02T05:00:00Z"}, {"OX-A", "2026-12-02T10:30:00Z"}} {
+		b.Episodes = append(b.Episodes, &Episode{Device: e.dev, Condition: "spo2_low", Priority: "medium", OnsetMS: utcMS(e.at), EndedMS: utcMS(e.at) + 60_000, MinSpO2: 84})
+	}
+	if err := db.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	// Everything that is not P-0001's, read before.
+	dump := func() string {
+		var sb strings.Builder
+		for _, w := range []struct {
+			dev      string
+			from, to string
+		}{{"OX-A", "2026-12-01T00:00:00Z", "2026-12-01T20:00:00Z"}, {"OX-A", "2026-12-02T03:00:00Z", "2026-12-03T00:00:00Z"},
+			{"OX-B", "2026-12-01T00:00:00Z", "2026-12-02T03:10:00Z"}, {"OX-B", "2026-12-02T08:00:00Z", "2026-12-03T00:00:00Z"}} {
+			_ = db.Trend(w.dev, utcMS(w.from), utcMS(w.to), func(p Point) bool { sb.WriteString(fmt.Sprintf("%+v\n", p)); return true })
+			_ = db.RawCaptures(w.dev, utcMS(w.from), utcMS(w.to), func(r RawCapture) bool { sb.WriteString(fmt.Sprintf("%+v\n", r)); return true })
+		}
+		eps, _ := db.Episodes(EpisodeFilter{})
+		for _, e := range eps {
+			if !(e.Device == "OX-A" && e.OnsetMS == utcMS("2026-12-02T01:00:00Z")) && !(e.Device == "OX-B" && e.OnsetMS == utcMS("2026-12-02T05:00:00Z")) {
+				sb.WriteString(fmt.Sprintf("%+v\n", e))
+			}
+		}
+		return sb.String()
+	}
+	before := dump()
+	del, err := db.DeleteParticipant("P-0001", utcMS("2026-12-05T09:00:00Z"), "admin-ro", "127.0.0.1")
+	if err != nil {
+		t.Fatal(err)
+	}
+	// 420 + 290 points (TestEnrolmentTimeline), 14 raw captures, 2 episodes.
+	if del.TrendPoints != 710 || del.RawCaptures != 14 || del.Episodes != 2 || len(del.Enrolments) != 2 {
+		t.Errorf("deleted %+v, want 710 points, 14 raw, 2 episodes, 2 enrolments", del)
+	}
+	n := 0
+	_ = db.ParticipantTrend("P-0001", 0, 1<<62, func(Point) bool { n++; return true })
+	for _, w := range []struct{ dev, from, to string }{{"OX-A", "2026-12-01T20:00:00Z", "2026-12-02T03:00:00Z"}, {"OX-B", "2026-12-02T03:10:00Z", "2026-12-02T08:00:00Z"}} {
+		_ = db.Trend(w.dev, utcMS(w.from), utcMS(w.to), func(Point) bool { n++; return true })
+		_ = db.RawCaptures(w.dev, utcMS(w.from), utcMS(w.to), func(RawCapture) bool { n++; return true })
+	}
+	if n != 0 {
+		t.Errorf("%d records of P-0001 still readable", n)
+	}
+	if after := dump(); after != before {
+		t.Errorf("other data changed:\n%s\nwant\n%s", after, before)
+	}
+	a, _ := db.Audit(0, "participants.delete", 0)
+	if len(a) != 1 || a[0].ID != del.AuditID || a[0].Actor != "admin-ro" || !strings.Contains(a[0].Detail,
+		"deleted 710 trend points, 14 raw captures, 2 episodes, 0 reviews in OX-A 2026-12-01T20:00:00Z..2026-12-02T03:00:00Z, OX-B 2026-12-02T03:10:00Z..2026-12-02T08:00:00Z") {
+		t.Errorf("audit %+v", a)
+	}
+	if _, err := db.DeleteParticipant("P-0001", 0, "admin-ro", ""); !errors.Is(err, ErrNotFound) {
+		t.Errorf("second delete: %v", err)
+	}
+	if _, err := db.DeleteParticipant("P-0002", 0, "admin-ro", ""); !errors.Is(err, ErrStillOpen) {
+		t.Errorf("delete while open: %v", err)
 	}
 }

@@ -340,6 +340,11 @@ func (m *merger) rest() bool {
 func (db *DB) CompactAll() error {
 	db.writeMu.Lock()
 	defer db.writeMu.Unlock()
+	return db.compactAllLocked()
+}
+
+// compactAllLocked is CompactAll for a caller that holds writeMu.
+func (db *DB) compactAllLocked() error {
 	t := &db.tail
 	// Seal the current generation whatever its age.
 	t.genStart = time.Time{}
