@@ -1,20 +1,19 @@
 package store
 
 import (
-	"encoding/binary"
 	"fmt"
 
 	bolt "go.etcd.io/bbolt"
 )
 
-// LedgerSeqs returns every sequence number in the ingest ledger, per
-// device id, in no particular order (a sequence stored twice appears
-// twice). Like LedgerTotals it is for verification: the failover tests
-// check across the stores of several gateways that each acknowledged
-// message is held exactly once.
-func (db *DB) LedgerSeqs() (map[string][]uint64, error) {
+// LedgerRanges returns the ingest ledger's sequence ranges per device id
+// ([first, last], inclusive, in no particular order; a sequence stored
+// twice is in two ranges). Like LedgerTotals it is for verification: the
+// failover tests check across the stores of several gateways that each
+// acknowledged message is held exactly once.
+func (db *DB) LedgerRanges() (map[string][][2]uint64, error) {
 	names := map[uint32]string{}
-	out := map[string][]uint64{}
+	byIdx := map[uint32][][2]uint64{}
 	err := db.view(func(tx *bolt.Tx) error {
 		if err := tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
 			var d Device
@@ -28,17 +27,21 @@ func (db *DB) LedgerSeqs() (map[string][]uint64, error) {
 		}
 		return tx.Bucket(bLedger).ForEachBucket(func(dk []byte) error {
 			return tx.Bucket(bLedger).Bucket(dk).ForEach(func(k, v []byte) error {
-				if len(k) != ledgerKeySize {
-					return fmt.Errorf("bad ledger record")
+				var r ledgerRange
+				if err := decodeLedger(k, v, &r); err != nil {
+					return err
 				}
-				idx := binary.BigEndian.Uint32(k[8:])
-				out[names[idx]] = append(out[names[idx]], binary.BigEndian.Uint64(k[12:]))
+				byIdx[r.idx] = append(byIdx[r.idx], [2]uint64{r.first, r.last})
 				return nil
 			})
 		})
 	})
 	if err != nil {
 		return nil, fmt.Errorf("store: ledger: %w", err)
+	}
+	out := make(map[string][][2]uint64, len(byIdx))
+	for idx, rs := range byIdx {
+		out[names[idx]] = rs
 	}
 	return out, nil
 }
