@@ -153,6 +153,15 @@ func TestDeleteParticipant(t *testing.T) {
 	if err := db.Write(b); err != nil {
 		t.Fatal(err)
 	}
+	// Reviews: two revisions of P-0001's OX-A episode, one of P-0002's.
+	for _, r := range []struct {
+		ep    *Episode
+		label string
+	}{{b.Episodes[0], "unsure"}, {b.Episodes[0], "actionable"}, {b.Episodes[3], "artefact"}} {
+		if _, err := db.PutReview(Review{EpisodeID: r.ep.ID, Label: r.label, Reviewer: "nurse"}, nil); err != nil {
+			t.Fatal(err)
+		}
+	}
 	// Everything that is not P-0001's, read before.
 	dump := func() string {
 		var sb strings.Builder
@@ -163,6 +172,12 @@ func TestDeleteParticipant(t *testing.T) {
 			{"OX-B", "2026-12-01T00:00:00Z", "2026-12-02T03:10:00Z"}, {"OX-B", "2026-12-02T08:00:00Z", "2026-12-03T00:00:00Z"}} {
 			_ = db.Trend(w.dev, utcMS(w.from), utcMS(w.to), func(p Point) bool { sb.WriteString(fmt.Sprintf("%+v\n", p)); return true })
 			_ = db.RawCaptures(w.dev, utcMS(w.from), utcMS(w.to), func(r RawCapture) bool { sb.WriteString(fmt.Sprintf("%+v\n", r)); return true })
+		}
+		rs, _ := db.Reviews(ReviewFilter{History: true})
+		for _, r := range rs {
+			if r.EpisodeID != b.Episodes[0].ID {
+				sb.WriteString(fmt.Sprintf("%+v\n", r))
+			}
 		}
 		eps, _ := db.Episodes(EpisodeFilter{})
 		for _, e := range eps {
@@ -178,8 +193,11 @@ func TestDeleteParticipant(t *testing.T) {
 		t.Fatal(err)
 	}
 	// 420 + 290 points (TestEnrolmentTimeline), 14 raw captures, 2 episodes.
-	if del.TrendPoints != 710 || del.RawCaptures != 14 || del.Episodes != 2 || len(del.Enrolments) != 2 {
-		t.Errorf("deleted %+v, want 710 points, 14 raw, 2 episodes, 2 enrolments", del)
+	if del.TrendPoints != 710 || del.RawCaptures != 14 || del.Episodes != 2 || del.Reviews != 2 || len(del.Enrolments) != 2 {
+		t.Errorf("deleted %+v, want 710 points, 14 raw, 2 episodes, 2 reviews, 2 enrolments", del)
+	}
+	if rs, _ := db.Reviews(ReviewFilter{History: true, Episodes: []uint64{b.Episodes[0].ID}}); len(rs) != 0 {
+		t.Errorf("reviews of a deleted episode survive: %+v", rs)
 	}
 	n := 0
 	_ = db.ParticipantTrend("P-0001", 0, 1<<62, func(Point) bool { n++; return true })
@@ -195,7 +213,7 @@ func TestDeleteParticipant(t *testing.T) {
 	}
 	a, _ := db.Audit(0, "participants.delete", 0)
 	if len(a) != 1 || a[0].ID != del.AuditID || a[0].Actor != "admin-ro" || !strings.Contains(a[0].Detail,
-		"deleted 710 trend points, 14 raw captures, 2 episodes, 0 reviews in OX-A 2026-12-01T20:00:00Z..2026-12-02T03:00:00Z, OX-B 2026-12-02T03:10:00Z..2026-12-02T08:00:00Z") {
+		"deleted 710 trend points, 14 raw captures, 2 episodes, 2 reviews in OX-A 2026-12-01T20:00:00Z..2026-12-02T03:00:00Z, OX-B 2026-12-02T03:10:00Z..2026-12-02T08:00:00Z") {
 		t.Errorf("audit %+v", a)
 	}
 	if _, err := db.DeleteParticipant("P-0001", 0, "admin-ro", ""); !errors.Is(err, ErrNotFound) {

@@ -1,6 +1,7 @@
 package store
 
 import (
+	"bytes"
 	"encoding/binary"
 	"fmt"
 	"strings"
@@ -25,7 +26,8 @@ type Deletion struct {
 // DeleteParticipant deletes a withdrawn participant's data: for each of
 // pid's enrolments, the enrolled device's trend points and raw captures
 // with a device time inside the interval and its episodes whose onset lies
-// inside it, then the enrolments themselves. It writes an audit entry
+// inside it (with every review of them and their waiting notifications),
+// then the enrolments themselves. It writes an audit entry
 // (action "participants.delete", by actor at atMS) saying who, when, which
 // intervals and how many records, in the same transaction, and returns the
 // same figures. It wraps ErrNotFound when pid has no enrolment and
@@ -72,10 +74,12 @@ func (db *DB) DeleteParticipant(pid string, atMS int64, actor, remote string) (D
 				return err
 			}
 			out.RawCaptures += n
-			if n, err = deleteEpisodes(tx, e.Device, e.FromMS, e.ToMS); err != nil {
+			var nr uint64
+			if n, nr, err = deleteEpisodes(tx, e.Device, e.FromMS, e.ToMS); err != nil {
 				return err
 			}
 			out.Episodes += n
+			out.Reviews += nr
 			if err := tx.Bucket(bEnrolments).Delete(u64(e.ID)); err != nil {
 				return err
 			}
@@ -193,8 +197,10 @@ func deleteRaw(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error) {
 	return n, nil
 }
 
-// deleteEpisodes deletes device's episodes whose onset lies in [fromMS, toMS).
-func deleteEpisodes(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error) {
+// deleteEpisodes deletes device's episodes whose onset lies in [fromMS,
+// toMS), every review revision of them, and their waiting notifications
+// (outbox); it returns how many episodes and reviews went.
+func deleteEpisodes(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, uint64, error) {
 	b := tx.Bucket(bEpisodes)
 	var del [][]byte
 	err := b.ForEach(func(k, v []byte) error {
@@ -208,12 +214,28 @@ func deleteEpisodes(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, err
 		return nil
 	})
 	if err != nil {
-		return 0, err
+		return 0, 0, err
 	}
+	var reviews uint64
+	rb, ob := tx.Bucket(bReviews), tx.Bucket(bOutbox)
 	for _, k := range del {
 		if err := b.Delete(k); err != nil {
-			return 0, err
+			return 0, 0, err
+		}
+		if rb != nil { // reviews/EPISODE_ID|REVISION
+			c := rb.Cursor()
+			for rk, _ := c.Seek(k); rk != nil && bytes.HasPrefix(rk, k); rk, _ = c.Seek(k) {
+				if err := c.Delete(); err != nil {
+					return 0, 0, err
+				}
+				reviews++
+			}
+		}
+		if ob != nil { // outbox/EPISODE_ID
+			if err := ob.Delete(k); err != nil {
+				return 0, 0, err
+			}
 		}
 	}
-	return uint64(len(del)), nil
+	return uint64(len(del)), reviews, nil
 }
