@@ -19,7 +19,8 @@ func init() {
 (decode and acknowledge only) and then against the full gateway with a
 temporary store, in one run. Progress goes to stderr; the last line on stdout
 is one JSON object with sink_samples_per_s, gateway_samples_per_s, ratio
-(gateway / sink), ack_p50_ms, ack_p99_ms (gateway phase), lost (acknowledged
+(gateway / sink), cpu_ratio (the gateway's CPU per acknowledged sample over
+the sink's), ack_p50_ms, ack_p99_ms (gateway phase), lost (acknowledged
 samples missing from the store afterwards), peak_rss_bytes and more.
 Peak RSS is measured per phase (the kernel's high-water mark is reset at the
 start of each phase); with --client process (the default) the load client
