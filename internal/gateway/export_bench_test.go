@@ -33,7 +33,9 @@ import (
 //   - tune: what `tune --gateway` asks of the gateway, snapshots through
 //     AdminService.Backup back to back, 10 s;
 //   - hour: one paced full export of the whole seeded history (an
-//     hour-equivalent export) while the devices stream until it ends.
+//     hour-equivalent export) while the devices stream until it ends;
+//   - hour-none: the devices alone for as long as hour streamed, so the
+//     store growth of hour has its baseline from the same run.
 //
 // Each reports ack_p50_ms, ack_p99_ms, the points exported or snapshot
 // MiB read, the process's CPU (cores; the load client runs in the same
@@ -57,17 +59,22 @@ func BenchmarkAckP99WithExport(b *testing.B) {
 	copyStore(b, h.dir, seeded)
 	b.Logf("load average at start: %s", loadAvg())
 	defer func() { b.Logf("load average at end: %s", loadAvg()) }()
-	for _, variant := range []string{"none", "export", "export-unpaced", "tune", "hour"} {
+	var hourLong time.Duration
+	for _, variant := range []string{"none", "export", "export-unpaced", "tune", "hour", "hour-none"} {
 		b.Run(variant, func(b *testing.B) {
 			for i := 0; i < b.N; i++ {
-				benchAckVariant(b, variant, devices, seeded)
+				d := benchAckVariant(b, variant, devices, seeded, hourLong)
+				if variant == "hour" {
+					hourLong = d
+				}
 			}
 		})
 	}
 }
 
-// benchAckVariant runs one variant of BenchmarkAckP99WithExport.
-func benchAckVariant(b *testing.B, variant string, devices int, seeded string) {
+// benchAckVariant runs one variant of BenchmarkAckP99WithExport and
+// returns how long the devices streamed; hour-none streams for hourLong.
+func benchAckVariant(b *testing.B, variant string, devices int, seeded string, hourLong time.Duration) time.Duration {
 	h := &harness{t: b, dir: b.TempDir()}
 	copyStore(b, seeded, h.dir)
 	if variant == "export-unpaced" {
@@ -82,8 +89,11 @@ func benchAckVariant(b *testing.B, variant string, devices int, seeded string) {
 	simCtx, simStop := context.WithCancel(context.Background())
 	defer simStop()
 	dur := 10 * time.Second
-	if variant == "hour" {
+	switch variant {
+	case "hour":
 		dur = 10 * time.Minute // ended by simStop when the export is done
+	case "hour-none":
+		dur = max(hourLong, time.Second)
 	}
 	go func() {
 		defer close(done)
@@ -145,6 +155,7 @@ func benchAckVariant(b *testing.B, variant string, devices int, seeded string) {
 	if rep.StreamErrors != 0 || rep.FramesAcked == 0 {
 		b.Errorf("sim: %d stream errors, %d acked (%s)", rep.StreamErrors, rep.FramesAcked, rep.LastError)
 	}
+	return time.Duration(secs * float64(time.Second))
 }
 
 // benchExport runs one full export through the harness's gateway and counts its points.
