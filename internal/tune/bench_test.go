@@ -3,10 +3,12 @@ package tune
 import (
 	"context"
 	"fmt"
+	"strings"
 	"syscall"
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
@@ -42,14 +44,23 @@ func BenchmarkTune(b *testing.B) {
 	for _, tr := range trends {
 		samples += len(tr.Samples)
 	}
-	for _, bc := range []struct{ name, base string }{
-		{"spo2_low", "base:\n  name: one\n  conditions:\n    - {kind: spo2_low, limit: 90, hysteresis: 1, delay: 15s, priority: medium, escalate: {below: 80, priority: high}}\n"},
-		{"ward", "base: adult-ward-pilot\n"},
+	one := "base:\n  name: one\n  conditions:\n    - {kind: spo2_low, limit: 90, hysteresis: 1, delay: 15s, priority: medium, escalate: {below: 80, priority: high}}\n"
+	// spo2_low-reviews scores the same sweep against reviews: every stretch
+	// below 90 % for 15 s is a reviewed episode, labelled in turn
+	// actionable, artefact, unsure.
+	reviewed := benchReviewed(trends)
+	for _, bc := range []struct{ name, base, sweep string }{
+		{"spo2_low", one, benchSweep},
+		{"ward", "base: adult-ward-pilot\n", benchSweep},
+		{"spo2_low-reviews", one, strings.Replace(benchSweep, "rule: {below: 85, for: 60s}", "reviews: {positive: [actionable], negative: [artefact]}", 1)},
 	} {
 		b.Run(bc.name, func(b *testing.B) {
-			g, err := ParseGrid([]byte(bc.base+benchSweep), ".")
+			g, err := ParseGrid([]byte(bc.base+bc.sweep), ".")
 			if err != nil {
 				b.Fatal(err)
+			}
+			if g.Reference.Reviews != nil {
+				g.Reference.Reviewed = reviewed
 			}
 			var res *Result
 			cpu0 := cpuTime()
@@ -68,6 +79,18 @@ func BenchmarkTune(b *testing.B) {
 			b.ReportMetric(float64(len(res.Points)), "profiles")
 		})
 	}
+}
+
+func benchReviewed(trends []alarms.Trend) []ReviewedEpisode {
+	labels := []string{"actionable", "artefact", "unsure"}
+	var out []ReviewedEpisode
+	for _, tr := range trends {
+		for _, ev := range RuleEvents(tr.Device, tr.Samples, Rule{Below: 90, For: 15 * time.Second}) {
+			out = append(out, ReviewedEpisode{ID: uint64(len(out) + 1), Device: tr.Device, Condition: "spo2_low",
+				Start: ev.Start, End: ev.End, Label: labels[len(out)%3]})
+		}
+	}
+	return out
 }
 
 // BenchmarkEstimateStore measures re-estimating raw captures for averaging
