@@ -468,10 +468,15 @@ func (g *Gateway) deviceQuality(d *device) (*pb.DeviceQuality, error) {
 	if open && !seenOpen && d.sessionMS < nowMS {
 		on = append(on, span{d.sessionMS, nowMS}) // the open session started before the sessions read
 	}
-	up := func(window time.Duration) float64 {
-		share, _ := uptimeShare(on, d.desc.FirstSeenMS, nowMS, window)
-		return share
+	up := func(window time.Duration) (float64, float64) {
+		share, covered := uptimeShare(on, d.desc.FirstSeenMS, nowMS, window)
+		if !covered {
+			return 0, 0
+		}
+		return share, float64(uptimeWindowMS(d.desc.FirstSeenMS, nowMS, window)) / 1000
 	}
-	q.Uptime_1H, q.Uptime_24H, q.Uptime_7D = up(time.Hour), up(24*time.Hour), up(week)
+	q.Uptime_1H, q.Uptime_1HWindowS = up(time.Hour)
+	q.Uptime_24H, q.Uptime_24HWindowS = up(24 * time.Hour)
+	q.Uptime_7D, q.Uptime_7DWindowS = up(week)
 	return q, nil
 }

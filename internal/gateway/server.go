@@ -549,7 +549,7 @@ func episodeProto(e *store.Episode) *pb.Episode {
 	out := &pb.Episode{
 		EpisodeId: e.ID, DeviceId: e.Device, Condition: e.Condition, Priority: priorityFromString(e.Priority),
 		OnsetUnixMs: e.OnsetMS, AnnouncedUnixMs: e.AnnouncedMS, EscalatedUnixMs: e.EscalatedMS, EndedUnixMs: e.EndedMS,
-		DeficitPctS: e.DeficitPctS, AcknowledgedBy: e.AckedBy, AcknowledgedUnixMs: e.AckedMS, Active: e.Active, Profile: e.Profile,
+		AreaBelowLimitPctS: e.DeficitPctS, AcknowledgedBy: e.AckedBy, AcknowledgedUnixMs: e.AckedMS, Active: e.Active, Profile: e.Profile,
 	}
 	if e.MinSpO2 >= 0 {
 		v := e.MinSpO2

@@ -18,14 +18,11 @@ type span struct{ StartMS, EndMS int64 }
 // false while that part is empty (the device was first seen at nowMS or
 // later); the share is then 0 and means nothing.
 func uptimeShare(on []span, firstSeenMS, nowMS int64, window time.Duration) (share float64, covered bool) {
-	from := nowMS - window.Milliseconds()
-	if firstSeenMS > from {
-		from = firstSeenMS
-	}
-	den := nowMS - from
+	den := uptimeWindowMS(firstSeenMS, nowMS, window)
 	if den <= 0 {
 		return 0, false
 	}
+	from := nowMS - den
 	var up int64
 	for _, s := range on {
 		if start, end := max(s.StartMS, from), min(s.EndMS, nowMS); end > start {
@@ -33,4 +30,16 @@ func uptimeShare(on []span, firstSeenMS, nowMS int64, window time.Duration) (sha
 		}
 	}
 	return math.Max(0, math.Min(1, float64(up)/float64(den))), true
+}
+
+// uptimeWindowMS is the denominator of uptimeShare: the part of the window
+// ending at nowMS since the device was first seen, in milliseconds (0 or
+// less = none yet). The API reports it (DeviceQuality.uptime_*_window_s) so
+// that a view can show "-" rather than a share that means nothing.
+func uptimeWindowMS(firstSeenMS, nowMS int64, window time.Duration) int64 {
+	from := nowMS - window.Milliseconds()
+	if firstSeenMS > from {
+		from = firstSeenMS
+	}
+	return nowMS - from
 }

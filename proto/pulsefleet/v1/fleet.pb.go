@@ -1139,8 +1139,6 @@ type Episode struct {
 	EndedUnixMs int64 `protobuf:"varint,8,opt,name=ended_unix_ms,json=endedUnixMs,proto3" json:"ended_unix_ms,omitempty"`
 	// Lowest SpO2 from onset to end (or to now) in percent; absent when none was valid.
 	MinSpo2Pct *float64 `protobuf:"fixed64,9,opt,name=min_spo2_pct,json=minSpo2Pct,proto3,oneof" json:"min_spo2_pct,omitempty"`
-	// Oxygen deficit: integral of (limit - SpO2) while below the limit, in percent-seconds.
-	DeficitPctS float64 `protobuf:"fixed64,10,opt,name=deficit_pct_s,json=deficitPctS,proto3" json:"deficit_pct_s,omitempty"`
 	// Who acknowledged it (empty = not acknowledged).
 	AcknowledgedBy string `protobuf:"bytes,11,opt,name=acknowledged_by,json=acknowledgedBy,proto3" json:"acknowledged_by,omitempty"`
 	// When it was acknowledged (0 = not).
@@ -1148,9 +1146,13 @@ type Episode struct {
 	// True while the episode is announced and not ended (or latched and not acknowledged).
 	Active bool `protobuf:"varint,13,opt,name=active,proto3" json:"active,omitempty"`
 	// Profile name in force at onset.
-	Profile       string `protobuf:"bytes,14,opt,name=profile,proto3" json:"profile,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	Profile string `protobuf:"bytes,14,opt,name=profile,proto3" json:"profile,omitempty"`
+	// Area below the limit, in percent-seconds: the integral of (limit - SpO2) while SpO2 is
+	// below the limit (spo2_low) or below the frozen baseline minus the drop (desaturation);
+	// 0 for other conditions. A plain integral of the "desaturation area" family of measures.
+	AreaBelowLimitPctS float64 `protobuf:"fixed64,15,opt,name=area_below_limit_pct_s,json=areaBelowLimitPctS,proto3" json:"area_below_limit_pct_s,omitempty"`
+	unknownFields      protoimpl.UnknownFields
+	sizeCache          protoimpl.SizeCache
 }
 
 func (x *Episode) Reset() {
@@ -1246,13 +1248,6 @@ func (x *Episode) GetMinSpo2Pct() float64 {
 	return 0
 }
 
-func (x *Episode) GetDeficitPctS() float64 {
-	if x != nil {
-		return x.DeficitPctS
-	}
-	return 0
-}
-
 func (x *Episode) GetAcknowledgedBy() string {
 	if x != nil {
 		return x.AcknowledgedBy
@@ -1279,6 +1274,13 @@ func (x *Episode) GetProfile() string {
 		return x.Profile
 	}
 	return ""
+}
+
+func (x *Episode) GetAreaBelowLimitPctS() float64 {
+	if x != nil {
+		return x.AreaBelowLimitPctS
+	}
+	return 0
 }
 
 // EpisodeEvent is one transition of an episode.
@@ -2122,8 +2124,15 @@ type DeviceQuality struct {
 	ChunksAccepted uint64 `protobuf:"varint,18,opt,name=chunks_accepted,json=chunksAccepted,proto3" json:"chunks_accepted,omitempty"`
 	// Data messages rejected.
 	ChunksRejected uint64 `protobuf:"varint,19,opt,name=chunks_rejected,json=chunksRejected,proto3" json:"chunks_rejected,omitempty"`
-	unknownFields  protoimpl.UnknownFields
-	sizeCache      protoimpl.SizeCache
+	// Length of the part of the last hour that uptime_1h covers (since the device was first
+	// seen), in seconds; 0 = none yet, and uptime_1h means nothing (show "-").
+	Uptime_1HWindowS float64 `protobuf:"fixed64,20,opt,name=uptime_1h_window_s,json=uptime1hWindowS,proto3" json:"uptime_1h_window_s,omitempty"`
+	// The same for uptime_24h.
+	Uptime_24HWindowS float64 `protobuf:"fixed64,21,opt,name=uptime_24h_window_s,json=uptime24hWindowS,proto3" json:"uptime_24h_window_s,omitempty"`
+	// The same for uptime_7d.
+	Uptime_7DWindowS float64 `protobuf:"fixed64,22,opt,name=uptime_7d_window_s,json=uptime7dWindowS,proto3" json:"uptime_7d_window_s,omitempty"`
+	unknownFields    protoimpl.UnknownFields
+	sizeCache        protoimpl.SizeCache
 }
 
 func (x *DeviceQuality) Reset() {
@@ -2285,6 +2294,27 @@ func (x *DeviceQuality) GetChunksAccepted() uint64 {
 func (x *DeviceQuality) GetChunksRejected() uint64 {
 	if x != nil {
 		return x.ChunksRejected
+	}
+	return 0
+}
+
+func (x *DeviceQuality) GetUptime_1HWindowS() float64 {
+	if x != nil {
+		return x.Uptime_1HWindowS
+	}
+	return 0
+}
+
+func (x *DeviceQuality) GetUptime_24HWindowS() float64 {
+	if x != nil {
+		return x.Uptime_24HWindowS
+	}
+	return 0
+}
+
+func (x *DeviceQuality) GetUptime_7DWindowS() float64 {
+	if x != nil {
+		return x.Uptime_7DWindowS
 	}
 	return 0
 }
@@ -3020,7 +3050,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"trendPoint\x12B\n" +
 	"\rdevice_change\x18\x02 \x01(\v2\x1b.pulsefleet.v1.DeviceChangeH\x00R\fdeviceChange\x12B\n" +
 	"\repisode_event\x18\x03 \x01(\v2\x1b.pulsefleet.v1.EpisodeEventH\x00R\fepisodeEventB\a\n" +
-	"\x05event\"\xa1\x04\n" +
+	"\x05event\"\xc6\x04\n" +
 	"\aEpisode\x12\x1d\n" +
 	"\n" +
 	"episode_id\x18\x01 \x01(\x04R\tepisodeId\x12\x1b\n" +
@@ -3032,14 +3062,14 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x11escalated_unix_ms\x18\a \x01(\x03R\x0fescalatedUnixMs\x12\"\n" +
 	"\rended_unix_ms\x18\b \x01(\x03R\vendedUnixMs\x12%\n" +
 	"\fmin_spo2_pct\x18\t \x01(\x01H\x00R\n" +
-	"minSpo2Pct\x88\x01\x01\x12\"\n" +
-	"\rdeficit_pct_s\x18\n" +
-	" \x01(\x01R\vdeficitPctS\x12'\n" +
+	"minSpo2Pct\x88\x01\x01\x12'\n" +
 	"\x0facknowledged_by\x18\v \x01(\tR\x0eacknowledgedBy\x120\n" +
 	"\x14acknowledged_unix_ms\x18\f \x01(\x03R\x12acknowledgedUnixMs\x12\x16\n" +
 	"\x06active\x18\r \x01(\bR\x06active\x12\x18\n" +
-	"\aprofile\x18\x0e \x01(\tR\aprofileB\x0f\n" +
-	"\r_min_spo2_pct\"v\n" +
+	"\aprofile\x18\x0e \x01(\tR\aprofile\x122\n" +
+	"\x16area_below_limit_pct_s\x18\x0f \x01(\x01R\x12areaBelowLimitPctSB\x0f\n" +
+	"\r_min_spo2_pctJ\x04\b\n" +
+	"\x10\vR\rdeficit_pct_s\"v\n" +
 	"\fEpisodeEvent\x12\x1e\n" +
 	"\n" +
 	"transition\x18\x01 \x01(\tR\n" +
@@ -3092,7 +3122,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x05count\x18\x01 \x01(\x04R\x05count\x12\x10\n" +
 	"\x03p10\x18\x02 \x01(\x01R\x03p10\x12\x10\n" +
 	"\x03p50\x18\x03 \x01(\x01R\x03p50\x12\x10\n" +
-	"\x03p90\x18\x04 \x01(\x01R\x03p90\"\x98\x06\n" +
+	"\x03p90\x18\x04 \x01(\x01R\x03p90\"\xa1\a\n" +
 	"\rDeviceQuality\x12\x1b\n" +
 	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12\x1a\n" +
 	"\bsessions\x18\x02 \x01(\x04R\bsessions\x12\x1b\n" +
@@ -3121,7 +3151,10 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\vbattery_pct\x18\x11 \x01(\x01R\n" +
 	"batteryPct\x12'\n" +
 	"\x0fchunks_accepted\x18\x12 \x01(\x04R\x0echunksAccepted\x12'\n" +
-	"\x0fchunks_rejected\x18\x13 \x01(\x04R\x0echunksRejectedB\x12\n" +
+	"\x0fchunks_rejected\x18\x13 \x01(\x04R\x0echunksRejected\x12+\n" +
+	"\x12uptime_1h_window_s\x18\x14 \x01(\x01R\x0fuptime1hWindowS\x12-\n" +
+	"\x13uptime_24h_window_s\x18\x15 \x01(\x01R\x10uptime24hWindowS\x12+\n" +
+	"\x12uptime_7d_window_s\x18\x16 \x01(\x01R\x0fuptime7dWindowSB\x12\n" +
 	"\x10_clock_drift_ppmB\x1b\n" +
 	"\x19_effective_sample_rate_hz\"6\n" +
 	"\x17GetDeviceQualityRequest\x12\x1b\n" +
