@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/attention"
 	"github.com/pulsefleet/pulsefleet/internal/participants"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -127,7 +128,7 @@ func writeDevicesTable(w io.Writer, devs []*pb.Device, holders map[string]string
 		switch {
 		case l == nil:
 			l = &pb.TrendPoint{}
-		case valueStale(l, now, stale):
+		case valueStale(d, now, stale):
 			// Never show an old value as current: "-" and its age.
 			age = "stale, " + now.Sub(time.UnixMilli(l.GetTimeUnixMs())).Round(time.Second).String() + " old"
 			l = &pb.TrendPoint{}
@@ -167,10 +168,11 @@ func conditionLabels(cs []string) string {
 	return strings.Join(out, ", ")
 }
 
-// valueStale reports whether a device's latest point is older than stale
-// (or has no time): it must not be shown as current.
-func valueStale(l *pb.TrendPoint, now time.Time, stale time.Duration) bool {
-	return l.GetTimeUnixMs() <= 0 || now.Sub(time.UnixMilli(l.GetTimeUnixMs())) > stale
+// valueStale reports whether a device's latest point must not be shown as
+// current (attention.Stale: offline, no value, or older than stale), the
+// rule the web page follows too.
+func valueStale(d *pb.Device, now time.Time, stale time.Duration) bool {
+	return attention.Stale(d, now, stale)
 }
 
 // announcedSince returns, per device, when its earliest open alarm episode
@@ -189,49 +191,13 @@ func announcedSince(ctx context.Context, cf *clientFlags, addrs []string) (map[s
 		if err != nil {
 			return nil, fmt.Errorf("gateway %s: %w", a, err)
 		}
-		for _, e := range resp.GetEpisodes() {
-			if t := e.GetAnnouncedUnixMs(); t > 0 && (out[e.GetDeviceId()] == 0 || t < out[e.GetDeviceId()]) {
-				out[e.GetDeviceId()] = t
-			}
-		}
+		attention.Announced(resp.GetEpisodes(), out)
 	}
 	return out, nil
 }
 
-// attentionGroup ranks what a device needs: 0 an alarm, 1 a technical
-// problem (offline, never seen, or values stale), 2 nothing.
-func attentionGroup(d *pb.Device, now time.Time, stale time.Duration) int {
-	switch {
-	case d.GetAlarmPriority() != pb.Priority_PRIORITY_UNSPECIFIED || len(d.GetActiveConditions()) > 0:
-		return 0
-	case !d.GetConnected() || d.GetLatest() == nil || valueStale(d.GetLatest(), now, stale):
-		return 1
-	}
-	return 2
-}
-
-// orderByAttention sorts devices by what needs attention: devices with an
-// alarm first (high, medium, low; then the longest announced first), then
-// technical problems, then the rest; ties by id.
+// orderByAttention sorts devices by what needs attention (internal/attention,
+// the order of the web page's overview too).
 func orderByAttention(devs []*pb.Device, announced map[string]int64, now time.Time, stale time.Duration) {
-	sort.SliceStable(devs, func(i, j int) bool {
-		a, b := devs[i], devs[j]
-		ga, gb := attentionGroup(a, now, stale), attentionGroup(b, now, stale)
-		if ga != gb {
-			return ga < gb
-		}
-		if ga == 0 {
-			if a.GetAlarmPriority() != b.GetAlarmPriority() {
-				return a.GetAlarmPriority() > b.GetAlarmPriority()
-			}
-			ta, tb := announced[a.GetDeviceId()], announced[b.GetDeviceId()]
-			if ta != tb && ta > 0 && tb > 0 {
-				return ta < tb
-			}
-			if (ta > 0) != (tb > 0) {
-				return ta > 0
-			}
-		}
-		return a.GetDeviceId() < b.GetDeviceId()
-	})
+	attention.Order(devs, announced, now, stale)
 }

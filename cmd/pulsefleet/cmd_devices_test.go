@@ -49,7 +49,7 @@ func TestDevicesOrderByAttention(t *testing.T) {
 func TestDevicesTableStaleAndLabels(t *testing.T) {
 	now := time.UnixMilli(1_800_000_000_000)
 	devs := []*pb.Device{
-		{DeviceId: "old-1", Latest: &pb.TrendPoint{TimeUnixMs: now.UnixMilli() - 14_000, Spo2Pct: f64(98.2)}, LastSeenUnixMs: now.UnixMilli() - 14_000},
+		{DeviceId: "old-1", Connected: true, Latest: &pb.TrendPoint{TimeUnixMs: now.UnixMilli() - 14_000, Spo2Pct: f64(98.2)}, LastSeenUnixMs: now.UnixMilli() - 14_000},
 		{DeviceId: "new-1", Connected: true, Latest: &pb.TrendPoint{TimeUnixMs: now.UnixMilli() - 2_000, Spo2Pct: f64(87.4)},
 			AlarmPriority: pb.Priority_PRIORITY_HIGH, ActiveConditions: []string{"spo2_low", "device_clock_fault", "my_rule"}},
 	}
@@ -74,6 +74,16 @@ func TestDevicesTableStaleAndLabels(t *testing.T) {
 	}
 	if !strings.Contains(b.String(), "98.2") {
 		t.Errorf("--stale 1m: value hidden:\n%s", b.String())
+	}
+	// An offline device's value is never current, however young
+	// (attention.Stale, the web page's rule too).
+	b.Reset()
+	off := []*pb.Device{{DeviceId: "gone-1", Latest: &pb.TrendPoint{TimeUnixMs: now.UnixMilli() - 2_000, Spo2Pct: f64(96.1)}}}
+	if err := writeDevicesTable(&b, off, nil, now, time.Minute); err != nil {
+		t.Fatal(err)
+	}
+	if strings.Contains(b.String(), "96.1") || !strings.Contains(b.String(), "stale, 2s old") {
+		t.Errorf("offline device's value shown as current:\n%s", b.String())
 	}
 }
 
