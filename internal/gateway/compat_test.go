@@ -35,13 +35,6 @@ const maxDeviceStreams = auth.MaxDeviceStreams
 
 const sessionCookie = web.SessionCookie
 
-type (
-	webDevice  = web.DeviceJSON
-	webQuality = web.QualityJSON
-	webBucket  = web.BucketJSON
-	webEpisode = web.EpisodeJSON
-)
-
 func (g *Gateway) webCSRFToken(r *http.Request) string { return g.web.CSRFToken(r) }
 
 func (g *Gateway) sessionFrom(r *http.Request) (struct{}, error) {

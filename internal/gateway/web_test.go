@@ -23,6 +23,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/web"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
@@ -193,7 +194,7 @@ func webFleet(t *testing.T, h *harness, clk *shiftClock) map[string]*testDevice 
 }
 
 // waitGone waits (bounded) until the gateway has closed the device's stream.
-func waitGone(t *testing.T, h *harness, id string) {
+func waitGone(t testing.TB, h *harness, id string) {
 	t.Helper()
 	deadline := time.Now().Add(10 * time.Second)
 	for {
@@ -255,54 +256,65 @@ func TestWebJSON(t *testing.T) {
 	webFleet(t, h, clk)
 	base := "http://" + h.httpAddr
 
-	var fleet struct {
-		Devices []webDevice `json:"devices"`
-		Caution string      `json:"caution"`
-	}
+	var fleet web.FleetJSON
 	if c := webGet(t, base+"/api/fleet", &fleet); c != 200 {
 		t.Fatalf("fleet: %d", c)
 	}
-	byID := map[string]webDevice{}
+	byID := map[string]web.FleetEntryJSON{}
 	for _, d := range fleet.Devices {
-		byID[d.ID] = d
+		byID[d.Device.M.GetDeviceId()] = d
 	}
 	if len(byID) != 6 {
 		t.Fatalf("fleet lists %d devices, want 6", len(byID))
 	}
-	if d := byID["larkspur-bed-01"]; d.Priority != "high" || len(d.Active) == 0 || len(d.Spark) < 25 {
-		t.Errorf("larkspur-bed-01: priority %q, %d active episodes, %d spark points; want high, >0, ~30", d.Priority, len(d.Active), len(d.Spark))
+	pr := func(id string) pb.Priority { return byID[id].Device.M.GetAlarmPriority() }
+	if d := byID["larkspur-bed-01"]; pr("larkspur-bed-01") != pb.Priority_PRIORITY_HIGH || len(d.Active) == 0 || d.Spark == nil || len(d.Spark.SpO2) < 25 {
+		t.Errorf("larkspur-bed-01: priority %v, %d active episodes, spark %+v; want high, >0, ~30 points", pr("larkspur-bed-01"), len(d.Active), d.Spark)
 	}
-	if d := byID["larkspur-bed-03"]; d.Priority != "medium" {
-		t.Errorf("larkspur-bed-03 priority %q, want medium (SpO2 88 %% < 90 %%)", d.Priority)
+	if d := byID["larkspur-bed-01"]; len(d.SpO2Limits) != 1 || d.SpO2Limits[0].Limit != 90 || d.SpO2Limits[0].ClearAt != 92 {
+		t.Errorf("larkspur-bed-01 SpO2 limits %+v, want the profile's 90 %% clearing at 92 %%", d.SpO2Limits)
 	}
-	if d := byID["larkspur-bed-04"]; d.Priority != "low" {
-		t.Errorf("larkspur-bed-04 priority %q, want low (pulse 140 > 130)", d.Priority)
+	if p := pr("larkspur-bed-03"); p != pb.Priority_PRIORITY_MEDIUM {
+		t.Errorf("larkspur-bed-03 priority %v, want medium (SpO2 88 %% < 90 %%)", p)
 	}
-	if d := byID["home-fern-07"]; d.Connected || d.Priority != "" {
-		t.Errorf("home-fern-07: connected %v priority %q, want offline without alarm", d.Connected, d.Priority)
+	if p := pr("larkspur-bed-04"); p != pb.Priority_PRIORITY_LOW {
+		t.Errorf("larkspur-bed-04 priority %v, want low (pulse 140 > 130)", p)
+	}
+	if d := byID["home-fern-07"].Device.M; d.GetConnected() || d.GetAlarmPriority() != pb.Priority_PRIORITY_UNSPECIFIED {
+		t.Errorf("home-fern-07: connected %v priority %v, want offline without alarm", d.GetConnected(), d.GetAlarmPriority())
+	}
+	if q := byID["larkspur-bed-02"].Quality.M; q.GetUptime_1H() != 1 || q.GetUptime_1HWindowS() <= 0 {
+		t.Errorf("larkspur-bed-02 uptime 1 h %v over %v s, want 1 over the time since first seen", q.GetUptime_1H(), q.GetUptime_1HWindowS())
 	}
 	if fleet.Caution != caution.Text { // docs/contracts.md, "The caution on every output"
 		t.Errorf("caution %q, want the project's caution text", fleet.Caution)
 	}
+	if fleet.Labels["spo2_low"] != "SpO2 low" || fleet.Labels["pulse_high"] != alarms.Label("pulse_high") {
+		t.Errorf("condition labels %v, want alarms.Label's", fleet.Labels)
+	}
+	// protojson with the .proto names: 64-bit integers as strings.
+	var rawFleet map[string]any
+	webGet(t, base+"/api/fleet?spark=0", &rawFleet)
+	d0 := rawFleet["devices"].([]any)[0].(map[string]any)
+	if dev := d0["device"].(map[string]any); dev["device_id"] == nil || fmt.Sprintf("%T", dev["last_seen_unix_ms"]) != "string" || d0["spark"] != nil {
+		t.Errorf("device JSON %v (spark %v): want .proto names, int64 as strings, no spark with spark=0", dev, d0["spark"])
+	}
 
-	var dev struct {
-		Quality  webQuality   `json:"quality"`
-		Episodes []webEpisode `json:"episodes"`
-	}
+	var dev web.DeviceJSON
 	webGet(t, base+"/api/device/larkspur-bed-01", &dev)
-	if dev.Quality.Sessions != 1 || dev.Quality.ChunksAccepted != 1800 || math.Abs(dev.Quality.ValidSpO2Share-1) > 1e-9 {
-		t.Errorf("quality %+v, want 1 session, 1800 accepted, all valid", dev.Quality)
+	if q := dev.Quality.M; q.GetSessions() != 1 || q.GetChunksAccepted() != 1800 || math.Abs(q.GetValidSpo2Share()-1) > 1e-9 {
+		t.Errorf("quality %v, want 1 session, 1800 accepted, all valid", q)
 	}
-	if len(dev.Episodes) == 0 || dev.Episodes[0].Condition != "spo2_low" {
-		t.Fatalf("episodes %+v", dev.Episodes)
+	if len(dev.Episodes) == 0 || dev.Episodes[0].M.GetCondition() != "spo2_low" || dev.Episodes[0].M.GetAreaBelowLimitPctS() <= 0 {
+		t.Fatalf("episodes %v, want spo2_low with an area below the limit", dev.Episodes)
 	}
-	var trend struct {
-		StepS   int64       `json:"step_s"`
-		Buckets []webBucket `json:"buckets"`
+	if dev.Profile == nil || dev.Profile.Name != "web-test-fast" || len(dev.Profile.Limits) != 2 {
+		t.Errorf("profile %+v, want web-test-fast with its SpO2 and pulse limits", dev.Profile)
 	}
+	var trend web.TrendJSON
 	webGet(t, base+"/api/device/larkspur-bed-01/trend?minutes=30&step_s=60", &trend)
-	if trend.StepS != 60 || len(trend.Buckets) < 29 {
-		t.Errorf("trend: step %d, %d buckets; want 60 s and 30", trend.StepS, len(trend.Buckets))
+	if trend.StepS != 60 || len(trend.Trend.M.GetBuckets()) < 29 {
+		t.Errorf("trend: step %d, %d buckets; want 60 s and 30", trend.StepS, len(trend.Trend.M.GetBuckets()))
 	}
 	var raw struct {
 		Captured bool     `json:"captured"`
@@ -341,7 +353,7 @@ func TestWebJSON(t *testing.T) {
 		t.Errorf("ack with an unknown field: %d %s, want 400 naming it", code, body)
 	}
 	code, body := webPost(t, ack, "application/json", "http://"+h.httpAddr, `{"note":"seen at the bedside"}`)
-	if code != 200 || !strings.Contains(body, `"acked_by":"web@127.0.0.1"`) {
+	if code != 200 || !strings.Contains(body, `"acknowledged_by":"web@127.0.0.1"`) {
 		t.Fatalf("ack: %d %s", code, body)
 	}
 	if code, body := webPost(t, ack, "application/json", "", `{}`); code != 409 {
@@ -381,8 +393,8 @@ func TestWebEventsStreamPointsAndEndWithTheGateway(t *testing.T) {
 		}
 		if v, ok := strings.CutPrefix(line, "data: "); ok && event == "point" {
 			var p struct {
-				Device string   `json:"device"`
-				SpO2   *float64 `json:"spo2"`
+				Device string   `json:"device_id"`
+				SpO2   *float64 `json:"spo2_pct"`
 			}
 			if err := json.Unmarshal([]byte(v), &p); err != nil {
 				t.Fatal(err)
@@ -502,16 +514,16 @@ func TestWebPageInChromium(t *testing.T) {
 	if c := text("#caution"); !strings.Contains(c, caution.Text) {
 		t.Errorf("caution banner %q", c)
 	}
-	if n := eval(`document.querySelectorAll('#fleet tbody tr').length + ''`); n != "6" {
+	if n := eval(`document.querySelectorAll('#fleet tbody tr.row').length + ''`); n != "6" {
 		t.Errorf("%s device rows, want 6", n)
 	}
-	if b := text(row("larkspur-bed-01") + " .badge"); !strings.Contains(b, "HIGH") {
+	if b := text(row("larkspur-bed-01") + " .badge"); !strings.HasPrefix(b, "HIGH") {
 		t.Errorf("larkspur-bed-01 alarm badge %q, want the word HIGH", b)
 	}
 	// Each priority has its own shape beside its word: high a triangle (3
 	// points), medium a diamond (4 points), low a square (rect).
-	shapes := eval(`[...document.querySelectorAll('#fleet tbody .badge')].map(b => b.textContent.trim().split(' ')[0] + ':' +
-		[...b.querySelectorAll('svg > *')].map(e => e.tagName + (e.getAttribute('points') ? e.getAttribute('points').split(' ').length : '')).join()).join(' ')`)
+	shapes := eval(`[...document.querySelectorAll('#fleet tbody .badge[data-priority]')].map(b => b.querySelector('b').textContent + ':' +
+		[b.querySelector('svg > *')].map(e => e.tagName + (e.getAttribute('points') ? e.getAttribute('points').split(' ').length : '')).join()).join(' ')`)
 	for _, want := range []string{"HIGH:polygon3", "MEDIUM:polygon4", "LOW:rect"} {
 		if !strings.Contains(shapes, want) {
 			t.Errorf("badges %q lack %s", shapes, want)
@@ -550,7 +562,7 @@ func TestWebPageInChromium(t *testing.T) {
 
 	// Device pages: the alarmed patient (trend, quality, episodes), and the raw prototype's waveform.
 	do("device page", chromedp.Navigate(base+"/device/larkspur-bed-01"), chromedp.WaitVisible(`#trend svg.chart path.line`), chromedp.WaitVisible(`#episodes`))
-	if q, e := text(`#quality`), text(`#episodes`); !strings.Contains(q, "100.0 %") || !strings.Contains(e, "spo2_low") || !strings.Contains(e, "web@127.0.0.1") {
+	if q, e := text(`#quality`), text(`#episodes`); !strings.Contains(q, "100.0 %") || !strings.Contains(e, "SpO2 low") || !strings.Contains(e, "web@127.0.0.1") {
 		t.Errorf("device page: quality %q; episodes %q", q, e)
 	}
 	shoot("device-page.png")

@@ -13,10 +13,14 @@ import (
 	"strings"
 	"time"
 
+	"google.golang.org/protobuf/proto"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/attention"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
 	"github.com/pulsefleet/pulsefleet/internal/ids"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // Bounds of the page's queries.
@@ -98,7 +102,33 @@ func (s *Server) trendEnd(d *pb.Device) int64 {
 	return s.fleet.NowMS()
 }
 
-func (s *Server) webFleet(ctx context.Context, _ http.ResponseWriter, _ *http.Request) (any, error) {
+// fleetEntry is one device of /api/fleet.
+type fleetEntry struct {
+	Device  Proto[*pb.Device]        `json:"device"`
+	Quality Proto[*pb.DeviceQuality] `json:"quality"`
+	Active  []Proto[*pb.Episode]     `json:"active_episodes"`
+	Spark   *Spark                   `json:"spark,omitempty"`
+	// SpO2Limits are the SpO2 thresholds of the device's profile (for the
+	// sparkline), with the spark only.
+	SpO2Limits []Limit `json:"spo2_limits,omitempty"`
+}
+
+// FleetJSON is the answer of /api/fleet.
+type FleetJSON struct {
+	NowMS   int64             `json:"now_ms"`
+	Caution string            `json:"caution"`
+	StaleMS int64             `json:"stale_ms"` // a value older than this is not current (attention.Stale)
+	Labels  map[string]string `json:"labels"`   // condition -> readable label
+	Devices []fleetEntry      `json:"devices"`
+}
+
+// FleetEntryJSON is one device of FleetJSON (for Go clients: the tests).
+type FleetEntryJSON = fleetEntry
+
+// webFleet answers /api/fleet: every device with its uptime, active
+// episodes and (unless ?spark=0) a 30-minute SpO2 sparkline with its
+// profile's SpO2 limits. The page orders and filters it itself.
+func (s *Server) webFleet(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
 	devs, err := s.fleet.ListDevices(ctx, &pb.ListDevicesRequest{})
 	if err != nil {
 		return nil, err
@@ -115,36 +145,92 @@ func (s *Server) webFleet(ctx context.Context, _ http.ResponseWriter, _ *http.Re
 	if err != nil {
 		return nil, err
 	}
-	active := map[string][]webEpisode{}
+	active := map[string][]Proto[*pb.Episode]{}
 	for _, e := range eps.GetEpisodes() {
-		active[e.GetDeviceId()] = append(active[e.GetDeviceId()], webEpisodeOf(e))
+		active[e.GetDeviceId()] = append(active[e.GetDeviceId()], P(e))
 	}
-	out := struct {
-		NowMS   int64       `json:"now_ms"`
-		Caution string      `json:"caution"`
-		Devices []webDevice `json:"devices"`
-	}{NowMS: s.fleet.NowMS(), Caution: webCaution, Devices: []webDevice{}}
+	out := FleetJSON{NowMS: s.fleet.NowMS(), Caution: webCaution, StaleMS: attention.DefaultStale.Milliseconds(),
+		Labels: conditionLabels(devs.GetDevices(), eps.GetEpisodes()), Devices: make([]fleetEntry, 0, len(devs.GetDevices()))}
+	sparks := r.URL.Query().Get("spark") != "0"
+	profiles := profileCache{}
 	for _, d := range devs.GetDevices() {
-		wd := webDeviceOf(d)
-		if q := up[d.GetDeviceId()]; q != nil {
-			wd.Uptime1h, wd.Uptime24h = q.GetUptime_1H(), q.GetUptime_24H()
+		e := fleetEntry{Device: P(d), Quality: P(up[d.GetDeviceId()]), Active: active[d.GetDeviceId()]}
+		if e.Active == nil {
+			e.Active = []Proto[*pb.Episode]{}
 		}
-		if a := active[d.GetDeviceId()]; a != nil {
-			wd.Active = a
-		}
-		if d.GetLatest() != nil {
-			to := s.trendEnd(d)
-			tr, err := s.fleet.QueryTrend(ctx, &pb.QueryTrendRequest{DeviceId: d.GetDeviceId(), FromUnixMs: to - sparkMinutes*60_000, ToUnixMs: to, StepMs: sparkStepMS})
+		if sparks {
+			if e.Spark, err = s.spark(ctx, d); err != nil {
+				return nil, err
+			}
+			prof, err := profiles.of(ctx, s.fleet, d.GetDeviceId())
 			if err != nil {
 				return nil, err
 			}
-			for _, b := range tr.GetBuckets() {
-				wd.Spark = append(wd.Spark, webSpark{TimeMS: b.GetStartUnixMs(), SpO2: statMean(b.GetSpo2Pct())})
+			for _, l := range prof.Limits {
+				if l.Quantity == "spo2" {
+					e.SpO2Limits = append(e.SpO2Limits, l)
+				}
 			}
 		}
-		out.Devices = append(out.Devices, wd)
+		out.Devices = append(out.Devices, e)
 	}
 	return out, nil
+}
+
+// spark is the device's SpO2 sparkline (nil before its first value).
+func (s *Server) spark(ctx context.Context, d *pb.Device) (*Spark, error) {
+	if d.GetLatest() == nil {
+		return nil, nil
+	}
+	to := s.trendEnd(d)
+	from := to - sparkMinutes*60_000
+	from -= from % sparkStepMS
+	tr, err := s.fleet.QueryTrend(ctx, &pb.QueryTrendRequest{DeviceId: d.GetDeviceId(), FromUnixMs: from, ToUnixMs: to, StepMs: sparkStepMS})
+	if err != nil {
+		return nil, err
+	}
+	sp := &Spark{StartMS: from, StepMS: sparkStepMS, SpO2: make([]*float64, (to-from+sparkStepMS-1)/sparkStepMS)}
+	for _, b := range tr.GetBuckets() {
+		if i := (b.GetStartUnixMs() - from) / sparkStepMS; i >= 0 && i < int64(len(sp.SpO2)) && b.GetSpo2Pct().GetCount() > 0 {
+			v := b.GetSpo2Pct().GetMean()
+			sp.SpO2[i] = &v
+		}
+	}
+	return sp, nil
+}
+
+// profileCache parses each distinct profile text once per answer (a fleet
+// mostly shares a few profiles).
+type profileCache map[string]*Profile
+
+func (c profileCache) of(ctx context.Context, f Fleet, device string) (*Profile, error) {
+	resp, err := f.GetAlarmProfile(ctx, &pb.GetAlarmProfileRequest{DeviceId: device})
+	if err != nil {
+		return nil, err
+	}
+	key := resp.GetOrigin() + "\x00" + resp.GetProfileYaml()
+	if p, ok := c[key]; ok {
+		return p, nil
+	}
+	ap, err := alarms.ParseProfile([]byte(resp.GetProfileYaml()))
+	if err != nil {
+		return nil, &Error{Status: http.StatusInternalServerError, Message: fmt.Sprintf("alarm profile of %s: %v", device, err)}
+	}
+	p := &Profile{Name: resp.GetName(), Origin: resp.GetOrigin(), Limits: limitsOf(ap)}
+	c[key] = p
+	return p, nil
+}
+
+// DeviceJSON is the answer of /api/device/{id}.
+type DeviceJSON struct {
+	NowMS    int64                    `json:"now_ms"`
+	Caution  string                   `json:"caution"`
+	StaleMS  int64                    `json:"stale_ms"`
+	Labels   map[string]string        `json:"labels"`
+	Device   Proto[*pb.Device]        `json:"device"`
+	Quality  Proto[*pb.DeviceQuality] `json:"quality"`
+	Episodes []Proto[*pb.Episode]     `json:"episodes"` // the 20 newest, newest first
+	Profile  *Profile                 `json:"profile"`
 }
 
 func (s *Server) webDevice(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
@@ -161,18 +247,15 @@ func (s *Server) webDevice(ctx context.Context, _ http.ResponseWriter, r *http.R
 	if err != nil {
 		return nil, err
 	}
-	out := struct {
-		NowMS    int64        `json:"now_ms"`
-		Device   webDevice    `json:"device"`
-		Quality  *webQuality  `json:"quality"`
-		Episodes []webEpisode `json:"episodes"`
-	}{NowMS: s.fleet.NowMS(), Device: webDeviceOf(d.GetDevice()), Quality: webQualityOf(q.GetQuality()), Episodes: []webEpisode{}}
+	prof, err := profileCache{}.of(ctx, s.fleet, id)
+	if err != nil {
+		return nil, err
+	}
+	out := DeviceJSON{NowMS: s.fleet.NowMS(), Caution: webCaution, StaleMS: attention.DefaultStale.Milliseconds(),
+		Labels: conditionLabels([]*pb.Device{d.GetDevice()}, eps.GetEpisodes()), Device: P(d.GetDevice()),
+		Quality: P(q.GetQuality()), Episodes: []Proto[*pb.Episode]{}, Profile: prof}
 	for _, e := range eps.GetEpisodes() {
-		we := webEpisodeOf(e)
-		out.Episodes = append(out.Episodes, we)
-		if e.GetActive() {
-			out.Device.Active = append(out.Device.Active, we)
-		}
+		out.Episodes = append(out.Episodes, P(e))
 	}
 	return out, nil
 }
@@ -215,19 +298,16 @@ func (s *Server) webTrend(ctx context.Context, _ http.ResponseWriter, r *http.Re
 	if err != nil {
 		return nil, err
 	}
-	out := struct {
-		FromMS  int64       `json:"from_ms"`
-		ToMS    int64       `json:"to_ms"`
-		StepS   int64       `json:"step_s"`
-		Buckets []webBucket `json:"buckets"`
-	}{FromMS: from, ToMS: to, StepS: step, Buckets: []webBucket{}}
-	for _, b := range tr.GetBuckets() {
-		out.Buckets = append(out.Buckets, webBucket{StartMS: b.GetStartUnixMs(), Points: b.GetPoints(),
-			SpO2: statMean(b.GetSpo2Pct()), SpO2Min: statMin(b.GetSpo2Pct()), SpO2Max: statMax(b.GetSpo2Pct()),
-			Pulse: statMean(b.GetPulseBpm()), PI: statMean(b.GetPiPct()), SQI: statMean(b.GetSqi()), SQIMin: statMin(b.GetSqi()),
-			Coverage: math.Min(1, float64(b.GetPoints())/float64(step))})
-	}
-	return out, nil
+	return TrendJSON{FromMS: from, ToMS: to, StepS: step, Trend: P(tr)}, nil
+}
+
+// TrendJSON is the answer of /api/device/{id}/trend: the buckets of
+// QueryTrend (steps without points left out) over [from_ms, to_ms).
+type TrendJSON struct {
+	FromMS int64                         `json:"from_ms"`
+	ToMS   int64                         `json:"to_ms"`
+	StepS  int64                         `json:"step_s"`
+	Trend  Proto[*pb.QueryTrendResponse] `json:"trend"`
 }
 
 func (s *Server) webRaw(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
@@ -341,13 +421,7 @@ func (s *Server) webAcknowledge(ctx context.Context, _ http.ResponseWriter, r *h
 	if err != nil {
 		return nil, err
 	}
-	out := struct {
-		Acknowledged []webEpisode `json:"acknowledged"`
-	}{Acknowledged: []webEpisode{}}
-	for _, e := range resp.GetEpisodes() {
-		out.Acknowledged = append(out.Acknowledged, webEpisodeOf(e))
-	}
-	return out, nil
+	return P(resp), nil
 }
 
 func (s *Server) webPause(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
@@ -416,7 +490,7 @@ func (s *Server) webEvents(ctx context.Context, w http.ResponseWriter, r *http.R
 			if name == "" {
 				continue
 			}
-			b, err := json.Marshal(data)
+			b, err := pjOut.Marshal(data)
 			if err != nil {
 				continue
 			}
@@ -432,25 +506,17 @@ func (s *Server) webEvents(ctx context.Context, w http.ResponseWriter, r *http.R
 	}
 }
 
-// sseEvent maps a live event to the page's event name and JSON.
-func sseEvent(ev *pb.WatchEventsResponse) (string, any) {
+// sseEvent maps a live event to the page's event name and its message
+// (protojson): point (TrendPoint), device (DeviceChange) or episode
+// (EpisodeEvent).
+func sseEvent(ev *pb.WatchEventsResponse) (string, proto.Message) {
 	switch e := ev.Event.(type) {
 	case *pb.WatchEventsResponse_TrendPoint:
-		return "point", struct {
-			Device string `json:"device"`
-			*webPoint
-		}{e.TrendPoint.GetDeviceId(), webPointOf(e.TrendPoint)}
+		return "point", e.TrendPoint
 	case *pb.WatchEventsResponse_DeviceChange:
-		return "device", struct {
-			Change string    `json:"change"`
-			Device webDevice `json:"device"`
-		}{e.DeviceChange.GetChange(), webDeviceOf(e.DeviceChange.GetDevice())}
+		return "device", e.DeviceChange
 	case *pb.WatchEventsResponse_EpisodeEvent:
-		return "episode", struct {
-			Transition string     `json:"transition"`
-			Actor      string     `json:"actor,omitempty"`
-			Episode    webEpisode `json:"episode"`
-		}{e.EpisodeEvent.GetTransition(), e.EpisodeEvent.GetActor(), webEpisodeOf(e.EpisodeEvent.GetEpisode())}
+		return "episode", e.EpisodeEvent
 	}
 	return "", nil
 }

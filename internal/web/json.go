@@ -1,221 +1,141 @@
 package web
 
 import (
-	"strconv"
 	"strings"
 
-	"github.com/pulsefleet/pulsefleet/estimator"
+	"google.golang.org/protobuf/encoding/protojson"
+	"google.golang.org/protobuf/proto"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
-// The page's JSON: hand-mapped from the API's messages (names and units
-// the page's script reads; absent values are null, never zero).
+// The page's JSON carries the API's own messages through protojson, with
+// the .proto field names (device_id, last_seen_unix_ms, ...): one set of
+// names for the gRPC API, the CLI's --json output and the page. protojson
+// writes 64-bit integers as strings and leaves out fields at their zero
+// value and unset optional values (the page reads an absent value as "no
+// value", never as zero). docs/contracts.md, "The web page's JSON", lists
+// the envelope around them.
 
-// The page's JSON shapes, for Go clients of the page (the gateway's tests).
-type (
-	DeviceJSON  = webDevice
-	QualityJSON = webQuality
-	BucketJSON  = webBucket
-	EpisodeJSON = webEpisode
+// pj writes and reads messages of the page's JSON.
+var (
+	pjOut = protojson.MarshalOptions{UseProtoNames: true}
+	pjIn  = protojson.UnmarshalOptions{DiscardUnknown: true}
 )
 
-type webPoint struct {
-	TimeMS int64    `json:"t_ms"`
-	SpO2   *float64 `json:"spo2"`
-	Pulse  *float64 `json:"pulse"`
-	PI     *float64 `json:"pi"`
-	SQI    *float64 `json:"sqi"`
-	Flags  []string `json:"flags,omitempty"`
-	Source string   `json:"source,omitempty"`
-}
+// Proto is an API message inside the page's JSON, written with protojson.
+type Proto[M proto.Message] struct{ M M }
 
-type webEpisode struct {
-	ID          string   `json:"id"` // a string: 64-bit ids do not fit a JS number
-	Device      string   `json:"device"`
-	Condition   string   `json:"condition"`
-	Priority    string   `json:"priority"`
-	OnsetMS     int64    `json:"onset_ms"`
-	AnnouncedMS int64    `json:"announced_ms,omitempty"`
-	EscalatedMS int64    `json:"escalated_ms,omitempty"`
-	EndedMS     int64    `json:"ended_ms,omitempty"`
-	MinSpO2     *float64 `json:"min_spo2"`
-	AckedBy     string   `json:"acked_by,omitempty"`
-	AckedMS     int64    `json:"acked_ms,omitempty"`
-	Active      bool     `json:"active"`
-}
+// P wraps m for the page's JSON.
+func P[M proto.Message](m M) Proto[M] { return Proto[M]{m} }
 
-type webDevice struct {
-	ID            string            `json:"id"`
-	Model         string            `json:"model,omitempty"`
-	Firmware      string            `json:"firmware,omitempty"`
-	Mode          string            `json:"mode,omitempty"`
-	Labels        map[string]string `json:"labels,omitempty"`
-	Connected     bool              `json:"connected"`
-	LastSeenMS    int64             `json:"last_seen_ms"`
-	SessionMS     int64             `json:"session_start_ms"`
-	Latest        *webPoint         `json:"latest"`
-	Priority      string            `json:"priority"` // "", "low", "medium", "high"
-	Conditions    []string          `json:"conditions"`
-	PausedUntilMS int64             `json:"paused_until_ms,omitempty"`
-	Profile       string            `json:"profile,omitempty"`
-	Calibration   string            `json:"calibration,omitempty"`
-	BatteryPct    *float64          `json:"battery_pct"`
-	Uptime1h      float64           `json:"uptime_1h"`
-	Uptime24h     float64           `json:"uptime_24h"`
-	Active        []webEpisode      `json:"active_episodes"`
-	Spark         []webSpark        `json:"spark,omitempty"`
-}
-
-type webSpark struct {
-	TimeMS int64    `json:"t_ms"`
-	SpO2   *float64 `json:"spo2"`
-}
-
-type webQuality struct {
-	Sessions           uint64   `json:"sessions"`
-	Reconnects         uint64   `json:"reconnects"`
-	Uptime1h           float64  `json:"uptime_1h"`
-	Uptime24h          float64  `json:"uptime_24h"`
-	Uptime7d           float64  `json:"uptime_7d"`
-	ChunksAccepted     uint64   `json:"chunks_accepted"`
-	ChunksLost         uint64   `json:"chunks_lost"`
-	Duplicates         uint64   `json:"duplicates"`
-	LateChunks         uint64   `json:"late_chunks"`
-	ChunksRejected     uint64   `json:"chunks_rejected"`
-	ClockDriftPPM      *float64 `json:"clock_drift_ppm"`          // null until estimated
-	EffectiveRateHz    *float64 `json:"effective_sample_rate_hz"` // null without raw samples
-	ValidSpO2Share     float64  `json:"valid_spo2_share"`
-	ClippingShare      float64  `json:"clipping_share"`
-	LowResolutionShare float64  `json:"low_resolution_share"`
-	SQI                *webDist `json:"sqi"`
-	PI                 *webDist `json:"pi_pct"`
-	BatteryPct         *float64 `json:"battery_pct"`
-}
-
-type webDist struct {
-	Count uint64  `json:"count"`
-	P10   float64 `json:"p10"`
-	P50   float64 `json:"p50"`
-	P90   float64 `json:"p90"`
-}
-
-type webBucket struct {
-	StartMS  int64    `json:"t_ms"`
-	Points   uint32   `json:"points"`
-	SpO2     *float64 `json:"spo2"`
-	SpO2Min  *float64 `json:"spo2_min"`
-	SpO2Max  *float64 `json:"spo2_max"`
-	Pulse    *float64 `json:"pulse"`
-	PI       *float64 `json:"pi"`
-	SQI      *float64 `json:"sqi"`
-	SQIMin   *float64 `json:"sqi_min"`
-	Coverage float64  `json:"coverage"` // share of the step's seconds with a point
-}
-
-func priorityName(p pb.Priority) string {
-	switch p {
-	case pb.Priority_PRIORITY_LOW:
-		return "low"
-	case pb.Priority_PRIORITY_MEDIUM:
-		return "medium"
-	case pb.Priority_PRIORITY_HIGH:
-		return "high"
+// MarshalJSON writes the message with protojson (null when nil).
+func (p Proto[M]) MarshalJSON() ([]byte, error) {
+	if !p.M.ProtoReflect().IsValid() {
+		return []byte("null"), nil
 	}
-	return ""
+	return pjOut.Marshal(p.M)
 }
 
-// flagNames name the estimator flags in the page's JSON (the names of
-// pulsefleet_estimator_flags_total's labels).
-var flagNames = []struct {
-	flag estimator.Flags
-	name string
-}{{estimator.FlagNoPulse, "no_pulse"}, {estimator.FlagSensorOff, "sensor_off"}, {estimator.FlagClipping, "clipping"},
-	{estimator.FlagMotion, "motion"}, {estimator.FlagLowResolution, "low_resolution"}}
-
-func webPointOf(p *pb.TrendPoint) *webPoint {
-	if p == nil {
+// UnmarshalJSON reads a message written by MarshalJSON (Go clients of the
+// page: the gateway's tests).
+func (p *Proto[M]) UnmarshalJSON(b []byte) error {
+	p.M = p.M.ProtoReflect().Type().New().Interface().(M)
+	if string(b) == "null" {
 		return nil
 	}
-	out := &webPoint{TimeMS: p.GetTimeUnixMs(), SpO2: p.Spo2Pct, Pulse: p.PulseBpm, PI: p.PiPct, SQI: p.Sqi}
-	for _, f := range flagNames {
-		if p.GetFlags()&uint32(f.flag) != 0 {
-			out.Flags = append(out.Flags, f.name)
+	return pjIn.Unmarshal(b, p.M)
+}
+
+// Spark is a device's SpO2 over the last minutes: the mean per step, null
+// where the step had no valid value.
+type Spark struct {
+	StartMS int64      `json:"start_ms"`
+	StepMS  int64      `json:"step_ms"`
+	SpO2    []*float64 `json:"spo2"`
+}
+
+// Limit is one threshold of the alarm profile a device runs, as the charts
+// draw it: the alarm limit, where the condition clears (the limit moved by
+// the hysteresis), and the escalation depth.
+type Limit struct {
+	Condition string `json:"condition"` // the profile's condition name
+	Label     string `json:"label"`     // alarms.Label of it
+	Kind      string `json:"kind"`      // spo2_low, pulse_high, ...
+	// Quantity is the chart it belongs on: spo2, pulse, sqi or pi.
+	Quantity string `json:"quantity"`
+	// Below is true for low limits (the alarm is below Limit).
+	Below    bool     `json:"below"`
+	Limit    float64  `json:"limit"`
+	ClearAt  float64  `json:"clear_at"` // Limit plus (low) or minus (high) the hysteresis
+	Priority string   `json:"priority"` // low, medium, high
+	Escalate *float64 `json:"escalate_at,omitempty"`
+	// EscalatePriority is the priority after escalation ("" without one).
+	EscalatePriority string `json:"escalate_priority,omitempty"`
+	Latching         bool   `json:"latching,omitempty"`
+}
+
+// Profile is the alarm profile a device runs, as the page shows it.
+type Profile struct {
+	Name   string  `json:"name"`
+	Origin string  `json:"origin"` // "device" (its own) or "default"
+	Limits []Limit `json:"limits"`
+}
+
+// limitsOf lists the thresholds of p that a chart can draw (desaturation
+// is relative to a running baseline, and signal_lost, device_offline and
+// device_clock_fault have no limit).
+func limitsOf(p *alarms.Profile) []Limit {
+	out := []Limit{}
+	for _, c := range p.Conditions {
+		l := Limit{Condition: c.ConditionName(), Label: alarms.Label(c.ConditionName()), Kind: c.Kind.String(),
+			Limit: c.Limit, Priority: c.Priority.String(), Latching: c.Latching}
+		switch c.Kind {
+		case alarms.SpO2Low, alarms.SpO2High:
+			l.Quantity = "spo2"
+		case alarms.PulseLow, alarms.PulseHigh:
+			l.Quantity = "pulse"
+		case alarms.SignalPoor:
+			l.Quantity = "sqi"
+		case alarms.PerfusionLow:
+			l.Quantity = "pi"
+		default:
+			continue
+		}
+		l.Below = c.Kind == alarms.SpO2Low || c.Kind == alarms.PulseLow || c.Kind == alarms.SignalPoor || c.Kind == alarms.PerfusionLow
+		l.ClearAt = c.Limit - c.Hysteresis
+		if l.Below {
+			l.ClearAt = c.Limit + c.Hysteresis
+		}
+		if e := c.Escalate; e != nil {
+			if v := e.Below; l.Below && v != 0 {
+				l.Escalate = &v
+			}
+			if v := e.Above; !l.Below && v != 0 {
+				l.Escalate = &v
+			}
+			l.EscalatePriority = e.Priority.String()
+		}
+		out = append(out, l)
+	}
+	return out
+}
+
+// conditionLabels maps every condition kind and every condition named in
+// devs and eps to its readable label (alarms.Label, the CLI's table too).
+func conditionLabels(devs []*pb.Device, eps []*pb.Episode) map[string]string {
+	out := map[string]string{}
+	for k := alarms.SpO2Low; k.String() != "" && !strings.HasPrefix(k.String(), "kind("); k++ {
+		out[k.String()] = k.Label()
+	}
+	for _, d := range devs {
+		for _, c := range d.GetActiveConditions() {
+			out[c] = alarms.Label(c)
 		}
 	}
-	switch p.GetSource() {
-	case pb.Source_SOURCE_GATEWAY:
-		out.Source = "gateway"
-	case pb.Source_SOURCE_DEVICE:
-		out.Source = "device"
+	for _, e := range eps {
+		out[e.GetCondition()] = alarms.Label(e.GetCondition())
 	}
 	return out
-}
-
-func webEpisodeOf(e *pb.Episode) webEpisode {
-	return webEpisode{ID: strconv.FormatUint(e.GetEpisodeId(), 10), Device: e.GetDeviceId(), Condition: e.GetCondition(),
-		Priority: priorityName(e.GetPriority()), OnsetMS: e.GetOnsetUnixMs(), AnnouncedMS: e.GetAnnouncedUnixMs(),
-		EscalatedMS: e.GetEscalatedUnixMs(), EndedMS: e.GetEndedUnixMs(), MinSpO2: e.MinSpo2Pct,
-		AckedBy: e.GetAcknowledgedBy(), AckedMS: e.GetAcknowledgedUnixMs(), Active: e.GetActive()}
-}
-
-func webDeviceOf(d *pb.Device) webDevice {
-	out := webDevice{ID: d.GetDeviceId(), Model: d.GetModel(), Firmware: d.GetFirmware(),
-		Mode: strings.TrimPrefix(strings.ToLower(d.GetMode().String()), "mode_"), Labels: d.GetLabels(),
-		Connected: d.GetConnected(), LastSeenMS: d.GetLastSeenUnixMs(), SessionMS: d.GetSessionStartUnixMs(),
-		Latest: webPointOf(d.GetLatest()), Priority: priorityName(d.GetAlarmPriority()), Conditions: d.GetActiveConditions(),
-		PausedUntilMS: d.GetAlarmsPausedUntilUnixMs(), Profile: d.GetProfile(), Calibration: d.GetCalibration(),
-		Active: []webEpisode{}}
-	if out.Mode == "unspecified" {
-		out.Mode = ""
-	}
-	if out.Conditions == nil {
-		out.Conditions = []string{}
-	}
-	if b := d.GetBatteryPct(); b >= 0 {
-		out.BatteryPct = &b
-	}
-	return out
-}
-
-func webQualityOf(q *pb.DeviceQuality) *webQuality {
-	out := &webQuality{Sessions: q.GetSessions(), Reconnects: q.GetReconnects(), Uptime1h: q.GetUptime_1H(), Uptime24h: q.GetUptime_24H(),
-		Uptime7d: q.GetUptime_7D(), ChunksAccepted: q.GetChunksAccepted(), ChunksLost: q.GetChunksLost(), Duplicates: q.GetDuplicates(),
-		LateChunks: q.GetLateChunks(), ChunksRejected: q.GetChunksRejected(), ClockDriftPPM: q.ClockDriftPpm,
-		EffectiveRateHz: q.EffectiveSampleRateHz, ValidSpO2Share: q.GetValidSpo2Share(), ClippingShare: q.GetClippingShare(),
-		LowResolutionShare: q.GetLowResolutionShare()}
-	dist := func(d *pb.Distribution) *webDist {
-		if d == nil || d.GetCount() == 0 {
-			return nil
-		}
-		return &webDist{Count: d.GetCount(), P10: d.GetP10(), P50: d.GetP50(), P90: d.GetP90()}
-	}
-	out.SQI, out.PI = dist(q.GetSqi()), dist(q.GetPiPct())
-	if b := q.GetBatteryPct(); b >= 0 {
-		out.BatteryPct = &b
-	}
-	return out
-}
-
-func statMean(s *pb.Stat) *float64 {
-	if s.GetCount() == 0 {
-		return nil
-	}
-	v := s.GetMean()
-	return &v
-}
-
-func statMin(s *pb.Stat) *float64 {
-	if s.GetCount() == 0 {
-		return nil
-	}
-	v := s.GetMin()
-	return &v
-}
-
-func statMax(s *pb.Stat) *float64 {
-	if s.GetCount() == 0 {
-		return nil
-	}
-	v := s.GetMax()
-	return &v
 }

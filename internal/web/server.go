@@ -4,16 +4,17 @@ import (
 	"context"
 	"crypto/rand"
 	"embed"
+	"fmt"
 	"html/template"
 	"io/fs"
 	"net/http"
 	"strings"
 	"time"
 
-	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // Fleet is what the page reads and changes: the FleetService calls it
@@ -28,6 +29,7 @@ type Fleet interface {
 	QueryTrend(context.Context, *pb.QueryTrendRequest) (*pb.QueryTrendResponse, error)
 	AcknowledgeAlarm(context.Context, *pb.AcknowledgeAlarmRequest) (*pb.AcknowledgeAlarmResponse, error)
 	PauseAlarms(context.Context, *pb.PauseAlarmsRequest) (*pb.PauseAlarmsResponse, error)
+	GetAlarmProfile(context.Context, *pb.GetAlarmProfileRequest) (*pb.GetAlarmProfileResponse, error)
 
 	// RawCaptures calls fn with the device's captured raw chunks between
 	// fromMS and toMS (device time) in order, until fn returns false.
@@ -92,20 +94,20 @@ func (e *Error) Error() string { return e.Message }
 var webAssets embed.FS
 
 // pageTemplate is webui/index.html as an html/template: its placeholders
-// {{CAUTION}}, {{CSRF}} and {{ACTOR}} are the fields of pageData, filled in
+// {{CAUTION}}, {{CSRF}}, {{ACTOR}} and {{MISSING}} are the fields of pageData, filled in
 // and escaped for their context (text or attribute) on every request. The
 // file keeps the bare names so that a page served without filling them in
 // shows that it was (the tests look for "{{CSRF}}").
 var pageTemplate, pageErr = parsePage()
 
-type pageData struct{ CAUTION, CSRF, ACTOR string }
+type pageData struct{ CAUTION, CSRF, ACTOR, MISSING string }
 
 func parsePage() (*template.Template, error) {
 	b, err := webAssets.ReadFile("webui/index.html")
 	if err != nil {
 		return nil, err
 	}
-	src := strings.NewReplacer("{{CAUTION}}", "{{.CAUTION}}", "{{CSRF}}", "{{.CSRF}}", "{{ACTOR}}", "{{.ACTOR}}").Replace(string(b))
+	src := strings.NewReplacer("{{CAUTION}}", "{{.CAUTION}}", "{{CSRF}}", "{{.CSRF}}", "{{ACTOR}}", "{{.ACTOR}}", "{{MISSING}}", "{{.MISSING}}").Replace(string(b))
 	return template.New("index.html").Parse(src)
 }
 
@@ -125,7 +127,27 @@ func (s *Server) Routes(mux *http.ServeMux) {
 		}
 		w.Header().Set("Content-Type", "text/html; charset=utf-8")
 		pageHeaders(w)
-		_ = pageTemplate.Execute(w, pageData{CAUTION: webCaution, CSRF: s.CSRFToken(r), ACTOR: auth.ActorFrom(webActor(r))})
+		data := pageData{CAUTION: webCaution, CSRF: s.CSRFToken(r), ACTOR: auth.ActorFrom(webActor(r))}
+		if id := r.PathValue("id"); id != "" {
+			// An unknown device's page answers 404 and says so once (the
+			// script shows only that message, no empty panels).
+			if _, err := s.fleet.GetDevice(r.Context(), &pb.GetDeviceRequest{DeviceId: id}); err != nil {
+				code, msg := http.StatusInternalServerError, err.Error()
+				if s.cfg.HTTPError != nil {
+					code, msg = s.cfg.HTTPError(err)
+				}
+				switch code {
+				case http.StatusNotFound:
+					data.MISSING = fmt.Sprintf("No device %q is known to this gateway.", id)
+				case http.StatusBadRequest:
+					data.MISSING = fmt.Sprintf("%q is not a device id: %s.", id, msg)
+				}
+				if data.MISSING != "" {
+					w.WriteHeader(code)
+				}
+			}
+		}
+		_ = pageTemplate.Execute(w, data)
 	})
 	s.authRoutes(mux)
 	mux.Handle("GET /{$}", s.requireRole(auth.RoleViewer, page))

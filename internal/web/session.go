@@ -8,13 +8,14 @@ import (
 	"encoding/base64"
 	"errors"
 	"fmt"
+	"io"
 	"net"
 	"net/http"
 	"strconv"
 	"strings"
 
-	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 )
 
 // ---- Web: login, session cookie, CSRF, role checks ----
@@ -218,30 +219,56 @@ func (sv *Server) authRoutes(mux *http.ServeMux) {
 	mux.Handle("POST /logout", sv.requireRole(auth.RoleViewer, http.HandlerFunc(sv.handleLogout)))
 }
 
+// loginStyle is the login page's own style sheet, inline (the page's
+// assets need a login) and allowed by its hash in the page's CSP.
+const loginStyle = `
+body { margin: 0; font-family: "DejaVu Sans", "Segoe UI", Helvetica, Arial, sans-serif; font-size: 15px; color: #1e242c; background: #f6f6f3; }
+.caution { background: #fff4cc; border-bottom: 2px solid #8a6d00; padding: 8px 16px; line-height: 1.4; }
+.caution b { border: 2px solid #8a6d00; padding: 0 6px; margin-right: 8px; text-transform: uppercase; letter-spacing: 0.06em; }
+main { max-width: 24em; margin: 48px auto; background: #fff; border: 1px solid #d9dcd6; border-radius: 4px; padding: 20px 24px; }
+h1 { font-size: 20px; margin: 0 0 4px; letter-spacing: 0.02em; }
+p.sub { color: #5d6673; margin: 0 0 18px; }
+label { display: block; font-weight: 600; margin-bottom: 4px; }
+input { font: inherit; width: 100%; box-sizing: border-box; padding: 6px 8px; border: 1px solid #8b929c; border-radius: 3px; }
+button { font: inherit; font-weight: 600; margin-top: 12px; padding: 6px 16px; border: 1px solid #1e242c; background: #1e242c; color: #fff; border-radius: 3px; cursor: pointer; }
+input:focus-visible, button:focus-visible { outline: 3px solid #1b7fc4; outline-offset: 2px; }
+.err { border-left: 4px solid #a3231b; padding: 4px 10px; background: #fbe9e7; margin: 0 0 12px; }
+@media (max-width: 480px) { main { margin: 16px 8px; } }
+`
+
+var loginStyleHash = func() string {
+	sum := sha256.Sum256([]byte(loginStyle))
+	return "'sha256-" + base64.StdEncoding.EncodeToString(sum[:]) + "'"
+}()
+
 const loginPage = `<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>pulsefleet: log in</title>
-<meta name="viewport" content="width=device-width, initial-scale=1"></head>
-<body><main>
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<style>` + loginStyle + `</style></head>
+<body>
+<div class="caution" role="note" id="caution"><b>Caution</b> ` + caution.Text + `</div>
+<main>
 <h1>pulsefleet</h1>
-<p>` + caution.Text + `</p>
+<p class="sub">Log in with the operator token your administrator issued.</p>
+<!--message-->
 <form method="post" action="/login">
 <label for="token">Operator token</label>
 <input id="token" name="token" type="password" autocomplete="current-password" required>
 <button type="submit">Log in</button>
 </form>
-%s
 </main></body></html>
 `
 
 func (sv *Server) handleLoginForm(w http.ResponseWriter, r *http.Request) {
 	w.Header().Set("Content-Type", "text/html; charset=utf-8")
 	w.Header().Set("Cache-Control", "no-store")
-	w.Header().Set("Content-Security-Policy", "default-src 'none'; form-action 'self'; frame-ancestors 'none'")
+	w.Header().Set("Content-Security-Policy", "default-src 'none'; style-src "+loginStyleHash+"; form-action 'self'; frame-ancestors 'none'")
 	msg := ""
 	if r.URL.Query().Get("failed") != "" {
-		msg = `<p role="alert">That token was not accepted.</p>`
+		msg = `<p class="err" role="alert">That token was not accepted.</p>`
 	}
-	fmt.Fprintf(w, loginPage, msg)
+	// Not a format: the style sheet holds per-cent signs.
+	_, _ = io.WriteString(w, strings.Replace(loginPage, "<!--message-->", msg, 1))
 }
 
 // handleLogin checks the token of the login form and starts a session.
