@@ -177,6 +177,15 @@ func writeQualityCSV(w io.Writer, qs []*pb.DeviceQuality) error {
 
 func pctCell(v float64) string { return ff(100*v, 1) }
 
+// uptimeCell is "-" while the window has no coverage (no part of it since
+// the device was first seen), as on the web page.
+func uptimeCell(share, windowS float64) string {
+	if windowS <= 0 {
+		return "-"
+	}
+	return pctCell(share)
+}
+
 func orDash(s string) string {
 	if s == "" {
 		return "-"
@@ -204,7 +213,7 @@ func writeQualityTable(w io.Writer, qs []*pb.DeviceQuality) error {
 			return c[0] + "/" + c[1] + "/" + c[2]
 		}
 		u := func(v uint64) string { return strconv.FormatUint(v, 10) }
-		tw.rowTerminated(pad(q.GetDeviceId()), u(q.GetSessions()), u(q.GetReconnects()), pctCell(q.GetUptime_1H()), pctCell(q.GetUptime_24H()), pctCell(q.GetUptime_7D()),
+		tw.rowTerminated(pad(q.GetDeviceId()), u(q.GetSessions()), u(q.GetReconnects()), uptimeCell(q.GetUptime_1H(), q.GetUptime_1HWindowS()), uptimeCell(q.GetUptime_24H(), q.GetUptime_24HWindowS()), uptimeCell(q.GetUptime_7D(), q.GetUptime_7DWindowS()),
 			u(q.GetChunksAccepted()), u(q.GetChunksLost()), u(q.GetDuplicates()), u(q.GetLateChunks()), u(q.GetChunksRejected()),
 			orDash(estCell(q.ClockDriftPpm, 1)), orDash(estCell(q.EffectiveSampleRateHz, 2)), pctCell(q.GetValidSpo2Share()),
 			dist(sqi), dist(pi), pctCell(q.GetClippingShare()), pctCell(q.GetLowResolutionShare()), orDash(batteryCell(q.GetBatteryPct())))
