@@ -396,7 +396,9 @@ func TestWebOverview2000InChromium(t *testing.T) {
 		const over = cells.filter(c => c.scrollWidth > c.clientWidth + 1 || c.getBoundingClientRect().right > innerWidth + 0.5).length;
 		const de = document.documentElement;
 		return (de.scrollWidth <= de.clientWidth) + '|' + de.scrollWidth + '|' + cells.length + '|' + over })()`); !strings.HasPrefix(v, "true|") || !strings.HasSuffix(v, "|0") || strings.HasSuffix(v, "|0|0") {
-		t.Errorf("at 400 px: no sideways scrolling | page scroll width | alarm cells | overflowing ones = %q, want true|...|n|0", v)
+		wide := br.eval(`[...document.querySelectorAll('body, body *')].filter(e => e.scrollWidth > document.documentElement.clientWidth)
+			.slice(0, 12).map(e => e.tagName + '.' + e.className + '#' + e.id + ':' + e.scrollWidth + '/' + Math.round(e.getBoundingClientRect().right)).join(' ')`)
+		t.Errorf("at 400 px: no sideways scrolling | page scroll width | alarm cells | overflowing ones = %q, want true|...|n|0; beyond the edge: %s", v, wide)
 	}
 	br.shoot("fleet-phone.png")
 	t.Logf("screenshots in %s", br.shots)

@@ -27,7 +27,7 @@ function ticksOf(lo, hi, want) {
 }
 
 function sparkline(spark, limits) {
-  const w = 160, hgt = 32;
+  const w = 120, hgt = 32;
   const svg = s('svg', { class: 'spark', width: w, height: hgt, viewBox: `0 0 ${w} ${hgt}`, role: 'img' });
   const vals = spark ? spark.spo2 : [];
   const some = vals.filter(has);
@@ -48,6 +48,9 @@ function sparkline(spark, limits) {
     pen = true;
   });
   svg.append(s('path', { class: 'line', d }));
+  vals.forEach((v, i) => { // a value without neighbours is a dot
+    if (has(v) && !has(vals[i - 1]) && !has(vals[i + 1])) svg.append(s('circle', { class: 'dot', cx: x(i), cy: y(v), r: 1.6 }));
+  });
   const lim = (limits || []).map(l => `${l.label} ${l.limit} %`).join(', ');
   svg.setAttribute('aria-label', `SpO2 over the last 30 minutes, lowest ${Math.min(...some).toFixed(0)} %, last ${some[some.length - 1].toFixed(0)} %${lim ? '; limit ' + lim : ''}`);
   return svg;
