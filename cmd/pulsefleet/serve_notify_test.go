@@ -42,3 +42,23 @@ func TestServeAlertmanagerSettingsErrors(t *testing.T) {
 		}
 	}
 }
+
+// The YAML keys of --config set the Alertmanager settings.
+func TestServeAlertmanagerConfigKeys(t *testing.T) {
+	p := filepath.Join(t.TempDir(), "c.yaml")
+	os.WriteFile(p, []byte("alertmanager:\n  - http://am-0:9093\n  - http://am-1:9093\nalertmanager_bearer_file: /run/token\n"+
+		"alertmanager_ca_file: /run/ca.pem\nalertmanager_basic_auth_file: /run/basic\nexternal_url: https://ward.example/\n"), 0o600)
+	c := defaultServeConfig()
+	if err := loadServeConfig(p, &c); err != nil {
+		t.Fatal(err)
+	}
+	if strings.Join(c.Alertmanager, ",") != "http://am-0:9093,http://am-1:9093" || c.AlertmanagerBearer != "/run/token" ||
+		c.AlertmanagerCAFile != "/run/ca.pem" || c.AlertmanagerBasicAuth != "/run/basic" || c.ExternalURL != "https://ward.example/" {
+		t.Errorf("config not applied: %+v", c.notifyConfig)
+	}
+	for _, k := range []string{"alertmanager", "alertmanager_ca_file", "alertmanager_basic_auth_file", "alertmanager_bearer_file", "external_url"} {
+		if !strings.Contains(strings.Join(serveConfigKeys(), " "), k) {
+			t.Errorf("serveConfigKeys lacks %s", k)
+		}
+	}
+}
