@@ -8,11 +8,11 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
-	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // resolveStoredCalibration maps a calibration reference to a curve with
@@ -23,6 +23,29 @@ func (g *Gateway) resolveStoredCalibration(ref string, redNM, irNM float64) (est
 		return nil, "", fmt.Errorf("calibration %q is not stored (see `pulsefleet calibrations list`)", ref)
 	}
 	return c, applied, err
+}
+
+// streamCalibration resolves the calibration of a raw stream for the ingest
+// pipeline: the one the device asked for, else the one assigned to it or
+// to its model.
+func (g *Gateway) streamCalibration(deviceID, model, requested string, redNM, irNM float64) (estimator.Calibration, string, error) {
+	if requested == "" {
+		requested = g.assignedCalibration(deviceID, model)
+	}
+	return g.opt.ResolveCalibration(requested, redNM, irNM)
+}
+
+// assignedCalibration returns the calibration assigned to a device or its
+// model, from the gateway's copy of the assignments (read once, updated by
+// AssignCalibration), so thousands of devices connecting at once do not each
+// open a store transaction.
+func (g *Gateway) assignedCalibration(deviceID, model string) string {
+	g.calMu.RLock()
+	defer g.calMu.RUnlock()
+	if r, ok := g.calAssign["device:"+deviceID]; ok {
+		return r
+	}
+	return g.calAssign["model:"+model]
 }
 
 // PutCalibration implements AdminService: stores a new version of a curve.

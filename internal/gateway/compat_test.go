@@ -4,6 +4,7 @@ import (
 	"net/http"
 
 	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/ingest"
 	"github.com/pulsefleet/pulsefleet/internal/web"
 )
 
@@ -41,24 +42,20 @@ func (g *Gateway) sessionFrom(r *http.Request) (struct{}, error) {
 	return struct{}{}, g.web.CheckSession(r)
 }
 
-// forgetDevice (a test helper) drops a device without a stream from memory and deletes its
-// labelled series, so fleet churn does not leak series. Its stored history
-// stays. It reports whether the device was forgotten (false when unknown or
-// connected).
-func (g *Gateway) forgetDevice(id string) bool {
-	g.devices.mu.Lock()
-	d, ok := g.devices.m[id]
-	if ok {
-		d.mu.Lock()
-		ok = d.stream == nil
-		d.mu.Unlock()
-		if ok {
-			delete(g.devices.m, id)
-		}
-	}
-	g.devices.mu.Unlock()
-	if ok {
-		g.m.deleteDevice(id)
-	}
-	return ok
-}
+// Names the gateway's tests used before the per-device pipeline moved to
+// internal/ingest.
+
+const (
+	clockAheadMax = ingest.ClockAheadMax
+	validWindow   = ingest.ValidWindow
+	maxADCBits    = ingest.MaxADCBits
+	rateHoldMS    = ingest.RateHoldMS
+
+	maxRejectsBeforeIntro = ingest.MaxRejectsBeforeIntro
+)
+
+var (
+	pointProto             = ingest.TrendPointProto
+	largestValidMessage    = ingest.LargestValidMessage
+	defaultMaxMessageBytes = ingest.DefaultMaxMessageBytes
+)

@@ -6,8 +6,8 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // exportBatch is the points per ExportTrendResponse, each page read in its
@@ -103,7 +103,7 @@ func trendPage(db *store.DB, device string, from, to int64, buf []store.Point) (
 
 // pageProto is one ExportTrendResponse of the page's points, allocated in
 // slabs (a few allocations per page instead of six per point); the values
-// are pointProto's.
+// are ingest.TrendPointProto's.
 func pageProto(device string, page []store.Point) *pb.ExportTrendResponse {
 	slab := make([]pb.TrendPoint, len(page))
 	vals := make([]float64, 0, 5*len(page))

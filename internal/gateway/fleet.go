@@ -4,55 +4,50 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"math"
 	"slices"
 	"strings"
-	"time"
 
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/ids"
+	"github.com/pulsefleet/pulsefleet/internal/ingest"
 	"github.com/pulsefleet/pulsefleet/internal/profiles"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // maxTrendPoints bounds a raw (step 0) trend answer.
 const maxTrendPoints = 100_000
 
-func (g *Gateway) device(id string) (*device, error) {
+// checkID checks a device id given to a FleetService method.
+func checkID(id string) error {
 	if err := validID("device_id", id); err != nil {
-		return nil, status.Error(codes.InvalidArgument, err.Error())
+		return status.Error(codes.InvalidArgument, err.Error())
 	}
-	d := g.devices.get(id)
-	if d == nil {
-		return nil, status.Errorf(codes.NotFound, "device_id: %q is not known to this gateway", id)
-	}
-	return d, nil
+	return nil
 }
+
+// validID checks an id: 1..64 of [A-Za-z0-9._-] (internal/ids).
+func validID(field, id string) error { return ids.Check(field, id) }
 
 // ListDevices implements FleetService.
 func (g *Gateway) ListDevices(ctx context.Context, _ *pb.ListDevicesRequest) (*pb.ListDevicesResponse, error) {
-	out := &pb.ListDevicesResponse{}
-	for _, d := range g.devices.all() {
-		d.mu.Lock()
-		out.Devices = append(out.Devices, d.toProto())
-		d.mu.Unlock()
-	}
-	return out, nil
+	return &pb.ListDevicesResponse{Devices: g.ingest.Devices()}, nil
 }
 
 // GetDevice implements FleetService.
 func (g *Gateway) GetDevice(ctx context.Context, req *pb.GetDeviceRequest) (*pb.GetDeviceResponse, error) {
-	d, err := g.device(req.GetDeviceId())
-	if err != nil {
+	if err := checkID(req.GetDeviceId()); err != nil {
 		return nil, err
 	}
-	d.mu.Lock()
-	defer d.mu.Unlock()
-	return &pb.GetDeviceResponse{Device: d.toProto()}, nil
+	d, err := g.ingest.Device(req.GetDeviceId())
+	if err != nil {
+		return nil, ingestStatus(err)
+	}
+	return &pb.GetDeviceResponse{Device: d}, nil
 }
 
 // QueryTrend implements FleetService.
@@ -74,7 +69,7 @@ func (g *Gateway) QueryTrend(ctx context.Context, req *pb.QueryTrendRequest) (*p
 				out.Truncated = true
 				return false
 			}
-			out.Points = append(out.Points, pointProto(&p))
+			out.Points = append(out.Points, ingest.TrendPointProto(&p))
 			return true
 		})
 		if err != nil {
@@ -102,13 +97,13 @@ func statProto(s store.Stat) *pb.Stat {
 
 // WatchEvents implements FleetService.
 func (g *Gateway) WatchEvents(req *pb.WatchEventsRequest, ws pb.FleetService_WatchEventsServer) error {
-	sub := g.hub.subscribe(req.GetDeviceIds(), req.GetTrendPoints(), 1024)
-	defer g.hub.unsubscribe(sub)
+	events, stop := g.ingest.Watch(req.GetDeviceIds(), req.GetTrendPoints(), 1024)
+	defer stop()
 	for {
 		select {
 		case <-ws.Context().Done():
 			return nil
-		case ev := <-sub.ch:
+		case ev := <-events:
 			if err := ws.Send(ev); err != nil {
 				return err
 			}
@@ -132,7 +127,7 @@ func (g *Gateway) ListEpisodes(ctx context.Context, req *pb.ListEpisodesRequest)
 	}
 	out := &pb.ListEpisodesResponse{}
 	for i := range eps {
-		out.Episodes = append(out.Episodes, episodeProto(&eps[i]))
+		out.Episodes = append(out.Episodes, ingest.EpisodeProto(&eps[i]))
 	}
 	return out, nil
 }
@@ -140,39 +135,18 @@ func (g *Gateway) ListEpisodes(ctx context.Context, req *pb.ListEpisodesRequest)
 // WatchEpisodes implements FleetService: the active episodes first, then
 // every transition.
 func (g *Gateway) WatchEpisodes(req *pb.WatchEpisodesRequest, ws pb.FleetService_WatchEpisodesServer) error {
-	sub := g.hub.subscribe(req.GetDeviceIds(), false, 1024)
-	defer g.hub.unsubscribe(sub)
-	want := map[string]bool{}
-	for _, id := range req.GetDeviceIds() {
-		want[id] = true
-	}
-	for _, d := range g.devices.all() {
-		if len(want) > 0 && !want[d.id] {
-			continue
-		}
-		d.mu.Lock()
-		var open []alarms.Episode
-		if d.engine != nil {
-			open = d.engine.Episodes(nil)
-		}
-		var evs []*pb.EpisodeEvent
-		for i := range open {
-			if open[i].Announced() {
-				evs = append(evs, &pb.EpisodeEvent{Transition: "active", Episode: episodeProto(g.storeEpisode(d, &open[i]))})
-			}
-		}
-		d.mu.Unlock()
-		for _, ev := range evs {
-			if err := ws.Send(&pb.WatchEpisodesResponse{Event: ev}); err != nil {
-				return err
-			}
+	events, stop := g.ingest.Watch(req.GetDeviceIds(), false, 1024)
+	defer stop()
+	for _, ep := range g.ingest.AnnouncedEpisodes(req.GetDeviceIds()) {
+		if err := ws.Send(&pb.WatchEpisodesResponse{Event: &pb.EpisodeEvent{Transition: "active", Episode: ep}}); err != nil {
+			return err
 		}
 	}
 	for {
 		select {
 		case <-ws.Context().Done():
 			return nil
-		case ev := <-sub.ch:
+		case ev := <-events:
 			if ee := ev.GetEpisodeEvent(); ee != nil {
 				if err := ws.Send(&pb.WatchEpisodesResponse{Event: ee}); err != nil {
 					return err
@@ -182,40 +156,16 @@ func (g *Gateway) WatchEpisodes(req *pb.WatchEpisodesRequest, ws pb.FleetService
 	}
 }
 
-// operatorAction runs fn on a device's alarm engine under its lock, then
-// makes the effects durable before answering.
-// why (the note of an acknowledgement, the reason of a pause) is added to
-// the audit entries, which also name the caller's address.
-func (g *Gateway) operatorAction(ctx context.Context, id, why string, fn func(d *device, t float64, emit func(alarms.Event)) error) ([]alarms.Event, error) {
-	d, err := g.device(id)
-	if err != nil {
+// operatorAction runs fn on a device's alarm engine (ingest.AlarmAction),
+// the effects durable before it answers. why (the note of an
+// acknowledgement, the reason of a pause) is added to the audit entries,
+// which also name the caller's address.
+func (g *Gateway) operatorAction(ctx context.Context, id, why string, fn func(e *alarms.Engine, t float64, emit func(alarms.Event)) error) ([]alarms.Event, error) {
+	if err := checkID(id); err != nil {
 		return nil, err
 	}
-	d.mu.Lock()
-	g.ensureEngine(d)
-	if d.engine == nil {
-		d.mu.Unlock()
-		return nil, status.Errorf(codes.FailedPrecondition, "device_id: %q has no alarm profile", id)
-	}
-	t := math.Max(d.deviceTimeS(g.nowMS()), d.engine.LastT())
-	var evs []alarms.Event
-	if err := fn(d, t, func(e alarms.Event) { evs = append(evs, e) }); err != nil {
-		d.mu.Unlock()
-		return nil, err
-	}
-	rec := &record{dev: d}
-	g.alarmEffects(d, evs, rec)
-	d.mu.Unlock()
-	for _, a := range rec.audit {
-		a.Remote = auth.RemoteFrom(ctx)
-		if why != "" {
-			a.Detail += "; " + why
-		}
-	}
-	if err := g.w.sync(ctx, rec); err != nil {
-		return nil, status.Errorf(codes.Unavailable, "store: %v", err)
-	}
-	return evs, nil
+	evs, err := g.ingest.AlarmAction(ctx, id, why, auth.RemoteFrom(ctx), fn)
+	return evs, ingestStatus(err)
 }
 
 // AcknowledgeAlarm implements FleetService.
@@ -228,22 +178,19 @@ func (g *Gateway) AcknowledgeAlarm(ctx context.Context, req *pb.AcknowledgeAlarm
 	if req.GetNote() != "" {
 		note = "note: " + req.GetNote()
 	}
-	evs, err := g.operatorAction(ctx, req.GetDeviceId(), note, func(d *device, t float64, emit func(alarms.Event)) error {
-		d.engine.Acknowledge(who, t, emit)
+	evs, err := g.operatorAction(ctx, req.GetDeviceId(), note, func(e *alarms.Engine, t float64, emit func(alarms.Event)) error {
+		e.Acknowledge(who, t, emit)
 		return nil
 	})
 	if err != nil {
 		return nil, err
 	}
 	out := &pb.AcknowledgeAlarmResponse{}
-	d := g.devices.get(req.GetDeviceId())
 	for i := range evs {
 		if evs[i].Type == alarms.EventAcknowledged {
-			d.mu.Lock()
-			ep := g.storeEpisode(d, &evs[i].Episode)
-			d.mu.Unlock()
+			ep := g.ingest.StoredEpisode(req.GetDeviceId(), &evs[i].Episode)
 			if req.GetEpisodeId() == 0 || req.GetEpisodeId() == ep.ID {
-				out.Episodes = append(out.Episodes, episodeProto(ep))
+				out.Episodes = append(out.Episodes, ingest.EpisodeProto(ep))
 			}
 		}
 	}
@@ -264,13 +211,13 @@ func (g *Gateway) PauseAlarms(ctx context.Context, req *pb.PauseAlarmsRequest) (
 	if req.GetReason() != "" {
 		reason = "reason: " + req.GetReason()
 	}
-	_, err := g.operatorAction(ctx, req.GetDeviceId(), reason, func(d *device, t float64, emit func(alarms.Event)) error {
+	_, err := g.operatorAction(ctx, req.GetDeviceId(), reason, func(e *alarms.Engine, t float64, emit func(alarms.Event)) error {
 		if req.GetDurationS() == 0 {
-			d.engine.Resume(who, t, emit)
+			e.Resume(who, t, emit)
 			return nil
 		}
 		until = t + float64(req.GetDurationS())
-		if err := d.engine.Pause(who, t, until, emit); err != nil {
+		if err := e.Pause(who, t, until, emit); err != nil {
 			return status.Errorf(codes.InvalidArgument, "duration_s: %v", err)
 		}
 		return nil
@@ -283,23 +230,14 @@ func (g *Gateway) PauseAlarms(ctx context.Context, req *pb.PauseAlarmsRequest) (
 
 // GetAlarmProfile implements FleetService.
 func (g *Gateway) GetAlarmProfile(ctx context.Context, req *pb.GetAlarmProfileRequest) (*pb.GetAlarmProfileResponse, error) {
-	var p *alarms.Profile
-	origin := "default"
 	if req.GetDeviceId() != "" {
-		d, err := g.device(req.GetDeviceId())
-		if err != nil {
+		if err := checkID(req.GetDeviceId()); err != nil {
 			return nil, err
 		}
-		d.mu.Lock()
-		if d.ownProfile {
-			p, origin = d.profile, "device"
-		}
-		d.mu.Unlock()
 	}
-	if p == nil {
-		g.defaultMu.RLock()
-		p = g.defaultProfile
-		g.defaultMu.RUnlock()
+	p, origin, err := g.ingest.Profile(req.GetDeviceId())
+	if err != nil {
+		return nil, ingestStatus(err)
 	}
 	if p == nil {
 		return nil, status.Errorf(codes.NotFound, "no alarm profile is configured")
@@ -337,146 +275,44 @@ func (g *Gateway) SetAlarmProfile(ctx context.Context, req *pb.SetAlarmProfileRe
 	who := auth.ActorFrom(ctx)
 	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "profile.set", Device: req.GetDeviceId(),
 		Detail: fmt.Sprintf("profile %s; reason: %s", p.Name, req.GetReason()), Remote: auth.RemoteFrom(ctx)}
-	targets := g.devices.all()
 	if req.GetDeviceId() != "" {
-		d, err := g.device(req.GetDeviceId())
-		if err != nil {
+		if err := checkID(req.GetDeviceId()); err != nil {
 			return nil, err
 		}
-		targets = []*device{d}
 	}
-	if err := g.db.SetProfile(req.GetDeviceId(), text, audit); err != nil {
-		return nil, status.Errorf(codes.Unavailable, "store: %v", err)
-	}
-	if req.GetDeviceId() == "" {
-		g.defaultMu.Lock()
-		g.defaultProfile = p
-		g.defaultMu.Unlock()
-	}
-	for _, d := range targets {
-		d.mu.Lock()
-		if req.GetDeviceId() == "" && d.ownProfile {
-			d.mu.Unlock()
-			continue
-		}
-		var evs []alarms.Event
-		if d.engine != nil {
-			t := math.Max(d.deviceTimeS(g.nowMS()), d.engine.LastT())
-			if err := d.engine.SetProfile(p, t, func(e alarms.Event) { evs = append(evs, e) }); err != nil {
-				d.mu.Unlock()
-				return nil, status.Errorf(codes.FailedPrecondition, "device %s: %v", d.id, err)
-			}
-		}
-		d.profile = p
-		d.ownProfile = req.GetDeviceId() != ""
-		rec := &record{dev: d}
-		g.alarmEffects(d, evs, rec)
-		d.mu.Unlock()
-		if err := g.w.sync(ctx, rec); err != nil && !errors.Is(err, errWriterClosed) {
-			return nil, status.Errorf(codes.Unavailable, "store: %v", err)
-		}
+	if err := g.ingest.SetProfile(ctx, req.GetDeviceId(), text, p, audit); err != nil {
+		return nil, ingestStatus(err)
 	}
 	return &pb.SetAlarmProfileResponse{Name: p.Name}, nil
 }
 
 // GetDeviceQuality implements FleetService.
 func (g *Gateway) GetDeviceQuality(ctx context.Context, req *pb.GetDeviceQualityRequest) (*pb.GetDeviceQualityResponse, error) {
-	d, err := g.device(req.GetDeviceId())
-	if err != nil {
+	if err := checkID(req.GetDeviceId()); err != nil {
 		return nil, err
 	}
-	q, err := g.deviceQuality(d)
+	q, err := g.ingest.Quality(req.GetDeviceId())
 	if err != nil {
-		return nil, err
+		return nil, qualityStatus(err)
 	}
 	return &pb.GetDeviceQualityResponse{Quality: q}, nil
 }
 
 // ListDeviceQuality implements FleetService.
 func (g *Gateway) ListDeviceQuality(ctx context.Context, _ *pb.ListDeviceQualityRequest) (*pb.ListDeviceQualityResponse, error) {
-	out := &pb.ListDeviceQualityResponse{}
-	for _, d := range g.devices.all() {
-		q, err := g.deviceQuality(d)
-		if err != nil {
-			return nil, err
-		}
-		out.Qualities = append(out.Qualities, q)
+	qs, err := g.ingest.Qualities()
+	if err != nil {
+		return nil, qualityStatus(err)
 	}
-	return out, nil
+	return &pb.ListDeviceQualityResponse{Qualities: qs}, nil
 }
 
-// deviceQuality assembles a device's quality figures: counters from its
-// cursor (persisted), distributions, shares, drift and rate from memory
-// (since the gateway started; see quality.go), uptime from its stored
-// sessions and the open one.
-func (g *Gateway) deviceQuality(d *device) (*pb.DeviceQuality, error) {
-	nowMS := g.nowMS()
-	const week = 7 * 24 * time.Hour
-	// Sessions that started inside the 7-day window, plus a day before it for
-	// sessions that started earlier and ended inside it. An open session is
-	// taken from memory, however long ago it started.
-	sessions, err := g.db.SessionsSince(d.id, nowMS-week.Milliseconds())
-	if err != nil {
-		return nil, status.Errorf(codes.Internal, "sessions of %s: %v", d.id, err)
+// qualityStatus: an unknown device is NOT_FOUND; the stored sessions that
+// could not be read are INTERNAL.
+func qualityStatus(err error) error {
+	var ie *ingest.Error
+	if errors.As(err, &ie) {
+		return ingestStatus(err)
 	}
-	d.mu.Lock()
-	defer d.mu.Unlock()
-	q := &pb.DeviceQuality{
-		DeviceId: d.id, Sessions: d.desc.Sessions,
-		ChunksLost: d.cur.Lost, Duplicates: d.cur.Duplicates, LateChunks: d.cur.Late,
-		ChunksAccepted: d.cur.Chunks, ChunksRejected: d.cur.Rejected, BatteryPct: d.desc.BatteryPct,
-	}
-	if d.desc.Sessions > 0 {
-		q.Reconnects = d.desc.Sessions - 1
-	}
-	if v := d.q.driftPPM(); !math.IsNaN(v) {
-		q.ClockDriftPpm = &v
-	} else if v := d.desc.DriftPPM; v != 0 {
-		q.ClockDriftPpm = &v // the last estimate stored, until memory has one
-	}
-	if v := d.q.effectiveRateHz(); !math.IsNaN(v) {
-		q.EffectiveSampleRateHz = &v
-	}
-	if d.q.seconds > 0 {
-		n := float64(d.q.seconds)
-		q.ValidSpo2Share = float64(d.q.validSpO2) / n
-		q.ClippingShare = float64(d.q.clipping) / n
-		q.LowResolutionShare = float64(d.q.lowRes) / n
-	}
-	if n, pos := d.q.sqi.quantiles(); n > 0 {
-		q.Sqi = &pb.Distribution{Count: n, P10: sqiValue(pos[0]), P50: sqiValue(pos[1]), P90: sqiValue(pos[2])}
-	}
-	if n, pos := d.q.pi.quantiles(); n > 0 {
-		q.PiPct = &pb.Distribution{Count: n, P10: piValue(pos[0]), P50: piValue(pos[1]), P90: piValue(pos[2])}
-	}
-	// The device's on-stretches: stored sessions and the open one. A
-	// session never closed (the gateway stopped without closing it) counts
-	// as down.
-	open := d.stream != nil
-	var on []span
-	seenOpen := false
-	for _, s := range sessions {
-		end := s.EndMS
-		if end == 0 {
-			if !open || s.StartMS != d.sessionMS {
-				continue
-			}
-			end, seenOpen = nowMS, true
-		}
-		on = append(on, span{s.StartMS, end})
-	}
-	if open && !seenOpen && d.sessionMS < nowMS {
-		on = append(on, span{d.sessionMS, nowMS}) // the open session started before the sessions read
-	}
-	up := func(window time.Duration) (float64, float64) {
-		share, covered := uptimeShare(on, d.desc.FirstSeenMS, nowMS, window)
-		if !covered {
-			return 0, 0
-		}
-		return share, float64(uptimeWindowMS(d.desc.FirstSeenMS, nowMS, window)) / 1000
-	}
-	q.Uptime_1H, q.Uptime_1HWindowS = up(time.Hour)
-	q.Uptime_24H, q.Uptime_24HWindowS = up(24 * time.Hour)
-	q.Uptime_7D, q.Uptime_7DWindowS = up(week)
-	return q, nil
+	return status.Errorf(codes.Internal, "%v", err)
 }

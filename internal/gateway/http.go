@@ -13,7 +13,7 @@ func (g *Gateway) httpHandler() http.Handler {
 	mux := http.NewServeMux()
 	metricsH := promhttp.HandlerFor(g.opt.Gatherer, promhttp.HandlerOpts{ErrorLog: nil, Registry: g.opt.Registerer})
 	mux.Handle("GET /metrics", http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
-		g.refreshDeviceSeries() // per-device gauges as of this scrape
+		g.ingest.RefreshDeviceSeries() // per-device gauges as of this scrape
 		metricsH.ServeHTTP(w, r)
 	}))
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
@@ -24,8 +24,8 @@ func (g *Gateway) httpHandler() http.Handler {
 		w.Header().Set("Content-Type", "text/plain; charset=utf-8")
 		if !g.Ready() {
 			w.WriteHeader(http.StatusServiceUnavailable)
-			if e := g.failed.Load(); e != nil {
-				fmt.Fprintf(w, "not ready: store write failed: %v\n", *e)
+			if err := g.ingest.StoreFailure(); err != nil {
+				fmt.Fprintf(w, "not ready: store write failed: %v\n", err)
 				return
 			}
 			fmt.Fprintln(w, "not ready")

@@ -3,7 +3,6 @@ package gateway
 import (
 	"fmt"
 	"log/slog"
-	"math"
 	"strings"
 	"time"
 
@@ -14,8 +13,10 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/estimator"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/internal/ids"
+	"github.com/pulsefleet/pulsefleet/internal/ingest"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // Options configure a Gateway. Zero values take the defaults named below.
@@ -38,7 +39,7 @@ type Options struct {
 	// MaxMessageBytes bounds one message from a device: a larger one (up to
 	// the transport limit, transportMaxBytes) is rejected with
 	// REJECT_REASON_TOO_LARGE and the stream goes on. 0 means the largest
-	// valid device message for MaxChunkSamples (largestValidMessage: a raw
+	// valid device message for MaxChunkSamples (ingest.LargestValidMessage: a raw
 	// chunk of that many 24-bit samples on three channels, 12,060 bytes at
 	// 1,000) plus a quarter for fields a newer device may add, rounded up to
 	// 4 KiB: 16 KiB by default.
@@ -88,7 +89,7 @@ type Options struct {
 	// per-stream message rate.
 	Security SecurityOptions
 
-	sendStall time.Duration // tests shorten it; 0 means sendStall (ingest.go)
+	sendStall time.Duration // tests shorten it; 0 means ingest.DefaultSendStall
 }
 
 func (o *Options) setDefaults() error {
@@ -125,9 +126,9 @@ func (o *Options) setDefaults() error {
 		o.MaxChunkSamples = 1000
 	}
 	if o.MaxMessageBytes == 0 {
-		o.MaxMessageBytes = defaultMaxMessageBytes(o.MaxChunkSamples)
+		o.MaxMessageBytes = ingest.DefaultMaxMessageBytes(o.MaxChunkSamples)
 	}
-	if n := largestValidMessage(o.MaxChunkSamples); o.MaxMessageBytes < n || o.MaxMessageBytes > transportMaxBytes {
+	if n := ingest.LargestValidMessage(o.MaxChunkSamples); o.MaxMessageBytes < n || o.MaxMessageBytes > transportMaxBytes {
 		return fmt.Errorf("gateway: Options.MaxMessageBytes %d, want %d (the largest valid message: a raw chunk of %d samples) .. %d (the transport limit)",
 			o.MaxMessageBytes, n, o.MaxChunkSamples, transportMaxBytes)
 	}
@@ -147,7 +148,7 @@ func (o *Options) setDefaults() error {
 		}
 	}
 	if o.sendStall == 0 {
-		o.sendStall = sendStall
+		o.sendStall = ingest.DefaultSendStall
 	}
 	if o.ExportRate == 0 {
 		o.ExportRate = defaultExportRate
@@ -185,38 +186,6 @@ const (
 // profile, a 64-character device id and a 500-character reason (66,109
 // bytes; PutCalibration's 64 KiB curve is a little smaller).
 func largestValidRequest() int {
-	return proto.Size(&pb.SetAlarmProfileRequest{DeviceId: strings.Repeat("x", maxIDLen),
+	return proto.Size(&pb.SetAlarmProfileRequest{DeviceId: strings.Repeat("x", ids.MaxLen),
 		ProfileYaml: strings.Repeat("y", 64<<10), Reason: strings.Repeat("r", 500)})
-}
-
-// largestValidMessage is the encoded size of the largest message a device
-// can send that passes validation: a raw chunk of maxSamples samples of a
-// 24-bit ADC (4-byte varints) on the red, infrared and ambient channels,
-// with every other field at its largest encoding. An introduction is
-// smaller (ids of 64 bytes, 8 labels of 32 + 64 bytes: about 1.2 KB), and
-// so is a summary or a status.
-func largestValidMessage(maxSamples int) int {
-	codes := make([]uint32, maxSamples)
-	for i := range codes {
-		codes[i] = 1<<maxADCBits - 1
-	}
-	chunk := &pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{
-		Sequence: math.MaxUint64, DeviceTimeUnixMs: math.MaxInt64, SampleRateHz: maxRateHz,
-		Red: codes, Ir: codes, Ambient: codes, LedDriveMa: 255, Gain: 1000}}}
-	id := strings.Repeat("x", maxIDLen)
-	labels := map[string]string{}
-	for i := 0; i < maxLabels; i++ {
-		labels[fmt.Sprintf("%0*d", maxLabelKeyLen, i)] = strings.Repeat("v", maxLabelValLen)
-	}
-	intro := &pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: &pb.Introduction{
-		DeviceId: id, Model: id, Firmware: id, CalibrationId: id, Mode: pb.Mode_MODE_RAW, AdcBits: maxADCBits,
-		RedWavelengthNm: maxWavelength, IrWavelengthNm: maxWavelength, Labels: labels}}}
-	return max(proto.Size(chunk), proto.Size(intro))
-}
-
-// defaultMaxMessageBytes is the largest valid message plus a quarter,
-// rounded up to 4 KiB.
-func defaultMaxMessageBytes(maxSamples int) int {
-	n := largestValidMessage(maxSamples) * 5 / 4
-	return (n + 4095) / 4096 * 4096
 }

@@ -135,13 +135,5 @@ func (s *participantService) DeleteParticipant(ctx context.Context, req *pb.Dele
 // forgetLatest drops a device's live latest point when its time lies in
 // [fromMS, toMS).
 func (g *Gateway) forgetLatest(device string, fromMS, toMS int64) {
-	d := g.devices.get(device)
-	if d == nil {
-		return
-	}
-	d.mu.Lock()
-	if d.latest != nil && d.latest.GetTimeUnixMs() >= fromMS && d.latest.GetTimeUnixMs() < toMS {
-		d.latest = nil
-	}
-	d.mu.Unlock()
+	g.ingest.ForgetLatest(device, fromMS, toMS)
 }

@@ -9,6 +9,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/ingest"
 	"github.com/pulsefleet/pulsefleet/internal/review"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
@@ -93,7 +94,7 @@ func reviewProto(r *store.Review, ep *store.Episode) *pb.EpisodeReview {
 	out := &pb.EpisodeReview{EpisodeId: r.EpisodeID, DeviceId: r.Device, Label: r.Label, Note: r.Note,
 		Reviewer: r.Reviewer, ReviewedUnixMs: r.TimeMS, Revision: r.Revision}
 	if ep != nil {
-		out.Episode = episodeProto(ep)
+		out.Episode = ingest.EpisodeProto(ep)
 	}
 	return out
 }

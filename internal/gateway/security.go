@@ -5,6 +5,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/ingest"
 )
 
 // SecurityOptions configure credential enforcement and per-stream limits.
@@ -98,6 +99,13 @@ func (g *Gateway) security() SecurityOptions {
 	g.secMu.RLock()
 	defer g.secMu.RUnlock()
 	return g.sec
+}
+
+// streamLimits are the per-stream limits in effect, for the ingest
+// pipeline.
+func (g *Gateway) streamLimits() ingest.Limits {
+	sec := g.security()
+	return ingest.Limits{Messages: sec.DeviceRate, Burst: sec.DeviceBurst, DeviceTime: sec.DeviceTimeRate, DeviceTimeBurst: sec.DeviceTimeBurst}
 }
 
 // AuthMode describes enforcement for the start-up message.

@@ -18,8 +18,10 @@ import (
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
 
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // bearer returns a context that sends tok as "authorization: Bearer tok".
@@ -340,10 +342,11 @@ func TestRateLimitRejectsAndStreamGoesOn(t *testing.T) {
 	}
 	d.waitAck(30)
 	lost := func() uint64 {
-		q := h.g.devices.get("fast-1")
-		q.mu.Lock()
-		defer q.mu.Unlock()
-		return q.cur.Lost
+		q, err := h.g.GetDeviceQuality(context.Background(), &pb.GetDeviceQualityRequest{DeviceId: "fast-1"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return q.GetQuality().GetChunksLost()
 	}
 	if n := lost(); n != 0 {
 		t.Errorf("%d messages counted lost, want 0", n)
@@ -397,25 +400,30 @@ func TestSecondStreamReplacesFirst(t *testing.T) {
 	}
 }
 
-// A panic while handling a message ends only that stream (INTERNAL); it is
+// A panic while serving a stream ends only that stream (INTERNAL); it is
 // counted, the gateway stays ready, and the device resumes where it was.
 func TestPanicInStreamIsRecovered(t *testing.T) {
-	h := newHarness(t, nil)
-	hook := func(m *pb.ConnectRequest) {
-		if s := m.GetSummary(); s != nil && s.GetSequence() == 3 && s.GetSpo2Pct() == 13 {
-			panic("injected fault")
+	// The fault is a calibration resolver that panics for one reference: a
+	// defect in code a stream calls.
+	h := newHarness(t, func(o *Options) {
+		o.ResolveCalibration = func(name string, redNM, irNM float64) (estimator.Calibration, string, error) {
+			if name == "injected-fault" {
+				panic("injected fault")
+			}
+			return calibration.Resolve(name, redNM, irNM, nil)
 		}
-	}
-	handleHook.Store(&hook)
-	defer handleHook.Store(nil)
+	})
 	base := time.Now().Add(-time.Minute).UnixMilli()
 	other, _ := h.connect(t, summaryIntro("calm-1"))
 	d, _ := h.connect(t, summaryIntro("boom-1"))
 	d.send(summary(1, base, 97))
 	d.send(summary(2, base+1000, 97))
 	d.waitAck(2)
-	d.send(summary(3, base+2000, 13))
-	if c := d.endCode(); c != codes.Internal {
+	in := rawIntro("boom-1", 16)
+	in.CalibrationId = "injected-fault"
+	boom := h.open(t)
+	boom.send(&pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: in}})
+	if c := boom.endCode(); c != codes.Internal {
 		t.Errorf("panicking stream ended with %v, want Internal", c)
 	}
 	if !h.g.Ready() {

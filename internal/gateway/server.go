@@ -2,11 +2,9 @@ package gateway
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"log/slog"
-	"math"
 	"net"
 	"net/http"
 	"sync"
@@ -19,12 +17,12 @@ import (
 	"google.golang.org/grpc/keepalive"
 	"google.golang.org/grpc/reflection"
 
-	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
-	"github.com/pulsefleet/pulsefleet/internal/web"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/internal/ingest"
 	"github.com/pulsefleet/pulsefleet/internal/shard"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	"github.com/pulsefleet/pulsefleet/internal/web"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // Gateway serves devices and operators. Create it with New, run it with Serve.
@@ -37,19 +35,12 @@ type Gateway struct {
 	log     *slog.Logger
 	backups *backupMetrics
 	history *pacer // paces ExportTrend's reads (Options.ExportRate)
-	m       *metrics
 	db      *store.DB
-	w       *writer
-	hub     *hub
-	devices registry
+	ingest  *ingest.Pipeline // devices, their streams, the writer, live events
 	health  *health.Server
-
-	defaultMu      sync.RWMutex
-	defaultProfile *alarms.Profile
 
 	ready    atomic.Bool
 	stopping atomic.Bool
-	failed   atomic.Pointer[error]
 
 	ring *shard.Ring // nil without sharding
 
@@ -68,16 +59,8 @@ func New(opt Options) (*Gateway, error) {
 	if err := opt.setDefaults(); err != nil {
 		return nil, err
 	}
-	g := &Gateway{opt: opt, log: opt.Logger, db: opt.Store, history: newPacer(opt.ExportRate), devices: registry{m: map[string]*device{}},
-		defaultProfile: opt.DefaultProfile}
-	m, err := newMetrics(opt.Registerer, func() float64 { return float64(opt.Store.Size()) })
-	if err != nil {
-		return nil, fmt.Errorf("gateway: metrics: %w", err)
-	}
-	g.m = m
-	if g.backups, err = newBackupMetrics(opt.Registerer, opt.Backups, opt.Store.ID()); err != nil {
-		return nil, fmt.Errorf("gateway: metrics: %w", err)
-	}
+	g := &Gateway{opt: opt, log: opt.Logger, db: opt.Store, history: newPacer(opt.ExportRate)}
+	var err error
 	if len(opt.Peers) > 0 {
 		r, err := shard.NewRing(opt.Peers)
 		if err != nil {
@@ -88,7 +71,6 @@ func New(opt Options) (*Gateway, error) {
 	if g.opt.ResolveCalibration == nil {
 		g.opt.ResolveCalibration = g.resolveStoredCalibration
 	}
-	g.hub = newHub(m)
 	a, err := auth.New(auth.Config{Store: opt.Store, Registerer: opt.Registerer, Log: opt.Logger, NowMS: g.nowMS, Audit: g.audit},
 		auth.Options{RequireTokens: opt.Security.RequireTokens, AuditPerMinute: opt.Security.AuthAuditPerMinute})
 	if err != nil {
@@ -96,147 +78,32 @@ func New(opt Options) (*Gateway, error) {
 	}
 	g.auth = a
 	g.applySecurity(opt.Security)
-	g.web = g.newWeb()
-	g.w = newWriter(opt.Store, opt.BatchDelay, opt.BatchRecords, m, opt.Now, g.storeFailed, g.storeWorks)
-	if err := g.load(); err != nil {
-		return nil, err
+	if g.calAssign, err = g.db.CalibrationAssignments(); err != nil {
+		return nil, fmt.Errorf("gateway: load calibration assignments: %w", err)
 	}
+	g.ingest, err = ingest.New(ingest.Config{
+		Store: opt.Store, Registerer: opt.Registerer, Log: opt.Logger, Now: opt.Now,
+		BatchDelay: opt.BatchDelay, BatchRecords: opt.BatchRecords, MaxMessageBytes: opt.MaxMessageBytes,
+		MaxChunkSamples: opt.MaxChunkSamples, LateAfter: opt.LateAfter, SendStall: opt.sendStall,
+		CaptureRaw: opt.CaptureRaw, TrendDays: opt.Retention.TrendDays, DefaultProfile: opt.DefaultProfile,
+		Limits: g.streamLimits, Owner: g.ownerOf, Authorize: g.auth.AuthorizeDevice, Calibration: g.streamCalibration,
+	})
+	if err != nil {
+		return nil, fmt.Errorf("gateway: %w", err)
+	}
+	if g.backups, err = newBackupMetrics(opt.Registerer, opt.Backups, opt.Store.ID()); err != nil {
+		return nil, fmt.Errorf("gateway: metrics: %w", err)
+	}
+	g.web = g.newWeb()
 	return g, nil
 }
 
-// load restores devices, cursors, profiles and alarm engines from the store.
-func (g *Gateway) load() error {
-	descs, err := g.db.Devices()
-	if err != nil {
-		return fmt.Errorf("gateway: load devices: %w", err)
-	}
-	curs, err := g.db.Cursors()
-	if err != nil {
-		return fmt.Errorf("gateway: load cursors: %w", err)
-	}
-	profs, err := g.db.Profiles()
-	if err != nil {
-		return fmt.Errorf("gateway: load profiles: %w", err)
-	}
-	if b, ok := profs[""]; ok {
-		p, err := alarms.ParseProfile(b)
-		if err != nil {
-			return fmt.Errorf("gateway: stored default profile: %w", err)
-		}
-		g.defaultProfile = p
-	}
-	if g.calAssign, err = g.db.CalibrationAssignments(); err != nil {
-		return fmt.Errorf("gateway: load calibration assignments: %w", err)
-	}
-	states, err := g.db.AlarmStates()
-	if err != nil {
-		return fmt.Errorf("gateway: load alarm states: %w", err)
-	}
-	for _, desc := range descs {
-		d, _ := g.devices.getOrCreate(desc.ID)
-		d.desc = desc
-		if c, ok := curs[desc.ID]; ok {
-			d.cur = c
-			d.durableSeq = c.LastSeq
-		}
-		if b, ok := profs[desc.ID]; ok {
-			p, err := alarms.ParseProfile(b)
-			if err != nil {
-				return fmt.Errorf("gateway: stored profile of %s: %w", desc.ID, err)
-			}
-			d.profile, d.ownProfile = p, true
-		}
-		if b, ok := states[desc.ID]; ok {
-			var st alarms.State
-			if err := json.Unmarshal(b, &st); err != nil {
-				return fmt.Errorf("gateway: alarm state of %s: %w", desc.ID, err)
-			}
-			p := d.profile
-			if p == nil {
-				p = g.defaultProfile
-			}
-			if p != nil {
-				e, err := alarms.Restore(p, st)
-				if err != nil {
-					g.log.Warn("alarm state not restored; starting fresh", "device", desc.ID, "err", err)
-				} else {
-					d.engine, d.profile, d.alarmRev = e, p, e.Revision()
-				}
-			}
-		}
-		if d.restoreClock(g.nowMS()) {
-			g.log.Warn("alarm state carried a time ahead of the gateway clock; evaluation rewound to now", "device", desc.ID)
-		}
-		g.refreshActive(d)
-	}
-	return nil
-}
+func (g *Gateway) nowMS() int64 { return g.opt.Now().UnixMilli() }
 
-// ensureEngine gives a device an alarm engine for its profile. Caller holds d.mu.
-func (g *Gateway) ensureEngine(d *device) {
-	if d.engine != nil {
-		return
-	}
-	p := d.profile
-	if p == nil {
-		g.defaultMu.RLock()
-		p = g.defaultProfile
-		g.defaultMu.RUnlock()
-	}
-	if p == nil {
-		return
-	}
-	e, err := alarms.NewEngine(p, d.id)
-	if err != nil {
-		g.log.Error("alarm engine", "device", d.id, "err", err)
-		return
-	}
-	d.engine, d.profile = e, p
-}
-
-// storeFailed is called by the writer when a batch did not commit: nothing
-// in it was acknowledged. The gateway stops being ready until a write
-// commits again. Each device with data in the batch enters a new write
-// epoch: what it sent after the failed range and is still queued is not
-// written nor acknowledged (writer.go), its cursor goes back to the last
-// durable message, and its stream ends with RESOURCE_EXHAUSTED (store full)
-// or UNAVAILABLE, so the device backs off and resends from the resume point
-// of its next welcome. Streams of other devices go on. Runs in the writer
-// goroutine, before the writer takes any later record.
-func (g *Gateway) storeFailed(err error, devs map[*device]bool) {
-	g.log.Error("store write failed; ending the streams of the devices in the batch", "err", err, "devices", len(devs))
-	g.failed.Store(&err)
-	for d := range devs {
-		d.mu.Lock()
-		d.epoch.Add(1)
-		d.rewindToDurable()
-		s := d.stream
-		d.mu.Unlock()
-		if s != nil {
-			s.cancel(&storeFault{err: err})
-		}
-	}
-}
-
-// storeWorks is called by the writer after a batch committed.
-func (g *Gateway) storeWorks() {
-	if g.failed.Load() != nil {
-		g.failed.Store(nil)
-		g.log.Info("store writes succeed again")
-	}
-}
-
-// storeFault is the cause of a stream ended because a batch with its
-// device's data failed to commit.
-type storeFault struct{ err error }
-
-func (e *storeFault) Error() string { return "store write failed: " + e.err.Error() }
-func (e *storeFault) Unwrap() error { return e.err }
-
-// Serve runs the gRPC server on grpcLis and the HTTP server on httpLis
-// (either may be nil) until ctx ends, then shuts down gracefully: stop
-// accepting, end streams, flush the writer (acknowledging what it commits).
-func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) error {
+// newGRPCServer builds the gRPC server with the transport bounds
+// (options.go), the caller's options and the guards of internal/auth, and
+// registers every service.
+func (g *Gateway) newGRPCServer() *grpc.Server {
 	opts := append([]grpc.ServerOption{
 		grpc.MaxRecvMsgSize(transportMaxBytes),
 		grpc.MaxConcurrentStreams(maxStreamsPerConn),
@@ -256,11 +123,17 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	g.health = health.NewServer()
 	healthpb.RegisterHealthServer(srv, g.health)
 	reflection.Register(srv)
+	return srv
+}
 
+// Serve runs the gRPC server on grpcLis and the HTTP server on httpLis
+// (either may be nil) until ctx ends, then shuts down gracefully (shutdown).
+func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) error {
+	srv := g.newGRPCServer()
 	var wg sync.WaitGroup
 	errc := make(chan error, 3)
 	wg.Add(1)
-	go func() { defer wg.Done(); g.w.run() }()
+	go func() { defer wg.Done(); g.ingest.RunWriter() }()
 	wdCtx, wdStop := context.WithCancel(context.Background())
 	wg.Add(1)
 	go func() { defer wg.Done(); g.watchdog(wdCtx) }()
@@ -298,10 +171,19 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	case <-ctx.Done():
 	case serveErr = <-errc:
 	}
+	g.shutdown(srv, hs)
+	wdStop()
+	g.ingest.CloseWriter()
+	wg.Wait()
+	g.log.Info("gateway stopped")
+	return serveErr
+}
 
-	// Shutdown: not ready, no new streams; open streams end (devices resend
-	// anything not acknowledged); the writer commits what is queued and
-	// acknowledges it as far as the streams are still there to hear it.
+// shutdown: not ready, no new streams; open streams end (devices resend
+// anything not acknowledged); the writer commits what is queued and
+// acknowledges it as far as the streams are still there to hear it. Each
+// stage waits at most Options.GracefulTimeout.
+func (g *Gateway) shutdown(srv *grpc.Server, hs *http.Server) {
 	g.ready.Store(false)
 	g.stopping.Store(true)
 	g.health.Shutdown()
@@ -310,18 +192,12 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	// Make everything accepted so far durable, so each stream's last ack is
 	// due before it is asked to end (the handler sends it on the way out).
 	sctx, scancel := context.WithTimeout(context.Background(), g.opt.GracefulTimeout)
-	if err := g.w.sync(sctx, nil); err != nil {
+	if err := g.ingest.Flush(sctx); err != nil {
 		g.log.Warn("shutdown: store flush", "err", err)
 	}
 	scancel()
 	// Streams are long-lived: ask them to end now rather than wait for devices.
-	for _, d := range g.devices.all() {
-		d.mu.Lock()
-		if s := d.stream; s != nil {
-			s.cancel(errors.New("gateway shutting down"))
-		}
-		d.mu.Unlock()
-	}
+	g.ingest.EndStreams(errors.New("gateway shutting down"))
 	select {
 	case <-done:
 	case <-time.After(g.opt.GracefulTimeout):
@@ -333,20 +209,16 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 		_ = hs.Shutdown(sctx)
 		cancel()
 	}
-	wdStop()
-	g.w.close()
-	wg.Wait()
-	g.log.Info("gateway stopped")
-	return serveErr
 }
 
 // Ready reports whether the gateway serves and its last store write
 // committed (for tests and /readyz).
-func (g *Gateway) Ready() bool { return g.ready.Load() && g.failed.Load() == nil }
+func (g *Gateway) Ready() bool { return g.ready.Load() && g.ingest.StoreFailure() == nil }
 
-// watchdog lets time pass for the alarm engines of devices without a stream,
-// so device_offline (and signal_lost) can be announced, and persists changes;
-// once an hour it drops history older than the retention.
+// watchdog runs every Options.WatchdogEvery: it lets time pass for the
+// devices (ingest.Pipeline.Tick: alarm engines of devices without a stream,
+// streams whose device stopped reading), probes a failed store so readiness
+// comes back, and once an hour drops history older than the retention.
 func (g *Gateway) watchdog(ctx context.Context) {
 	t := time.NewTicker(g.opt.WatchdogEvery)
 	defer t.Stop()
@@ -365,159 +237,15 @@ func (g *Gateway) watchdog(ctx context.Context) {
 				g.log.Info("retention dropped old day buckets", "buckets", n)
 			}
 		}
-		if g.failed.Load() != nil {
-			// Readiness must come back when writes do, even if no device
-			// writes (a load balancer sends none to an unready gateway).
-			if err := g.db.Probe(g.opt.Now()); err == nil {
-				g.storeWorks()
-			}
-		}
-		nowMS := g.nowMS()
-		for _, d := range g.devices.all() {
-			if s := d.streamNow(); s != nil {
-				s.checkStall()
-			}
-			d.mu.Lock()
-			// Streams move their own engines, but a device whose every
-			// message is refused for its clock still needs time to pass
-			// for device_clock_fault to be announced.
-			if d.engine == nil || d.stream != nil && !d.engine.ClockFault() {
-				d.mu.Unlock()
-				continue
-			}
-			var evs []alarms.Event
-			d.engine.Tick(d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
-			rec := &record{dev: d}
-			g.alarmEffects(d, evs, rec)
-			d.mu.Unlock()
-			if rec.alarm != nil || len(rec.episodes) > 0 {
-				_ = g.w.submit(ctx, rec)
-			}
-		}
+		g.ingest.ProbeStore()
+		g.ingest.Tick(ctx)
 	}
 }
 
-// alarmEffects turns engine events into stored episodes, metrics and live
-// events, and attaches a new snapshot to rec when the state changed.
-// Caller holds d.mu.
-func (g *Gateway) alarmEffects(d *device, evs []alarms.Event, rec *record) {
-	for i := range evs {
-		e := &evs[i]
-		switch e.Type {
-		case alarms.EventOnset:
-			continue // logged once it is announced or withdrawn
-		case alarms.EventAnnounced, alarms.EventEscalated:
-			g.m.announcements.WithLabelValues(e.Episode.Condition, e.Episode.Priority.String()).Inc()
-		}
-		g.m.episodeEvents.WithLabelValues(e.Type.String()).Inc()
-		var ep *store.Episode
-		if e.Type != alarms.EventPaused && e.Type != alarms.EventResumed {
-			ep = g.storeEpisode(d, &e.Episode)
-			rec.episodes = append(rec.episodes, ep)
-		}
-		if e.Type == alarms.EventPaused || e.Type == alarms.EventResumed || e.Type == alarms.EventAcknowledged {
-			who := e.Who
-			if who == "" {
-				who = "system"
-			}
-			rec.audit = append(rec.audit, &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "alarm." + e.Type.String(), Device: d.id,
-				Detail: episodeDetail(e)})
-		}
-		if g.hub.hasWatchers() {
-			ev := &pb.EpisodeEvent{Transition: e.Type.String(), Actor: e.Who}
-			if ep != nil {
-				ev.Episode = episodeProto(ep)
-			} else {
-				ev.Episode = &pb.Episode{DeviceId: d.id}
-			}
-			g.hub.publish(d.id, &pb.WatchEventsResponse{Event: &pb.WatchEventsResponse_EpisodeEvent{EpisodeEvent: ev}})
-		}
-	}
-	if len(evs) > 0 {
-		g.refreshActive(d)
-	}
-	if snap := d.alarmSnapshot(); snap != nil {
-		rec.dev = d
-		rec.alarm = snap
-	}
-}
-
-func episodeDetail(e *alarms.Event) string {
-	switch e.Type {
-	case alarms.EventPaused:
-		return fmt.Sprintf("paused until %s", time.UnixMilli(int64(e.Until*1000)).UTC().Format(time.RFC3339))
-	case alarms.EventResumed:
-		return "pause ended"
-	}
-	return fmt.Sprintf("%s episode %d (%s)", e.Episode.Condition, e.Episode.ID, e.Episode.Priority)
-}
-
-// storeEpisode maps an engine episode to its stored form; the stored id
-// combines the device's store index and the engine's per-device id.
-func (g *Gateway) storeEpisode(d *device, e *alarms.Episode) *store.Episode {
-	ms := func(s float64) int64 {
-		if math.IsNaN(s) {
-			return 0
-		}
-		return int64(math.Round(s * 1000))
-	}
-	min := e.MinSpO2
-	if math.IsNaN(min) {
-		min = -1
-	}
-	prof := ""
-	if d.profile != nil {
-		prof = d.profile.Name
-	}
-	return &store.Episode{
-		ID: uint64(d.desc.Index)<<32 | (e.ID & 0xffffffff), Device: d.id, Condition: e.Condition, Priority: e.Priority.String(),
-		OnsetMS: ms(e.OnsetS), AnnouncedMS: ms(e.AnnouncedS), EscalatedMS: ms(e.EscalatedS), EndedMS: ms(e.EndedS),
-		MinSpO2: min, DeficitPctS: e.DeficitPctS, AckedBy: e.AckedBy, AckedMS: ms(e.AckedS),
-		Active: e.Announced() && (e.Phase == alarms.Active || e.Phase == alarms.Latched), Profile: prof,
-	}
-}
-
-// refreshActive recomputes the device's contribution to the active-alarm
-// gauge from its engine. Caller holds d.mu.
-func (g *Gateway) refreshActive(d *device) {
-	now := map[[2]string]float64{}
-	if d.engine != nil {
-		for _, e := range d.engine.Episodes(nil) {
-			if e.Announced() && (e.Phase == alarms.Active || e.Phase == alarms.Latched) {
-				now[[2]string{e.Condition, e.Priority.String()}]++
-			}
-		}
-	}
-	for k, v := range d.activeGauge {
-		if now[k] != v {
-			g.m.alarmsActive.WithLabelValues(k[0], k[1]).Sub(v)
-		}
-	}
-	for k, v := range now {
-		if d.activeGauge[k] != v {
-			g.m.alarmsActive.WithLabelValues(k[0], k[1]).Add(v)
-		}
-	}
-	d.activeGauge = now
-}
-
-// publishDevice sends a connection change to watchers.
-func (g *Gateway) publishDevice(d *device, change string) {
-	if !g.hub.hasWatchers() {
-		return
-	}
-	d.mu.Lock()
-	pd := d.toProto()
-	d.mu.Unlock()
-	g.hub.publish(d.id, &pb.WatchEventsResponse{Event: &pb.WatchEventsResponse_DeviceChange{DeviceChange: &pb.DeviceChange{Device: pd, Change: change}}})
-}
-
-// audit writes an audit entry through the writer (durable before it returns).
+// audit queues an audit entry for the store (internal/auth and the web
+// page audit through it).
 func (g *Gateway) audit(ctx context.Context, actor, action, device, detail, remote string) {
-	e := &store.AuditEntry{TimeMS: g.nowMS(), Actor: actor, Action: action, Device: device, Detail: detail, Remote: remote}
-	if err := g.w.submit(context.WithoutCancel(ctx), &record{audit: []*store.AuditEntry{e}}); err != nil {
-		g.log.Warn("audit entry not stored", "action", action, "err", err)
-	}
+	g.ingest.Audit(ctx, actor, action, device, detail, remote)
 }
 
 // ownerOf returns the address of the gateway that owns deviceID when it is
@@ -530,38 +258,4 @@ func (g *Gateway) ownerOf(deviceID string) string {
 		return o
 	}
 	return ""
-}
-
-// assignedCalibration returns the calibration assigned to a device or its
-// model, from the gateway's copy of the assignments (read once, updated by
-// AssignCalibration), so thousands of devices connecting at once do not each
-// open a store transaction.
-func (g *Gateway) assignedCalibration(deviceID, model string) string {
-	g.calMu.RLock()
-	defer g.calMu.RUnlock()
-	if r, ok := g.calAssign["device:"+deviceID]; ok {
-		return r
-	}
-	return g.calAssign["model:"+model]
-}
-
-func episodeProto(e *store.Episode) *pb.Episode {
-	out := &pb.Episode{
-		EpisodeId: e.ID, DeviceId: e.Device, Condition: e.Condition, Priority: priorityFromString(e.Priority),
-		OnsetUnixMs: e.OnsetMS, AnnouncedUnixMs: e.AnnouncedMS, EscalatedUnixMs: e.EscalatedMS, EndedUnixMs: e.EndedMS,
-		AreaBelowLimitPctS: e.DeficitPctS, AcknowledgedBy: e.AckedBy, AcknowledgedUnixMs: e.AckedMS, Active: e.Active, Profile: e.Profile,
-	}
-	if e.MinSpO2 >= 0 {
-		v := e.MinSpO2
-		out.MinSpo2Pct = &v
-	}
-	return out
-}
-
-func priorityFromString(s string) pb.Priority {
-	p, err := alarms.ParsePriority(s)
-	if err != nil {
-		return pb.Priority_PRIORITY_UNSPECIFIED
-	}
-	return priorityProto(p)
 }

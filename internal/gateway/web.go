@@ -21,8 +21,7 @@ func (f fleetForWeb) RawCaptures(deviceID string, fromMS, toMS int64, fn func(st
 }
 
 func (f fleetForWeb) Watch(devices []string, points bool, buffer int) (<-chan *pb.WatchEventsResponse, func()) {
-	sub := f.hub.subscribe(devices, points, buffer)
-	return sub.ch, func() { f.hub.unsubscribe(sub) }
+	return f.ingest.Watch(devices, points, buffer)
 }
 
 func (f fleetForWeb) Stopping() bool { return f.stopping.Load() }

@@ -5,7 +5,6 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"io"
 	"math"
 	"net/http"
@@ -18,6 +17,8 @@ import (
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 
 	"github.com/chromedp/chromedp"
 
@@ -193,16 +194,18 @@ func webFleet(t *testing.T, h *harness, clk *shiftClock) map[string]*testDevice 
 	return open
 }
 
+// connected reports whether the device has an open stream (FleetService).
+func connected(h *harness, id string) bool {
+	r, err := h.g.GetDevice(context.Background(), &pb.GetDeviceRequest{DeviceId: id})
+	return err != nil || r.GetDevice().GetConnected()
+}
+
 // waitGone waits (bounded) until the gateway has closed the device's stream.
 func waitGone(t testing.TB, h *harness, id string) {
 	t.Helper()
 	deadline := time.Now().Add(10 * time.Second)
 	for {
-		dev := h.g.devices.get(id)
-		dev.mu.Lock()
-		gone := dev.stream == nil
-		dev.mu.Unlock()
-		if gone {
+		if !connected(h, id) {
 			return
 		}
 		if time.Now().After(deadline) {

@@ -10,7 +10,7 @@ import (
 )
 
 // A gateway whose store is full ends streams with RESOURCE_EXHAUSTED
-// (internal/gateway/doc.go, Delivery); the simulated device must keep growing its
+// (internal/ingest/doc.go, Delivery); the simulated device must keep growing its
 // reconnect backoff then, even after a welcome, instead of hammering the
 // gateway every 100 ms. A stream replaced or ended on purpose does not.
 func TestBackOffOnStoreFull(t *testing.T) {

@@ -98,7 +98,7 @@ func Run(ctx context.Context, opts Options) (*Report, error) {
 	if start.IsZero() {
 		// Time compression replays the past: device clocks start early
 		// enough to reach the wall clock when the run ends (the gateway
-		// refuses device times ahead of its clock; internal/gateway/doc.go).
+		// refuses device times ahead of its clock; internal/ingest/doc.go).
 		span := horizon
 		if dur > 0 {
 			span = time.Duration(float64(dur) * f.speed)

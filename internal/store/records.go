@@ -39,7 +39,7 @@ type Cursor struct {
 	LastSeenMS int64  // gateway clock at the last accepted message
 	// LastDeviceMS is the device time of the message at LastSeq (0 =
 	// unknown): a later message must carry a later device time, so a
-	// resend of stored device times is refused as stale (internal/gateway/doc.go).
+	// resend of stored device times is refused as stale (internal/ingest/doc.go).
 	LastDeviceMS int64
 }
 

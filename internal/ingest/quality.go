@@ -1,4 +1,4 @@
-package gateway
+package ingest
 
 import (
 	"math"
@@ -46,8 +46,8 @@ const (
 	clockRefWindows = 10
 )
 
-// validWindow is how many recent trend seconds the valid-SpO2 gauge covers.
-const validWindow = 300
+// ValidWindow is how many recent trend seconds the valid-SpO2 gauge covers.
+const ValidWindow = 300
 
 // quality accumulates a device's signal-quality figures in memory. Caller
 // holds the device's lock for every method.
@@ -56,7 +56,7 @@ type quality struct {
 	validSpO2 uint64
 	clipping  uint64
 	lowRes    uint64
-	recent    bitRing // validity of the last validWindow trend points
+	recent    bitRing // validity of the last ValidWindow trend points
 	sqi, pi   halves
 
 	// effective sample rate over the current session (device time)
@@ -67,9 +67,6 @@ type quality struct {
 
 	clock clockEst
 }
-
-// init prepares the accumulators (they need no allocation: the zero value is ready).
-func (q *quality) init() {}
 
 // startSession resets what is measured per session (sessions and reconnects
 // themselves are counted in the stored device description).
@@ -137,21 +134,21 @@ func (q *quality) addPoint(p *store.Point) {
 // observations span clockMinSpanMS.
 func (q *quality) driftPPM() float64 { return q.clock.driftPPM() }
 
-// recentValidShare is the share of the last validWindow trend points with a
+// recentValidShare is the share of the last ValidWindow trend points with a
 // valid SpO2; NaN before the first point.
 func (q *quality) recentValidShare() float64 { return q.recent.share() }
 
-// bitRing remembers the last validWindow booleans.
+// bitRing remembers the last ValidWindow booleans.
 type bitRing struct {
-	bits [(validWindow + 63) / 64]uint64
-	n    int // values held, up to validWindow
+	bits [(ValidWindow + 63) / 64]uint64
+	n    int // values held, up to ValidWindow
 	next int
 	ones int
 }
 
 func (r *bitRing) push(v bool) {
 	w, b := r.next/64, uint(r.next%64)
-	if r.n == validWindow {
+	if r.n == ValidWindow {
 		if r.bits[w]&(1<<b) != 0 {
 			r.ones--
 		}
@@ -164,7 +161,7 @@ func (r *bitRing) push(v bool) {
 	} else {
 		r.bits[w] &^= 1 << b
 	}
-	r.next = (r.next + 1) % validWindow
+	r.next = (r.next + 1) % ValidWindow
 }
 
 func (r *bitRing) share() float64 {
@@ -337,18 +334,18 @@ func (c *clockEst) driftPPM() float64 {
 	return sxy / sxx * 1e6
 }
 
-// refreshDeviceSeries brings the per-device gauges up to date with every
-// known device (called before /metrics is served, so a scrape sees the
-// current figures, including devices restored from the store that have not
-// reconnected). A device without a stream and silent for longer than the
-// trend retention (Options.Retention.TrendDays, when set) has its series
+// RefreshDeviceSeries brings the per-device gauges up to date with every
+// known device (the gateway calls it before /metrics is served, so a scrape
+// sees the current figures, including devices restored from the store that
+// have not reconnected). A device without a stream and silent for longer
+// than the trend retention (Config.TrendDays, when set) has its series
 // deleted: its history is gone too.
-func (g *Gateway) refreshDeviceSeries() {
+func (p *Pipeline) RefreshDeviceSeries() {
 	var cutoff int64 = math.MinInt64
-	if days := g.opt.Retention.TrendDays; days > 0 {
-		cutoff = g.nowMS() - int64(days)*24*3600*1000
+	if days := p.cfg.TrendDays; days > 0 {
+		cutoff = p.nowMS() - int64(days)*24*3600*1000
 	}
-	for _, d := range g.devices.all() {
+	for _, d := range p.devices.all() {
 		d.mu.Lock()
 		connected, valid, drift := d.stream != nil, d.q.recentValidShare(), d.q.driftPPM()
 		battery := math.NaN()
@@ -358,9 +355,9 @@ func (g *Gateway) refreshDeviceSeries() {
 		idle := !connected && max(d.cur.LastSeenMS, d.desc.LastSeenMS) < cutoff
 		d.mu.Unlock()
 		if idle {
-			g.m.deleteDevice(d.id)
+			p.m.deleteDevice(d.id)
 			continue
 		}
-		g.m.deviceSeries(d.id, connected, valid, drift, battery)
+		p.m.deviceSeries(d.id, connected, valid, drift, battery)
 	}
 }

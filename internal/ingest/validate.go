@@ -1,11 +1,13 @@
-package gateway
+package ingest
 
 import (
 	"fmt"
 	"math"
+	"strings"
 
 	"github.com/pulsefleet/pulsefleet/internal/ids"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"google.golang.org/protobuf/proto"
 )
 
 // Bounds of a device's messages. They are part of the API (see ingest.proto).
@@ -13,7 +15,7 @@ const (
 	minRateHz      = 25
 	maxRateHz      = 1000
 	minADCBits     = 8
-	maxADCBits     = 24
+	MaxADCBits     = 24
 	minWavelength  = 500
 	maxWavelength  = 1100
 	maxIDLen       = ids.MaxLen
@@ -22,7 +24,7 @@ const (
 	maxLabelValLen = 64
 	// maxClockSkew bounds how far a device time may be behind the gateway
 	// clock: older is refused (a device with no clock must set one). The
-	// bound ahead is clockAheadMax; both are applied by admitTime (clock.go),
+	// bound ahead is ClockAheadMax; both are applied by admitTime (clock.go),
 	// which raises device_clock_fault for every message it refuses.
 	maxClockSkew = 366 * 24 * 3600 * 1000
 )
@@ -71,8 +73,8 @@ func validateIntroduction(in *pb.Introduction) *pb.Rejection {
 			return invalid(0, f.name, "%v nm, want %d..%d", f.v, minWavelength, maxWavelength)
 		}
 	}
-	if in.GetMode() == pb.Mode_MODE_RAW && (in.AdcBits < minADCBits || in.AdcBits > maxADCBits) {
-		return invalid(0, "introduction.adc_bits", "%d, want %d..%d in raw mode", in.AdcBits, minADCBits, maxADCBits)
+	if in.GetMode() == pb.Mode_MODE_RAW && (in.AdcBits < minADCBits || in.AdcBits > MaxADCBits) {
+		return invalid(0, "introduction.adc_bits", "%d, want %d..%d in raw mode", in.AdcBits, minADCBits, MaxADCBits)
 	}
 	if len(in.Labels) > maxLabels {
 		return invalid(0, "introduction.labels", "%d labels, want at most %d", len(in.Labels), maxLabels)
@@ -171,4 +173,36 @@ func validateStatus(s *pb.DeviceStatus) *pb.Rejection {
 		return invalid(0, "status.link_quality", "%v, want 0..1 (negative = unknown)", l)
 	}
 	return nil
+}
+
+// LargestValidMessage is the encoded size of the largest message a device
+// can send that passes validation: a raw chunk of maxSamples samples of a
+// 24-bit ADC (4-byte varints) on the red, infrared and ambient channels,
+// with every other field at its largest encoding. An introduction is
+// smaller (ids of 64 bytes, 8 labels of 32 + 64 bytes: about 1.2 KB), and
+// so is a summary or a status.
+func LargestValidMessage(maxSamples int) int {
+	codes := make([]uint32, maxSamples)
+	for i := range codes {
+		codes[i] = 1<<MaxADCBits - 1
+	}
+	chunk := &pb.ConnectRequest{Kind: &pb.ConnectRequest_RawChunk{RawChunk: &pb.RawChunk{
+		Sequence: math.MaxUint64, DeviceTimeUnixMs: math.MaxInt64, SampleRateHz: maxRateHz,
+		Red: codes, Ir: codes, Ambient: codes, LedDriveMa: 255, Gain: 1000}}}
+	id := strings.Repeat("x", maxIDLen)
+	labels := map[string]string{}
+	for i := 0; i < maxLabels; i++ {
+		labels[fmt.Sprintf("%0*d", maxLabelKeyLen, i)] = strings.Repeat("v", maxLabelValLen)
+	}
+	intro := &pb.ConnectRequest{Kind: &pb.ConnectRequest_Introduction{Introduction: &pb.Introduction{
+		DeviceId: id, Model: id, Firmware: id, CalibrationId: id, Mode: pb.Mode_MODE_RAW, AdcBits: MaxADCBits,
+		RedWavelengthNm: maxWavelength, IrWavelengthNm: maxWavelength, Labels: labels}}}
+	return max(proto.Size(chunk), proto.Size(intro))
+}
+
+// DefaultMaxMessageBytes is the largest valid message plus a quarter,
+// rounded up to 4 KiB.
+func DefaultMaxMessageBytes(maxSamples int) int {
+	n := LargestValidMessage(maxSamples) * 5 / 4
+	return (n + 4095) / 4096 * 4096
 }

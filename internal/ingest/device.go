@@ -1,15 +1,14 @@
-package gateway
+package ingest
 
 import (
 	"encoding/json"
-	"math"
 	"sort"
 	"sync"
 	"sync/atomic"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // device is the gateway's live view of one device. It outlives streams: a
@@ -125,18 +124,6 @@ func (d *device) toProto() *pb.Device {
 	return out
 }
 
-func priorityProto(p alarms.Priority) pb.Priority {
-	switch p {
-	case alarms.PriorityLow:
-		return pb.Priority_PRIORITY_LOW
-	case alarms.PriorityMedium:
-		return pb.Priority_PRIORITY_MEDIUM
-	case alarms.PriorityHigh:
-		return pb.Priority_PRIORITY_HIGH
-	}
-	return pb.Priority_PRIORITY_UNSPECIFIED
-}
-
 // registry holds every known device.
 type registry struct {
 	mu sync.RWMutex
@@ -160,7 +147,6 @@ func (r *registry) getOrCreate(id string) (*device, bool) {
 	d.desc.ID = id
 	d.desc.BatteryPct = -1
 	d.cur.Device = id
-	d.q.init()
 	r.m[id] = d
 	return d, true
 }
@@ -175,26 +161,4 @@ func (r *registry) all() []*device {
 	r.mu.RUnlock()
 	sort.Slice(out, func(i, j int) bool { return out[i].id < out[j].id })
 	return out
-}
-
-// optF converts NaN to an absent optional value.
-func optF(v float64) *float64 {
-	if math.IsNaN(v) || math.IsInf(v, 0) {
-		return nil
-	}
-	return &v
-}
-
-func pointProto(p *store.Point) *pb.TrendPoint {
-	return &pb.TrendPoint{
-		DeviceId:   p.Device,
-		TimeUnixMs: p.TimeMS,
-		Spo2Pct:    optF(p.SpO2),
-		PulseBpm:   optF(p.Pulse),
-		PiPct:      optF(p.PI),
-		Sqi:        optF(p.SQI),
-		Ratio:      optF(p.Ratio),
-		Flags:      uint32(p.Flags),
-		Source:     pb.Source(p.Source),
-	}
 }

@@ -1,8 +1,6 @@
-package gateway
+package ingest
 
 import (
-	"sync/atomic"
-
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
@@ -15,14 +13,14 @@ type tokenBucket struct {
 	tokens float64
 	lastMS int64
 	// holdFrom is the lowest data sequence refused over the limit and not
-	// yet resent (0 = none), since holdMS; the hold ends after rateHoldMS
+	// yet resent (0 = none), since holdMS; the hold ends after RateHoldMS
 	// (a device that gave that message up is not blocked for ever).
 	holdFrom uint64
 	holdMS   int64
 }
 
-// rateHoldMS is how long later messages wait for a refused one's resend.
-const rateHoldMS = 10_000
+// RateHoldMS is how long later messages wait for a refused one's resend.
+const RateHoldMS = 10_000
 
 func (b *tokenBucket) init(perSecond float64, burst int, nowMS int64) {
 	b.rate, b.burst, b.tokens, b.lastMS = perSecond/1000, float64(burst), float64(burst), nowMS
@@ -67,18 +65,18 @@ func deviceSpanS(m *pb.ConnectRequest) float64 {
 // rateLimited applies the stream's message-rate limit to m: over it, m is
 // rejected with REJECT_REASON_RATE_LIMITED (the device slows down and
 // resends from that sequence) and the stream goes on. Until the device does
-// resend from there (or rateHoldMS passes), later data messages are rejected
+// resend from there (or RateHoldMS passes), later data messages are rejected
 // the same way, so a message that arrives after a refill cannot be accepted
 // past the rejected one (which would then count as lost and its resend as
 // stale).
 func (s *stream) rateLimited(m *pb.ConnectRequest, nowMS int64) bool {
 	if s.bucket.burst == 0 {
-		sec := s.g.security()
-		s.bucket.init(sec.DeviceRate, sec.DeviceBurst, nowMS)
-		s.span.rate, s.span.burst, s.span.tokens, s.span.lastMS = sec.DeviceTimeRate/1000, sec.DeviceTimeBurst.Seconds(), sec.DeviceTimeBurst.Seconds(), nowMS
+		lim := s.p.cfg.Limits()
+		s.bucket.init(lim.Messages, lim.Burst, nowMS)
+		s.span.rate, s.span.burst, s.span.tokens, s.span.lastMS = lim.DeviceTime/1000, lim.DeviceTimeBurst.Seconds(), lim.DeviceTimeBurst.Seconds(), nowMS
 	}
 	seq := seqOf(m)
-	if s.bucket.holdFrom != 0 && nowMS-s.bucket.holdMS > rateHoldMS {
+	if s.bucket.holdFrom != 0 && nowMS-s.bucket.holdMS > RateHoldMS {
 		s.bucket.holdFrom = 0
 	}
 	if h := s.bucket.holdFrom; h != 0 && seq > h {
@@ -112,14 +110,4 @@ func (s *stream) rateLimited(m *pb.ConnectRequest, nowMS int64) bool {
 			s.span.rate*1000, s.span.burst, seq))
 	}
 	return true
-}
-
-// handleHook, when set, is called with every message a stream handles
-// (tests inject faults with it, such as a panic).
-var handleHook atomic.Pointer[func(*pb.ConnectRequest)]
-
-func callHandleHook(m *pb.ConnectRequest) {
-	if h := handleHook.Load(); h != nil {
-		(*h)(m)
-	}
 }

@@ -1,12 +1,12 @@
-package gateway
+package ingest
 
 import (
 	"math"
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // Device time policy (the rule and its reasons are in doc.go, "Device
@@ -15,14 +15,14 @@ import (
 // history, and raises the technical condition device_clock_fault whenever it
 // refuses or distrusts a device's clock.
 const (
-	// clockAheadMax is how far a device time may be ahead of the gateway
+	// ClockAheadMax is how far a device time may be ahead of the gateway
 	// clock. Beyond it the message is refused (INVALID_FIELD naming
 	// *.device_time_unix_ms and the bound): a time ahead of now would hold
 	// back every later message of a correct clock for as long (team choice:
 	// well above the error of a device clock set from Welcome's gateway
 	// time, well below the 10 s delay of device_clock_fault and the 15 s
 	// spo2_low delay of adult-ward-pilot).
-	clockAheadMax = 5 * time.Second
+	ClockAheadMax = 5 * time.Second
 	// clockLagMax is how far a session's messages may fall behind the
 	// least-behind message of the same session (device minus gateway time)
 	// before the clock is distrusted: a clock that runs slow or stands
@@ -32,16 +32,16 @@ const (
 	clockLagMax = 60 * time.Second
 	// clockTrustLag: once device_clock_fault is present, an accepted message
 	// clears it only when it lags the session's least-behind message by at
-	// most this (team choice: twice clockAheadMax), so a clock that is stuck
+	// most this (team choice: twice ClockAheadMax), so a clock that is stuck
 	// or slow and only now and then accepted cannot keep restarting the
 	// fault's delay.
-	clockTrustLag = 2 * clockAheadMax
+	clockTrustLag = 2 * ClockAheadMax
 	// clockClearAfter: device_clock_fault clears only after accepted
 	// messages within clockTrustLag for this long without a refusal (team
 	// choice: half the 10 s delay of device_clock_fault, so a glitch of a
 	// few seconds is withdrawn before it is announced, and a clock accepted
 	// only now and then cannot keep restarting the fault's delay).
-	clockClearAfter = clockAheadMax
+	clockClearAfter = ClockAheadMax
 )
 
 // seqTime is an accepted data message not yet known durable.
@@ -78,9 +78,9 @@ func (d *device) admitTime(seq uint64, field string, devMS int64, samples uint32
 	switch ahead := devMS - nowMS; {
 	case devMS <= 0 || devMS < nowMS-maxClockSkew:
 		rej = invalid(seq, field, "%d, want after %d (at most one year before the gateway clock)", devMS, nowMS-maxClockSkew)
-	case ahead > clockAheadMax.Milliseconds():
+	case ahead > ClockAheadMax.Milliseconds():
 		rej = invalid(seq, field, "%d is %v ahead of the gateway clock (%d), want at most %v ahead (%d); set the device clock from Welcome.gateway_time_unix_ms",
-			devMS, time.Duration(ahead)*time.Millisecond, nowMS, clockAheadMax, nowMS+clockAheadMax.Milliseconds())
+			devMS, time.Duration(ahead)*time.Millisecond, nowMS, ClockAheadMax, nowMS+ClockAheadMax.Milliseconds())
 	case last != 0 && devMS <= last:
 		rej = reject(seq, pb.RejectReason_REJECT_REASON_STALE_DEVICE_TIME, field,
 			"%d is not after %d, the device time of the last accepted message; the first values stored at a device time are kept, never rewritten", devMS, last)
@@ -186,12 +186,12 @@ func (d *device) rewindToDurable() {
 
 // restoreClock bounds what a store holds about a device's clock and alarm
 // engine by the gateway clock at start-up: a device time or an engine clock
-// ahead of nowMS by more than clockAheadMax (written before device times
+// ahead of nowMS by more than ClockAheadMax (written before device times
 // were bounded, or the gateway clock was set back) would refuse or ignore
 // every later message of a correct clock. It reports whether it changed the
 // engine. Caller holds d.mu (or owns d alone).
 func (d *device) restoreClock(nowMS int64) bool {
-	bound := nowMS + clockAheadMax.Milliseconds()
+	bound := nowMS + ClockAheadMax.Milliseconds()
 	if d.cur.LastDeviceMS > bound {
 		d.cur.LastDeviceMS = nowMS
 	}

@@ -1,4 +1,4 @@
-package gateway
+package ingest
 
 import (
 	"context"
@@ -108,139 +108,154 @@ func (w *writer) close() {
 	}
 }
 
-// run commits batches until the input is closed and drained.
+// pending is the batch run is assembling: the records in it and their
+// store form. Owned by run.
+type pending struct {
+	b       store.Batch
+	recs    []*record
+	curIdx  map[*device]int  // index of a device's cursor in b.Cursors
+	devSeen map[*device]bool // scratch: devices with data in a failed batch
+}
+
+// run commits batches until the input is closed and drained: it takes the
+// first waiting record, then more until maxRecs or maxWait after the first,
+// and commits them in one transaction.
 func (w *writer) run() {
-	var (
-		b       store.Batch
-		recs    []*record
-		curIdx  = map[*device]int{}
-		timer   = time.NewTimer(time.Hour)
-		devSeen = map[*device]bool{}
-	)
+	bt := &pending{curIdx: map[*device]int{}, devSeen: map[*device]bool{}}
+	timer := time.NewTimer(time.Hour)
 	timer.Stop()
-	add := func(r *record) {
-		recs = append(recs, r)
-		if r.seq > 0 && r.dev != nil && r.epoch != r.dev.epoch.Load() {
-			// Accepted before a batch with this device's data failed:
-			// everything of the device after the failed range waits for
-			// the device to resend from its durable point (internal/store/doc.go
-			// states the rule and why it holds). The data goes; what is
-			// not data (alarm episodes and state) is still written.
-			w.m.discarded.Inc()
-			r.seq, r.stream, r.chunk, r.points, r.raw = 0, nil, nil, nil, nil
-		}
-		if r.desc != nil {
-			b.Devices = append(b.Devices, r.desc)
-		}
-		if r.dev != nil && r.seq > 0 {
-			if i, ok := curIdx[r.dev]; ok {
-				b.Cursors[i] = r.cursor
-			} else {
-				curIdx[r.dev] = len(b.Cursors)
-				b.Cursors = append(b.Cursors, r.cursor)
-			}
-		}
-		if r.chunk != nil {
-			b.Chunks = append(b.Chunks, *r.chunk)
-		}
-		b.Points = append(b.Points, r.points...)
-		if r.raw != nil {
-			b.Raw = append(b.Raw, *r.raw)
-		}
-		if r.session != nil {
-			b.Sessions = append(b.Sessions, *r.session)
-		}
-		b.Episodes = append(b.Episodes, r.episodes...)
-		if r.alarm != nil && r.dev != nil {
-			if b.AlarmStates == nil {
-				b.AlarmStates = map[string][]byte{}
-			}
-			b.AlarmStates[r.dev.id] = r.alarm
-		}
-		b.Audit = append(b.Audit, r.audit...)
-	}
-	takeCarry := func() {
-		for _, r := range w.carry {
-			add(r)
-		}
-		clear(w.carry)
-		w.carry = w.carry[:0]
-	}
-	commit := func() {
-		if len(recs) == 0 {
-			return
-		}
-		start := w.now()
-		err := w.db.Write(&b)
-		end := w.now()
-		w.m.commitSeconds.Observe(end.Sub(start).Seconds())
-		w.m.batchRecords.Observe(float64(len(recs)))
-		if err != nil {
-			w.m.storeErrors.Inc()
-			clear(devSeen)
-			for _, r := range recs {
-				if r.seq > 0 && r.dev != nil {
-					devSeen[r.dev] = true
-				}
-				if c := r.control(); c != nil && len(w.carry) < maxCarry {
-					w.carry = append(w.carry, c)
-				} else if c != nil {
-					w.m.carryDropped.Inc()
-				}
-			}
-			// Before any later record is added: from here on, records of
-			// these devices accepted before now are not data any more.
-			w.onFail(err, devSeen)
-		} else {
-			w.onOK()
-		}
-		clear(devSeen)
-		for _, r := range recs {
-			if err == nil && r.seq > 0 {
-				w.m.durableSeconds.Observe(end.Sub(r.received).Seconds())
-				if r.dev != nil {
-					r.dev.markDurable(r.seq)
-				}
-				if r.stream != nil {
-					r.stream.ackThrough(r.seq)
-				}
-			}
-			if r.done != nil {
-				r.done <- err
-			}
-		}
-		clear(recs)
-		recs = recs[:0]
-		clear(curIdx)
-		b.Reset()
-	}
 	for {
 		r, ok := <-w.in
 		if !ok {
-			takeCarry()
-			commit()
+			w.takeCarry(bt)
+			w.commit(bt)
 			return
 		}
 		w.m.writerQueue.Dec()
-		takeCarry()
-		add(r)
+		w.takeCarry(bt)
+		w.add(bt, r)
 		timer.Reset(w.maxWait)
 	collect:
-		for len(recs) < w.maxRecs {
+		for len(bt.recs) < w.maxRecs {
 			select {
 			case r, ok := <-w.in:
 				if !ok {
 					break collect
 				}
 				w.m.writerQueue.Dec()
-				add(r)
+				w.add(bt, r)
 			case <-timer.C:
 				break collect
 			}
 		}
 		timer.Stop()
-		commit()
+		w.commit(bt)
 	}
+}
+
+// add puts r into the batch.
+func (w *writer) add(bt *pending, r *record) {
+	b := &bt.b
+	bt.recs = append(bt.recs, r)
+	if r.seq > 0 && r.dev != nil && r.epoch != r.dev.epoch.Load() {
+		// Accepted before a batch with this device's data failed:
+		// everything of the device after the failed range waits for
+		// the device to resend from its durable point (internal/store/doc.go
+		// states the rule and why it holds). The data goes; what is
+		// not data (alarm episodes and state) is still written.
+		w.m.discarded.Inc()
+		r.seq, r.stream, r.chunk, r.points, r.raw = 0, nil, nil, nil, nil
+	}
+	if r.desc != nil {
+		b.Devices = append(b.Devices, r.desc)
+	}
+	if r.dev != nil && r.seq > 0 {
+		if i, ok := bt.curIdx[r.dev]; ok {
+			b.Cursors[i] = r.cursor
+		} else {
+			bt.curIdx[r.dev] = len(b.Cursors)
+			b.Cursors = append(b.Cursors, r.cursor)
+		}
+	}
+	if r.chunk != nil {
+		b.Chunks = append(b.Chunks, *r.chunk)
+	}
+	b.Points = append(b.Points, r.points...)
+	if r.raw != nil {
+		b.Raw = append(b.Raw, *r.raw)
+	}
+	if r.session != nil {
+		b.Sessions = append(b.Sessions, *r.session)
+	}
+	b.Episodes = append(b.Episodes, r.episodes...)
+	if r.alarm != nil && r.dev != nil {
+		if b.AlarmStates == nil {
+			b.AlarmStates = map[string][]byte{}
+		}
+		b.AlarmStates[r.dev.id] = r.alarm
+	}
+	b.Audit = append(b.Audit, r.audit...)
+}
+
+// takeCarry puts what failed batches carried over into the batch.
+func (w *writer) takeCarry(bt *pending) {
+	for _, r := range w.carry {
+		w.add(bt, r)
+	}
+	clear(w.carry)
+	w.carry = w.carry[:0]
+}
+
+// commit writes the batch in one transaction, then acknowledges its data
+// records (or, when it failed, carries its other parts over and reports
+// the devices with data in it), and empties it.
+func (w *writer) commit(bt *pending) {
+	if len(bt.recs) == 0 {
+		return
+	}
+	start := w.now()
+	err := w.db.Write(&bt.b)
+	end := w.now()
+	w.m.commitSeconds.Observe(end.Sub(start).Seconds())
+	w.m.batchRecords.Observe(float64(len(bt.recs)))
+	if err != nil {
+		w.m.storeErrors.Inc()
+		clear(bt.devSeen)
+		for _, r := range bt.recs {
+			if r.seq > 0 && r.dev != nil {
+				bt.devSeen[r.dev] = true
+			}
+			if c := r.control(); c != nil && len(w.carry) < maxCarry {
+				w.carry = append(w.carry, c)
+			} else if c != nil {
+				w.m.carryDropped.Inc()
+			}
+		}
+		// Before any later record is added: from here on, records of
+		// these devices accepted before now are not data any more.
+		w.onFail(err, bt.devSeen)
+	} else {
+		w.onOK()
+	}
+	clear(bt.devSeen)
+	for _, r := range bt.recs {
+		if err == nil && r.seq > 0 {
+			w.m.durableSeconds.Observe(end.Sub(r.received).Seconds())
+			if r.dev != nil {
+				r.dev.markDurable(r.seq)
+			}
+			if r.stream != nil {
+				r.stream.ackThrough(r.seq)
+			}
+		}
+		if r.done != nil {
+			r.done <- err
+		}
+	}
+	clear(bt.recs)
+	bt.recs = bt.recs[:0]
+	clear(bt.curIdx)
+	bt.b.Reset()
 }
 
 // control returns a record with r's parts that are not a device's data (nil
