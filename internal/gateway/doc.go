@@ -1,140 +1,34 @@
 // Package gateway is pulsefleet's server, assembled from its parts: the gRPC
 // services devices and operators use (IngestService, FleetService,
-// AdminService, plus standard health checking and reflection), the
-// per-stream pipeline from raw samples or device summaries to trend points
-// and alarm episodes, the batched store writer that acknowledges only what
-// is durable, the fan-out of live events, and the HTTP listener (/metrics,
-// /healthz, /readyz, and the web page of internal/web).
+// AdminService, plus standard health checking and reflection), the HTTP
+// listener (/metrics, /healthz, /readyz, and the web page of internal/web),
+// scheduled backups, and the watchdog. The per-device pipeline behind
+// IngestService and most of FleetService (validation, device time,
+// estimation, alarms, quality, the batched store writer, live events) is
+// internal/ingest; its rules (device time, delivery) are written in that
+// package's documentation.
+//
+// The services are adapters: each checks its request, calls the pipeline,
+// the store or internal/auth, and maps what they return to a gRPC status
+// (connect.go for IngestService.Connect: the devices see the same codes
+// and messages as before the pipeline had a package of its own). Apart from
+// the guards of internal/auth, this is the only package that knows gRPC
+// status codes. Dependencies run one way: cmd -> gateway -> {ingest, web,
+// auth, store, shard, calibration, profiles}; ingest, web and auth never
+// import gateway.
 //
 // Credentials, roles and the gRPC guards are in internal/auth;
 // Options.Security configures them, the web sessions and the per-stream
-// message rate. Apart from those guards, this is the only package that
-// knows gRPC status codes.
+// message rate.
 //
-// Ownership of goroutines:
-//   - Gateway.Serve owns the gRPC and HTTP servers, the writer and the
-//     watchdog; it stops them in that order's reverse when its context ends
-//     (stop accepting, let streams finish their current message, flush the
-//     writer, acknowledge, close nothing it did not open: the caller closes
-//     the store).
-//   - Each device stream runs in the gRPC handler goroutine (validate,
-//     estimate, evaluate alarms, enqueue for the writer) with a reader that
-//     owns Recv and a sender that owns Send. The handler never blocks on the
-//     device, so a stream replaced by a newer one of the same device ends
-//     within milliseconds; it waits at most 2 s for its sender to deliver
-//     the last answers, and the reader and sender return when the RPC ends.
-//     A device that stops reading is cut off once one Send has been blocked
-//     for 20 s (the watchdog checks every second).
-//   - The writer goroutine commits batches: one bbolt transaction per batch,
-//     at most Options.BatchDelay after the first record or when
-//     Options.BatchRecords records are waiting, then acknowledges.
-//
-// Delivery: a data message is acknowledged only after the batch that holds
-// its effects (ledger record, trend points, cursor) has committed. A device
-// that reconnects is told the highest durable sequence number; anything at or
-// below the last accepted number is rejected as stale and never stored twice;
-// so is a message whose device time is not after the last accepted one
-// (Device time, below).
-//
-// Device time: alarms are evaluated on the device's clock (trend points,
-// episodes and alarm delays are in device time), so a wrong device clock
-// must neither freeze evaluation nor rewrite history, and must never pass
-// silently. With IEC 60601-1-8 in mind (an alarm system must not be
-// silently disabled; a technical alarm condition signals that the equipment
-// cannot do its job), the gateway applies one rule to every data message
-// (raw chunk or summary), after its sequence number is found new
-// (clock.go):
-//
-//   - Ahead: a device time more than 5 s (clockAheadMax) ahead of the
-//     gateway clock is refused: REJECT_REASON_INVALID_FIELD naming
-//     *.device_time_unix_ms, how far ahead it is and the bound. Nothing of
-//     the message is stored or evaluated, so no single message can push the
-//     alarm engine's clock (or a stored episode) into the future.
-//   - Too old: a device time more than a year behind the gateway clock is
-//     refused the same way.
-//   - Not after the last accepted device time of the device (a clock set
-//     back, or a resend of device times already stored under new sequence
-//     numbers): refused as stale, REJECT_REASON_STALE_DEVICE_TIME naming
-//     *.device_time_unix_ms and the last accepted time. (Not
-//     REJECT_REASON_STALE_SEQUENCE: that one tells the device the gateway
-//     already holds the message, so a device would count refused data as
-//     delivered.) Stored history keeps
-//     the first values at a device time and is never rewritten (internal/store/doc.go,
-//     "Keep the first"). The last accepted device time is part of the
-//     durable cursor, so the rule holds across restarts.
-//   - Lagging: within a session, a message more than 60 s (clockLagMax)
-//     further behind the gateway clock than the session's least-behind
-//     message means a clock that runs slow or stands still (it would stretch
-//     every alarm delay). Such messages are stored and evaluated, but the
-//     clock is distrusted. A resent backlog comes first in a session and
-//     does not count.
-//
-// Every refused or distrusted message makes the technical alarm condition
-// device_clock_fault ("device clock fault") present. It clears only after
-// 5 s (clockClearAfter) of messages all accepted within 10 s
-// (clockTrustLag) of the session's least-behind one, so a clock accepted
-// only now and then cannot keep restarting its delay. Its delay and
-// priority come from the profile (adult-ward-pilot: 10 s, medium); a
-// profile without one gets alarms.DefaultClockFault (10 s, medium): it
-// cannot be left out. The gateway times it on its own clock (mapped to
-// device time, never running backwards), so it is announced while every
-// message is being refused. The rule this gives, checked by a property test
-// over random timestamp sequences (TestPropertyNoDeviceTimestampsSilenceLowSpO2,
-// 30,000 sequences of jumps, steps, repeats, stuck, slow and fast clocks):
-// no combination of device timestamps keeps a device whose SpO2 stays below
-// the limit for two minutes from having spo2_low or device_clock_fault
-// announced. What is not claimed: that one of them is active at every
-// moment. After device_clock_fault ends, a clock that then runs slow holds
-// both off for up to clockLagMax plus the fault's delay.
-//
-// The gateway does not re-anchor a wrong clock to its own: it cannot tell a
-// real-time message from a resent one, and stamping an old value with the
-// arrival time would show it as current. A device sets its clock from
-// Welcome.gateway_time_unix_ms. At start-up an alarm state or cursor that
-// carries a time more than clockAheadMax ahead of the gateway clock (from a
-// store written before this rule, or a gateway clock set back) is rewound
-// to the gateway clock (alarms.Engine.Rewind), erring towards announcing.
-//
-// # Delivery
-//
-// Rule: a data message is acknowledged only when its own effects (ledger
-// record, trend points, raw capture, cursor) committed, and after a batch
-// holding data of a device fails to commit, nothing of that device accepted
-// before the failure is written, acknowledged or moves its durable cursor;
-// the device resends from its last durable message.
-//
-// Mechanism: each device has a write epoch. A data record carries the epoch
-// its device was in when the handler accepted it, and the stream the epoch
-// it attached in. When a batch fails, the writer, before it takes another
-// record, raises the epoch of every device with data in that batch, sets
-// the device's accepted position back to its durable one, and cancels its
-// stream (which ends with RESOURCE_EXHAUSTED "store full" or UNAVAILABLE, so
-// the device backs off and reconnects). The writer writes a data record's
-// data and acknowledges it only while its epoch is the device's current
-// one; the handler accepts a message only while its stream's epoch is
-// current. The welcome of the next stream carries the durable position as
-// the resume point.
-//
-// Why it holds: (1) An acknowledgement is sent only by the writer after the
-// batch holding the record committed, so an acknowledged record's own
-// effects are durable. (2) The records of one device reach the writer in
-// the order the handler accepted them (one handler feeds a device at a time
-// and a replacing stream waits until the old handler has returned), with
-// increasing sequence numbers within an epoch. (3) If the batch holding
-// sequence s of epoch e fails, the epoch becomes e+1 before the writer adds
-// any later record, so every record of epoch e after s (queued or still to
-// be submitted) is dropped, and the handler accepts nothing more on the
-// epoch-e stream. Hence the committed records of an epoch are a prefix of
-// what it accepted, the durable sequence never passes a failed one, and an
-// acknowledgement "through n" (the largest committed sequence) covers only
-// committed messages. (4) A new stream starts after a barrier (its start
-// record is committed behind everything queued before it), with the
-// accepted position set back to the durable one, so the failed range is
-// accepted again when resent; anything at or below the durable position is
-// rejected as stale and never stored twice. Non-data parts of a failed
-// batch (descriptions, sessions, alarm episodes and states, audit entries)
-// are carried into the next batch, bounded, so a full disk does not lose an
-// alarm episode either.
+// Ownership of goroutines: Gateway.Serve owns the gRPC and HTTP servers,
+// the pipeline's writer, the watchdog and the backup timer; it stops them
+// in that order's reverse when its context ends (stop accepting, flush the
+// writer so each stream's last ack is due, ask the streams to end, wait at
+// most Options.GracefulTimeout for them, close the writer, close nothing it
+// did not open: the caller closes the store). The gRPC server runs each
+// device stream in its handler goroutine, which the pipeline borrows
+// (ingest.Pipeline.HandleStream).
 //
 // Readiness: /readyz answers 503 from a failed commit until a write commits
 // again; while it fails the watchdog probes with a small write every

@@ -50,7 +50,7 @@ type Options struct {
 	// clock (after drift correction) counts as late; 0 means 10 s.
 	LateAfter time.Duration
 	// WatchdogEvery is how often the watchdog evaluates devices without a
-	// stream; 0 means 1 s. Such a device is fed to its alarm engine as
+	// stream (ingest.Pipeline.Tick); 0 means 1 s. Such a device is fed to its alarm engine as
 	// offline at once; the device_offline condition's delay applies.
 	WatchdogEvery time.Duration
 	// DefaultProfile is the alarm profile for devices without their own; nil
@@ -75,7 +75,7 @@ type Options struct {
 	ExportRate int
 	// GracefulTimeout bounds each stage of a shutdown (flushing the store,
 	// waiting for streams to end) before the gateway stops harder; 0 means
-	// 10 s. PauseAlarms is bounded by the profile's pause_max.
+	// 10 s.
 	GracefulTimeout time.Duration
 	// Peers is the gRPC address of every gateway sharing the fleet (the same
 	// list on each); empty means this gateway serves every device. Self is

@@ -70,7 +70,7 @@
 // batch with a device's data fails, nothing of that device accepted before
 // the failure is written, acknowledged or allowed to move its cursor; the
 // device resends from its last durable message. The gateway's writer
-// enforces it with a per-device write epoch (internal/gateway/writer.go); why it
+// enforces it with a per-device write epoch (internal/ingest/writer.go); why it
 // holds is argued in package gateway's documentation.
 //
 // Caveats: bbolt allows one writer at a time and takes an exclusive file lock,
