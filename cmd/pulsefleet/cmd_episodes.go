@@ -15,6 +15,7 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/caution"
+	"github.com/pulsefleet/pulsefleet/internal/participants"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
@@ -25,7 +26,8 @@ func init() {
 Per episode: the gateway that stored it and its id there (episode ids are per
 gateway), device, condition, priority, onset, announced, ended, lowest SpO2,
 who acknowledged it, and the newest review (label, reviewer, when, note,
-revision). Several gateways (comma-separated) are merged. A gateway that
+revision). --participant PID keeps the episodes whose onset lies in one of
+the participant's enrolments. Several gateways (comma-separated) are merged. A gateway that
 cannot be read is named on stderr after the episodes of the others, and the
 command exits 1: a listing never silently lacks a gateway. The CSV is the
 review export (one row per episode, empty review columns when unreviewed);
@@ -50,13 +52,19 @@ type episodeRow struct {
 
 func runEpisodes(ctx context.Context, args []string, s stdio) error {
 	var cf clientFlags
-	fs := newFlagSet("episodes", "--gateway ADDR[,ADDR...] [--device ID] [--since DUR] [--format table|csv|json]", s.err)
+	fs := newFlagSet("episodes", "--gateway ADDR[,ADDR...] [--device ID] [--participant PID] [--since DUR] [--format table|csv|json]", s.err)
 	cf.register(fs)
 	device := fs.String("device", "", "only this device")
 	since := fs.Duration("since", 0, "only episodes with onset within this long before now (0 = every stored episode)")
 	format := fs.String("format", "table", "output: table (readable), csv or json")
+	pid := fs.String("participant", "", "only episodes of this participant: onset inside one of their enrolments")
 	if err := parseFlags(fs, args); err != nil {
 		return err
+	}
+	if *pid != "" {
+		if err := participants.CheckID("--participant", *pid); err != nil {
+			return usagef("%v", err)
+		}
 	}
 	switch *format {
 	case "table", "csv", "json":
@@ -75,6 +83,13 @@ func runEpisodes(ctx context.Context, args []string, s stdio) error {
 		fromMS = time.Now().Add(-*since).UnixMilli()
 	}
 	rows, failed := fetchEpisodes(ctx, &cf, addrs, *device, fromMS)
+	if *pid != "" {
+		ivs, err := remoteEnrolments(ctx, &cf, addrs)
+		if err != nil {
+			return err
+		}
+		rows = participantEpisodes(rows, ivs, *pid)
+	}
 	for _, a := range addrs {
 		if n := countGateway(rows, a); n >= episodeLimit {
 			fmt.Fprintf(s.err, "pulsefleet episodes: warning: gateway %s gave its limit of %d episodes; older ones are not listed (narrow with --since or --device)\n", a, episodeLimit)
@@ -92,6 +107,18 @@ func runEpisodes(ctx context.Context, args []string, s stdio) error {
 		return err
 	}
 	return gatewayFailures("episodes", len(addrs), failed)
+}
+
+// participantEpisodes keeps the rows whose onset lies in one of pid's
+// enrolments on the episode's device.
+func participantEpisodes(rows []episodeRow, ivs []participants.Interval, pid string) []episodeRow {
+	out := rows[:0]
+	for _, r := range rows {
+		if participants.Holder(ivs, r.Episode.GetDeviceId(), r.Episode.GetOnsetUnixMs()) == pid {
+			out = append(out, r)
+		}
+	}
+	return out
 }
 
 // gatewayError is a gateway that could not be read.

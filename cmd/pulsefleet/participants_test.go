@@ -7,6 +7,9 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/pulsefleet/pulsefleet/internal/participants"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // Per participant-night indices, hand-worked. Night 22:00-07:00 UTC. One
@@ -87,5 +90,26 @@ func TestReplayParticipantNights(t *testing.T) {
 		if code, _, errs := runCmd(args...); code == 0 || !strings.Contains(errs, c.want) {
 			t.Errorf("%v: exit %d, %q, want %q", c.args, code, errs, c.want)
 		}
+	}
+}
+
+// episodes --participant keeps the episodes whose onset lies in one of the
+// participant's enrolments (the store test's ward timeline): of OX-A at
+// 01:00 (P-0001), OX-A at 19:30 the evening before (nobody's), OX-B at 05:00
+// (P-0001, after the swap) and OX-A at 10:30 (P-0002), P-0001 has 2.
+func TestEpisodesOfParticipant(t *testing.T) {
+	ms := func(s string) int64 { tm, _ := time.Parse(time.RFC3339, s); return tm.UnixMilli() }
+	ivs := []participants.Interval{
+		{Participant: "P-0001", Device: "OX-A", FromMS: ms("2026-12-01T20:00:00Z"), ToMS: ms("2026-12-02T03:00:00Z")},
+		{Participant: "P-0001", Device: "OX-B", FromMS: ms("2026-12-02T03:10:00Z"), ToMS: ms("2026-12-02T08:00:00Z")},
+		{Participant: "P-0002", Device: "OX-A", FromMS: ms("2026-12-02T10:00:00Z")},
+	}
+	var rows []episodeRow
+	for _, e := range []struct{ dev, at string }{{"OX-A", "2026-12-02T01:00:00Z"}, {"OX-A", "2026-12-01T19:30:00Z"}, {"OX-B", "2026-12-02T05:00:00Z"}, {"OX-A", "2026-12-02T10:30:00Z"}} {
+		rows = append(rows, episodeRow{Episode: &pb.Episode{DeviceId: e.dev, OnsetUnixMs: ms(e.at)}})
+	}
+	got := participantEpisodes(rows, ivs, "P-0001")
+	if len(got) != 2 || got[0].Episode.GetDeviceId() != "OX-A" || got[1].Episode.GetDeviceId() != "OX-B" {
+		t.Errorf("P-0001's episodes: %v", got)
 	}
 }
