@@ -215,6 +215,9 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 			return err
 		}
 	}
+	if len(g.Participants) > 0 && (o.data == "" || g.HasAveraging()) {
+		return fmt.Errorf("grid %s: participants: needs --data or --gateway (the enrolments are kept in the gateway's store) and no averaging times", o.grid)
+	}
 	if g.HasAveraging() {
 		if o.data == "" {
 			return fmt.Errorf("grid %s: averaging: needs --data with raw captures; --in gives estimated trends, which cannot be re-estimated", o.grid)
@@ -253,14 +256,27 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 	if len(trends) == 0 {
 		return fmt.Errorf("no trend samples in %s%s", source, tuneFilterNote(f))
 	}
+	var of []string
+	if len(g.Participants) > 0 {
+		ivs, err := tune.LoadEnrolments(o.data)
+		if err != nil {
+			return err
+		}
+		if trends, of, err = tune.ByParticipant(trends, ivs, g.Participants, g.Reference); err != nil {
+			return fmt.Errorf("grid %s: %w", o.grid, err)
+		}
+	}
 	prog := newTuneProgress(s.err, "tune")
-	res, err := tune.Run(ctx, g, trends, tune.Options{Workers: o.workers, MaxGap: o.maxGap, Progress: prog.update})
+	res, err := tune.Run(ctx, g, trends, tune.Options{Workers: o.workers, MaxGap: o.maxGap, Progress: prog.update, TrendParticipants: of})
 	prog.finish()
 	if err != nil {
 		return err
 	}
 	fmt.Fprintf(s.out, "tune: %d profiles over %d devices, %.1f monitored hours, %d reference events (%s)\n",
 		len(res.Points), res.Devices, res.MonitoredS/3600, res.Events, source)
+	if res.Participants > 0 {
+		fmt.Fprintf(s.out, "tune: %d participants, %.1f participant-monitored hours\n", res.Participants, res.ParticipantS/3600)
+	}
 	return tuneWrite(o, f, res, source, args, s)
 }
 

@@ -44,7 +44,11 @@ type Grid struct {
 	// when the grid has none (the trends are swept as recorded).
 	AveragingS []float64
 	Reference  Reference
-	Text       []byte // the grid file as read (shown in the report)
+	// Participants, when set (`participants: [..]`), limits the sweep to
+	// these participants' history (ByParticipant) and adds alarms per
+	// participant-day to the summary.
+	Participants []string
+	Text         []byte // the grid file as read (shown in the report)
 }
 
 // HasAveraging reports whether the grid sweeps averaging times, which
@@ -151,10 +155,12 @@ func ParseGrid(data []byte, dir string) (*Grid, error) {
 			return nil
 		case AveragingKey:
 			return g.decodeAveraging(v)
+		case "participants":
+			return g.decodeParticipants(v, path)
 		case "averaging_times", "estimator":
 			return fmt.Errorf("%s (line %d): unknown key; averaging times are the top-level key %s: [4s, 8s, 12s]", path, v.Line, AveragingKey)
 		}
-		return fmt.Errorf("%s (line %d): unknown key, want base, sweep, reference or %s", path, v.Line, AveragingKey)
+		return fmt.Errorf("%s (line %d): unknown key, want base, sweep, reference, participants or %s", path, v.Line, AveragingKey)
 	})
 	if err != nil {
 		return nil, err

@@ -97,6 +97,10 @@ func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, 
 	}
 	days := res.MonitoredS / 86400
 	row.PerDeviceDay = ratio(float64(row.Episodes), days)
+	row.PerParticipantDay = math.NaN()
+	if res.Participants > 0 {
+		row.PerParticipantDay = ratio(float64(row.Episodes), res.ParticipantS/86400)
+	}
 	row.TimeInAlarmPct = 100 * ratio(alarmS[0], res.MonitoredS)
 	row.MedianEpisodeS = stats.Median(s.durs[0])
 	for p := alarms.PriorityLow; p <= alarms.PriorityHigh; p++ {

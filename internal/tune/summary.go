@@ -29,6 +29,9 @@ func SummaryColumns(g *Grid) []string {
 	if g.Reference.Reviews != nil {
 		cols = append(cols, reviewColumns...)
 	}
+	if len(g.Participants) > 0 {
+		cols = append(cols, "episodes_per_participant_day")
+	}
 	return cols
 }
 
@@ -62,6 +65,9 @@ func WriteSummaryCSV(w io.Writer, res *Result) error {
 		if res.Grid.Reference.Reviews != nil {
 			rec = append(rec, strconv.Itoa(res.ReviewedPositive), strconv.Itoa(r.EventsDetected),
 				strconv.Itoa(res.ReviewedNegative), strconv.Itoa(r.NegativesAvoided), strconv.Itoa(r.UnreviewedAlarms))
+		}
+		if len(res.Grid.Participants) > 0 {
+			rec = append(rec, num(r.PerParticipantDay, 3))
 		}
 		if err := cw.Write(rec); err != nil {
 			return fmt.Errorf("write summary: %w", err)

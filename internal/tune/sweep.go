@@ -27,6 +27,10 @@ type Options struct {
 	// Progress, when non-nil, is called with units of work done and the
 	// total, a few times a second and once at the end; never concurrently.
 	Progress func(done, total int)
+	// TrendParticipants, when set, names the participant of each trend (in
+	// trend order; ByParticipant returns it): the result then counts
+	// participant-days beside device-days.
+	TrendParticipants []string
 
 	engineOnly bool // tests: every variant through the engine, no interval shortcut
 }
@@ -40,6 +44,11 @@ type Result struct {
 	// time in seconds (see the package doc).
 	Devices    int
 	MonitoredS float64
+	// With Options.TrendParticipants: how many participants, and their
+	// monitored time in seconds (per participant the union of their
+	// trends' monitored segments, so two devices worn at once count once).
+	Participants int
+	ParticipantS float64
 	// FirstS and LastS are the earliest and latest sample times.
 	FirstS, LastS float64
 	// Events is the number of reference events within the data;
@@ -83,10 +92,13 @@ type PriorityStats struct {
 
 // Row is the figures of one grid point.
 type Row struct {
-	Episodes       int     // announced episodes, all conditions (as replay counts them)
-	PerDeviceDay   float64 // episodes per 24 h of monitored time
-	TimeInAlarmPct float64 // % of monitored time with any alarm
-	MedianEpisodeS float64 // median announced-to-end duration, s (NaN if no episode)
+	Episodes     int     // announced episodes, all conditions (as replay counts them)
+	PerDeviceDay float64 // episodes per 24 h of monitored time
+	// PerParticipantDay is episodes per 24 h of participant-monitored time
+	// (NaN without Options.TrendParticipants).
+	PerParticipantDay float64
+	TimeInAlarmPct    float64 // % of monitored time with any alarm
+	MedianEpisodeS    float64 // median announced-to-end duration, s (NaN if no episode)
 	// ByPriority is indexed by alarms.Priority (Low, Medium, High; index 0 unused).
 	ByPriority [4]PriorityStats
 
@@ -201,6 +213,12 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	res.Variants = len(vars)
 
 	devs := deviceFacts(g, trends, maxGap, res)
+	if len(opt.TrendParticipants) > 0 {
+		if len(opt.TrendParticipants) != nd {
+			return nil, fmt.Errorf("tune: %d trend participants for %d trends", len(opt.TrendParticipants), nd)
+		}
+		participantFacts(devs, opt.TrendParticipants, res)
+	}
 	scored := make([]bool, nc)
 	for _, name := range g.Reference.Conditions {
 		for c := range g.Base.Conditions {
