@@ -49,7 +49,7 @@ func TestExportCommandCSVAndRanges(t *testing.T) {
 	dir, t0 := exportFixture(t)
 	code, out, errs := exportRun(t, "--data", dir, "--format", "csv")
 	lines := strings.Split(strings.TrimSpace(afterCaution(t, "export CSV", out)), "\n")
-	if code != 0 || len(lines) != 121 || lines[0] != "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source" {
+	if code != 0 || len(lines) != 121 || lines[0] != "t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi,ratio,flags,source,participant" {
 		t.Fatalf("exit %d, %d lines, header %q, stderr %q", code, len(lines), lines[0], errs)
 	}
 	if errs != "" {
