@@ -60,7 +60,7 @@ func TestExportCommandCSVAndRanges(t *testing.T) {
 	from, to := t0.Add(10*time.Second), t0.Add(30*time.Second)
 	_, a, _ := exportRun(t, "--data", dir, "--format", "csv", "--device", "ward1-bed2", "--from", from.Format(time.RFC3339), "--to", to.Format(time.RFC3339))
 	_, b, _ := exportRun(t, "--data", dir, "--format", "csv", "--device=ward1-bed2", "--from", "1796076010", "--to", "1796076030.0")
-	if a != b || strings.Count(afterCaution(t, "export CSV", a), "\n") != 21 || !strings.Contains(a, "\n1796076010,ward1-bed2,96,64,2,0.8,0.55,0,device\n") {
+	if a != b || strings.Count(afterCaution(t, "export CSV", a), "\n") != 21 || !strings.Contains(a, "\n1796076010,ward1-bed2,96,64,2,0.8,0.55,0,device,\n") {
 		t.Errorf("ranges differ or are wrong:\nRFC 3339:\n%s\nUnix:\n%s", a, b)
 	}
 }
