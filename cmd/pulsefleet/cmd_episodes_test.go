@@ -24,6 +24,12 @@ import (
 // one desaturation episode), then 10 s at 96 % (both end).
 func startEpisodeGateway(t *testing.T, devices ...string) string {
 	t.Helper()
+	return startEpisodeGatewayRG(t, devices...).GRPCAddr
+}
+
+// startEpisodeGatewayRG is startEpisodeGateway returning the running gateway.
+func startEpisodeGatewayRG(t *testing.T, devices ...string) *runningGateway {
+	t.Helper()
 	c := defaultServeConfig()
 	c.Data, c.GRPCListen, c.HTTPListen, c.LogLevel, c.BatchDelay = t.TempDir(), "127.0.0.1:0", "127.0.0.1:0", "error", 5*time.Millisecond
 	c.DeviceTimeRate = 1e6
@@ -50,7 +56,7 @@ func startEpisodeGateway(t *testing.T, devices ...string) string {
 			return 96
 		}, 41)
 	}
-	return rg.GRPCAddr
+	return rg
 }
 
 // streamSummaries sends n 1 s summaries with spo2(seq) and waits for the ack of the last.

@@ -30,6 +30,8 @@ type Fleet interface {
 	AcknowledgeAlarm(context.Context, *pb.AcknowledgeAlarmRequest) (*pb.AcknowledgeAlarmResponse, error)
 	PauseAlarms(context.Context, *pb.PauseAlarmsRequest) (*pb.PauseAlarmsResponse, error)
 	GetAlarmProfile(context.Context, *pb.GetAlarmProfileRequest) (*pb.GetAlarmProfileResponse, error)
+	ListReviews(context.Context, *pb.ListReviewsRequest) (*pb.ListReviewsResponse, error)
+	ReviewEpisode(context.Context, *pb.ReviewEpisodeRequest) (*pb.ReviewEpisodeResponse, error)
 
 	// RawCaptures calls fn with the device's captured raw chunks between
 	// fromMS and toMS (device time) in order, until fn returns false.
@@ -172,6 +174,7 @@ func (s *Server) Routes(mux *http.ServeMux) {
 	mux.Handle("POST /api/device/{id}/acknowledge", s.webHandler(auth.RoleOperator, s.webAcknowledge))
 	mux.Handle("POST /api/device/{id}/pause", s.webHandler(auth.RoleOperator, s.webPause))
 	mux.Handle("GET /api/events", s.webHandler(auth.RoleViewer, s.webEvents))
+	s.reviewRoutes(mux) // reviews.go
 }
 
 // pageHeaders sets the security headers of the page and its assets: no
