@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"os"
+	"path/filepath"
 	"strings"
 	"testing"
 	"time"
@@ -63,8 +64,17 @@ func TestReviewThroughThePageInChromium(t *testing.T) {
 
 	do("device page", chromedp.Navigate("http://"+rg.HTTPAddr+"/device/ward-r-01"), chromedp.WaitVisible(row+` button.review-open`))
 	do("review", chromedp.Click(row+` button.review-open`), chromedp.WaitVisible(`#review-dialog`),
-		chromedp.Click(`#review-dialog input[value="artefact"]`), chromedp.SendKeys(`#review-note`, "probe slipped off"),
-		chromedp.Click(`#review-save`), chromedp.WaitVisible(row+` .review-label[data-label="artefact"]`))
+		chromedp.Click(`#review-dialog input[value="artefact"]`), chromedp.SendKeys(`#review-note`, "probe slipped off"))
+	if dir := os.Getenv("PULSEFLEET_SCREENSHOT_DIR"); dir != "" { // PULSEFLEET_SCREENSHOT_DIR=DIR keeps a picture of the dialog
+		png, err := chromedp.Run(bctx, chromedp.FullScreenshot(100))
+		if err == nil {
+			err = os.WriteFile(filepath.Join(dir, "review-dialog.png"), png, 0o644)
+		}
+		if err != nil {
+			t.Errorf("screenshot: %v", err)
+		}
+	}
+	do("save", chromedp.Click(`#review-save`), chromedp.WaitVisible(row+` .review-label[data-label="artefact"]`))
 
 	_, out, _ = runCmd("episodes", "--gateway", rg.GRPCAddr, "--format", "csv")
 	r := spo2Low(out)

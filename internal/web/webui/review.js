@@ -85,9 +85,9 @@
       document.body.append(dialog);
     }
     const current = reviews[id];
-    const choices = labels.map(l => el('label', { class: 'review-choice' },
+    const choices = labels.map(l => el('div', { class: 'review-choice' }, el('label', null,
       el('input', { type: 'radio', name: 'review-label', value: l.label, checked: current && current.label === l.label }),
-      ' ', el('strong', null, l.label), ' ', el('span', { class: 'small muted' }, l.meaning)));
+      ' ', el('strong', null, l.label), ' ', el('span', { class: 'small muted' }, l.meaning))));
     const note = el('textarea', { id: 'review-note', maxlength: '500', rows: '3', 'aria-label': 'note (optional, at most 500 characters)' });
     note.value = current && current.note ? current.note : '';
     const status = el('p', { id: 'review-status', role: 'status' });
@@ -106,13 +106,14 @@
         save.disabled = false;
       }
     } }, 'Save review');
-    dialog.replaceChildren(
+    dialog.replaceChildren(...[
       el('h2', { id: 'review-title' }, `Review of episode ${id}`),
       current ? el('p', { class: 'small muted' }, `Now: ${current.label} by ${current.reviewer}; a new review keeps this one as an earlier revision.`) : null,
       el('fieldset', null, el('legend', null, 'Was this alarm real and actionable?'), choices),
       el('p', null, note),
       status,
-      el('div', { class: 'actions' }, save, ' ', el('button', { type: 'button', onclick: () => dialog.close() }, 'Cancel')));
+      el('div', { class: 'actions' }, save, ' ', el('button', { type: 'button', onclick: () => dialog.close() }, 'Cancel')),
+    ].filter(Boolean));
     dialog.showModal();
   }
 
