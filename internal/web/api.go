@@ -104,10 +104,10 @@ func (s *Server) trendEnd(d *pb.Device) int64 {
 
 // fleetEntry is one device of /api/fleet.
 type fleetEntry struct {
-	Device  Proto[*pb.Device]        `json:"device"`
-	Quality Proto[*pb.DeviceQuality] `json:"quality"`
-	Active  []Proto[*pb.Episode]     `json:"active_episodes"`
-	Spark   *Spark                   `json:"spark,omitempty"`
+	Device  Proto[*pb.Device]         `json:"device"`
+	Quality *Proto[*pb.DeviceQuality] `json:"quality,omitempty"` // absent with quality=0
+	Active  []Proto[*pb.Episode]      `json:"active_episodes"`
+	Spark   *Spark                    `json:"spark,omitempty"`
 	// SpO2Limits are the SpO2 thresholds of the device's profile (for the
 	// sparkline), with the spark only.
 	SpO2Limits []Limit `json:"spo2_limits,omitempty"`
@@ -125,21 +125,26 @@ type FleetJSON struct {
 // FleetEntryJSON is one device of FleetJSON (for Go clients: the tests).
 type FleetEntryJSON = fleetEntry
 
-// webFleet answers /api/fleet: every device with its uptime, active
-// episodes and (unless ?spark=0) a 30-minute SpO2 sparkline with its
-// profile's SpO2 limits. The page orders and filters it itself.
+// webFleet answers /api/fleet: every device with its active episodes, its
+// quality figures (uptime; unless ?quality=0) and a 30-minute SpO2
+// sparkline with its profile's SpO2 limits (unless ?spark=0). The page
+// orders and filters it itself; it asks for the light answer (spark=0,
+// quality=0) every few seconds and the full one every minute, as the
+// figures left out change slowly and cost most (BenchmarkWebOverview5000).
 func (s *Server) webFleet(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
 	devs, err := s.fleet.ListDevices(ctx, &pb.ListDevicesRequest{})
 	if err != nil {
 		return nil, err
 	}
-	qs, err := s.fleet.ListDeviceQuality(ctx, &pb.ListDeviceQualityRequest{})
-	if err != nil {
-		return nil, err
-	}
 	up := map[string]*pb.DeviceQuality{}
-	for _, q := range qs.GetQualities() {
-		up[q.GetDeviceId()] = q
+	if r.URL.Query().Get("quality") != "0" {
+		qs, err := s.fleet.ListDeviceQuality(ctx, &pb.ListDeviceQualityRequest{})
+		if err != nil {
+			return nil, err
+		}
+		for _, q := range qs.GetQualities() {
+			up[q.GetDeviceId()] = q
+		}
 	}
 	eps, err := s.fleet.ListEpisodes(ctx, &pb.ListEpisodesRequest{ActiveOnly: true, Limit: 10000})
 	if err != nil {
@@ -154,7 +159,11 @@ func (s *Server) webFleet(ctx context.Context, _ http.ResponseWriter, r *http.Re
 	sparks := r.URL.Query().Get("spark") != "0"
 	profiles := profileCache{}
 	for _, d := range devs.GetDevices() {
-		e := fleetEntry{Device: P(d), Quality: P(up[d.GetDeviceId()]), Active: active[d.GetDeviceId()]}
+		e := fleetEntry{Device: P(d), Active: active[d.GetDeviceId()]}
+		if q := up[d.GetDeviceId()]; q != nil {
+			pq := P(q)
+			e.Quality = &pq
+		}
 		if e.Active == nil {
 			e.Active = []Proto[*pb.Episode]{}
 		}
