@@ -115,7 +115,8 @@ func TestKill9BeforeDeliveryDeliversAfterRestart(t *testing.T) {
 			t.Errorf("label %s = %q, want %q (labels %v)", k, a.Labels[k], v, a.Labels)
 		}
 	}
-	if a.Status != "firing" || a.Labels["gateway"] == "" || a.Annotations["device_page"] != "https://ward.example/pulsefleet/device/bed-11" {
+	if a.Status != "firing" || a.Labels["gateway"] == "" || a.Annotations["device_page"] != "https://ward.example/pulsefleet/device/bed-11" ||
+		a.Annotations["limit"] != "90" || a.Annotations["spo2_min"] != "85 %" {
 		t.Errorf("delivered %+v", a)
 	}
 	if !a.StartsAt.Equal(time.UnixMilli(t0 + 3000)) {

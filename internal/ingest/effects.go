@@ -85,10 +85,14 @@ func (p *Pipeline) storeEpisode(d *device, e *alarms.Episode) *store.Episode {
 	if d.profile != nil {
 		prof = d.profile.Name
 	}
+	limit := e.Limit // NaN for conditions without one (signal_lost, device_offline); JSON has no NaN
+	if math.IsNaN(limit) || math.IsInf(limit, 0) {
+		limit = 0
+	}
 	return &store.Episode{
 		ID: uint64(d.desc.Index)<<32 | (e.ID & 0xffffffff), Device: d.id, Condition: e.Condition, Priority: e.Priority.String(),
 		OnsetMS: ms(e.OnsetS), AnnouncedMS: ms(e.AnnouncedS), EscalatedMS: ms(e.EscalatedS), EndedMS: ms(e.EndedS),
-		MinSpO2: min, DeficitPctS: e.DeficitPctS, AckedBy: e.AckedBy, AckedMS: ms(e.AckedS),
+		MinSpO2: min, Limit: limit, DeficitPctS: e.DeficitPctS, AckedBy: e.AckedBy, AckedMS: ms(e.AckedS),
 		Active: e.Announced() && (e.Phase == alarms.Active || e.Phase == alarms.Latched), Profile: prof,
 	}
 }
