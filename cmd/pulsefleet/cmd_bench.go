@@ -21,7 +21,9 @@ temporary store, in one run. Progress goes to stderr; the last line on stdout
 is one JSON object with sink_samples_per_s, gateway_samples_per_s, ratio
 (gateway / sink), cpu_ratio (the gateway's CPU per acknowledged sample over
 the sink's), ack_p50_ms, ack_p99_ms (gateway phase), lost (acknowledged
-samples missing from the store afterwards), peak_rss_bytes and more.
+samples missing from the store afterwards), sink_saturated (the bare sink
+acknowledged less than 95 % of the offered load: the machine was the limit,
+so the run's latency and CPU figures say little), peak_rss_bytes and more.
 Peak RSS is measured per phase (the kernel's high-water mark is reset at the
 start of each phase); with --client process (the default) the load client
 runs as a separate 'pulsefleet sim' process, so the peaks are the targets'

@@ -144,6 +144,11 @@ type Result struct {
 	// gateway_samples_per_s) / (sink_cpu_cores / sink_samples_per_s); 0 when
 	// either phase acknowledged nothing or used no measurable CPU.
 	CPURatio float64 `json:"cpu_ratio"`
+	// SinkSaturated is true when the bare sink acknowledged less than 95 %
+	// of the offered samples/s: the machine (load client, other work), not
+	// the system under test, was the limit, and the run's latency and CPU
+	// figures say little about the gateway.
+	SinkSaturated bool `json:"sink_saturated"`
 	Rejected            uint64  `json:"rejected"`
 	Reconnects          uint64  `json:"reconnects"`
 	UnackedAtEnd        uint64  `json:"unacked_at_end"`
@@ -237,9 +242,14 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 	res.SinkCPUCores, res.GatewayCPUCores = first.CPUCores, last.CPUCores
 	res.ClientPeakRSSBytes, res.ClientCPUCores = last.Client.PeakRSSBytes, last.ClientCores
 	res.CPURatio = cpuRatio(first, last)
+	res.SinkSaturated = saturated(first.SamplesPerS, res.OfferedSamplesPerS)
 	res.Rejected, res.Reconnects, res.UnackedAtEnd = last.Report.Rejected, last.Report.Reconnects, last.Report.UnackedAtEnd
 	return res, nil
 }
+
+// saturated reports a sink that acknowledged less than 95 % of the offered
+// samples/s (Result.SinkSaturated).
+func saturated(sinkPerS, offeredPerS float64) bool { return sinkPerS < 0.95*offeredPerS }
 
 // cpuRatio is the CPU per acknowledged sample of phase b over phase a's
 // (Result.CPURatio), to three decimals.

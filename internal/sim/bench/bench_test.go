@@ -51,3 +51,16 @@ func TestCPURatio(t *testing.T) {
 		t.Errorf("cpu ratio with an unmeasured sink %v, want 0", got)
 	}
 }
+
+// sink_saturated: the README's runs, a quiet one (495,847 of 500,000
+// samples/s acknowledged by the sink) and a saturated one (348,216).
+func TestSinkSaturated(t *testing.T) {
+	for _, c := range []struct {
+		sink float64
+		want bool
+	}{{495_847, false}, {348_216, true}, {475_000, false}, {474_999, true}} {
+		if got := saturated(c.sink, 500_000); got != c.want {
+			t.Errorf("sink at %v of 500,000 samples/s: saturated %v, want %v", c.sink, got, c.want)
+		}
+	}
+}
