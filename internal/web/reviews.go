@@ -10,7 +10,8 @@ import (
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
-// The review control's JSON (webui/review.js): reading a device's newest
+// The review control's JSON (webui/review.js), the API's messages through
+// protojson like the rest of the page's JSON (json.go): reading a device's newest
 // reviews needs the viewer role; reviewing an episode needs the operator
 // role and, with a session, its CSRF token, like the page's other writes.
 // Both go through the gateway's FleetService calls (ListReviews,
@@ -20,20 +21,6 @@ import (
 func (s *Server) reviewRoutes(mux *http.ServeMux) {
 	mux.Handle("GET /api/device/{id}/reviews", s.webHandler(auth.RoleViewer, s.webReviews))
 	mux.Handle("POST /api/episode/{episode}/review", s.webHandler(auth.RoleOperator, s.webReview))
-}
-
-type webReview struct {
-	EpisodeID  string `json:"episode_id"` // a string: 64-bit ids do not fit a JS number
-	Label      string `json:"label"`
-	Note       string `json:"note,omitempty"`
-	Reviewer   string `json:"reviewer"`
-	ReviewedMS int64  `json:"reviewed_ms"`
-	Revision   uint32 `json:"revision"`
-}
-
-func webReviewOf(r *pb.EpisodeReview) webReview {
-	return webReview{EpisodeID: strconv.FormatUint(r.GetEpisodeId(), 10), Label: r.GetLabel(), Note: r.GetNote(),
-		Reviewer: r.GetReviewer(), ReviewedMS: r.GetReviewedUnixMs(), Revision: r.GetRevision()}
 }
 
 type webLabel struct {
@@ -49,14 +36,15 @@ func (s *Server) webReviews(ctx context.Context, _ http.ResponseWriter, r *http.
 		return nil, err
 	}
 	out := struct {
-		Labels  []webLabel           `json:"labels"`
-		Reviews map[string]webReview `json:"reviews"`
-	}{Reviews: map[string]webReview{}}
+		Labels  []webLabel                          `json:"labels"`
+		Reviews map[string]Proto[*pb.EpisodeReview] `json:"reviews"` // by episode id
+	}{Reviews: map[string]Proto[*pb.EpisodeReview]{}}
 	for _, l := range review.Labels {
 		out.Labels = append(out.Labels, webLabel{l, review.Meaning[l]})
 	}
 	for _, rv := range resp.GetReviews() {
-		out.Reviews[strconv.FormatUint(rv.GetEpisodeId(), 10)] = webReviewOf(rv)
+		rv.Episode = nil // the page has the episode already
+		out.Reviews[strconv.FormatUint(rv.GetEpisodeId(), 10)] = P(rv)
 	}
 	return out, nil
 }
@@ -80,7 +68,6 @@ func (s *Server) webReview(ctx context.Context, _ http.ResponseWriter, r *http.R
 	if err != nil {
 		return nil, err
 	}
-	return struct {
-		Review webReview `json:"review"`
-	}{webReviewOf(resp.GetReview())}, nil
+	resp.Review.Episode = nil
+	return P(resp), nil
 }

@@ -54,7 +54,7 @@
   function cellFor(id) {
     const r = reviews[id];
     const text = r ? el('span', { class: 'review-label', 'data-label': r.label },
-      r.label, el('span', { class: 'small muted' }, ` by ${r.reviewer}, ${when(r.reviewed_ms)}${r.revision > 1 ? ` (revision ${r.revision})` : ''}`))
+      r.label, el('span', { class: 'small muted' }, ` by ${r.reviewer}, ${when(Number(r.reviewed_unix_ms))}${r.revision > 1 ? ` (revision ${r.revision})` : ''}`))
       : el('span', { class: 'muted review-label' }, 'not reviewed');
     return el('td', { class: 'review' }, text, ' ',
       el('button', { type: 'button', class: 'review-open', 'data-episode': id, onclick: () => open(id) }, r ? 'Change' : 'Review'));
