@@ -6,11 +6,11 @@
 // serves over gRPC, through the small Fleet interface the gateway satisfies,
 // so their checks and audit entries are the gateway's own.
 //
-//	GET  /                         fleet overview (HTML)
-//	GET  /device/{id}              device page (HTML)
-//	GET  /ui/{file}                embedded CSS and JS
-//	GET  /api/fleet                every device with latest values, uptime, active episodes, a 30-minute SpO2 sparkline
-//	GET  /api/device/{id}          one device, its quality figures and recent episodes
+//	GET  /                         fleet overview (HTML): attention order, filters in the URL (docs/contracts.md)
+//	GET  /device/{id}              device page (HTML); 404 with one message for an unknown device
+//	GET  /ui/{file}                embedded CSS and JS (app.js, charts.js, fleet.js, device.js)
+//	GET  /api/fleet                every device with active episodes; quality (unless ?quality=0) and a 30-minute SpO2 sparkline with the profile's SpO2 limits (unless ?spark=0)
+//	GET  /api/device/{id}          one device, its quality figures, recent episodes and the limits of its alarm profile
 //	GET  /api/device/{id}/trend    ?minutes=N&step_s=S: trend buckets ending at the device's latest point
 //	GET  /api/device/{id}/raw      ?seconds=N: the newest captured raw samples (when capture is on)
 //	POST /api/device/{id}/acknowledge  {"episode_id":N,"note":"..."}: acknowledge active alarms
@@ -33,10 +33,16 @@
 // gRPC status codes, which this package does not read: Config.HTTPError
 // (the gateway's) maps them to HTTP statuses.
 //
+// JSON: the API's messages through protojson with the .proto field names
+// (json.go: Proto), inside a small envelope per answer; docs/contracts.md,
+// "The web page", lists it. The page orders the fleet itself with the rule
+// of internal/attention.
+//
 // Caveats: a gateway restart makes every session cookie invalid (the key is
 // new each start); the page is webui/index.html run as an html/template
-// (server.go), and its JSON is still hand-mapped from the API's messages
-// (json.go) rather than written through protojson.
+// (server.go). The full /api/fleet answer asks the gateway for each device's
+// alarm profile (YAML, parsed once per distinct text): at 5,000 devices
+// that is most of its CPU, which is why the page asks for it once a minute.
 //
 // Not a certified medical alarm: the page says so at its top.
 package web
