@@ -83,3 +83,32 @@ func TestExportTrendPagesEqualStore(t *testing.T) {
 		t.Logf("range %v: %d points", r, len(got))
 	}
 }
+
+// BenchmarkExportPage compares building one ExportTrendResponse of a page
+// of exportBatch points the way ExportTrend does (pageProto: slabs) with
+// one pointProto per point; allocs/op does not depend on the machine's load:
+//
+//	go test -run '^$' -bench ExportPage -benchmem ./internal/gateway/
+func BenchmarkExportPage(b *testing.B) {
+	page := make([]store.Point, exportBatch)
+	for i := range page {
+		page[i] = store.Point{TimeMS: int64(i) * 1000, SpO2: 95, Pulse: 70, PI: 2, SQI: 0.9, Ratio: 0.6, Source: 1}
+	}
+	b.Run("slabs", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			_ = pageProto("dev", page)
+		}
+	})
+	b.Run("per-point", func(b *testing.B) {
+		b.ReportAllocs()
+		for b.Loop() {
+			m := &pb.ExportTrendResponse{}
+			for i := range page {
+				p := page[i]
+				p.Device = "dev"
+				m.Points = append(m.Points, pointProto(&p))
+			}
+		}
+	})
+}
