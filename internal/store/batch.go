@@ -279,46 +279,33 @@ func (db *DB) lookupIndex(tx *bolt.Tx, id string, pending map[string]uint32) (ui
 	return d.Index, true
 }
 
-// writePoints puts trend points, reusing the device/day bucket between
-// consecutive points of the same device and day.
+// writePoints puts trend points (one device's points ascending in time,
+// devices one after another, as compaction hands them over) into the
+// per-device day buckets as blocks (trendblock.go).
 func writePoints(tx *bolt.Tx, pts []Point) error {
-	if len(pts) == 0 {
-		return nil
-	}
 	root := tx.Bucket(bTrend)
-	var (
-		dev     *bolt.Bucket
-		devName string
-		day     *bolt.Bucket
-		dayNum  uint32
-	)
-	// bbolt keeps references to keys and values until commit: one slab, no reuse.
-	slab := make([]byte, len(pts)*(8+pointSize))
-	for i := range pts {
+	for i := 0; i < len(pts); {
 		p := &pts[i]
 		if p.Device == "" {
 			return fmt.Errorf("trend point: empty device")
 		}
-		if dev == nil || p.Device != devName {
-			var err error
-			if dev, err = root.CreateBucketIfNotExists([]byte(p.Device)); err != nil {
-				return err
-			}
-			devName, day = p.Device, nil
+		d := dayOf(p.TimeMS)
+		j := i + 1
+		for j < len(pts) && pts[j].Device == p.Device && dayOf(pts[j].TimeMS) == d && pts[j].TimeMS > pts[j-1].TimeMS {
+			j++
 		}
-		if d := dayOf(p.TimeMS); day == nil || d != dayNum {
-			var err error
-			if day, err = dev.CreateBucketIfNotExists(u32(d)); err != nil {
-				return err
-			}
-			dayNum = d
-		}
-		key, val := slab[:8:8], slab[8:8+pointSize:8+pointSize]
-		slab = slab[8+pointSize:]
-		putKey(key, p.TimeMS)
-		if err := day.Put(key, encodePoint(val, p)); err != nil {
+		dev, err := root.CreateBucketIfNotExists([]byte(p.Device))
+		if err != nil {
 			return err
 		}
+		day, err := dev.CreateBucketIfNotExists(u32(d))
+		if err != nil {
+			return err
+		}
+		if err := putDayPoints(day, pts[i:j]); err != nil {
+			return fmt.Errorf("trend of %q, day %d: %w", p.Device, d, err)
+		}
+		i = j
 	}
 	return nil
 }

@@ -128,9 +128,9 @@ func decodeCursor(v []byte, c *Cursor) error {
 }
 
 // trendItems is the number of points a trend record holds.
-func trendItems(_, v []byte) int64 {
-	if len(v) > 0 && v[0] == vPoint {
-		return 1
+func trendItems(k, v []byte) int64 {
+	if _, _, n, err := recordSpan(k, v); err == nil {
+		return int64(n)
 	}
 	return 0
 }

@@ -16,7 +16,9 @@
 //	devices/ID                    Device (JSON), written when its description changes
 //	cursors/ID                    Cursor (binary): resume point and counters, written with every batch
 //	recent/GEN/TIME_MS|DEVIDX     Point, the recent log (tail.go) until compacted into trend/
-//	trend/ID/DAY/TIME_MS          Point (24 bytes binary)
+//	trend/ID/DAY/FIRST_TIME_MS    block of up to 240 points of one device and day: delta-coded times,
+//	                              fixed-point values (trendblock.go); a release-1 store's TIME_MS -> Point
+//	                              (24 bytes binary) records are read alike, in the same day buckets
 //	ledger/DAY/DEVIDX|FIRST_SEQ|N  a range of one device's accepted messages (ledger.go); a release-1 store's
 //	                              ARRIVAL_MS|DEVIDX|SEQ records (one per message) are read alike
 //	raw/ID/DAY/SEQ                RawCapture (binary)

@@ -80,8 +80,12 @@ func (db *DB) newestStored(tx *bolt.Tx, device string) int64 {
 				continue // not a day bucket
 			}
 			if day := dev.Bucket(dk); day != nil {
-				if k, _ := day.Cursor().Last(); len(k) == 8 {
-					nw = max(nw, keyTime(k))
+				if k, v := day.Cursor().Last(); len(k) == 8 {
+					if _, last, _, err := recordSpan(k, v); err == nil {
+						nw = max(nw, last)
+					} else {
+						nw = max(nw, keyTime(k))
+					}
 					break
 				}
 			}
@@ -103,9 +107,30 @@ func (db *DB) pointStored(tx *bolt.Tx, device string, t int64) bool {
 	if day == nil {
 		return false
 	}
-	var k [8]byte
-	putKey(k[:], t)
-	return day.Get(k[:]) != nil
+	var key [8]byte
+	putKey(key[:], t)
+	c := day.Cursor()
+	k, v := c.Seek(key[:])
+	if len(k) == 8 && keyTime(k) == t {
+		return true
+	}
+	if k == nil {
+		k, v = c.Last()
+	} else {
+		k, v = c.Prev()
+	}
+	if k == nil || !isBlock(v) {
+		return false
+	}
+	if _, last, _, err := blockSpan(k, v); err != nil || last < t {
+		return err != nil // a block that does not decode: do not write beside it
+	}
+	pts, err := decodeBlock(k, v, nil)
+	if err != nil {
+		return true
+	}
+	i := sort.Search(len(pts), func(i int) bool { return pts[i].TimeMS >= t })
+	return i < len(pts) && pts[i].TimeMS == t
 }
 
 func keyTime(k []byte) int64 {

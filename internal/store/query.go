@@ -65,6 +65,9 @@ func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) erro
 		}
 		var from [8]byte
 		putKey(from[:], fromMS)
+		var buf []Point
+		pt := Point{Device: device}
+		emit := m.emit
 		c := dev.Cursor()
 		// Day buckets, from the day of fromMS on.
 		for dk, _ := c.Seek(u32(dayOf(fromMS))); dk != nil; dk, _ = c.Next() {
@@ -75,17 +78,40 @@ func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) erro
 			if day == nil {
 				continue
 			}
+			// The record before fromMS may be a block that holds it.
 			pc := day.Cursor()
-			for k, v := pc.Seek(from[:]); k != nil; k, v = pc.Next() {
-				var p Point
-				if err := decodePoint(k, v, &p); err != nil {
-					return err
+			k, v := pc.Seek(from[:])
+			if k == nil || len(k) != 8 || keyTime(k) > fromMS {
+				var pk, pv []byte
+				if k == nil {
+					pk, pv = pc.Last()
+				} else {
+					pk, pv = pc.Prev()
 				}
-				if p.TimeMS >= toMS {
+				if pk != nil && isBlock(pv) {
+					k, v = pk, pv
+				} else {
+					k, v = pc.Seek(from[:])
+				}
+			}
+			for ; k != nil; k, v = pc.Next() {
+				if len(k) == 8 && keyTime(k) >= toMS {
 					break
 				}
-				p.Device = device
-				if !m.emit(p) {
+				if isBlock(v) {
+					more, err := emitBlock(k, v, fromMS, toMS, &pt, &buf, emit)
+					if err != nil {
+						return err
+					}
+					if !more {
+						return errStop
+					}
+					continue
+				}
+				if err := decodePoint(k, v, &pt); err != nil {
+					return err
+				}
+				if pt.TimeMS >= fromMS && !emit(pt) {
 					return errStop
 				}
 			}

@@ -14,7 +14,10 @@ import (
 // 25-sample chunk every 250 ms (one ledger record and one cursor each),
 // one trend point per device-second, batches of what arrives within 25 ms.
 // The raw samples come from the physical PPG model (internal/ppgmodel) at
-// 16 bits. Run with
+// 16 bits. Batches hold a second of messages (the gateway's are 10 ms:
+// the same records, fewer commits, so a benchmark can fill device-hours).
+// Trend and ledger: 50 devices for an hour; raw capture: 10 devices for 10
+// minutes. Run with
 //
 //	go test ./internal/store -run x -bench StorageCost -benchtime 1x
 //
@@ -24,24 +27,24 @@ import (
 // counts them), as they do not grow with the days kept.
 
 const (
-	sizeDevices = 100
-	sizeSeconds = 200
 	sizeRateHz  = 100
 	sizeChunk   = 25
-	sizeBatchMS = 25
+	sizeBatchMS = 1000
 )
 
 type sizeFill struct {
-	raw  bool
-	srcs []*ppgmodel.Source
-	rng  *rand.Rand
-	red  []float64
-	ir   []float64
+	raw     bool
+	devices int
+	seconds int64
+	srcs    []*ppgmodel.Source
+	rng     *rand.Rand
+	red     []float64
+	ir      []float64
 }
 
-func newSizeFill(raw bool) *sizeFill {
-	f := &sizeFill{raw: raw, rng: rand.New(rand.NewPCG(1, 2)), red: make([]float64, sizeChunk), ir: make([]float64, sizeChunk)}
-	for i := 0; i < sizeDevices; i++ {
+func newSizeFill(raw bool, devices int, seconds int64) *sizeFill {
+	f := &sizeFill{raw: raw, devices: devices, seconds: seconds, rng: rand.New(rand.NewPCG(1, 2)), red: make([]float64, sizeChunk), ir: make([]float64, sizeChunk)}
+	for i := 0; i < devices; i++ {
 		f.srcs = append(f.srcs, ppgmodel.New(ppgmodel.Config{SampleRateHz: sizeRateHz, ADCBits: 16, Seed: uint64(i + 1)}))
 	}
 	return f
@@ -50,19 +53,17 @@ func newSizeFill(raw bool) *sizeFill {
 // fill writes sizeSeconds of every device into db.
 func (f *sizeFill) fill(tb testing.TB, db *DB) {
 	const t0 = int64(1_780_000_000_000)
-	seq := make([]uint64, sizeDevices)
+	seq := make([]uint64, f.devices)
 	phase := func(d int) int64 { return int64(d*37) % 250 }
 	b := &Batch{}
-	for i := 0; i < sizeDevices; i++ {
+	for i := 0; i < f.devices; i++ {
 		b.Devices = append(b.Devices, &Device{ID: sizeDev(i), Mode: "raw", ADCBits: 16, BatteryPct: -1})
 	}
 	vit := ppgmodel.DefaultVitals()
-	for ms := int64(0); ms < sizeSeconds*1000; ms += sizeBatchMS {
-		for d := 0; d < sizeDevices; d++ {
-			// A chunk is due every 250 ms from the device's phase: at most
-			// one falls into a 25 ms batch.
-			due := ms + (250-mod(ms-phase(d), 250))%250
-			if due < ms+sizeBatchMS {
+	for ms := int64(0); ms < f.seconds*1000; ms += sizeBatchMS {
+		for d := 0; d < f.devices; d++ {
+			// A chunk is due every 250 ms from the device's phase.
+			for due := ms + (250-mod(ms-phase(d), 250))%250; due < ms+sizeBatchMS; due += 250 {
 				f.chunk(b, d, t0+due, &seq[d], vit)
 			}
 		}
@@ -110,14 +111,16 @@ func (f *sizeFill) chunk(b *Batch, d int, tms int64, seq *uint64, vit ppgmodel.V
 
 func BenchmarkStorageCost(b *testing.B) {
 	for _, mode := range []struct {
-		name string
-		raw  bool
-	}{{"trend+ledger", false}, {"capture-raw", true}} {
+		name    string
+		raw     bool
+		devices int
+		seconds int64
+	}{{"trend+ledger", false, 50, 3600}, {"capture-raw", true, 10, 600}} {
 		b.Run(mode.name, func(b *testing.B) {
 			var st *Stats
 			for i := 0; i < b.N; i++ {
 				db, _ := mustOpen(b)
-				newSizeFill(mode.raw).fill(b, db)
+				newSizeFill(mode.raw, mode.devices, mode.seconds).fill(b, db)
 				var err error
 				if st, err = db.Stats(); err != nil {
 					b.Fatal(err)

@@ -101,6 +101,17 @@ func pointRecord(dayLevel int) func(c *checker, parents [][]byte, k, v []byte) e
 			}
 			kk = k[:8]
 		}
+		if dayLevel >= 0 && isBlock(v) {
+			pts, err := decodeBlock(k, v, nil)
+			if err != nil {
+				return err
+			}
+			d := binary.BigEndian.Uint32(parents[dayLevel])
+			if dayOf(pts[0].TimeMS) != d || dayOf(pts[len(pts)-1].TimeMS) != d {
+				return fmt.Errorf("block of %d..%d ms filed under day %d", pts[0].TimeMS, pts[len(pts)-1].TimeMS, d)
+			}
+			return nil
+		}
 		if err := decodePoint(kk, v, &p); err != nil {
 			return err
 		}
