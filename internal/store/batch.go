@@ -75,6 +75,7 @@ func (db *DB) Write(b *Batch) error {
 		assignedEp  []*Episode
 		queued      bool // outbox entries were written
 		led         *ledgerWriter
+		raw         *rawWriter
 	)
 	// index returns a device's ledger index, creating a bare record for a
 	// device first seen in this batch's trend points.
@@ -157,13 +158,9 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
+		raw = &rawWriter{db: db, tx: tx, pending: map[string]*rawState{}}
 		for i := range b.Raw {
-			r := &b.Raw[i]
-			day, err := nested(tx, bRaw, []byte(r.Device), u32(dayOf(r.DeviceTimeMS)))
-			if err != nil {
-				return err
-			}
-			if err := day.Put(u64(r.Seq), encodeRaw(r)); err != nil {
+			if err := raw.add(&b.Raw[i]); err != nil {
 				return err
 			}
 		}
@@ -238,6 +235,7 @@ func (db *DB) Write(b *Batch) error {
 	}
 	db.tail.afterCommit(b.Points, plan)
 	led.commit()
+	raw.commit()
 	if queued {
 		(*db.outboxKick.Load())()
 	}

@@ -146,19 +146,12 @@ func ledgerItems(k, v []byte) int64 {
 
 // rawItems is the number of raw chunks a raw record holds.
 func rawItems(_, v []byte) int64 {
-	if len(v) > 0 && v[0] == vRaw {
-		return 1
-	}
-	return 0
+	n, _ := rawSummary(v)
+	return n
 }
 
 // rawSeconds is the device-seconds of samples a raw record holds.
 func rawSeconds(v []byte) float64 {
-	if len(v) >= 25 && v[0] == vRaw {
-		rate := math.Float64frombits(binary.BigEndian.Uint64(v[9:]))
-		if rate > 0 {
-			return float64(binary.BigEndian.Uint32(v[17:])) / rate
-		}
-	}
-	return 0
+	_, s := rawSummary(v)
+	return s
 }

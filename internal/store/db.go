@@ -27,7 +27,7 @@ const (
 	vJSON   = 1
 	vPoint  = 1
 	vChunk  = 1 // one record per message; ledger ranges are vLedgerRange (ledger.go)
-	vRaw    = 1
+	vRaw    = 1 // one record per chunk; raw blocks are vRawBlock (rawblock.go)
 	vCursor = 1 // version 1 carries LastDeviceMS when 8 bytes longer (older cursors lack it)
 )
 
@@ -91,6 +91,9 @@ type DB struct {
 	// ledgerOpen is each device's ledger range the next message may
 	// extend (ledger.go); guarded by writeMu.
 	ledgerOpen map[uint32]*openRange
+	// rawOpen is each device's raw block the next chunk may extend
+	// (rawblock.go); guarded by writeMu.
+	rawOpen map[string]*rawState
 
 	fault atomic.Pointer[WriteFault] // tests: fails writes (fault.go)
 
@@ -161,7 +164,7 @@ func Open(dir string, opt Options) (*DB, error) {
 			return nil, damaged(path, "%s", strings.Join(p, "; "))
 		}
 	}
-	db := &DB{path: path, idx: indexCache{m: map[string]uint32{}}, newest: map[string]int64{}, ledgerOpen: map[uint32]*openRange{}}
+	db := &DB{path: path, idx: indexCache{m: map[string]uint32{}}, newest: map[string]int64{}, ledgerOpen: map[uint32]*openRange{}, rawOpen: map[string]*rawState{}}
 	err = guard(path, func() error { return db.open(opt, ident) })
 	if err != nil {
 		if db.bolt != nil {

@@ -21,7 +21,9 @@
 //	                              (24 bytes binary) records are read alike, in the same day buckets
 //	ledger/DAY/DEVIDX|FIRST_SEQ|N  a range of one device's accepted messages (ledger.go); a release-1 store's
 //	                              ARRIVAL_MS|DEVIDX|SEQ records (one per message) are read alike
-//	raw/ID/DAY/SEQ                RawCapture (binary)
+//	raw/ID/DAY/FIRST_SEQ          block of up to 10 s of consecutive chunks, samples Rice-coded after a
+//	                              fixed polynomial predictor, lossless (rawblock.go); a release-1 store's
+//	                              SEQ -> RawCapture (32-bit samples) records are read alike
 //	sessions/ID/START_MS          Session (JSON)
 //	episodes/EPISODE_ID           Episode (JSON)
 //	alarmstate/ID                 alarm-engine snapshot, stored as given (no version byte)

@@ -353,14 +353,17 @@ func (db *DB) RawCaptures(device string, fromMS, toMS int64, fn func(RawCapture)
 				break
 			}
 			err := dev.Bucket(dk).ForEach(func(k, v []byte) error {
-				r := RawCapture{Device: device, Seq: binary.BigEndian.Uint64(k)}
-				if err := decodeRaw(v, &r); err != nil {
+				more, err := decodeRawRecord(k, v, func(r RawCapture) bool {
+					if r.DeviceTimeMS < fromMS || r.DeviceTimeMS >= toMS {
+						return true
+					}
+					r.Device = device
+					return fn(r)
+				})
+				if err != nil {
 					return err
 				}
-				if r.DeviceTimeMS < fromMS || r.DeviceTimeMS >= toMS {
-					return nil
-				}
-				if !fn(r) {
+				if !more {
 					return errStop
 				}
 				return nil

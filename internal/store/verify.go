@@ -184,8 +184,8 @@ var specs = map[string]bucketSpec{
 		if len(k) != 8 {
 			return fmt.Errorf("key of %d bytes, want 8", len(k))
 		}
-		var r RawCapture
-		return decodeRaw(v, &r)
+		_, err := decodeRawRecord(k, v, func(RawCapture) bool { return true })
+		return err
 	}},
 	"sessions": {nestedKey: []func([]byte) error{anyKey}, record: jsonRecord[Session](nil)},
 	"episodes": {record: jsonRecord(func(_ *checker, k []byte, e *Episode) error { return idKey(k, e.ID) })},
