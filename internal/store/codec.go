@@ -55,22 +55,6 @@ func encodeChunk(k, v []byte, c *Chunk, devIdx uint32) {
 	binary.BigEndian.PutUint32(v[9:], c.Samples)
 }
 
-func encodeRaw(r *RawCapture) []byte {
-	n := len(r.Red)
-	b := make([]byte, 0, 1+8+8+4+4+12*n)
-	b = append(b, vRaw)
-	b = binary.BigEndian.AppendUint64(b, uint64(r.DeviceTimeMS))
-	b = binary.BigEndian.AppendUint64(b, math.Float64bits(r.RateHz))
-	b = binary.BigEndian.AppendUint32(b, uint32(n))
-	b = binary.BigEndian.AppendUint32(b, uint32(len(r.Ambient)))
-	for _, s := range [][]uint32{r.Red, r.IR, r.Ambient} {
-		for _, x := range s {
-			b = binary.BigEndian.AppendUint32(b, x)
-		}
-	}
-	return b
-}
-
 func decodeRaw(v []byte, r *RawCapture) error {
 	if len(v) < 25 || v[0] != vRaw {
 		return fmt.Errorf("bad raw record")

@@ -110,10 +110,11 @@ func (db *DB) pointStored(tx *bolt.Tx, device string, t int64) bool {
 	var key [8]byte
 	putKey(key[:], t)
 	c := day.Cursor()
-	k, v := c.Seek(key[:])
+	k, _ := c.Seek(key[:])
 	if len(k) == 8 && keyTime(k) == t {
 		return true
 	}
+	var v []byte
 	if k == nil {
 		k, v = c.Last()
 	} else {

@@ -45,7 +45,11 @@ const (
 
 const (
 	vTrendBlock = 2
-	blockMax    = 240 // points per block: 4 minutes of 1 Hz trend
+	// A block holds up to blockBytes encoded (about 360 points, 6 minutes
+	// of 1 Hz trend): bbolt puts at least two records on a page, so two
+	// blocks fill two 4 KiB pages instead of leaving a third of them empty.
+	blockBytes = 4000
+	blockMax   = 400 // and at most this many points
 )
 
 // trendScale is the fixed-point resolution of each value: SpO2 0.01 %,
@@ -53,6 +57,12 @@ const (
 // SpO2 on the common-practice line 110 - 25 R). int16 codes reach 327.67 %
 // and /min, PI 32.767 %, ratio 3.2767; beyond, a value is kept as float32.
 var trendScale = [5]float64{100, 100, 1000, 1000, 10_000}
+
+// TrendResolution is the resolution stored trend values keep: a value
+// read back is within half of it (and float32 rounding) of the value
+// written. A test comparing stored values with a rounded print of them
+// allows for it.
+var TrendResolution = struct{ SpO2, Pulse, PI, SQI, Ratio float64 }{1 / trendScale[0], 1 / trendScale[1], 1 / trendScale[2], 1 / trendScale[3], 1 / trendScale[4]}
 
 func isBlock(v []byte) bool { return len(v) > 0 && v[0] == vTrendBlock }
 
@@ -307,19 +317,19 @@ func putDayPoints(day *bolt.Bucket, pts []Point) error {
 	} else {
 		pk, pv = c.Prev()
 	}
-	if pk != nil && isBlock(pv) {
+	if isBlock(pv) {
 		_, plast, pn, err := blockSpan(pk, pv)
 		if err != nil {
 			return err
 		}
-		if plast >= first || pn+len(pts) <= blockMax {
+		if plast >= first || (pn+len(pts) <= blockMax && len(pv)+pointsBytes(pts) <= blockBytes) {
 			if old, err = decodeBlock(pk, pv, old); err != nil {
 				return err
 			}
 			del = append(del, clone(pk))
 		}
 	}
-	for k, v := c.Seek(fk[:]); k != nil && len(k) == 8 && keyTime(k) <= last; k, v = c.Next() {
+	for k, v := c.Seek(fk[:]); len(k) == 8 && keyTime(k) <= last; k, v = c.Next() {
 		var err error
 		if old, err = decodeTrendRecord(k, v, old); err != nil {
 			return err
@@ -335,8 +345,9 @@ func putDayPoints(day *bolt.Bucket, pts []Point) error {
 			return err
 		}
 	}
-	for i := 0; i < len(all); i += blockMax {
-		blk := all[i:min(i+blockMax, len(all))]
+	for i, n := 0, 0; i < len(all); i += n {
+		n = blockFit(all[i:])
+		blk := all[i : i+n]
 		key := make([]byte, 8)
 		putKey(key, blk[0].TimeMS)
 		if err := day.Put(key, encodeBlock(blk)); err != nil {
@@ -344,6 +355,53 @@ func putDayPoints(day *bolt.Bucket, pts []Point) error {
 		}
 	}
 	return nil
+}
+
+// pointsBytes bounds the bytes points add to a block.
+func pointsBytes(pts []Point) int {
+	sz := 0
+	for i := range pts {
+		sz += pointBytes(pts, i)
+	}
+	return sz
+}
+
+// pointBytes bounds the bytes point i adds to a block holding pts[:i].
+func pointBytes(pts []Point, i int) int {
+	sz := 10 // five int16 codes
+	if i > 0 {
+		sz += varintLen(pts[i].TimeMS - pts[i-1].TimeMS - 1000)
+		if pts[i].Flags != pts[i-1].Flags || pts[i].Source != pts[i-1].Source {
+			sz += 10 // new runs
+		}
+	} else {
+		sz += 10 // header and first runs
+	}
+	v := pointValues(&pts[i])
+	for f, x := range v {
+		if y := x * trendScale[f]; !math.IsNaN(x) && !(y >= qMin-0.5 && y < math.MaxInt16+0.5) {
+			sz += 4
+		}
+	}
+	return sz
+}
+
+func varintLen(x int64) int {
+	var b [binary.MaxVarintLen64]byte
+	return binary.PutVarint(b[:], x)
+}
+
+// blockFit is how many of pts (at least one) the next block takes.
+func blockFit(pts []Point) int {
+	sz, n := 8, 0
+	for n < len(pts) && n < blockMax {
+		sz += pointBytes(pts, n)
+		if sz > blockBytes && n > 0 {
+			break
+		}
+		n++
+	}
+	return n
 }
 
 // mergePoints merges stored points with new ones by time; at a time both

@@ -1,6 +1,7 @@
 package store
 
 import (
+	"encoding/binary"
 	"math"
 	"math/rand/v2"
 	"testing"
@@ -103,8 +104,7 @@ func TestTrendBlockDecodeRefusesDamage(t *testing.T) {
 			t.Fatalf("a block cut to %d of %d bytes decoded", cut, len(v))
 		}
 	}
-	bad := append([]byte(nil), v...)
-	bad[1] = blockMax + 1
+	bad := append(binary.AppendUvarint([]byte{vTrendBlock}, blockMax+1), v[2:]...)
 	if _, err := decodeBlock(k, bad, nil); err == nil {
 		t.Fatal("a block claiming too many points decoded")
 	}

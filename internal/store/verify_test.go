@@ -168,10 +168,10 @@ func TestVerifyPassesAHealthyStore(t *testing.T) {
 		t.Fatalf("healthy store reported: %v", rep.Problems)
 	}
 	// The ledger holds ranges: each device's 600 messages arrive on two
-	// days. The trend holds blocks of up to 240 points: 300 points a day
-	// make two.
-	if rep.Records["trend"] != 12*2*2 || rep.Records["ledger"] != 12*2 || rep.Records["audit"] != 12*40 {
-		t.Errorf("records counted %v, want 48 trend blocks, 24 ledger ranges, 480 audit", rep.Records)
+	// days. The trend holds blocks of up to 4,000 bytes: the 300 points of
+	// a day (11 bytes each) make one.
+	if rep.Records["trend"] != 12*2 || rep.Records["ledger"] != 12*2 || rep.Records["audit"] != 12*40 {
+		t.Errorf("records counted %v, want 24 trend blocks, 24 ledger ranges, 480 audit", rep.Records)
 	}
 }
 
