@@ -83,7 +83,7 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.BoolVar(&c.CaptureRaw, "capture-raw", c.CaptureRaw, "keep the raw samples of raw-mode devices (bounded by --raw-days)")
 	fs.IntVar(&c.TrendDays, "trend-days", c.TrendDays, "days of trend history to keep (0 = forever)")
 	fs.IntVar(&c.RawDays, "raw-days", c.RawDays, "days of raw captures to keep (0 = forever)")
-	fs.IntVar(&c.LedgerDays, "ledger-days", c.LedgerDays, "days of the ingest ledger to keep (0 = forever)")
+	fs.IntVar(&c.LedgerDays, "ledger-days", c.LedgerDays, "days of the ingest ledger to keep (0 = forever; the default covers every resend the gateway can accept: device times up to a year old)")
 	fs.DurationVar(&c.BatchDelay, "batch-delay", c.BatchDelay, "longest a message waits before its store batch commits")
 	fs.BoolVar(&c.Insecure, "insecure", c.Insecure, "allow plaintext listeners on non-loopback addresses")
 	fs.StringVar(&c.TLSCert, "tls-cert", c.TLSCert, "TLS certificate file (PEM) for gRPC and HTTP")
@@ -212,7 +212,7 @@ func isLoopback(addr string) bool {
 
 func defaultServeConfig() serveConfig {
 	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
-		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, VerifyStore: "quick", DeviceTimeRate: 30,
+		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, LedgerDays: defaultLedgerDays, VerifyStore: "quick", DeviceTimeRate: 30,
 		BackupEvery: 24 * time.Hour, BackupKeep: 7, ExportRate: 100_000}
 }
 
@@ -227,6 +227,13 @@ type runningGateway struct {
 	Auth                        string // credential enforcement (gateway.AuthMode)
 	GW                          *gateway.Gateway
 }
+
+// defaultLedgerDays keeps the ingest ledger longer than any message can be
+// resent and accepted: the gateway refuses a device time more than 366 days
+// behind its clock (internal/gateway/validate.go, maxClockSkew), so the
+// ledger still holds every stored message a device could resend. Its
+// ranges cost a few kB per device-day (README "Storage cost").
+const defaultLedgerDays = 400
 
 // startGateway opens the store, builds the gateway and starts serving; it
 // returns once the listeners are bound, and stop() shuts down gracefully and
@@ -265,6 +272,11 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 	}
 	reg := prometheus.NewRegistry()
 	if err := gateway.RegisterRuntime(reg); err != nil {
+		db.Close()
+		return nil, nil, err
+	}
+	warnCapacity(db, time.Now(), c.CaptureRaw, log)
+	if err := reg.Register(newStoreCollector(db, c.CaptureRaw)); err != nil {
 		db.Close()
 		return nil, nil, err
 	}
