@@ -52,6 +52,22 @@ func TestBackupUnderLoadKill9AndRestore(t *testing.T) {
 	}
 	data, outDir := t.TempDir(), t.TempDir()
 	good := filepath.Join(outDir, "pilot.db")
+	// History from before this run: the snapshot must be large enough for
+	// the kill below to cut it, whatever the store's encodings save.
+	func() {
+		db, err := store.Open(data, store.Options{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer db.Close()
+		var filler []*store.AuditEntry
+		for i := 0; i < 4000; i++ {
+			filler = append(filler, &store.AuditEntry{TimeMS: int64(i), Actor: "seed", Action: "test.filler", Detail: strings.Repeat("x", 1000)})
+		}
+		if err := db.AppendAudit(filler...); err != nil {
+			t.Fatal(err)
+		}
+	}()
 	c := startServe(t, data, "--capture-raw")
 	ctx, cancel := context.WithTimeout(context.Background(), 120*time.Second)
 	defer cancel()

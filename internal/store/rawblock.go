@@ -83,6 +83,7 @@ func (w *rawWriter) add(r *RawCapture) error {
 	if err != nil {
 		return err
 	}
+	bk.FillPercent = 0.9 // blocks are appended in key order: pack pages instead of splitting them in half
 	st := w.pending[r.Device]
 	if st == nil {
 		if prev, ok := w.db.rawOpen[r.Device]; ok {
