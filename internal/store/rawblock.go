@@ -433,3 +433,34 @@ func rawSummary(v []byte) (chunks int64, secs float64) {
 	}
 	return chunks, secs
 }
+
+// encodeRawBlock codes chunks of one device (ascending sequence numbers, one
+// rate, ambient in all or none) as one block, as rawWriter would have made
+// it a chunk at a time.
+func encodeRawBlock(chunks []RawCapture) []byte {
+	first := &chunks[0]
+	amb := len(first.Ambient) > 0
+	v := make([]byte, 0, 10)
+	v = append(v, vRawBlock)
+	v = binary.BigEndian.AppendUint64(v, math.Float64bits(first.RateHz))
+	if amb {
+		v = append(v, 1)
+	} else {
+		v = append(v, 0)
+	}
+	var hist [3][3]int64
+	for i := range chunks {
+		r := &chunks[i]
+		seqStep, timeStep := uint64(0), r.DeviceTimeMS
+		if i > 0 {
+			p := &chunks[i-1]
+			seqStep, timeStep = r.Seq-p.Seq, r.DeviceTimeMS-p.DeviceTimeMS-expectedStep(len(p.Red), p.RateHz)
+		}
+		chans := [][]uint32{r.Red, r.IR}
+		if amb {
+			chans = append(chans, r.Ambient)
+		}
+		v = append(v, encodeFrame(seqStep, timeStep, chans, &hist)...)
+	}
+	return v
+}

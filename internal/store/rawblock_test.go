@@ -11,6 +11,8 @@ import (
 	"strings"
 	"testing"
 
+	bolt "go.etcd.io/bbolt"
+
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 
@@ -213,4 +215,52 @@ func BenchmarkRawCamera(b *testing.B) {
 	raw := st.Kind("raw")
 	b.ReportMetric(float64(raw.Bytes)/st.RawSeconds, "raw_B/devsec")
 	b.ReportMetric(8*float64(raw.InUse)/float64(samples), "bits/sample")
+}
+
+// Deleting an interval (a participant's withdrawal) out of the middle of
+// raw blocks keeps every chunk outside it, sample for sample.
+func TestRawBlockDeleteInterval(t *testing.T) {
+	db, _ := mustOpen(t)
+	t0 := 80 * day
+	want := rawChunks("w", 5, 1, t0, 80, true) // 20 s: two blocks
+	for _, r := range want {
+		if err := db.Write(&Batch{Raw: []RawCapture{r}}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	from, to := t0+7_000, t0+13_000
+	var n uint64
+	db.writeMu.Lock()
+	err := db.update(func(tx *bolt.Tx) error {
+		var err error
+		n, err = db.deleteRaw(tx, "w", from, to)
+		return err
+	})
+	db.writeMu.Unlock()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var kept []RawCapture
+	for _, r := range want {
+		if r.DeviceTimeMS < from || r.DeviceTimeMS >= to {
+			kept = append(kept, r)
+		}
+	}
+	if n != uint64(len(want)-len(kept)) {
+		t.Errorf("deleted %d chunks, want %d", n, len(want)-len(kept))
+	}
+	got := readRaw(t, db, "w")
+	if !reflect.DeepEqual(got, kept) {
+		t.Fatalf("after deleting [7 s, 13 s): %d chunks, want %d (or samples differ)", len(got), len(kept))
+	}
+	// The device writes on after the deletion.
+	next := rawChunks("w", 6, 81, t0+20_000, 4, true)
+	for _, r := range next {
+		if err := db.Write(&Batch{Raw: []RawCapture{r}}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if got := readRaw(t, db, "w"); !reflect.DeepEqual(got, append(kept, next...)) {
+		t.Fatal("chunks written after the deletion do not read back")
+	}
 }

@@ -70,7 +70,7 @@ func (db *DB) DeleteParticipant(pid string, atMS int64, actor, remote string) (D
 				return err
 			}
 			out.TrendPoints += n
-			if n, err = deleteRaw(tx, e.Device, e.FromMS, e.ToMS); err != nil {
+			if n, err = db.deleteRaw(tx, e.Device, e.FromMS, e.ToMS); err != nil {
 				return err
 			}
 			out.RawCaptures += n
@@ -104,7 +104,9 @@ func (db *DB) DeleteParticipant(pid string, atMS int64, actor, remote string) (D
 // the day buckets (the recent log was compacted by the caller) and drops day
 // buckets left empty. It is the one place that knows the trend layout for
 // deletion: a change of that layout changes it here, and
-// TestDeleteParticipant reads back through Trend to catch a miss.
+// TestDeleteParticipant reads back through Trend to catch a miss. A block
+// (trendblock.go) that holds points on both sides of the interval is
+// written again with the points kept, under the time of its first.
 func deleteTrend(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error) {
 	dev := tx.Bucket(bTrend).Bucket([]byte(device))
 	if dev == nil {
@@ -123,12 +125,49 @@ func deleteTrend(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error)
 		if day == nil {
 			continue
 		}
+		// Records that may hold points of the interval: the one before
+		// fromMS (a block reaching into it) and those keyed before toMS.
+		var keys [][]byte
 		c := day.Cursor()
-		for k, _ := c.Seek(from[:]); k != nil && keyTime(k) < toMS; k, _ = c.Seek(from[:]) {
-			if err := c.Delete(); err != nil {
+		var pk, pv []byte
+		if k, _ := c.Seek(from[:]); k == nil {
+			pk, pv = c.Last()
+		} else {
+			pk, pv = c.Prev()
+		}
+		if len(pk) == 8 && isBlock(pv) {
+			keys = append(keys, clone(pk))
+		}
+		for k, _ := c.Seek(from[:]); len(k) == 8 && keyTime(k) < toMS; k, _ = c.Next() {
+			keys = append(keys, clone(k))
+		}
+		for _, k := range keys {
+			pts, err := decodeTrendRecord(k, day.Get(k), nil)
+			if err != nil {
 				return n, err
 			}
-			n++
+			kept := pts[:0]
+			for _, p := range pts {
+				if p.TimeMS >= fromMS && p.TimeMS < toMS {
+					n++
+				} else {
+					kept = append(kept, p)
+				}
+			}
+			if len(kept) == len(pts) {
+				continue
+			}
+			if err := day.Delete(k); err != nil {
+				return n, err
+			}
+			for i, m := 0, 0; i < len(kept); i += m {
+				m = blockFit(kept[i:])
+				key := make([]byte, 8)
+				putKey(key, kept[i].TimeMS)
+				if err := day.Put(key, encodeBlock(kept[i:i+m])); err != nil {
+					return n, err
+				}
+			}
 		}
 		if k, _ := day.Cursor().First(); k == nil {
 			empty = append(empty, clone(dk))
@@ -143,11 +182,16 @@ func deleteTrend(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error)
 }
 
 // deleteRaw deletes device's raw captures with fromMS <= device time < toMS.
-func deleteRaw(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error) {
+// A block (rawblock.go) holding chunks on both sides of the interval is
+// coded again with the chunks kept, under the sequence number of its first.
+// The caller holds writeMu; the device's open block is forgotten, so the
+// next chunk starts a new one.
+func (db *DB) deleteRaw(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error) {
 	dev := tx.Bucket(bRaw).Bucket([]byte(device))
 	if dev == nil {
 		return 0, nil
 	}
+	delete(db.rawOpen, device)
 	var n uint64
 	var empty [][]byte
 	dc := dev.Cursor()
@@ -165,25 +209,39 @@ func deleteRaw(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, error) {
 		if day == nil {
 			continue
 		}
-		var del [][]byte
+		type rewrite struct {
+			key  []byte
+			kept []RawCapture
+		}
+		var todo []rewrite
 		err := day.ForEach(func(k, v []byte) error {
-			var r RawCapture
-			if err := decodeRaw(v, &r); err != nil {
+			var all, kept []RawCapture
+			if _, err := decodeRawRecord(k, v, func(r RawCapture) bool { all = append(all, r); return true }); err != nil {
 				return err
 			}
-			if r.DeviceTimeMS >= fromMS && r.DeviceTimeMS < toMS {
-				del = append(del, clone(k))
+			for _, r := range all {
+				if r.DeviceTimeMS < fromMS || r.DeviceTimeMS >= toMS {
+					kept = append(kept, r)
+				}
+			}
+			if len(kept) < len(all) {
+				n += uint64(len(all) - len(kept))
+				todo = append(todo, rewrite{clone(k), kept})
 			}
 			return nil
 		})
 		if err != nil {
 			return n, err
 		}
-		for _, k := range del {
-			if err := day.Delete(k); err != nil {
+		for _, w := range todo {
+			if err := day.Delete(w.key); err != nil {
 				return n, err
 			}
-			n++
+			if len(w.kept) > 0 {
+				if err := day.Put(u64(w.kept[0].Seq), encodeRawBlock(w.kept)); err != nil {
+					return n, err
+				}
+			}
 		}
 		if k, _ := day.Cursor().First(); k == nil {
 			empty = append(empty, clone(dk))
