@@ -93,6 +93,31 @@ func TestParticipantsEnrolAndDelete(t *testing.T) {
 		t.Fatalf("list: %v %v", list, err)
 	}
 
+	// The page shows who holds each device now: OX-B P-0002 (open); OX-A
+	// nobody (P-0001's enrolment ended 30 s after t0, minutes ago).
+	var fleet struct {
+		Devices []struct {
+			Device struct {
+				DeviceID string `json:"device_id"`
+			} `json:"device"`
+			Participant string `json:"participant"`
+		} `json:"devices"`
+	}
+	if err := json.Unmarshal(getJSON(t, h, viewer, "/api/fleet?spark=0"), &fleet); err != nil {
+		t.Fatal(err)
+	}
+	held := map[string]string{}
+	for _, d := range fleet.Devices {
+		held[d.Device.DeviceID] = d.Participant
+	}
+	if len(held) != 2 || held["OX-B"] != "P-0002" || held["OX-A"] != "" {
+		t.Errorf("page participants %v, want OX-B P-0002 and OX-A none", held)
+	}
+	var dev struct{ Participant string }
+	if err := json.Unmarshal(getJSON(t, h, viewer, "/api/device/OX-B"), &dev); err != nil || dev.Participant != "P-0002" {
+		t.Errorf("device page participant %q %v", dev.Participant, err)
+	}
+
 	// What P-0002 (OX-B) reads before, to compare byte for byte after.
 	snapshotB := func() []byte {
 		var buf bytes.Buffer

@@ -28,6 +28,21 @@ func (f fleetForWeb) Stopping() bool { return f.stopping.Load() }
 
 func (f fleetForWeb) NowMS() int64 { return f.nowMS() }
 
+// Participants maps each device enrolled at atMS to its participant.
+func (f fleetForWeb) Participants(atMS int64) (map[string]string, error) {
+	es, err := f.db.Enrolments("", "")
+	if err != nil {
+		return nil, err
+	}
+	out := map[string]string{}
+	for _, e := range es {
+		if e.Interval().Contains(atMS) {
+			out[e.Device] = e.Participant
+		}
+	}
+	return out, nil
+}
+
 // newWeb builds the web page's server over g.
 func (g *Gateway) newWeb() *web.Server {
 	return web.New(web.Config{

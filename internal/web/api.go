@@ -104,10 +104,12 @@ func (s *Server) trendEnd(d *pb.Device) int64 {
 
 // fleetEntry is one device of /api/fleet.
 type fleetEntry struct {
-	Device  Proto[*pb.Device]         `json:"device"`
-	Quality *Proto[*pb.DeviceQuality] `json:"quality,omitempty"` // absent with quality=0
-	Active  []Proto[*pb.Episode]      `json:"active_episodes"`
-	Spark   *Spark                    `json:"spark,omitempty"`
+	Device Proto[*pb.Device] `json:"device"`
+	// Participant is the study participant enrolled to the device now ("" = none).
+	Participant string                    `json:"participant,omitempty"`
+	Quality     *Proto[*pb.DeviceQuality] `json:"quality,omitempty"` // absent with quality=0
+	Active      []Proto[*pb.Episode]      `json:"active_episodes"`
+	Spark       *Spark                    `json:"spark,omitempty"`
 	// SpO2Limits are the SpO2 thresholds of the device's profile (for the
 	// sparkline), with the spark only.
 	SpO2Limits []Limit `json:"spo2_limits,omitempty"`
@@ -154,12 +156,16 @@ func (s *Server) webFleet(ctx context.Context, _ http.ResponseWriter, r *http.Re
 	for _, e := range eps.GetEpisodes() {
 		active[e.GetDeviceId()] = append(active[e.GetDeviceId()], P(e))
 	}
+	held, err := s.fleet.Participants(s.fleet.NowMS())
+	if err != nil {
+		return nil, err
+	}
 	out := FleetJSON{NowMS: s.fleet.NowMS(), Caution: webCaution, StaleMS: attention.DefaultStale.Milliseconds(),
 		Labels: conditionLabels(devs.GetDevices(), eps.GetEpisodes()), Devices: make([]fleetEntry, 0, len(devs.GetDevices()))}
 	sparks := r.URL.Query().Get("spark") != "0"
 	profiles := profileCache{}
 	for _, d := range devs.GetDevices() {
-		e := fleetEntry{Device: P(d), Active: active[d.GetDeviceId()]}
+		e := fleetEntry{Device: P(d), Participant: held[d.GetDeviceId()], Active: active[d.GetDeviceId()]}
 		if q := up[d.GetDeviceId()]; q != nil {
 			pq := P(q)
 			e.Quality = &pq
@@ -232,14 +238,16 @@ func (c profileCache) of(ctx context.Context, f Fleet, device string) (*Profile,
 
 // DeviceJSON is the answer of /api/device/{id}.
 type DeviceJSON struct {
-	NowMS    int64                    `json:"now_ms"`
-	Caution  string                   `json:"caution"`
-	StaleMS  int64                    `json:"stale_ms"`
-	Labels   map[string]string        `json:"labels"`
-	Device   Proto[*pb.Device]        `json:"device"`
-	Quality  Proto[*pb.DeviceQuality] `json:"quality"`
-	Episodes []Proto[*pb.Episode]     `json:"episodes"` // the 20 newest, newest first
-	Profile  *Profile                 `json:"profile"`
+	NowMS   int64             `json:"now_ms"`
+	Caution string            `json:"caution"`
+	StaleMS int64             `json:"stale_ms"`
+	Labels  map[string]string `json:"labels"`
+	Device  Proto[*pb.Device] `json:"device"`
+	// Participant is the study participant enrolled to the device now ("" = none).
+	Participant string                   `json:"participant,omitempty"`
+	Quality     Proto[*pb.DeviceQuality] `json:"quality"`
+	Episodes    []Proto[*pb.Episode]     `json:"episodes"` // the 20 newest, newest first
+	Profile     *Profile                 `json:"profile"`
 }
 
 func (s *Server) webDevice(ctx context.Context, _ http.ResponseWriter, r *http.Request) (any, error) {
@@ -260,9 +268,13 @@ func (s *Server) webDevice(ctx context.Context, _ http.ResponseWriter, r *http.R
 	if err != nil {
 		return nil, err
 	}
+	held, err := s.fleet.Participants(s.fleet.NowMS())
+	if err != nil {
+		return nil, err
+	}
 	out := DeviceJSON{NowMS: s.fleet.NowMS(), Caution: webCaution, StaleMS: attention.DefaultStale.Milliseconds(),
 		Labels: conditionLabels([]*pb.Device{d.GetDevice()}, eps.GetEpisodes()), Device: P(d.GetDevice()),
-		Quality: P(q.GetQuality()), Episodes: []Proto[*pb.Episode]{}, Profile: prof}
+		Participant: held[id], Quality: P(q.GetQuality()), Episodes: []Proto[*pb.Episode]{}, Profile: prof}
 	for _, e := range eps.GetEpisodes() {
 		out.Episodes = append(out.Episodes, P(e))
 	}

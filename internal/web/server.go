@@ -44,6 +44,9 @@ type Fleet interface {
 	Stopping() bool
 	// NowMS is the gateway clock.
 	NowMS() int64
+	// Participants maps each device enrolled at atMS to its study
+	// participant (pseudonymous id); devices without one are absent.
+	Participants(atMS int64) (map[string]string, error)
 }
 
 // SessionOptions configure the session cookie.

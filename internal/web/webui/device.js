@@ -142,7 +142,7 @@ PF.devicePage = async function devicePage(id) {
     last.device.latest = last.device.latest || {};
     const d = data.device;
     if (!built) { app.replaceChildren(head, alarm, trend, h('div', { class: 'grid' }, quality, episodes), raw); built = true; }
-    head.replaceChildren(h('h1', null, d.device_id),
+    head.replaceChildren(h('h1', null, [d.device_id, data.participant ? h('span', { class: 'pid', title: 'study participant (pseudonymous id)' }, ` ${data.participant}`) : null]),
       h('p', { class: 'muted' }, [d.model, d.firmware && `firmware ${d.firmware}`, d.mode && `${d.mode.replace('MODE_', '').toLowerCase()} mode`,
         d.profile && `profile ${d.profile}`, d.calibration && `calibration ${d.calibration}`].filter(Boolean).join(' · ')),
       showValues());

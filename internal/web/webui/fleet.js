@@ -78,6 +78,7 @@ function matches(e, f, t) {
 
 const COLUMNS = [
   { key: 'device', title: 'Device', cls: 'dev', render: e => [h('a', { href: `/device/${encodeURIComponent(e.id)}` }, e.id),
+    e.pid ? h('span', { class: 'pid', title: 'study participant (pseudonymous id)' }, ` ${e.pid}`) : null,
     h('span', { class: 'muted sub' }, [e.d.model, Object.entries(e.d.labels || {}).map(([k, v]) => `${k}=${v}`).join(' ')].filter(Boolean).join(' · '))] },
   { key: 'alarm', title: 'Alarm', cls: 'alarm', render: alarmCell },
   { key: 'spo2', title: 'SpO2 %', cls: 'num v-spo2', render: (e, t) => valueCell(e.d.latest.spo2_pct, 0, valueAge(e.d, t)) },
@@ -238,14 +239,14 @@ PF.fleetPage = async function fleetPage() {
       d.latest = d.latest || {};
       const old = entries.get(d.device_id);
       const e = old || { id: d.device_id };
-      e.d = d; e.eps = x.active_episodes || [];
+      e.d = d; e.eps = x.active_episodes || []; e.pid = x.participant || '';
       // slow parts (quality, sparkline) come with every minute's full answer; sv counts them
       if (x.quality !== undefined || !old) { e.q = x.quality; e.sv = (e.sv || 0) + 1; }
       if (x.spark !== undefined || !old) { e.spark = x.spark; e.limits = x.spo2_limits || []; e.sv = (e.sv || 0) + 1; }
       e.alarm = deviceAlarm(d, e.eps, now());
       e.ann = announcedAt(e);
-      e.text = [e.id, d.model || '', ...Object.entries(d.labels || {}).map(([k, v]) => `${k}=${v} ${v}`)].join(' ').toLowerCase();
-      e.v = JSON.stringify([d, e.eps]) + e.sv;
+      e.text = [e.id, e.pid, d.model || '', ...Object.entries(d.labels || {}).map(([k, v]) => `${k}=${v} ${v}`)].join(' ').toLowerCase();
+      e.v = JSON.stringify([d, e.eps, e.pid]) + e.sv;
       entries.set(e.id, e);
       seen.add(e.id);
     }
