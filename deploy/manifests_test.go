@@ -38,10 +38,13 @@ type rendered struct {
 // kubernetes/ and decodes each object with unknown fields as errors, so a
 // misspelt or misplaced field fails here instead of being dropped by the
 // API server.
-func render(t *testing.T) rendered {
+func render(t *testing.T) rendered { t.Helper(); return renderDir(t, "kubernetes") }
+
+// renderDir is render of another kustomization (an overlay).
+func renderDir(t *testing.T, dir string) rendered {
 	t.Helper()
 	k := krusty.MakeKustomizer(krusty.MakeDefaultOptions())
-	m, err := k.Run(filesys.MakeFsOnDisk(), "kubernetes")
+	m, err := k.Run(filesys.MakeFsOnDisk(), dir)
 	if err != nil {
 		t.Fatalf("kustomize build: %v", err)
 	}

@@ -58,6 +58,8 @@ type serveConfig struct {
 	ExportRate     int           `yaml:"export_rate"`
 	// Notifications through Alertmanager (serve_notify.go).
 	notifyConfig `yaml:",inline"`
+	// A fleet on etcd (serve_cluster.go).
+	clusterConfig `yaml:",inline"`
 }
 
 const (
@@ -105,6 +107,7 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.IntVar(&c.ExportRate, "export-rate", c.ExportRate, "history points per second that exports through this gateway read together (so a long export leaves the cores to live ingest); 0 = no bound")
 	c.notifyConfig.flags(fs)
 	fs.StringVar(&c.Self, "self", c.Self, "this gateway's entry in --peers (default: the peer whose first DNS label is this host's name, as in a Kubernetes StatefulSet)")
+	c.clusterFlags(fs)
 }
 
 // loadServeConfig reads a YAML config file; unknown keys and bad values are
@@ -180,6 +183,9 @@ func (c *serveConfig) validate() error {
 		}
 	} else if c.Self != "" {
 		return fmt.Errorf("self: given without --peers")
+	}
+	if err := c.validateCluster(); err != nil {
+		return err
 	}
 	if err := c.backups().Validate(); err != nil {
 		return err
@@ -289,19 +295,34 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		return nil, nil, err
 	}
 	sec.apply(&opt, c)
+	leave := func() {}
+	var fleet *fleetOnEtcd
+	if len(c.Etcd) > 0 {
+		if fleet, err = joinCluster(ctx, c, log, reg); err != nil {
+			db.Close()
+			return nil, nil, err
+		}
+		opt.Cluster, opt.ControlPlane, leave = fleet.node, fleet.plane, fleet.leave
+	}
 	gw, err := gateway.New(opt)
+	if err == nil && fleet != nil {
+		err = fleet.plane.Start(ctx, gw)
+	}
 	if err != nil {
+		leave()
 		db.Close()
 		return nil, nil, err
 	}
 	gl, err := net.Listen("tcp", c.GRPCListen)
 	if err != nil {
+		leave()
 		db.Close()
 		return nil, nil, fmt.Errorf("grpc-listen %s: %w", c.GRPCListen, err)
 	}
 	hl, err := net.Listen("tcp", c.HTTPListen)
 	if err != nil {
 		gl.Close()
+		leave()
 		db.Close()
 		return nil, nil, fmt.Errorf("http-listen %s: %w", c.HTTPListen, err)
 	}
@@ -314,6 +335,7 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 	if err != nil {
 		hl.Close()
 		gl.Close()
+		leave()
 		db.Close()
 		return nil, nil, err
 	}
@@ -325,6 +347,7 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 		cancel()
 		err := <-done
 		stopNotify() // after the gateway's last write
+		leave()      // after the last stream ended: its fences go with the lease
 		if cerr := db.Close(); err == nil {
 			err = cerr
 		}

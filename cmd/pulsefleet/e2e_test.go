@@ -34,7 +34,7 @@ var (
 )
 
 // binary builds the pulsefleet binary once for the process tests.
-func binary(t *testing.T) string {
+func binary(t testing.TB) string {
 	t.Helper()
 	binOnce.Do(func() {
 		dir, err := os.MkdirTemp("", "pulsefleet-bin")
@@ -63,7 +63,7 @@ type child struct {
 	exited   chan error
 }
 
-func startServe(t *testing.T, dataDir string, extra ...string) *child {
+func startServe(t testing.TB, dataDir string, extra ...string) *child {
 	t.Helper()
 	args := append([]string{"serve", "--data", dataDir, "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0", "--batch-delay", "5ms"}, extra...)
 	cmd := exec.Command(binary(t), args...)

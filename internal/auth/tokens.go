@@ -67,8 +67,21 @@ func newSecret() (secret, id string) {
 // store must not be held by a running gateway (use AdminService.IssueToken
 // then).
 func IssueToken(db *store.DB, spec TokenSpec, by, remote string, now time.Time) (string, store.Token, error) {
-	if err := spec.Validate(); err != nil {
+	secret, t, audit, err := NewToken(spec, by, remote, now)
+	if err != nil {
 		return "", store.Token{}, err
+	}
+	if err := db.PutToken(t, audit); err != nil {
+		return "", store.Token{}, fmt.Errorf("issue token: %w", err)
+	}
+	return secret, t, nil
+}
+
+// NewToken makes a credential and its audit entry without storing them
+// (a gateway in a fleet publishes it to the shared control plane first).
+func NewToken(spec TokenSpec, by, remote string, now time.Time) (string, store.Token, *store.AuditEntry, error) {
+	if err := spec.Validate(); err != nil {
+		return "", store.Token{}, nil, err
 	}
 	secret, id := newSecret()
 	t := store.Token{Hash: HashSecret(secret), ID: id, CreatedMS: now.UnixMilli(), IssuedBy: by}
@@ -81,10 +94,7 @@ func IssueToken(db *store.DB, spec TokenSpec, by, remote string, now time.Time) 
 		detail = "operator credential " + id + " for " + spec.Operator + " with role " + t.Role
 	}
 	audit := &store.AuditEntry{TimeMS: t.CreatedMS, Actor: by, Action: "token.issue", Device: spec.Device, Detail: detail, Remote: remote}
-	if err := db.PutToken(t, audit); err != nil {
-		return "", store.Token{}, fmt.Errorf("issue token: %w", err)
-	}
-	return secret, t, nil
+	return secret, t, audit, nil
 }
 
 // RevokeToken revokes the credential with public id in db at once.

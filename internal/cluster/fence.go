@@ -187,3 +187,6 @@ func (n *Node) Held() int {
 	defer n.mu.Unlock()
 	return len(n.held)
 }
+
+// RedirectTo is the owner's address (the gateway redirects the device there).
+func (e *MovedError) RedirectTo() string { return e.Owner }

@@ -21,6 +21,9 @@ func (g *Gateway) IssueToken(ctx context.Context, req *pb.IssueTokenRequest) (*p
 	if err := spec.Validate(); err != nil {
 		return nil, status.Error(codes.InvalidArgument, err.Error())
 	}
+	if g.opt.ControlPlane != nil {
+		return g.issueShared(ctx, spec)
+	}
 	secret, t, err := auth.IssueToken(g.db, spec, auth.ActorFrom(ctx), auth.RemoteFrom(ctx), g.opt.Now())
 	if err != nil {
 		return nil, status.Errorf(codes.Unavailable, "%v", err)
@@ -47,6 +50,9 @@ func (g *Gateway) ListTokens(ctx context.Context, _ *pb.ListTokensRequest) (*pb.
 // credential ends at once (a device's stream, an operator's watch); web
 // sessions made with it end at their next request.
 func (g *Gateway) RevokeToken(ctx context.Context, req *pb.RevokeTokenRequest) (*pb.RevokeTokenResponse, error) {
+	if g.opt.ControlPlane != nil {
+		return g.revokeShared(ctx, req.GetTokenId())
+	}
 	t, err := auth.RevokeToken(g.db, req.GetTokenId(), auth.ActorFrom(ctx), auth.RemoteFrom(ctx), g.opt.Now())
 	if errors.Is(err, store.ErrNotFound) {
 		return nil, status.Errorf(codes.NotFound, "token_id: %q is not a credential of this gateway", req.GetTokenId())

@@ -272,14 +272,17 @@ func (g *Gateway) SetAlarmProfile(ctx context.Context, req *pb.SetAlarmProfileRe
 	if err != nil {
 		return nil, status.Errorf(codes.InvalidArgument, "profile_yaml: %v (or a built-in profile name: %s)", err, strings.Join(profiles.Names(), ", "))
 	}
-	who := auth.ActorFrom(ctx)
-	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "profile.set", Device: req.GetDeviceId(),
-		Detail: fmt.Sprintf("profile %s; reason: %s", p.Name, req.GetReason()), Remote: auth.RemoteFrom(ctx)}
 	if req.GetDeviceId() != "" {
 		if err := checkID(req.GetDeviceId()); err != nil {
 			return nil, err
 		}
 	}
+	who, action, note, err := g.profileChange(ctx, req.GetDeviceId(), text, req.GetReason()) // fleet on etcd: controlplane.go
+	if err != nil {
+		return nil, err
+	}
+	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: action, Device: req.GetDeviceId(),
+		Detail: fmt.Sprintf("profile %s; reason: %s", p.Name, req.GetReason()) + note, Remote: auth.RemoteFrom(ctx)}
 	if err := g.ingest.SetProfile(ctx, req.GetDeviceId(), text, p, audit); err != nil {
 		return nil, ingestStatus(err)
 	}

@@ -31,6 +31,10 @@ func (g *Gateway) httpHandler() http.Handler {
 			fmt.Fprintln(w, "not ready")
 			return
 		}
+		if d := g.controlPlaneStatus(); d != "" {
+			fmt.Fprintln(w, "ready (degraded: "+d+")") // ingest goes on: not a reason to take the gateway out of service
+			return
+		}
 		fmt.Fprintln(w, "ready")
 	})
 	g.web.Routes(mux) // the web page, its JSON and the login (internal/web)

@@ -83,6 +83,13 @@ type Options struct {
 	// (package shard) is another peer is redirected there.
 	Peers []string
 	Self  string
+	// Cluster, when set, replaces Peers: owners come from the live member
+	// list (package cluster over etcd) and each stream holds its device's
+	// fence (cluster.go).
+	Cluster Cluster
+	// ControlPlane, when set, shares credentials with the fleet's other
+	// gateways (controlplane.go); nil keeps them in this store only.
+	ControlPlane ControlPlane
 	// GRPCServerOptions are added to the gRPC server's (TLS credentials, interceptors).
 	GRPCServerOptions []grpc.ServerOption
 	// Security configures credential enforcement, web sessions and the
@@ -137,6 +144,9 @@ func (o *Options) setDefaults() error {
 	}
 	if o.WatchdogEvery == 0 {
 		o.WatchdogEvery = time.Second
+	}
+	if len(o.Peers) > 0 && o.Cluster != nil {
+		return fmt.Errorf("gateway: Options.Peers and Options.Cluster are exclusive")
 	}
 	if len(o.Peers) > 0 {
 		found := false

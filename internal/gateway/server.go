@@ -86,7 +86,7 @@ func New(opt Options) (*Gateway, error) {
 		BatchDelay: opt.BatchDelay, BatchRecords: opt.BatchRecords, MaxMessageBytes: opt.MaxMessageBytes,
 		MaxChunkSamples: opt.MaxChunkSamples, LateAfter: opt.LateAfter, SendStall: opt.sendStall,
 		CaptureRaw: opt.CaptureRaw, TrendDays: opt.Retention.TrendDays, DefaultProfile: opt.DefaultProfile,
-		Limits: g.streamLimits, Owner: g.ownerOf, Authorize: g.auth.AuthorizeDevice, Calibration: g.streamCalibration,
+		Limits: g.streamLimits, Owner: g.ownerOf, Fence: g.fence(), Authorize: g.auth.AuthorizeDevice, Calibration: g.streamCalibration,
 	})
 	if err != nil {
 		return nil, fmt.Errorf("gateway: %w", err)
@@ -251,6 +251,9 @@ func (g *Gateway) audit(ctx context.Context, actor, action, device, detail, remo
 // ownerOf returns the address of the gateway that owns deviceID when it is
 // not this one ("" = this one, or no sharding).
 func (g *Gateway) ownerOf(deviceID string) string {
+	if g.opt.Cluster != nil {
+		return g.opt.Cluster.Owner(deviceID)
+	}
 	if g.ring == nil {
 		return ""
 	}

@@ -41,6 +41,9 @@ type Config struct {
 	// Owner returns the address of the gateway that owns a device, or ""
 	// when this one does (a device owned elsewhere is redirected there).
 	Owner func(deviceID string) string
+	// Fence, when set (a fleet on etcd), holds each accepted stream's
+	// device fence (fence.go); nil = no fences.
+	Fence Fence
 	// Authorize checks that the stream's caller may speak for deviceID; its
 	// error ends the stream as it is.
 	Authorize func(ctx context.Context, deviceID string) error
@@ -280,6 +283,8 @@ func (p *Pipeline) Tick(ctx context.Context) {
 	for _, d := range p.devices.all() {
 		if s := d.streamNow(); s != nil {
 			s.checkStall()
+		} else if p.cfg.Fence != nil && p.cfg.Owner(d.id) != "" {
+			continue // streams at its owner, whose engine evaluates it
 		}
 		d.mu.Lock()
 		// Streams move their own engines, but a device whose every

@@ -52,6 +52,7 @@ type stream struct {
 
 	epoch    uint64 // the device's write epoch this stream feeds (set when attached)
 	attached bool   // start made it the device's stream: finish must run
+	release  func() // gives back the device's fence (fleet on etcd: fence.go)
 
 	acked   atomic.Uint64 // durable through this sequence (set by the writer)
 	msgs    chan *pb.ConnectRequest
@@ -208,6 +209,9 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 		s.cal, s.calRef = cal, ref
 	}
 
+	if err := s.fence(ctx); err != nil {
+		return err
+	}
 	nowMS := p.nowMS()
 	rec := s.attach(in, nowMS)
 	p.m.connected.Inc()
@@ -308,6 +312,8 @@ func (s *stream) attach(in *pb.Introduction, nowMS int64) *record {
 // the session's end is stored.
 func (s *stream) finish(ctx context.Context) {
 	p, d := s.p, s.dev
+	defer s.unfence()
+	moved := s.movedAway(ctx)
 	nowMS := p.nowMS()
 	d.mu.Lock()
 	replaced := d.stream != s
@@ -315,7 +321,7 @@ func (s *stream) finish(ctx context.Context) {
 		d.stream = nil
 	}
 	var evs []alarms.Event
-	if !replaced && d.engine != nil {
+	if !replaced && !moved && d.engine != nil {
 		d.engine.SetOffline(true, d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
 	}
 	reason := "closed"

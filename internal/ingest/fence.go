@@ -1,0 +1,82 @@
+package ingest
+
+import (
+	"context"
+	"errors"
+	"time"
+
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+)
+
+// Fence takes a device's fence before its stream is accepted, in a fleet
+// of gateways (internal/cluster over etcd). lost is called when the fence
+// is taken away (the device now belongs to another gateway, or this
+// gateway's membership lapsed) and the stream must end; release gives the
+// fence back when the stream ended. An error that has a RedirectTo() string
+// method names the device's owner: the device is redirected there.
+type Fence func(ctx context.Context, deviceID string, lost func(error)) (release func(), err error)
+
+// MovedAway is the cause of a stream ended because its device's fence was
+// taken away.
+type MovedAway struct{ Err error }
+
+func (e *MovedAway) Error() string { return "device moved to another gateway of the fleet: " + e.Err.Error() }
+func (e *MovedAway) Unwrap() error { return e.Err }
+
+type redirector interface{ RedirectTo() string }
+
+// movedFlushTimeout bounds the flush of a stream whose device moves away.
+const movedFlushTimeout = 10 * time.Second
+
+// fence takes the device's fence for s when the pipeline has a Fence.
+func (s *stream) fence(ctx context.Context) error {
+	f := s.p.cfg.Fence
+	if f == nil {
+		return nil
+	}
+	id := s.dev.id
+	// Losing the fence ends the stream; finish makes what it accepted
+	// durable first, so its last acknowledgement goes out and the device
+	// resends nothing the next gateway would store again. The device
+	// reconnects here and is redirected to the new owner.
+	rel, err := f(ctx, id, func(err error) { s.cancel(&MovedAway{Err: err}) })
+	if err != nil {
+		var r redirector
+		if errors.As(err, &r) && r.RedirectTo() != "" {
+			addr := r.RedirectTo()
+			s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Redirect{Redirect: &pb.Redirect{Address: addr, Detail: "device " + id + " belongs to the gateway at " + addr}}})
+			return errorf(Precondition, "device %s belongs to the gateway at %s", id, addr)
+		}
+		if c := context.Cause(ctx); c != nil {
+			return c
+		}
+		return errorf(Unavailable, "%v", err)
+	}
+	s.release = rel
+	return nil
+}
+
+// unfence releases the fence fence took, if any.
+func (s *stream) unfence() {
+	if s.release != nil {
+		s.release()
+		s.release = nil
+	}
+}
+
+// movedAway reports whether the stream ends because its device's fence was
+// taken away. Then finish flushes the writer first (so the final
+// acknowledgement covers everything accepted) and does not put the device
+// offline for its alarm engine: it streams on at another gateway.
+func (s *stream) movedAway(ctx context.Context) bool {
+	var m *MovedAway
+	if !errors.As(context.Cause(ctx), &m) {
+		return false
+	}
+	sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), movedFlushTimeout)
+	defer cancel()
+	if err := s.p.w.sync(sctx, nil); err != nil {
+		s.p.log.Warn("device moving away: store flush", "device", s.dev.id, "err", err)
+	}
+	return true
+}
