@@ -21,6 +21,12 @@ import (
 type Options struct {
 	// Address is the gateway's gRPC address, host:port (required).
 	Address string
+	// Fallbacks are more gateways of the same fleet. A redirect is followed
+	// only while it works: after an attempt that was not welcomed (the
+	// gateway is down, or cannot take the device now) the client tries the
+	// next of Address and Fallbacks, whose gateway redirects it to the
+	// device's owner again. Empty = back to Address.
+	Fallbacks []string
 	// Dial opens a connection to a gateway address (required): the caller
 	// chooses transport security.
 	Dial func(addr string) (*grpc.ClientConn, error)
@@ -345,7 +351,8 @@ func (c *Client) Run(ctx context.Context) {
 		default:
 			c.noteErr(err)
 			wait = b.Next()
-			c.opts.Logf("gateway %s: %v; retrying in %v", addr, err, wait.Round(time.Millisecond))
+			next := c.nextAddress(addr)
+			c.opts.Logf("gateway %s: %v; retrying at %s in %v", addr, err, next, wait.Round(time.Millisecond))
 		}
 		timer.Reset(wait)
 		select {
@@ -354,6 +361,23 @@ func (c *Client) Run(ctx context.Context) {
 		case <-timer.C:
 		}
 	}
+}
+
+// nextAddress moves the client to the gateway after addr in Address and
+// Fallbacks (to Address when addr is a redirect target) and returns it.
+func (c *Client) nextAddress(addr string) string {
+	all := append([]string{c.opts.Address}, c.opts.Fallbacks...)
+	next := all[0]
+	for i, a := range all {
+		if a == addr {
+			next = all[(i+1)%len(all)]
+			break
+		}
+	}
+	c.mu.Lock()
+	c.addr = next
+	c.mu.Unlock()
+	return next
 }
 
 // refused reports an answer that retrying cannot change: an introduction

@@ -1,8 +1,10 @@
 // Package uplink is the device side of the pulsefleet ingest protocol for
 // one device: it numbers data messages, keeps each one until the gateway
 // acknowledges it as durable, resumes after a reconnect from the sequence
-// number the gateway's Welcome names, follows redirects in a sharded fleet,
-// and reconnects with exponential backoff and jitter. It is what the
+// number the gateway's Welcome names, follows redirects in a sharded fleet
+// (and, when the gateway a redirect named is down, goes back to its own
+// address and Options.Fallbacks: a fleet on etcd moves a dead gateway's
+// devices to the survivors), and reconnects with exponential backoff and jitter. It is what the
 // `relay` command streams through.
 //
 // Two pieces are shared with the simulator (package sim), whose devices keep

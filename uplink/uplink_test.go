@@ -5,6 +5,8 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"slices"
+	"sync"
 	"testing"
 	"time"
 
@@ -132,5 +134,45 @@ func TestBackoffGrowsWithJitter(t *testing.T) {
 	b.Reset()
 	if w := b.Next(); w > 120*time.Millisecond {
 		t.Errorf("after Reset: %v", w)
+	}
+}
+
+// A redirect is followed only while it works: when the gateway it named
+// cannot be reached, the client goes back to its own address, then through
+// its fallbacks in turn.
+func TestUnreachableRedirectFallsBack(t *testing.T) {
+	var mu sync.Mutex
+	var tried []string
+	c, _, err := New(Options{Address: "a:1", Fallbacks: []string{"b:1", "c:1"},
+		Dial: func(addr string) (*grpc.ClientConn, error) {
+			mu.Lock()
+			tried = append(tried, addr)
+			mu.Unlock()
+			return nil, fmt.Errorf("connection refused")
+		},
+		Intro: &pb.Introduction{DeviceId: "d"}, Backoff: Backoff{Base: time.Millisecond, Ceiling: 2 * time.Millisecond}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	c.addr = "owner:1" // where a redirect had sent it
+	ctx, cancel := context.WithCancel(context.Background())
+	go func() {
+		for {
+			mu.Lock()
+			n := len(tried)
+			mu.Unlock()
+			if n >= 5 {
+				cancel()
+				return
+			}
+			time.Sleep(time.Millisecond)
+		}
+	}()
+	c.Run(ctx)
+	mu.Lock()
+	defer mu.Unlock()
+	want := []string{"owner:1", "a:1", "b:1", "c:1", "a:1"}
+	if len(tried) < 5 || !slices.Equal(tried[:5], want) {
+		t.Fatalf("dialled %q, want %q first", tried, want)
 	}
 }
