@@ -71,7 +71,7 @@ type Stats struct {
 	Reconnects      uint64            // streams opened after the first
 	Redirects       uint64            // redirects followed
 	Renumbered      uint64            // times the held messages were renumbered after the gateway's
-	ResumeRegress   uint64            // welcomes resuming below what was acknowledged before
+	ResumeRegress   uint64            // welcomes resuming below what was acknowledged before (normal after a move between gateways of a fleet)
 	HeldMessages    int               // held now
 	HeldSamples     int64             // held now
 	HeldBytes       int64             // held now
@@ -510,7 +510,7 @@ func (c *Client) welcome(resume uint64) error {
 	}
 	if resume < c.finished {
 		c.st.ResumeRegress++
-		c.opts.Logf("gateway resumes after message %d, below the %d it acknowledged before: messages %d..%d are gone from its store", resume, c.finished, resume+1, c.finished)
+		c.opts.Logf("gateway resumes after message %d, below the %d it acknowledged before: messages %d..%d are gone from its store, or (a fleet on etcd) held by the gateway that acknowledged them", resume, c.finished, resume+1, c.finished)
 	}
 	if !c.welcomed {
 		c.welcomed = true
