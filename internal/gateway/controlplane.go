@@ -10,8 +10,8 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/internal/auth"
 	"github.com/pulsefleet/pulsefleet/internal/controlplane"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // ControlPlane is the fleet's shared settings (package controlplane over
