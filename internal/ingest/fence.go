@@ -20,7 +20,9 @@ type Fence func(ctx context.Context, deviceID string, lost func(error)) (release
 // taken away.
 type MovedAway struct{ Err error }
 
-func (e *MovedAway) Error() string { return "device moved to another gateway of the fleet: " + e.Err.Error() }
+func (e *MovedAway) Error() string {
+	return "device moved to another gateway of the fleet: " + e.Err.Error()
+}
 func (e *MovedAway) Unwrap() error { return e.Err }
 
 type redirector interface{ RedirectTo() string }
