@@ -222,6 +222,22 @@ func TestDeleteParticipant(t *testing.T) {
 	if _, err := db.DeleteParticipant("P-0002", 0, "admin-ro", ""); !errors.Is(err, ErrStillOpen) {
 		t.Errorf("delete while open: %v", err)
 	}
+	// P-0002's enrolment ends, but its episode at 10:30 is still active:
+	// refused (the engine would write it back), and nothing is deleted.
+	if _, err := db.EndEnrolment("P-0002", "", utcMS("2026-12-02T12:00:00Z"), nil); err != nil {
+		t.Fatal(err)
+	}
+	act := *b.Episodes[3]
+	act.Active, act.EndedMS = true, 0
+	if err := db.Write(&Batch{Episodes: []*Episode{&act}}); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := db.DeleteParticipant("P-0002", 0, "admin-ro", ""); !errors.Is(err, ErrStillOpen) || !strings.Contains(err.Error(), "still active") {
+		t.Errorf("delete with an active episode: %v", err)
+	}
+	if es, _ := db.Enrolments("P-0002", ""); len(es) != 1 {
+		t.Errorf("a refused deletion changed the enrolments: %+v", es)
+	}
 }
 
 // BenchmarkDeleteParticipant measures the withdrawal of a participant with

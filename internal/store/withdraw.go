@@ -31,7 +31,8 @@ type Deletion struct {
 // (action "participants.delete", by actor at atMS) saying who, when, which
 // intervals and how many records, in the same transaction, and returns the
 // same figures. It wraps ErrNotFound when pid has no enrolment and
-// ErrStillOpen while one is open (end it first: the device may still be
+// ErrStillOpen while one is open or while an episode to delete is still
+// active (end it or wait: the device may still be
 // sending the participant's data).
 //
 // It holds the write lock throughout: the recent trend log is compacted
@@ -267,6 +268,12 @@ func deleteEpisodes(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, uin
 			return err
 		}
 		if e.Device == device && e.OnsetMS >= fromMS && e.OnsetMS < toMS {
+			if e.Active {
+				// The alarm engine still holds it and would write it again
+				// when it changes: the deletion would not hold.
+				return fmt.Errorf("%w: episode %d of device %s (%s, onset %s, inside the enrolment) is still active; "+
+					"delete again once it has ended", ErrStillOpen, e.ID, device, e.Condition, fmtMS(e.OnsetMS))
+			}
 			del = append(del, clone(k))
 		}
 		return nil
