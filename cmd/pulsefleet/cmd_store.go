@@ -9,11 +9,12 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 const storeSummary = `Look into a store: store stats prints where its bytes go.
 
-  pulsefleet store stats --data DIR [--format text|json]
+  pulsefleet store stats (--data DIR | --gateway ADDR) [--format text|json]
 
 For every kind of record (top-level bucket: trend, recent = trend points not
 yet compacted, ledger, raw, episodes, audit, alarmstate, ...) it prints the
@@ -21,8 +22,9 @@ bytes of the pages it occupies, the records and what they hold (trend points,
 ledger messages, raw chunks), and the bytes per device-day: device-days are
 the trend points held / 86,400 (one point per device-second). Free pages are
 space the file already has for later writes. It reads every page (read-only,
-shared lock): the gateway must be stopped, or use its /metrics gauges
-(pulsefleet_store_bytes).`
+shared lock) of a stopped gateway's store; --gateway ADDR asks a running
+gateway (AdminService.GetStoreStats, viewer role; its /metrics carries the
+same as pulsefleet_store_bytes, refreshed every 10 minutes).`
 
 func init() {
 	register(command{name: "store", summary: storeSummary, run: runStore})
@@ -32,30 +34,30 @@ func runStore(ctx context.Context, args []string, s stdio) error {
 	if len(args) == 0 || args[0] != "stats" {
 		return usagef("store: want a subcommand: stats")
 	}
-	fs := newFlagSet("store stats", "--data DIR [--format text|json]", s.err)
-	data := fs.String("data", "", "data directory holding pulsefleet.db (required)")
+	fs := newFlagSet("store stats", "(--data DIR | --gateway ADDR) [--format text|json]", s.err)
+	var cf clientFlags
+	cf.register(fs)
+	data := fs.String("data", "", "data directory of a stopped gateway, holding pulsefleet.db")
 	format := fs.String("format", "text", "output: text or json")
-	wait := fs.Duration("wait", time.Second, "how long to wait for the store's lock")
+	wait := fs.Duration("wait", time.Second, "with --data: how long to wait for the store's lock")
 	if err := parseFlags(fs, args[1:]); err != nil {
 		return err
 	}
-	if *data == "" {
-		return usagef("--data: required")
+	if (*data == "") == (cf.gateways == "") {
+		return usagef("--data, --gateway: give one (--data for a stopped gateway's store, --gateway for a running one)")
 	}
 	if *format != "text" && *format != "json" {
 		return usagef("--format: %q, want text or json", *format)
 	}
-	db, err := store.Open(*data, store.Options{ReadOnly: true, Timeout: *wait})
-	if errors.Is(err, store.ErrLocked) {
-		return fmt.Errorf("--data %s: %w: store stats reads the file read-only but a running gateway holds it: read its /metrics (pulsefleet_store_bytes), or stop it", *data, err)
+	var st *store.Stats
+	var err error
+	if *data != "" {
+		st, err = localStoreStats(*data, *wait)
+	} else {
+		st, err = remoteStoreStats(ctx, &cf)
 	}
 	if err != nil {
-		return fmt.Errorf("--data %s: %w", *data, err)
-	}
-	defer db.Close()
-	st, err := db.Stats()
-	if err != nil {
-		return fmt.Errorf("store stats %s: %w", *data, err)
+		return err
 	}
 	if *format == "json" {
 		enc := json.NewEncoder(s.out)
@@ -63,6 +65,47 @@ func runStore(ctx context.Context, args []string, s stdio) error {
 		return enc.Encode(st)
 	}
 	return writeStoreStats(s.out, st)
+}
+
+func localStoreStats(data string, wait time.Duration) (*store.Stats, error) {
+	db, err := store.Open(data, store.Options{ReadOnly: true, Timeout: wait})
+	if errors.Is(err, store.ErrLocked) {
+		return nil, fmt.Errorf("--data %s: %w: store stats reads the file read-only but a running gateway holds it: use --gateway ADDR", data, err)
+	}
+	if err != nil {
+		return nil, fmt.Errorf("--data %s: %w", data, err)
+	}
+	defer db.Close()
+	st, err := db.Stats()
+	if err != nil {
+		return nil, fmt.Errorf("store stats %s: %w", data, err)
+	}
+	return st, nil
+}
+
+func remoteStoreStats(ctx context.Context, cf *clientFlags) (*store.Stats, error) {
+	addrs, err := cf.addrs()
+	if err != nil {
+		return nil, err
+	}
+	if len(addrs) != 1 {
+		return nil, usagef("--gateway: one address, got %d (each gateway of a sharded fleet has its own store)", len(addrs))
+	}
+	conn, err := cf.dial(addrs[0])
+	if err != nil {
+		return nil, err
+	}
+	defer conn.Close()
+	r, err := pb.NewAdminServiceClient(conn).GetStoreStats(cf.ctx(ctx), &pb.GetStoreStatsRequest{})
+	if err != nil {
+		return nil, fmt.Errorf("--gateway %s: store stats: %w", addrs[0], err)
+	}
+	st := &store.Stats{Path: r.GetPath(), FileBytes: r.GetFileBytes(), PageSize: int(r.GetPageSize()), FreeBytes: r.GetFreeBytes(),
+		TrendPoints: r.GetTrendPoints(), DeviceDays: r.GetDeviceDays(), RawSeconds: r.GetRawSeconds()}
+	for _, k := range r.GetKinds() {
+		st.Kinds = append(st.Kinds, store.KindStats{Kind: k.GetKind(), Bytes: k.GetBytes(), InUse: k.GetInUseBytes(), Records: k.GetRecords(), Items: k.GetItems()})
+	}
+	return st, nil
 }
 
 func writeStoreStats(w io.Writer, st *store.Stats) error {

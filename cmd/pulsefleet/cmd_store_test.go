@@ -30,3 +30,36 @@ func TestStoreStatsCountsTheSeededStore(t *testing.T) {
 		t.Errorf("without --data: exit %d, %s", code, errOut)
 	}
 }
+
+// Through a running gateway (AdminService.GetStoreStats) store stats counts
+// the same as from the stopped gateway's data directory.
+func TestStoreStatsThroughTheGateway(t *testing.T) {
+	if testing.Short() {
+		t.Skip("process test")
+	}
+	dir := seedCLIStore(t)
+	code, out, errOut := runCmd("store", "stats", "--data", dir, "--format", "json")
+	if code != 0 {
+		t.Fatalf("--data: exit %d: %s", code, errOut)
+	}
+	var local store.Stats
+	if err := json.Unmarshal([]byte(out), &local); err != nil {
+		t.Fatal(err)
+	}
+	c := startServe(t, dir)
+	code, out, errOut = runCmd("store", "stats", "--gateway", c.grpcAddr, "--format", "json")
+	if code != 0 {
+		t.Fatalf("--gateway: exit %d: %s", code, errOut)
+	}
+	var remote store.Stats
+	if err := json.Unmarshal([]byte(out), &remote); err != nil {
+		t.Fatal(err)
+	}
+	if remote.TrendPoints != local.TrendPoints || remote.Kind("ledger").Items != local.Kind("ledger").Items ||
+		remote.Kind("audit").Records < local.Kind("audit").Records || remote.Kind("trend").Bytes == 0 {
+		t.Errorf("through the gateway %+v, from the directory %+v", remote, local)
+	}
+	if code, _, errOut = runCmd("store", "stats", "--gateway", c.grpcAddr, "--data", dir); code == 0 || !strings.Contains(errOut, "give one") {
+		t.Errorf("both --data and --gateway: exit %d, %s", code, errOut)
+	}
+}

@@ -94,6 +94,7 @@ var methodRoles = map[string]Role{
 
 	pb.AdminService_ListAudit_FullMethodName:         RoleViewer,
 	pb.AdminService_ListCalibrations_FullMethodName:  RoleViewer,
+	pb.AdminService_GetStoreStats_FullMethodName:     RoleViewer,
 	pb.AdminService_IssueToken_FullMethodName:        RoleAdmin,
 	pb.AdminService_ListTokens_FullMethodName:        RoleAdmin,
 	pb.AdminService_RevokeToken_FullMethodName:       RoleAdmin,

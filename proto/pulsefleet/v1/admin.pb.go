@@ -1234,6 +1234,234 @@ func (x *BackupResponse) GetTakenUnixMs() int64 {
 	return 0
 }
 
+// GetStoreStatsRequest asks for the store's statistics.
+type GetStoreStatsRequest struct {
+	state         protoimpl.MessageState `protogen:"open.v1"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *GetStoreStatsRequest) Reset() {
+	*x = GetStoreStatsRequest{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[20]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *GetStoreStatsRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*GetStoreStatsRequest) ProtoMessage() {}
+
+func (x *GetStoreStatsRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[20]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use GetStoreStatsRequest.ProtoReflect.Descriptor instead.
+func (*GetStoreStatsRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{20}
+}
+
+// StoreKindStats is the space one kind of record (top-level bucket) takes.
+type StoreKindStats struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Kind: the top-level bucket (trend, recent, ledger, raw, episodes, audit, alarmstate, ...).
+	Kind string `protobuf:"bytes,1,opt,name=kind,proto3" json:"kind,omitempty"`
+	// Bytes of the pages its records occupy.
+	Bytes int64 `protobuf:"varint,2,opt,name=bytes,proto3" json:"bytes,omitempty"`
+	// Bytes of those pages holding keys, values and page headers.
+	InUseBytes int64 `protobuf:"varint,3,opt,name=in_use_bytes,json=inUseBytes,proto3" json:"in_use_bytes,omitempty"`
+	// Stored records (not counting nested buckets).
+	Records int64 `protobuf:"varint,4,opt,name=records,proto3" json:"records,omitempty"`
+	// What the records hold: trend points, ledger messages, raw chunks; else records.
+	Items         int64 `protobuf:"varint,5,opt,name=items,proto3" json:"items,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *StoreKindStats) Reset() {
+	*x = StoreKindStats{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[21]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *StoreKindStats) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*StoreKindStats) ProtoMessage() {}
+
+func (x *StoreKindStats) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[21]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use StoreKindStats.ProtoReflect.Descriptor instead.
+func (*StoreKindStats) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{21}
+}
+
+func (x *StoreKindStats) GetKind() string {
+	if x != nil {
+		return x.Kind
+	}
+	return ""
+}
+
+func (x *StoreKindStats) GetBytes() int64 {
+	if x != nil {
+		return x.Bytes
+	}
+	return 0
+}
+
+func (x *StoreKindStats) GetInUseBytes() int64 {
+	if x != nil {
+		return x.InUseBytes
+	}
+	return 0
+}
+
+func (x *StoreKindStats) GetRecords() int64 {
+	if x != nil {
+		return x.Records
+	}
+	return 0
+}
+
+func (x *StoreKindStats) GetItems() int64 {
+	if x != nil {
+		return x.Items
+	}
+	return 0
+}
+
+// GetStoreStatsResponse is where the store's bytes go.
+type GetStoreStatsResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The store file's high-water mark, bytes.
+	FileBytes int64 `protobuf:"varint,1,opt,name=file_bytes,json=fileBytes,proto3" json:"file_bytes,omitempty"`
+	// Page size, bytes.
+	PageSize int32 `protobuf:"varint,2,opt,name=page_size,json=pageSize,proto3" json:"page_size,omitempty"`
+	// Bytes of free pages, reused by later writes before the file grows.
+	FreeBytes int64 `protobuf:"varint,3,opt,name=free_bytes,json=freeBytes,proto3" json:"free_bytes,omitempty"`
+	// Per kind, by name.
+	Kinds []*StoreKindStats `protobuf:"bytes,4,rep,name=kinds,proto3" json:"kinds,omitempty"`
+	// Trend points held (compacted and in the recent log).
+	TrendPoints int64 `protobuf:"varint,5,opt,name=trend_points,json=trendPoints,proto3" json:"trend_points,omitempty"`
+	// trend_points / 86,400: device-days of history held.
+	DeviceDays float64 `protobuf:"fixed64,6,opt,name=device_days,json=deviceDays,proto3" json:"device_days,omitempty"`
+	// Device-seconds of raw samples captured.
+	RawSeconds float64 `protobuf:"fixed64,7,opt,name=raw_seconds,json=rawSeconds,proto3" json:"raw_seconds,omitempty"`
+	// Path of the store file on the gateway's machine.
+	Path          string `protobuf:"bytes,8,opt,name=path,proto3" json:"path,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *GetStoreStatsResponse) Reset() {
+	*x = GetStoreStatsResponse{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[22]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *GetStoreStatsResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*GetStoreStatsResponse) ProtoMessage() {}
+
+func (x *GetStoreStatsResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[22]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use GetStoreStatsResponse.ProtoReflect.Descriptor instead.
+func (*GetStoreStatsResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{22}
+}
+
+func (x *GetStoreStatsResponse) GetFileBytes() int64 {
+	if x != nil {
+		return x.FileBytes
+	}
+	return 0
+}
+
+func (x *GetStoreStatsResponse) GetPageSize() int32 {
+	if x != nil {
+		return x.PageSize
+	}
+	return 0
+}
+
+func (x *GetStoreStatsResponse) GetFreeBytes() int64 {
+	if x != nil {
+		return x.FreeBytes
+	}
+	return 0
+}
+
+func (x *GetStoreStatsResponse) GetKinds() []*StoreKindStats {
+	if x != nil {
+		return x.Kinds
+	}
+	return nil
+}
+
+func (x *GetStoreStatsResponse) GetTrendPoints() int64 {
+	if x != nil {
+		return x.TrendPoints
+	}
+	return 0
+}
+
+func (x *GetStoreStatsResponse) GetDeviceDays() float64 {
+	if x != nil {
+		return x.DeviceDays
+	}
+	return 0
+}
+
+func (x *GetStoreStatsResponse) GetRawSeconds() float64 {
+	if x != nil {
+		return x.RawSeconds
+	}
+	return 0
+}
+
+func (x *GetStoreStatsResponse) GetPath() string {
+	if x != nil {
+		return x.Path
+	}
+	return ""
+}
+
 var File_pulsefleet_v1_admin_proto protoreflect.FileDescriptor
 
 const file_pulsefleet_v1_admin_proto_rawDesc = "" +
@@ -1313,13 +1541,34 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"\bstore_id\x18\x02 \x01(\tR\astoreId\x12\x14\n" +
 	"\x05chunk\x18\x03 \x01(\fR\x05chunk\x12\x16\n" +
 	"\x06sha256\x18\x04 \x01(\tR\x06sha256\x12\"\n" +
-	"\rtaken_unix_ms\x18\x05 \x01(\x03R\vtakenUnixMs*P\n" +
+	"\rtaken_unix_ms\x18\x05 \x01(\x03R\vtakenUnixMs\"\x16\n" +
+	"\x14GetStoreStatsRequest\"\x8c\x01\n" +
+	"\x0eStoreKindStats\x12\x12\n" +
+	"\x04kind\x18\x01 \x01(\tR\x04kind\x12\x14\n" +
+	"\x05bytes\x18\x02 \x01(\x03R\x05bytes\x12 \n" +
+	"\fin_use_bytes\x18\x03 \x01(\x03R\n" +
+	"inUseBytes\x12\x18\n" +
+	"\arecords\x18\x04 \x01(\x03R\arecords\x12\x14\n" +
+	"\x05items\x18\x05 \x01(\x03R\x05items\"\xa0\x02\n" +
+	"\x15GetStoreStatsResponse\x12\x1d\n" +
+	"\n" +
+	"file_bytes\x18\x01 \x01(\x03R\tfileBytes\x12\x1b\n" +
+	"\tpage_size\x18\x02 \x01(\x05R\bpageSize\x12\x1d\n" +
+	"\n" +
+	"free_bytes\x18\x03 \x01(\x03R\tfreeBytes\x123\n" +
+	"\x05kinds\x18\x04 \x03(\v2\x1d.pulsefleet.v1.StoreKindStatsR\x05kinds\x12!\n" +
+	"\ftrend_points\x18\x05 \x01(\x03R\vtrendPoints\x12\x1f\n" +
+	"\vdevice_days\x18\x06 \x01(\x01R\n" +
+	"deviceDays\x12\x1f\n" +
+	"\vraw_seconds\x18\a \x01(\x01R\n" +
+	"rawSeconds\x12\x12\n" +
+	"\x04path\x18\b \x01(\tR\x04path*P\n" +
 	"\x04Role\x12\x14\n" +
 	"\x10ROLE_UNSPECIFIED\x10\x00\x12\x0f\n" +
 	"\vROLE_VIEWER\x10\x01\x12\x11\n" +
 	"\rROLE_OPERATOR\x10\x02\x12\x0e\n" +
 	"\n" +
-	"ROLE_ADMIN\x10\x032\xcf\x05\n" +
+	"ROLE_ADMIN\x10\x032\xab\x06\n" +
 	"\fAdminService\x12Q\n" +
 	"\n" +
 	"IssueToken\x12 .pulsefleet.v1.IssueTokenRequest\x1a!.pulsefleet.v1.IssueTokenResponse\x12Q\n" +
@@ -1330,7 +1579,8 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"\x0ePutCalibration\x12$.pulsefleet.v1.PutCalibrationRequest\x1a%.pulsefleet.v1.PutCalibrationResponse\x12c\n" +
 	"\x10ListCalibrations\x12&.pulsefleet.v1.ListCalibrationsRequest\x1a'.pulsefleet.v1.ListCalibrationsResponse\x12f\n" +
 	"\x11AssignCalibration\x12'.pulsefleet.v1.AssignCalibrationRequest\x1a(.pulsefleet.v1.AssignCalibrationResponse\x12G\n" +
-	"\x06Backup\x12\x1c.pulsefleet.v1.BackupRequest\x1a\x1d.pulsefleet.v1.BackupResponse0\x01BCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
+	"\x06Backup\x12\x1c.pulsefleet.v1.BackupRequest\x1a\x1d.pulsefleet.v1.BackupResponse0\x01\x12Z\n" +
+	"\rGetStoreStats\x12#.pulsefleet.v1.GetStoreStatsRequest\x1a$.pulsefleet.v1.GetStoreStatsResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
 var (
 	file_pulsefleet_v1_admin_proto_rawDescOnce sync.Once
@@ -1345,7 +1595,7 @@ func file_pulsefleet_v1_admin_proto_rawDescGZIP() []byte {
 }
 
 var file_pulsefleet_v1_admin_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
-var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 20)
+var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 23)
 var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(Role)(0),                         // 0: pulsefleet.v1.Role
 	(*Token)(nil),                     // 1: pulsefleet.v1.Token
@@ -1368,6 +1618,9 @@ var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(*AssignCalibrationResponse)(nil), // 18: pulsefleet.v1.AssignCalibrationResponse
 	(*BackupRequest)(nil),             // 19: pulsefleet.v1.BackupRequest
 	(*BackupResponse)(nil),            // 20: pulsefleet.v1.BackupResponse
+	(*GetStoreStatsRequest)(nil),      // 21: pulsefleet.v1.GetStoreStatsRequest
+	(*StoreKindStats)(nil),            // 22: pulsefleet.v1.StoreKindStats
+	(*GetStoreStatsResponse)(nil),     // 23: pulsefleet.v1.GetStoreStatsResponse
 }
 var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	0,  // 0: pulsefleet.v1.Token.role:type_name -> pulsefleet.v1.Role
@@ -1380,27 +1633,30 @@ var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	11, // 7: pulsefleet.v1.ListCalibrationsResponse.calibrations:type_name -> pulsefleet.v1.Calibration
 	15, // 8: pulsefleet.v1.ListCalibrationsResponse.assignments:type_name -> pulsefleet.v1.CalibrationAssignment
 	15, // 9: pulsefleet.v1.AssignCalibrationResponse.assignment:type_name -> pulsefleet.v1.CalibrationAssignment
-	2,  // 10: pulsefleet.v1.AdminService.IssueToken:input_type -> pulsefleet.v1.IssueTokenRequest
-	4,  // 11: pulsefleet.v1.AdminService.ListTokens:input_type -> pulsefleet.v1.ListTokensRequest
-	6,  // 12: pulsefleet.v1.AdminService.RevokeToken:input_type -> pulsefleet.v1.RevokeTokenRequest
-	9,  // 13: pulsefleet.v1.AdminService.ListAudit:input_type -> pulsefleet.v1.ListAuditRequest
-	12, // 14: pulsefleet.v1.AdminService.PutCalibration:input_type -> pulsefleet.v1.PutCalibrationRequest
-	14, // 15: pulsefleet.v1.AdminService.ListCalibrations:input_type -> pulsefleet.v1.ListCalibrationsRequest
-	17, // 16: pulsefleet.v1.AdminService.AssignCalibration:input_type -> pulsefleet.v1.AssignCalibrationRequest
-	19, // 17: pulsefleet.v1.AdminService.Backup:input_type -> pulsefleet.v1.BackupRequest
-	3,  // 18: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
-	5,  // 19: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
-	7,  // 20: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
-	10, // 21: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
-	13, // 22: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
-	16, // 23: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
-	18, // 24: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
-	20, // 25: pulsefleet.v1.AdminService.Backup:output_type -> pulsefleet.v1.BackupResponse
-	18, // [18:26] is the sub-list for method output_type
-	10, // [10:18] is the sub-list for method input_type
-	10, // [10:10] is the sub-list for extension type_name
-	10, // [10:10] is the sub-list for extension extendee
-	0,  // [0:10] is the sub-list for field type_name
+	22, // 10: pulsefleet.v1.GetStoreStatsResponse.kinds:type_name -> pulsefleet.v1.StoreKindStats
+	2,  // 11: pulsefleet.v1.AdminService.IssueToken:input_type -> pulsefleet.v1.IssueTokenRequest
+	4,  // 12: pulsefleet.v1.AdminService.ListTokens:input_type -> pulsefleet.v1.ListTokensRequest
+	6,  // 13: pulsefleet.v1.AdminService.RevokeToken:input_type -> pulsefleet.v1.RevokeTokenRequest
+	9,  // 14: pulsefleet.v1.AdminService.ListAudit:input_type -> pulsefleet.v1.ListAuditRequest
+	12, // 15: pulsefleet.v1.AdminService.PutCalibration:input_type -> pulsefleet.v1.PutCalibrationRequest
+	14, // 16: pulsefleet.v1.AdminService.ListCalibrations:input_type -> pulsefleet.v1.ListCalibrationsRequest
+	17, // 17: pulsefleet.v1.AdminService.AssignCalibration:input_type -> pulsefleet.v1.AssignCalibrationRequest
+	19, // 18: pulsefleet.v1.AdminService.Backup:input_type -> pulsefleet.v1.BackupRequest
+	21, // 19: pulsefleet.v1.AdminService.GetStoreStats:input_type -> pulsefleet.v1.GetStoreStatsRequest
+	3,  // 20: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
+	5,  // 21: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
+	7,  // 22: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
+	10, // 23: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
+	13, // 24: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
+	16, // 25: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
+	18, // 26: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
+	20, // 27: pulsefleet.v1.AdminService.Backup:output_type -> pulsefleet.v1.BackupResponse
+	23, // 28: pulsefleet.v1.AdminService.GetStoreStats:output_type -> pulsefleet.v1.GetStoreStatsResponse
+	20, // [20:29] is the sub-list for method output_type
+	11, // [11:20] is the sub-list for method input_type
+	11, // [11:11] is the sub-list for extension type_name
+	11, // [11:11] is the sub-list for extension extendee
+	0,  // [0:11] is the sub-list for field type_name
 }
 
 func init() { file_pulsefleet_v1_admin_proto_init() }
@@ -1414,7 +1670,7 @@ func file_pulsefleet_v1_admin_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_pulsefleet_v1_admin_proto_rawDesc), len(file_pulsefleet_v1_admin_proto_rawDesc)),
 			NumEnums:      1,
-			NumMessages:   20,
+			NumMessages:   23,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

@@ -27,6 +27,7 @@ const (
 	AdminService_ListCalibrations_FullMethodName  = "/pulsefleet.v1.AdminService/ListCalibrations"
 	AdminService_AssignCalibration_FullMethodName = "/pulsefleet.v1.AdminService/AssignCalibration"
 	AdminService_Backup_FullMethodName            = "/pulsefleet.v1.AdminService/Backup"
+	AdminService_GetStoreStats_FullMethodName     = "/pulsefleet.v1.AdminService/GetStoreStats"
 )
 
 // AdminServiceClient is the client API for AdminService service.
@@ -58,6 +59,11 @@ type AdminServiceClient interface {
 	// last message the SHA-256 of all chunks. A stream that ends without that last
 	// message is not a backup. Admin role; audited.
 	Backup(ctx context.Context, in *BackupRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[BackupResponse], error)
+	// GetStoreStats says where the store's bytes go: pages, records and items
+	// per kind of record, free pages and the device-days of trend held. It
+	// reads every page of the store (one read transaction): its time grows
+	// with the store. Viewer role.
+	GetStoreStats(ctx context.Context, in *GetStoreStatsRequest, opts ...grpc.CallOption) (*GetStoreStatsResponse, error)
 }
 
 type adminServiceClient struct {
@@ -157,6 +163,16 @@ func (c *adminServiceClient) Backup(ctx context.Context, in *BackupRequest, opts
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type AdminService_BackupClient = grpc.ServerStreamingClient[BackupResponse]
 
+func (c *adminServiceClient) GetStoreStats(ctx context.Context, in *GetStoreStatsRequest, opts ...grpc.CallOption) (*GetStoreStatsResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(GetStoreStatsResponse)
+	err := c.cc.Invoke(ctx, AdminService_GetStoreStats_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // AdminServiceServer is the server API for AdminService service.
 // All implementations must embed UnimplementedAdminServiceServer
 // for forward compatibility.
@@ -186,6 +202,11 @@ type AdminServiceServer interface {
 	// last message the SHA-256 of all chunks. A stream that ends without that last
 	// message is not a backup. Admin role; audited.
 	Backup(*BackupRequest, grpc.ServerStreamingServer[BackupResponse]) error
+	// GetStoreStats says where the store's bytes go: pages, records and items
+	// per kind of record, free pages and the device-days of trend held. It
+	// reads every page of the store (one read transaction): its time grows
+	// with the store. Viewer role.
+	GetStoreStats(context.Context, *GetStoreStatsRequest) (*GetStoreStatsResponse, error)
 	mustEmbedUnimplementedAdminServiceServer()
 }
 
@@ -219,6 +240,9 @@ func (UnimplementedAdminServiceServer) AssignCalibration(context.Context, *Assig
 }
 func (UnimplementedAdminServiceServer) Backup(*BackupRequest, grpc.ServerStreamingServer[BackupResponse]) error {
 	return status.Error(codes.Unimplemented, "method Backup not implemented")
+}
+func (UnimplementedAdminServiceServer) GetStoreStats(context.Context, *GetStoreStatsRequest) (*GetStoreStatsResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method GetStoreStats not implemented")
 }
 func (UnimplementedAdminServiceServer) mustEmbedUnimplementedAdminServiceServer() {}
 func (UnimplementedAdminServiceServer) testEmbeddedByValue()                      {}
@@ -378,6 +402,24 @@ func _AdminService_Backup_Handler(srv interface{}, stream grpc.ServerStream) err
 // This type alias is provided for backwards compatibility with existing code that references the prior non-generic stream type by name.
 type AdminService_BackupServer = grpc.ServerStreamingServer[BackupResponse]
 
+func _AdminService_GetStoreStats_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(GetStoreStatsRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(AdminServiceServer).GetStoreStats(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: AdminService_GetStoreStats_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(AdminServiceServer).GetStoreStats(ctx, req.(*GetStoreStatsRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // AdminService_ServiceDesc is the grpc.ServiceDesc for AdminService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -412,6 +454,10 @@ var AdminService_ServiceDesc = grpc.ServiceDesc{
 		{
 			MethodName: "AssignCalibration",
 			Handler:    _AdminService_AssignCalibration_Handler,
+		},
+		{
+			MethodName: "GetStoreStats",
+			Handler:    _AdminService_GetStoreStats_Handler,
 		},
 	},
 	Streams: []grpc.StreamDesc{
