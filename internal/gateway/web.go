@@ -6,9 +6,10 @@ import (
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
+	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 	"github.com/pulsefleet/pulsefleet/internal/web"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // fleetForWeb is the gateway as the web page sees it (web.Fleet): the
@@ -22,6 +23,23 @@ func (f fleetForWeb) RawCaptures(deviceID string, fromMS, toMS int64, fn func(st
 
 func (f fleetForWeb) Watch(devices []string, points bool, buffer int) (<-chan *pb.WatchEventsResponse, func()) {
 	return f.ingest.Watch(devices, points, buffer)
+}
+
+// AlarmProfile returns the profile in force for a device (the same as
+// GetAlarmProfile, without the YAML round trip: the overview asks for
+// thousands of devices at once).
+func (f fleetForWeb) AlarmProfile(deviceID string) (*alarms.Profile, string, error) {
+	if err := checkID(deviceID); err != nil {
+		return nil, "", err
+	}
+	p, origin, err := f.ingest.Profile(deviceID)
+	if err != nil {
+		return nil, "", ingestStatus(err)
+	}
+	if p == nil {
+		return nil, "", status.Errorf(codes.NotFound, "no alarm profile is configured")
+	}
+	return p, origin, nil
 }
 
 func (f fleetForWeb) Stopping() bool { return f.stopping.Load() }

@@ -214,25 +214,23 @@ func (s *Server) spark(ctx context.Context, d *pb.Device) (*Spark, error) {
 	return sp, nil
 }
 
-// profileCache parses each distinct profile text once per answer (a fleet
-// mostly shares a few profiles).
-type profileCache map[string]*Profile
+// profileCache turns each distinct profile into its limits once per
+// answer (a fleet mostly shares a few profiles).
+type profileCache map[*alarms.Profile]map[string]*Profile
 
-func (c profileCache) of(ctx context.Context, f Fleet, device string) (*Profile, error) {
-	resp, err := f.GetAlarmProfile(ctx, &pb.GetAlarmProfileRequest{DeviceId: device})
+func (c profileCache) of(_ context.Context, f Fleet, device string) (*Profile, error) {
+	ap, origin, err := f.AlarmProfile(device)
 	if err != nil {
 		return nil, err
 	}
-	key := resp.GetOrigin() + "\x00" + resp.GetProfileYaml()
-	if p, ok := c[key]; ok {
+	if p := c[ap][origin]; p != nil {
 		return p, nil
 	}
-	ap, err := alarms.ParseProfile([]byte(resp.GetProfileYaml()))
-	if err != nil {
-		return nil, &Error{Status: http.StatusInternalServerError, Message: fmt.Sprintf("alarm profile of %s: %v", device, err)}
+	p := &Profile{Name: ap.Name, Origin: origin, Limits: limitsOf(ap)}
+	if c[ap] == nil {
+		c[ap] = map[string]*Profile{}
 	}
-	p := &Profile{Name: resp.GetName(), Origin: resp.GetOrigin(), Limits: limitsOf(ap)}
-	c[key] = p
+	c[ap][origin] = p
 	return p, nil
 }
 

@@ -40,9 +40,9 @@
 //
 // Caveats: a gateway restart makes every session cookie invalid (the key is
 // new each start); the page is webui/index.html run as an html/template
-// (server.go). The full /api/fleet answer asks the gateway for each device's
-// alarm profile (YAML, parsed once per distinct text): at 5,000 devices
-// that is most of its CPU, which is why the page asks for it once a minute.
+// (server.go). The full /api/fleet answer (quality figures, sparklines,
+// each device's profile limits) costs several times the light one, which
+// is why the page asks for it once a minute (BenchmarkWebOverview5000).
 //
 // Not a certified medical alarm: the page says so at its top.
 package web

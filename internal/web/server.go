@@ -11,6 +11,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
 	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/store"
@@ -29,10 +30,13 @@ type Fleet interface {
 	QueryTrend(context.Context, *pb.QueryTrendRequest) (*pb.QueryTrendResponse, error)
 	AcknowledgeAlarm(context.Context, *pb.AcknowledgeAlarmRequest) (*pb.AcknowledgeAlarmResponse, error)
 	PauseAlarms(context.Context, *pb.PauseAlarmsRequest) (*pb.PauseAlarmsResponse, error)
-	GetAlarmProfile(context.Context, *pb.GetAlarmProfileRequest) (*pb.GetAlarmProfileResponse, error)
 	ListReviews(context.Context, *pb.ListReviewsRequest) (*pb.ListReviewsResponse, error)
 	ReviewEpisode(context.Context, *pb.ReviewEpisodeRequest) (*pb.ReviewEpisodeResponse, error)
 
+	// AlarmProfile returns the alarm profile in force for a device (never
+	// nil without an error) and its origin, "device" or "default", as
+	// GetAlarmProfile does; the page only reads it.
+	AlarmProfile(deviceID string) (*alarms.Profile, string, error)
 	// RawCaptures calls fn with the device's captured raw chunks between
 	// fromMS and toMS (device time) in order, until fn returns false.
 	RawCaptures(deviceID string, fromMS, toMS int64, fn func(store.RawCapture) bool) error
