@@ -27,7 +27,7 @@ func runDevices(ctx context.Context, args []string, s stdio) error {
 	fs := newFlagSet("devices", "--gateway ADDR[,ADDR...] [--format table|json]", s.err)
 	cf.register(fs)
 	format := fs.String("format", "table", "output: table or json")
-	stale := fs.Duration("stale", 10*time.Second, "a value older than this is not shown as current: the table prints - and its age")
+	stale := fs.Duration("stale", 10*time.Second, "a value older than this, or of an offline device, is not shown as current: the table prints - and its age (the web page: ?stale=S)")
 	order := fs.String("order", "attention", "row order: attention (alarms by priority, longest announced first; then technical problems; then the rest) or id")
 	if err := parseFlags(fs, args); err != nil {
 		return err
