@@ -53,4 +53,5 @@
 //
 //	PREFIX/members/ADDR   value ADDR, member lease
 //	PREFIX/fence/DEVICE   value ADDR of the holder, the holder's member lease
+//	PREFIX/alarm/DEVICE   the device's last alarm snapshot (alarms.go), no lease
 package cluster

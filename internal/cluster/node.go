@@ -57,6 +57,10 @@ type Node struct {
 	members map[string]bool
 	held    map[string]*hold // device id -> this gateway's fence
 
+	alarmMu      sync.Mutex
+	alarmPending map[string][]byte // device id -> newest alarm snapshot not yet in etcd (alarms.go)
+	alarmKick    chan struct{}
+
 	stop context.CancelFunc
 	wg   sync.WaitGroup
 }
@@ -90,7 +94,8 @@ func Join(ctx context.Context, cfg Config) (*Node, error) {
 		return nil, err
 	}
 	n := &Node{c: cfg.Client, prefix: cfg.Prefix, self: cfg.Self, ttl: cfg.TTL, wait: cfg.AcquireWait,
-		log: cfg.Log, m: m, members: map[string]bool{}, held: map[string]*hold{}}
+		log: cfg.Log, m: m, members: map[string]bool{}, held: map[string]*hold{},
+		alarmPending: map[string][]byte{}, alarmKick: make(chan struct{}, 1)}
 	if err := n.register(ctx); err != nil {
 		return nil, err
 	}
@@ -100,7 +105,8 @@ func Join(ctx context.Context, cfg Config) (*Node, error) {
 	}
 	bg, stop := context.WithCancel(context.Background())
 	n.stop = stop
-	n.wg.Add(2)
+	n.wg.Add(3)
+	go func() { defer n.wg.Done(); n.publishAlarms(bg) }()
 	go func() { defer n.wg.Done(); n.keepAlive(bg) }()
 	go func() { defer n.wg.Done(); n.watchMembers(bg, rev+1) }()
 	return n, nil

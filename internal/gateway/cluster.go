@@ -25,3 +25,12 @@ func (g *Gateway) fence() ingest.Fence {
 	}
 	return g.opt.Cluster.Acquire
 }
+
+// alarmShare is the pipeline's AlarmShare: the cluster's when it carries
+// alarm state (package cluster does), or none.
+func (g *Gateway) alarmShare() ingest.AlarmShare {
+	if a, ok := g.opt.Cluster.(ingest.AlarmShare); ok {
+		return a
+	}
+	return nil
+}

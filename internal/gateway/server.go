@@ -86,7 +86,7 @@ func New(opt Options) (*Gateway, error) {
 		BatchDelay: opt.BatchDelay, BatchRecords: opt.BatchRecords, MaxMessageBytes: opt.MaxMessageBytes,
 		MaxChunkSamples: opt.MaxChunkSamples, LateAfter: opt.LateAfter, SendStall: opt.sendStall,
 		CaptureRaw: opt.CaptureRaw, TrendDays: opt.Retention.TrendDays, DefaultProfile: opt.DefaultProfile,
-		Limits: g.streamLimits, Owner: g.ownerOf, Fence: g.fence(), Authorize: g.auth.AuthorizeDevice, Calibration: g.streamCalibration,
+		Limits: g.streamLimits, Owner: g.ownerOf, Fence: g.fence(), Alarms: g.alarmShare(), Authorize: g.auth.AuthorizeDevice, Calibration: g.streamCalibration,
 	})
 	if err != nil {
 		return nil, fmt.Errorf("gateway: %w", err)

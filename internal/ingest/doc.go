@@ -23,7 +23,9 @@
 // estimate, evaluate, queue), validate.go, ratelimit.go, clock.go (device
 // time), quality.go, device.go (the registry), writer.go, hub.go,
 // effects.go (alarm events to episodes, metrics, live events), views.go and
-// operator.go (what FleetService reads and changes), errors.go, protos.go.
+// operator.go (what FleetService reads and changes), errors.go, protos.go,
+// fence.go (a fleet on etcd: each stream's device fence, alarm state
+// carried between gateways; both optional functions of Config).
 //
 // Ownership of goroutines:
 //   - The caller runs RunWriter in a goroutine it owns and stops it with

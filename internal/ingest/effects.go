@@ -55,6 +55,9 @@ func (p *Pipeline) alarmEffects(d *device, evs []alarms.Event, rec *record) {
 	if snap := d.alarmSnapshot(); snap != nil {
 		rec.dev = d
 		rec.alarm = snap
+		if p.cfg.Alarms != nil {
+			p.cfg.Alarms.PublishAlarm(d.id, snap) // fleet on etcd: fence.go
+		}
 	}
 }
 

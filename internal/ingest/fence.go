@@ -2,8 +2,11 @@ package ingest
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"time"
+
+	"github.com/pulsefleet/pulsefleet/alarms"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -81,4 +84,64 @@ func (s *stream) movedAway(ctx context.Context) bool {
 		s.p.log.Warn("device moving away: store flush", "device", s.dev.id, "err", err)
 	}
 	return true
+}
+
+// AlarmShare carries a device's alarm state between the gateways of a
+// fleet (internal/cluster): PublishAlarm takes each new snapshot (it must
+// not block), SharedAlarm returns the last one any gateway published.
+type AlarmShare interface {
+	PublishAlarm(deviceID string, state []byte)
+	SharedAlarm(ctx context.Context, deviceID string) ([]byte, error)
+}
+
+// adoptSharedAlarm gives the device the alarm state the fleet last
+// published for it when that is newer than the one this gateway holds (its
+// last evaluated time is later), so an episode announced by the previous
+// gateway goes on here without being announced again. Episode numbers go on
+// above both, so no stored episode is overwritten. Runs after the fence is
+// taken; without a share, or when etcd does not answer, the local state
+// stays (and the device's alarms are evaluated from it).
+func (s *stream) adoptSharedAlarm(ctx context.Context) {
+	sh, p, d := s.p.cfg.Alarms, s.p, s.dev
+	if sh == nil {
+		return
+	}
+	b, err := sh.SharedAlarm(ctx, d.id)
+	if err != nil || b == nil {
+		if err != nil {
+			p.log.Warn("shared alarm state not read; going on with this gateway's", "device", d.id, "err", err)
+		}
+		return
+	}
+	var st alarms.State
+	if err := json.Unmarshal(b, &st); err != nil || st.LastS == nil {
+		return
+	}
+	d.mu.Lock()
+	defer d.mu.Unlock()
+	if d.engine != nil {
+		local := d.engine.Snapshot()
+		if local.LastS != nil && *local.LastS >= *st.LastS {
+			return // this gateway's state is as new
+		}
+		st.NextID = max(st.NextID, local.NextID)
+	}
+	prof := d.profile
+	if prof == nil {
+		p.defaultMu.RLock()
+		prof = p.defaultProfile
+		p.defaultMu.RUnlock()
+	}
+	if prof == nil {
+		return
+	}
+	e, err := alarms.Restore(prof, st)
+	if err != nil {
+		p.log.Warn("shared alarm state does not fit this gateway's profile; not adopted", "device", d.id, "err", err)
+		return
+	}
+	d.engine, d.profile = e, prof
+	d.alarmRev = 0 // stored here with the next batch of the device
+	p.refreshActive(d)
+	p.log.Info("alarm state adopted from the fleet", "device", d.id, "episodes_next_id", st.NextID)
 }

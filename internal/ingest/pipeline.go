@@ -44,6 +44,9 @@ type Config struct {
 	// Fence, when set (a fleet on etcd), holds each accepted stream's
 	// device fence (fence.go); nil = no fences.
 	Fence Fence
+	// Alarms, when set (a fleet on etcd), carries alarm state between the
+	// gateways (fence.go); nil = this gateway's store only.
+	Alarms AlarmShare
 	// Authorize checks that the stream's caller may speak for deviceID; its
 	// error ends the stream as it is.
 	Authorize func(ctx context.Context, deviceID string) error

@@ -212,6 +212,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	if err := s.fence(ctx); err != nil {
 		return err
 	}
+	s.adoptSharedAlarm(ctx)
 	nowMS := p.nowMS()
 	rec := s.attach(in, nowMS)
 	p.m.connected.Inc()

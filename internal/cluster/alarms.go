@@ -1,0 +1,84 @@
+package cluster
+
+import (
+	"context"
+	"fmt"
+	"time"
+)
+
+// Alarm state travels with a device between the gateways of a fleet: the
+// gateway that streams a device publishes its alarm engine's snapshot
+// (alarms.State as JSON) to PREFIX/alarm/DEVICE after every alarm
+// transition (onset, announcement, escalation, end, acknowledgement,
+// pause: a few per device per hour, not per sample), and the gateway that
+// takes the device over reads it when it takes the fence, so an episode
+// the previous gateway announced continues there instead of being
+// announced again. Publishing never blocks the stream: the newest snapshot
+// per device waits for one publisher goroutine, which retries every second
+// while etcd does not answer. What a gateway killed between a transition
+// and its publication had not published is lost (the new gateway then
+// starts from what its own store holds): the window is one etcd round trip.
+
+func (n *Node) alarmKey(deviceID string) string { return n.prefix + "alarm/" + deviceID }
+
+// PublishAlarm queues a device's newest alarm snapshot for etcd.
+func (n *Node) PublishAlarm(deviceID string, state []byte) {
+	n.alarmMu.Lock()
+	n.alarmPending[deviceID] = state
+	n.alarmMu.Unlock()
+	select {
+	case n.alarmKick <- struct{}{}:
+	default:
+	}
+}
+
+// SharedAlarm returns the last alarm snapshot published for a device by
+// any gateway (nil when none).
+func (n *Node) SharedAlarm(ctx context.Context, deviceID string) ([]byte, error) {
+	n.alarmMu.Lock()
+	if b, ok := n.alarmPending[deviceID]; ok { // ours, not yet out
+		n.alarmMu.Unlock()
+		return b, nil
+	}
+	n.alarmMu.Unlock()
+	ctx, cancel := context.WithTimeout(ctx, n.ttl/3)
+	defer cancel()
+	r, err := n.c.Get(ctx, n.alarmKey(deviceID))
+	if err != nil {
+		return nil, fmt.Errorf("cluster: shared alarm state of %s: %w", deviceID, err)
+	}
+	if len(r.Kvs) == 0 {
+		return nil, nil
+	}
+	return r.Kvs[0].Value, nil
+}
+
+// publishAlarms writes queued snapshots until ctx ends.
+func (n *Node) publishAlarms(ctx context.Context) {
+	t := time.NewTicker(time.Second)
+	defer t.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case <-n.alarmKick:
+		case <-t.C:
+		}
+		n.alarmMu.Lock()
+		batch := n.alarmPending
+		n.alarmPending = map[string][]byte{}
+		n.alarmMu.Unlock()
+		for id, b := range batch {
+			pctx, cancel := context.WithTimeout(ctx, n.ttl/3)
+			_, err := n.c.Put(pctx, n.alarmKey(id), string(b))
+			cancel()
+			if err != nil {
+				n.alarmMu.Lock()
+				if _, newer := n.alarmPending[id]; !newer {
+					n.alarmPending[id] = b // retried on the next tick
+				}
+				n.alarmMu.Unlock()
+			}
+		}
+	}
+}
