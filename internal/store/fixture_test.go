@@ -236,7 +236,7 @@ func checkFixture(t *testing.T, db *DB) {
 	if err != nil || len(aud) != 1 || aud[0].Actor != "nurse-1" {
 		t.Fatalf("audit %+v, %v", aud, err)
 	}
-	ses, err := db.Sessions("fx-raw", 0)
+	ses, err := db.SessionsSince("fx-raw", 0)
 	if err != nil || len(ses) != 1 || ses[0].Remote != "127.0.0.1:5000" {
 		t.Fatalf("sessions %+v, %v", ses, err)
 	}

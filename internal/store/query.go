@@ -238,27 +238,6 @@ type LedgerTotal struct {
 	Distinct bool
 }
 
-// Sessions returns a device's sessions that started at or after fromMS, oldest first.
-func (db *DB) Sessions(device string, fromMS int64) ([]Session, error) {
-	var out []Session
-	err := db.view(func(tx *bolt.Tx) error {
-		b := tx.Bucket(bSessions).Bucket([]byte(device))
-		if b == nil {
-			return nil
-		}
-		c := b.Cursor()
-		for k, v := c.Seek(u64(uint64(max(fromMS, 0)))); k != nil; k, v = c.Next() {
-			var s Session
-			if err := decJSON(v, &s); err != nil {
-				return err
-			}
-			out = append(out, s)
-		}
-		return nil
-	})
-	return out, err
-}
-
 // SessionsSince returns a device's sessions that were open at or after
 // fromMS (ended at or after it, or not ended), oldest first, however long
 // ago they started. It walks back from the newest and stops at the first

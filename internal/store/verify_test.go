@@ -136,7 +136,7 @@ func readAll(db *DB) error {
 		if err := db.RawCaptures(d.ID, 0, 1<<62, func(RawCapture) bool { return true }); err != nil {
 			return err
 		}
-		if _, err := db.Sessions(d.ID, 0); err != nil {
+		if _, err := db.SessionsSince(d.ID, 0); err != nil {
 			return err
 		}
 	}
