@@ -50,8 +50,9 @@ type Options struct {
 	// clock (after drift correction) counts as late; 0 means 10 s.
 	LateAfter time.Duration
 	// WatchdogEvery is how often the watchdog evaluates devices without a
-	// stream (ingest.Pipeline.Tick); 0 means 1 s. Such a device is fed to its alarm engine as
-	// offline at once; the device_offline condition's delay applies.
+	// stream (ingest.Pipeline.Tick); 0 means 1 s. Such a device is fed to
+	// its alarm engine as offline at once; the device_offline condition's
+	// delay applies.
 	WatchdogEvery time.Duration
 	// DefaultProfile is the alarm profile for devices without their own; nil
 	// means the built-in adult-ward-pilot (set by the caller) or none.

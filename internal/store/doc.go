@@ -73,9 +73,9 @@
 // its effects (ledger record, trend points, cursor) committed, and after a
 // batch with a device's data fails, nothing of that device accepted before
 // the failure is written, acknowledged or allowed to move its cursor; the
-// device resends from its last durable message. The gateway's writer
-// enforces it with a per-device write epoch (internal/ingest/writer.go); why it
-// holds is argued in package gateway's documentation.
+// device resends from its last durable message. The ingest pipeline's
+// writer enforces it with a per-device write epoch (internal/ingest/writer.go);
+// why it holds is argued in package ingest's documentation ("Delivery").
 //
 // Caveats: bbolt allows one writer at a time and takes an exclusive file lock,
 // so only one process opens a data directory; a second Open waits Options.Timeout
