@@ -363,3 +363,26 @@ func TestFloodOfMalformedMessagesLeavesHonestStreamsWhole(t *testing.T) {
 		t.Errorf("%d auth audit entries after the flood, want 1..%d (10 per host per minute)", len(es), n)
 	}
 }
+
+// Every message gets its answer: a burst of invalid messages, sent faster
+// than the stream's sender delivers answers, is answered message for
+// message (the answers wait for the sender; none is dropped), so a device
+// never waits for an answer that will not come.
+func TestBurstOfRejectionsIsAnsweredInFull(t *testing.T) {
+	h := newHarness(t, nil)
+	if err := h.g.SetSecurity(SecurityOptions{DeviceRate: 1e6, DeviceBurst: 1e6, DeviceTimeRate: 1e6, DeviceTimeBurst: 24 * time.Hour}); err != nil {
+		t.Fatal(err)
+	}
+	d, _ := h.connect(t, summaryIntro("burst-1"))
+	const n = 3000
+	base := time.Now().Add(-time.Minute).UnixMilli()
+	for i := 1; i <= n; i++ {
+		d.send(summary(uint64(i), base+int64(i)*1000, 150)) // SpO2 150 %: rejected with a reason
+	}
+	rejs := d.waitRejections(n)
+	for i, r := range rejs[:n] {
+		if r.GetSequence() != uint64(i+1) || r.GetField() != "summary.spo2_pct" {
+			t.Fatalf("rejection %d: %v, want sequence %d naming summary.spo2_pct", i, r, i+1)
+		}
+	}
+}

@@ -41,9 +41,11 @@
 //     ends within milliseconds; it waits at most 2 s (senderDrain) for its
 //     sender to deliver the answers and ack already due; the reader and the
 //     sender return when the RPC ends. Answers wait in a queue of 64
-//     (sendQueue); beyond it they are dropped and counted (a device that
-//     does not read them loses them; acknowledgements are never queued: the
-//     sender sends the newest one after each round). A device that stops
+//     (sendQueue); when it is full the handler waits for the sender to
+//     take it (or for the stream to be cancelled), so every message is
+//     answered and a device that does not read is not read from either;
+//     acknowledgements are never queued: the sender sends the newest one
+//     after each round. A device that stops
 //     reading is cut off once one Send has been blocked for
 //     Config.SendStall (20 s; Tick, which the gateway's watchdog calls every
 //     second, checks).

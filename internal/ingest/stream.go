@@ -57,12 +57,13 @@ type stream struct {
 	acked   atomic.Uint64 // durable through this sequence (set by the writer)
 	msgs    chan *pb.ConnectRequest
 	recvErr chan error
-	// Output: the handler (and the writer, for acks) queue, the sender
-	// goroutine sends, so the handler never blocks on a device that does
-	// not read. Bounded: beyond sendQueue, messages are dropped and counted.
+	// Output: the handler queues answers and the writer raises acked; the
+	// sender goroutine sends, so no Send blocks the handler. Bounded: with
+	// sendQueue answers waiting, the handler waits for room (send).
 	outMu        sync.Mutex
 	outq         []*pb.ConnectResponse
-	drops        uint64
+	waits        uint64        // times the handler waited for room
+	room         chan struct{} // cap 1: the sender took the queue
 	wake         chan struct{} // cap 1: output or an ack is due
 	closing      chan struct{} // closed by the handler: send what is due and stop
 	senderDone   chan struct{}
@@ -100,7 +101,7 @@ func (p *Pipeline) HandleStream(parent context.Context, conn Conn, remote string
 	ctx, cancel := context.WithCancelCause(parent)
 	defer cancel(nil)
 	s := &stream{p: p, conn: conn, ctx: ctx, cancel: cancel, ended: make(chan struct{}), remote: remote,
-		wake: make(chan struct{}, 1), closing: make(chan struct{}), senderDone: make(chan struct{}),
+		wake: make(chan struct{}, 1), room: make(chan struct{}, 1), closing: make(chan struct{}), senderDone: make(chan struct{}),
 		msgs: make(chan *pb.ConnectRequest), recvErr: make(chan error, 1)}
 	// Three goroutines serve a stream: this handler (validate, estimate,
 	// evaluate, queue for the writer), the reader, which owns Recv, and the
@@ -346,7 +347,7 @@ func (s *stream) finish(ctx context.Context) {
 		p.publishDevice(d, "disconnected")
 	}
 	s.outMu.Lock()
-	drops := s.drops
+	waits := s.waits
 	s.outMu.Unlock()
-	p.log.Info("device disconnected", "device", d.id, "reason", reason, "dropped_sends", drops)
+	p.log.Info("device disconnected", "device", d.id, "reason", reason, "waits_for_reader", waits)
 }

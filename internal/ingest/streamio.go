@@ -26,20 +26,31 @@ func (s *stream) ackThrough(seq uint64) {
 }
 
 // send queues a message for the device and wakes the sender. When
-// sendQueue messages wait (a device that does not read its stream), it is
-// dropped and counted rather than held.
+// sendQueue messages already wait (the device reads its answers more slowly
+// than it sends), the handler waits until the sender has taken them: every
+// message is answered, none is dropped, and a device that does not read is
+// not read from either (its transport's flow control holds it back) until
+// it reads again, is replaced, or is cut off after Config.SendStall. The
+// wait ends at once when the stream is cancelled.
 func (s *stream) send(m *pb.ConnectResponse) {
-	s.outMu.Lock()
-	if len(s.outq) >= sendQueue {
-		s.drops++
+	for {
+		s.outMu.Lock()
+		if len(s.outq) < sendQueue {
+			s.outq = append(s.outq, m)
+			s.outMu.Unlock()
+			select {
+			case s.wake <- struct{}{}:
+			default:
+			}
+			return
+		}
+		s.waits++
 		s.outMu.Unlock()
-		return
-	}
-	s.outq = append(s.outq, m)
-	s.outMu.Unlock()
-	select {
-	case s.wake <- struct{}{}:
-	default:
+		select {
+		case <-s.room:
+		case <-s.ctx.Done():
+			return // the stream ends: nobody will read the answer
+		}
 	}
 }
 
@@ -67,6 +78,10 @@ func (s *stream) sender() {
 		clear(s.outq)
 		s.outq = s.outq[:0]
 		s.outMu.Unlock()
+		select { // a handler waiting for room may queue again
+		case s.room <- struct{}{}:
+		default:
+		}
 		for i, m := range batch {
 			if err := s.sendOne(m); err != nil {
 				s.cancel(fmt.Errorf("send to device: %w", err))
