@@ -36,8 +36,9 @@
 //   - Each device stream runs in the goroutine that calls HandleStream
 //     (validate, estimate, evaluate alarms, queue for the writer), with a
 //     reader goroutine that owns Recv and a sender goroutine that owns
-//     Send, both started and owned by HandleStream. The handler never blocks
-//     on the device, so a stream replaced by a newer one of the same device
+//     Send, both started and owned by HandleStream. The handler makes no
+//     call that waits on the device (it waits only on channels and its
+//     context), so a stream replaced by a newer one of the same device
 //     ends within milliseconds; it waits at most 2 s (senderDrain) for its
 //     sender to deliver the answers and ack already due; the reader and the
 //     sender return when the RPC ends. Answers wait in a queue of 64
