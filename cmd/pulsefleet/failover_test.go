@@ -197,7 +197,7 @@ func checkSessions(t *testing.T, dbs []*store.DB, id string, victim int, killedA
 	}
 	var spans []span
 	for i, db := range dbs {
-		ss, err := db.Sessions(id, 0)
+		ss, err := db.SessionsSince(id, 0)
 		if err != nil {
 			t.Fatal(err)
 		}
