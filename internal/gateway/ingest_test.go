@@ -13,8 +13,8 @@ import (
 	reflectionpb "google.golang.org/grpc/reflection/grpc_reflection_v1"
 
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // A standard client finds every service through reflection, and health
@@ -97,9 +97,9 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 		{chunk(1, 100, 10000, 7), "message", "want at most 16384"},
 		{chunk(1, 100, 2000, 7), "raw_chunk.red", "want 1..1000"},
 		{chunk(1, 100, 25, 70000), "raw_chunk.red", "want 0..65535"},
-		{chunk(1, 100, 25, 30000), "", ""}, // accepted
-		{chunk(1, 100, 25, 30000), "sequence", "not above 1"},
-		{chunk(5, 100, 25, 30000), "", ""}, // accepted; 2..4 counted lost
+		{chunk(1, 100, 25, 30000), "", ""},                    // accepted
+		{chunk(1, 100, 25, 30000), "sequence", "not above 1"}, // stale once durable (waited for below)
+		{chunk(5, 100, 25, 30000), "", ""},                    // accepted; 2..4 counted lost
 		{chunk(3, 100, 25, 30000), "sequence", "not above 5"},
 		{&pb.ConnectRequest{Kind: &pb.ConnectRequest_Summary{Summary: &pb.Summary{Sequence: 6, DeviceTimeUnixMs: base}}}, "summary", "raw mode"},
 	}
@@ -108,6 +108,9 @@ func TestBadInputIsRejectedWhileHonestStreamsAreStored(t *testing.T) {
 		bad.send(c.msg)
 		if c.field != "" {
 			nrej++
+		} else if seq := c.msg.GetRawChunk().GetSequence(); seq > 0 {
+			// Only a resend of a durable message is answered as stale.
+			bad.waitAck(seq)
 		}
 	}
 	rejs := bad.waitRejections(nrej)

@@ -161,10 +161,21 @@ func (s *stream) admit(ctx context.Context, seq uint64, field string, devMS int6
 	last := d.cur.LastSeq
 	if seq <= last {
 		d.cur.Duplicates++
+		durable := d.durableSeq
 		d.mu.Unlock()
 		p.m.duplicates.Inc()
-		s.rejectMsg(reject(seq, pb.RejectReason_REJECT_REASON_STALE_SEQUENCE, "sequence",
-			"%d is not above %d, the last accepted; it is already held (never stored twice)", seq, last))
+		if seq <= durable {
+			s.rejectMsg(reject(seq, pb.RejectReason_REJECT_REASON_STALE_SEQUENCE, "sequence",
+				"%d is not above %d, the last durable; it is already held (never stored twice)", seq, durable))
+		}
+		// Else the original is accepted but not durable yet: no answer of
+		// its own. STALE_SEQUENCE ("already held; do not resend") would be
+		// false if the original's batch then fails, and a device that
+		// believed it would skip the message when it resends from the next
+		// Welcome's resume point; the next message would be accepted
+		// across the gap and acknowledged through it. The original's Ack
+		// answers the resend, or its failure ends the stream (doc.go,
+		// "Delivery").
 		return 0, nil, false, nil
 	}
 	rej, late := d.admitTime(seq, field, devMS, samples, spanMS, nowMS, p.cfg.LateAfter, func(e alarms.Event) { evs = append(evs, e) })

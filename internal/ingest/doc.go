@@ -153,7 +153,13 @@
 // record is committed behind everything queued before it), with the
 // accepted position set back to the durable one, so the failed range is
 // accepted again when resent; anything at or below the durable position is
-// rejected as stale and never stored twice. Non-data parts of a failed
+// rejected as stale and never stored twice. (5) A resend of a message that
+// is accepted but not yet durable gets no answer of its own, not
+// REJECT_REASON_STALE_SEQUENCE ("already held; do not resend"): if the
+// original's batch fails, the next Welcome resumes before it, and a device
+// that had believed the stale answer would skip it; its next message would
+// be accepted across the gap and acknowledged through it. The original's
+// Ack answers the resend, or its failure ends the stream. Non-data parts of a failed
 // batch (descriptions, sessions, alarm episodes and states, audit entries)
 // are carried into the next batch, bounded, so a full disk does not lose an
 // alarm episode either.
