@@ -70,51 +70,111 @@ var itemCounters = map[string]itemCounter{
 	"raw":    rawItems,
 }
 
-// Stats walks every page of the store (in one read transaction, so it
-// takes about as long as reading the file) and sums bytes and records per
-// top-level bucket. It is meant for the `store stats` command and for
-// gauges refreshed now and then, not for every request.
+// Stats walks every page of the store and sums bytes and records per
+// top-level bucket: it takes about as long as reading the file. It is meant
+// for the `store stats` command and for gauges refreshed now and then, not
+// for every request. It reads in short transactions, one per nested bucket
+// (a device's trend, a day of the ledger), so bbolt can reuse the pages
+// that writes free meanwhile; figures of a store being written are a sum
+// over slightly different moments. A top-level bucket's own pages (those
+// listing its nested buckets) are counted only when it holds no nested
+// bucket; a nested bucket small enough to sit inline counts its bytes in use.
 func (db *DB) Stats() (*Stats, error) {
 	st := &Stats{Path: db.path}
+	var names []string
+	nested := map[string][][]byte{}
 	err := db.view(func(tx *bolt.Tx) error {
 		st.FileBytes = tx.Size()
 		st.PageSize = tx.DB().Info().PageSize
 		bs := tx.DB().Stats()
 		st.FreeBytes = int64(bs.FreePageN+bs.PendingPageN) * int64(st.PageSize)
 		return tx.ForEach(func(name []byte, b *bolt.Bucket) error {
-			bst := b.Stats()
-			ks := KindStats{Kind: string(name),
-				Bytes: int64(bst.BranchAlloc + bst.LeafAlloc),
-				InUse: int64(bst.BranchInuse + bst.LeafInuse + bst.InlineBucketInuse)}
-			count := itemCounters[ks.Kind]
-			var secs float64
-			walkRecords(b, func(k, v []byte) {
-				ks.Records++
-				if count != nil {
-					ks.Items += count(k, v)
-				} else {
-					ks.Items++
-				}
-				if ks.Kind == "raw" {
-					secs += rawSeconds(v)
-				}
+			names = append(names, string(name))
+			return b.ForEachBucket(func(k []byte) error {
+				nested[string(name)] = append(nested[string(name)], clone(k))
+				return nil
 			})
-			switch ks.Kind {
-			case "trend", "recent":
-				st.TrendPoints += ks.Items
-			case "raw":
-				st.RawSeconds = secs
-			}
-			st.Kinds = append(st.Kinds, ks)
-			return nil
 		})
 	})
 	if err != nil {
 		return nil, err
 	}
+	for _, name := range names {
+		ks, secs, err := db.kindStats(name, nested[name])
+		if err != nil {
+			return nil, err
+		}
+		switch name {
+		case "trend", "recent":
+			st.TrendPoints += ks.Items
+		case "raw":
+			st.RawSeconds = secs
+		}
+		st.Kinds = append(st.Kinds, ks)
+	}
 	sort.Slice(st.Kinds, func(i, j int) bool { return st.Kinds[i].Kind < st.Kinds[j].Kind })
 	st.DeviceDays = float64(st.TrendPoints) / 86_400
 	return st, nil
+}
+
+// kindStats sums one top-level bucket: its own records in one read
+// transaction, then each nested bucket in a transaction of its own.
+func (db *DB) kindStats(name string, subs [][]byte) (KindStats, float64, error) {
+	ks := KindStats{Kind: name}
+	var secs float64
+	count := itemCounters[name]
+	visit := func(k, v []byte) {
+		ks.Records++
+		if count != nil {
+			ks.Items += count(k, v)
+		} else {
+			ks.Items++
+		}
+		if name == "raw" {
+			secs += rawSeconds(v)
+		}
+	}
+	pages := func(b *bolt.Bucket) {
+		bst := b.Stats()
+		ks.Bytes += int64(bst.BranchAlloc + bst.LeafAlloc)
+		ks.InUse += int64(bst.BranchInuse + bst.LeafInuse + bst.InlineBucketInuse)
+		if bst.BranchAlloc+bst.LeafAlloc == 0 {
+			ks.Bytes += int64(bst.InlineBucketInuse) // inline: its bytes sit in its parent's page
+		}
+	}
+	err := db.view(func(tx *bolt.Tx) error {
+		b := tx.Bucket([]byte(name))
+		if b == nil {
+			return nil
+		}
+		if len(subs) == 0 {
+			pages(b)
+			walkRecords(b, visit)
+			return nil
+		}
+		c := b.Cursor()
+		for k, v := c.First(); k != nil; k, v = c.Next() {
+			if v != nil {
+				visit(k, v)
+			}
+		}
+		return nil
+	})
+	for _, sub := range subs {
+		if err != nil {
+			break
+		}
+		err = db.view(func(tx *bolt.Tx) error {
+			if b := tx.Bucket([]byte(name)); b != nil {
+				if nb := b.Bucket(sub); nb != nil {
+					pages(nb)
+					walkRecords(nb, visit)
+				}
+			}
+			return nil
+		})
+	}
+	return ks, secs, err
 }
 
 // walkRecords calls fn for every record under b, nested buckets included.

@@ -61,8 +61,8 @@ type AdminServiceClient interface {
 	Backup(ctx context.Context, in *BackupRequest, opts ...grpc.CallOption) (grpc.ServerStreamingClient[BackupResponse], error)
 	// GetStoreStats says where the store's bytes go: pages, records and items
 	// per kind of record, free pages and the device-days of trend held. It
-	// reads every page of the store (one read transaction): its time grows
-	// with the store. Viewer role.
+	// reads every page of the store (in short read transactions, one per
+	// device or day bucket): its time grows with the store. Viewer role.
 	GetStoreStats(ctx context.Context, in *GetStoreStatsRequest, opts ...grpc.CallOption) (*GetStoreStatsResponse, error)
 }
 
@@ -204,8 +204,8 @@ type AdminServiceServer interface {
 	Backup(*BackupRequest, grpc.ServerStreamingServer[BackupResponse]) error
 	// GetStoreStats says where the store's bytes go: pages, records and items
 	// per kind of record, free pages and the device-days of trend held. It
-	// reads every page of the store (one read transaction): its time grows
-	// with the store. Viewer role.
+	// reads every page of the store (in short read transactions, one per
+	// device or day bucket): its time grows with the store. Viewer role.
 	GetStoreStats(context.Context, *GetStoreStatsRequest) (*GetStoreStatsResponse, error)
 	mustEmbedUnimplementedAdminServiceServer()
 }
