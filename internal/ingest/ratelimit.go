@@ -13,8 +13,9 @@ type tokenBucket struct {
 	tokens float64
 	lastMS int64
 	// holdFrom is the lowest data sequence refused over the limit and not
-	// yet resent (0 = none), since holdMS; the hold ends after RateHoldMS
-	// (a device that gave that message up is not blocked for ever).
+	// yet accepted (0 = none), last refused at holdMS; the hold ends
+	// RateHoldMS after that (a device that gave that message up is not
+	// blocked for ever).
 	holdFrom uint64
 	holdMS   int64
 }
@@ -97,7 +98,12 @@ func (s *stream) rateLimited(m *pb.ConnectRequest, nowMS int64) bool {
 		}
 		return false
 	}
-	if seq != 0 && (s.bucket.holdFrom == 0 || seq < s.bucket.holdFrom) {
+	if seq != 0 && (s.bucket.holdFrom == 0 || seq <= s.bucket.holdFrom) {
+		// Refused again from the held message: the device is still
+		// resending it, so the hold runs from now. (Timed from the first
+		// refusal, it could end right after a refused resend, and the next
+		// message would be accepted past the one refused, which the
+		// acknowledgement through it would then cover.)
 		s.bucket.holdFrom, s.bucket.holdMS = seq, nowMS
 	}
 	s.countReject()

@@ -138,3 +138,60 @@ func TestResendOfAMessageNotYetDurableIsNotCalledHeld(t *testing.T) {
 		}
 	}
 }
+
+// A message refused over the rate limit holds back later ones until the
+// device resends it. The hold lapses only RateHoldMS after the device last
+// tried it: a resend refused just before the hold would have lapsed (timed
+// from the first refusal) must not let the next message in past it, or the
+// Ack through that message would cover the refused one, which no store holds.
+func TestRateHoldRunsFromTheLastRefusedResend(t *testing.T) {
+	nowMS := time.Date(2026, 12, 2, 12, 0, 0, 0, time.UTC).UnixMilli()
+	db, err := store.Open(t.TempDir(), store.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	// One message per 10 s, no burst beyond one.
+	p, err := New(testConfig(db, func() time.Time { return time.UnixMilli(nowMS) }, time.Millisecond,
+		Limits{Messages: 0.1, Burst: 1, DeviceTime: 1e6, DeviceTimeBurst: 24 * time.Hour}))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var wg sync.WaitGroup
+	wg.Add(1)
+	go func() { defer wg.Done(); p.w.run() }()
+	defer func() {
+		p.w.close()
+		wg.Wait()
+		db.Close()
+	}()
+	ctx, cancel := context.WithCancelCause(context.Background())
+	s := &stream{p: p, cancel: cancel, ended: make(chan struct{}), wake: make(chan struct{}, 1)}
+	if err := s.start(ctx, &pb.Introduction{DeviceId: "held-1", Mode: pb.Mode_MODE_SUMMARY}); err != nil {
+		t.Fatal(err)
+	}
+	defer func() {
+		s.finish(ctx)
+		close(s.ended)
+		s.cancel(nil)
+	}()
+	start := nowMS
+	send := func(atMS int64, seq uint64) {
+		nowMS = atMS
+		spo2, pulse, q := 96.0, 70.0, 0.9
+		m := &pb.ConnectRequest{Kind: &pb.ConnectRequest_Summary{Summary: &pb.Summary{Sequence: seq,
+			DeviceTimeUnixMs: start - 60_000 + int64(seq)*1000, Spo2Pct: &spo2, PulseBpm: &pulse, Quality: &q}}}
+		if err := s.handle(ctx, m); err != nil {
+			t.Fatal(err)
+		}
+	}
+	send(start, 1)                // accepted: the burst's one token
+	send(start, 2)                // refused over the limit: the hold starts
+	send(start+RateHoldMS-100, 2) // resent, refused again (0.99 tokens)
+	send(start+RateHoldMS+50, 3)  // the device's next message, right behind the resend
+	s.dev.mu.Lock()
+	last, lost := s.dev.cur.LastSeq, s.dev.cur.Lost
+	s.dev.mu.Unlock()
+	if last != 1 || lost != 0 {
+		t.Errorf("accepted through %d with %d counted lost, want 1 and 0: message 3 went in past the refused message 2", last, lost)
+	}
+}
