@@ -6,7 +6,6 @@ import (
 	"errors"
 	"flag"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"io"
 	"log/slog"
 	"net"
@@ -19,7 +18,9 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"go.yaml.in/yaml/v3"
 
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/gateway"
+	"github.com/pulsefleet/pulsefleet/internal/notify"
 	"github.com/pulsefleet/pulsefleet/internal/profiles"
 	"github.com/pulsefleet/pulsefleet/internal/shard"
 	"github.com/pulsefleet/pulsefleet/internal/store"
@@ -219,7 +220,7 @@ func isLoopback(addr string) bool {
 func defaultServeConfig() serveConfig {
 	return serveConfig{Data: defaultDataDir(), GRPCListen: defaultGRPCListen, HTTPListen: defaultHTTPListen,
 		Profile: "adult-ward-pilot", BatchDelay: 10 * time.Millisecond, LogLevel: "info", RawDays: 7, LedgerDays: defaultLedgerDays, VerifyStore: "quick", DeviceTimeRate: 30,
-		BackupEvery: 24 * time.Hour, BackupKeep: 7, ExportRate: 100_000}
+		BackupEvery: 24 * time.Hour, BackupKeep: 7, ExportRate: 100_000, notifyConfig: notifyConfig{AlertmanagerHold: notify.DefaultHold}}
 }
 
 func (c *serveConfig) backups() gateway.BackupSchedule {

@@ -8,6 +8,7 @@ import (
 	"net/url"
 	"os"
 	"strings"
+	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 
@@ -23,6 +24,8 @@ type notifyConfig struct {
 	AlertmanagerBasicAuth string   `yaml:"alertmanager_basic_auth_file"`
 	AlertmanagerBearer    string   `yaml:"alertmanager_bearer_file"`
 	ExternalURL           string   `yaml:"external_url"`
+	// AlertmanagerHold: see notify.Options.Hold.
+	AlertmanagerHold time.Duration `yaml:"alertmanager_hold"`
 }
 
 func (c *notifyConfig) flags(fs *flag.FlagSet) {
@@ -31,6 +34,8 @@ func (c *notifyConfig) flags(fs *flag.FlagSet) {
 	fs.StringVar(&c.AlertmanagerCAFile, "alertmanager-ca-file", c.AlertmanagerCAFile, "CA file (PEM) that signs the Alertmanagers' certificates (https URLs); default: the system's")
 	fs.StringVar(&c.AlertmanagerBasicAuth, "alertmanager-basic-auth-file", c.AlertmanagerBasicAuth, "file holding USER:PASSWORD on its first line, for Alertmanager's basic authentication (read again for every request)")
 	fs.StringVar(&c.AlertmanagerBearer, "alertmanager-bearer-file", c.AlertmanagerBearer, "file holding a bearer token on its first line, for Alertmanager (read again for every request)")
+	fs.DurationVar(&c.AlertmanagerHold, "alertmanager-hold", c.AlertmanagerHold, "how long an alarm that ended before Alertmanager ever had it (Alertmanager or this gateway was down) is sent as firing, "+
+		"marked delivered_late, before its resolution: Alertmanager never notifies an alert that arrives resolved; "+notify.MinHold.String()+".."+notify.MaxHold.String()+", keep it above the routes' group_wait")
 	fs.StringVar(&c.ExternalURL, "external-url", c.ExternalURL, "URL at which people reach this gateway's web page, for the device-page link in notifications (default: the --http-listen address)")
 }
 
@@ -42,6 +47,9 @@ func (c *notifyConfig) validate() error {
 	}
 	if len(c.Alertmanager) == 0 && (c.AlertmanagerCAFile != "" || c.AlertmanagerBasicAuth != "" || c.AlertmanagerBearer != "") {
 		return fmt.Errorf("alertmanager-ca-file, alertmanager-basic-auth-file, alertmanager-bearer-file: given without --alertmanager")
+	}
+	if err := notify.CheckHold(c.AlertmanagerHold); err != nil {
+		return err
 	}
 	if c.ExternalURL != "" {
 		u, err := url.Parse(c.ExternalURL)
@@ -80,7 +88,7 @@ func startNotifier(c serveConfig, db *store.DB, reg prometheus.Registerer, log *
 		pageBase = c.ExternalURL
 	}
 	n, err := notify.New(notify.Options{URLs: c.Alertmanager, Auth: c.auth(), Store: db, Gateway: gw, PageBase: pageBase,
-		Metrics: m, Logger: log.With("component", "notify")})
+		Hold: c.AlertmanagerHold, Metrics: m, Logger: log.With("component", "notify")})
 	if err != nil {
 		return nil, err
 	}
@@ -93,7 +101,7 @@ func startNotifier(c serveConfig, db *store.DB, reg prometheus.Registerer, log *
 			log.Error("notifications stopped", "err", err)
 		}
 	}()
-	log.Info("notifications on", "alertmanager", strings.Join(n.Targets(), ","), "resend_every", "1m")
+	log.Info("notifications on", "alertmanager", strings.Join(n.Targets(), ","), "resend_every", "1m", "hold", c.AlertmanagerHold)
 	return func() { cancel(); <-done }, nil
 }
 

@@ -164,3 +164,29 @@ func LabelName(k string) string {
 func ms(v int64) time.Time { return time.UnixMilli(v).UTC() }
 
 func rfc(t time.Time) string { return t.UTC().Format(time.RFC3339Nano) }
+
+// LateAnnotation is the annotation that marks an alert delivered late:
+// its episode had already ended (at the time it gives) when the alert
+// first reached this Alertmanager.
+const LateAnnotation = "delivered_late"
+
+// Late turns the resolved alert of an ended episode (Build's first alert)
+// into a firing one, for an Alertmanager that never had it firing: an
+// alert that arrives already resolved is never notified, so the alarm
+// would be lost to whoever is on duty. It fires until until (endsAt in the
+// future; the resolution is sent before that) and says in its summary and
+// in LateAnnotation that the episode ended at its end time and that this
+// is a late delivery.
+func Late(resolved Alert, until time.Time) Alert {
+	a := resolved
+	an := make(map[string]string, len(resolved.Annotations)+1)
+	for k, v := range resolved.Annotations {
+		an[k] = v
+	}
+	ended := resolved.EndsAt
+	an[LateAnnotation] = "this alarm episode already ended at " + ended + "; the gateway could not deliver it to Alertmanager before then, so it is sent late, as firing, and resolved a little later"
+	an["summary"] += " (delivered late: ended at " + ended + ")"
+	a.Annotations = an
+	a.EndsAt = rfc(until)
+	return a
+}

@@ -16,7 +16,7 @@ import (
 // Store is what the notifier needs of the history store (*store.DB).
 type Store interface {
 	Outbox(limit int) ([]store.OutboxEntry, int, error)
-	OutboxAccepted(target string, targets []string, accepted []store.OutboxEntry) (int, error)
+	OutboxAccepted(target string, targets []string, accepted []store.OutboxAcceptance) (int, error)
 	OutboxDrop(episode uint64) (bool, error)
 	Episode(id uint64) (store.Episode, error)
 	Episodes(f store.EpisodeFilter) ([]store.Episode, error)
@@ -40,6 +40,12 @@ type Options struct {
 	// four resends in a row may fail before Alertmanager would resolve an
 	// alert on its own.
 	Resend time.Duration
+	// Hold is how long an alert stays firing at an Alertmanager that had
+	// not seen it firing before the episode ended (it was unreachable, or
+	// the gateway was down) before its resolution is sent, so Alertmanager
+	// notifies the alarm (after its group_wait) instead of receiving it
+	// already resolved, which it never notifies. 0 means DefaultHold.
+	Hold time.Duration
 	// BackoffMin and BackoffMax bound the wait before a failed target is
 	// tried again (doubling from min to max); 0 means 1 s and 30 s.
 	BackoffMin, BackoffMax time.Duration
@@ -78,6 +84,12 @@ func New(opt Options) (*Notifier, error) {
 	}
 	if opt.Resend == 0 {
 		opt.Resend = time.Minute
+	}
+	if opt.Hold == 0 {
+		opt.Hold = DefaultHold
+	}
+	if err := CheckHold(opt.Hold); err != nil {
+		return nil, err
 	}
 	if opt.BackoffMin == 0 {
 		opt.BackoffMin = time.Second
@@ -119,6 +131,24 @@ func New(opt Options) (*Notifier, error) {
 		n.kicks = append(n.kicks, make(chan struct{}, 1))
 	}
 	return n, nil
+}
+
+// DefaultHold is Options.Hold's default: 2 minutes, four times the
+// group_wait (30 s) of the example configuration in deploy/alertmanager.
+const DefaultHold = 2 * time.Minute
+
+// Bounds of Options.Hold.
+const (
+	MinHold = 5 * time.Second
+	MaxHold = 30 * time.Minute
+)
+
+// CheckHold checks a hold against MinHold and MaxHold.
+func CheckHold(d time.Duration) error {
+	if d < MinHold || d > MaxHold {
+		return fmt.Errorf("alertmanager-hold: %s is out of range [%s, %s] (keep it above the group_wait of Alertmanager's routes)", d, MinHold, MaxHold)
+	}
+	return nil
 }
 
 // Targets are the Alertmanager URLs, as the outbox names them.
@@ -200,6 +230,9 @@ func (n *Notifier) work(ctx context.Context, i int) {
 	resend := time.NewTicker(n.opt.Resend)
 	defer retry.Stop()
 	defer resend.Stop()
+	hold := time.NewTimer(time.Hour) // the next end of a hold (an ended episode's resolution is due)
+	hold.Stop()
+	defer hold.Stop()
 	ready := true
 	for {
 		resending := false
@@ -211,12 +244,16 @@ func (n *Notifier) work(ctx context.Context, i int) {
 			ready = true
 		case <-resend.C:
 			resending = true
+		case <-hold.C:
 		}
 		if !ready {
 			n.refreshQueue() // the gauges move while this target waits out its backoff
 			continue
 		}
-		err := n.pass(ctx, c, target)
+		due, err := n.pass(ctx, c, target)
+		if !due.IsZero() {
+			hold.Reset(max(due.Sub(n.opt.Now()), 0) + 10*time.Millisecond)
+		}
 		if err == nil && resending {
 			err = n.resend(ctx, c)
 		}
@@ -242,17 +279,22 @@ const passBatch = 256
 
 // pass sends target every outbox entry it has not accepted yet, in
 // batches, and records what it accepted. It stops at the first failure.
-func (n *Notifier) pass(ctx context.Context, c *client, target string) error {
+// An ended episode that target never had firing is sent as firing first
+// (Late) and its resolution only once it has been firing there for
+// Options.Hold; pass returns the earliest such time still to come (zero
+// when none), when it must run again.
+func (n *Notifier) pass(ctx context.Context, c *client, target string) (time.Time, error) {
+	var due time.Time
 	ents, total, err := n.opt.Store.Outbox(0)
 	if err != nil {
-		return err
+		return due, err
 	}
 	n.setQueue(ents, total)
 	now := n.opt.Now()
 	devs := map[string]*store.Device{}
 	var (
 		alerts []Alert
-		sent   []store.OutboxEntry
+		sent   []store.OutboxAcceptance
 	)
 	flush := func() error {
 		if len(sent) == 0 {
@@ -277,27 +319,46 @@ func (n *Notifier) pass(ctx context.Context, c *client, target string) error {
 			// Deleted (a participant's data removed): nothing left to tell.
 			n.opt.Logger.Warn("outbox entry of a deleted episode dropped", "episode", ent.Episode)
 			if _, err := n.opt.Store.OutboxDrop(ent.Episode); err != nil {
-				return err
+				return due, err
 			}
 			continue
 		} else if err != nil {
-			return err
+			return due, err
 		}
 		as := Build(&ep, n.device(devs, ep.Device), n.opt.Gateway, n.opt.PageBase, now)
+		acc := store.OutboxAcceptance{Episode: ent.Episode, Gen: ent.Gen}
+		if ep.Active {
+			acc.FiringMS = now.UnixMilli()
+		} else if firedMS, ok := ent.FiredAt(target); !ok {
+			// Announced and ended before target ever had it firing.
+			as = []Alert{Late(as[0], now.Add(n.opt.Hold+n.opt.Resend))}
+			acc.FiringMS, acc.Partial = now.UnixMilli(), true
+			due = earliest(due, now.Add(n.opt.Hold))
+		} else if t := time.UnixMilli(firedMS).Add(n.opt.Hold); firedMS != 0 && now.Before(t) {
+			due = earliest(due, t) // firing there since firedMS: resolve when the hold is over
+			continue
+		}
 		n.track(&ep, as)
 		alerts = append(alerts, as...)
-		sent = append(sent, ent)
+		sent = append(sent, acc)
 		if len(sent) >= passBatch {
 			if err := flush(); err != nil {
-				return err
+				return due, err
 			}
 		}
 	}
 	if err := flush(); err != nil {
-		return err
+		return due, err
 	}
 	n.refreshQueue()
-	return nil
+	return due, nil
+}
+
+func earliest(a, b time.Time) time.Time {
+	if a.IsZero() || b.Before(a) {
+		return b
+	}
+	return a
 }
 
 func delivered(e store.OutboxEntry, target string) bool {

@@ -179,7 +179,17 @@ func (db *DB) Write(b *Batch) error {
 			}
 		}
 		eps := tx.Bucket(bEpisodes)
+		outbox := db.outboxKick.Load() != nil
+		var wasAnnounced map[uint64]bool // episode -> its stored version before this batch was announced
+		if outbox {
+			wasAnnounced = map[uint64]bool{}
+		}
 		for _, e := range b.Episodes {
+			if outbox && e.ID != 0 {
+				if _, seen := wasAnnounced[e.ID]; !seen {
+					wasAnnounced[e.ID] = storedAnnounced(eps, e.ID)
+				}
+			}
 			if e.ID == 0 {
 				id, err := eps.NextSequence()
 				if err != nil {
@@ -196,9 +206,9 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
-		if kick := db.outboxKick.Load(); kick != nil {
+		if outbox {
 			var err error
-			if queued, err = queueOutbox(tx, b.Episodes, time.Now().UnixMilli()); err != nil {
+			if queued, err = queueOutbox(tx, b.Episodes, wasAnnounced, time.Now().UnixMilli()); err != nil {
 				return err
 			}
 		}

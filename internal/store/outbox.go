@@ -22,6 +22,41 @@ type OutboxEntry struct {
 	QueuedMS int64 `json:"queued_ms"`
 	// Delivered lists the targets that accepted generation Gen.
 	Delivered []string `json:"delivered,omitempty"`
+	// FiringDone says every target had accepted the episode as firing
+	// before this entry was made (its previous entry, for the announced
+	// episode, was delivered everywhere and removed).
+	FiringDone bool `json:"firing_done,omitempty"`
+	// Fired maps a target to when it first accepted the episode as firing
+	// within this entry (Unix ms, the notifier's clock); kept across
+	// generations, so an ended episode's resolution can wait until the
+	// alert has been firing at that target for a minimum hold (package
+	// notify), also across a restart.
+	Fired map[string]int64 `json:"fired,omitempty"`
+}
+
+// FiredAt reports when target had the episode firing: FiringDone gives
+// (0, true); otherwise its Fired time, or false when it never had.
+func (e *OutboxEntry) FiredAt(target string) (int64, bool) {
+	if e.FiringDone {
+		return 0, true
+	}
+	t, ok := e.Fired[target]
+	return t, ok
+}
+
+// OutboxAcceptance is what one target accepted of one outbox entry.
+type OutboxAcceptance struct {
+	Episode uint64
+	// Gen is the entry's generation the notification was built for.
+	Gen uint64
+	// FiringMS, when not 0, says the notification stated the episode as
+	// firing, accepted at that time (Unix ms); the first such time per
+	// target is kept in the entry's Fired.
+	FiringMS int64
+	// Partial says the notification is not the episode's final word for
+	// this generation (an ended episode sent as firing because the target
+	// never had it firing): the target does not count as delivered yet.
+	Partial bool
 }
 
 var bOutbox = []byte("outbox")
@@ -40,9 +75,25 @@ func (db *DB) EnableOutbox(kick func()) {
 	db.outboxKick.Store(&kick)
 }
 
+// storedAnnounced reports whether the stored version of episode id was
+// announced.
+func storedAnnounced(eps *bolt.Bucket, id uint64) bool {
+	v := eps.Get(u64(id))
+	if v == nil {
+		return false
+	}
+	var old struct {
+		AnnouncedMS int64 `json:"announced_ms"`
+	}
+	return decJSON(v, &old) == nil && old.AnnouncedMS > 0
+}
+
 // queueOutbox adds or bumps the outbox entries of the batch's announced
-// episodes; it reports whether it queued any.
-func queueOutbox(tx *bolt.Tx, eps []*Episode, nowMS int64) (bool, error) {
+// episodes; it reports whether it queued any. wasAnnounced tells, per
+// episode, whether its stored version before the batch was announced: a
+// new entry for such an episode means the previous one was delivered to
+// every target, so they all had it firing (FiringDone).
+func queueOutbox(tx *bolt.Tx, eps []*Episode, wasAnnounced map[uint64]bool, nowMS int64) (bool, error) {
 	ob := tx.Bucket(bOutbox)
 	queued := false
 	for _, e := range eps {
@@ -50,8 +101,9 @@ func queueOutbox(tx *bolt.Tx, eps []*Episode, nowMS int64) (bool, error) {
 			continue
 		}
 		k := u64(e.ID)
-		ent := OutboxEntry{Episode: e.ID, QueuedMS: nowMS}
+		ent := OutboxEntry{Episode: e.ID, QueuedMS: nowMS, FiringDone: wasAnnounced[e.ID]}
 		if v := ob.Get(k); v != nil {
+			ent = OutboxEntry{} // the entry's own FiringDone, not the new one's
 			if err := decJSON(v, &ent); err != nil {
 				return false, fmt.Errorf("outbox entry %d: %w", e.ID, err)
 			}
@@ -104,13 +156,13 @@ func (db *DB) Outbox(limit int) ([]OutboxEntry, int, error) {
 	return out, n, nil
 }
 
-// OutboxAccepted records that target accepted the given generations of
-// notifications (one transaction for all), and removes each entry once
-// every one of targets has accepted its generation. An entry whose
-// generation moved on meanwhile is kept (the newer change must still go to
-// every target); an entry already gone is skipped. It returns how many
-// entries it removed.
-func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxEntry) (int, error) {
+// OutboxAccepted records what target accepted (one transaction for all)
+// and removes each entry once every one of targets has accepted its
+// current generation in full. An entry whose generation moved on meanwhile
+// is kept (the newer change must still go to every target), though a
+// firing time is recorded all the same; an entry already gone is skipped.
+// It returns how many entries it removed.
+func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxAcceptance) (int, error) {
 	removed := 0
 	err := db.update(func(tx *bolt.Tx) error {
 		removed = 0
@@ -125,11 +177,17 @@ func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxE
 			if err := decJSON(v, &e); err != nil {
 				return fmt.Errorf("outbox entry %d: %w", a.Episode, err)
 			}
-			if e.Gen != a.Gen {
-				continue
+			changed := false
+			if _, had := e.Fired[target]; a.FiringMS != 0 && !had && !e.FiringDone {
+				if e.Fired == nil {
+					e.Fired = map[string]int64{}
+				}
+				e.Fired[target] = a.FiringMS
+				changed = true
 			}
-			if !slices.Contains(e.Delivered, target) {
+			if e.Gen == a.Gen && !a.Partial && !slices.Contains(e.Delivered, target) {
 				e.Delivered = append(e.Delivered, target)
+				changed = true
 			}
 			all := true
 			for _, t := range targets {
@@ -140,6 +198,9 @@ func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxE
 				if err := ob.Delete(k); err != nil {
 					return err
 				}
+				continue
+			}
+			if !changed {
 				continue
 			}
 			nv, err := encJSON(&e)

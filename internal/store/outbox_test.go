@@ -37,7 +37,7 @@ func TestOutboxQueuesInTheEpisodeTransaction(t *testing.T) {
 	}
 	queued := got[0].QueuedMS
 	targets := []string{"http://am-a", "http://am-b"}
-	if gone, err := db.OutboxAccepted(targets[0], targets, []OutboxEntry{{Episode: 8, Gen: 1}}); err != nil || gone != 0 {
+	if gone, err := db.OutboxAccepted(targets[0], targets, []OutboxAcceptance{{Episode: 8, Gen: 1}}); err != nil || gone != 0 {
 		t.Fatalf("accepted by one of two targets: removed %d, err %v", gone, err)
 	}
 	// The episode ends before the second target accepted generation 1:
@@ -46,7 +46,7 @@ func TestOutboxQueuesInTheEpisodeTransaction(t *testing.T) {
 	if err := db.Write(&Batch{Episodes: []*Episode{ann}}); err != nil {
 		t.Fatal(err)
 	}
-	if gone, err := db.OutboxAccepted(targets[1], targets, []OutboxEntry{{Episode: 8, Gen: 1}}); err != nil || gone != 0 {
+	if gone, err := db.OutboxAccepted(targets[1], targets, []OutboxAcceptance{{Episode: 8, Gen: 1}}); err != nil || gone != 0 {
 		t.Fatalf("a stale generation removed the entry: removed %d, err %v", gone, err)
 	}
 	got, _, _ = db.Outbox(0)
@@ -68,7 +68,7 @@ func TestOutboxQueuesInTheEpisodeTransaction(t *testing.T) {
 	}
 	for i, tg := range targets {
 		// Episode 77 has no entry: skipped.
-		gone, err := db.OutboxAccepted(tg, targets, []OutboxEntry{{Episode: 8, Gen: 2}, {Episode: 77, Gen: 1}})
+		gone, err := db.OutboxAccepted(tg, targets, []OutboxAcceptance{{Episode: 8, Gen: 2}, {Episode: 77, Gen: 1}})
 		if err != nil || gone != i {
 			t.Fatalf("accepted by %s: removed %d, err %v", tg, gone, err)
 		}
@@ -107,5 +107,89 @@ func TestOutboxRollsBackWithAFailedWrite(t *testing.T) {
 	db.InjectWriteFault(nil)
 	if _, n, _ := db.Outbox(0); n != 0 {
 		t.Fatalf("a failed write left %d outbox entries", n)
+	}
+}
+
+// The outbox remembers, per target, when it first had an episode firing
+// (kept across generations, also from a stale generation's acceptance),
+// does not count a partial acceptance as delivered, and marks a new entry
+// of an episode whose previous entry was delivered everywhere FiringDone;
+// an episode first stored announced (or twice in one batch) is not.
+func TestOutboxFiringRecord(t *testing.T) {
+	db, err := Open(t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	db.EnableOutbox(nil)
+	targets := []string{"A", "B"}
+	ep := &Episode{ID: 20, Device: "d", Condition: "spo2_low", Priority: "high", OnsetMS: 1000, Active: true}
+	write := func(eps ...*Episode) {
+		t.Helper()
+		if err := db.Write(&Batch{Episodes: eps}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	entry := func() (OutboxEntry, bool) {
+		t.Helper()
+		ents, _, err := db.Outbox(0)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, e := range ents {
+			if e.Episode == 20 {
+				return e, true
+			}
+		}
+		return OutboxEntry{}, false
+	}
+	accept := func(target string, a OutboxAcceptance) {
+		t.Helper()
+		if _, err := db.OutboxAccepted(target, targets, []OutboxAcceptance{a}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	write(ep) // stored at onset, not announced: no entry
+	ep.AnnouncedMS = 16000
+	write(ep)
+	if e, ok := entry(); !ok || e.FiringDone {
+		t.Fatalf("first announced write: %+v %v, want an entry without FiringDone", e, ok)
+	}
+	accept("A", OutboxAcceptance{Episode: 20, Gen: 1, FiringMS: 100})
+	ep.Active, ep.EndedMS = false, 30000
+	write(ep)
+	accept("B", OutboxAcceptance{Episode: 20, Gen: 1, FiringMS: 200})                // stale generation: firing recorded, not delivered
+	accept("B", OutboxAcceptance{Episode: 20, Gen: 2, FiringMS: 300, Partial: true}) // late firing: not delivered
+	e, ok := entry()
+	if !ok || e.Gen != 2 || e.Fired["A"] != 100 || e.Fired["B"] != 200 || len(e.Delivered) != 0 {
+		t.Fatalf("entry %+v (present %v), want gen 2, fired A at 100 and B at 200, delivered to none", e, ok)
+	}
+	if _, fired := e.FiredAt("C"); fired {
+		t.Error("FiredAt of a target that never had it says fired")
+	}
+	accept("A", OutboxAcceptance{Episode: 20, Gen: 2})
+	accept("B", OutboxAcceptance{Episode: 20, Gen: 2})
+	if _, ok := entry(); ok {
+		t.Fatal("entry still there after both targets accepted generation 2 in full")
+	}
+	ep.AckedMS, ep.AckedBy = 40000, "nurse"
+	write(ep)
+	if e, ok = entry(); !ok || !e.FiringDone || e.Gen != 1 {
+		t.Fatalf("entry after a later change of a delivered episode: %+v %v, want FiringDone", e, ok)
+	}
+	if at, fired := e.FiredAt("C"); !fired || at != 0 {
+		t.Error("FiredAt of a FiringDone entry")
+	}
+	// New episode written twice in one batch, announced both times: its
+	// stored version before the batch did not exist.
+	n1 := &Episode{ID: 21, Device: "d", Condition: "pulse_low", Priority: "medium", OnsetMS: 1000, AnnouncedMS: 5000, Active: true}
+	n2 := *n1
+	n2.Active, n2.EndedMS = false, 9000
+	write(n1, &n2)
+	ents, _, _ := db.Outbox(0)
+	for _, x := range ents {
+		if x.Episode == 21 && x.FiringDone {
+			t.Errorf("episode announced and ended in one batch marked FiringDone: %+v", x)
+		}
 	}
 }
