@@ -6,6 +6,7 @@ import (
 	"path/filepath"
 	"regexp"
 	"strconv"
+	"strings"
 	"syscall"
 	"testing"
 	"time"
@@ -13,7 +14,9 @@ import (
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 
+	"github.com/pulsefleet/pulsefleet/internal/notify"
 	"github.com/pulsefleet/pulsefleet/internal/notify/notifytest"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
@@ -148,6 +151,100 @@ func TestKill9BeforeDeliveryDeliversAfterRestart(t *testing.T) {
 	}
 	if len(firing) != 1 {
 		t.Errorf("firing notifications for %d distinct episode ids %v, want 1", len(firing), firing)
+	}
+	c2.cmd.Process.Signal(syscall.SIGTERM)
+	<-c2.exited
+}
+
+// An alarm announced AND ended while Alertmanager is down, then the
+// gateway killed with SIGKILL: after the restart, with Alertmanager up,
+// the receiver gets the episode firing, marked delivered late with its end
+// time, and only after --alertmanager-hold its resolution (an alert that
+// reached Alertmanager already resolved would never be notified).
+func TestKill9AfterAnAlarmEndedUndeliveredSendsItFiringThenResolved(t *testing.T) {
+	if testing.Short() {
+		t.Skip("process test")
+	}
+	recv := notifytest.NewReceiver(t)
+	am := notifytest.Start(t, notifytest.Config(recv.URL("/hook")))
+	am.Stop()
+	data := t.TempDir()
+	prof := filepath.Join(t.TempDir(), "fast.yaml")
+	if err := os.WriteFile(prof, []byte("name: fast\nconditions:\n  - kind: spo2_low\n    limit: 90\n    hysteresis: 2\n    delay: 3s\n    priority: high\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	const hold = 6 * time.Second
+	args := []string{"--profile", prof, "--alertmanager", am.URL, "--alertmanager-hold", hold.String()}
+	c := startServe(t, data, args...)
+	t0 := time.Now().Add(-time.Minute).Truncate(time.Second).UnixMilli()
+	d := dialLabelled(t, c.grpcAddr, "bed-12", "proto-ox2", nil)
+	for s := uint64(1); s <= 9; s++ {
+		v := 85.0 // onset t0, announced at t0+3 s
+		if s > 5 {
+			v = 97 // back above limit+hysteresis: ended
+		}
+		d.send(t, s, t0+int64(s-1)*1000, v)
+	}
+	d.waitAck(t, 9)
+	deadline := time.Now().Add(10 * time.Second)
+	for queuedNotifications(c.httpAddr) != 1 {
+		if time.Now().After(deadline) {
+			t.Fatalf("pulsefleet_notify_queued = %v, want 1", queuedNotifications(c.httpAddr))
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	time.Sleep(200 * time.Millisecond) // the end's write, if it was not in the same batch
+	if err := c.cmd.Process.Signal(syscall.SIGKILL); err != nil {
+		t.Fatal(err)
+	}
+	<-c.exited
+	db, err := store.Open(data, store.Options{ReadOnly: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ents, _, err := db.Outbox(0)
+	var ep store.Episode
+	if err == nil && len(ents) == 1 {
+		ep, err = db.Episode(ents[0].Episode)
+	}
+	db.Close()
+	if err != nil || len(ents) != 1 || ep.Active || ep.EndedMS == 0 || ep.AnnouncedMS == 0 {
+		t.Fatalf("before the restart: outbox %+v, episode %+v, err %v; want one entry for an announced, ended episode", ents, ep, err)
+	}
+
+	am.Restart()
+	c2 := startServe(t, data, args...)
+	id := strconv.FormatUint(ep.ID, 10)
+	first := func(status string) func([]notifytest.Delivered) bool {
+		return func(all []notifytest.Delivered) bool {
+			for _, a := range all {
+				if a.Status == status && a.Labels["episode"] == id {
+					return true
+				}
+			}
+			return false
+		}
+	}
+	all, ok := recv.Wait(30*time.Second, first("firing"))
+	if !ok {
+		t.Fatalf("the alarm that ended undelivered never arrived firing after the restart; received %+v", all)
+	}
+	firedSeen := time.Now()
+	if first("resolved")(all) {
+		t.Fatalf("its resolution arrived with the firing notification: %+v", all)
+	}
+	ended := time.UnixMilli(ep.EndedMS).UTC().Format(time.RFC3339Nano)
+	for _, a := range all {
+		if a.Status == "firing" && !strings.Contains(a.Annotations[notify.LateAnnotation], "ended at "+ended) {
+			t.Errorf("firing notification without %s naming the end %s: %v", notify.LateAnnotation, ended, a.Annotations)
+		}
+	}
+	all, ok = recv.Wait(hold+30*time.Second, first("resolved"))
+	if !ok {
+		t.Fatalf("never resolved; received %+v", all)
+	}
+	if gap := time.Since(firedSeen); gap < hold-2*time.Second {
+		t.Errorf("resolved %v after the firing notification, want about the hold %v", gap, hold)
 	}
 	c2.cmd.Process.Signal(syscall.SIGTERM)
 	<-c2.exited

@@ -7,6 +7,7 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+	"time"
 )
 
 // Alertmanager settings that cannot work are refused before anything
@@ -19,6 +20,8 @@ func TestServeAlertmanagerSettingsErrors(t *testing.T) {
 	os.WriteFile(noColon, []byte("justauser\n"), 0o600)
 	cfg := filepath.Join(dir, "c.yaml")
 	os.WriteFile(cfg, []byte("alertmanager: [\"ftp://am:9093\"]\n"), 0o600)
+	holdCfg := filepath.Join(dir, "hold.yaml")
+	os.WriteFile(holdCfg, []byte("alertmanager: [\"http://127.0.0.1:9\"]\nalertmanager_hold: 2h\n"), 0o600)
 	done, cancel := context.WithCancel(context.Background())
 	cancel()
 	for _, c := range []struct {
@@ -33,6 +36,8 @@ func TestServeAlertmanagerSettingsErrors(t *testing.T) {
 		{[]string{"--alertmanager", "http://127.0.0.1:9", "--alertmanager-ca-file", filepath.Join(dir, "missing.pem")}, "alertmanager-ca-file:"},
 		{[]string{"--alertmanager", "http://127.0.0.1:9", "--external-url", "ward.example"}, "external-url:"},
 		{[]string{"--config", cfg}, `"ftp://am:9093"`},
+		{[]string{"--alertmanager", "http://127.0.0.1:9", "--alertmanager-hold", "1s"}, "alertmanager-hold: 1s is out of range [5s, 30m0s]"},
+		{[]string{"--config", holdCfg}, "alertmanager-hold: 2h0m0s is out of range [5s, 30m0s]"},
 	} {
 		var out, errb bytes.Buffer
 		args := append([]string{"serve", "--data", dir, "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0"}, c.args...)
@@ -47,16 +52,16 @@ func TestServeAlertmanagerSettingsErrors(t *testing.T) {
 func TestServeAlertmanagerConfigKeys(t *testing.T) {
 	p := filepath.Join(t.TempDir(), "c.yaml")
 	os.WriteFile(p, []byte("alertmanager:\n  - http://am-0:9093\n  - http://am-1:9093\nalertmanager_bearer_file: /run/token\n"+
-		"alertmanager_ca_file: /run/ca.pem\nalertmanager_basic_auth_file: /run/basic\nexternal_url: https://ward.example/\n"), 0o600)
+		"alertmanager_ca_file: /run/ca.pem\nalertmanager_basic_auth_file: /run/basic\nexternal_url: https://ward.example/\nalertmanager_hold: 3m\n"), 0o600)
 	c := defaultServeConfig()
 	if err := loadServeConfig(p, &c); err != nil {
 		t.Fatal(err)
 	}
 	if strings.Join(c.Alertmanager, ",") != "http://am-0:9093,http://am-1:9093" || c.AlertmanagerBearer != "/run/token" ||
-		c.AlertmanagerCAFile != "/run/ca.pem" || c.AlertmanagerBasicAuth != "/run/basic" || c.ExternalURL != "https://ward.example/" {
+		c.AlertmanagerCAFile != "/run/ca.pem" || c.AlertmanagerBasicAuth != "/run/basic" || c.ExternalURL != "https://ward.example/" || c.AlertmanagerHold != 3*time.Minute {
 		t.Errorf("config not applied: %+v", c.notifyConfig)
 	}
-	for _, k := range []string{"alertmanager", "alertmanager_ca_file", "alertmanager_basic_auth_file", "alertmanager_bearer_file", "external_url"} {
+	for _, k := range []string{"alertmanager", "alertmanager_ca_file", "alertmanager_basic_auth_file", "alertmanager_bearer_file", "external_url", "alertmanager_hold"} {
 		if !strings.Contains(strings.Join(serveConfigKeys(), " "), k) {
 			t.Errorf("serveConfigKeys lacks %s", k)
 		}
