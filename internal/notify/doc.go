@@ -26,6 +26,16 @@
 // resolve_timeout (5 minutes by default), because Alertmanager resolves a
 // firing alert without endsAt that is not repeated in time.
 //
+// Alertmanager never notifies an alert that reaches it already resolved.
+// So an ended episode that an Alertmanager never had firing (it was
+// unreachable, or the gateway down, from announcement to end) is first
+// sent to it firing, by Late: endsAt in the future, and the summary and
+// the delivered_late annotation saying when the episode ended. The time
+// that Alertmanager accepted it is kept in the outbox entry
+// (OutboxEntry.Fired), and the resolution is sent only once the alert has
+// been firing there for Options.Hold (2 minutes by default), so
+// Alertmanager notifies it after its group_wait, also across a restart.
+//
 // The client is a few lines of net/http and encoding/json over the
 // documented API rather than Alertmanager's generated Go client, which
 // would bring the go-openapi runtime and its dependencies into the
