@@ -317,12 +317,7 @@ func (c *Client) Run(ctx context.Context) {
 		var re *RedirectError
 		var wait time.Duration
 		if refused(err) {
-			c.mu.Lock()
-			c.failed = fmt.Errorf("gateway %s refused device %s: %w", addr, c.opts.Intro.GetDeviceId(), err)
-			c.st.LastError = err.Error()
-			c.notify()
-			c.mu.Unlock()
-			c.opts.Logf("%v; giving up (retrying cannot help)", c.failed)
+			c.giveUp(addr, err)
 			return
 		}
 		switch {
@@ -360,6 +355,17 @@ func (c *Client) Run(ctx context.Context) {
 		case <-timer.C:
 		}
 	}
+}
+
+// giveUp records that gateway addr refused the device for good (err is one
+// that retrying cannot cure) and wakes waiters so they see it.
+func (c *Client) giveUp(addr string, err error) {
+	c.mu.Lock()
+	c.failed = fmt.Errorf("gateway %s refused device %s: %w", addr, c.opts.Intro.GetDeviceId(), err)
+	c.st.LastError = err.Error()
+	c.notify()
+	c.mu.Unlock()
+	c.opts.Logf("%v; giving up (retrying cannot help)", c.failed)
 }
 
 // nextAddress moves the client to the gateway after addr in Address and
