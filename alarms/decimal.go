@@ -66,24 +66,9 @@ func parseFloatFast(b []byte) (float64, bool) {
 		if b[i] != 'e' && b[i] != 'E' {
 			return 0, false
 		}
-		i++
-		eneg := false
-		if i < n && (b[i] == '-' || b[i] == '+') {
-			eneg = b[i] == '-'
-			i++
-		}
-		if i == n {
+		var ok bool
+		if exp, ok = parseExponent(b[i+1:]); !ok {
 			return 0, false
-		}
-		for ; i < n; i++ {
-			c := b[i]
-			if c < '0' || c > '9' || exp > 1000 {
-				return 0, false
-			}
-			exp = exp*10 + int(c-'0')
-		}
-		if eneg {
-			exp = -exp
 		}
 	}
 	if mant > 1<<53 {
@@ -105,4 +90,30 @@ func parseFloatFast(b []byte) (float64, bool) {
 		f = -f
 	}
 	return f, true
+}
+
+// parseExponent parses the signed decimal exponent after the 'e' of a
+// number; it refuses an empty one and stops at a magnitude above 1000.
+func parseExponent(b []byte) (int, bool) {
+	i, n := 0, len(b)
+	neg := false
+	if i < n && (b[i] == '-' || b[i] == '+') {
+		neg = b[i] == '-'
+		i++
+	}
+	if i == n {
+		return 0, false
+	}
+	exp := 0
+	for ; i < n; i++ {
+		c := b[i]
+		if c < '0' || c > '9' || exp > 1000 {
+			return 0, false
+		}
+		exp = exp*10 + int(c-'0')
+	}
+	if neg {
+		exp = -exp
+	}
+	return exp, true
 }
