@@ -61,7 +61,9 @@ type indexCache struct {
 }
 
 // Write applies the batch in one transaction. When it returns nil, every
-// record is durable.
+// record is durable. The steps run in a fixed order (devices, cursors, trend
+// points, compaction, ledger, raw, sessions, episodes, outbox, alarm states,
+// audit); each kind's step is a helper below taking the transaction.
 func (db *DB) Write(b *Batch) error {
 	if b.Len() == 0 {
 		return nil
@@ -77,67 +79,17 @@ func (db *DB) Write(b *Batch) error {
 		led         *ledgerWriter
 		raw         *rawWriter
 	)
-	// index returns a device's ledger index, creating a bare record for a
-	// device first seen in this batch's trend points.
-	index := func(tx *bolt.Tx, id string) (uint32, error) {
-		if idx, ok := newIdx[id]; ok {
-			return idx, nil
-		}
-		if idx, ok := db.lookupIndex(tx, id, newIdx); ok {
-			return idx, nil
-		}
-		devs := tx.Bucket(bDevices)
-		seq, err := devs.NextSequence()
-		if err != nil {
-			return 0, err
-		}
-		v, err := encJSON(&Device{ID: id, Index: uint32(seq), BatteryPct: -1})
-		if err != nil {
-			return 0, err
-		}
-		if err := devs.Put([]byte(id), v); err != nil {
-			return 0, err
-		}
-		newIdx[id] = uint32(seq)
-		return uint32(seq), nil
-	}
 	err := db.update(func(tx *bolt.Tx) error {
-		devs := tx.Bucket(bDevices)
+		var err error
 		// Devices first, so ledger records can use their index.
-		for _, d := range b.Devices {
-			if d.ID == "" {
-				return fmt.Errorf("device: empty id")
-			}
-			if d.Index == 0 {
-				if idx, ok := db.lookupIndex(tx, d.ID, newIdx); ok {
-					d.Index = idx
-				} else {
-					seq, err := devs.NextSequence()
-					if err != nil {
-						return err
-					}
-					d.Index = uint32(seq)
-					newIdx[d.ID] = d.Index
-					assignedDev = append(assignedDev, d)
-				}
-			}
-			v, err := encJSON(d)
-			if err != nil {
-				return err
-			}
-			if err := devs.Put([]byte(d.ID), v); err != nil {
-				return err
-			}
+		if assignedDev, err = db.putDevices(tx, b.Devices, newIdx); err != nil {
+			return err
 		}
-		curs := tx.Bucket(bCursors)
-		for i := range b.Cursors {
-			c := &b.Cursors[i]
-			if err := curs.Put([]byte(c.Device), encodeCursor(c)); err != nil {
-				return err
-			}
+		if err := putCursors(tx, b.Cursors); err != nil {
+			return err
 		}
 		b.Points, b.KeptOut = db.keepFirst(tx, b.Points)
-		if err := writeRecent(tx, db.tail.gen, b.Points, func(id string) (uint32, error) { return index(tx, id) }); err != nil {
+		if err := writeRecent(tx, db.tail.gen, b.Points, func(id string) (uint32, error) { return db.ensureIndex(tx, id, newIdx) }); err != nil {
 			return err
 		}
 		if plan != nil {
@@ -146,17 +98,8 @@ func (db *DB) Write(b *Batch) error {
 			}
 		}
 		led = &ledgerWriter{db: db, tx: tx, pending: map[uint32]*openRange{}}
-		for i := range b.Chunks {
-			c := &b.Chunks[i]
-			idx, ok := newIdx[c.Device]
-			if !ok {
-				if idx, ok = db.lookupIndex(tx, c.Device, newIdx); !ok {
-					return fmt.Errorf("ledger: device %q has no record", c.Device)
-				}
-			}
-			if err := led.add(c, idx); err != nil {
-				return err
-			}
+		if err := db.addChunks(tx, led, b.Chunks, newIdx); err != nil {
+			return err
 		}
 		raw = &rawWriter{db: db, tx: tx, pending: map[string]*rawState{}}
 		for i := range b.Raw {
@@ -164,65 +107,21 @@ func (db *DB) Write(b *Batch) error {
 				return err
 			}
 		}
-		for i := range b.Sessions {
-			s := &b.Sessions[i]
-			bk, err := nested(tx, bSessions, []byte(s.Device))
-			if err != nil {
-				return err
-			}
-			v, err := encJSON(s)
-			if err != nil {
-				return err
-			}
-			if err := bk.Put(u64(uint64(s.StartMS)), v); err != nil {
-				return err
-			}
+		if err := putSessions(tx, b.Sessions); err != nil {
+			return err
 		}
-		eps := tx.Bucket(bEpisodes)
 		outbox := db.outboxKick.Load() != nil
 		var wasAnnounced map[uint64]bool // episode -> its stored version before this batch was announced
-		if outbox {
-			wasAnnounced = map[uint64]bool{}
-		}
-		for _, e := range b.Episodes {
-			if outbox && e.ID != 0 {
-				if _, seen := wasAnnounced[e.ID]; !seen {
-					wasAnnounced[e.ID] = storedAnnounced(eps, e.ID)
-				}
-			}
-			if e.ID == 0 {
-				id, err := eps.NextSequence()
-				if err != nil {
-					return err
-				}
-				e.ID = id
-				assignedEp = append(assignedEp, e)
-			}
-			v, err := encJSON(e)
-			if err != nil {
-				return err
-			}
-			if err := eps.Put(u64(e.ID), v); err != nil {
-				return err
-			}
+		if assignedEp, wasAnnounced, err = putEpisodes(tx, b.Episodes, outbox); err != nil {
+			return err
 		}
 		if outbox {
-			var err error
 			if queued, err = queueOutbox(tx, b.Episodes, wasAnnounced, time.Now().UnixMilli()); err != nil {
 				return err
 			}
 		}
-		as := tx.Bucket(bAlarmState)
-		for dev, snap := range b.AlarmStates {
-			var err error
-			if snap == nil {
-				err = as.Delete([]byte(dev))
-			} else {
-				err = as.Put([]byte(dev), snap)
-			}
-			if err != nil {
-				return err
-			}
+		if err := putAlarmStates(tx, b.AlarmStates); err != nil {
+			return err
 		}
 		if err := appendAudit(tx, b.Audit); err != nil {
 			return err
@@ -233,14 +132,7 @@ func (db *DB) Write(b *Batch) error {
 		return nil
 	})
 	if err != nil {
-		// Nothing was written: numbers handed out in the transaction were
-		// rolled back with it, so a batch written again must draw them anew.
-		for _, d := range assignedDev {
-			d.Index = 0
-		}
-		for _, e := range assignedEp {
-			e.ID = 0
-		}
+		unassign(assignedDev, assignedEp)
 		return fmt.Errorf("store: write batch of %d records: %w", b.Len(), err)
 	}
 	db.tail.afterCommit(b.Points, plan)
@@ -249,12 +141,194 @@ func (db *DB) Write(b *Batch) error {
 	if queued {
 		(*db.outboxKick.Load())()
 	}
-	if len(newIdx) > 0 {
-		db.idx.mu.Lock()
-		for id, i := range newIdx {
-			db.idx.m[id] = i
+	db.cacheIndices(newIdx)
+	return nil
+}
+
+// unassign hands back the device indices and episode ids a failed write
+// drew: nothing was written, the numbers were rolled back with the
+// transaction, so a batch written again must draw them anew.
+func unassign(devs []*Device, eps []*Episode) {
+	for _, d := range devs {
+		d.Index = 0
+	}
+	for _, e := range eps {
+		e.ID = 0
+	}
+}
+
+// cacheIndices adds the ledger indices of a committed write to the cache.
+func (db *DB) cacheIndices(newIdx map[string]uint32) {
+	if len(newIdx) == 0 {
+		return
+	}
+	db.idx.mu.Lock()
+	for id, i := range newIdx {
+		db.idx.m[id] = i
+	}
+	db.idx.mu.Unlock()
+}
+
+// ensureIndex returns a device's ledger index, creating a bare record for a
+// device first seen in this batch's trend points. New indices go into
+// newIdx, which reaches the cache only after commit (lookupIndex).
+func (db *DB) ensureIndex(tx *bolt.Tx, id string, newIdx map[string]uint32) (uint32, error) {
+	if idx, ok := newIdx[id]; ok {
+		return idx, nil
+	}
+	if idx, ok := db.lookupIndex(tx, id, newIdx); ok {
+		return idx, nil
+	}
+	devs := tx.Bucket(bDevices)
+	seq, err := devs.NextSequence()
+	if err != nil {
+		return 0, err
+	}
+	v, err := encJSON(&Device{ID: id, Index: uint32(seq), BatteryPct: -1})
+	if err != nil {
+		return 0, err
+	}
+	if err := devs.Put([]byte(id), v); err != nil {
+		return 0, err
+	}
+	newIdx[id] = uint32(seq)
+	return uint32(seq), nil
+}
+
+// putDevices writes device records, drawing a ledger index for a device
+// that has none and is not yet stored. It returns the devices it drew an
+// index for (also when it fails part way), so Write can hand those numbers
+// back if the transaction rolls back.
+func (db *DB) putDevices(tx *bolt.Tx, devices []*Device, newIdx map[string]uint32) ([]*Device, error) {
+	var assigned []*Device
+	devs := tx.Bucket(bDevices)
+	for _, d := range devices {
+		if d.ID == "" {
+			return assigned, fmt.Errorf("device: empty id")
 		}
-		db.idx.mu.Unlock()
+		if d.Index == 0 {
+			if idx, ok := db.lookupIndex(tx, d.ID, newIdx); ok {
+				d.Index = idx
+			} else {
+				seq, err := devs.NextSequence()
+				if err != nil {
+					return assigned, err
+				}
+				d.Index = uint32(seq)
+				newIdx[d.ID] = d.Index
+				assigned = append(assigned, d)
+			}
+		}
+		v, err := encJSON(d)
+		if err != nil {
+			return assigned, err
+		}
+		if err := devs.Put([]byte(d.ID), v); err != nil {
+			return assigned, err
+		}
+	}
+	return assigned, nil
+}
+
+// putCursors writes the devices' durable cursors.
+func putCursors(tx *bolt.Tx, cursors []Cursor) error {
+	curs := tx.Bucket(bCursors)
+	for i := range cursors {
+		c := &cursors[i]
+		if err := curs.Put([]byte(c.Device), encodeCursor(c)); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// addChunks hands ledger chunks to the ledger writer; a chunk's device must
+// already have a record (written in this batch or before).
+func (db *DB) addChunks(tx *bolt.Tx, led *ledgerWriter, chunks []Chunk, newIdx map[string]uint32) error {
+	for i := range chunks {
+		c := &chunks[i]
+		idx, ok := newIdx[c.Device]
+		if !ok {
+			if idx, ok = db.lookupIndex(tx, c.Device, newIdx); !ok {
+				return fmt.Errorf("ledger: device %q has no record", c.Device)
+			}
+		}
+		if err := led.add(c, idx); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// putSessions writes session records under their device, keyed by start.
+func putSessions(tx *bolt.Tx, sessions []Session) error {
+	for i := range sessions {
+		s := &sessions[i]
+		bk, err := nested(tx, bSessions, []byte(s.Device))
+		if err != nil {
+			return err
+		}
+		v, err := encJSON(s)
+		if err != nil {
+			return err
+		}
+		if err := bk.Put(u64(uint64(s.StartMS)), v); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// putEpisodes writes episodes, drawing an id for one with none. It returns
+// the episodes it drew an id for (also when it fails part way), so Write can
+// hand those ids back if the transaction rolls back. When outbox is set it
+// also returns, for each episode already stored, whether its stored version
+// (before this batch) was announced, for queueOutbox.
+func putEpisodes(tx *bolt.Tx, episodes []*Episode, outbox bool) ([]*Episode, map[uint64]bool, error) {
+	var assigned []*Episode
+	eps := tx.Bucket(bEpisodes)
+	var wasAnnounced map[uint64]bool
+	if outbox {
+		wasAnnounced = map[uint64]bool{}
+	}
+	for _, e := range episodes {
+		if outbox && e.ID != 0 {
+			if _, seen := wasAnnounced[e.ID]; !seen {
+				wasAnnounced[e.ID] = storedAnnounced(eps, e.ID)
+			}
+		}
+		if e.ID == 0 {
+			id, err := eps.NextSequence()
+			if err != nil {
+				return assigned, nil, err
+			}
+			e.ID = id
+			assigned = append(assigned, e)
+		}
+		v, err := encJSON(e)
+		if err != nil {
+			return assigned, nil, err
+		}
+		if err := eps.Put(u64(e.ID), v); err != nil {
+			return assigned, nil, err
+		}
+	}
+	return assigned, wasAnnounced, nil
+}
+
+// putAlarmStates writes alarm-state snapshots; a nil snapshot deletes.
+func putAlarmStates(tx *bolt.Tx, states map[string][]byte) error {
+	as := tx.Bucket(bAlarmState)
+	for dev, snap := range states {
+		var err error
+		if snap == nil {
+			err = as.Delete([]byte(dev))
+		} else {
+			err = as.Put([]byte(dev), snap)
+		}
+		if err != nil {
+			return err
+		}
 	}
 	return nil
 }
