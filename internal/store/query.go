@@ -78,42 +78,8 @@ func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) erro
 			if day == nil {
 				continue
 			}
-			// The record before fromMS may be a block that holds it.
-			pc := day.Cursor()
-			k, v := pc.Seek(from[:])
-			if k == nil || len(k) != 8 || keyTime(k) > fromMS {
-				var pk, pv []byte
-				if k == nil {
-					pk, pv = pc.Last()
-				} else {
-					pk, pv = pc.Prev()
-				}
-				if pk != nil && isBlock(pv) {
-					k, v = pk, pv
-				} else {
-					k, v = pc.Seek(from[:])
-				}
-			}
-			for ; k != nil; k, v = pc.Next() {
-				if len(k) == 8 && keyTime(k) >= toMS {
-					break
-				}
-				if isBlock(v) {
-					more, err := emitBlock(k, v, fromMS, toMS, &pt, &buf, emit)
-					if err != nil {
-						return err
-					}
-					if !more {
-						return errStop
-					}
-					continue
-				}
-				if err := decodePoint(k, v, &pt); err != nil {
-					return err
-				}
-				if pt.TimeMS >= fromMS && !emit(pt) {
-					return errStop
-				}
+			if err := trendDay(day, from[:], fromMS, toMS, &pt, &buf, emit); err != nil {
+				return err
 			}
 		}
 		if !m.rest() {
@@ -126,6 +92,51 @@ func (db *DB) Trend(device string, fromMS, toMS int64, fn func(Point) bool) erro
 	}
 	if err != nil {
 		return fmt.Errorf("store: trend %q: %w", device, err)
+	}
+	return nil
+}
+
+// trendDay is Trend for one day bucket: it calls emit for the points with
+// fromMS <= time < toMS (from is fromMS as a key), starting with the block
+// before fromMS when it may hold it. It returns errStop when emit asked to
+// stop.
+func trendDay(day *bolt.Bucket, from []byte, fromMS, toMS int64, pt *Point, buf *[]Point, emit func(Point) bool) error {
+	// The record before fromMS may be a block that holds it.
+	pc := day.Cursor()
+	k, v := pc.Seek(from)
+	if k == nil || len(k) != 8 || keyTime(k) > fromMS {
+		var pk, pv []byte
+		if k == nil {
+			pk, pv = pc.Last()
+		} else {
+			pk, pv = pc.Prev()
+		}
+		if pk != nil && isBlock(pv) {
+			k, v = pk, pv
+		} else {
+			k, v = pc.Seek(from)
+		}
+	}
+	for ; k != nil; k, v = pc.Next() {
+		if len(k) == 8 && keyTime(k) >= toMS {
+			break
+		}
+		if isBlock(v) {
+			more, err := emitBlock(k, v, fromMS, toMS, pt, buf, emit)
+			if err != nil {
+				return err
+			}
+			if !more {
+				return errStop
+			}
+			continue
+		}
+		if err := decodePoint(k, v, pt); err != nil {
+			return err
+		}
+		if pt.TimeMS >= fromMS && !emit(*pt) {
+			return errStop
+		}
 	}
 	return nil
 }

@@ -206,11 +206,27 @@ func decodeBlock(k, v []byte, dst []Point) ([]Point, error) {
 	if r.err != nil || t != last {
 		return dst[:base], fmt.Errorf("%w: times end at %d, header says %d", errBadBlock, t, last)
 	}
+	if err := decodeRuns(&r, pts); err != nil {
+		return dst[:base], err
+	}
+	if err := decodeColumns(&r, pts); err != nil {
+		return dst[:base], err
+	}
+	if r.err != nil || r.off != len(v) {
+		return dst[:base], fmt.Errorf("%w: %d bytes left over", errBadBlock, len(v)-r.off)
+	}
+	return dst, nil
+}
+
+// decodeRuns reads a block's two run-length columns (flags, then source)
+// into pts.
+func decodeRuns(r *blockReader, pts []Point) error {
+	n := len(pts)
 	for c := 0; c < 2; c++ {
 		for i := 0; i < n; {
 			run, val := int(r.uvarint()), r.uvarint()
 			if r.err != nil || run < 1 || run > n-i || (c == 0 && val > math.MaxUint16) || (c == 1 && val > math.MaxUint8) {
-				return dst[:base], fmt.Errorf("%w: runs", errBadBlock)
+				return fmt.Errorf("%w: runs", errBadBlock)
 			}
 			for j := i; j < i+run; j++ {
 				if c == 0 {
@@ -222,10 +238,17 @@ func decodeBlock(k, v []byte, dst []Point) ([]Point, error) {
 			i += run
 		}
 	}
-	if r.err != nil || len(v)-r.off < 10*n {
-		return dst[:base], fmt.Errorf("%w: short value columns", errBadBlock)
+	return nil
+}
+
+// decodeColumns reads a block's five value columns (with the escaped
+// values after them) into pts.
+func decodeColumns(r *blockReader, pts []Point) error {
+	n := len(pts)
+	if r.err != nil || len(r.v)-r.off < 10*n {
+		return fmt.Errorf("%w: short value columns", errBadBlock)
 	}
-	cols := v[r.off : r.off+10*n]
+	cols := r.v[r.off : r.off+10*n]
 	r.off += 10 * n
 	var col [blockMax]float64
 	for f := 0; f < 5; f++ {
@@ -237,10 +260,10 @@ func decodeBlock(k, v []byte, dst []Point) ([]Point, error) {
 			case qNaN:
 				col[i] = math.NaN()
 			case qEscape:
-				if r.off+4 > len(v) {
-					return dst[:base], fmt.Errorf("%w: short escaped value", errBadBlock)
+				if r.off+4 > len(r.v) {
+					return fmt.Errorf("%w: short escaped value", errBadBlock)
 				}
-				col[i] = float64(math.Float32frombits(binary.LittleEndian.Uint32(v[r.off:])))
+				col[i] = float64(math.Float32frombits(binary.LittleEndian.Uint32(r.v[r.off:])))
 				r.off += 4
 			default:
 				col[i] = float64(float32(float64(q) * inv))
@@ -269,10 +292,7 @@ func decodeBlock(k, v []byte, dst []Point) ([]Point, error) {
 			}
 		}
 	}
-	if r.err != nil || r.off != len(v) {
-		return dst[:base], fmt.Errorf("%w: %d bytes left over", errBadBlock, len(v)-r.off)
-	}
-	return dst, nil
+	return nil
 }
 
 // decodeTrendRecord appends the points of a day-bucket record of either
@@ -471,20 +491,7 @@ func emitBlock(k, v []byte, from, to int64, p *Point, buf *[]Point, fn func(Poin
 	if len(v)-r.off != 10*n {
 		// Escaped values follow the columns (or the block is damaged):
 		// the general decoder handles both.
-		pts, err := decodeBlock(k, v, (*buf)[:0])
-		*buf = pts
-		if err != nil {
-			return false, err
-		}
-		for i := range pts {
-			if pts[i].TimeMS >= from && pts[i].TimeMS < to {
-				pts[i].Device = p.Device
-				if !fn(pts[i]) {
-					return false, nil
-				}
-			}
-		}
-		return true, nil
+		return emitDecoded(k, v, from, to, p.Device, buf, fn)
 	}
 	cols := v[r.off:]
 	c0, c1, c2, c3, c4 := cols[:2*n], cols[2*n:4*n], cols[4*n:6*n], cols[6*n:8*n], cols[8*n:10*n]
@@ -512,6 +519,26 @@ func emitBlock(k, v []byte, from, to int64, p *Point, buf *[]Point, fn func(Poin
 		p.SQI, p.Ratio = fixedValue(c3, i, 1.0/1000), fixedValue(c4, i, 1.0/10_000)
 		if !fn(*p) {
 			return false, nil
+		}
+	}
+	return true, nil
+}
+
+// emitDecoded is emitBlock for a block with escaped values: it decodes the
+// block into *buf with decodeBlock and calls fn for the points with
+// from <= time < to.
+func emitDecoded(k, v []byte, from, to int64, device string, buf *[]Point, fn func(Point) bool) (bool, error) {
+	pts, err := decodeBlock(k, v, (*buf)[:0])
+	*buf = pts
+	if err != nil {
+		return false, err
+	}
+	for i := range pts {
+		if pts[i].TimeMS >= from && pts[i].TimeMS < to {
+			pts[i].Device = device
+			if !fn(pts[i]) {
+				return false, nil
+			}
 		}
 	}
 	return true, nil
