@@ -232,33 +232,9 @@ type RestoreResult struct {
 // identity file naming another store are kept aside under
 // NAME.before-restore-TIME; the identity file then names the restored store.
 func Restore(dir, from string, opt VerifyOptions, now time.Time) (*RestoreResult, error) {
-	fi, err := os.Stat(from)
+	rep, sum, err := checkSnapshot(from, opt)
 	if err != nil {
-		return nil, fmt.Errorf("restore: --from %s: %w", from, err)
-	}
-	if fi.IsDir() {
-		return nil, fmt.Errorf("restore: --from %s is a directory, want a snapshot file", from)
-	}
-	want, err := ReadChecksumFile(from)
-	if err != nil {
-		return nil, fmt.Errorf("restore: %w", err)
-	}
-	sum, err := FileSHA256(from)
-	if err != nil {
-		return nil, fmt.Errorf("restore: --from %s: %w", from, err)
-	}
-	if want != "" && want != sum {
-		return nil, fmt.Errorf("restore: --from %s: checksum mismatch: the file hashes to %s, %s%s says %s: the copy is damaged, take another", from, sum, from, ChecksumSuffix, want)
-	}
-	rep, err := VerifyFile(from, opt)
-	if err != nil {
-		return nil, fmt.Errorf("restore: %w", err)
-	}
-	if !rep.OK() {
-		return nil, fmt.Errorf("restore: --from %s fails the full check (%d problem(s), first: %s): nothing was changed; run `pulsefleet verify --file %s`", from, len(rep.Problems), rep.Problems[0], from)
-	}
-	if rep.StoreID == "" {
-		return nil, fmt.Errorf("restore: --from %s has no store id (meta/store_id): not a pulsefleet snapshot", from)
+		return nil, err
 	}
 	if err := os.MkdirAll(dir, 0o750); err != nil {
 		return nil, fmt.Errorf("restore: --data %s: %w", dir, err)
@@ -310,21 +286,66 @@ func Restore(dir, from string, opt VerifyOptions, now time.Time) (*RestoreResult
 		return nil, fmt.Errorf("restore: %w", err)
 	}
 	done = true
+	if err := restoreIdentity(dir, rep.StoreID, stamp, now, res); err != nil {
+		return nil, err
+	}
+	syncDir(dir)
+	return res, nil
+}
+
+// checkSnapshot checks a snapshot before Restore touches anything: a file,
+// matching its checksum file when there is one, passing the full check, with
+// a store id. It returns the check's report and the file's SHA-256.
+func checkSnapshot(from string, opt VerifyOptions) (*VerifyReport, string, error) {
+	fi, err := os.Stat(from)
+	if err != nil {
+		return nil, "", fmt.Errorf("restore: --from %s: %w", from, err)
+	}
+	if fi.IsDir() {
+		return nil, "", fmt.Errorf("restore: --from %s is a directory, want a snapshot file", from)
+	}
+	want, err := ReadChecksumFile(from)
+	if err != nil {
+		return nil, "", fmt.Errorf("restore: %w", err)
+	}
+	sum, err := FileSHA256(from)
+	if err != nil {
+		return nil, "", fmt.Errorf("restore: --from %s: %w", from, err)
+	}
+	if want != "" && want != sum {
+		return nil, "", fmt.Errorf("restore: --from %s: checksum mismatch: the file hashes to %s, %s%s says %s: the copy is damaged, take another", from, sum, from, ChecksumSuffix, want)
+	}
+	rep, err := VerifyFile(from, opt)
+	if err != nil {
+		return nil, "", fmt.Errorf("restore: %w", err)
+	}
+	if !rep.OK() {
+		return nil, "", fmt.Errorf("restore: --from %s fails the full check (%d problem(s), first: %s): nothing was changed; run `pulsefleet verify --file %s`", from, len(rep.Problems), rep.Problems[0], from)
+	}
+	if rep.StoreID == "" {
+		return nil, "", fmt.Errorf("restore: --from %s has no store id (meta/store_id): not a pulsefleet snapshot", from)
+	}
+	return rep, sum, nil
+}
+
+// restoreIdentity makes the identity file name the restored store: one
+// that names another store (or cannot be read) is kept aside as
+// .before-restore-STAMP, recorded in res.IdentAside.
+func restoreIdentity(dir, storeID, stamp string, now time.Time, res *RestoreResult) error {
 	ident, err := readIdentity(dir)
-	if err != nil || ident == nil || ident.StoreID != rep.StoreID {
+	if err != nil || ident == nil || ident.StoreID != storeID {
 		ip := filepath.Join(dir, IdentityFileName)
 		if _, serr := os.Stat(ip); serr == nil {
 			res.IdentAside = ip + ".before-restore-" + stamp
 			if err := os.Rename(ip, res.IdentAside); err != nil {
-				return nil, fmt.Errorf("restore: keep the old identity file aside: %w", err)
+				return fmt.Errorf("restore: keep the old identity file aside: %w", err)
 			}
 		}
-		if err := writeIdentity(dir, rep.StoreID, now); err != nil {
-			return nil, fmt.Errorf("restore: %w", err)
+		if err := writeIdentity(dir, storeID, now); err != nil {
+			return fmt.Errorf("restore: %w", err)
 		}
 	}
-	syncDir(dir)
-	return res, nil
+	return nil
 }
 
 func copyFileSynced(from, to string) error {

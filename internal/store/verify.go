@@ -503,40 +503,7 @@ func VerifyFile(path string, opt VerifyOptions) (*VerifyReport, error) {
 		ledgerMax: map[uint32]uint64{}, ledgerN: map[uint32]uint64{}}
 	err = guard(path, func() error {
 		return b.View(func(tx *bolt.Tx) error {
-			if m := tx.Bucket(bMeta); m != nil {
-				rep.StoreID = string(m.Get(keyStoreID))
-			}
-			if fi.Size() < tx.Size() {
-				c.problem("truncated: the file has %d bytes, its meta page says %d", fi.Size(), tx.Size())
-				return nil // reading on would run past the end of the file
-			}
-			// Our walk first, in this goroutine where a fault is recovered:
-			// bbolt's check runs in a goroutine of its own.
-			total := 0
-			_ = tx.ForEach(func(name []byte, bk *bolt.Bucket) error {
-				if s, ok := specs[string(name)]; ok && len(s.nestedKey) > 0 {
-					_ = bk.ForEach(func(_, _ []byte) error { total++; return nil })
-				} else {
-					total++
-				}
-				return nil
-			})
-			if opt.Progress != nil {
-				c.unit = func() { c.units++; opt.Progress("records", c.units, total) }
-			}
-			c.walk(tx)
-			c.crossCheck()
-			if c.stopping {
-				return nil
-			}
-			if opt.Progress != nil {
-				opt.Progress("consistency", 0, 0)
-			}
-			for err := range tx.Check() {
-				// bbolt's check recovers its own panics on a damaged page
-				// and reports them as "panic: ...": say what it is.
-				c.problem("bbolt check: %s", strings.Replace(err.Error(), "panic: ", "stopped at a damaged page: ", 1))
-			}
+			c.checkFile(tx, rep, fi.Size(), opt.Progress)
 			return nil
 		})
 	})
@@ -550,4 +517,52 @@ func VerifyFile(path string, opt VerifyOptions) (*VerifyReport, error) {
 	}
 	rep.Problems = append(rep.Problems, c.problems...)
 	return rep, nil
+}
+
+// checkFile is VerifyFile's read transaction: it compares the file's size
+// with what its meta page says, walks every record, cross-checks them and
+// runs bbolt's own check, recording problems in c. It sets rep.StoreID
+// first, so a fault later in the walk leaves it set.
+func (c *checker) checkFile(tx *bolt.Tx, rep *VerifyReport, size int64, progress func(phase string, done, total int)) {
+	if m := tx.Bucket(bMeta); m != nil {
+		rep.StoreID = string(m.Get(keyStoreID))
+	}
+	if size < tx.Size() {
+		c.problem("truncated: the file has %d bytes, its meta page says %d", size, tx.Size())
+		return // reading on would run past the end of the file
+	}
+	// Our walk first, in this goroutine where a fault is recovered:
+	// bbolt's check runs in a goroutine of its own.
+	total := countUnits(tx)
+	if progress != nil {
+		c.unit = func() { c.units++; progress("records", c.units, total) }
+	}
+	c.walk(tx)
+	c.crossCheck()
+	if c.stopping {
+		return
+	}
+	if progress != nil {
+		progress("consistency", 0, 0)
+	}
+	for err := range tx.Check() {
+		// bbolt's check recovers its own panics on a damaged page
+		// and reports them as "panic: ...": say what it is.
+		c.problem("bbolt check: %s", strings.Replace(err.Error(), "panic: ", "stopped at a damaged page: ", 1))
+	}
+}
+
+// countUnits is the number of units of work the walk reports progress in:
+// one per record of a flat bucket, one per nested bucket of the others.
+func countUnits(tx *bolt.Tx) int {
+	total := 0
+	_ = tx.ForEach(func(name []byte, bk *bolt.Bucket) error {
+		if s, ok := specs[string(name)]; ok && len(s.nestedKey) > 0 {
+			_ = bk.ForEach(func(_, _ []byte) error { total++; return nil })
+		} else {
+			total++
+		}
+		return nil
+	})
+	return total
 }
