@@ -398,44 +398,51 @@ func (c *Condition) validate(path string) error {
 	} else if c.Baseline != 0 {
 		return fieldErr(path+".baseline", "%v, used only by desaturation (want it absent)", c.Baseline)
 	}
-	if e := c.Escalate; e != nil {
-		ep := path + ".escalate"
-		if e.Priority <= c.Priority || e.Priority > PriorityHigh {
-			return fieldErr(ep+".priority", "%s, want above the condition's priority %s", e.Priority, c.Priority)
+	if c.Escalate != nil {
+		return c.validateEscalate(path+".escalate", ki)
+	}
+	return nil
+}
+
+// validateEscalate checks the condition's escalate rule (at path ep) against
+// the condition's kind ki and priority.
+func (c *Condition) validateEscalate(ep string, ki kindInfo) error {
+	e := c.Escalate
+	if e.Priority <= c.Priority || e.Priority > PriorityHigh {
+		return fieldErr(ep+".priority", "%s, want above the condition's priority %s", e.Priority, c.Priority)
+	}
+	if e.After < 0 || e.After > 24*time.Hour {
+		return fieldErr(ep+".after", "%v, want in (0, 24h] (or absent)", e.After)
+	}
+	switch {
+	case ki.field == fieldNone || c.Kind == SignalPoor || c.Kind == PerfusionLow:
+		if e.Below != 0 {
+			return fieldErr(ep+".below", "%s, %s escalates only by duration (want it absent)", fmtF(e.Below), c.Kind)
 		}
-		if e.After < 0 || e.After > 24*time.Hour {
-			return fieldErr(ep+".after", "%v, want in (0, 24h] (or absent)", e.After)
+		if e.Above != 0 {
+			return fieldErr(ep+".above", "%s, %s escalates only by duration (want it absent)", fmtF(e.Above), c.Kind)
 		}
-		switch {
-		case ki.field == fieldNone || c.Kind == SignalPoor || c.Kind == PerfusionLow:
-			if e.Below != 0 {
-				return fieldErr(ep+".below", "%s, %s escalates only by duration (want it absent)", fmtF(e.Below), c.Kind)
-			}
-			if e.Above != 0 {
-				return fieldErr(ep+".above", "%s, %s escalates only by duration (want it absent)", fmtF(e.Above), c.Kind)
-			}
-		case ki.high:
-			if e.Below != 0 {
-				return fieldErr(ep+".below", "%s, %s escalates above a value (use above:)", fmtF(e.Below), c.Kind)
-			}
-			if e.Above != 0 && !(e.Above > c.Limit && e.Above <= ki.limitHi) {
-				return fieldErr(ep+".above", "%s, want in (%s, %s]", fmtF(e.Above), fmtF(c.Limit), fmtF(ki.limitHi))
-			}
-		default:
-			if e.Above != 0 {
-				return fieldErr(ep+".above", "%s, %s escalates below a value (use below:)", fmtF(e.Above), c.Kind)
-			}
-			lim := c.Limit
-			if c.Kind == Desaturation {
-				lim = 100 // below is absolute SpO2 (%)
-			}
-			if e.Below != 0 && !(e.Below > 0 && e.Below < lim) {
-				return fieldErr(ep+".below", "%s, want in (0, %s)", fmtF(e.Below), fmtF(lim))
-			}
+	case ki.high:
+		if e.Below != 0 {
+			return fieldErr(ep+".below", "%s, %s escalates above a value (use above:)", fmtF(e.Below), c.Kind)
 		}
-		if e.Below == 0 && e.Above == 0 && e.After == 0 {
-			return fieldErr(ep, "no rule, want below/above or after")
+		if e.Above != 0 && !(e.Above > c.Limit && e.Above <= ki.limitHi) {
+			return fieldErr(ep+".above", "%s, want in (%s, %s]", fmtF(e.Above), fmtF(c.Limit), fmtF(ki.limitHi))
 		}
+	default:
+		if e.Above != 0 {
+			return fieldErr(ep+".above", "%s, %s escalates below a value (use below:)", fmtF(e.Above), c.Kind)
+		}
+		lim := c.Limit
+		if c.Kind == Desaturation {
+			lim = 100 // below is absolute SpO2 (%)
+		}
+		if e.Below != 0 && !(e.Below > 0 && e.Below < lim) {
+			return fieldErr(ep+".below", "%s, want in (0, %s)", fmtF(e.Below), fmtF(lim))
+		}
+	}
+	if e.Below == 0 && e.Above == 0 && e.After == 0 {
+		return fieldErr(ep, "no rule, want below/above or after")
 	}
 	return nil
 }
