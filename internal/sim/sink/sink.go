@@ -158,32 +158,34 @@ var idRE = regexp.MustCompile(`^[A-Za-z0-9._-]{1,64}$`)
 
 var sessionSeq atomic.Uint64
 
-// Connect serves one device stream.
-func (s *Server) Connect(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectRequest, pulsefleetv1.ConnectResponse]) error {
+// introduce reads up to the stream's introduction, rejecting any message
+// before it, and checks it: device id, converter bits, mode, and the token
+// when Options.Authorize is set.
+func (s *Server) introduce(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectRequest, pulsefleetv1.ConnectResponse]) (*pulsefleetv1.Introduction, error) {
 	var intro *pulsefleetv1.Introduction
 	for intro == nil {
 		m, err := stream.Recv()
 		if err != nil {
-			return recvErr(err)
+			return nil, recvErr(err)
 		}
 		s.messages.Add(1)
 		if intro = m.GetIntroduction(); intro == nil {
 			s.rejected.Add(1)
 			if err := stream.Send(reject(seqOf(m), pulsefleetv1.RejectReason_REJECT_REASON_NOT_INTRODUCED, "introduction", "the first message must be an introduction")); err != nil {
-				return err
+				return nil, err
 			}
 		}
 	}
 	if !idRE.MatchString(intro.GetDeviceId()) {
-		return status.Errorf(codes.InvalidArgument, "introduction.device_id: %q, want 1..64 characters of [A-Za-z0-9._-]", intro.GetDeviceId())
+		return nil, status.Errorf(codes.InvalidArgument, "introduction.device_id: %q, want 1..64 characters of [A-Za-z0-9._-]", intro.GetDeviceId())
 	}
 	bits := intro.GetAdcBits()
 	if bits < 8 || bits > 24 {
-		return status.Errorf(codes.InvalidArgument, "introduction.adc_bits: %d, want 8..24", bits)
+		return nil, status.Errorf(codes.InvalidArgument, "introduction.adc_bits: %d, want 8..24", bits)
 	}
 	mode := intro.GetMode()
 	if mode != pulsefleetv1.Mode_MODE_RAW && mode != pulsefleetv1.Mode_MODE_SUMMARY {
-		return status.Errorf(codes.InvalidArgument, "introduction.mode: %v, want MODE_RAW or MODE_SUMMARY", mode)
+		return nil, status.Errorf(codes.InvalidArgument, "introduction.mode: %v, want MODE_RAW or MODE_SUMMARY", mode)
 	}
 	if s.opts.Authorize != nil {
 		tok := ""
@@ -193,9 +195,52 @@ func (s *Server) Connect(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectReq
 			}
 		}
 		if err := s.opts.Authorize(intro.GetDeviceId(), tok); err != nil {
-			return status.Errorf(codes.Unauthenticated, "device %s: %v", intro.GetDeviceId(), err)
+			return nil, status.Errorf(codes.Unauthenticated, "device %s: %v", intro.GetDeviceId(), err)
 		}
 	}
+	return intro, nil
+}
+
+// classify returns a data message's sequence number and sample count, and
+// the rejection it earns before any sequence check (wrong mode, an invalid
+// field, a second introduction, an empty message, sequence 0); isStatus says
+// m is a status report, which is only counted.
+func classify(m *pulsefleetv1.ConnectRequest, mode pulsefleetv1.Mode, top uint32) (seq uint64, n int, rej *pulsefleetv1.ConnectResponse, isStatus bool) {
+	switch k := m.Kind.(type) {
+	case *pulsefleetv1.ConnectRequest_RawChunk:
+		seq, n = k.RawChunk.GetSequence(), len(k.RawChunk.GetRed())
+		if mode != pulsefleetv1.Mode_MODE_RAW {
+			rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_WRONG_MODE, "raw_chunk", "device introduced summary mode")
+		} else if field, detail := checkRaw(k.RawChunk, top); field != "" {
+			rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_INVALID_FIELD, field, detail)
+		}
+	case *pulsefleetv1.ConnectRequest_Summary:
+		seq, n = k.Summary.GetSequence(), 1
+		if mode != pulsefleetv1.Mode_MODE_SUMMARY {
+			rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_WRONG_MODE, "summary", "device introduced raw mode")
+		} else if field, detail := checkSummary(k.Summary); field != "" {
+			rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_INVALID_FIELD, field, detail)
+		}
+	case *pulsefleetv1.ConnectRequest_Status:
+		return 0, 0, nil, true
+	case *pulsefleetv1.ConnectRequest_Introduction:
+		rej = reject(0, pulsefleetv1.RejectReason_REJECT_REASON_NOT_INTRODUCED, "introduction", "second introduction on one stream")
+	default:
+		rej = reject(0, pulsefleetv1.RejectReason_REJECT_REASON_UNSPECIFIED, "kind", "empty message")
+	}
+	if rej == nil && seq == 0 {
+		rej = reject(0, pulsefleetv1.RejectReason_REJECT_REASON_INVALID_FIELD, "sequence", "0, want 1 or more")
+	}
+	return seq, n, rej, false
+}
+
+// Connect serves one device stream.
+func (s *Server) Connect(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectRequest, pulsefleetv1.ConnectResponse]) error {
+	intro, err := s.introduce(stream)
+	if err != nil {
+		return err
+	}
+	bits, mode := intro.GetAdcBits(), intro.GetMode()
 	if s.opts.RedirectTo != "" {
 		return stream.Send(&pulsefleetv1.ConnectResponse{Kind: &pulsefleetv1.ConnectResponse_Redirect{Redirect: &pulsefleetv1.Redirect{
 			Address: s.opts.RedirectTo, Detail: "this sink redirects every device"}}})
@@ -225,34 +270,10 @@ func (s *Server) Connect(stream grpc.BidiStreamingServer[pulsefleetv1.ConnectReq
 			return recvErr(err)
 		}
 		s.messages.Add(1)
-		var seq uint64
-		var n int
-		var rej *pulsefleetv1.ConnectResponse
-		switch k := m.Kind.(type) {
-		case *pulsefleetv1.ConnectRequest_RawChunk:
-			seq, n = k.RawChunk.GetSequence(), len(k.RawChunk.GetRed())
-			if mode != pulsefleetv1.Mode_MODE_RAW {
-				rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_WRONG_MODE, "raw_chunk", "device introduced summary mode")
-			} else if field, detail := checkRaw(k.RawChunk, top); field != "" {
-				rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_INVALID_FIELD, field, detail)
-			}
-		case *pulsefleetv1.ConnectRequest_Summary:
-			seq, n = k.Summary.GetSequence(), 1
-			if mode != pulsefleetv1.Mode_MODE_SUMMARY {
-				rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_WRONG_MODE, "summary", "device introduced raw mode")
-			} else if field, detail := checkSummary(k.Summary); field != "" {
-				rej = reject(seq, pulsefleetv1.RejectReason_REJECT_REASON_INVALID_FIELD, field, detail)
-			}
-		case *pulsefleetv1.ConnectRequest_Status:
+		seq, n, rej, isStatus := classify(m, mode, top)
+		if isStatus {
 			s.statuses.Add(1)
 			continue
-		case *pulsefleetv1.ConnectRequest_Introduction:
-			rej = reject(0, pulsefleetv1.RejectReason_REJECT_REASON_NOT_INTRODUCED, "introduction", "second introduction on one stream")
-		default:
-			rej = reject(0, pulsefleetv1.RejectReason_REJECT_REASON_UNSPECIFIED, "kind", "empty message")
-		}
-		if rej == nil && seq == 0 {
-			rej = reject(0, pulsefleetv1.RejectReason_REJECT_REASON_INVALID_FIELD, "sequence", "0, want 1 or more")
 		}
 		d.mu.Lock()
 		if rej == nil && seq <= d.last {
