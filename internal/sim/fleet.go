@@ -60,55 +60,7 @@ func Run(ctx context.Context, opts Options) (*Report, error) {
 	if err := opts.check(); err != nil {
 		return nil, err
 	}
-	f := &fleet{opts: opts, conns: map[string][]*grpc.ClientConn{}}
-	f.sc = opts.Scenario
-	if f.sc == nil {
-		prefix := opts.IDPrefix
-		if prefix == "" {
-			prefix = "sim"
-		}
-		f.sc = scenario.Generic(opts.Devices, prefix, opts.Seed)
-	}
-	f.speed = firstNonZero(opts.Speed, f.sc.Speed, 1)
-	f.rate = firstNonZero(opts.RateHz, f.sc.RateHz, 100)
-	f.chunk = opts.Chunk
-	if f.chunk == 0 {
-		f.chunk = 25
-	}
-	f.maxBuf = opts.MaxBuffered
-	if f.maxBuf == 0 {
-		f.maxBuf = 6000
-	}
-	dur := opts.Duration
-	if dur == 0 && f.sc.Duration > 0 {
-		dur = time.Duration(float64(f.sc.Duration) / f.speed)
-	}
-	f.scEnd = f.sc.Duration.Seconds()
-	horizon := f.sc.Duration
-	if horizon == 0 || (dur > 0 && time.Duration(float64(dur)*f.speed) < horizon) {
-		horizon = time.Duration(float64(dur) * f.speed)
-	}
-	if horizon == 0 {
-		horizon = 24 * time.Hour // open-ended: background events for a day of scenario time
-	}
-
-	f.t0 = time.Now()
-	f.end = dur
-	start := opts.Start
-	if start.IsZero() {
-		// Time compression replays the past: device clocks start early
-		// enough to reach the wall clock when the run ends (the gateway
-		// refuses device times ahead of its clock; internal/ingest/doc.go).
-		span := horizon
-		if dur > 0 {
-			span = time.Duration(float64(dur) * f.speed)
-		}
-		start = f.t0
-		if f.speed > 1 {
-			start = f.t0.Add(-(span - time.Duration(float64(span)/f.speed)))
-		}
-	}
-	f.startMs = start.UnixMilli()
+	f, horizon := newFleet(opts)
 
 	rng := rand.New(rand.NewPCG(opts.Seed, 0xf1ee7))
 	for i := range f.sc.Devices {
@@ -141,6 +93,62 @@ func Run(ctx context.Context, opts Options) (*Report, error) {
 	sessions.Wait()
 	stopProgress()
 	return f.report(sendEnd.Sub(f.t0)), nil
+}
+
+// newFleet sets a fleet up from checked opts: its scenario, speed, rate,
+// chunking, run length and the device clock at the start; horizon is the
+// span of scenario time the devices are generated for.
+func newFleet(opts Options) (f *fleet, horizon time.Duration) {
+	f = &fleet{opts: opts, conns: map[string][]*grpc.ClientConn{}}
+	f.sc = opts.Scenario
+	if f.sc == nil {
+		prefix := opts.IDPrefix
+		if prefix == "" {
+			prefix = "sim"
+		}
+		f.sc = scenario.Generic(opts.Devices, prefix, opts.Seed)
+	}
+	f.speed = firstNonZero(opts.Speed, f.sc.Speed, 1)
+	f.rate = firstNonZero(opts.RateHz, f.sc.RateHz, 100)
+	f.chunk = opts.Chunk
+	if f.chunk == 0 {
+		f.chunk = 25
+	}
+	f.maxBuf = opts.MaxBuffered
+	if f.maxBuf == 0 {
+		f.maxBuf = 6000
+	}
+	dur := opts.Duration
+	if dur == 0 && f.sc.Duration > 0 {
+		dur = time.Duration(float64(f.sc.Duration) / f.speed)
+	}
+	f.scEnd = f.sc.Duration.Seconds()
+	horizon = f.sc.Duration
+	if horizon == 0 || (dur > 0 && time.Duration(float64(dur)*f.speed) < horizon) {
+		horizon = time.Duration(float64(dur) * f.speed)
+	}
+	if horizon == 0 {
+		horizon = 24 * time.Hour // open-ended: background events for a day of scenario time
+	}
+
+	f.t0 = time.Now()
+	f.end = dur
+	start := opts.Start
+	if start.IsZero() {
+		// Time compression replays the past: device clocks start early
+		// enough to reach the wall clock when the run ends (the gateway
+		// refuses device times ahead of its clock; internal/ingest/doc.go).
+		span := horizon
+		if dur > 0 {
+			span = time.Duration(float64(dur) * f.speed)
+		}
+		start = f.t0
+		if f.speed > 1 {
+			start = f.t0.Add(-(span - time.Duration(float64(span)/f.speed)))
+		}
+	}
+	f.startMs = start.UnixMilli()
+	return f, horizon
 }
 
 func firstNonZero(v ...float64) float64 {
