@@ -260,6 +260,50 @@ func cpuRatio(a, b PhaseResult) float64 {
 	return math.Round(b.CPUNsPerSample/a.CPUNsPerSample*1000) / 1000
 }
 
+// startCPUProfile starts the CPU profile of the phase when opts ask for one
+// (else it returns nil); the caller stops it and closes the file.
+func startCPUProfile(opts Options, phase string) (*os.File, error) {
+	if opts.CPUProfile == "" {
+		return nil, nil
+	}
+	prof, err := os.Create(opts.CPUProfile + "." + phase + ".pprof")
+	if err != nil {
+		return nil, fmt.Errorf("cpu profile: %w", err)
+	}
+	if err := pprof.StartCPUProfile(prof); err != nil {
+		prof.Close()
+		return nil, fmt.Errorf("cpu profile: %w", err)
+	}
+	return prof, nil
+}
+
+// scheduleHeapProfile writes the phase's heap profile at 9/10 of its
+// duration when opts ask for one; cancel stops it if it has not run yet.
+func scheduleHeapProfile(opts Options, phase string) (cancel func()) {
+	if opts.MemProfile == "" {
+		return func() {}
+	}
+	heapDone := make(chan struct{})
+	t := time.NewTimer(opts.Duration * 9 / 10)
+	path := opts.MemProfile + "." + phase + ".pprof"
+	go func() {
+		select {
+		case <-heapDone:
+		case <-t.C:
+			if fh, err := os.Create(path); err == nil {
+				pprof.Lookup("heap").WriteTo(fh, 0)
+				fh.Close()
+			}
+		}
+	}()
+	return func() {
+		t.Stop()
+		close(heapDone)
+	}
+}
+
+// runPhase starts the phase's target, drives the load client against it
+// for opts.Duration, and measures throughput, CPU, memory and loss.
 func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error) {
 	runtime.GC()
 	debug.FreeOSMemory()
@@ -280,34 +324,12 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 		fmt.Fprintf(opts.Progress, "bench: phase %s: %d devices x %g Hz in %d-sample chunks for %v against %s\n",
 			ph.Name, opts.Devices, opts.RateHz, opts.Chunk, opts.Duration, tgt.Addr())
 	}
-	var prof *os.File
-	if opts.CPUProfile != "" {
-		prof, err = os.Create(opts.CPUProfile + "." + ph.Name + ".pprof")
-		if err != nil {
-			return nil, fmt.Errorf("cpu profile: %w", err)
-		}
-		if err := pprof.StartCPUProfile(prof); err != nil {
-			prof.Close()
-			return nil, fmt.Errorf("cpu profile: %w", err)
-		}
+	prof, err := startCPUProfile(opts, ph.Name)
+	if err != nil {
+		return nil, err
 	}
-	if opts.MemProfile != "" {
-		heapDone := make(chan struct{})
-		defer close(heapDone)
-		t := time.NewTimer(opts.Duration * 9 / 10)
-		defer t.Stop()
-		path := opts.MemProfile + "." + ph.Name + ".pprof"
-		go func() {
-			select {
-			case <-heapDone:
-			case <-t.C:
-				if fh, err := os.Create(path); err == nil {
-					pprof.Lookup("heap").WriteTo(fh, 0)
-					fh.Close()
-				}
-			}
-		}()
-	}
+	stopHeap := scheduleHeapProfile(opts, ph.Name)
+	defer stopHeap()
 	cpu0, wall0 := cpuTime(), time.Now()
 	rep, usage, err := opts.Client(ctx, sim.Options{
 		Gateway: tgt.Addr(), Devices: opts.Devices, IDPrefix: "bench", Mode: sim.ModeRaw,
