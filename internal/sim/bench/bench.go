@@ -105,8 +105,8 @@ type PhaseResult struct {
 	// CPUNsPerSample is this process's CPU time during the phase per
 	// acknowledged sample (unrounded; CPURatio compares it).
 	CPUNsPerSample float64
-	Client       ClientUsage
-	ClientCores  float64 // a separate client's CPU time / wall time
+	Client         ClientUsage
+	ClientCores    float64 // a separate client's CPU time / wall time
 	// RSSAnonEnd and RSSFileEnd split this process's resident set when the
 	// load ended (before the target stopped): anonymous memory (heap,
 	// stacks) and file-backed pages (a memory-mapped store file).
@@ -148,11 +148,11 @@ type Result struct {
 	// of the offered samples/s: the machine (load client, other work), not
 	// the system under test, was the limit, and the run's latency and CPU
 	// figures say little about the gateway.
-	SinkSaturated bool `json:"sink_saturated"`
-	Rejected            uint64  `json:"rejected"`
-	Reconnects          uint64  `json:"reconnects"`
-	UnackedAtEnd        uint64  `json:"unacked_at_end"`
-	GatewayRSSAnonBytes int64   `json:"gateway_rss_anon_bytes"` // at the end of the load: heap, stacks
+	SinkSaturated       bool   `json:"sink_saturated"`
+	Rejected            uint64 `json:"rejected"`
+	Reconnects          uint64 `json:"reconnects"`
+	UnackedAtEnd        uint64 `json:"unacked_at_end"`
+	GatewayRSSAnonBytes int64  `json:"gateway_rss_anon_bytes"` // at the end of the load: heap, stacks
 	// AnonPerDeviceBytes is the gateway's anonymous memory per connected
 	// stream (its own memory, without the mapped store file's page cache).
 	AnonPerDeviceBytes  int64 `json:"anon_per_device_bytes"`
