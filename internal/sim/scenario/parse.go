@@ -373,80 +373,7 @@ func (p *parser) events(n *yaml.Node, sc *Scenario, index map[string]int) {
 	}
 	for i, en := range n.Content {
 		path := fmt.Sprintf("events[%d]", i)
-		var targets []string
-		var ev Event
-		ramp := func(k Kind, lo, hi float64) func(*yaml.Node, string) {
-			return func(v *yaml.Node, kp string) {
-				if ev.Kind != 0 {
-					p.failf(v, kp, "an event does one thing; this one already has %s", ev.Kind)
-					return
-				}
-				ev.Kind = k
-				ev.Over, ev.Hold = 30*time.Second, 60*time.Second
-				got := p.fields(v, kp, map[string]func(*yaml.Node, string){
-					"to":      func(v *yaml.Node, kp string) { ev.To = p.num(v, kp, lo, hi) },
-					"over":    func(v *yaml.Node, kp string) { ev.Over = p.dur(v, kp, 0, time.Hour) },
-					"hold":    func(v *yaml.Node, kp string) { ev.Hold = p.dur(v, kp, 0, 24*time.Hour) },
-					"recover": func(v *yaml.Node, kp string) { ev.Recover = p.dur(v, kp, 0, time.Hour) },
-				})
-				if p.err == nil && !got["to"] {
-					p.failf(v, yamlwalk.Join(kp, "to"), "required key missing")
-				}
-			}
-		}
-		spell := func(k Kind) func(*yaml.Node, string) {
-			return func(v *yaml.Node, kp string) {
-				if ev.Kind != 0 {
-					p.failf(v, kp, "an event does one thing; this one already has %s", ev.Kind)
-					return
-				}
-				ev.Kind = k
-				h := map[string]func(*yaml.Node, string){
-					"for": func(v *yaml.Node, kp string) { ev.Hold = p.dur(v, kp, time.Second, MaxDuration) },
-				}
-				if k == Motion {
-					ev.Intensity = 0.6
-					h["intensity"] = func(v *yaml.Node, kp string) { ev.Intensity = p.num(v, kp, 0.01, 1) }
-				}
-				got := p.fields(v, kp, h)
-				if p.err == nil && !got["for"] {
-					p.failf(v, yamlwalk.Join(kp, "for"), "required key missing")
-				}
-			}
-		}
-		seen := p.fields(en, path, map[string]func(*yaml.Node, string){
-			"at":     func(v *yaml.Node, kp string) { ev.At = p.dur(v, kp, 0, MaxDuration) },
-			"device": func(v *yaml.Node, kp string) { targets = append(targets, p.str(v, kp, 64)) },
-			"devices": func(v *yaml.Node, kp string) {
-				if v.Kind != yaml.SequenceNode {
-					p.failf(v, kp, "want a list of device ids")
-					return
-				}
-				for j, x := range v.Content {
-					targets = append(targets, p.str(x, fmt.Sprintf("%s[%d]", kp, j), 64))
-				}
-			},
-			"desaturate": ramp(Desaturate, 50, 100),
-			"pulse":      ramp(Pulse, 20, 250),
-			"perfusion":  ramp(Perfusion, 0.02, 20),
-			"sensor_off": spell(SensorOff),
-			"motion":     spell(Motion),
-			"offline":    spell(Offline),
-			"charge":     spell(Charge),
-		})
-		if p.err != nil {
-			return
-		}
-		switch {
-		case !seen["at"]:
-			p.failf(en, yamlwalk.Join(path, "at"), "required key missing")
-		case len(targets) == 0:
-			p.failf(en, yamlwalk.Join(path, "device"), "required key missing (device or devices)")
-		case ev.Kind == 0:
-			p.failf(en, path, "no event kind (want one of charge, desaturate, motion, offline, perfusion, pulse, sensor_off)")
-		case sc.Duration > 0 && ev.At > sc.Duration:
-			p.failf(en, yamlwalk.Join(path, "at"), "%v is after the scenario's duration %v", ev.At, sc.Duration)
-		}
+		ev, targets := p.event(en, path, sc)
 		if p.err != nil {
 			return
 		}
@@ -457,6 +384,90 @@ func (p *parser) events(n *yaml.Node, sc *Scenario, index map[string]int) {
 				return
 			}
 			sc.Devices[j].Events = append(sc.Devices[j].Events, ev)
+		}
+	}
+}
+
+// event parses the entry en of events (at path): when it happens, the
+// devices it targets, and the one thing it does.
+func (p *parser) event(en *yaml.Node, path string, sc *Scenario) (ev Event, targets []string) {
+	seen := p.fields(en, path, map[string]func(*yaml.Node, string){
+		"at":     func(v *yaml.Node, kp string) { ev.At = p.dur(v, kp, 0, MaxDuration) },
+		"device": func(v *yaml.Node, kp string) { targets = append(targets, p.str(v, kp, 64)) },
+		"devices": func(v *yaml.Node, kp string) {
+			if v.Kind != yaml.SequenceNode {
+				p.failf(v, kp, "want a list of device ids")
+				return
+			}
+			for j, x := range v.Content {
+				targets = append(targets, p.str(x, fmt.Sprintf("%s[%d]", kp, j), 64))
+			}
+		},
+		"desaturate": p.ramp(&ev, Desaturate, 50, 100),
+		"pulse":      p.ramp(&ev, Pulse, 20, 250),
+		"perfusion":  p.ramp(&ev, Perfusion, 0.02, 20),
+		"sensor_off": p.spell(&ev, SensorOff),
+		"motion":     p.spell(&ev, Motion),
+		"offline":    p.spell(&ev, Offline),
+		"charge":     p.spell(&ev, Charge),
+	})
+	if p.err != nil {
+		return ev, targets
+	}
+	switch {
+	case !seen["at"]:
+		p.failf(en, yamlwalk.Join(path, "at"), "required key missing")
+	case len(targets) == 0:
+		p.failf(en, yamlwalk.Join(path, "device"), "required key missing (device or devices)")
+	case ev.Kind == 0:
+		p.failf(en, path, "no event kind (want one of charge, desaturate, motion, offline, perfusion, pulse, sensor_off)")
+	case sc.Duration > 0 && ev.At > sc.Duration:
+		p.failf(en, yamlwalk.Join(path, "at"), "%v is after the scenario's duration %v", ev.At, sc.Duration)
+	}
+	return ev, targets
+}
+
+// ramp parses an event that moves a vital sign of kind k to a target in
+// [lo, hi] over a time, holds it, and recovers; it fills ev.
+func (p *parser) ramp(ev *Event, k Kind, lo, hi float64) func(*yaml.Node, string) {
+	return func(v *yaml.Node, kp string) {
+		if ev.Kind != 0 {
+			p.failf(v, kp, "an event does one thing; this one already has %s", ev.Kind)
+			return
+		}
+		ev.Kind = k
+		ev.Over, ev.Hold = 30*time.Second, 60*time.Second
+		got := p.fields(v, kp, map[string]func(*yaml.Node, string){
+			"to":      func(v *yaml.Node, kp string) { ev.To = p.num(v, kp, lo, hi) },
+			"over":    func(v *yaml.Node, kp string) { ev.Over = p.dur(v, kp, 0, time.Hour) },
+			"hold":    func(v *yaml.Node, kp string) { ev.Hold = p.dur(v, kp, 0, 24*time.Hour) },
+			"recover": func(v *yaml.Node, kp string) { ev.Recover = p.dur(v, kp, 0, time.Hour) },
+		})
+		if p.err == nil && !got["to"] {
+			p.failf(v, yamlwalk.Join(kp, "to"), "required key missing")
+		}
+	}
+}
+
+// spell parses an event of kind k that lasts a while (for:), with an
+// intensity for motion; it fills ev.
+func (p *parser) spell(ev *Event, k Kind) func(*yaml.Node, string) {
+	return func(v *yaml.Node, kp string) {
+		if ev.Kind != 0 {
+			p.failf(v, kp, "an event does one thing; this one already has %s", ev.Kind)
+			return
+		}
+		ev.Kind = k
+		h := map[string]func(*yaml.Node, string){
+			"for": func(v *yaml.Node, kp string) { ev.Hold = p.dur(v, kp, time.Second, MaxDuration) },
+		}
+		if k == Motion {
+			ev.Intensity = 0.6
+			h["intensity"] = func(v *yaml.Node, kp string) { ev.Intensity = p.num(v, kp, 0.01, 1) }
+		}
+		got := p.fields(v, kp, h)
+		if p.err == nil && !got["for"] {
+			p.failf(v, yamlwalk.Join(kp, "for"), "required key missing")
 		}
 	}
 }
