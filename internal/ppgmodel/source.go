@@ -194,7 +194,7 @@ func (s *Source) Truth() Truth { return s.truth }
 // when ambient is not nil) with the physiology v. ir (and ambient, if given)
 // must be at least as long as red. It does not allocate.
 //
-// Long because it is the simulator's per-sample loop (beat phase, respiration phasor, motion filter and quantisation in one pass, with their per-call constants hoisted above it), measured allocation-free by BenchmarkFill; helpers per sample would carry that state through calls in the hot loop.
+// Long because it is one pass of the per-sample loop (beat phase, respiration phasor, motion filter, quantisation) that BenchmarkFill measures allocation-free; per-sample helpers would pass that state through calls.
 func (s *Source) Fill(red, ir, ambient []float64, v Vitals) {
 	n := len(red)
 	ir = ir[:n]
