@@ -207,7 +207,6 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	res := &Result{Grid: g, Points: pts, Rows: make([]Row, len(pts)), Devices: len(trends),
 		Scored: g.Reference.Conditions, MaxGapS: maxGap, FirstS: math.Inf(1), LastS: math.Inf(-1)}
 
-	nc := len(g.Base.Conditions)
 	vars, ptVar := conditionVariants(g, pts)
 	res.ptVar = ptVar
 	res.Variants = len(vars)
@@ -219,14 +218,7 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 		}
 		participantFacts(devs, opt.TrendParticipants, res)
 	}
-	scored := make([]bool, nc)
-	for _, name := range g.Reference.Conditions {
-		for c := range g.Base.Conditions {
-			if g.Base.Conditions[c].ConditionName() == name {
-				scored[c] = true
-			}
-		}
-	}
+	scored := scoredConditions(g)
 
 	// Every set's sample times are those of sets[ref] (the estimator's
 	// seconds do not depend on the averaging time), so devs serves them all.
@@ -242,72 +234,7 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	// device, they give every variant sharing it (delays, escalations,
 	// latching) without re-running the engine. Desaturation, and trends
 	// whose times do not strictly increase, go through the engine.
-	res.spans = make([][][]span, len(vars))
-	for v := range res.spans {
-		res.spans[v] = make([][]span, flat)
-	}
-	rules := make([]alarms.ThresholdRule, len(vars))
-	var groups [][]int // variants by Threshold, in order of first appearance
-	var engineVars []int
-	groupOf := map[alarms.Threshold]int{}
-	for v := range vars {
-		r, ok := alarms.NewThresholdRule(vars[v].profile.Conditions[0])
-		if !ok || opt.engineOnly {
-			engineVars = append(engineVars, v)
-			continue
-		}
-		rules[v] = r
-		k, seen := groupOf[r.Threshold]
-		if !seen {
-			k = len(groups)
-			groupOf[r.Threshold] = k
-			groups = append(groups, nil)
-		}
-		groups[k] = append(groups[k], v)
-	}
-	type job struct {
-		f     int
-		vars  []int // run through the engine
-		group []int // derived from the presence intervals of their Threshold
-	}
-	var jobs []job
-	var allVars []int
-	for v := range vars {
-		allVars = append(allVars, v)
-	}
-	for f := range flat {
-		samples := sets[f/nd][f%nd].Samples
-		ev := engineVars
-		if !increasing(samples) {
-			ev = allVars
-		} else {
-			for _, g := range groups {
-				jobs = append(jobs, job{f: f, group: g})
-			}
-		}
-		for lo := 0; lo < len(ev); lo += variantBlock {
-			jobs = append(jobs, job{f: f, vars: ev[lo:min(len(ev), lo+variantBlock)]})
-		}
-	}
-	runners := make([]runner, workers)
-	for w := range runners {
-		runners[w].slots = make([]*slot, len(vars))
-	}
-	err = parallel(ctx, workers, len(jobs), func(w, j int) error {
-		jb := jobs[j]
-		samples := sets[jb.f/nd][jb.f%nd].Samples
-		if jb.group != nil {
-			runners[w].derive(rules, vars, jb.group, samples, res.spans, jb.f)
-			done.Add(int64(len(jb.group)))
-			return nil
-		}
-		if err := runners[w].run(vars, jb.vars, samples, res.spans, jb.f); err != nil {
-			return err
-		}
-		done.Add(int64(len(jb.vars)))
-		return nil
-	})
-	if err != nil {
+	if err := runEpisodes(ctx, workers, sets, vars, opt.engineOnly, res, &done); err != nil {
 		return nil, err
 	}
 
@@ -323,6 +250,110 @@ func run(ctx context.Context, g *Grid, sets [][]alarms.Trend, ref int, opt Optio
 	}
 	markPareto(res.Rows)
 	return res, nil
+}
+
+// runEpisodes is phase 1 of run: it fills res.spans with every variant's
+// episodes over every (set, device) pair, counting units in done.
+func runEpisodes(ctx context.Context, workers int, sets [][]alarms.Trend, vars []variant, engineOnly bool, res *Result, done *atomic.Int64) error {
+	nd := len(sets[0])
+	flat := nd * len(sets)
+	res.spans = make([][][]span, len(vars))
+	for v := range res.spans {
+		res.spans[v] = make([][]span, flat)
+	}
+	rules, groups, engineVars := groupVariants(vars, engineOnly)
+	jobs := planJobs(sets, nd, len(vars), groups, engineVars)
+	runners := make([]runner, workers)
+	for w := range runners {
+		runners[w].slots = make([]*slot, len(vars))
+	}
+	return parallel(ctx, workers, len(jobs), func(w, j int) error {
+		jb := jobs[j]
+		samples := sets[jb.f/nd][jb.f%nd].Samples
+		if jb.group != nil {
+			runners[w].derive(rules, vars, jb.group, samples, res.spans, jb.f)
+			done.Add(int64(len(jb.group)))
+			return nil
+		}
+		if err := runners[w].run(vars, jb.vars, samples, res.spans, jb.f); err != nil {
+			return err
+		}
+		done.Add(int64(len(jb.vars)))
+		return nil
+	})
+}
+
+// scoredConditions marks the conditions of g.Base the reference scores.
+func scoredConditions(g *Grid) []bool {
+	scored := make([]bool, len(g.Base.Conditions))
+	for _, name := range g.Reference.Conditions {
+		for c := range g.Base.Conditions {
+			if g.Base.Conditions[c].ConditionName() == name {
+				scored[c] = true
+			}
+		}
+	}
+	return scored
+}
+
+// groupVariants sorts the variants into those run through the engine and
+// groups of threshold variants sharing a Threshold (in order of first
+// appearance), whose episodes follow from one set of presence intervals.
+// rules holds each threshold variant's rule.
+func groupVariants(vars []variant, engineOnly bool) (rules []alarms.ThresholdRule, groups [][]int, engineVars []int) {
+	rules = make([]alarms.ThresholdRule, len(vars))
+	groupOf := map[alarms.Threshold]int{}
+	for v := range vars {
+		r, ok := alarms.NewThresholdRule(vars[v].profile.Conditions[0])
+		if !ok || engineOnly {
+			engineVars = append(engineVars, v)
+			continue
+		}
+		rules[v] = r
+		k, seen := groupOf[r.Threshold]
+		if !seen {
+			k = len(groups)
+			groupOf[r.Threshold] = k
+			groups = append(groups, nil)
+		}
+		groups[k] = append(groups[k], v)
+	}
+	return rules, groups, engineVars
+}
+
+// sweepJob is one unit of phase 1 of run: over (set, device) f, some
+// variants run through the engine or one group derived from the presence
+// intervals of their Threshold.
+type sweepJob struct {
+	f     int
+	vars  []int // run through the engine
+	group []int // derived from the presence intervals of their Threshold
+}
+
+// planJobs lists phase 1's jobs over every (set, device): a device whose
+// sample times do not strictly increase runs every variant through the
+// engine; engine variants go in blocks of variantBlock.
+func planJobs(sets [][]alarms.Trend, nd, nvars int, groups [][]int, engineVars []int) []sweepJob {
+	var jobs []sweepJob
+	var allVars []int
+	for v := range nvars {
+		allVars = append(allVars, v)
+	}
+	for f := range nd * len(sets) {
+		samples := sets[f/nd][f%nd].Samples
+		ev := engineVars
+		if !increasing(samples) {
+			ev = allVars
+		} else {
+			for _, g := range groups {
+				jobs = append(jobs, sweepJob{f: f, group: g})
+			}
+		}
+		for lo := 0; lo < len(ev); lo += variantBlock {
+			jobs = append(jobs, sweepJob{f: f, vars: ev[lo:min(len(ev), lo+variantBlock)]})
+		}
+	}
+	return jobs
 }
 
 // checkSets makes sure every trend set has the devices of sets[ref], in
