@@ -335,32 +335,9 @@ func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
 	err := yamlwalk.Mapping(n, "reference", func(key string, v *yaml.Node, path string) error {
 		switch key {
 		case "rule":
-			rule := &Rule{}
-			var haveBelow, haveFor bool
-			err := yamlwalk.Mapping(v, path, func(key string, v *yaml.Node, path string) error {
-				switch key {
-				case "below":
-					f, err := strconv.ParseFloat(strings.TrimSpace(v.Value), 64)
-					if v.Kind != yaml.ScalarNode || err != nil || !(f > 0 && f <= 100) {
-						return fmt.Errorf("%s (line %d): %q, want an SpO2 in (0, 100]", path, v.Line, v.Value)
-					}
-					rule.Below, haveBelow = f, true
-					return nil
-				case "for":
-					d, err := time.ParseDuration(strings.TrimSpace(v.Value))
-					if v.Kind != yaml.ScalarNode || err != nil || d < 0 || d > 24*time.Hour {
-						return fmt.Errorf("%s (line %d): %q, want a duration in [0, 24h] like 60s", path, v.Line, v.Value)
-					}
-					rule.For, haveFor = d, true
-					return nil
-				}
-				return fmt.Errorf("%s (line %d): unknown key, want below or for", path, v.Line)
-			})
+			rule, err := decodeRule(v, path)
 			if err != nil {
 				return err
-			}
-			if !haveBelow || !haveFor {
-				return fmt.Errorf("%s (line %d): want both below and for, like {below: 85, for: 60s}", path, v.Line)
 			}
 			r.Rule = rule
 			return nil
@@ -368,18 +345,9 @@ func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
 			if v.Kind != yaml.ScalarNode || v.Value == "" {
 				return fmt.Errorf("%s (line %d): want a CSV file name (device,start_s,end_s,label)", path, v.Line)
 			}
-			p := v.Value
-			if !filepath.IsAbs(p) {
-				p = filepath.Join(dir, p)
-			}
-			f, err := os.Open(p)
+			ev, err := readReferenceEvents(v, path, dir)
 			if err != nil {
-				return fmt.Errorf("%s (line %d): %w", path, v.Line, err)
-			}
-			defer f.Close()
-			ev, err := ReadEventsCSV(f)
-			if err != nil {
-				return fmt.Errorf("%s %s: %w", path, v.Value, err)
+				return err
 			}
 			r.File, r.Events = v.Value, ev
 			return nil
@@ -431,6 +399,58 @@ func (g *Grid) decodeReference(n *yaml.Node, dir string) error {
 		}
 	}
 	return nil
+}
+
+// decodeRule decodes reference.rule: {below: SpO2, for: duration}, both
+// required.
+func decodeRule(v *yaml.Node, path string) (*Rule, error) {
+	rule := &Rule{}
+	var haveBelow, haveFor bool
+	err := yamlwalk.Mapping(v, path, func(key string, v *yaml.Node, path string) error {
+		switch key {
+		case "below":
+			f, err := strconv.ParseFloat(strings.TrimSpace(v.Value), 64)
+			if v.Kind != yaml.ScalarNode || err != nil || !(f > 0 && f <= 100) {
+				return fmt.Errorf("%s (line %d): %q, want an SpO2 in (0, 100]", path, v.Line, v.Value)
+			}
+			rule.Below, haveBelow = f, true
+			return nil
+		case "for":
+			d, err := time.ParseDuration(strings.TrimSpace(v.Value))
+			if v.Kind != yaml.ScalarNode || err != nil || d < 0 || d > 24*time.Hour {
+				return fmt.Errorf("%s (line %d): %q, want a duration in [0, 24h] like 60s", path, v.Line, v.Value)
+			}
+			rule.For, haveFor = d, true
+			return nil
+		}
+		return fmt.Errorf("%s (line %d): unknown key, want below or for", path, v.Line)
+	})
+	if err != nil {
+		return nil, err
+	}
+	if !haveBelow || !haveFor {
+		return nil, fmt.Errorf("%s (line %d): want both below and for, like {below: 85, for: 60s}", path, v.Line)
+	}
+	return rule, nil
+}
+
+// readReferenceEvents reads the events CSV that reference.file names
+// (relative to dir, the grid file's directory).
+func readReferenceEvents(v *yaml.Node, path, dir string) ([]Event, error) {
+	p := v.Value
+	if !filepath.IsAbs(p) {
+		p = filepath.Join(dir, p)
+	}
+	f, err := os.Open(p)
+	if err != nil {
+		return nil, fmt.Errorf("%s (line %d): %w", path, v.Line, err)
+	}
+	defer f.Close()
+	ev, err := ReadEventsCSV(f)
+	if err != nil {
+		return nil, fmt.Errorf("%s %s: %w", path, v.Value, err)
+	}
+	return ev, nil
 }
 
 // Size is the number of grid points.
