@@ -36,65 +36,85 @@ func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, 
 		for _, v := range res.ptVar[pt] {
 			s.eps = append(s.eps, res.spans[v][off+d]...)
 		}
-		for p := range s.ivs {
-			s.ivs[p] = s.ivs[p][:0]
-		}
-		s.sc = s.sc[:0]
-		for i := range s.eps {
-			ep := &s.eps[i]
-			end := ep.end
-			if end != end {
-				end = di.last
-			}
-			row.Episodes++
-			row.ByPriority[ep.prio].Episodes++
-			s.durs[0] = append(s.durs[0], end-ep.ann)
-			s.durs[ep.prio] = append(s.durs[ep.prio], end-ep.ann)
-			s.ivs[0] = append(s.ivs[0], [2]float64{ep.ann, end})
-			if ep.esc == ep.esc && ep.esc < end {
-				s.ivs[ep.prio0] = append(s.ivs[ep.prio0], [2]float64{ep.ann, ep.esc})
-				s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.esc, end})
-			} else {
-				s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.ann, end})
-			}
-			if scored[ep.cond] {
-				s.sc = append(s.sc, ep)
-			}
-		}
-		for p := range s.ivs {
-			alarmS[p] += coveredTime(s.ivs[p], di.segs)
-		}
+		s.collect(&row, di, scored, &alarmS)
 		// Matching (package doc): events against the scored episodes.
-		row.ScoredEpisodes += len(s.sc)
 		events += len(di.events)
-		if cap(s.tp) < len(s.sc) {
-			s.tp = make([]bool, len(s.sc))
-		}
-		tp := s.tp[:len(s.sc)]
-		clear(tp)
-		for e := range di.events {
-			ev := &di.events[e]
-			first := math.Inf(1)
-			for k, ep := range s.sc {
-				if matches(ep, ev, grace) {
-					tp[k] = true
-					first = min(first, ep.ann)
-				}
-			}
-			if !math.IsInf(first, 1) {
-				row.EventsDetected++
-				s.delays = append(s.delays, max(0, first-ev.Start))
-			}
-		}
-		for _, b := range tp {
-			if b {
-				row.TruePositives++
-			}
-		}
+		s.match(&row, di, grace)
 		if reviews {
 			scoreReviews(&row, di, s.sc, grace)
 		}
 	}
+	s.summarize(&row, res, &alarmS, events, reviews)
+	return row
+}
+
+// collect counts one device's episodes (s.eps) into row, their durations
+// into s.durs and their time in alarm by priority into alarmS, and keeps
+// the scored ones in s.sc.
+func (s *scorer) collect(row *Row, di *devInfo, scored []bool, alarmS *[4]float64) {
+	for p := range s.ivs {
+		s.ivs[p] = s.ivs[p][:0]
+	}
+	s.sc = s.sc[:0]
+	for i := range s.eps {
+		ep := &s.eps[i]
+		end := ep.end
+		if end != end {
+			end = di.last
+		}
+		row.Episodes++
+		row.ByPriority[ep.prio].Episodes++
+		s.durs[0] = append(s.durs[0], end-ep.ann)
+		s.durs[ep.prio] = append(s.durs[ep.prio], end-ep.ann)
+		s.ivs[0] = append(s.ivs[0], [2]float64{ep.ann, end})
+		if ep.esc == ep.esc && ep.esc < end {
+			s.ivs[ep.prio0] = append(s.ivs[ep.prio0], [2]float64{ep.ann, ep.esc})
+			s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.esc, end})
+		} else {
+			s.ivs[ep.prio] = append(s.ivs[ep.prio], [2]float64{ep.ann, end})
+		}
+		if scored[ep.cond] {
+			s.sc = append(s.sc, ep)
+		}
+	}
+	for p := range s.ivs {
+		alarmS[p] += coveredTime(s.ivs[p], di.segs)
+	}
+}
+
+// match matches one device's reference events against its scored episodes
+// (s.sc): detected events with their delays, and true positives.
+func (s *scorer) match(row *Row, di *devInfo, grace float64) {
+	row.ScoredEpisodes += len(s.sc)
+	if cap(s.tp) < len(s.sc) {
+		s.tp = make([]bool, len(s.sc))
+	}
+	tp := s.tp[:len(s.sc)]
+	clear(tp)
+	for e := range di.events {
+		ev := &di.events[e]
+		first := math.Inf(1)
+		for k, ep := range s.sc {
+			if matches(ep, ev, grace) {
+				tp[k] = true
+				first = min(first, ep.ann)
+			}
+		}
+		if !math.IsInf(first, 1) {
+			row.EventsDetected++
+			s.delays = append(s.delays, max(0, first-ev.Start))
+		}
+	}
+	for _, b := range tp {
+		if b {
+			row.TruePositives++
+		}
+	}
+}
+
+// summarize turns the counts of all devices into row's rates, shares and
+// medians.
+func (s *scorer) summarize(row *Row, res *Result, alarmS *[4]float64, events int, reviews bool) {
 	days := res.MonitoredS / 86400
 	row.PerDeviceDay = ratio(float64(row.Episodes), days)
 	row.PerParticipantDay = math.NaN()
@@ -116,7 +136,6 @@ func (s *scorer) score(res *Result, devs []devInfo, off, pt int, scored []bool, 
 	}
 	row.MedianDelayS = stats.Median(s.delays)
 	row.P90DelayS = stats.Quantile(0.9, s.delays)
-	return row
 }
 
 func ratio(a, b float64) float64 {
