@@ -243,17 +243,7 @@ func buildLimitChart(res *Result) limitChart {
 	if xhi == xlo {
 		xlo, xhi = xlo-1, xhi+1
 	}
-	unit := ""
-	if c := g.Base.Condition(cond); c != nil {
-		switch c.Kind {
-		case alarms.SpO2Low, alarms.SpO2High:
-			unit = " (%)"
-		case alarms.PulseLow, alarms.PulseHigh:
-			unit = " (/min)"
-		case alarms.Desaturation:
-			unit = " (points below baseline)"
-		}
-	}
+	unit := limitUnit(g, cond)
 	ypad := max((ymax-ymin)*0.08, ymax*0.01, 0.01)
 	p := newPlot("Alarms per device-day against "+cond+" limit", cond+" limit"+unit,
 		"alarms per device-day (all conditions)", xlo, xhi, max(0, ymin-ypad), ymax+ypad)
@@ -264,30 +254,52 @@ func buildLimitChart(res *Result) limitChart {
 	}
 	slices.SortFunc(order, func(a, b int) int { return cmpF(lim[a], lim[b]) })
 	for d, dv := range delays {
-		col := chart.Color(d)
-		var path strings.Builder
-		first := true
-		for _, l := range order {
-			if !finite(y[d][l]) {
-				continue
-			}
-			cmd := "L"
-			if first {
-				cmd, first = "M", false
-			}
-			fmt.Fprintf(&path, "%s%.1f,%.1f ", cmd, p.X(lim[l]), p.Y(y[d][l]))
-			fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="3.5" fill="%s"/>`, p.X(lim[l]), p.Y(y[d][l]), col)
-		}
-		fmt.Fprintf(&p.b, `<path d="%s" fill="none" stroke="%s" stroke-width="2"/>`, path.String(), col)
-		label := "as swept"
-		if dv != "" {
-			label = "delay " + dv
-		}
-		lx, ly := p.left+12, p.top+16+float64(d)*17
-		fmt.Fprintf(&p.b, `<line x1="%g" y1="%g" x2="%g" y2="%g" stroke="%s" stroke-width="2"/><text x="%g" y="%g" font-size="12">%s</text>`,
-			lx, ly-4, lx+20, ly-4, col, lx+26, ly, chart.Escape(label))
+		drawLimitLine(p, d, dv, order, lim, y[d])
 	}
 	return limitChart{cond: cond, held: heldDesc, svg: p.svg()}
+}
+
+// limitUnit is the unit, in brackets, of the limit of condition cond.
+func limitUnit(g *Grid, cond string) string {
+	if c := g.Base.Condition(cond); c != nil {
+		switch c.Kind {
+		case alarms.SpO2Low, alarms.SpO2High:
+			return " (%)"
+		case alarms.PulseLow, alarms.PulseHigh:
+			return " (/min)"
+		case alarms.Desaturation:
+			return " (points below baseline)"
+		}
+	}
+	return ""
+}
+
+// drawLimitLine draws the line of delay value dv (the d-th; "" when the
+// grid sweeps no delay) through the points ys over the limits lim, taken in
+// the order order, with its legend entry.
+func drawLimitLine(p *plot, d int, dv string, order []int, lim, ys []float64) {
+	col := chart.Color(d)
+	var path strings.Builder
+	first := true
+	for _, l := range order {
+		if !finite(ys[l]) {
+			continue
+		}
+		cmd := "L"
+		if first {
+			cmd, first = "M", false
+		}
+		fmt.Fprintf(&path, "%s%.1f,%.1f ", cmd, p.X(lim[l]), p.Y(ys[l]))
+		fmt.Fprintf(&p.b, `<circle cx="%.1f" cy="%.1f" r="3.5" fill="%s"/>`, p.X(lim[l]), p.Y(ys[l]), col)
+	}
+	fmt.Fprintf(&p.b, `<path d="%s" fill="none" stroke="%s" stroke-width="2"/>`, path.String(), col)
+	label := "as swept"
+	if dv != "" {
+		label = "delay " + dv
+	}
+	lx, ly := p.left+12, p.top+16+float64(d)*17
+	fmt.Fprintf(&p.b, `<line x1="%g" y1="%g" x2="%g" y2="%g" stroke="%s" stroke-width="2"/><text x="%g" y="%g" font-size="12">%s</text>`,
+		lx, ly-4, lx+20, ly-4, col, lx+26, ly, chart.Escape(label))
 }
 
 // limitLines is alarms per device-day by [delay][limit] (NaN where no grid
