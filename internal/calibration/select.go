@@ -165,48 +165,11 @@ func LeaveOneSubjectOutWith(cands []Candidate, model string, choose Chooser) (*N
 	var pred, base, ref []float64
 	var who []string
 	for _, held := range subs {
-		train := slices.DeleteFunc(slices.Clone(subs), func(s string) bool { return s == held })
-		ch, err := choose(train)
+		f, p, b, r, err := nestedFold(cands, subs, held, model, choose)
 		if err != nil {
-			return nil, fmt.Errorf("leave out subject %q: %w", held, err)
+			return nil, err
 		}
-		best := ch.Index
-		if best < 0 || best >= len(cands) {
-			return nil, fmt.Errorf("leave out subject %q: chooser gave candidate %d of %d", held, best, len(cands))
-		}
-		f := NestedFold{Subject: held, Chosen: cands[best].Name, Why: ch.Why, InnerMAEPct: ch.InnerMAEPct}
-		var tr []Pair
-		var p, b, r []float64
-		for _, q := range cands[best].Pairs {
-			if q.Subject != held {
-				tr = append(tr, q)
-			}
-		}
-		if f.Coefficients, err = FitCoefficients(tr, model); err != nil {
-			return nil, fmt.Errorf("leave out subject %q: %w", held, err)
-		}
-		mean := 0.0
-		for _, q := range tr {
-			mean += q.ReferencePct
-		}
-		mean /= float64(len(tr))
-		for _, q := range cands[best].Pairs {
-			if q.Subject == held {
-				p = append(p, math.Min(100, math.Max(0, polyval(f.Coefficients, q.Ratio))))
-				b = append(b, mean)
-				r = append(r, q.ReferencePct)
-			}
-		}
-		if len(r) == 0 {
-			f.Withheld = true
-		} else {
-			if f.Fit, err = Score(p, r, nil); err != nil {
-				return nil, err
-			}
-			if f.Baseline, err = Score(b, r, nil); err != nil {
-				return nil, err
-			}
-			f.Fit.Subjects, f.Baseline.Subjects = 1, 1
+		if !f.Withheld {
 			pred, base, ref = append(pred, p...), append(base, b...), append(ref, r...)
 			for range r {
 				who = append(who, held)
@@ -225,6 +188,58 @@ func LeaveOneSubjectOutWith(cands []Candidate, model string, choose Chooser) (*N
 		return nil, err
 	}
 	return out, nil
+}
+
+// nestedFold is one outer fold of LeaveOneSubjectOutWith: choose picks a
+// candidate on the other subjects, the model is fitted on that candidate's
+// pairs of the other subjects and scored on those of held, against the
+// training mean as baseline. It returns the fold with the held-out
+// predictions p, baselines b and references r (none when the chosen
+// candidate has no pairs of held: the fold is then Withheld).
+func nestedFold(cands []Candidate, subs []string, held, model string, choose Chooser) (f NestedFold, p, b, r []float64, err error) {
+	train := slices.DeleteFunc(slices.Clone(subs), func(s string) bool { return s == held })
+	ch, err := choose(train)
+	if err != nil {
+		return f, nil, nil, nil, fmt.Errorf("leave out subject %q: %w", held, err)
+	}
+	best := ch.Index
+	if best < 0 || best >= len(cands) {
+		return f, nil, nil, nil, fmt.Errorf("leave out subject %q: chooser gave candidate %d of %d", held, best, len(cands))
+	}
+	f = NestedFold{Subject: held, Chosen: cands[best].Name, Why: ch.Why, InnerMAEPct: ch.InnerMAEPct}
+	var tr []Pair
+	for _, q := range cands[best].Pairs {
+		if q.Subject != held {
+			tr = append(tr, q)
+		}
+	}
+	if f.Coefficients, err = FitCoefficients(tr, model); err != nil {
+		return f, nil, nil, nil, fmt.Errorf("leave out subject %q: %w", held, err)
+	}
+	mean := 0.0
+	for _, q := range tr {
+		mean += q.ReferencePct
+	}
+	mean /= float64(len(tr))
+	for _, q := range cands[best].Pairs {
+		if q.Subject == held {
+			p = append(p, math.Min(100, math.Max(0, polyval(f.Coefficients, q.Ratio))))
+			b = append(b, mean)
+			r = append(r, q.ReferencePct)
+		}
+	}
+	if len(r) == 0 {
+		f.Withheld = true
+		return f, nil, nil, nil, nil
+	}
+	if f.Fit, err = Score(p, r, nil); err != nil {
+		return f, nil, nil, nil, err
+	}
+	if f.Baseline, err = Score(b, r, nil); err != nil {
+		return f, nil, nil, nil, err
+	}
+	f.Fit.Subjects, f.Baseline.Subjects = 1, 1
+	return f, p, b, r, nil
 }
 
 // Improvement is the pooled MAE's reduction relative to the mean
