@@ -82,7 +82,9 @@ const (
 	RejectReason_REJECT_REASON_INVALID_FIELD RejectReason = 1
 	// Data before the introduction, or a second introduction.
 	RejectReason_REJECT_REASON_NOT_INTRODUCED RejectReason = 2
-	// Sequence number not above the last accepted one: already held; do not resend.
+	// Sequence number not above the last durable one: already held in the store;
+	// do not resend. (A resend of an accepted message that is not yet durable
+	// gets no answer of its own: the Ack for the first copy answers it.)
 	RejectReason_REJECT_REASON_STALE_SEQUENCE RejectReason = 3
 	// Message larger than allowed.
 	RejectReason_REJECT_REASON_TOO_LARGE RejectReason = 4

@@ -40,7 +40,7 @@ const (
 // message gets a Rejection naming the field and the bound; the stream goes on.
 //
 // Device time: each data message's device_time_unix_ms must be after the
-// previous accepted one's (else REJECT_REASON_STALE_SEQUENCE: stored history
+// previous accepted one's (else REJECT_REASON_STALE_DEVICE_TIME: stored history
 // keeps the first values and is never rewritten), at most 5 s ahead of the
 // gateway clock and at most a year behind it (else
 // REJECT_REASON_INVALID_FIELD). A refused message is neither stored nor
@@ -92,7 +92,7 @@ type IngestService_ConnectClient = grpc.BidiStreamingClient[ConnectRequest, Conn
 // message gets a Rejection naming the field and the bound; the stream goes on.
 //
 // Device time: each data message's device_time_unix_ms must be after the
-// previous accepted one's (else REJECT_REASON_STALE_SEQUENCE: stored history
+// previous accepted one's (else REJECT_REASON_STALE_DEVICE_TIME: stored history
 // keeps the first values and is never rewritten), at most 5 s ahead of the
 // gateway clock and at most a year behind it (else
 // REJECT_REASON_INVALID_FIELD). A refused message is neither stored nor
