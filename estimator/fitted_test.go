@@ -4,8 +4,8 @@ import (
 	"math"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 

@@ -23,8 +23,8 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/internal/gateway"
 	"github.com/pulsefleet/pulsefleet/internal/notify"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 func TestMain(m *testing.M) { goleak.VerifyTestMain(m) }

@@ -10,8 +10,8 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/internal/ids"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // TokenSpec names the subject of a new credential: exactly one of Device or

@@ -11,8 +11,8 @@ import (
 	"testing"
 	"time"
 
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // alarmingDevice connects id and sends 10 s of SpO2 86 % (below the test

@@ -8,8 +8,8 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/internal/auth"
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // A calibration stored and assigned to a device model is applied to the

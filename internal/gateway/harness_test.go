@@ -13,8 +13,8 @@ import (
 	"google.golang.org/grpc/credentials/insecure"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // harness runs a real gateway on loopback sockets over a real bbolt file.

@@ -24,9 +24,9 @@ import (
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 	"github.com/pulsefleet/pulsefleet/internal/web"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
-	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
 // webProfile announces spo2_low after 2 s (medium), escalating below 85 %

@@ -56,7 +56,7 @@ var (
 	bTokens       = []byte("tokens")
 	bEnrolments   = []byte("enrolments")
 	// bOutbox is in outbox.go.
-	bReviews      = []byte("reviews")
+	bReviews = []byte("reviews")
 
 	keySchema  = []byte("schema")
 	keyStoreID = []byte("store_id")

@@ -8,9 +8,9 @@ import (
 	"strings"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/chart"
-	"github.com/pulsefleet/pulsefleet/estimator"
 )
 
 // plot is a minimal SVG chart: a frame, linear axes with ticks, and marks.

@@ -5,8 +5,8 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 )
 

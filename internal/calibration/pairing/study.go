@@ -10,8 +10,8 @@ import (
 
 	"gonum.org/v1/gonum/stat"
 
-	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 )
 
 // Recording is one raw recording with its reference, read once for a
