@@ -6,19 +6,14 @@ import (
 	"errors"
 	"flag"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/internal/caution"
-	"io"
-	"math"
 	"os"
-	"sort"
 	"strings"
 	"sync"
 	"time"
 
-	"golang.org/x/term"
-
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/relay"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/uplink"
 )
 
@@ -446,13 +441,6 @@ func (r *relayRun) run(ctx context.Context, format relay.Format, resume *relay.M
 	return nil
 }
 
-func orNone(s string) string {
-	if s == "" {
-		return "none"
-	}
-	return s
-}
-
 // batch handles the lines of one batch.
 func (r *relayRun) batch(ctx context.Context, b relay.Batch) error {
 	if b.Break {
@@ -496,24 +484,6 @@ func (r *relayRun) batch(ctx context.Context, b relay.Batch) error {
 	return nil
 }
 
-// pace holds a --realtime recording to its own clock.
-func (r *relayRun) pace(ctx context.Context) {
-	m := r.asm.Mark()
-	if r.t0Wall.IsZero() {
-		r.t0Wall, r.t0Dev = time.Now(), m.LastMS
-		return
-	}
-	due := r.t0Wall.Add(time.Duration((m.LastMS - r.t0Dev) * float64(time.Millisecond)))
-	if d := time.Until(due); d > 0 {
-		t := time.NewTimer(d)
-		select {
-		case <-ctx.Done():
-		case <-t.C:
-		}
-		t.Stop()
-	}
-}
-
 // add hands chunks to the client. A recording waits for room; a live
 // source's chunk is rejected as buffer_full when there is none.
 func (r *relayRun) add(ctx context.Context, chunks []relay.Chunk) error {
@@ -530,211 +500,4 @@ func (r *relayRun) add(ctx context.Context, chunks []relay.Chunk) error {
 		}
 	}
 	return nil
-}
-
-// anchor places a recording so that its last sample is now (the gateway
-// refuses device times ahead of its clock): it reads the file once to
-// measure its span. Standard input that cannot be rewound starts now.
-func (r *relayRun) anchor(format relay.Format) (float64, error) {
-	now := float64(time.Now().UnixMilli())
-	var in io.Reader
-	if r.input != "" {
-		fh, err := os.Open(r.input)
-		if err != nil {
-			return 0, fmt.Errorf("--in: %w", err)
-		}
-		defer fh.Close()
-		in = fh
-	} else if rs, ok := r.s.in.(io.ReadSeeker); ok && !r.o.realtime {
-		// Standard input redirected from a file: measure it, then rewind.
-		start, err := rs.Seek(0, io.SeekCurrent)
-		if err != nil {
-			return now, nil
-		}
-		defer rs.Seek(start, io.SeekStart)
-		in = rs
-	} else {
-		return now, nil
-	}
-	p, err := relay.NewParser(format, r.columns(), r.o.adcBits)
-	if err != nil {
-		return 0, usageError{err.Error()}
-	}
-	rate := r.o.rate
-	if format == relay.Summary && rate == 0 {
-		rate = 1
-	}
-	var n int
-	first, last := math.NaN(), math.NaN()
-	span := 0.0
-	err = relay.EachLine(in, func(line []byte) {
-		s, ok, _, _, _ := p.Parse(line)
-		if !ok {
-			return
-		}
-		n++
-		if !math.IsNaN(s.TimeMS) {
-			if s.Restart && !math.IsNaN(last) {
-				span += last - first
-				first = s.TimeMS
-			}
-			if math.IsNaN(first) {
-				first = s.TimeMS
-			}
-			last = s.TimeMS
-		}
-	})
-	if err != nil {
-		return 0, fmt.Errorf("read %s: %w", r.input, err)
-	}
-	switch {
-	case !math.IsNaN(first):
-		span += last - first // (an absolute time column keeps its own times)
-	case rate > 0 && n > 0:
-		span = float64(n-1) * 1000 / rate
-	}
-	period := 10.0
-	if rate > 0 {
-		period = 1000 / rate
-	}
-	return now - span - period, nil
-}
-
-func (r *relayRun) columns() []string {
-	if r.o.columns == "" {
-		return nil
-	}
-	return strings.Split(r.o.columns, ",")
-}
-
-// readHeader feeds the first line of a resumed file to the parser, so a
-// header names the columns as in the first run.
-func (r *relayRun) readHeader(path string) error {
-	fh, err := os.Open(path)
-	if err != nil {
-		return fmt.Errorf("--in: %w", err)
-	}
-	defer fh.Close()
-	var first []byte
-	relay.EachLine(io.LimitReader(fh, 64<<10), func(line []byte) {
-		if first == nil && len(strings.TrimSpace(string(line))) > 0 {
-			first = append([]byte(nil), line...)
-		}
-	})
-	if first != nil {
-		if _, _, _, _, err := r.parser.Parse(first); err != nil {
-			return fmt.Errorf("%s: %w", path, err)
-		}
-	}
-	return nil
-}
-
-func (r *relayRun) report(st uplink.Stats) relayReport {
-	rej := map[string]uint64{}
-	var n uint64
-	for k, v := range r.rejects {
-		rej[k] += v
-		n += v
-	}
-	for k, v := range st.Rejections {
-		rej["gateway "+k] += v
-		n += v
-	}
-	return relayReport{Device: r.o.device, LinesRead: r.read, LinesRejected: n, SamplesSent: st.SamplesSent,
-		SamplesAcked: st.SamplesAcked, Reconnects: st.Reconnects, SpooledMax: st.HeldMaxSamples, SpooledMaxB: st.HeldMaxBytes,
-		FromSpool: r.fromSp, Unacked: st.HeldSamples, RejectedReason: rej, Gaps: r.asm.Gaps(), Redirects: st.Redirects,
-		RateHz: r.asm.RateHz(), Caution: relayCaution}
-}
-
-// progressLine is the one-line state for a terminal.
-func (r *relayRun) progressLine() string {
-	st := r.client.Stats()
-	conn := "connecting"
-	if st.Connected {
-		conn = "connected"
-	}
-	line := fmt.Sprintf("relay %s: %d lines read, %d samples acknowledged, %d held, %s", r.o.device, r.read, st.SamplesAcked, st.HeldSamples, conn)
-	if len(r.rejects) > 0 || len(st.Rejections) > 0 {
-		all := map[string]uint64{}
-		for k, v := range r.rejects {
-			all[k] = v
-		}
-		for k, v := range st.Rejections {
-			all["gateway "+k] = v
-		}
-		line += "; rejected: " + reasons(all)
-	}
-	return line
-}
-
-// reasons formats counts by reason, largest first.
-func reasons(m map[string]uint64) string {
-	keys := make([]string, 0, len(m))
-	for k := range m {
-		keys = append(keys, k)
-	}
-	sort.Slice(keys, func(i, j int) bool {
-		if m[keys[i]] != m[keys[j]] {
-			return m[keys[i]] > m[keys[j]]
-		}
-		return keys[i] < keys[j]
-	})
-	parts := make([]string, len(keys))
-	for i, k := range keys {
-		parts[i] = fmt.Sprintf("%s %d", k, m[k])
-	}
-	return strings.Join(parts, ", ")
-}
-
-// statusPrinter writes event lines, and on a terminal a progress line that
-// is rewritten in place at most once a second.
-type statusPrinter struct {
-	mu       sync.Mutex
-	w        io.Writer
-	tty      bool
-	shown    bool
-	last     time.Time
-	lastLine string
-}
-
-func newStatusPrinter(w io.Writer) *statusPrinter {
-	p := &statusPrinter{w: w}
-	if f, ok := w.(*os.File); ok && term.IsTerminal(int(f.Fd())) {
-		p.tty = true
-	}
-	return p
-}
-
-func (p *statusPrinter) logf(format string, args ...any) {
-	p.mu.Lock()
-	defer p.mu.Unlock()
-	if p.shown {
-		fmt.Fprint(p.w, "\r\033[K")
-	}
-	fmt.Fprintf(p.w, "relay: "+format+"\n", args...)
-	if p.shown {
-		fmt.Fprint(p.w, p.lastLine)
-	}
-}
-
-func (p *statusPrinter) progress(line string) {
-	if !p.tty {
-		return
-	}
-	p.mu.Lock()
-	defer p.mu.Unlock()
-	if time.Since(p.last) < time.Second {
-		return
-	}
-	p.last, p.lastLine, p.shown = time.Now(), line, true
-	fmt.Fprint(p.w, "\r\033[K"+line)
-}
-
-func (p *statusPrinter) done() {
-	p.mu.Lock()
-	defer p.mu.Unlock()
-	if p.shown {
-		fmt.Fprintln(p.w)
-		p.shown = false
-	}
 }
