@@ -325,22 +325,9 @@ func (o *relayOptions) run(ctx context.Context, s stdio) error {
 
 func (r *relayRun) run(ctx context.Context, format relay.Format, resume *relay.Mark) error {
 	o := r.o
-	// A --realtime recording is stamped by its own clock from now on (and
-	// paced to it), not by when lines were read.
-	ac := relay.AssemblerConfig{Format: format, RateHz: o.rate, Live: r.live, AnchorMS: float64(time.Now().UnixMilli())}
-	if !ac.Live && !o.realtime && resume == nil {
-		anchor, err := r.anchor(format)
-		if err != nil {
-			return err
-		}
-		ac.AnchorMS = anchor
+	if err := r.newAssembler(format, resume); err != nil {
+		return err
 	}
-	if f, ok := r.src.(*relay.File); ok && f.Offset > 0 {
-		if err := r.readHeader(f.Path); err != nil {
-			return err
-		}
-	}
-	r.asm = relay.NewAssembler(ac, resume)
 
 	runCtx, stopClient := context.WithCancel(context.WithoutCancel(ctx))
 	var owned sync.WaitGroup
@@ -403,21 +390,57 @@ func (r *relayRun) run(ctx context.Context, format relay.Format, resume *relay.M
 		failure = err
 	}
 	if failure == nil {
-		// Wait for the last acknowledgements: up to --drain when the input
-		// ended, a short grace when the relay was told to stop.
-		dctx, cancel := context.WithTimeout(context.Background(), o.drain)
-		if ctx.Err() != nil {
-			dctx, cancel = context.WithTimeout(context.Background(), min(o.drain, stopGrace))
-		}
-		werr := r.client.Wait(dctx)
-		cancel()
-		if werr != nil && !errors.Is(werr, context.DeadlineExceeded) && !errors.Is(werr, context.Canceled) {
-			failure = werr
-		}
+		failure = r.drain(ctx)
 	}
 	stopClient()
 	owned.Wait()
 	r.out.done()
+	return r.finish(ctx, failure)
+}
+
+// newAssembler places the input in time and makes the assembler. A
+// --realtime recording is stamped by its own clock from now on (and paced to
+// it), not by when lines were read.
+func (r *relayRun) newAssembler(format relay.Format, resume *relay.Mark) error {
+	o := r.o
+	ac := relay.AssemblerConfig{Format: format, RateHz: o.rate, Live: r.live, AnchorMS: float64(time.Now().UnixMilli())}
+	if !ac.Live && !o.realtime && resume == nil {
+		anchor, err := r.anchor(format)
+		if err != nil {
+			return err
+		}
+		ac.AnchorMS = anchor
+	}
+	if f, ok := r.src.(*relay.File); ok && f.Offset > 0 {
+		if err := r.readHeader(f.Path); err != nil {
+			return err
+		}
+	}
+	r.asm = relay.NewAssembler(ac, resume)
+	return nil
+}
+
+// drain waits for the last acknowledgements: up to --drain when the input
+// ended, a short grace when the relay was told to stop (ctx done).
+func (r *relayRun) drain(ctx context.Context) error {
+	o := r.o
+	dctx, cancel := context.WithTimeout(context.Background(), o.drain)
+	if ctx.Err() != nil {
+		dctx, cancel = context.WithTimeout(context.Background(), min(o.drain, stopGrace))
+	}
+	werr := r.client.Wait(dctx)
+	cancel()
+	if werr != nil && !errors.Is(werr, context.DeadlineExceeded) && !errors.Is(werr, context.Canceled) {
+		return werr
+	}
+	return nil
+}
+
+// finish prints the JSON line and says whether the run did its job: it
+// fails on an earlier failure, on samples left unacknowledged, and on
+// samples the gateway refused.
+func (r *relayRun) finish(ctx context.Context, failure error) error {
+	o := r.o
 	st := r.client.Stats()
 	rep := r.report(st)
 	if err := writeJSONLine(r.s, rep); err != nil {
