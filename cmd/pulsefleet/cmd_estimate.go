@@ -215,54 +215,15 @@ func (e *estimateRun) run(ctx context.Context, in io.Reader) error {
 	r := csv.NewReader(bufio.NewReaderSize(in, 256<<10))
 	r.ReuseRecord = true
 	r.Comment = '#' // the caution line atop pulsefleet's own CSV files
-	header, err := r.Read()
-	if err == io.EOF {
-		return fmt.Errorf("%s: empty input, want a header row with columns %s and %s", e.name, e.opts.redCol, e.opts.irCol)
-	}
-	if err != nil {
-		return e.csvError(err)
-	}
-	header = append([]string(nil), header...) // ReuseRecord: keep our own copy
-	col := map[string]int{}
-	for i, h := range header {
-		h = strings.TrimSpace(strings.TrimPrefix(h, "\ufeff"))
-		if _, dup := col[h]; !dup {
-			col[h] = i
-		}
-	}
-	need := func(name, flag string) (int, error) {
-		i, ok := col[name]
-		if !ok {
-			return 0, fmt.Errorf("%s line 1: no column %q (%s); the header has %s", e.name, name, flag, strings.Join(header, ","))
-		}
-		return i, nil
-	}
-	redI, err := need(e.opts.redCol, "--red-col")
+	c, err := e.readHeader(r)
 	if err != nil {
 		return err
-	}
-	irI, err := need(e.opts.irCol, "--ir-col")
-	if err != nil {
-		return err
-	}
-	ambI := -1
-	if e.opts.ambientCol != "" {
-		if ambI, err = need(e.opts.ambientCol, "--ambient-col"); err != nil {
-			return err
-		}
-	}
-	tI, hasT := col["t_s"]
-	if !hasT {
-		tI = -1
-	}
-	if e.opts.rate == 0 && !hasT {
-		return usagef("--rate: required when the input has no t_s column")
 	}
 
 	const chunk = 512
 	e.red = make([]float64, 0, chunk)
 	e.ir = make([]float64, 0, chunk)
-	if ambI >= 0 {
+	if c.amb >= 0 {
 		e.amb = make([]float64, 0, chunk)
 	}
 	e.est = make([]estimator.Estimate, 0, 16)
@@ -287,26 +248,14 @@ func (e *estimateRun) run(ctx context.Context, in io.Reader) error {
 			return e.csvError(err)
 		}
 		lineNo, _ = r.FieldPos(0)
-		rv, err := e.number(rec, redI, lineNo, header)
+		rv, iv, av, tv, err := e.row(rec, c, lineNo)
 		if err != nil {
 			return err
 		}
-		iv, err := e.number(rec, irI, lineNo, header)
-		if err != nil {
-			return err
-		}
-		if ambI >= 0 {
-			av, err := e.number(rec, ambI, lineNo, header)
-			if err != nil {
-				return err
-			}
+		if c.amb >= 0 {
 			e.amb = append(e.amb, av)
 		}
-		if tI >= 0 {
-			tv, err := e.number(rec, tI, lineNo, header)
-			if err != nil {
-				return err
-			}
+		if c.t >= 0 {
 			if first {
 				e.t0 = tv
 			}
@@ -338,6 +287,89 @@ func (e *estimateRun) run(ctx context.Context, in io.Reader) error {
 	if first {
 		return e.writeHeader() // no samples: no seconds
 	}
+	return e.finish(rate, pendingT, lineNo)
+}
+
+// estimateColumns are the indices of the input columns 'estimate' reads;
+// amb and t are -1 when the input has none.
+type estimateColumns struct {
+	header          []string
+	red, ir, amb, t int
+}
+
+// readHeader reads the header row and finds the columns the options name.
+func (e *estimateRun) readHeader(r *csv.Reader) (estimateColumns, error) {
+	var c estimateColumns
+	header, err := r.Read()
+	if err == io.EOF {
+		return c, fmt.Errorf("%s: empty input, want a header row with columns %s and %s", e.name, e.opts.redCol, e.opts.irCol)
+	}
+	if err != nil {
+		return c, e.csvError(err)
+	}
+	header = append([]string(nil), header...) // ReuseRecord: keep our own copy
+	c.header = header
+	col := map[string]int{}
+	for i, h := range header {
+		h = strings.TrimSpace(strings.TrimPrefix(h, "\ufeff"))
+		if _, dup := col[h]; !dup {
+			col[h] = i
+		}
+	}
+	need := func(name, flag string) (int, error) {
+		i, ok := col[name]
+		if !ok {
+			return 0, fmt.Errorf("%s line 1: no column %q (%s); the header has %s", e.name, name, flag, strings.Join(header, ","))
+		}
+		return i, nil
+	}
+	if c.red, err = need(e.opts.redCol, "--red-col"); err != nil {
+		return c, err
+	}
+	if c.ir, err = need(e.opts.irCol, "--ir-col"); err != nil {
+		return c, err
+	}
+	c.amb = -1
+	if e.opts.ambientCol != "" {
+		if c.amb, err = need(e.opts.ambientCol, "--ambient-col"); err != nil {
+			return c, err
+		}
+	}
+	tI, hasT := col["t_s"]
+	if !hasT {
+		tI = -1
+	}
+	c.t = tI
+	if e.opts.rate == 0 && !hasT {
+		return c, usagef("--rate: required when the input has no t_s column")
+	}
+	return c, nil
+}
+
+// row reads one sample's fields: red, ir, and ambient and t_s when the
+// input has those columns (else 0).
+func (e *estimateRun) row(rec []string, c estimateColumns, lineNo int) (red, ir, amb, t float64, err error) {
+	if red, err = e.number(rec, c.red, lineNo, c.header); err != nil {
+		return
+	}
+	if ir, err = e.number(rec, c.ir, lineNo, c.header); err != nil {
+		return
+	}
+	if c.amb >= 0 {
+		if amb, err = e.number(rec, c.amb, lineNo, c.header); err != nil {
+			return
+		}
+	}
+	if c.t >= 0 {
+		t, err = e.number(rec, c.t, lineNo, c.header)
+	}
+	return
+}
+
+// finish handles the end of the input: infers the rate if still unknown,
+// starts the stream if a chunk never filled, and writes the last seconds.
+func (e *estimateRun) finish(rate float64, pendingT []float64, lineNo int) error {
+	var err error
 	if rate == 0 {
 		if rate, err = inferRate(pendingT, lineNo); err != nil {
 			return err
