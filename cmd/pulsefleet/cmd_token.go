@@ -173,100 +173,117 @@ func runToken(ctx context.Context, args []string, s stdio) error {
 		return usagef("token: want a subcommand: issue, list or revoke")
 	}
 	sub, args := args[0], args[1:]
-	var af adminFlags
 	switch sub {
 	case "-h", "--help", "help":
 		fs := newFlagSet("token", "issue|list|revoke [flags]", s.err)
 		fs.Usage()
 		return errHelp
 	case "issue":
-		var device, operator, role string
-		fs := newFlagSet("token", "issue (--data DIR | --gateway ADDR --token ADMIN) (--device ID | --operator NAME --role ROLE)", s.err)
-		af.register(fs)
-		fs.StringVar(&device, "device", "", "device id: a token that lets this device stream as itself")
-		fs.StringVar(&operator, "operator", "", "operator name (1..64 of A-Z a-z 0-9 . _ -): a token with --role")
-		fs.StringVar(&role, "role", "", "operator role: viewer, operator or admin")
-		if err := parseFlags(fs, args); err != nil {
-			return err
-		}
-		req := &pb.IssueTokenRequest{DeviceId: device, Operator: operator}
-		switch {
-		case (device == "") == (operator == ""):
-			return usagef("--device, --operator: give exactly one")
-		case device != "" && role != "":
-			return usagef("--role: only with --operator (a device token may only stream)")
-		case operator != "":
-			r, err := auth.ParseRole(role)
-			if err != nil {
-				return usagef("--role: %q, want viewer, operator or admin", role)
-			}
-			req.Role = auth.RoleProto(r)
-		}
-		api, cctx, closeFn, err := af.open(ctx, true)
-		if err != nil {
-			return err
-		}
-		defer closeFn()
-		resp, err := api.IssueToken(cctx, req)
-		if err != nil {
-			return fmt.Errorf("issue: %w", err)
-		}
-		t := resp.GetToken()
-		fmt.Fprintln(s.out, resp.GetSecret())
-		what := "device " + t.GetSubject()
-		if t.GetKind() == "operator" {
-			what = "operator " + t.GetSubject() + " (" + roleName(t.GetRole()) + ")"
-		}
-		fmt.Fprintf(s.err, "issued credential %s for %s. The token above is shown only this once: store it now.\n", t.GetTokenId(), what)
-		return nil
+		return runTokenIssue(ctx, args, s)
 	case "list":
-		var format string
-		fs := newFlagSet("token", "list (--data DIR | --gateway ADDR --token ADMIN) [--format table|json]", s.err)
-		af.register(fs)
-		fs.StringVar(&format, "format", "table", "output: table or json")
-		if err := parseFlags(fs, args); err != nil {
-			return err
-		}
-		if format != "table" && format != "json" {
-			return usagef("--format: %q, want table or json", format)
-		}
-		api, cctx, closeFn, err := af.open(ctx, false)
-		if err != nil {
-			return err
-		}
-		defer closeFn()
-		resp, err := api.ListTokens(cctx, &pb.ListTokensRequest{})
-		if err != nil {
-			return fmt.Errorf("list: %w", err)
-		}
-		if format == "json" {
-			return writeProtoJSON(s.out, resp.GetTokens())
-		}
-		return writeTokensTable(s.out, resp.GetTokens())
+		return runTokenList(ctx, args, s)
 	case "revoke":
-		var id string
-		fs := newFlagSet("token", "revoke (--data DIR | --gateway ADDR --token ADMIN) --id TOKEN_ID", s.err)
-		af.register(fs)
-		fs.StringVar(&id, "id", "", "the credential's id, as 'token list' shows it (required)")
-		if err := parseFlags(fs, args); err != nil {
-			return err
-		}
-		if id == "" {
-			return usagef("--id: required (see 'pulsefleet token list')")
-		}
-		api, cctx, closeFn, err := af.open(ctx, true)
-		if err != nil {
-			return err
-		}
-		defer closeFn()
-		resp, err := api.RevokeToken(cctx, &pb.RevokeTokenRequest{TokenId: id})
-		if err != nil {
-			return fmt.Errorf("revoke: %w", err)
-		}
-		fmt.Fprintf(s.out, "revoked %s (%s %s)\n", resp.GetToken().GetTokenId(), resp.GetToken().GetKind(), resp.GetToken().GetSubject())
-		return nil
+		return runTokenRevoke(ctx, args, s)
 	}
 	return usagef("token: unknown subcommand %q, want issue, list or revoke", sub)
+}
+
+// runTokenIssue is 'token issue': it prints the new secret once.
+func runTokenIssue(ctx context.Context, args []string, s stdio) error {
+	var af adminFlags
+	var device, operator, role string
+	fs := newFlagSet("token", "issue (--data DIR | --gateway ADDR --token ADMIN) (--device ID | --operator NAME --role ROLE)", s.err)
+	af.register(fs)
+	fs.StringVar(&device, "device", "", "device id: a token that lets this device stream as itself")
+	fs.StringVar(&operator, "operator", "", "operator name (1..64 of A-Z a-z 0-9 . _ -): a token with --role")
+	fs.StringVar(&role, "role", "", "operator role: viewer, operator or admin")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	req := &pb.IssueTokenRequest{DeviceId: device, Operator: operator}
+	switch {
+	case (device == "") == (operator == ""):
+		return usagef("--device, --operator: give exactly one")
+	case device != "" && role != "":
+		return usagef("--role: only with --operator (a device token may only stream)")
+	case operator != "":
+		r, err := auth.ParseRole(role)
+		if err != nil {
+			return usagef("--role: %q, want viewer, operator or admin", role)
+		}
+		req.Role = auth.RoleProto(r)
+	}
+	api, cctx, closeFn, err := af.open(ctx, true)
+	if err != nil {
+		return err
+	}
+	defer closeFn()
+	resp, err := api.IssueToken(cctx, req)
+	if err != nil {
+		return fmt.Errorf("issue: %w", err)
+	}
+	t := resp.GetToken()
+	fmt.Fprintln(s.out, resp.GetSecret())
+	what := "device " + t.GetSubject()
+	if t.GetKind() == "operator" {
+		what = "operator " + t.GetSubject() + " (" + roleName(t.GetRole()) + ")"
+	}
+	fmt.Fprintf(s.err, "issued credential %s for %s. The token above is shown only this once: store it now.\n", t.GetTokenId(), what)
+	return nil
+}
+
+// runTokenList is 'token list'.
+func runTokenList(ctx context.Context, args []string, s stdio) error {
+	var af adminFlags
+	var format string
+	fs := newFlagSet("token", "list (--data DIR | --gateway ADDR --token ADMIN) [--format table|json]", s.err)
+	af.register(fs)
+	fs.StringVar(&format, "format", "table", "output: table or json")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	if format != "table" && format != "json" {
+		return usagef("--format: %q, want table or json", format)
+	}
+	api, cctx, closeFn, err := af.open(ctx, false)
+	if err != nil {
+		return err
+	}
+	defer closeFn()
+	resp, err := api.ListTokens(cctx, &pb.ListTokensRequest{})
+	if err != nil {
+		return fmt.Errorf("list: %w", err)
+	}
+	if format == "json" {
+		return writeProtoJSON(s.out, resp.GetTokens())
+	}
+	return writeTokensTable(s.out, resp.GetTokens())
+}
+
+// runTokenRevoke is 'token revoke'.
+func runTokenRevoke(ctx context.Context, args []string, s stdio) error {
+	var af adminFlags
+	var id string
+	fs := newFlagSet("token", "revoke (--data DIR | --gateway ADDR --token ADMIN) --id TOKEN_ID", s.err)
+	af.register(fs)
+	fs.StringVar(&id, "id", "", "the credential's id, as 'token list' shows it (required)")
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	if id == "" {
+		return usagef("--id: required (see 'pulsefleet token list')")
+	}
+	api, cctx, closeFn, err := af.open(ctx, true)
+	if err != nil {
+		return err
+	}
+	defer closeFn()
+	resp, err := api.RevokeToken(cctx, &pb.RevokeTokenRequest{TokenId: id})
+	if err != nil {
+		return fmt.Errorf("revoke: %w", err)
+	}
+	fmt.Fprintf(s.out, "revoked %s (%s %s)\n", resp.GetToken().GetTokenId(), resp.GetToken().GetKind(), resp.GetToken().GetSubject())
+	return nil
 }
 
 func roleName(r pb.Role) string {
