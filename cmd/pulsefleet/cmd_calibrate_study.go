@@ -3,16 +3,17 @@ package main
 import (
 	"context"
 	"fmt"
+	"io"
 	"os"
 	"path/filepath"
 	"slices"
 	"strconv"
 	"strings"
 
+	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/internal/calibration/pairing"
 	"github.com/pulsefleet/pulsefleet/internal/caution"
-	"github.com/pulsefleet/pulsefleet/estimator"
 )
 
 const calibrateStudySynopsis = "study --raw FILE --reference FILE [--subject NAME] ... --rate HZ [--channels A/B,...] [--ratios slope,derivative,spectral] [--lags 0,5,...] [--format text|json]"
@@ -56,44 +57,17 @@ func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 	if err != nil {
 		return err
 	}
-	var methods []estimator.RatioMethod
-	for _, r := range strings.Split(ratios, ",") {
-		m, err := parseRatio(strings.TrimSpace(r))
-		if err != nil {
-			return usagef("--ratios: %v", err)
-		}
-		methods = append(methods, m)
-	}
-	rule, err := parseRatio(ruleRatio)
+	methods, rule, err := parseStudyRatios(ratios, ruleRatio)
 	if err != nil {
-		return usagef("--rule-ratio: %v", err)
+		return err
 	}
-	if !slices.Contains(methods, rule) {
-		return usagef("--rule-ratio: %q is not among --ratios %q", rule, ratios)
+	lagList, err := parseStudyLags(lags)
+	if err != nil {
+		return err
 	}
-	var lagList []int
-	for _, l := range strings.Split(lags, ",") {
-		v, err := strconv.Atoi(strings.TrimSpace(l))
-		if err != nil || v < -600 || v > 600 {
-			return usagef("--lags: %q, want integers -600..600 s", l)
-		}
-		lagList = append(lagList, v)
-	}
-	var recs []pairing.Recording
-	for i, raw := range raws {
-		ref := refs[0]
-		if len(refs) > 1 {
-			ref = refs[i]
-		}
-		subject := filepath.Base(filepath.Dir(raw))
-		if len(subs) > 0 {
-			subject = subs[i]
-		}
-		rec, err := readStudyRecording(raw, ref, subject, cols)
-		if err != nil {
-			return err
-		}
-		recs = append(recs, rec)
+	recs, err := readStudyRecordings(raws, refs, subs, cols)
+	if err != nil {
+		return err
 	}
 	st, err := pairing.NewStudy(recs, pairing.Variants(pairsList, methods, lagList), o)
 	if err != nil {
@@ -108,12 +82,7 @@ func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 		return fmt.Errorf("rule leave-one-subject-out: %w", err)
 	}
 	// What each chooser picks on all subjects: the variant to pair with.
-	var all []string
-	for _, r := range recs {
-		if !slices.Contains(all, r.Subject) {
-			all = append(all, r.Subject)
-		}
-	}
+	all := studySubjects(recs)
 	finalNested, err := calibration.InnerLOSO(st.Candidates, model)(all)
 	if err != nil {
 		return fmt.Errorf("choice on all subjects: %w", err)
@@ -129,18 +98,91 @@ func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 		})
 	}
 	fmt.Fprintf(s.out, "%d recordings of %d subjects, %d variants (channels x ratio methods x lags)\n\n", len(recs), len(all), len(st.Candidates))
-	if err := nested.WriteText(s.out, "nested: variant with the lowest inner leave-one-subject-out MAE"); err != nil {
+	return printStudyText(s.out, nested, ruled, rule, st.Candidates[finalNested.Index].Name, st.Candidates[finalRule.Index].Name)
+}
+
+// printStudyText writes both choosers' leave-one-subject-out results and
+// their picks on all subjects as text.
+func printStudyText(w io.Writer, nested, ruled *calibration.Nested, rule estimator.RatioMethod, pickNested, pickRule string) error {
+	if err := nested.WriteText(w, "nested: variant with the lowest inner leave-one-subject-out MAE"); err != nil {
 		return err
 	}
-	fmt.Fprintln(s.out)
-	if err := ruled.WriteText(s.out, fmt.Sprintf("rule: ratio %s fixed beforehand, channels by usable seconds, lag by within-recording tracking", rule)); err != nil {
+	fmt.Fprintln(w)
+	if err := ruled.WriteText(w, fmt.Sprintf("rule: ratio %s fixed beforehand, channels by usable seconds, lag by within-recording tracking", rule)); err != nil {
 		return err
 	}
-	fmt.Fprintf(s.out, "\non all subjects: nested picks %s; rule picks %s\n", st.Candidates[finalNested.Index].Name, st.Candidates[finalRule.Index].Name)
-	fmt.Fprintln(s.out, "fit a curve with: calibrate pairs (--red-col/--ir-col/--ratio/--lag of the pick, --quality-weights) then calibrate --pairs.")
-	fmt.Fprintln(s.out, "bias = mean(predicted - reference); SD = population SD; Arms^2 = bias^2 + SD^2; the mean predictor predicts the training subjects' mean reference.")
-	fmt.Fprintf(s.out, "\n%s\n", caution.Line)
+	fmt.Fprintf(w, "\non all subjects: nested picks %s; rule picks %s\n", pickNested, pickRule)
+	fmt.Fprintln(w, "fit a curve with: calibrate pairs (--red-col/--ir-col/--ratio/--lag of the pick, --quality-weights) then calibrate --pairs.")
+	fmt.Fprintln(w, "bias = mean(predicted - reference); SD = population SD; Arms^2 = bias^2 + SD^2; the mean predictor predicts the training subjects' mean reference.")
+	fmt.Fprintf(w, "\n%s\n", caution.Line)
 	return nil
+}
+
+// studySubjects lists the recordings' subjects, each once, in order.
+func studySubjects(recs []pairing.Recording) []string {
+	var all []string
+	for _, r := range recs {
+		if !slices.Contains(all, r.Subject) {
+			all = append(all, r.Subject)
+		}
+	}
+	return all
+}
+
+// parseStudyRatios reads --ratios and --rule-ratio; the rule's method must
+// be among those compared.
+func parseStudyRatios(ratios, ruleRatio string) ([]estimator.RatioMethod, estimator.RatioMethod, error) {
+	var methods []estimator.RatioMethod
+	for _, r := range strings.Split(ratios, ",") {
+		m, err := parseRatio(strings.TrimSpace(r))
+		if err != nil {
+			return nil, "", usagef("--ratios: %v", err)
+		}
+		methods = append(methods, m)
+	}
+	rule, err := parseRatio(ruleRatio)
+	if err != nil {
+		return nil, "", usagef("--rule-ratio: %v", err)
+	}
+	if !slices.Contains(methods, rule) {
+		return nil, "", usagef("--rule-ratio: %q is not among --ratios %q", rule, ratios)
+	}
+	return methods, rule, nil
+}
+
+// parseStudyLags reads --lags: integers -600..600 s.
+func parseStudyLags(lags string) ([]int, error) {
+	var lagList []int
+	for _, l := range strings.Split(lags, ",") {
+		v, err := strconv.Atoi(strings.TrimSpace(l))
+		if err != nil || v < -600 || v > 600 {
+			return nil, usagef("--lags: %q, want integers -600..600 s", l)
+		}
+		lagList = append(lagList, v)
+	}
+	return lagList, nil
+}
+
+// readStudyRecordings reads each --raw with its --reference (one for all,
+// or one each) and its --subject (default: the raw file's folder name).
+func readStudyRecordings(raws, refs, subs []string, cols []string) ([]pairing.Recording, error) {
+	var recs []pairing.Recording
+	for i, raw := range raws {
+		ref := refs[0]
+		if len(refs) > 1 {
+			ref = refs[i]
+		}
+		subject := filepath.Base(filepath.Dir(raw))
+		if len(subs) > 0 {
+			subject = subs[i]
+		}
+		rec, err := readStudyRecording(raw, ref, subject, cols)
+		if err != nil {
+			return nil, err
+		}
+		recs = append(recs, rec)
+	}
+	return recs, nil
 }
 
 // parseChannelPairs reads "a/b,c/d" into pairs and the distinct columns.
