@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"encoding/csv"
+	"flag"
 	"fmt"
 	"io"
 	"strconv"
@@ -41,16 +42,9 @@ func runParticipants(ctx context.Context, args []string, s stdio) error {
 		return errHelp
 	}
 	sub, args := args[0], args[1:]
-	var cf clientFlags
+	var f participantsFlags
 	fs := newFlagSet("participants "+sub, "--gateway ADDR [flags]", s.err)
-	cf.register(fs)
-	pid := fs.String("participant", "", "participant id (pseudonymous study code, never a name)")
-	device := fs.String("device", "", "device id")
-	fromArg := fs.String("from", "", "enrol: start, RFC 3339, Unix seconds or a duration before now (default now)")
-	toArg := fs.String("to", "", "enrol: end (default open); end: end time (default now)")
-	note := fs.String("note", "", "enrol: free text, at most 200 bytes (never a name)")
-	format := fs.String("format", "table", "list: table, csv or json")
-	confirm := fs.Bool("confirm", false, "delete: required; deletion cannot be undone")
+	f.register(fs)
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -62,69 +56,93 @@ func runParticipants(ctx context.Context, args []string, s stdio) error {
 		t, err := parseTrendTime(flag, v, now)
 		return t.UnixMilli(), err
 	}
-	from, err := optTime("--from", *fromArg)
+	from, err := optTime("--from", f.fromArg)
 	if err != nil {
 		return err
 	}
-	to, err := optTime("--to", *toArg)
+	to, err := optTime("--to", f.toArg)
 	if err != nil {
 		return err
 	}
 	if sub != "list" {
-		if err := participants.CheckID("--participant", *pid); err != nil {
+		if err := participants.CheckID("--participant", f.pid); err != nil {
 			return usagef("%v", err)
 		}
 	}
-	addrs, err := cf.addrs()
+	addrs, err := f.cf.addrs()
 	if err != nil {
 		return err
 	}
-	conn, err := cf.dial(addrs[0])
+	conn, err := f.cf.dial(addrs[0])
 	if err != nil {
 		return err
 	}
 	defer conn.Close()
 	cl := pb.NewParticipantServiceClient(conn)
-	cctx, cancel := context.WithTimeout(cf.ctx(ctx), 5*time.Minute)
+	cctx, cancel := context.WithTimeout(f.cf.ctx(ctx), 5*time.Minute)
 	defer cancel()
+	return f.call(cctx, cl, sub, from, to, now, s.out)
+}
+
+// participantsFlags are the flags of 'participants'; each subcommand uses
+// some of them.
+type participantsFlags struct {
+	cf                                        clientFlags
+	pid, device, fromArg, toArg, note, format string
+	confirm                                   bool
+}
+
+func (f *participantsFlags) register(fs *flag.FlagSet) {
+	f.cf.register(fs)
+	fs.StringVar(&f.pid, "participant", "", "participant id (pseudonymous study code, never a name)")
+	fs.StringVar(&f.device, "device", "", "device id")
+	fs.StringVar(&f.fromArg, "from", "", "enrol: start, RFC 3339, Unix seconds or a duration before now (default now)")
+	fs.StringVar(&f.toArg, "to", "", "enrol: end (default open); end: end time (default now)")
+	fs.StringVar(&f.note, "note", "", "enrol: free text, at most 200 bytes (never a name)")
+	fs.StringVar(&f.format, "format", "table", "list: table, csv or json")
+	fs.BoolVar(&f.confirm, "confirm", false, "delete: required; deletion cannot be undone")
+}
+
+// call sends subcommand sub's request and prints the answer.
+func (f *participantsFlags) call(cctx context.Context, cl pb.ParticipantServiceClient, sub string, from, to int64, now time.Time, out io.Writer) error {
 	switch sub {
 	case "enrol":
-		if *device == "" {
+		if f.device == "" {
 			return usagef("--device: required")
 		}
 		if from == 0 {
 			from = now.UnixMilli()
 		}
-		resp, err := cl.Enrol(cctx, &pb.EnrolRequest{Enrolment: &pb.Enrolment{ParticipantId: *pid, DeviceId: *device,
-			FromUnixMs: from, ToUnixMs: to, Note: *note}})
+		resp, err := cl.Enrol(cctx, &pb.EnrolRequest{Enrolment: &pb.Enrolment{ParticipantId: f.pid, DeviceId: f.device,
+			FromUnixMs: from, ToUnixMs: to, Note: f.note}})
 		if err != nil {
 			return err
 		}
-		fmt.Fprintf(s.out, "enrolled %s\n", enrolmentLine(resp.GetEnrolment()))
+		fmt.Fprintf(out, "enrolled %s\n", enrolmentLine(resp.GetEnrolment()))
 	case "end":
-		resp, err := cl.EndEnrolment(cctx, &pb.EndEnrolmentRequest{ParticipantId: *pid, DeviceId: *device, ToUnixMs: to})
+		resp, err := cl.EndEnrolment(cctx, &pb.EndEnrolmentRequest{ParticipantId: f.pid, DeviceId: f.device, ToUnixMs: to})
 		if err != nil {
 			return err
 		}
-		fmt.Fprintf(s.out, "ended %s\n", enrolmentLine(resp.GetEnrolment()))
+		fmt.Fprintf(out, "ended %s\n", enrolmentLine(resp.GetEnrolment()))
 	case "list":
-		resp, err := cl.ListEnrolments(cctx, &pb.ListEnrolmentsRequest{ParticipantId: *pid, DeviceId: *device})
+		resp, err := cl.ListEnrolments(cctx, &pb.ListEnrolmentsRequest{ParticipantId: f.pid, DeviceId: f.device})
 		if err != nil {
 			return err
 		}
-		return writeEnrolments(s.out, *format, resp.GetEnrolments())
+		return writeEnrolments(out, f.format, resp.GetEnrolments())
 	case "delete":
-		if !*confirm {
-			return usagef("--confirm: required; delete removes %s's trend points, raw captures, episodes and reviews for good", *pid)
+		if !f.confirm {
+			return usagef("--confirm: required; delete removes %s's trend points, raw captures, episodes and reviews for good", f.pid)
 		}
-		resp, err := cl.DeleteParticipant(cctx, &pb.DeleteParticipantRequest{ParticipantId: *pid, Confirm: true})
+		resp, err := cl.DeleteParticipant(cctx, &pb.DeleteParticipantRequest{ParticipantId: f.pid, Confirm: true})
 		if err != nil {
 			return err
 		}
-		fmt.Fprintf(s.out, "deleted participant %s: %d trend points, %d raw captures, %d episodes, %d reviews in %d enrolments (audit entry %d)\n",
-			*pid, resp.GetTrendPoints(), resp.GetRawCaptures(), resp.GetEpisodes(), resp.GetReviews(), len(resp.GetEnrolments()), resp.GetAuditId())
+		fmt.Fprintf(out, "deleted participant %s: %d trend points, %d raw captures, %d episodes, %d reviews in %d enrolments (audit entry %d)\n",
+			f.pid, resp.GetTrendPoints(), resp.GetRawCaptures(), resp.GetEpisodes(), resp.GetReviews(), len(resp.GetEnrolments()), resp.GetAuditId())
 		for _, e := range resp.GetEnrolments() {
-			fmt.Fprintf(s.out, "  %s\n", enrolmentLine(e))
+			fmt.Fprintf(out, "  %s\n", enrolmentLine(e))
 		}
 	default:
 		return usagef("unknown subcommand %q, want enrol, end, list or delete", sub)
