@@ -224,34 +224,9 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 		}
 		return runTuneAveraging(ctx, o, f, g, args, s)
 	}
-	var trends []alarms.Trend
-	source := ""
-	if o.data != "" {
-		source = "store " + o.data
-		if o.label != "" {
-			source = o.label
-		}
-		if trends, err = tune.LoadStore(o.data, f); err != nil {
-			return err
-		}
-	} else {
-		source = o.in
-		var in io.Reader = s.in
-		if o.in != "-" {
-			fh, err := os.Open(o.in)
-			if err != nil {
-				return fmt.Errorf("open trend: %w", err)
-			}
-			defer fh.Close()
-			in = fh
-		}
-		all, err := alarms.ReadTrendCSV(in)
-		if err != nil {
-			return fmt.Errorf("%s: %w", o.in, err)
-		}
-		if trends, err = tune.FilterTrends(all, f); err != nil {
-			return err
-		}
+	trends, source, err := loadTuneTrends(o, f, s)
+	if err != nil {
+		return err
 	}
 	if len(trends) == 0 {
 		return fmt.Errorf("no trend samples in %s%s", source, tuneFilterNote(f))
@@ -278,6 +253,42 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 		fmt.Fprintf(s.out, "tune: %d participants, %.1f participant-monitored hours\n", res.Participants, res.ParticipantS/3600)
 	}
 	return tuneWrite(o, f, res, source, args, s)
+}
+
+// loadTuneTrends reads the trends to tune on, from the store (--data) or a
+// trend CSV (--in), and names where they came from.
+func loadTuneTrends(o tuneOptions, f tune.Filter, s stdio) ([]alarms.Trend, string, error) {
+	var trends []alarms.Trend
+	var err error
+	source := ""
+	if o.data != "" {
+		source = "store " + o.data
+		if o.label != "" {
+			source = o.label
+		}
+		if trends, err = tune.LoadStore(o.data, f); err != nil {
+			return nil, "", err
+		}
+	} else {
+		source = o.in
+		var in io.Reader = s.in
+		if o.in != "-" {
+			fh, err := os.Open(o.in)
+			if err != nil {
+				return nil, "", fmt.Errorf("open trend: %w", err)
+			}
+			defer fh.Close()
+			in = fh
+		}
+		all, err := alarms.ReadTrendCSV(in)
+		if err != nil {
+			return nil, "", fmt.Errorf("%s: %w", o.in, err)
+		}
+		if trends, err = tune.FilterTrends(all, f); err != nil {
+			return nil, "", err
+		}
+	}
+	return trends, source, nil
 }
 
 // runTuneAveraging re-estimates the store's raw captures at each averaging
