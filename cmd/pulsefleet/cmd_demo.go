@@ -52,20 +52,9 @@ func runDemo(ctx context.Context, args []string, s stdio) error {
 	}
 	fmt.Fprintln(s.out, notCertified)
 
-	c := defaultServeConfig()
-	c.GRPCListen, c.HTTPListen, c.LogLevel = *grpcListen, *httpListen, "warn"
-	// A compressed scenario sends device time faster than real time: let
-	// the demo's gateway take it (with room for resends after a reconnect).
-	sp := *speed
-	if sp == 0 {
-		sp = sc.Speed
-	}
-	c.DeviceTimeRate = max(c.DeviceTimeRate, 2*sp)
-	if *profile != "" {
-		c.Profile = *profile
-	}
-	if err := c.validate(); err != nil {
-		return usageError{err.Error()}
+	c, err := demoServeConfig(sc.Speed, *speed, *grpcListen, *httpListen, *profile)
+	if err != nil {
+		return err
 	}
 	if *data == "" {
 		dir, err := os.MkdirTemp("", "pulsefleet-demo-")
@@ -112,6 +101,27 @@ func runDemo(ctx context.Context, args []string, s stdio) error {
 		fmt.Fprintln(out, "pulsefleet demo: stopped.")
 	}
 	return err
+}
+
+// demoServeConfig is the demo gateway's configuration: serve's defaults on
+// the given addresses, quiet logs, and room for the scenario's speed.
+func demoServeConfig(scenarioSpeed, speed float64, grpcListen, httpListen, profile string) (serveConfig, error) {
+	c := defaultServeConfig()
+	c.GRPCListen, c.HTTPListen, c.LogLevel = grpcListen, httpListen, "warn"
+	// A compressed scenario sends device time faster than real time: let
+	// the demo's gateway take it (with room for resends after a reconnect).
+	sp := speed
+	if sp == 0 {
+		sp = scenarioSpeed
+	}
+	c.DeviceTimeRate = max(c.DeviceTimeRate, 2*sp)
+	if profile != "" {
+		c.Profile = profile
+	}
+	if err := c.validate(); err != nil {
+		return c, usageError{err.Error()}
+	}
+	return c, nil
 }
 
 // watchDemo prints the fleet once it is live and every alarm announcement
