@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -10,9 +11,9 @@ import (
 	"strings"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/internal/calibration/pairing"
-	"github.com/pulsefleet/pulsefleet/estimator"
 )
 
 const calibrateSummary = `Fit and score a calibration curve (SpO2 from R); 'calibrate pairs' builds pairs from recordings.
@@ -43,15 +44,7 @@ func runCalibrate(ctx context.Context, args []string, s stdio) error {
 	}
 	fs := newFlagSet("calibrate", "--pairs FILE --model linear|quadratic [--out FILE] [--report DIR] [--format text|json]", s.err)
 	var o calibrateOptions
-	fs.StringVar(&o.pairs, "pairs", "", "pairs CSV (ratio,reference_pct[,subject]); - for standard input (required)")
-	fs.StringVar(&o.model, "model", "", "curve model: linear or quadratic (required)")
-	fs.StringVar(&o.out, "out", "", "write the calibration file (YAML) here; without it nothing is saved")
-	fs.StringVar(&o.name, "name", "", "curve name, [a-z0-9._-] (default: from the pairs file name)")
-	fs.IntVar(&o.version, "version", 1, "curve version (>= 1)")
-	fs.StringVar(&o.deviceModel, "device-model", "", "device model the pairs were recorded with (optional)")
-	fs.StringVar(&o.report, "report", "", "write curve.svg, bland_altman.svg (and bland_altman_loso.svg) and report.html to this directory")
-	fs.StringVar(&o.format, "format", "text", "stats on standard output: text or json")
-	fs.Float64Var(&o.rangeMargin, "range-margin", 0.1, "widen the curve's valid R range by this fraction of the fitted span on each side (0 = exactly the fitted range)")
+	o.register(fs)
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -102,16 +95,33 @@ func runCalibrate(ctx context.Context, args []string, s stdio) error {
 	if o.format == "json" {
 		return res.WriteJSON(s.out)
 	}
-	if err := res.WriteText(s.out); err != nil {
+	return o.printText(s.out, res)
+}
+
+func (o *calibrateOptions) register(fs *flag.FlagSet) {
+	fs.StringVar(&o.pairs, "pairs", "", "pairs CSV (ratio,reference_pct[,subject]); - for standard input (required)")
+	fs.StringVar(&o.model, "model", "", "curve model: linear or quadratic (required)")
+	fs.StringVar(&o.out, "out", "", "write the calibration file (YAML) here; without it nothing is saved")
+	fs.StringVar(&o.name, "name", "", "curve name, [a-z0-9._-] (default: from the pairs file name)")
+	fs.IntVar(&o.version, "version", 1, "curve version (>= 1)")
+	fs.StringVar(&o.deviceModel, "device-model", "", "device model the pairs were recorded with (optional)")
+	fs.StringVar(&o.report, "report", "", "write curve.svg, bland_altman.svg (and bland_altman_loso.svg) and report.html to this directory")
+	fs.StringVar(&o.format, "format", "text", "stats on standard output: text or json")
+	fs.Float64Var(&o.rangeMargin, "range-margin", 0.1, "widen the curve's valid R range by this fraction of the fitted span on each side (0 = exactly the fitted range)")
+}
+
+// printText writes the fit's statistics as text and says where the files went.
+func (o *calibrateOptions) printText(w io.Writer, res *calibration.Result) error {
+	if err := res.WriteText(w); err != nil {
 		return err
 	}
 	if o.out != "" {
-		fmt.Fprintf(s.out, "\ncalibration file: %s\n", o.out)
+		fmt.Fprintf(w, "\ncalibration file: %s\n", o.out)
 	} else {
-		fmt.Fprintln(s.out, "\n(no --out: the calibration file was not written)")
+		fmt.Fprintln(w, "\n(no --out: the calibration file was not written)")
 	}
 	if o.report != "" {
-		fmt.Fprintf(s.out, "report: %s\n", filepath.Join(o.report, "report.html"))
+		fmt.Fprintf(w, "report: %s\n", filepath.Join(o.report, "report.html"))
 	}
 	return nil
 }
