@@ -160,51 +160,8 @@ func (a *Assembler) release() []Chunk {
 
 func (a *Assembler) add(s Sample, off int64, at time.Time, out []Chunk) []Chunk {
 	m := &a.m
-	period := 1000 / m.RateHz
 	atMS := float64(at.UnixNano()) / 1e6
-	hasT := !math.IsNaN(s.TimeMS)
-	gap := false
-	var dev float64
-	switch {
-	case !m.Started || s.Restart:
-		if m.Started {
-			gap = true
-		}
-		m.Started, m.K = true, 0
-		m.Absolute = hasT && s.TimeMS >= absoluteMS
-		switch {
-		case m.Absolute:
-			m.AnchorMS, m.OriginMS = 0, 0
-		case a.cfg.Live || (gap && m.LastMS == 0):
-			m.AnchorMS = atMS
-		case gap:
-			m.AnchorMS = m.LastMS + period // a restarted device in a recording: go on right after
-		default:
-			m.AnchorMS = a.cfg.AnchorMS
-		}
-		m.OriginMS = 0
-		if hasT && !m.Absolute {
-			m.OriginMS = s.TimeMS
-		}
-		if a.cfg.Format == Summary && !hasT && !a.cfg.Live {
-			m.AnchorMS += period // a summary is stamped at the end of its second
-		}
-		dev = m.AnchorMS
-		if hasT {
-			dev = m.AnchorMS + s.TimeMS - m.OriginMS
-		}
-	case hasT:
-		dev = m.AnchorMS + s.TimeMS - m.OriginMS
-		if dev-m.LastMS > 2.5*period {
-			gap = true
-		}
-	default:
-		m.K++
-		dev = m.AnchorMS + float64(m.K)*period
-		if a.cfg.Live && atMS-dev > float64(LiveGapAfter.Milliseconds()) {
-			m.AnchorMS, m.K, dev, gap = atMS, 0, atMS, true
-		}
-	}
+	dev, gap := a.deviceTime(s, atMS)
 	if gap {
 		a.gaps++
 		out = a.flush(out)
@@ -249,6 +206,56 @@ func (a *Assembler) add(s Sample, off int64, at time.Time, out []Chunk) []Chunk 
 		out = a.flush(out)
 	}
 	return out
+}
+
+// deviceTime places sample s in device time, ms, and says whether a gap
+// comes before it: a restarted device, a jump in the time column, or a live
+// source that stalled.
+func (a *Assembler) deviceTime(s Sample, atMS float64) (dev float64, gap bool) {
+	m := &a.m
+	period := 1000 / m.RateHz
+	hasT := !math.IsNaN(s.TimeMS)
+	switch {
+	case !m.Started || s.Restart:
+		if m.Started {
+			gap = true
+		}
+		m.Started, m.K = true, 0
+		m.Absolute = hasT && s.TimeMS >= absoluteMS
+		switch {
+		case m.Absolute:
+			m.AnchorMS, m.OriginMS = 0, 0
+		case a.cfg.Live || (gap && m.LastMS == 0):
+			m.AnchorMS = atMS
+		case gap:
+			m.AnchorMS = m.LastMS + period // a restarted device in a recording: go on right after
+		default:
+			m.AnchorMS = a.cfg.AnchorMS
+		}
+		m.OriginMS = 0
+		if hasT && !m.Absolute {
+			m.OriginMS = s.TimeMS
+		}
+		if a.cfg.Format == Summary && !hasT && !a.cfg.Live {
+			m.AnchorMS += period // a summary is stamped at the end of its second
+		}
+		dev = m.AnchorMS
+		if hasT {
+			dev = m.AnchorMS + s.TimeMS - m.OriginMS
+		}
+	case hasT:
+		dev = m.AnchorMS + s.TimeMS - m.OriginMS
+		if dev-m.LastMS > 2.5*period {
+			gap = true
+		}
+	default:
+		m.K++
+		dev = m.AnchorMS + float64(m.K)*period
+		if a.cfg.Live && atMS-dev > float64(LiveGapAfter.Milliseconds()) {
+			m.AnchorMS, m.K, dev, gap = atMS, 0, atMS, true
+		}
+	}
+	return dev, gap
 }
 
 func (a *Assembler) maxChunk() int {

@@ -169,66 +169,26 @@ func (p *Parser) Parse(line []byte) (s Sample, ok bool, reason string, header bo
 	if len(p.fields) != p.nFields {
 		return s, false, ReasonFields, false, nil
 	}
-	num := func(r int, empty bool) (float64, string) {
-		i := p.idx[r]
-		if i < 0 {
-			return math.NaN(), ""
-		}
-		f := p.fields[i]
-		if len(f) == 0 && empty {
-			return math.NaN(), ""
-		}
-		v, err := strconv.ParseFloat(string(f), 64)
-		if err != nil || math.IsNaN(v) || math.IsInf(v, 0) {
-			return 0, ReasonNumber
-		}
-		return v, ""
-	}
 	s.TimeMS = math.NaN()
 	if p.idx[colTS] >= 0 || p.idx[colTMS] >= 0 {
 		r, scale := colTS, 1000.0
 		if p.idx[colTS] < 0 {
 			r, scale = colTMS, 1
 		}
-		v, why := num(r, false)
+		v, why := p.num(r, false)
 		if why != "" {
 			return s, false, why, false, nil
 		}
 		s.TimeMS = v * scale
 	}
+	why := ""
 	if p.format == Raw {
-		var codes [3]uint32
-		for i, r := range []int{colRed, colIR, colAmbient} {
-			v, why := num(r, false)
-			if why != "" {
-				return s, false, why, false, nil
-			}
-			if math.IsNaN(v) {
-				continue
-			}
-			v = math.Round(v)
-			if v < 0 || v > p.maxCode {
-				return s, false, ReasonRange, false, nil
-			}
-			codes[i] = uint32(v)
-		}
-		s.Red, s.IR, s.Ambient, s.HasAmbient = codes[0], codes[1], codes[2], p.idx[colAmbient] >= 0
+		why = p.raw(&s)
 	} else {
-		bounds := [...]struct {
-			r      int
-			lo, hi float64
-			dst    *float64
-		}{{colSpO2, 0, 100, &s.SpO2}, {colPulse, 0, 350, &s.Pulse}, {colPI, 0, 100, &s.PI}, {colSQI, 0, 1, &s.Q}}
-		for _, b := range bounds {
-			v, why := num(b.r, true)
-			if why != "" {
-				return s, false, why, false, nil
-			}
-			if !math.IsNaN(v) && (v < b.lo || v > b.hi) {
-				return s, false, ReasonRange, false, nil
-			}
-			*b.dst = v
-		}
+		why = p.summary(&s)
+	}
+	if why != "" {
+		return s, false, why, false, nil
 	}
 	if !math.IsNaN(s.TimeMS) {
 		if !math.IsNaN(p.lastT) {
@@ -242,6 +202,68 @@ func (p *Parser) Parse(line []byte) (s Sample, ok bool, reason string, header bo
 		p.lastT = s.TimeMS
 	}
 	return s, true, "", false, nil
+}
+
+// num reads column r of the split line: NaN when the input has no such
+// column (or, with empty, when the field is empty), else a finite number or
+// the reject reason.
+func (p *Parser) num(r int, empty bool) (float64, string) {
+	i := p.idx[r]
+	if i < 0 {
+		return math.NaN(), ""
+	}
+	f := p.fields[i]
+	if len(f) == 0 && empty {
+		return math.NaN(), ""
+	}
+	v, err := strconv.ParseFloat(string(f), 64)
+	if err != nil || math.IsNaN(v) || math.IsInf(v, 0) {
+		return 0, ReasonNumber
+	}
+	return v, ""
+}
+
+// raw reads a raw sample's converter codes into s, or returns the reject
+// reason (a code outside 0..2^adcBits-1 is out of range).
+func (p *Parser) raw(s *Sample) string {
+	var codes [3]uint32
+	for i, r := range []int{colRed, colIR, colAmbient} {
+		v, why := p.num(r, false)
+		if why != "" {
+			return why
+		}
+		if math.IsNaN(v) {
+			continue
+		}
+		v = math.Round(v)
+		if v < 0 || v > p.maxCode {
+			return ReasonRange
+		}
+		codes[i] = uint32(v)
+	}
+	s.Red, s.IR, s.Ambient, s.HasAmbient = codes[0], codes[1], codes[2], p.idx[colAmbient] >= 0
+	return ""
+}
+
+// summary reads a summary line's values into s, each empty or within its
+// bounds, or returns the reject reason.
+func (p *Parser) summary(s *Sample) string {
+	bounds := [...]struct {
+		r      int
+		lo, hi float64
+		dst    *float64
+	}{{colSpO2, 0, 100, &s.SpO2}, {colPulse, 0, 350, &s.Pulse}, {colPI, 0, 100, &s.PI}, {colSQI, 0, 1, &s.Q}}
+	for _, b := range bounds {
+		v, why := p.num(b.r, true)
+		if why != "" {
+			return why
+		}
+		if !math.IsNaN(v) && (v < b.lo || v > b.hi) {
+			return ReasonRange
+		}
+		*b.dst = v
+	}
+	return ""
 }
 
 // split cuts a line into fields: by commas if it has any, else semicolons,
