@@ -245,8 +245,7 @@ const defaultLedgerDays = 400
 // startGateway opens the store, builds the gateway and starts serving; it
 // returns once the listeners are bound, and stop() shuts down gracefully and
 // closes the store. serve and demo share it.
-// Long because it is one ordered start-up: each step after store.Open must
-// undo the steps before it, in reverse order, when it fails.
+// Long because it is one ordered start-up whose every failing step undoes the earlier ones in reverse order.
 func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningGateway, func() error, error) {
 	setGatewayGC()
 	level := map[string]slog.Level{"debug": slog.LevelDebug, "info": slog.LevelInfo, "warn": slog.LevelWarn, "error": slog.LevelError}[c.LogLevel]
