@@ -13,9 +13,9 @@ import (
 	"google.golang.org/grpc/credentials/insecure"
 
 	"github.com/pulsefleet/pulsefleet/internal/profiles"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/scenarios"
 	"github.com/pulsefleet/pulsefleet/internal/sim"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 func init() {

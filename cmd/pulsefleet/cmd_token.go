@@ -14,8 +14,8 @@ import (
 	"google.golang.org/grpc"
 
 	"github.com/pulsefleet/pulsefleet/internal/auth"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 const tokenSummary = `Manage credentials: bearer tokens for devices and operators.
