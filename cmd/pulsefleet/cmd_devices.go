@@ -1,12 +1,16 @@
 package main
 
 import (
+	"bytes"
 	"context"
+	"encoding/json"
 	"fmt"
 	"io"
 	"sort"
 	"strings"
 	"time"
+
+	"google.golang.org/protobuf/encoding/protojson"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/attention"
@@ -57,9 +61,6 @@ func runDevices(ctx context.Context, args []string, s stdio) error {
 		}
 		orderByAttention(devs, announced, now, *stale)
 	}
-	if *format == "json" {
-		return writeProtoJSON(s.out, devs)
-	}
 	ivs, err := remoteEnrolments(ctx, &cf, addrs)
 	if err != nil {
 		return err
@@ -68,7 +69,35 @@ func runDevices(ctx context.Context, args []string, s stdio) error {
 	for _, d := range devs {
 		holders[d.GetDeviceId()] = participants.Holder(ivs, d.GetDeviceId(), now.UnixMilli())
 	}
+	if *format == "json" {
+		return writeDevicesJSON(s.out, devs, holders)
+	}
 	return writeDevicesTable(s.out, devs, holders, now, *stale)
+}
+
+// writeDevicesJSON prints the devices as protojson Device objects, each
+// with "participant" (the participant enrolled to it now) added when it has
+// one. Device has no field of that name, so the key cannot collide.
+func writeDevicesJSON(w io.Writer, devs []*pb.Device, holders map[string]string) error {
+	arr := make([]json.RawMessage, 0, len(devs))
+	for _, d := range devs {
+		b, err := protojson.Marshal(d)
+		if err != nil {
+			return err
+		}
+		if pid := holders[d.GetDeviceId()]; pid != "" {
+			q, _ := json.Marshal(pid)
+			b = bytes.TrimSuffix(bytes.TrimSpace(b), []byte("}"))
+			if len(bytes.TrimSpace(b)) > 1 {
+				b = append(b, ',')
+			}
+			b = append(append(append(b, `"participant":`...), q...), '}')
+		}
+		arr = append(arr, b)
+	}
+	enc := json.NewEncoder(w)
+	enc.SetIndent("", "  ")
+	return enc.Encode(arr)
 }
 
 // listDevices asks every gateway and merges; a device reported by several

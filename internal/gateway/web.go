@@ -70,8 +70,9 @@ func (g *Gateway) newWeb() *web.Server {
 			sec := g.security()
 			return web.SessionOptions{TTL: sec.SessionTTL, SecureCookies: sec.SecureCookies}
 		},
-		Audit:     g.audit,
-		HTTPError: httpStatusOf,
+		Audit:      g.audit,
+		HTTPError:  httpStatusOf,
+		Enrolments: &participantService{g: g},
 	})
 }
 

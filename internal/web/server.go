@@ -74,6 +74,9 @@ type Config struct {
 	// HTTPError maps an error of a Fleet call to an HTTP status and the
 	// message the client sees; nil answers 500 with the error's text.
 	HTTPError func(error) (status int, message string)
+	// Enrolments enrols devices to study participants from the device page
+	// (participants.go); nil leaves the page without the control.
+	Enrolments Enrolments
 }
 
 // Server serves the page, its JSON and the login.
@@ -181,7 +184,8 @@ func (s *Server) Routes(mux *http.ServeMux) {
 	mux.Handle("POST /api/device/{id}/acknowledge", s.webHandler(auth.RoleOperator, s.webAcknowledge))
 	mux.Handle("POST /api/device/{id}/pause", s.webHandler(auth.RoleOperator, s.webPause))
 	mux.Handle("GET /api/events", s.webHandler(auth.RoleViewer, s.webEvents))
-	s.reviewRoutes(mux) // reviews.go
+	s.reviewRoutes(mux)      // reviews.go
+	s.participantRoutes(mux) // participants.go
 }
 
 // pageHeaders sets the security headers of the page and its assets: no
