@@ -12,9 +12,9 @@ import (
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/sim"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // durableSequences asks a running gateway for every device's highest durable

@@ -3,8 +3,8 @@ package main
 import (
 	"fmt"
 
-	"github.com/pulsefleet/pulsefleet/internal/calibration"
 	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/calibration"
 )
 
 // Fitted curves are used by the estimator as they are.

@@ -9,8 +9,8 @@ import (
 	"golang.org/x/term"
 	"google.golang.org/grpc"
 
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 const backupSummary = `Take a consistent snapshot of a running gateway's store over gRPC.

@@ -11,8 +11,8 @@ import (
 	"google.golang.org/grpc"
 
 	"github.com/pulsefleet/pulsefleet/internal/export"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // remoteSource is an export.Source over FleetService.ExportTrend of one or

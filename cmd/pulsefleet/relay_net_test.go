@@ -12,9 +12,9 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/internal/caution"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 	"github.com/pulsefleet/pulsefleet/internal/shard"
 	"github.com/pulsefleet/pulsefleet/internal/store"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // A device that connects to the relay (--listen) and one the relay connects
