@@ -3,7 +3,10 @@ package cluster
 import (
 	"context"
 	"fmt"
+	"strings"
 	"time"
+
+	clientv3 "go.etcd.io/etcd/client/v3"
 )
 
 // Alarm state travels with a device between the gateways of a fleet: the
@@ -81,4 +84,38 @@ func (n *Node) publishAlarms(ctx context.Context) {
 			}
 		}
 	}
+}
+
+// MembersChanged receives a value after the member list changed (at most
+// one waits; the first list at Join counts as a change).
+func (n *Node) MembersChanged() <-chan struct{} { return n.changed }
+
+// SilentDevices returns the shared alarm snapshots of the devices this
+// gateway owns that stream to no gateway (no fence in etcd): a device whose
+// gateway died and that did not reconnect anywhere. The owner adopts them
+// (ingest.Pipeline.AdoptSilent), so nobody else announces them offline and
+// they are not left without any.
+func (n *Node) SilentDevices(ctx context.Context) (map[string][]byte, error) {
+	ctx, cancel := context.WithTimeout(ctx, n.ttl)
+	defer cancel()
+	ar, err := n.c.Get(ctx, n.prefix+"alarm/", clientv3.WithPrefix())
+	if err != nil {
+		return nil, fmt.Errorf("cluster: shared alarm states: %w", err)
+	}
+	fr, err := n.c.Get(ctx, n.prefix+"fence/", clientv3.WithPrefix(), clientv3.WithKeysOnly(), clientv3.WithRev(ar.Header.Revision))
+	if err != nil {
+		return nil, fmt.Errorf("cluster: fences: %w", err)
+	}
+	fenced := make(map[string]bool, len(fr.Kvs))
+	for _, kv := range fr.Kvs {
+		fenced[strings.TrimPrefix(string(kv.Key), n.prefix+"fence/")] = true
+	}
+	out := map[string][]byte{}
+	for _, kv := range ar.Kvs {
+		id := strings.TrimPrefix(string(kv.Key), n.prefix+"alarm/")
+		if !fenced[id] && n.Owner(id) == "" && n.ring.Load() != nil {
+			out[id] = kv.Value
+		}
+	}
+	return out, nil
 }

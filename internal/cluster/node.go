@@ -60,6 +60,7 @@ type Node struct {
 	alarmMu      sync.Mutex
 	alarmPending map[string][]byte // device id -> newest alarm snapshot not yet in etcd (alarms.go)
 	alarmKick    chan struct{}
+	changed      chan struct{} // member list changed (MembersChanged)
 
 	stop context.CancelFunc
 	wg   sync.WaitGroup
@@ -95,7 +96,7 @@ func Join(ctx context.Context, cfg Config) (*Node, error) {
 	}
 	n := &Node{c: cfg.Client, prefix: cfg.Prefix, self: cfg.Self, ttl: cfg.TTL, wait: cfg.AcquireWait,
 		log: cfg.Log, m: m, members: map[string]bool{}, held: map[string]*hold{},
-		alarmPending: map[string][]byte{}, alarmKick: make(chan struct{}, 1)}
+		alarmPending: map[string][]byte{}, alarmKick: make(chan struct{}, 1), changed: make(chan struct{}, 1)}
 	if err := n.register(ctx); err != nil {
 		return nil, err
 	}
@@ -311,6 +312,10 @@ func (n *Node) setMembers(set map[string]bool) {
 	n.m.members.Set(float64(len(peers)))
 	if !mapsEqual(old, set) {
 		n.log.Info("cluster: members", "members", peers, "devices_moving_away", len(moved))
+		select {
+		case n.changed <- struct{}{}:
+		default:
+		}
 	}
 	for _, h := range moved {
 		if ring != nil {

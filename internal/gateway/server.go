@@ -223,6 +223,7 @@ func (g *Gateway) watchdog(ctx context.Context) {
 	t := time.NewTicker(g.opt.WatchdogEvery)
 	defer t.Stop()
 	var lastPrune time.Time
+	var silent silentScan
 	for {
 		select {
 		case <-ctx.Done():
@@ -238,6 +239,7 @@ func (g *Gateway) watchdog(ctx context.Context) {
 			}
 		}
 		g.ingest.ProbeStore()
+		silent.step(ctx, g)
 		g.ingest.Tick(ctx)
 	}
 }

@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
@@ -119,10 +120,17 @@ func (s *stream) adoptSharedAlarm(ctx context.Context) {
 	}
 	d.mu.Lock()
 	defer d.mu.Unlock()
+	p.adoptState(d, st)
+}
+
+// adoptState gives d the engine of the shared state st unless d's own
+// engine is as new (see adoptSharedAlarm); it reports whether it did.
+// Caller holds d.mu.
+func (p *Pipeline) adoptState(d *device, st alarms.State) bool {
 	if d.engine != nil {
 		local := d.engine.Snapshot()
-		if local.LastS != nil && *local.LastS >= *st.LastS {
-			return // this gateway's state is as new
+		if st.LastS == nil || local.LastS != nil && *local.LastS >= *st.LastS {
+			return false // this gateway's state is as new
 		}
 		st.NextID = max(st.NextID, local.NextID)
 	}
@@ -133,15 +141,63 @@ func (s *stream) adoptSharedAlarm(ctx context.Context) {
 		p.defaultMu.RUnlock()
 	}
 	if prof == nil {
-		return
+		return false
 	}
 	e, err := alarms.Restore(prof, st)
 	if err != nil {
 		p.log.Warn("shared alarm state does not fit this gateway's profile; not adopted", "device", d.id, "err", err)
-		return
+		return false
 	}
 	d.engine, d.profile = e, prof
 	d.alarmRev = 0 // stored here with the next batch of the device
 	p.refreshActive(d)
 	p.log.Info("alarm state adopted from the fleet", "device", d.id, "episodes_next_id", st.NextID)
+	return true
+}
+
+// AdoptSilent takes over the alarm engine of a device this gateway now
+// owns but that streams to no gateway of the fleet (its gateway died and
+// the device did not reconnect anywhere: battery flat, radio gone). state
+// is the alarm snapshot the fleet last published for it. The engine is
+// restored from it when it is newer than this gateway's own (episodes
+// already announced are not announced again), and the device is put
+// offline for it, so device_offline is announced here after its alarm
+// condition delay (from the offline report the dead gateway published, or
+// from now when the device was streaming when that gateway died) and
+// shows on this gateway's fleet page, metrics and notifications. A device
+// streaming here is left alone; one that connects later comes back online
+// as after any disconnection. The gateway's watchdog calls it for the
+// devices cluster.Node.SilentDevices lists after a membership change.
+func (p *Pipeline) AdoptSilent(ctx context.Context, deviceID string, state []byte) error {
+	var st alarms.State
+	if err := json.Unmarshal(state, &st); err != nil {
+		return fmt.Errorf("shared alarm state of %s: %w", deviceID, err)
+	}
+	d, created := p.devices.getOrCreate(deviceID)
+	nowMS := p.nowMS()
+	d.mu.Lock()
+	if d.stream != nil {
+		d.mu.Unlock()
+		return nil
+	}
+	p.adoptState(d, st)
+	p.ensureEngine(d)
+	rec := &record{dev: d}
+	if created {
+		desc := d.desc
+		rec.desc = &desc // listed after a restart too
+	}
+	var evs []alarms.Event
+	if d.engine != nil && !d.engine.Offline() {
+		d.engine.SetOffline(true, d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
+	}
+	p.alarmEffects(d, evs, rec)
+	d.mu.Unlock()
+	if created || len(evs) > 0 || rec.alarm != nil {
+		if err := p.w.submit(context.WithoutCancel(ctx), rec); err != nil {
+			return fmt.Errorf("adopting silent device %s: %w", deviceID, err)
+		}
+		p.publishDevice(d, "disconnected")
+	}
+	return nil
 }
