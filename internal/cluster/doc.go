@@ -48,6 +48,14 @@
 //     duplicates across stores are bounded by the last unacknowledged batch
 //     of each device of the dead gateway (cmd/pulsefleet's failover test
 //     counts them); every acknowledged message is in some store.
+//   - Gateway killed while one of its devices is silent (stopped before or
+//     with it) and never reconnects: after each membership change the new
+//     owner lists the devices it owns that have a shared alarm snapshot and
+//     no fence (SilentDevices) and adopts them offline, so device_offline is
+//     raised there (internal/gateway silentScan, 2×TTL after the change).
+//     A device slower than that to reconnect is put offline and back online
+//     (its device_offline onset withdrawn before the delay). Alarm keys are
+//     never deleted: a retired device stays adopted, and shown offline.
 //
 // Keys (PREFIX defaults to /pulsefleet/):
 //
