@@ -6,6 +6,7 @@ import (
 	"io"
 	"os"
 	"path/filepath"
+	"sort"
 	"strconv"
 	"strings"
 	"time"
@@ -81,7 +82,8 @@ type tuneOptions struct {
 	workers             int
 	maxGap              time.Duration
 	client              clientFlags
-	label               string // the source's name in outputs, when not --data's
+	label               string   // the source's name in outputs, when not --data's
+	stores              []string // snapshot data directories of several gateways, merged
 }
 
 func init() {
@@ -169,30 +171,125 @@ func btoi(b bool) int {
 	return 0
 }
 
-// tuneSnapshot takes a snapshot of the gateway's store into a temporary
-// data directory for runTune; cleanup removes it.
+// tuneSnapshot takes a snapshot of each gateway's store into a temporary
+// data directory for runTune (one gateway: o.data; several: o.stores, their
+// trends merged by loadMergedTrends); cleanup removes them. A gateway that
+// cannot give its snapshot fails the whole command, naming it.
 func tuneSnapshot(ctx context.Context, o *tuneOptions, s stdio) (cleanup func(), err error) {
 	addrs, err := o.client.addrs()
 	if err != nil {
 		return nil, err
 	}
-	if len(addrs) != 1 {
-		return nil, usagef("--gateway: %d addresses, want one (tune each gateway's history, or export the merged trend with 'export --gateway' and tune it with --in)", len(addrs))
+	if len(addrs) == 0 {
+		return nil, usagef("--gateway: no address given")
 	}
 	dir, err := os.MkdirTemp("", "pulsefleet-tune-snapshot-")
 	if err != nil {
 		return nil, fmt.Errorf("tune: %w", err)
 	}
 	cleanup = func() { os.RemoveAll(dir) }
-	p := newTuneProgress(s.err, "snapshot")
-	res, err := fetchBackup(ctx, &o.client, addrs[0], filepath.Join(dir, store.FileName), func(done, total int64) { p.update(int(done>>10), int(total>>10)) })
-	p.finish()
-	if err != nil {
-		cleanup()
-		return nil, err
+	var labels []string
+	for i, addr := range addrs {
+		sub := filepath.Join(dir, fmt.Sprintf("gateway-%d", i))
+		if err := os.Mkdir(sub, 0o700); err != nil {
+			cleanup()
+			return nil, fmt.Errorf("tune: %w", err)
+		}
+		label := "snapshot"
+		if len(addrs) > 1 {
+			label = "snapshot " + addr
+		}
+		p := newTuneProgress(s.err, label)
+		res, err := fetchBackup(ctx, &o.client, addr, filepath.Join(sub, store.FileName), func(done, total int64) { p.update(int(done>>10), int(total>>10)) })
+		p.finish()
+		if err != nil {
+			cleanup()
+			if !strings.Contains(err.Error(), addr) {
+				err = fmt.Errorf("gateway %s: %w", addr, err)
+			}
+			return nil, err
+		}
+		o.stores = append(o.stores, sub)
+		labels = append(labels, fmt.Sprintf("%s (store %s)", addr, res.storeID))
 	}
-	o.data, o.label = dir, fmt.Sprintf("snapshot of gateway %s (store %s)", addrs[0], res.storeID)
+	if len(addrs) == 1 {
+		o.data, o.stores = o.stores[0], nil
+		o.label = "snapshot of gateway " + labels[0]
+		return cleanup, nil
+	}
+	o.label = "snapshots of gateways " + strings.Join(labels, ", ")
 	return cleanup, nil
+}
+
+// tuneRefuseMerged refuses what cannot be merged across several gateways'
+// stores (o.stores) and says why.
+func tuneRefuseMerged(o tuneOptions, g *tune.Grid) error {
+	if len(o.stores) == 0 {
+		return nil
+	}
+	const each = "tune each gateway on its own (--gateway ADDR)"
+	switch {
+	case g.Reference.Reviews != nil:
+		return fmt.Errorf("grid %s: reference reviews: refused with several gateways: a review names an episode by its id in one gateway's store, and two stores number their episodes independently, so the reviews cannot be merged safely; %s", o.grid, each)
+	case len(g.Participants) > 0:
+		return fmt.Errorf("grid %s: participants: refused with several gateways: each store keeps its own enrolments, and merging a participant's intervals across stores is not done; %s", o.grid, each)
+	case g.HasAveraging():
+		return fmt.Errorf("grid %s: averaging: refused with several gateways: raw captures are re-estimated per store and not merged; %s", o.grid, each)
+	}
+	return nil
+}
+
+// loadMergedTrends reads the trends of every store in dirs (one snapshot per
+// gateway, in --gateway order) and merges them per device in time order: a
+// device's history may be split across gateways (a failover). Where two
+// stores hold a point of the same device at the same time, the first
+// store's is kept (as a store keeps the first value at a device time) and
+// the others are counted and reported on stderr.
+func loadMergedTrends(dirs []string, f tune.Filter, s stdio) ([]alarms.Trend, error) {
+	all := f
+	all.Devices = nil // a device need only be in one store; checked on the merge
+	byDev := map[string][]alarms.Sample{}
+	stores := map[string]int{}
+	for _, dir := range dirs {
+		trends, err := tune.LoadStore(dir, all)
+		if err != nil {
+			return nil, err
+		}
+		for _, tr := range trends {
+			byDev[tr.Device] = append(byDev[tr.Device], tr.Samples...)
+			stores[tr.Device]++
+		}
+	}
+	devs := make([]string, 0, len(byDev))
+	for d := range byDev {
+		devs = append(devs, d)
+	}
+	sort.Strings(devs)
+	var merged []alarms.Trend
+	dropped, split := 0, 0
+	for _, d := range devs {
+		smp := byDev[d]
+		if stores[d] > 1 {
+			split++
+			sort.SliceStable(smp, func(i, j int) bool { return smp[i].T < smp[j].T })
+			out := smp[:1]
+			for _, x := range smp[1:] {
+				if x.T == out[len(out)-1].T {
+					dropped++
+					continue
+				}
+				out = append(out, x)
+			}
+			smp = out
+		}
+		merged = append(merged, alarms.Trend{Device: d, Samples: smp})
+	}
+	fmt.Fprintf(s.err, "tune: merged %d gateways: %d devices, %d held by more than one; %d duplicate points (same device and time on two gateways) dropped, the first listed gateway's kept\n",
+		len(dirs), len(devs), split, dropped)
+	if len(f.Devices) > 0 {
+		return tune.FilterTrends(merged, tune.Filter{Devices: f.Devices})
+	}
+	return merged, nil
 }
 
 func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s stdio) error {
@@ -205,6 +302,9 @@ func runTune(ctx context.Context, o tuneOptions, f tune.Filter, args []string, s
 	}
 	g, err := tune.LoadGrid(o.grid)
 	if err != nil {
+		return err
+	}
+	if err := tuneRefuseMerged(o, g); err != nil {
 		return err
 	}
 	if g.Reference.Reviews != nil {
@@ -261,7 +361,12 @@ func loadTuneTrends(o tuneOptions, f tune.Filter, s stdio) ([]alarms.Trend, stri
 	var trends []alarms.Trend
 	var err error
 	source := ""
-	if o.data != "" {
+	if len(o.stores) > 0 {
+		if trends, err = loadMergedTrends(o.stores, f, s); err != nil {
+			return nil, "", err
+		}
+		source = o.label
+	} else if o.data != "" {
 		source = "store " + o.data
 		if o.label != "" {
 			source = o.label
