@@ -39,6 +39,13 @@ first, bbolt locks the file), from a running gateway (--gateway ADDR: a
 snapshot taken through AdminService.Backup, admin role, into a temporary
 directory and tuned exactly as --data would tune it, then deleted) or a
 trend CSV (--in, "-" for stdin: t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi).
+With several gateways (--gateway A,B,...) each gives a snapshot and their
+trends are merged per device in time order (a device's history may be
+split across gateways after a failover); two points of a device at the
+same time keep the first listed gateway's, and the duplicates dropped are
+counted on stderr. A gateway that cannot be reached fails the command.
+Reference reviews, participants and averaging times need one gateway:
+their records are per store and are not merged.
 
 Averaging times re-run the estimator over the raw captures kept in the
 store (serve --capture-raw), once per time, the way the gateway estimates
@@ -92,7 +99,7 @@ func init() {
 		summary: tuneSummary,
 		run: func(ctx context.Context, args []string, s stdio) error {
 			var o tuneOptions
-			fs := newFlagSet("tune", "--grid FILE (--data DIR | --in TREND.csv) --out DIR [--device ID,...] [--from T] [--to T]", s.err)
+			fs := newFlagSet("tune", "--grid FILE (--data DIR | --gateway ADDR[,ADDR...] | --in TREND.csv) --out DIR [--device ID,...] [--from T] [--to T]", s.err)
 			fs.StringVar(&o.grid, "grid", "", "tuning grid file (required)")
 			fs.StringVar(&o.data, "data", "", "data directory of a store to read trend history from (read-only)")
 			fs.StringVar(&o.in, "in", "", "trend CSV file, - for stdin (instead of --data)")

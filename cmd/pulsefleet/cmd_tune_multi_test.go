@@ -113,6 +113,7 @@ func TestTuneThroughSeveralGateways(t *testing.T) {
 		for _, d := range devs {
 			if !seen[d.ID] {
 				seen[d.ID] = true
+				d.Index = 0 // numbered anew by the union store (the two snapshots' numbers overlap)
 				batch.Devices = append(batch.Devices, &d)
 			}
 			if err := db.Trend(d.ID, 0, 1<<53, func(pt store.Point) bool { batch.Points = append(batch.Points, pt); return true }); err != nil {
