@@ -16,7 +16,7 @@ staticcheck=honnef.co/go/tools/cmd/staticcheck@v0.8.2
 # Packages that start goroutines or are called from several at once; their
 # tests run with -race. DEVELOPERS.md has the timings that keep this within
 # CI's limit.
-race_pkgs=(./internal/gateway/... ./internal/notify/... ./internal/cluster/... ./internal/controlplane/... ./internal/auth/... ./internal/web/... ./internal/ids/... ./internal/store/... ./internal/sim/... ./internal/tune/... ./cmd/...)
+race_pkgs=(./internal/gateway/... ./internal/ingest/... ./internal/notify/... ./internal/cluster/... ./internal/controlplane/... ./internal/auth/... ./internal/web/... ./internal/ids/... ./internal/store/... ./internal/sim/... ./internal/tune/... ./cmd/...)
 
 for dep in .ci/deps.d/*.sh; do
   [ -e "$dep" ] || continue
