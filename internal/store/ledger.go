@@ -194,45 +194,25 @@ func (w *ledgerWriter) commit() {
 func (db *DB) LedgerTotals() (map[string]LedgerTotal, error) {
 	ranges := map[uint32][][2]uint64{}
 	byIdx := map[uint32]*LedgerTotal{}
-	names := map[uint32]string{}
-	err := db.view(func(tx *bolt.Tx) error {
-		if err := tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
-			var d Device
-			if err := decJSON(v, &d); err != nil {
-				return err
-			}
-			names[d.Index] = d.ID
-			return nil
-		}); err != nil {
-			return err
+	names, err := db.scanLedger(func(r *ledgerRange) {
+		t := byIdx[r.idx]
+		if t == nil {
+			t = &LedgerTotal{Distinct: true}
+			byIdx[r.idx] = t
 		}
-		return tx.Bucket(bLedger).ForEachBucket(func(dk []byte) error {
-			return tx.Bucket(bLedger).Bucket(dk).ForEach(func(k, v []byte) error {
-				var r ledgerRange
-				if err := decodeLedger(k, v, &r); err != nil {
-					return err
-				}
-				t := byIdx[r.idx]
-				if t == nil {
-					t = &LedgerTotal{Distinct: true}
-					byIdx[r.idx] = t
-				}
-				t.Chunks += r.count()
-				t.Samples += r.samples
-				t.MaxSeq = max(t.MaxSeq, r.last)
-				rs := ranges[r.idx]
-				if n := len(rs); n > 0 && rs[n-1][1] != ^uint64(0) && rs[n-1][1]+1 == r.first {
-					rs[n-1][1] = r.last // coalesce one-message records of version 1
-				} else {
-					rs = append(rs, [2]uint64{r.first, r.last})
-				}
-				ranges[r.idx] = rs
-				return nil
-			})
-		})
+		t.Chunks += r.count()
+		t.Samples += r.samples
+		t.MaxSeq = max(t.MaxSeq, r.last)
+		rs := ranges[r.idx]
+		if n := len(rs); n > 0 && rs[n-1][1] != ^uint64(0) && rs[n-1][1]+1 == r.first {
+			rs[n-1][1] = r.last // coalesce one-message records of version 1
+		} else {
+			rs = append(rs, [2]uint64{r.first, r.last})
+		}
+		ranges[r.idx] = rs
 	})
 	if err != nil {
-		return nil, fmt.Errorf("store: ledger: %w", err)
+		return nil, err
 	}
 	out := make(map[string]LedgerTotal, len(byIdx))
 	for idx, t := range byIdx {

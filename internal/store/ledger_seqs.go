@@ -12,8 +12,24 @@ import (
 // failover tests check across the stores of several gateways that each
 // acknowledged message is held exactly once.
 func (db *DB) LedgerRanges() (map[string][][2]uint64, error) {
-	names := map[uint32]string{}
 	byIdx := map[uint32][][2]uint64{}
+	names, err := db.scanLedger(func(r *ledgerRange) {
+		byIdx[r.idx] = append(byIdx[r.idx], [2]uint64{r.first, r.last})
+	})
+	if err != nil {
+		return nil, err
+	}
+	out := make(map[string][][2]uint64, len(byIdx))
+	for idx, rs := range byIdx {
+		out[names[idx]] = rs
+	}
+	return out, nil
+}
+
+// scanLedger calls fn with every record of the ingest ledger in one read
+// transaction and returns the device ids by index (verification only).
+func (db *DB) scanLedger(fn func(r *ledgerRange)) (map[uint32]string, error) {
+	names := map[uint32]string{}
 	err := db.view(func(tx *bolt.Tx) error {
 		if err := tx.Bucket(bDevices).ForEach(func(k, v []byte) error {
 			var d Device
@@ -31,7 +47,7 @@ func (db *DB) LedgerRanges() (map[string][][2]uint64, error) {
 				if err := decodeLedger(k, v, &r); err != nil {
 					return err
 				}
-				byIdx[r.idx] = append(byIdx[r.idx], [2]uint64{r.first, r.last})
+				fn(&r)
 				return nil
 			})
 		})
@@ -39,9 +55,5 @@ func (db *DB) LedgerRanges() (map[string][][2]uint64, error) {
 	if err != nil {
 		return nil, fmt.Errorf("store: ledger: %w", err)
 	}
-	out := make(map[string][][2]uint64, len(byIdx))
-	for idx, rs := range byIdx {
-		out[names[idx]] = rs
-	}
-	return out, nil
+	return names, nil
 }
