@@ -13,6 +13,8 @@ import (
 	"go.etcd.io/etcd/client/pkg/v3/transport"
 	clientv3 "go.etcd.io/etcd/client/v3"
 	"go.uber.org/zap"
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/backoff"
 
 	"github.com/pulsefleet/pulsefleet/internal/cluster"
 	"github.com/pulsefleet/pulsefleet/internal/controlplane"
@@ -87,7 +89,15 @@ type fleetOnEtcd struct {
 // the gateway stopped.
 func joinCluster(ctx context.Context, c serveConfig, log *slog.Logger, reg prometheus.Registerer) (*fleetOnEtcd, error) {
 	cfg := clientv3.Config{Endpoints: c.Etcd, DialTimeout: 5 * time.Second, Logger: zap.NewNop(),
-		DialKeepAliveTime: 2 * time.Second, DialKeepAliveTimeout: 2 * time.Second}
+		DialKeepAliveTime: 2 * time.Second, DialKeepAliveTimeout: 2 * time.Second,
+		// gRPC's reconnect backoff grows to 120 s by default: after an etcd
+		// outage the control plane (and /readyz) would come back only when
+		// the next attempt happens. Capped at 2 s, it returns within
+		// seconds of etcd, as README promises.
+		DialOptions: []grpc.DialOption{grpc.WithConnectParams(grpc.ConnectParams{
+			Backoff:           backoff.Config{BaseDelay: 100 * time.Millisecond, Multiplier: 1.6, Jitter: 0.2, MaxDelay: 2 * time.Second},
+			MinConnectTimeout: 2 * time.Second,
+		})}}
 	if c.EtcdCA != "" || c.EtcdCert != "" {
 		ti := transport.TLSInfo{TrustedCAFile: c.EtcdCA, CertFile: c.EtcdCert, KeyFile: c.EtcdKey}
 		var err error
