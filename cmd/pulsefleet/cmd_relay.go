@@ -247,6 +247,7 @@ type relayRun struct {
 	rejects map[string]uint64
 	read    uint64
 	fromSp  uint64
+	dropped uint64 // read samples never handed to the client (it had stopped): counted as unacknowledged
 	t0Wall  time.Time // --realtime: wall time of the first sample
 	t0Dev   float64
 }
@@ -510,15 +511,19 @@ func (r *relayRun) batch(ctx context.Context, b relay.Batch) error {
 // add hands chunks to the client. A recording waits for room; a live
 // source's chunk is rejected as buffer_full when there is none.
 func (r *relayRun) add(ctx context.Context, chunks []relay.Chunk) error {
-	for _, c := range chunks {
+	for i, c := range chunks {
 		mark, _ := json.Marshal(relayMark{Input: r.input, Clock: c.Mark})
 		err := r.client.Add(ctx, c.Msg, c.Samples, mark, !r.live)
 		switch {
 		case errors.Is(err, uplink.ErrFull):
 			r.rejects[relay.ReasonFull] += uint64(c.Samples)
-		case err != nil && ctx.Err() != nil:
-			return nil
 		case err != nil:
+			for _, rest := range chunks[i:] {
+				r.dropped += uint64(rest.Samples)
+			}
+			if ctx.Err() != nil {
+				return nil
+			}
 			return err
 		}
 	}

@@ -33,7 +33,7 @@ func (r *relayRun) report(st uplink.Stats) relayReport {
 	}
 	return relayReport{Device: r.o.device, LinesRead: r.read, LinesRejected: n, SamplesSent: st.SamplesSent,
 		SamplesAcked: st.SamplesAcked, Reconnects: st.Reconnects, SpooledMax: st.HeldMaxSamples, SpooledMaxB: st.HeldMaxBytes,
-		FromSpool: r.fromSp, Unacked: st.HeldSamples, RejectedReason: rej, Gaps: r.asm.Gaps(), Redirects: st.Redirects,
+		FromSpool: r.fromSp, Unacked: st.HeldSamples + int64(r.dropped), RejectedReason: rej, Gaps: r.asm.Gaps(), Redirects: st.Redirects,
 		RateHz: r.asm.RateHz(), Caution: relayCaution}
 }
 
