@@ -247,7 +247,7 @@ type relayRun struct {
 	rejects map[string]uint64
 	read    uint64
 	fromSp  uint64
-	dropped uint64 // read samples never handed to the client (it had stopped): counted as unacknowledged
+	dropped uint64    // read samples never handed to the client (it had stopped): counted as unacknowledged
 	t0Wall  time.Time // --realtime: wall time of the first sample
 	t0Dev   float64
 }
