@@ -107,6 +107,10 @@ type AlignReport struct {
 	LowQuality int
 	// RatioOutOfRange: the window's median ratio was outside (0, 10].
 	RatioOutOfRange int
+	// NoAnchor: the window would have given a pair but its recording had
+	// too few usable seconds for a room-air anchor (Anchor), so an
+	// anchored variant has no ratio for it.
+	NoAnchor int
 }
 
 // Dropped is the number of windows that gave no pair.
@@ -120,6 +124,7 @@ func (r *AlignReport) Add(o AlignReport) {
 	r.ReferenceUnstable += o.ReferenceUnstable
 	r.LowQuality += o.LowQuality
 	r.RatioOutOfRange += o.RatioOutOfRange
+	r.NoAnchor += o.NoAnchor
 }
 
 func (r AlignReport) String() string {
@@ -132,6 +137,7 @@ func (r AlignReport) String() string {
 		{r.ReferenceUnstable, "reference not stable"},
 		{r.LowQuality, "too few good device seconds (ratio withheld or SQI low)"},
 		{r.RatioOutOfRange, "ratio out of range"},
+		{r.NoAnchor, "recording without a room-air anchor"},
 	} {
 		if x.n > 0 {
 			reasons = append(reasons, fmt.Sprintf("%d %s", x.n, x.what))

@@ -132,33 +132,50 @@ func NestedLeaveOneSubjectOut(cands []Candidate, model string) (*Nested, error) 
 	return LeaveOneSubjectOutWith(cands, model, InnerLOSO(cands, model))
 }
 
-// LeaveOneSubjectOutWith is the outer loop: for each subject in turn,
-// choose asks for a candidate knowing only the other subjects, a curve is
-// fitted on their pairs of that candidate and scored on the held-out
-// subject's pairs of it beside the mean predictor.
+// LeaveOneSubjectOutWith is the outer loop over the subjects that have
+// pairs in some candidate: for each in turn, choose asks for a candidate
+// knowing only the other subjects, a curve is fitted on their pairs of that
+// candidate and scored on the held-out subject's pairs of it beside the
+// mean predictor. A subject with no pairs in any candidate is not seen at
+// all; NestedOver takes the subjects explicitly and reports such a subject
+// as withheld.
 func LeaveOneSubjectOutWith(cands []Candidate, model string, choose Chooser) (*Nested, error) {
+	var all []Pair
+	for _, c := range cands {
+		all = append(all, c.Pairs...)
+	}
+	return NestedOver(cands, subjects(all), model, choose)
+}
+
+// NestedOver is LeaveOneSubjectOutWith over the given subjects (at least
+// three; say, every person recorded), whether or not a candidate gave them
+// pairs: a subject without pairs under the candidate chosen for its fold is
+// Withheld, not dropped. Every pair's subject must be among subs.
+func NestedOver(cands []Candidate, subs []string, model string, choose Chooser) (*Nested, error) {
 	if degree(model) == 0 {
 		return nil, fmt.Errorf("model: %q, want %s or %s", model, Linear, Quadratic)
 	}
 	if len(cands) == 0 {
 		return nil, fmt.Errorf("candidates: none")
 	}
-	var all []Pair
 	out := &Nested{Model: model}
 	for _, c := range cands {
 		for i, p := range c.Pairs {
 			if p.Subject == "" {
 				return nil, fmt.Errorf("candidate %q: pairs[%d]: subject: empty, nested leave-one-subject-out needs a subject on every pair", c.Name, i)
 			}
+			if !slices.Contains(subs, p.Subject) {
+				return nil, fmt.Errorf("candidate %q: pairs[%d]: subject: %q is not among the subjects %q", c.Name, i, p.Subject, subs)
+			}
 			if err := p.validate(); err != nil {
 				return nil, fmt.Errorf("candidate %q: pairs[%d]: %w", c.Name, i, err)
 			}
 		}
-		all = append(all, c.Pairs...)
 		out.Candidates = append(out.Candidates, c.Name)
 	}
-	subs := subjects(all)
+	subs = slices.Clone(subs)
 	slices.Sort(subs)
+	subs = slices.Compact(subs)
 	if len(subs) < 3 {
 		return nil, fmt.Errorf("pairs: %d subjects, nested leave-one-subject-out needs >= 3", len(subs))
 	}

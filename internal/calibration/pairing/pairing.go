@@ -35,6 +35,10 @@ type Options struct {
 	// Align chooses windows and stability checks; its Subject names the
 	// pairs.
 	Align calibration.AlignOptions
+	// AnchorAtRecordingStart starts an anchored variant's room-air anchor
+	// at the recording's first second (docs/calibration-protocol.md,
+	// version 1) rather than at its first usable second (version 2).
+	AnchorAtRecordingStart bool
 	// ReferenceSubject selects the reference file's rows by its subject (or
 	// device) column; "" = the file names at most one.
 	ReferenceSubject string

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"slices"
 	"strings"
 
 	"gonum.org/v1/gonum/stat"
@@ -31,25 +32,45 @@ type Variant struct {
 	First, Second string // channel columns: first ("red") and second ("infrared")
 	Ratio         estimator.RatioMethod
 	LagS          int // Align.ReferenceLagS
+	// AnchorS > 0 divides each recording's ratios by its room-air anchor
+	// over the first AnchorS seconds (calibration.Anchor); 0 = raw ratio.
+	AnchorS int
 }
 
-// Name is "first/second method lag N s".
+// MinAnchorSeconds is how many usable seconds a recording's anchor needs
+// (docs/calibration-protocol.md, version 1).
+const MinAnchorSeconds = 10
+
+// Name is "first/second method lag N s[ anchor A s]".
 func (v Variant) Name() string {
 	r := v.Ratio
 	if r == "" {
 		r = estimator.RatioBeatSlope
 	}
-	return fmt.Sprintf("%s/%s %s lag %d s", v.First, v.Second, r, v.LagS)
+	s := fmt.Sprintf("%s/%s %s lag %d s", v.First, v.Second, r, v.LagS)
+	if v.AnchorS > 0 {
+		s += fmt.Sprintf(" anchor %d s", v.AnchorS)
+	}
+	return s
 }
 
 // Variants is every combination of the channel pairs, ratio methods and
-// lags given, in that nesting order.
+// lags given, in that nesting order, with the raw ratio (no anchor).
 func Variants(channels [][2]string, ratios []estimator.RatioMethod, lags []int) []Variant {
+	return AnchoredVariants(channels, ratios, lags, []int{0})
+}
+
+// AnchoredVariants is every combination of the channel pairs, ratio
+// methods, lags and anchor lengths (0 = no anchor) given, in that nesting
+// order.
+func AnchoredVariants(channels [][2]string, ratios []estimator.RatioMethod, lags, anchors []int) []Variant {
 	var out []Variant
 	for _, c := range channels {
 		for _, r := range ratios {
 			for _, l := range lags {
-				out = append(out, Variant{First: c[0], Second: c[1], Ratio: r, LagS: l})
+				for _, a := range anchors {
+					out = append(out, Variant{First: c[0], Second: c[1], Ratio: r, LagS: l, AnchorS: a})
+				}
 			}
 		}
 	}
@@ -114,6 +135,9 @@ func Candidates(recs []Recording, vs []Variant, o Options) ([]calibration.Candid
 // how well the per-second ratio tracked the reference within each
 // recording.
 type Study struct {
+	// Subjects are the recordings' subjects in order of first appearance,
+	// whether or not any variant gave them pairs.
+	Subjects   []string
 	Variants   []Variant
 	Candidates []calibration.Candidate
 	Reports    []calibration.AlignReport
@@ -151,6 +175,9 @@ func NewStudy(recs []Recording, vs []Variant, o Options) (*Study, error) {
 		r    estimator.RatioMethod
 	}
 	for _, rec := range recs {
+		if !slices.Contains(st.Subjects, rec.Subject) {
+			st.Subjects = append(st.Subjects, rec.Subject)
+		}
 		dev := map[key][]calibration.DeviceSecond{}
 		refAt := map[int64]float64{}
 		for _, r := range rec.Reference {
@@ -174,11 +201,9 @@ func NewStudy(recs []Recording, vs []Variant, o Options) (*Study, error) {
 				}
 				dev[k] = d
 			}
-			a := o.Align
-			a.ReferenceLagS, a.Subject = v.LagS, rec.Subject
-			p, rep, err := calibration.Align(d, rec.Reference, a)
+			p, rep, err := alignVariant(d, rec, v, o, ao.MinSQI)
 			if err != nil {
-				return nil, fmt.Errorf("subject %s: variant %s: %w", rec.Subject, v.Name(), err)
+				return nil, err
 			}
 			st.Candidates[i].Pairs = append(st.Candidates[i].Pairs, p...)
 			st.Reports[i].Add(rep)
@@ -201,6 +226,37 @@ func NewStudy(recs []Recording, vs []Variant, o Options) (*Study, error) {
 		}
 	}
 	return st, nil
+}
+
+// alignVariant pairs one recording's device seconds under a variant: the
+// reference moved by its lag and, for an anchored variant, every ratio
+// divided by the recording's room-air anchor. A recording without an
+// anchor gives no pairs; the windows that would have given one are
+// counted as NoAnchor.
+func alignVariant(d []calibration.DeviceSecond, rec Recording, v Variant, o Options, minSQI float64) ([]calibration.Pair, calibration.AlignReport, error) {
+	a := o.Align
+	a.ReferenceLagS, a.Subject = v.LagS, rec.Subject
+	if v.AnchorS > 0 {
+		r0, _, ok, err := calibration.Anchor(d, calibration.AnchorOptions{LengthS: v.AnchorS, MinSQI: minSQI, MinSeconds: MinAnchorSeconds, AtRecordingStart: o.AnchorAtRecordingStart})
+		if err != nil {
+			return nil, calibration.AlignReport{}, fmt.Errorf("subject %s: variant %s: %w", rec.Subject, v.Name(), err)
+		}
+		if ok {
+			d = calibration.Anchored(d, r0)
+		} else {
+			_, rep, err := calibration.Align(d, rec.Reference, a)
+			if err != nil {
+				return nil, rep, fmt.Errorf("subject %s: variant %s: %w", rec.Subject, v.Name(), err)
+			}
+			rep.NoAnchor, rep.Kept = rep.Kept, 0
+			return nil, rep, nil
+		}
+	}
+	p, rep, err := calibration.Align(d, rec.Reference, a)
+	if err != nil {
+		return nil, rep, fmt.Errorf("subject %s: variant %s: %w", rec.Subject, v.Name(), err)
+	}
+	return p, rep, nil
 }
 
 // alignDefaults fills in Align's defaults (the MinSQI the study counts
