@@ -2,6 +2,8 @@ package pairing
 
 import (
 	"fmt"
+	"math"
+	"slices"
 	"testing"
 
 	"github.com/pulsefleet/pulsefleet/estimator"
@@ -77,4 +79,63 @@ func TestCameraAnchoredProtocol(t *testing.T) {
 			logNested(t, what+": secondary (tracking, anchor 60 s)", secondary)
 		}
 	}
+}
+
+// The choice made for a held-out subject cannot depend on that subject's
+// data: replace subject 4's recordings by something else entirely (its
+// reference turned upside down around 85 %, its blue and green channels
+// swapped between hands and time-reversed) and the variant each chooser
+// picks for the fold that holds out subject 4 is the same, while that
+// subject's score changes (the replacement is real).
+func TestCameraProtocolChoiceIgnoresHeldOutSubject(t *testing.T) {
+	if testing.Short() {
+		t.Skip("pairs eight real recordings 54 ways, twice")
+	}
+	recs := cameraRecordings(t)
+	changed := make([]Recording, len(recs))
+	for i, r := range recs {
+		changed[i] = r
+		if r.Subject != "subject-4" {
+			continue
+		}
+		ref := make([]calibration.ReferenceSecond, len(r.Reference))
+		for k, s := range r.Reference {
+			ref[k] = calibration.ReferenceSecond{Second: s.Second, SpO2Pct: math.Min(100, math.Max(0, 170-s.SpO2Pct))}
+		}
+		ch := map[string][]float64{}
+		for name, xs := range r.Channels {
+			ys := slices.Clone(xs)
+			slices.Reverse(ys)
+			ch[name] = ys
+		}
+		ch["b"], ch["g"] = ch["g"], ch["b"]
+		changed[i] = Recording{Subject: r.Subject, Channels: ch, Reference: ref}
+	}
+	fold := func(recs []Recording) (nested, tracking calibration.NestedFold) {
+		st, err := NewStudy(recs, protocolVariants, protocolOptions)
+		if err != nil {
+			t.Fatal(err)
+		}
+		n, err := st.Nested(calibration.Linear)
+		if err != nil {
+			t.Fatal(err)
+		}
+		r, err := st.With(calibration.Linear, st.TrackingChooser(60))
+		if err != nil {
+			t.Fatal(err)
+		}
+		return n.Folds[3], r.Folds[3]
+	}
+	n1, r1 := fold(recs)
+	n2, r2 := fold(changed)
+	if n1.Subject != "subject-4" || n2.Subject != "subject-4" {
+		t.Fatalf("fold 4 holds out %s / %s", n1.Subject, n2.Subject)
+	}
+	if n1.Chosen != n2.Chosen || r1.Chosen != r2.Chosen {
+		t.Errorf("held-out subject 4 changed the choice: nested %q -> %q, tracking %q -> %q", n1.Chosen, n2.Chosen, r1.Chosen, r2.Chosen)
+	}
+	if n1.Fit.MAEPct == n2.Fit.MAEPct && n1.Fit.N == n2.Fit.N {
+		t.Errorf("subject 4's score did not change (MAE %.3f, n %d): the replacement did not reach the study", n1.Fit.MAEPct, n1.Fit.N)
+	}
+	t.Logf("fold subject-4: nested chose %s (MAE %.2f real, %.2f replaced); tracking chose %s", n1.Chosen, n1.Fit.MAEPct, n2.Fit.MAEPct, r1.Chosen)
 }
