@@ -29,6 +29,7 @@ type CSVWriter struct {
 	devCSV []byte // dev as a CSV field
 	pid    string // participant of the next points (ParticipantWriter)
 	closed bool
+	notes  []string // "# incomplete:" lines written after the caution (SetIncomplete)
 }
 
 // NewCSVWriter returns a CSVWriter writing to w (buffered; Close flushes).
@@ -36,12 +37,22 @@ func NewCSVWriter(w io.Writer) *CSVWriter {
 	return &CSVWriter{w: bufio.NewWriterSize(w, 64<<10), line: make([]byte, 0, 128)}
 }
 
+// SetIncomplete marks the export as lacking history: Begin writes each note
+// as a comment line "# incomplete: NOTE" after the caution line, before
+// the header (comment lines are skipped by every pulsefleet CSV reader, so
+// the file still replays). Call it before Begin.
+func (c *CSVWriter) SetIncomplete(notes []string) { c.notes = notes }
+
 // Begin writes the header row.
 func (c *CSVWriter) Begin([]store.Device) error {
 	if c.closed {
 		return errClosed
 	}
-	if _, err := c.w.WriteString(caution.Comment + CSVHeader + "\n"); err != nil {
+	head := caution.Comment
+	for _, n := range c.notes {
+		head += "# incomplete: " + strings.NewReplacer("\n", " ", "\r", " ").Replace(n) + "\n"
+	}
+	if _, err := c.w.WriteString(head + CSVHeader + "\n"); err != nil {
 		return fmt.Errorf("csv: %w", err)
 	}
 	return nil

@@ -45,6 +45,11 @@ type FHIROptions struct {
 	// chooses, e.g. https://study.example.org/participant-id) of the Patient
 	// resources that stand for participants; empty leaves system out.
 	PatientSystem string
+	// Incomplete, when not empty, says the export lacks history (a gateway
+	// could not be read): Begin writes an OperationOutcome entry first, one
+	// issue per note, severity warning, code "incomplete" (FHIR's issue
+	// type for "not all data sources ... could be reached").
+	Incomplete []string
 }
 
 // FHIRWriter writes an HL7 FHIR R4 Bundle (type collection) of Device,
@@ -91,6 +96,11 @@ func (f *FHIRWriter) Begin(devices []store.Device) error {
 	}
 	if _, err := f.w.Write(b); err != nil {
 		return fmt.Errorf("fhir: %w", err)
+	}
+	if len(f.opt.Incomplete) > 0 {
+		if err := f.entry("OperationOutcome", []byte(incompleteID), incompleteOutcome(f.opt.Incomplete)); err != nil {
+			return err
+		}
 	}
 	for _, d := range devices {
 		res, err := json.Marshal(deviceResource(d))
@@ -368,4 +378,27 @@ func deviceResource(d store.Device) fhirDevice {
 		r.Version = []fhirVersion{{Value: fw}}
 	}
 	return r
+}
+
+// incompleteID is the id of the OperationOutcome of an incomplete export.
+const incompleteID = "export-incomplete"
+
+// incompleteOutcome is an OperationOutcome with one warning issue of code
+// "incomplete" per note.
+func incompleteOutcome(notes []string) []byte {
+	type issue struct {
+		Severity    string `json:"severity"`
+		Code        string `json:"code"`
+		Diagnostics string `json:"diagnostics"`
+	}
+	oo := struct {
+		ResourceType string  `json:"resourceType"`
+		ID           string  `json:"id"`
+		Issue        []issue `json:"issue"`
+	}{ResourceType: "OperationOutcome", ID: incompleteID}
+	for _, n := range notes {
+		oo.Issue = append(oo.Issue, issue{Severity: "warning", Code: "incomplete", Diagnostics: n})
+	}
+	b, _ := json.Marshal(oo) // strings only: cannot fail
+	return b
 }

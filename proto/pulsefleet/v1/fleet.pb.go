@@ -2963,6 +2963,226 @@ func (x *ListReviewsResponse) GetReviews() []*EpisodeReview {
 	return nil
 }
 
+// ListLedgerCoverageRequest selects devices.
+type ListLedgerCoverageRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Only these devices (empty = every device in the ledger).
+	DeviceIds     []string `protobuf:"bytes,1,rep,name=device_ids,json=deviceIds,proto3" json:"device_ids,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ListLedgerCoverageRequest) Reset() {
+	*x = ListLedgerCoverageRequest{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[40]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ListLedgerCoverageRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ListLedgerCoverageRequest) ProtoMessage() {}
+
+func (x *ListLedgerCoverageRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[40]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ListLedgerCoverageRequest.ProtoReflect.Descriptor instead.
+func (*ListLedgerCoverageRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{40}
+}
+
+func (x *ListLedgerCoverageRequest) GetDeviceIds() []string {
+	if x != nil {
+		return x.DeviceIds
+	}
+	return nil
+}
+
+// SequenceSpan is a run of consecutive sequence numbers held in the ledger.
+type SequenceSpan struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// First sequence number of the run (inclusive).
+	FirstSequence uint64 `protobuf:"varint,1,opt,name=first_sequence,json=firstSequence,proto3" json:"first_sequence,omitempty"`
+	// Last sequence number of the run (inclusive).
+	LastSequence uint64 `protobuf:"varint,2,opt,name=last_sequence,json=lastSequence,proto3" json:"last_sequence,omitempty"`
+	// Device time of the run's first message, ms since the Unix epoch.
+	FirstDeviceTimeUnixMs int64 `protobuf:"varint,3,opt,name=first_device_time_unix_ms,json=firstDeviceTimeUnixMs,proto3" json:"first_device_time_unix_ms,omitempty"`
+	// Device time of the run's last message, ms since the Unix epoch.
+	LastDeviceTimeUnixMs int64 `protobuf:"varint,4,opt,name=last_device_time_unix_ms,json=lastDeviceTimeUnixMs,proto3" json:"last_device_time_unix_ms,omitempty"`
+	unknownFields        protoimpl.UnknownFields
+	sizeCache            protoimpl.SizeCache
+}
+
+func (x *SequenceSpan) Reset() {
+	*x = SequenceSpan{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[41]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SequenceSpan) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SequenceSpan) ProtoMessage() {}
+
+func (x *SequenceSpan) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[41]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SequenceSpan.ProtoReflect.Descriptor instead.
+func (*SequenceSpan) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{41}
+}
+
+func (x *SequenceSpan) GetFirstSequence() uint64 {
+	if x != nil {
+		return x.FirstSequence
+	}
+	return 0
+}
+
+func (x *SequenceSpan) GetLastSequence() uint64 {
+	if x != nil {
+		return x.LastSequence
+	}
+	return 0
+}
+
+func (x *SequenceSpan) GetFirstDeviceTimeUnixMs() int64 {
+	if x != nil {
+		return x.FirstDeviceTimeUnixMs
+	}
+	return 0
+}
+
+func (x *SequenceSpan) GetLastDeviceTimeUnixMs() int64 {
+	if x != nil {
+		return x.LastDeviceTimeUnixMs
+	}
+	return 0
+}
+
+// LedgerCoverage is one device's held sequence numbers.
+type LedgerCoverage struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Device identifier.
+	DeviceId string `protobuf:"bytes,1,opt,name=device_id,json=deviceId,proto3" json:"device_id,omitempty"`
+	// Runs of held sequence numbers, ascending, not overlapping, not adjacent.
+	Spans         []*SequenceSpan `protobuf:"bytes,2,rep,name=spans,proto3" json:"spans,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *LedgerCoverage) Reset() {
+	*x = LedgerCoverage{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[42]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *LedgerCoverage) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*LedgerCoverage) ProtoMessage() {}
+
+func (x *LedgerCoverage) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[42]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use LedgerCoverage.ProtoReflect.Descriptor instead.
+func (*LedgerCoverage) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{42}
+}
+
+func (x *LedgerCoverage) GetDeviceId() string {
+	if x != nil {
+		return x.DeviceId
+	}
+	return ""
+}
+
+func (x *LedgerCoverage) GetSpans() []*SequenceSpan {
+	if x != nil {
+		return x.Spans
+	}
+	return nil
+}
+
+// ListLedgerCoverageResponse holds one entry per device, ordered by device id.
+type ListLedgerCoverageResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The devices.
+	Devices       []*LedgerCoverage `protobuf:"bytes,1,rep,name=devices,proto3" json:"devices,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *ListLedgerCoverageResponse) Reset() {
+	*x = ListLedgerCoverageResponse{}
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[43]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *ListLedgerCoverageResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*ListLedgerCoverageResponse) ProtoMessage() {}
+
+func (x *ListLedgerCoverageResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_fleet_proto_msgTypes[43]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use ListLedgerCoverageResponse.ProtoReflect.Descriptor instead.
+func (*ListLedgerCoverageResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_fleet_proto_rawDescGZIP(), []int{43}
+}
+
+func (x *ListLedgerCoverageResponse) GetDevices() []*LedgerCoverage {
+	if x != nil {
+		return x.Devices
+	}
+	return nil
+}
+
 var File_pulsefleet_v1_fleet_proto protoreflect.FileDescriptor
 
 const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
@@ -3199,7 +3419,20 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"episodeIds\x12\x18\n" +
 	"\ahistory\x18\x03 \x01(\bR\ahistory\"M\n" +
 	"\x13ListReviewsResponse\x126\n" +
-	"\areviews\x18\x01 \x03(\v2\x1c.pulsefleet.v1.EpisodeReviewR\areviews*^\n" +
+	"\areviews\x18\x01 \x03(\v2\x1c.pulsefleet.v1.EpisodeReviewR\areviews\":\n" +
+	"\x19ListLedgerCoverageRequest\x12\x1d\n" +
+	"\n" +
+	"device_ids\x18\x01 \x03(\tR\tdeviceIds\"\xcc\x01\n" +
+	"\fSequenceSpan\x12%\n" +
+	"\x0efirst_sequence\x18\x01 \x01(\x04R\rfirstSequence\x12#\n" +
+	"\rlast_sequence\x18\x02 \x01(\x04R\flastSequence\x128\n" +
+	"\x19first_device_time_unix_ms\x18\x03 \x01(\x03R\x15firstDeviceTimeUnixMs\x126\n" +
+	"\x18last_device_time_unix_ms\x18\x04 \x01(\x03R\x14lastDeviceTimeUnixMs\"`\n" +
+	"\x0eLedgerCoverage\x12\x1b\n" +
+	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x121\n" +
+	"\x05spans\x18\x02 \x03(\v2\x1b.pulsefleet.v1.SequenceSpanR\x05spans\"U\n" +
+	"\x1aListLedgerCoverageResponse\x127\n" +
+	"\adevices\x18\x01 \x03(\v2\x1d.pulsefleet.v1.LedgerCoverageR\adevices*^\n" +
 	"\bPriority\x12\x18\n" +
 	"\x14PRIORITY_UNSPECIFIED\x10\x00\x12\x10\n" +
 	"\fPRIORITY_LOW\x10\x01\x12\x13\n" +
@@ -3208,8 +3441,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x06Source\x12\x16\n" +
 	"\x12SOURCE_UNSPECIFIED\x10\x00\x12\x12\n" +
 	"\x0eSOURCE_GATEWAY\x10\x01\x12\x11\n" +
-	"\rSOURCE_DEVICE\x10\x022\xec\n" +
-	"\n" +
+	"\rSOURCE_DEVICE\x10\x022\xd7\v\n" +
 	"\fFleetService\x12T\n" +
 	"\vListDevices\x12!.pulsefleet.v1.ListDevicesRequest\x1a\".pulsefleet.v1.ListDevicesResponse\x12N\n" +
 	"\tGetDevice\x12\x1f.pulsefleet.v1.GetDeviceRequest\x1a .pulsefleet.v1.GetDeviceResponse\x12Q\n" +
@@ -3226,7 +3458,8 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x11ListDeviceQuality\x12'.pulsefleet.v1.ListDeviceQualityRequest\x1a(.pulsefleet.v1.ListDeviceQualityResponse\x12V\n" +
 	"\vExportTrend\x12!.pulsefleet.v1.ExportTrendRequest\x1a\".pulsefleet.v1.ExportTrendResponse0\x01\x12Z\n" +
 	"\rReviewEpisode\x12#.pulsefleet.v1.ReviewEpisodeRequest\x1a$.pulsefleet.v1.ReviewEpisodeResponse\x12T\n" +
-	"\vListReviews\x12!.pulsefleet.v1.ListReviewsRequest\x1a\".pulsefleet.v1.ListReviewsResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
+	"\vListReviews\x12!.pulsefleet.v1.ListReviewsRequest\x1a\".pulsefleet.v1.ListReviewsResponse\x12i\n" +
+	"\x12ListLedgerCoverage\x12(.pulsefleet.v1.ListLedgerCoverageRequest\x1a).pulsefleet.v1.ListLedgerCoverageResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
 var (
 	file_pulsefleet_v1_fleet_proto_rawDescOnce sync.Once
@@ -3241,52 +3474,56 @@ func file_pulsefleet_v1_fleet_proto_rawDescGZIP() []byte {
 }
 
 var file_pulsefleet_v1_fleet_proto_enumTypes = make([]protoimpl.EnumInfo, 2)
-var file_pulsefleet_v1_fleet_proto_msgTypes = make([]protoimpl.MessageInfo, 41)
+var file_pulsefleet_v1_fleet_proto_msgTypes = make([]protoimpl.MessageInfo, 45)
 var file_pulsefleet_v1_fleet_proto_goTypes = []any{
-	(Priority)(0),                     // 0: pulsefleet.v1.Priority
-	(Source)(0),                       // 1: pulsefleet.v1.Source
-	(*TrendPoint)(nil),                // 2: pulsefleet.v1.TrendPoint
-	(*Stat)(nil),                      // 3: pulsefleet.v1.Stat
-	(*TrendBucket)(nil),               // 4: pulsefleet.v1.TrendBucket
-	(*Device)(nil),                    // 5: pulsefleet.v1.Device
-	(*ListDevicesRequest)(nil),        // 6: pulsefleet.v1.ListDevicesRequest
-	(*ListDevicesResponse)(nil),       // 7: pulsefleet.v1.ListDevicesResponse
-	(*GetDeviceRequest)(nil),          // 8: pulsefleet.v1.GetDeviceRequest
-	(*GetDeviceResponse)(nil),         // 9: pulsefleet.v1.GetDeviceResponse
-	(*QueryTrendRequest)(nil),         // 10: pulsefleet.v1.QueryTrendRequest
-	(*QueryTrendResponse)(nil),        // 11: pulsefleet.v1.QueryTrendResponse
-	(*WatchEventsRequest)(nil),        // 12: pulsefleet.v1.WatchEventsRequest
-	(*DeviceChange)(nil),              // 13: pulsefleet.v1.DeviceChange
-	(*WatchEventsResponse)(nil),       // 14: pulsefleet.v1.WatchEventsResponse
-	(*Episode)(nil),                   // 15: pulsefleet.v1.Episode
-	(*EpisodeEvent)(nil),              // 16: pulsefleet.v1.EpisodeEvent
-	(*ListEpisodesRequest)(nil),       // 17: pulsefleet.v1.ListEpisodesRequest
-	(*ListEpisodesResponse)(nil),      // 18: pulsefleet.v1.ListEpisodesResponse
-	(*WatchEpisodesRequest)(nil),      // 19: pulsefleet.v1.WatchEpisodesRequest
-	(*WatchEpisodesResponse)(nil),     // 20: pulsefleet.v1.WatchEpisodesResponse
-	(*AcknowledgeAlarmRequest)(nil),   // 21: pulsefleet.v1.AcknowledgeAlarmRequest
-	(*AcknowledgeAlarmResponse)(nil),  // 22: pulsefleet.v1.AcknowledgeAlarmResponse
-	(*PauseAlarmsRequest)(nil),        // 23: pulsefleet.v1.PauseAlarmsRequest
-	(*PauseAlarmsResponse)(nil),       // 24: pulsefleet.v1.PauseAlarmsResponse
-	(*GetAlarmProfileRequest)(nil),    // 25: pulsefleet.v1.GetAlarmProfileRequest
-	(*GetAlarmProfileResponse)(nil),   // 26: pulsefleet.v1.GetAlarmProfileResponse
-	(*SetAlarmProfileRequest)(nil),    // 27: pulsefleet.v1.SetAlarmProfileRequest
-	(*SetAlarmProfileResponse)(nil),   // 28: pulsefleet.v1.SetAlarmProfileResponse
-	(*Distribution)(nil),              // 29: pulsefleet.v1.Distribution
-	(*DeviceQuality)(nil),             // 30: pulsefleet.v1.DeviceQuality
-	(*GetDeviceQualityRequest)(nil),   // 31: pulsefleet.v1.GetDeviceQualityRequest
-	(*GetDeviceQualityResponse)(nil),  // 32: pulsefleet.v1.GetDeviceQualityResponse
-	(*ListDeviceQualityRequest)(nil),  // 33: pulsefleet.v1.ListDeviceQualityRequest
-	(*ListDeviceQualityResponse)(nil), // 34: pulsefleet.v1.ListDeviceQualityResponse
-	(*ExportTrendRequest)(nil),        // 35: pulsefleet.v1.ExportTrendRequest
-	(*ExportTrendResponse)(nil),       // 36: pulsefleet.v1.ExportTrendResponse
-	(*EpisodeReview)(nil),             // 37: pulsefleet.v1.EpisodeReview
-	(*ReviewEpisodeRequest)(nil),      // 38: pulsefleet.v1.ReviewEpisodeRequest
-	(*ReviewEpisodeResponse)(nil),     // 39: pulsefleet.v1.ReviewEpisodeResponse
-	(*ListReviewsRequest)(nil),        // 40: pulsefleet.v1.ListReviewsRequest
-	(*ListReviewsResponse)(nil),       // 41: pulsefleet.v1.ListReviewsResponse
-	nil,                               // 42: pulsefleet.v1.Device.LabelsEntry
-	(Mode)(0),                         // 43: pulsefleet.v1.Mode
+	(Priority)(0),                      // 0: pulsefleet.v1.Priority
+	(Source)(0),                        // 1: pulsefleet.v1.Source
+	(*TrendPoint)(nil),                 // 2: pulsefleet.v1.TrendPoint
+	(*Stat)(nil),                       // 3: pulsefleet.v1.Stat
+	(*TrendBucket)(nil),                // 4: pulsefleet.v1.TrendBucket
+	(*Device)(nil),                     // 5: pulsefleet.v1.Device
+	(*ListDevicesRequest)(nil),         // 6: pulsefleet.v1.ListDevicesRequest
+	(*ListDevicesResponse)(nil),        // 7: pulsefleet.v1.ListDevicesResponse
+	(*GetDeviceRequest)(nil),           // 8: pulsefleet.v1.GetDeviceRequest
+	(*GetDeviceResponse)(nil),          // 9: pulsefleet.v1.GetDeviceResponse
+	(*QueryTrendRequest)(nil),          // 10: pulsefleet.v1.QueryTrendRequest
+	(*QueryTrendResponse)(nil),         // 11: pulsefleet.v1.QueryTrendResponse
+	(*WatchEventsRequest)(nil),         // 12: pulsefleet.v1.WatchEventsRequest
+	(*DeviceChange)(nil),               // 13: pulsefleet.v1.DeviceChange
+	(*WatchEventsResponse)(nil),        // 14: pulsefleet.v1.WatchEventsResponse
+	(*Episode)(nil),                    // 15: pulsefleet.v1.Episode
+	(*EpisodeEvent)(nil),               // 16: pulsefleet.v1.EpisodeEvent
+	(*ListEpisodesRequest)(nil),        // 17: pulsefleet.v1.ListEpisodesRequest
+	(*ListEpisodesResponse)(nil),       // 18: pulsefleet.v1.ListEpisodesResponse
+	(*WatchEpisodesRequest)(nil),       // 19: pulsefleet.v1.WatchEpisodesRequest
+	(*WatchEpisodesResponse)(nil),      // 20: pulsefleet.v1.WatchEpisodesResponse
+	(*AcknowledgeAlarmRequest)(nil),    // 21: pulsefleet.v1.AcknowledgeAlarmRequest
+	(*AcknowledgeAlarmResponse)(nil),   // 22: pulsefleet.v1.AcknowledgeAlarmResponse
+	(*PauseAlarmsRequest)(nil),         // 23: pulsefleet.v1.PauseAlarmsRequest
+	(*PauseAlarmsResponse)(nil),        // 24: pulsefleet.v1.PauseAlarmsResponse
+	(*GetAlarmProfileRequest)(nil),     // 25: pulsefleet.v1.GetAlarmProfileRequest
+	(*GetAlarmProfileResponse)(nil),    // 26: pulsefleet.v1.GetAlarmProfileResponse
+	(*SetAlarmProfileRequest)(nil),     // 27: pulsefleet.v1.SetAlarmProfileRequest
+	(*SetAlarmProfileResponse)(nil),    // 28: pulsefleet.v1.SetAlarmProfileResponse
+	(*Distribution)(nil),               // 29: pulsefleet.v1.Distribution
+	(*DeviceQuality)(nil),              // 30: pulsefleet.v1.DeviceQuality
+	(*GetDeviceQualityRequest)(nil),    // 31: pulsefleet.v1.GetDeviceQualityRequest
+	(*GetDeviceQualityResponse)(nil),   // 32: pulsefleet.v1.GetDeviceQualityResponse
+	(*ListDeviceQualityRequest)(nil),   // 33: pulsefleet.v1.ListDeviceQualityRequest
+	(*ListDeviceQualityResponse)(nil),  // 34: pulsefleet.v1.ListDeviceQualityResponse
+	(*ExportTrendRequest)(nil),         // 35: pulsefleet.v1.ExportTrendRequest
+	(*ExportTrendResponse)(nil),        // 36: pulsefleet.v1.ExportTrendResponse
+	(*EpisodeReview)(nil),              // 37: pulsefleet.v1.EpisodeReview
+	(*ReviewEpisodeRequest)(nil),       // 38: pulsefleet.v1.ReviewEpisodeRequest
+	(*ReviewEpisodeResponse)(nil),      // 39: pulsefleet.v1.ReviewEpisodeResponse
+	(*ListReviewsRequest)(nil),         // 40: pulsefleet.v1.ListReviewsRequest
+	(*ListReviewsResponse)(nil),        // 41: pulsefleet.v1.ListReviewsResponse
+	(*ListLedgerCoverageRequest)(nil),  // 42: pulsefleet.v1.ListLedgerCoverageRequest
+	(*SequenceSpan)(nil),               // 43: pulsefleet.v1.SequenceSpan
+	(*LedgerCoverage)(nil),             // 44: pulsefleet.v1.LedgerCoverage
+	(*ListLedgerCoverageResponse)(nil), // 45: pulsefleet.v1.ListLedgerCoverageResponse
+	nil,                                // 46: pulsefleet.v1.Device.LabelsEntry
+	(Mode)(0),                          // 47: pulsefleet.v1.Mode
 }
 var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	1,  // 0: pulsefleet.v1.TrendPoint.source:type_name -> pulsefleet.v1.Source
@@ -3294,8 +3531,8 @@ var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	3,  // 2: pulsefleet.v1.TrendBucket.pulse_bpm:type_name -> pulsefleet.v1.Stat
 	3,  // 3: pulsefleet.v1.TrendBucket.pi_pct:type_name -> pulsefleet.v1.Stat
 	3,  // 4: pulsefleet.v1.TrendBucket.sqi:type_name -> pulsefleet.v1.Stat
-	43, // 5: pulsefleet.v1.Device.mode:type_name -> pulsefleet.v1.Mode
-	42, // 6: pulsefleet.v1.Device.labels:type_name -> pulsefleet.v1.Device.LabelsEntry
+	47, // 5: pulsefleet.v1.Device.mode:type_name -> pulsefleet.v1.Mode
+	46, // 6: pulsefleet.v1.Device.labels:type_name -> pulsefleet.v1.Device.LabelsEntry
 	2,  // 7: pulsefleet.v1.Device.latest:type_name -> pulsefleet.v1.TrendPoint
 	0,  // 8: pulsefleet.v1.Device.alarm_priority:type_name -> pulsefleet.v1.Priority
 	5,  // 9: pulsefleet.v1.ListDevicesResponse.devices:type_name -> pulsefleet.v1.Device
@@ -3320,41 +3557,45 @@ var file_pulsefleet_v1_fleet_proto_depIdxs = []int32{
 	15, // 28: pulsefleet.v1.EpisodeReview.episode:type_name -> pulsefleet.v1.Episode
 	37, // 29: pulsefleet.v1.ReviewEpisodeResponse.review:type_name -> pulsefleet.v1.EpisodeReview
 	37, // 30: pulsefleet.v1.ListReviewsResponse.reviews:type_name -> pulsefleet.v1.EpisodeReview
-	6,  // 31: pulsefleet.v1.FleetService.ListDevices:input_type -> pulsefleet.v1.ListDevicesRequest
-	8,  // 32: pulsefleet.v1.FleetService.GetDevice:input_type -> pulsefleet.v1.GetDeviceRequest
-	10, // 33: pulsefleet.v1.FleetService.QueryTrend:input_type -> pulsefleet.v1.QueryTrendRequest
-	12, // 34: pulsefleet.v1.FleetService.WatchEvents:input_type -> pulsefleet.v1.WatchEventsRequest
-	17, // 35: pulsefleet.v1.FleetService.ListEpisodes:input_type -> pulsefleet.v1.ListEpisodesRequest
-	19, // 36: pulsefleet.v1.FleetService.WatchEpisodes:input_type -> pulsefleet.v1.WatchEpisodesRequest
-	21, // 37: pulsefleet.v1.FleetService.AcknowledgeAlarm:input_type -> pulsefleet.v1.AcknowledgeAlarmRequest
-	23, // 38: pulsefleet.v1.FleetService.PauseAlarms:input_type -> pulsefleet.v1.PauseAlarmsRequest
-	25, // 39: pulsefleet.v1.FleetService.GetAlarmProfile:input_type -> pulsefleet.v1.GetAlarmProfileRequest
-	27, // 40: pulsefleet.v1.FleetService.SetAlarmProfile:input_type -> pulsefleet.v1.SetAlarmProfileRequest
-	31, // 41: pulsefleet.v1.FleetService.GetDeviceQuality:input_type -> pulsefleet.v1.GetDeviceQualityRequest
-	33, // 42: pulsefleet.v1.FleetService.ListDeviceQuality:input_type -> pulsefleet.v1.ListDeviceQualityRequest
-	35, // 43: pulsefleet.v1.FleetService.ExportTrend:input_type -> pulsefleet.v1.ExportTrendRequest
-	38, // 44: pulsefleet.v1.FleetService.ReviewEpisode:input_type -> pulsefleet.v1.ReviewEpisodeRequest
-	40, // 45: pulsefleet.v1.FleetService.ListReviews:input_type -> pulsefleet.v1.ListReviewsRequest
-	7,  // 46: pulsefleet.v1.FleetService.ListDevices:output_type -> pulsefleet.v1.ListDevicesResponse
-	9,  // 47: pulsefleet.v1.FleetService.GetDevice:output_type -> pulsefleet.v1.GetDeviceResponse
-	11, // 48: pulsefleet.v1.FleetService.QueryTrend:output_type -> pulsefleet.v1.QueryTrendResponse
-	14, // 49: pulsefleet.v1.FleetService.WatchEvents:output_type -> pulsefleet.v1.WatchEventsResponse
-	18, // 50: pulsefleet.v1.FleetService.ListEpisodes:output_type -> pulsefleet.v1.ListEpisodesResponse
-	20, // 51: pulsefleet.v1.FleetService.WatchEpisodes:output_type -> pulsefleet.v1.WatchEpisodesResponse
-	22, // 52: pulsefleet.v1.FleetService.AcknowledgeAlarm:output_type -> pulsefleet.v1.AcknowledgeAlarmResponse
-	24, // 53: pulsefleet.v1.FleetService.PauseAlarms:output_type -> pulsefleet.v1.PauseAlarmsResponse
-	26, // 54: pulsefleet.v1.FleetService.GetAlarmProfile:output_type -> pulsefleet.v1.GetAlarmProfileResponse
-	28, // 55: pulsefleet.v1.FleetService.SetAlarmProfile:output_type -> pulsefleet.v1.SetAlarmProfileResponse
-	32, // 56: pulsefleet.v1.FleetService.GetDeviceQuality:output_type -> pulsefleet.v1.GetDeviceQualityResponse
-	34, // 57: pulsefleet.v1.FleetService.ListDeviceQuality:output_type -> pulsefleet.v1.ListDeviceQualityResponse
-	36, // 58: pulsefleet.v1.FleetService.ExportTrend:output_type -> pulsefleet.v1.ExportTrendResponse
-	39, // 59: pulsefleet.v1.FleetService.ReviewEpisode:output_type -> pulsefleet.v1.ReviewEpisodeResponse
-	41, // 60: pulsefleet.v1.FleetService.ListReviews:output_type -> pulsefleet.v1.ListReviewsResponse
-	46, // [46:61] is the sub-list for method output_type
-	31, // [31:46] is the sub-list for method input_type
-	31, // [31:31] is the sub-list for extension type_name
-	31, // [31:31] is the sub-list for extension extendee
-	0,  // [0:31] is the sub-list for field type_name
+	43, // 31: pulsefleet.v1.LedgerCoverage.spans:type_name -> pulsefleet.v1.SequenceSpan
+	44, // 32: pulsefleet.v1.ListLedgerCoverageResponse.devices:type_name -> pulsefleet.v1.LedgerCoverage
+	6,  // 33: pulsefleet.v1.FleetService.ListDevices:input_type -> pulsefleet.v1.ListDevicesRequest
+	8,  // 34: pulsefleet.v1.FleetService.GetDevice:input_type -> pulsefleet.v1.GetDeviceRequest
+	10, // 35: pulsefleet.v1.FleetService.QueryTrend:input_type -> pulsefleet.v1.QueryTrendRequest
+	12, // 36: pulsefleet.v1.FleetService.WatchEvents:input_type -> pulsefleet.v1.WatchEventsRequest
+	17, // 37: pulsefleet.v1.FleetService.ListEpisodes:input_type -> pulsefleet.v1.ListEpisodesRequest
+	19, // 38: pulsefleet.v1.FleetService.WatchEpisodes:input_type -> pulsefleet.v1.WatchEpisodesRequest
+	21, // 39: pulsefleet.v1.FleetService.AcknowledgeAlarm:input_type -> pulsefleet.v1.AcknowledgeAlarmRequest
+	23, // 40: pulsefleet.v1.FleetService.PauseAlarms:input_type -> pulsefleet.v1.PauseAlarmsRequest
+	25, // 41: pulsefleet.v1.FleetService.GetAlarmProfile:input_type -> pulsefleet.v1.GetAlarmProfileRequest
+	27, // 42: pulsefleet.v1.FleetService.SetAlarmProfile:input_type -> pulsefleet.v1.SetAlarmProfileRequest
+	31, // 43: pulsefleet.v1.FleetService.GetDeviceQuality:input_type -> pulsefleet.v1.GetDeviceQualityRequest
+	33, // 44: pulsefleet.v1.FleetService.ListDeviceQuality:input_type -> pulsefleet.v1.ListDeviceQualityRequest
+	35, // 45: pulsefleet.v1.FleetService.ExportTrend:input_type -> pulsefleet.v1.ExportTrendRequest
+	38, // 46: pulsefleet.v1.FleetService.ReviewEpisode:input_type -> pulsefleet.v1.ReviewEpisodeRequest
+	40, // 47: pulsefleet.v1.FleetService.ListReviews:input_type -> pulsefleet.v1.ListReviewsRequest
+	42, // 48: pulsefleet.v1.FleetService.ListLedgerCoverage:input_type -> pulsefleet.v1.ListLedgerCoverageRequest
+	7,  // 49: pulsefleet.v1.FleetService.ListDevices:output_type -> pulsefleet.v1.ListDevicesResponse
+	9,  // 50: pulsefleet.v1.FleetService.GetDevice:output_type -> pulsefleet.v1.GetDeviceResponse
+	11, // 51: pulsefleet.v1.FleetService.QueryTrend:output_type -> pulsefleet.v1.QueryTrendResponse
+	14, // 52: pulsefleet.v1.FleetService.WatchEvents:output_type -> pulsefleet.v1.WatchEventsResponse
+	18, // 53: pulsefleet.v1.FleetService.ListEpisodes:output_type -> pulsefleet.v1.ListEpisodesResponse
+	20, // 54: pulsefleet.v1.FleetService.WatchEpisodes:output_type -> pulsefleet.v1.WatchEpisodesResponse
+	22, // 55: pulsefleet.v1.FleetService.AcknowledgeAlarm:output_type -> pulsefleet.v1.AcknowledgeAlarmResponse
+	24, // 56: pulsefleet.v1.FleetService.PauseAlarms:output_type -> pulsefleet.v1.PauseAlarmsResponse
+	26, // 57: pulsefleet.v1.FleetService.GetAlarmProfile:output_type -> pulsefleet.v1.GetAlarmProfileResponse
+	28, // 58: pulsefleet.v1.FleetService.SetAlarmProfile:output_type -> pulsefleet.v1.SetAlarmProfileResponse
+	32, // 59: pulsefleet.v1.FleetService.GetDeviceQuality:output_type -> pulsefleet.v1.GetDeviceQualityResponse
+	34, // 60: pulsefleet.v1.FleetService.ListDeviceQuality:output_type -> pulsefleet.v1.ListDeviceQualityResponse
+	36, // 61: pulsefleet.v1.FleetService.ExportTrend:output_type -> pulsefleet.v1.ExportTrendResponse
+	39, // 62: pulsefleet.v1.FleetService.ReviewEpisode:output_type -> pulsefleet.v1.ReviewEpisodeResponse
+	41, // 63: pulsefleet.v1.FleetService.ListReviews:output_type -> pulsefleet.v1.ListReviewsResponse
+	45, // 64: pulsefleet.v1.FleetService.ListLedgerCoverage:output_type -> pulsefleet.v1.ListLedgerCoverageResponse
+	49, // [49:65] is the sub-list for method output_type
+	33, // [33:49] is the sub-list for method input_type
+	33, // [33:33] is the sub-list for extension type_name
+	33, // [33:33] is the sub-list for extension extendee
+	0,  // [0:33] is the sub-list for field type_name
 }
 
 func init() { file_pulsefleet_v1_fleet_proto_init() }
@@ -3377,7 +3618,7 @@ func file_pulsefleet_v1_fleet_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_pulsefleet_v1_fleet_proto_rawDesc), len(file_pulsefleet_v1_fleet_proto_rawDesc)),
 			NumEnums:      2,
-			NumMessages:   41,
+			NumMessages:   45,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

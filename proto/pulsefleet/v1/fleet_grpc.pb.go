@@ -19,21 +19,22 @@ import (
 const _ = grpc.SupportPackageIsVersion9
 
 const (
-	FleetService_ListDevices_FullMethodName       = "/pulsefleet.v1.FleetService/ListDevices"
-	FleetService_GetDevice_FullMethodName         = "/pulsefleet.v1.FleetService/GetDevice"
-	FleetService_QueryTrend_FullMethodName        = "/pulsefleet.v1.FleetService/QueryTrend"
-	FleetService_WatchEvents_FullMethodName       = "/pulsefleet.v1.FleetService/WatchEvents"
-	FleetService_ListEpisodes_FullMethodName      = "/pulsefleet.v1.FleetService/ListEpisodes"
-	FleetService_WatchEpisodes_FullMethodName     = "/pulsefleet.v1.FleetService/WatchEpisodes"
-	FleetService_AcknowledgeAlarm_FullMethodName  = "/pulsefleet.v1.FleetService/AcknowledgeAlarm"
-	FleetService_PauseAlarms_FullMethodName       = "/pulsefleet.v1.FleetService/PauseAlarms"
-	FleetService_GetAlarmProfile_FullMethodName   = "/pulsefleet.v1.FleetService/GetAlarmProfile"
-	FleetService_SetAlarmProfile_FullMethodName   = "/pulsefleet.v1.FleetService/SetAlarmProfile"
-	FleetService_GetDeviceQuality_FullMethodName  = "/pulsefleet.v1.FleetService/GetDeviceQuality"
-	FleetService_ListDeviceQuality_FullMethodName = "/pulsefleet.v1.FleetService/ListDeviceQuality"
-	FleetService_ExportTrend_FullMethodName       = "/pulsefleet.v1.FleetService/ExportTrend"
-	FleetService_ReviewEpisode_FullMethodName     = "/pulsefleet.v1.FleetService/ReviewEpisode"
-	FleetService_ListReviews_FullMethodName       = "/pulsefleet.v1.FleetService/ListReviews"
+	FleetService_ListDevices_FullMethodName        = "/pulsefleet.v1.FleetService/ListDevices"
+	FleetService_GetDevice_FullMethodName          = "/pulsefleet.v1.FleetService/GetDevice"
+	FleetService_QueryTrend_FullMethodName         = "/pulsefleet.v1.FleetService/QueryTrend"
+	FleetService_WatchEvents_FullMethodName        = "/pulsefleet.v1.FleetService/WatchEvents"
+	FleetService_ListEpisodes_FullMethodName       = "/pulsefleet.v1.FleetService/ListEpisodes"
+	FleetService_WatchEpisodes_FullMethodName      = "/pulsefleet.v1.FleetService/WatchEpisodes"
+	FleetService_AcknowledgeAlarm_FullMethodName   = "/pulsefleet.v1.FleetService/AcknowledgeAlarm"
+	FleetService_PauseAlarms_FullMethodName        = "/pulsefleet.v1.FleetService/PauseAlarms"
+	FleetService_GetAlarmProfile_FullMethodName    = "/pulsefleet.v1.FleetService/GetAlarmProfile"
+	FleetService_SetAlarmProfile_FullMethodName    = "/pulsefleet.v1.FleetService/SetAlarmProfile"
+	FleetService_GetDeviceQuality_FullMethodName   = "/pulsefleet.v1.FleetService/GetDeviceQuality"
+	FleetService_ListDeviceQuality_FullMethodName  = "/pulsefleet.v1.FleetService/ListDeviceQuality"
+	FleetService_ExportTrend_FullMethodName        = "/pulsefleet.v1.FleetService/ExportTrend"
+	FleetService_ReviewEpisode_FullMethodName      = "/pulsefleet.v1.FleetService/ReviewEpisode"
+	FleetService_ListReviews_FullMethodName        = "/pulsefleet.v1.FleetService/ListReviews"
+	FleetService_ListLedgerCoverage_FullMethodName = "/pulsefleet.v1.FleetService/ListLedgerCoverage"
 )
 
 // FleetServiceClient is the client API for FleetService service.
@@ -86,6 +87,13 @@ type FleetServiceClient interface {
 	// ListReviews returns the reviews of stored episodes (the newest per
 	// episode, or every revision), each with its episode.
 	ListReviews(ctx context.Context, in *ListReviewsRequest, opts ...grpc.CallOption) (*ListReviewsResponse, error)
+	// ListLedgerCoverage returns, per device, the message sequence numbers this
+	// gateway's ingest ledger holds (merged into spans) with the device times
+	// they cover. A device numbers its data messages from 1 without holes, so a
+	// client merging several gateways' history learns which of a device's
+	// messages none of the gateways it reached holds: their history is on
+	// another gateway (one that is down) or past ledger retention.
+	ListLedgerCoverage(ctx context.Context, in *ListLedgerCoverageRequest, opts ...grpc.CallOption) (*ListLedgerCoverageResponse, error)
 }
 
 type fleetServiceClient struct {
@@ -273,6 +281,16 @@ func (c *fleetServiceClient) ListReviews(ctx context.Context, in *ListReviewsReq
 	return out, nil
 }
 
+func (c *fleetServiceClient) ListLedgerCoverage(ctx context.Context, in *ListLedgerCoverageRequest, opts ...grpc.CallOption) (*ListLedgerCoverageResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(ListLedgerCoverageResponse)
+	err := c.cc.Invoke(ctx, FleetService_ListLedgerCoverage_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // FleetServiceServer is the server API for FleetService service.
 // All implementations must embed UnimplementedFleetServiceServer
 // for forward compatibility.
@@ -323,6 +341,13 @@ type FleetServiceServer interface {
 	// ListReviews returns the reviews of stored episodes (the newest per
 	// episode, or every revision), each with its episode.
 	ListReviews(context.Context, *ListReviewsRequest) (*ListReviewsResponse, error)
+	// ListLedgerCoverage returns, per device, the message sequence numbers this
+	// gateway's ingest ledger holds (merged into spans) with the device times
+	// they cover. A device numbers its data messages from 1 without holes, so a
+	// client merging several gateways' history learns which of a device's
+	// messages none of the gateways it reached holds: their history is on
+	// another gateway (one that is down) or past ledger retention.
+	ListLedgerCoverage(context.Context, *ListLedgerCoverageRequest) (*ListLedgerCoverageResponse, error)
 	mustEmbedUnimplementedFleetServiceServer()
 }
 
@@ -377,6 +402,9 @@ func (UnimplementedFleetServiceServer) ReviewEpisode(context.Context, *ReviewEpi
 }
 func (UnimplementedFleetServiceServer) ListReviews(context.Context, *ListReviewsRequest) (*ListReviewsResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method ListReviews not implemented")
+}
+func (UnimplementedFleetServiceServer) ListLedgerCoverage(context.Context, *ListLedgerCoverageRequest) (*ListLedgerCoverageResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method ListLedgerCoverage not implemented")
 }
 func (UnimplementedFleetServiceServer) mustEmbedUnimplementedFleetServiceServer() {}
 func (UnimplementedFleetServiceServer) testEmbeddedByValue()                      {}
@@ -648,6 +676,24 @@ func _FleetService_ListReviews_Handler(srv interface{}, ctx context.Context, dec
 	return interceptor(ctx, in, info, handler)
 }
 
+func _FleetService_ListLedgerCoverage_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(ListLedgerCoverageRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(FleetServiceServer).ListLedgerCoverage(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: FleetService_ListLedgerCoverage_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(FleetServiceServer).ListLedgerCoverage(ctx, req.(*ListLedgerCoverageRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // FleetService_ServiceDesc is the grpc.ServiceDesc for FleetService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -702,6 +748,10 @@ var FleetService_ServiceDesc = grpc.ServiceDesc{
 		{
 			MethodName: "ListReviews",
 			Handler:    _FleetService_ListReviews_Handler,
+		},
+		{
+			MethodName: "ListLedgerCoverage",
+			Handler:    _FleetService_ListLedgerCoverage_Handler,
 		},
 	},
 	Streams: []grpc.StreamDesc{
