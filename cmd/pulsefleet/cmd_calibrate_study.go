@@ -16,7 +16,7 @@ import (
 	"github.com/pulsefleet/pulsefleet/internal/caution"
 )
 
-const calibrateStudySynopsis = "study --raw FILE --reference FILE [--subject NAME] ... --rate HZ [--channels A/B,...] [--ratios slope,derivative,spectral] [--lags 0,5,...] [--format text|json]"
+const calibrateStudySynopsis = "study --raw FILE --reference FILE [--subject NAME] ... --rate HZ [--channels A/B,...] [--ratios slope,derivative,spectral] [--lags 0,5,...] [--anchors 0,60,...] [--format text|json]"
 
 // runCalibrateStudy pairs recordings under every variant (channel pair,
 // ratio method, reference lag) and scores two ways of choosing among them
@@ -24,7 +24,7 @@ const calibrateStudySynopsis = "study --raw FILE --reference FILE [--subject NAM
 func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 	fs := newFlagSet("calibrate", calibrateStudySynopsis, s.err)
 	var raws, refs, subs stringList
-	var channels, ratios, lags, ruleRatio, model, format string
+	var channels, ratios, lags, anchors, ruleRatio, model, format string
 	o := pairing.Options{Align: calibration.AlignOptions{}}
 	fs.Var(&raws, "raw", "raw CSV with every channel column named in --channels; repeat for several recordings (both hands of a person: same --subject)")
 	fs.Var(&refs, "reference", "reference CSV: t_s,spo2_ref_pct (or reference_pct); one per --raw, or one for all")
@@ -33,6 +33,8 @@ func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 	fs.StringVar(&channels, "channels", "red/ir", "channel pairs to compare, first/second, comma-separated (e.g. r/g,b/g,r/b)")
 	fs.StringVar(&ratios, "ratios", "slope,derivative,spectral", "ratio methods to compare: slope, derivative, spectral")
 	fs.StringVar(&lags, "lags", "0,5,10,15,20,25,30", "reference lags to compare, s (device second k against reference second k+lag)")
+	fs.StringVar(&anchors, "anchors", "0", "room-air anchor lengths to compare, s (each recording's ratios divided by their median over A s from its first usable second; 0 = raw ratio); the tracking chooser uses the first")
+	fs.BoolVar(&o.AnchorAtRecordingStart, "anchor-at-start", false, "start the anchor at the recording's first second instead of its first usable one (docs/calibration-protocol.md version 1)")
 	fs.StringVar(&ruleRatio, "rule-ratio", string(estimator.RatioDerivativeSlope), "the ratio method the rule fixes beforehand")
 	fs.StringVar(&model, "model", calibration.Linear, "curve model: linear or quadratic")
 	fs.IntVar(&o.ADCBits, "adc-bits", 0, "converter resolution in bits; 0 = unknown (float input)")
@@ -65,68 +67,85 @@ func runCalibrateStudy(ctx context.Context, args []string, s stdio) error {
 	if err != nil {
 		return err
 	}
+	anchorList, err := parseStudyAnchors(anchors)
+	if err != nil {
+		return err
+	}
 	recs, err := readStudyRecordings(raws, refs, subs, cols)
 	if err != nil {
 		return err
 	}
-	st, err := pairing.NewStudy(recs, pairing.Variants(pairsList, methods, lagList), o)
+	st, err := pairing.NewStudy(recs, pairing.AnchoredVariants(pairsList, methods, lagList, anchorList), o)
 	if err != nil {
 		return err
 	}
-	nested, err := calibration.NestedLeaveOneSubjectOut(st.Candidates, model)
+	ev, err := evaluateStudy(st, model, rule, anchorList[0])
 	if err != nil {
-		return fmt.Errorf("nested leave-one-subject-out: %w", err)
-	}
-	ruled, err := calibration.LeaveOneSubjectOutWith(st.Candidates, model, st.RuleChooser(rule))
-	if err != nil {
-		return fmt.Errorf("rule leave-one-subject-out: %w", err)
-	}
-	// What each chooser picks on all subjects: the variant to pair with.
-	all := studySubjects(recs)
-	finalNested, err := calibration.InnerLOSO(st.Candidates, model)(all)
-	if err != nil {
-		return fmt.Errorf("choice on all subjects: %w", err)
-	}
-	finalRule, err := st.RuleChooser(rule)(all)
-	if err != nil {
-		return fmt.Errorf("choice on all subjects: %w", err)
+		return err
 	}
 	if format == "json" {
-		return calibration.WriteStudyJSON(s.out, map[string]*calibration.Nested{"nested": nested, "rule": ruled}, map[string]any{
-			"variants": len(st.Candidates), "subjects": all,
-			"choice_nested": st.Candidates[finalNested.Index].Name, "choice_rule": st.Candidates[finalRule.Index].Name,
+		return calibration.WriteStudyJSON(s.out, map[string]*calibration.Nested{"nested": ev.nested, "tracking": ev.tracking, "rule": ev.rule}, map[string]any{
+			"variants": len(st.Candidates), "subjects": st.Subjects, "tracking_anchor_s": anchorList[0],
+			"choice_nested": ev.pick[0], "choice_tracking": ev.pick[1], "choice_rule": ev.pick[2],
 		})
 	}
-	fmt.Fprintf(s.out, "%d recordings of %d subjects, %d variants (channels x ratio methods x lags)\n\n", len(recs), len(all), len(st.Candidates))
-	return printStudyText(s.out, nested, ruled, rule, st.Candidates[finalNested.Index].Name, st.Candidates[finalRule.Index].Name)
+	fmt.Fprintf(s.out, "%d recordings of %d subjects, %d variants (channels x ratio methods x lags x anchors)\n\n", len(recs), len(st.Subjects), len(st.Candidates))
+	return printStudyText(s.out, ev, rule, anchorList[0])
 }
 
-// printStudyText writes both choosers' leave-one-subject-out results and
+// studyEvaluation is the three choosers' leave-one-subject-out results
+// and what each picks on all subjects (nested, tracking, rule).
+type studyEvaluation struct {
+	nested, tracking, rule *calibration.Nested
+	pick                   [3]string
+}
+
+// evaluateStudy runs every chooser over every recorded subject (a subject
+// no variant gave pairs is withheld, not dropped) and asks each for its
+// pick on all subjects.
+func evaluateStudy(st *pairing.Study, model string, rule estimator.RatioMethod, trackAnchor int) (*studyEvaluation, error) {
+	ev := &studyEvaluation{}
+	var err error
+	if ev.nested, err = st.Nested(model); err != nil {
+		return nil, fmt.Errorf("nested leave-one-subject-out: %w", err)
+	}
+	if ev.tracking, err = st.With(model, st.TrackingChooser(trackAnchor)); err != nil {
+		return nil, fmt.Errorf("tracking leave-one-subject-out: %w", err)
+	}
+	if ev.rule, err = st.With(model, st.RuleChooser(rule)); err != nil {
+		return nil, fmt.Errorf("rule leave-one-subject-out: %w", err)
+	}
+	for i, ch := range []calibration.Chooser{calibration.InnerLOSO(st.Candidates, model), st.TrackingChooser(trackAnchor), st.RuleChooser(rule)} {
+		c, err := ch(st.Subjects)
+		if err != nil {
+			return nil, fmt.Errorf("choice on all subjects: %w", err)
+		}
+		ev.pick[i] = st.Candidates[c.Index].Name
+	}
+	return ev, nil
+}
+
+// printStudyText writes the choosers' leave-one-subject-out results and
 // their picks on all subjects as text.
-func printStudyText(w io.Writer, nested, ruled *calibration.Nested, rule estimator.RatioMethod, pickNested, pickRule string) error {
-	if err := nested.WriteText(w, "nested: variant with the lowest inner leave-one-subject-out MAE"); err != nil {
+func printStudyText(w io.Writer, ev *studyEvaluation, rule estimator.RatioMethod, trackAnchor int) error {
+	if err := ev.nested.WriteText(w, "nested: variant with the lowest inner leave-one-subject-out MAE"); err != nil {
 		return err
 	}
 	fmt.Fprintln(w)
-	if err := ruled.WriteText(w, fmt.Sprintf("rule: ratio %s fixed beforehand, channels by usable seconds, lag by within-recording tracking", rule)); err != nil {
+	if err := ev.tracking.WriteText(w, fmt.Sprintf("tracking: variant (anchor %d s) whose ratio tracks the reference best within training recordings", trackAnchor)); err != nil {
 		return err
 	}
-	fmt.Fprintf(w, "\non all subjects: nested picks %s; rule picks %s\n", pickNested, pickRule)
+	fmt.Fprintln(w)
+	if err := ev.rule.WriteText(w, fmt.Sprintf("rule: ratio %s fixed beforehand, channels by usable seconds, lag by within-recording tracking", rule)); err != nil {
+		return err
+	}
+	fmt.Fprintf(w, "\non all subjects: nested picks %s; tracking picks %s; rule picks %s\n", ev.pick[0], ev.pick[1], ev.pick[2])
 	fmt.Fprintln(w, "fit a curve with: calibrate pairs (--red-col/--ir-col/--ratio/--lag of the pick, --quality-weights) then calibrate --pairs.")
+	fmt.Fprintln(w, "anchor A s: each recording's ratios divided by their median over A s from its first usable second (the person at rest on room air);")
+	fmt.Fprintln(w, "  an anchored pick is a study result only: calibrate pairs, the curve file and the gateway do not take a per-device anchor yet.")
 	fmt.Fprintln(w, "bias = mean(predicted - reference); SD = population SD; Arms^2 = bias^2 + SD^2; the mean predictor predicts the training subjects' mean reference.")
 	fmt.Fprintf(w, "\n%s\n", caution.Line)
 	return nil
-}
-
-// studySubjects lists the recordings' subjects, each once, in order.
-func studySubjects(recs []pairing.Recording) []string {
-	var all []string
-	for _, r := range recs {
-		if !slices.Contains(all, r.Subject) {
-			all = append(all, r.Subject)
-		}
-	}
-	return all
 }
 
 // parseStudyRatios reads --ratios and --rule-ratio; the rule's method must
@@ -161,6 +180,19 @@ func parseStudyLags(lags string) ([]int, error) {
 		lagList = append(lagList, v)
 	}
 	return lagList, nil
+}
+
+// parseStudyAnchors reads --anchors: integers 0..3600 s (0 = raw ratio).
+func parseStudyAnchors(anchors string) ([]int, error) {
+	var out []int
+	for _, a := range strings.Split(anchors, ",") {
+		v, err := strconv.Atoi(strings.TrimSpace(a))
+		if err != nil || v < 0 || v > 3600 {
+			return nil, usagef("--anchors: %q, want integers 0..3600 s (0 = no anchor)", a)
+		}
+		out = append(out, v)
+	}
+	return out, nil
 }
 
 // readStudyRecordings reads each --raw with its --reference (one for all,

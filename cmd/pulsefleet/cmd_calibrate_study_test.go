@@ -134,3 +134,38 @@ func TestEstimateRatioMethod(t *testing.T) {
 		t.Errorf("--ratio fft: exit %d, %q; want exit 2 naming --ratio", code, stderr)
 	}
 }
+
+// With room-air anchors the study also reports the tracking chooser over
+// every recorded subject; anchoring at the recording's start (protocol
+// version 1) leaves subject 1 without an anchor, so no variant has pairs
+// from every training subject and the command fails saying why.
+func TestCalibrateStudyAnchors(t *testing.T) {
+	args := []string{"calibrate", "study", "--rate", "30", "--channels", "b/g", "--lags", "10", "--anchors", "60"}
+	for s := 1; s <= 4; s++ {
+		for _, h := range []string{"left", "right"} {
+			args = append(args, "--raw", fmt.Sprintf("%s/subject-%d/ppg_%s.csv", cameraDir, s, h),
+				"--reference", fmt.Sprintf("%s/subject-%d/reference.csv", cameraDir, s))
+		}
+	}
+	code, stdout, stderr := runCmd(args...)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, stderr)
+	}
+	for _, want := range []string{
+		"8 recordings of 4 subjects, 3 variants",
+		"tracking: variant (anchor 60 s)", "subject-1: chose b/g slope lag 10 s anchor 60 s",
+		"  pooled", "do not take a per-device anchor yet", caution.Line,
+	} {
+		if !strings.Contains(stdout, want) {
+			t.Errorf("anchored study output lacks %q:\n%s", want, stdout)
+		}
+	}
+	code, _, stderr = runCmd(append(args, "--anchor-at-start")...)
+	if code != 1 || !strings.Contains(stderr, "no candidate has pairs from every other subject") {
+		t.Errorf("--anchor-at-start: exit %d, %q; want exit 1 saying no candidate has pairs from every other subject", code, stderr)
+	}
+	code, _, stderr = runCmd(append(args, "--anchors", "60,-5")...)
+	if code != 2 || !strings.Contains(stderr, `--anchors: "-5"`) {
+		t.Errorf("--anchors -5: exit %d, %q; want exit 2 naming the value", code, stderr)
+	}
+}
