@@ -21,7 +21,13 @@
 //     subject out and lets a Chooser pick a candidate knowing only the other
 //     subjects: InnerLOSO (nested leave-one-subject-out, Varma & Simon 2006)
 //     or a rule (package pairing). The held-out subject never influences
-//     the choice it is scored with.
+//     the choice it is scored with. NestedOver takes the subjects
+//     explicitly, so one that no candidate gave pairs is withheld, not
+//     dropped.
+//   - Anchor/Anchored: a recording's room-air anchor R0 (median usable
+//     ratio over its first seconds at rest) and its ratios divided by it,
+//     so that a curve maps R/R0 and a person's factor in R divides out
+//     (docs/calibration-protocol.md).
 //   - Pair.Weight: weighted least squares (Align's QualityWeights sets it
 //     from the device's SQI); scores never weigh.
 //   - Result/Calibrate: all of the above with text, JSON, SVG and HTML output.

@@ -5,9 +5,10 @@
 // good-quality stretches and says how many it dropped and why.
 //
 // Study pairs a set of recordings under several variants (channel pair,
-// ratio method, reference lag) from one read of each, and offers a rule
-// for choosing among them that never scores a variant across people
-// (RuleChooser).
+// ratio method, reference lag, room-air anchor length) from one read of
+// each, and offers rules for choosing among them that never score a
+// variant across people (RuleChooser, TrackingChooser); Study.Nested and
+// Study.With evaluate a choice over every recorded subject.
 //
 // It lives apart from package calibration so that calibration stays free of
 // the estimator (the estimator may use calibration curves).
