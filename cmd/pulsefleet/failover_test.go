@@ -5,6 +5,8 @@ import (
 	"fmt"
 	"math"
 	"sort"
+	"strconv"
+	"strings"
 	"testing"
 	"time"
 
@@ -23,10 +25,10 @@ const failoverBound = cluster.DefaultTTL + 12*time.Second
 // Three gateways on a real etcd, 300 raw devices; kill -9 one gateway:
 // within failoverBound all its devices stream to survivors; restart it: it
 // takes about a third back. Afterwards, across the three stores: every
-// acknowledged message is held, no device had sessions open at two
-// gateways at once, and a message held twice was committed by the killed
-// gateway without its acknowledgement reaching the device (the only
-// window; counted and bounded).
+// acknowledged message is held exactly once (the restarted gateway dropped
+// its copy of the messages it had committed without its acknowledgement
+// reaching the device, which resent them to a survivor: cluster package
+// doc), and no device had sessions open at two gateways at once.
 func TestFleetOnEtcdKill9Failover(t *testing.T) {
 	if testing.Short() {
 		t.Skip("process test")
@@ -70,6 +72,8 @@ func TestFleetOnEtcdKill9Failover(t *testing.T) {
 		t.Errorf("restarted gateway streams %d of %d devices, want about a third back", per[victim], devices)
 	}
 	t.Logf("restarted gateway %d: %d devices back, all %d streaming %v after the restart", victim, per[victim], devices, back.Round(10*time.Millisecond))
+	dropped := f.waitReconciled(t, victim, 60*time.Second)
+	t.Logf("restarted gateway %d checked with the survivors: dropped its copy of %d messages they hold (%v after the restart)", victim, dropped, time.Since(restartedAt).Round(10*time.Millisecond))
 	time.Sleep(2 * time.Second)
 	cancel()
 	rep := <-repc
@@ -78,6 +82,24 @@ func TestFleetOnEtcdKill9Failover(t *testing.T) {
 		t.Fatal("no simulator report")
 	}
 	checkAcrossStores(t, f.openStores(), rep, victim, killedAt)
+}
+
+// waitReconciled waits until gateway i says every other gateway answered
+// which of its newest messages they hold, and returns how many it dropped.
+func (f *etcdFleet) waitReconciled(t testing.TB, i int, within time.Duration) int {
+	t.Helper()
+	deadline := time.Now().Add(within)
+	for {
+		m := scrapeMetrics(f.kids[i].httpAddr)
+		if findLine(m, "pulsefleet_cluster_resent_reconciled ") == "pulsefleet_cluster_resent_reconciled 1" {
+			n, _ := strconv.ParseFloat(strings.TrimPrefix(findLine(m, "pulsefleet_cluster_resent_dropped_total "), "pulsefleet_cluster_resent_dropped_total "), 64)
+			return int(n)
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("gateway %d has not checked its newest messages with the others within %v", i, within)
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
 }
 
 // waitAllConnected waits until every one of n devices streams to exactly one
@@ -142,7 +164,7 @@ func checkAcrossStores(t *testing.T, dbs []*store.DB, rep *sim.Report, victim in
 			t.Fatal(err)
 		}
 	}
-	acked, dups, onlyDead := 0, 0, 0
+	acked, dups := 0, 0
 	for id, dr := range rep.PerDevice {
 		held := map[uint64][]int{}
 		for i := range dbs {
@@ -164,13 +186,8 @@ func checkAcrossStores(t *testing.T, dbs []*store.DB, rep *sim.Report, victim in
 			}
 			dups++
 			sort.Ints(where)
-			if where[0] == where[1] {
-				t.Errorf("%s: message %d stored twice by gateway %d", id, s, where[0])
-			}
-			if !contains(where, victim) {
-				t.Errorf("%s: message %d held by gateways %v, none of them the killed one", id, s, where)
-			} else {
-				onlyDead++
+			if dups <= 20 {
+				t.Errorf("%s: message %d held %d times, by gateways %v (killed: %d)", id, s, len(where), where, victim)
 			}
 		}
 		checkSessions(t, dbs, id, victim, killedAt)
@@ -178,12 +195,10 @@ func checkAcrossStores(t *testing.T, dbs []*store.DB, rep *sim.Report, victim in
 	if acked == 0 {
 		t.Fatal("nothing acknowledged: the test proved nothing")
 	}
-	// Each device of the killed gateway can have at most its batches in
-	// flight at the kill (committed, acknowledgement lost) stored again.
-	if bound := len(rep.PerDevice) * 4; dups > bound {
-		t.Errorf("%d messages held by two gateways, want at most %d (the kill's unacknowledged window)", dups, bound)
+	if dups > 0 {
+		t.Errorf("%d messages held more than once across the stores, want none", dups)
 	}
-	t.Logf("%d messages acknowledged, all held; %d held twice, all by the killed gateway and a survivor (committed, acknowledgement lost in the kill)", acked, dups)
+	t.Logf("%d messages acknowledged, each held exactly once across the %d stores", acked, len(dbs))
 }
 
 // checkSessions fails when a device had sessions open at two gateways at

@@ -342,6 +342,9 @@ type metrics struct {
 	etcdUp  prometheus.Gauge
 	fences  prometheus.Gauge
 	waits   prometheus.Counter
+	// resent.go
+	dropped    prometheus.Counter
+	reconciled prometheus.Gauge
 }
 
 func newMetrics(reg prometheus.Registerer) (*metrics, error) {
@@ -354,9 +357,13 @@ func newMetrics(reg prometheus.Registerer) (*metrics, error) {
 			Help: "Devices whose fence in etcd this gateway holds (its open device streams)."}),
 		waits: prometheus.NewCounter(prometheus.CounterOpts{Name: "pulsefleet_cluster_fence_waits_total",
 			Help: "Stream starts that found the device's fence held by another gateway and waited for it."}),
+		dropped: prometheus.NewCounter(prometheus.CounterOpts{Name: "pulsefleet_cluster_resent_dropped_total",
+			Help: "Messages this gateway dropped from its store after a restart because another gateway holds them (the device resent them there: this gateway's acknowledgement never reached it)."}),
+		reconciled: prometheus.NewGauge(prometheus.GaugeOpts{Name: "pulsefleet_cluster_resent_reconciled",
+			Help: "1 once every other live gateway has answered which of this gateway's newest messages it holds (after this gateway's start), 0 before."}),
 	}
 	if reg != nil {
-		for _, c := range []prometheus.Collector{m.members, m.etcdUp, m.fences, m.waits} {
+		for _, c := range []prometheus.Collector{m.members, m.etcdUp, m.fences, m.waits, m.dropped, m.reconciled} {
 			if err := reg.Register(c); err != nil {
 				return nil, fmt.Errorf("cluster: metrics: %w", err)
 			}

@@ -44,6 +44,8 @@ type Gateway struct {
 
 	ring *shard.Ring // nil without sharding
 
+	resentPlan map[string]store.HeldRange // fleet on etcd: records to check with the other gateways (resent.go)
+
 	calMu     sync.RWMutex
 	calAssign map[string]string // calibration assignments: "device:ID"/"model:M" -> "name@vN"
 
@@ -94,6 +96,9 @@ func New(opt Options) (*Gateway, error) {
 	if g.backups, err = newBackupMetrics(opt.Registerer, opt.Backups, opt.Store.ID()); err != nil {
 		return nil, fmt.Errorf("gateway: metrics: %w", err)
 	}
+	if err := g.planResent(); err != nil {
+		return nil, fmt.Errorf("gateway: %w", err)
+	}
 	g.web = g.newWeb()
 	return g, nil
 }
@@ -139,6 +144,9 @@ func (g *Gateway) Serve(ctx context.Context, grpcLis, httpLis net.Listener) erro
 	go func() { defer wg.Done(); g.watchdog(wdCtx) }()
 	wg.Add(1)
 	go func() { defer wg.Done(); g.runBackups(ctx) }()
+	wg.Add(2)
+	go func() { defer wg.Done(); g.answerHeld(wdCtx) }()
+	go func() { defer wg.Done(); g.reconcileResent(wdCtx) }()
 
 	var hs *http.Server
 	if httpLis != nil {

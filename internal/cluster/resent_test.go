@@ -1,0 +1,101 @@
+package cluster
+
+import (
+	"context"
+	"reflect"
+	"testing"
+	"time"
+
+	clientv3 "go.etcd.io/etcd/client/v3"
+
+	"github.com/pulsefleet/pulsefleet/internal/etcdtest"
+	"github.com/pulsefleet/pulsefleet/internal/store"
+)
+
+// storeWith opens a store holding device dev's messages seqs, arriving 250
+// ms apart from arrival on.
+func storeWith(t *testing.T, dev string, arrival int64, from, to uint64) *store.DB {
+	t.Helper()
+	db, err := store.Open(t.TempDir(), store.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { db.Close() })
+	b := &store.Batch{Devices: []*store.Device{{ID: dev, Mode: "summary"}}}
+	for s := from; s <= to; s++ {
+		b.Chunks = append(b.Chunks, store.Chunk{Device: dev, Seq: s, DeviceTimeMS: arrival - 40, ArrivalMS: arrival})
+		arrival += 250
+	}
+	if err := db.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	return db
+}
+
+// A gateway back from a kill asks the others through etcd which of its
+// newest messages they hold: each live member answers from its store;
+// LaterCopies picks what the asker drops (the later copies only); a member
+// that does not answer is reported, not taken as holding nothing.
+func TestAskWhichMessagesOthersHold(t *testing.T) {
+	s := etcdtest.Start(t)
+	c := s.Client(t)
+	a, b, m := join(t, c, "a:1"), join(t, c, "b:1"), join(t, c, "c:1")
+	defer a.Close()
+	defer b.Close()
+	defer m.Close()
+	waitFor(t, 5*time.Second, "three members", func() bool { return len(a.Members()) == 3 })
+	const t0 = int64(1_700_000_000_000)
+	own := storeWith(t, "x", t0, 1, 12)            // a: 1..12, committed before its kill
+	resent := storeWith(t, "x", t0+60_000, 9, 30) // b: 9..30, resent there after the kill
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	go b.ServeHeld(ctx, resent.LedgerHeld)
+
+	got, missing, err := a.Ask(ctx, map[string][2]uint64{"x": {1, 12}, "y": {1, 3}}, 2*time.Second)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !reflect.DeepEqual(missing, []string{"c:1"}) {
+		t.Errorf("missing %v, want [c:1] (it serves no answers)", missing)
+	}
+	hb := got["b:1"]["x"]
+	if len(hb) != 1 || hb[0].First != 9 || hb[0].Last != 12 || hb[0].FirstArrMS != t0+60_000 {
+		t.Fatalf("b's answer for x: %+v, want 9..12 arriving from %d", got["b:1"], t0+60_000)
+	}
+	if _, ok := got["b:1"]["y"]; ok {
+		t.Errorf("b answered for y, which it never held")
+	}
+	newest, err := own.LedgerNewest()
+	if err != nil {
+		t.Fatal(err)
+	}
+	drops := LaterCopies(newest["x"], hb)
+	if !reflect.DeepEqual(drops, [][2]uint64{{9, 12}}) {
+		t.Fatalf("later copies %v, want [[9 12]]", drops)
+	}
+	// An earlier copy elsewhere (b's record older than a's) is kept here:
+	// that gateway drops its own when it asks.
+	early := newest["x"]
+	early.LastArrMS = t0 + 120_000
+	if d := LaterCopies(early, hb); len(d) != 0 {
+		t.Errorf("copies not later than ours dropped: %v", d)
+	}
+	if n, err := own.DropMessages("x", 9, 12); err != nil || n != 4 {
+		t.Fatalf("dropped %d, %v", n, err)
+	}
+
+	// Once the third member answers too, nothing is missing; the question
+	// and answers are gone from etcd afterwards.
+	none := storeWith(t, "z", t0, 1, 1)
+	go m.ServeHeld(ctx, none.LedgerHeld)
+	got, missing, err = a.Ask(ctx, map[string][2]uint64{"x": {1, 8}}, 5*time.Second)
+	if err != nil || len(missing) != 0 || len(got) != 2 || len(got["c:1"]) != 0 {
+		t.Fatalf("second ask: %v, missing %v, %v", got, missing, err)
+	}
+	for _, p := range []string{"/t/ask/", "/t/answer/"} {
+		r, err := c.Get(ctx, p, clientv3.WithPrefix())
+		if err != nil || r.Count != 0 {
+			t.Errorf("%s: %d keys left in etcd, %v", p, r.Count, err)
+		}
+	}
+}
