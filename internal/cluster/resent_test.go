@@ -45,7 +45,7 @@ func TestAskWhichMessagesOthersHold(t *testing.T) {
 	defer m.Close()
 	waitFor(t, 5*time.Second, "three members", func() bool { return len(a.Members()) == 3 })
 	const t0 = int64(1_700_000_000_000)
-	own := storeWith(t, "x", t0, 1, 12)            // a: 1..12, committed before its kill
+	own := storeWith(t, "x", t0, 1, 12)           // a: 1..12, committed before its kill
 	resent := storeWith(t, "x", t0+60_000, 9, 30) // b: 9..30, resent there after the kill
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
