@@ -246,15 +246,6 @@ func fmtSpan(a, b int64) string {
 	return fmt.Sprintf("[%d, %d)", a, b)
 }
 
-func contains(s []int, v int) bool {
-	for _, x := range s {
-		if x == v {
-			return true
-		}
-	}
-	return false
-}
-
 // BenchmarkFailover: three gateways on a real etcd, N summary devices
 // (summaries keep the estimator's CPU out of the figure on a small
 // machine); kill -9 the gateway that streams the most: reported is the time
