@@ -58,12 +58,18 @@ func TestCalibrateStudyReportsBothChoosers(t *testing.T) {
 			} `json:"pooled"`
 			Improvement float64 `json:"improvement"`
 		} `json:"rule"`
+		Tracking struct {
+			Folds []struct{ Subject, Chosen string } `json:"folds"`
+		} `json:"tracking"`
 	}
 	if err := json.Unmarshal([]byte(stdout), &v); err != nil {
 		t.Fatalf("json: %v\n%s", err, stdout)
 	}
 	if v.Caution != caution.Text || len(v.Rule.Folds) != 4 || v.Rule.Pooled.N < 100 {
 		t.Errorf("json: caution %q, %d rule folds, pooled n %d; want the caution, 4 folds, >= 100 pairs", v.Caution, len(v.Rule.Folds), v.Rule.Pooled.N)
+	}
+	if len(v.Tracking.Folds) != 4 {
+		t.Errorf("json: %d tracking folds, want 4", len(v.Tracking.Folds))
 	}
 }
 
