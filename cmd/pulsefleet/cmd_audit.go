@@ -27,7 +27,14 @@ meaning that long ago (24h). --action PREFIX keeps actions that start with it
 
 --data DIR reads a stopped gateway's store; with the gateway running give
 --gateway ADDR and a token (--token or $PULSEFLEET_TOKEN; the viewer role
-suffices).`
+suffices).
+
+--gateway A,B,... merges the logs of several gateways (each keeps its own),
+newest first, with a GATEWAY column (JSON: an object with "entries", each
+{"gateway", "entry"}); an entry held by two gateways is listed once. A
+gateway that cannot be read leaves the others' entries listed: the output
+says INCOMPLETE and names it (JSON: "incomplete": true and "gaps"), and the
+command exits 3.`
 
 func init() {
 	register(command{name: "audit", summary: auditSummary, run: runAudit})
@@ -37,7 +44,7 @@ func runAudit(ctx context.Context, args []string, s stdio) error {
 	var af adminFlags
 	var since, action, format string
 	var limit int
-	fs := newFlagSet("audit", "[--data DIR | --gateway ADDR --token T] [--since T] [--action PREFIX] [--limit N] [--format table|json]", s.err)
+	fs := newFlagSet("audit", "[--data DIR | --gateway ADDR[,ADDR...] --token T] [--since T] [--action PREFIX] [--limit N] [--format table|json]", s.err)
 	af.register(fs)
 	fs.StringVar(&since, "since", "", "only entries at or after T: RFC 3339, Unix seconds, or a duration ago such as 24h (default: all)")
 	fs.StringVar(&action, "action", "", "only actions starting with PREFIX, e.g. auth. or alarm.")
@@ -55,6 +62,15 @@ func runAudit(ctx context.Context, args []string, s stdio) error {
 	fromMS, err := parseSince(since, time.Now())
 	if err != nil {
 		return err
+	}
+	if af.data == "" && af.cf.gateways != "" {
+		addrs, err := af.cf.addrs()
+		if err != nil {
+			return err
+		}
+		if len(addrs) > 1 {
+			return runMergedAudit(ctx, &af.cf, addrs, &pb.ListAuditRequest{FromUnixMs: fromMS, ActionPrefix: action, Limit: uint32(limit)}, format, s)
+		}
 	}
 	api, cctx, closeFn, err := af.open(ctx, false)
 	if err != nil {

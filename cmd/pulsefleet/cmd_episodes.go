@@ -27,10 +27,18 @@ Per episode: the gateway that stored it and its id there (episode ids are per
 gateway), device, condition, priority, onset, announced, ended, lowest SpO2,
 who acknowledged it, and the newest review (label, reviewer, when, note,
 revision). --participant PID keeps the episodes whose onset lies in one of
-the participant's enrolments. Several gateways (comma-separated) are merged. A gateway that
-cannot be read is named on stderr after the episodes of the others, and the
-command exits 1: a listing never silently lacks a gateway. The CSV is the
-review export (one row per episode, empty review columns when unreviewed);
+the participant's enrolments.
+
+Several gateways (comma-separated) are merged into one list, newest onset
+first. An episode stored on two gateways (the same device, condition and
+onset: a device that moved during it) is listed once, from the gateway
+holding most of it, and the number dropped is said on stderr. A gateway that
+cannot be read does not stop the others: the listing says INCOMPLETE, names
+it and the devices whose history the reachable gateways' ledgers show to be
+partly elsewhere (stderr; "# incomplete:" comment lines in the CSV;
+"incomplete": true and "gaps" in the JSON), and the command exits 3, so a
+script cannot take a partial listing for a whole one. The CSV is the review
+export (one row per episode, empty review columns when unreviewed);
 'pulsefleet reviews' exports every revision.`,
 		run: runEpisodes,
 	})
@@ -83,8 +91,10 @@ func runEpisodes(ctx context.Context, args []string, s stdio) error {
 		fromMS = time.Now().Add(-*since).UnixMilli()
 	}
 	rows, failed := fetchEpisodes(ctx, &cf, addrs, *device, fromMS)
+	rows, dups := dropDuplicateEpisodes(rows)
+	reachable := reachableOf(addrs, failed)
 	if *pid != "" {
-		ivs, err := remoteEnrolments(ctx, &cf, addrs)
+		ivs, err := remoteEnrolments(ctx, &cf, reachable)
 		if err != nil {
 			return err
 		}
@@ -95,18 +105,79 @@ func runEpisodes(ctx context.Context, args []string, s stdio) error {
 			fmt.Fprintf(s.err, "pulsefleet episodes: warning: gateway %s gave its limit of %d episodes; older ones are not listed (narrow with --since or --device)\n", a, episodeLimit)
 		}
 	}
+	var only []string
+	if *device != "" {
+		only = []string{*device}
+	}
+	gaps := findGaps(ctx, &cf, reachable, failed, only)
 	switch *format {
 	case "csv":
-		err = writeEpisodesCSV(s.out, rows)
+		err = writeEpisodesCSV(s.out, rows, gaps.notes("episodes", 1000))
 	case "json":
-		err = writeEpisodesJSON(s.out, rows, failed)
+		err = writeEpisodesJSON(s.out, rows, failed, gaps, dups)
 	default:
 		err = writeEpisodesTable(s.out, rows, len(addrs) > 1)
 	}
 	if err != nil {
 		return err
 	}
-	return gatewayFailures("episodes", len(addrs), failed)
+	if dups > 0 {
+		fmt.Fprintf(s.err, "pulsefleet episodes: %d episodes stored on two gateways (a device moved during the episode) are listed once, from the gateway with the most of it\n", dups)
+	}
+	printGaps(s.err, "episodes", gaps, "episodes")
+	return incomplete("episodes", len(addrs), failed)
+}
+
+// dropDuplicateEpisodes keeps one row per episode stored on several
+// gateways (the same device, condition and onset: after a failover the
+// survivor goes on with the episode its predecessor stored): the one that
+// has most of it (ended, then acknowledged, then reviewed, then announced,
+// then the later end). Order is kept; it returns how many were dropped.
+func dropDuplicateEpisodes(rows []episodeRow) ([]episodeRow, int) {
+	type key struct {
+		dev, cond string
+		onset     int64
+	}
+	keyOf := func(r episodeRow) key {
+		return key{r.Episode.GetDeviceId(), r.Episode.GetCondition(), r.Episode.GetOnsetUnixMs()}
+	}
+	best := map[key]int{}
+	for i, r := range rows {
+		k := keyOf(r)
+		if j, ok := best[k]; !ok || episodeRank(r).after(episodeRank(rows[j])) {
+			best[k] = i
+		}
+	}
+	out := rows[:0:0]
+	for i, r := range rows {
+		if best[keyOf(r)] == i {
+			out = append(out, r)
+		}
+	}
+	return out, len(rows) - len(out)
+}
+
+// rank orders copies of one episode by how much of it they hold.
+type rank [5]int64
+
+func (a rank) after(b rank) bool {
+	for i := range a {
+		if a[i] != b[i] {
+			return a[i] > b[i]
+		}
+	}
+	return false
+}
+
+func episodeRank(r episodeRow) rank {
+	e := r.Episode
+	b := func(v bool) int64 {
+		if v {
+			return 1
+		}
+		return 0
+	}
+	return rank{b(e.GetEndedUnixMs() > 0), b(e.GetAcknowledgedUnixMs() > 0), b(r.Review != nil), b(e.GetAnnouncedUnixMs() > 0), e.GetEndedUnixMs()}
 }
 
 // participantEpisodes keeps the rows whose onset lies in one of pid's
@@ -231,9 +302,16 @@ func episodeCells(r episodeRow) []string {
 	return append(cells, rv.GetLabel(), rv.GetReviewer(), msTime(rv.GetReviewedUnixMs()), rv.GetNote(), strconv.FormatUint(uint64(rv.GetRevision()), 10))
 }
 
-func writeEpisodesCSV(w io.Writer, rows []episodeRow) error {
+// writeEpisodesCSV writes the review export; notes (a merged answer's gaps)
+// become "# incomplete:" comment lines after the caution.
+func writeEpisodesCSV(w io.Writer, rows []episodeRow, notes []string) error {
 	if err := caution.WriteComment(w); err != nil {
 		return err
+	}
+	for _, n := range notes {
+		if _, err := fmt.Fprintf(w, "# incomplete: %s\n", oneLine(n)); err != nil {
+			return err
+		}
 	}
 	cw := csv.NewWriter(w)
 	if err := cw.Write(episodeColumns); err != nil {
@@ -248,7 +326,10 @@ func writeEpisodesCSV(w io.Writer, rows []episodeRow) error {
 	return cw.Error()
 }
 
-func writeEpisodesJSON(w io.Writer, rows []episodeRow, failed []gatewayError) error {
+// writeEpisodesJSON writes the episodes with, when the answer is merged
+// without a gateway, "incomplete": true and the gaps, and the number of
+// duplicates dropped.
+func writeEpisodesJSON(w io.Writer, rows []episodeRow, failed []gatewayError, gaps *historyGaps, dups int) error {
 	mo := protojson.MarshalOptions{UseProtoNames: true}
 	type item struct {
 		Gateway string          `json:"gateway"`
@@ -256,10 +337,13 @@ func writeEpisodesJSON(w io.Writer, rows []episodeRow, failed []gatewayError) er
 		Review  json.RawMessage `json:"review,omitempty"`
 	}
 	out := struct {
-		Caution     string   `json:"caution"`
-		Episodes    []item   `json:"episodes"`
-		Unreachable []string `json:"unreadable_gateways,omitempty"`
-	}{Caution: caution.Text, Episodes: []item{}}
+		Caution     string       `json:"caution"`
+		Incomplete  bool         `json:"incomplete"`
+		Episodes    []item       `json:"episodes"`
+		Duplicates  int          `json:"duplicates_dropped"`
+		Unreachable []string     `json:"unreadable_gateways,omitempty"`
+		Gaps        *historyGaps `json:"gaps,omitempty"`
+	}{Caution: caution.Text, Episodes: []item{}, Incomplete: gaps != nil, Duplicates: dups, Gaps: gaps}
 	for _, r := range rows {
 		eb, err := mo.Marshal(r.Episode)
 		if err != nil {

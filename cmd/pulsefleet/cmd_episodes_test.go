@@ -126,7 +126,7 @@ func readEpisodesCSV(t *testing.T, out string) []map[string]string {
 // episodes of two gateways are merged; review records a label (and a
 // change keeps the first as revision 1); the CSV export and the reviews
 // export read it back; the audit log names it; a gateway that is down is
-// named and makes the command exit 1 while the others' episodes are listed.
+// named and makes the command exit 3 while the others' episodes are listed.
 func TestEpisodesAndReviewCommands(t *testing.T) {
 	a := startEpisodeGateway(t, "ward-a-01")
 	b := startEpisodeGateway(t, "home-b-01", "home-b-02")
@@ -194,11 +194,12 @@ func TestEpisodesAndReviewCommands(t *testing.T) {
 		t.Errorf("audit lists %d episode.review entries, want 2 with label and note:\n%s", n, out)
 	}
 
-	// A gateway that is down: the others are listed, it is named, exit 1.
+	// A gateway that is down: the others are listed, it is named, exit 3
+	// (exitIncomplete).
 	down := downAddr(t)
 	code, out, errOut = runCmd("episodes", "--gateway", a+","+down+","+b, "--format", "json")
-	if code != 1 || !strings.Contains(errOut, "1 of 3 gateways could not be read") || !strings.Contains(errOut, "gateway "+down) {
-		t.Errorf("with a gateway down: exit %d, stderr %q; want 1 naming %s", code, errOut, down)
+	if code != exitIncomplete || !strings.Contains(errOut, "1 of 3 gateways could not be read") || !strings.Contains(errOut, "gateway "+down) {
+		t.Errorf("with a gateway down: exit %d, stderr %q; want %d naming %s", code, errOut, exitIncomplete, down)
 	}
 	var doc struct {
 		Caution    string            `json:"caution"`

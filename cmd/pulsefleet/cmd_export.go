@@ -45,8 +45,15 @@ it is a terminal.
 --data DIR opens a stopped gateway's store read-only. --gateway ADDR[,ADDR...]
 exports through running gateways (FleetService.ExportTrend, viewer role;
 --token or $PULSEFLEET_TOKEN) with the same output byte for byte (CSV),
-merged across the gateways of a sharded fleet; each gateway reads its store
-in bounded slices, never holding one read transaction open for long.
+merged across the gateways of a sharded fleet (a point held by two gateways,
+the same device and time, is exported once and counted on stderr); each
+gateway reads its store in bounded slices, never holding one read
+transaction open for long. A gateway that cannot be read does not stop the
+export: the file says it is incomplete (CSV: "# incomplete:" comment lines
+after the caution, which readers skip; FHIR: a first entry, an
+OperationOutcome with issues of code "incomplete"), naming the gateway and
+the devices whose history the reachable gateways' ledgers show to be partly
+elsewhere; stderr says the same and the command exits 3.
 
 Research tool, not a certified medical device.`
 
@@ -150,20 +157,24 @@ func parseExportTime(flag, v string) (int64, error) {
 
 func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio) error {
 	var src export.Source
+	var rs *remoteSource
+	var gaps *historyGaps
+	var addrs []string
 	if o.client.gateways != "" {
-		addrs, err := o.client.addrs()
-		if err != nil {
+		var err error
+		if addrs, err = o.client.addrs(); err != nil {
 			return err
 		}
-		rs, err := newRemoteSource(ctx, &o.client, addrs)
-		if err != nil {
+		if rs, err = newRemoteSource(ctx, &o.client, addrs); err != nil {
 			return err
 		}
 		defer rs.Close()
 		src = rs
-		if opt.Enrolments, err = remoteEnrolments(ctx, &o.client, addrs); err != nil {
+		reachable := reachableOf(addrs, rs.failed)
+		if opt.Enrolments, err = remoteEnrolments(ctx, &o.client, reachable); err != nil {
 			return err
 		}
+		gaps = findGaps(ctx, &o.client, reachable, rs.failed, o.devices)
 	} else {
 		db, err := openExportStore(o)
 		if err != nil {
@@ -181,17 +192,28 @@ func runExport(ctx context.Context, o exportOptions, opt export.Options, s stdio
 	}
 	prog := newExportProgress(s.err)
 	opt.Progress = prog.update
-	return writeExportFile(o.out, s.out, func(w io.Writer) error {
+	notes := gaps.notes("trend points", 1000)
+	err := writeExportFile(o.out, s.out, func(w io.Writer) error {
 		var wr export.Writer
 		if o.format == "csv" {
-			wr = export.NewCSVWriter(w)
+			c := export.NewCSVWriter(w)
+			c.SetIncomplete(notes)
+			wr = c
 		} else {
-			wr = export.NewFHIRWriter(w, export.FHIROptions{Timestamp: time.Now(), BaseURL: o.base, SkipPI: o.noPI, PatientSystem: o.patientSystem})
+			wr = export.NewFHIRWriter(w, export.FHIROptions{Timestamp: time.Now(), BaseURL: o.base, SkipPI: o.noPI, PatientSystem: o.patientSystem, Incomplete: notes})
 		}
 		st, err := export.Run(ctx, src, wr, opt)
 		prog.finish(st, err)
 		return err
 	})
+	if err != nil || rs == nil {
+		return err
+	}
+	if rs.dups > 0 {
+		fmt.Fprintf(s.err, "pulsefleet export: %d points held by two gateways (the same device and time) were exported once\n", rs.dups)
+	}
+	printGaps(s.err, "export", gaps, "trend points")
+	return incomplete("trend points", len(addrs), rs.failed)
 }
 
 func openExportStore(o exportOptions) (*store.DB, error) {

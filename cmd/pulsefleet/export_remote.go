@@ -26,10 +26,15 @@ type remoteSource struct {
 	devices []store.Device
 	owners  map[string][]string // device -> gateways with trend points
 	trend   []string
+	failed  []gatewayError // gateways that could not be read: their history is missing
+	dups    int64          // points held by two gateways, exported once
 }
 
 var _ export.Source = (*remoteSource)(nil)
 
+// newRemoteSource reads the device lists of addrs. A gateway that cannot
+// be read is left out and listed in failed (the export goes on with the
+// others and says it is incomplete); when none can be read it fails.
 func newRemoteSource(ctx context.Context, cf *clientFlags, addrs []string) (*remoteSource, error) {
 	r := &remoteSource{ctx: ctx, cf: cf, conns: map[string]*grpc.ClientConn{}, owners: map[string][]string{}}
 	byID := map[string]store.Device{}
@@ -39,17 +44,19 @@ func newRemoteSource(ctx context.Context, cf *clientFlags, addrs []string) (*rem
 			r.Close()
 			return nil, err
 		}
+		lctx, cancel := context.WithCancel(ctx)
+		st, err := pb.NewFleetServiceClient(conn).ExportTrend(cf.ctx(lctx), &pb.ExportTrendRequest{DevicesOnly: true})
+		var m *pb.ExportTrendResponse
+		if err == nil {
+			m, err = st.Recv()
+		}
+		cancel()
+		if err != nil {
+			conn.Close()
+			r.failed = append(r.failed, gatewayError{a, fmt.Errorf("export from %s: %w", a, err)})
+			continue
+		}
 		r.conns[a] = conn
-		st, err := pb.NewFleetServiceClient(conn).ExportTrend(cf.ctx(ctx), &pb.ExportTrendRequest{DevicesOnly: true})
-		if err != nil {
-			r.Close()
-			return nil, fmt.Errorf("export from %s: %w", a, err)
-		}
-		m, err := st.Recv()
-		if err != nil {
-			r.Close()
-			return nil, fmt.Errorf("export from %s: %w", a, err)
-		}
 		for _, d := range m.GetDevices() {
 			if _, ok := byID[d.GetDeviceId()]; !ok {
 				byID[d.GetDeviceId()] = store.Device{ID: d.GetDeviceId(), Model: d.GetModel(), Firmware: d.GetFirmware()}
@@ -58,6 +65,10 @@ func newRemoteSource(ctx context.Context, cf *clientFlags, addrs []string) (*rem
 		for _, id := range m.GetTrendDeviceIds() {
 			r.owners[id] = append(r.owners[id], a)
 		}
+	}
+	if len(r.failed) == len(addrs) {
+		r.Close()
+		return nil, gatewayFailures("trend points", len(addrs), r.failed)
 	}
 	for _, d := range byID {
 		r.devices = append(r.devices, d)
@@ -122,6 +133,7 @@ func (r *remoteSource) Trend(device string, fromMS, toMS int64, fn func(store.Po
 	sort.SliceStable(all, func(i, j int) bool { return all[i].TimeMS < all[j].TimeMS })
 	for i, p := range all {
 		if i > 0 && p.TimeMS == all[i-1].TimeMS {
+			r.dups++
 			continue
 		}
 		if !fn(p) {

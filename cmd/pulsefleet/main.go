@@ -27,8 +27,10 @@ type command struct {
 	name    string // as typed on the command line
 	summary string // one line for the top-level help
 	// run executes the command. args excludes the command name. It returns
-	// a usageError for bad flags or arguments (exit code 2) and any other
-	// error for a failure (exit code 1).
+	// a usageError for bad flags or arguments (exit code 2), an
+	// incompleteError for a merged history answer that lacks a gateway
+	// (exit code 3, exitIncomplete) and any other error for a failure (exit
+	// code 1).
 	run func(ctx context.Context, args []string, io stdio) error
 }
 
@@ -121,9 +123,14 @@ func run(ctx context.Context, args []string, s stdio) int {
 	}
 	err := c.run(ctx, args[1:], s)
 	var ue usageError
+	var ie incompleteError
 	switch {
 	case err == nil, errors.Is(err, errHelp):
 		return 0
+	case errors.As(err, &ie):
+		// A merged history answer without an unreachable gateway's part.
+		fmt.Fprintf(s.err, "pulsefleet %s: %s\n", c.name, safeText(errorText(err)))
+		return exitIncomplete
 	case errors.As(err, &ue):
 		fmt.Fprintf(s.err, "pulsefleet %s: %s\n(run 'pulsefleet %s --help' for usage)\n", c.name, safeText(errorText(err)), c.name)
 		return 2
