@@ -488,6 +488,7 @@ func (s *slot) add(ep *alarms.Episode) {
 type runner struct {
 	slots []*slot
 	pres  []alarms.Presence
+	spans []span // derive's buffer: one variant's episodes before they are copied out
 }
 
 // derive finds the presence intervals of the Threshold shared by the
@@ -499,7 +500,7 @@ func (r *runner) derive(rules []alarms.ThresholdRule, vars []variant, group []in
 	for _, v := range group {
 		rule := &rules[v]
 		cond, prio0 := int32(vars[v].cond), vars[v].profile.Conditions[0].Priority
-		var out []span
+		out := r.spans[:0]
 		for _, p := range r.pres {
 			ep, ok := rule.Episode(samples, p)
 			if !ok {
@@ -508,7 +509,10 @@ func (r *runner) derive(rules []alarms.ThresholdRule, vars []variant, group []in
 			out = append(out, span{cond: cond, prio0: prio0, prio: ep.Priority, onset: ep.Onset,
 				ann: ep.Announced, esc: ep.Escalated, end: ep.Ended})
 		}
-		spans[v][d] = out
+		r.spans = out
+		if len(out) > 0 {
+			spans[v][d] = slices.Clone(out) // sized once, not grown
+		}
 	}
 }
 
