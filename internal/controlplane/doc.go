@@ -6,13 +6,15 @@
 // its own store, so it keeps serving with the last known settings while
 // etcd is unreachable, and starts with them after a restart.
 //
-// Shared so far: credentials (hashes only: store.Token never holds a
-// secret), with their roles and revocations; alarm profiles (the fleet's
-// default and per-device ones). A per-device profile reaches a gateway that
-// has never seen the device as a stored profile only, in force from that
-// gateway's next start. Calibrations and their assignments, and device
-// labels still live in each gateway's own store (see the README's fleet
-// section for what is left).
+// Shared: credentials (hashes only: store.Token never holds a secret), with
+// their roles and revocations; alarm profiles (the fleet's default and
+// per-device ones; a gateway that has not seen the device holds its profile
+// for the device's first connection); calibration curves, every version,
+// numbered by the fleet (PublishCalibration: a create-only transaction per
+// version, so two gateways never give one number to two curves), and their
+// assignments to a model or a device. Device descriptions, labels included,
+// travel with the device (it sends them in each introduction); history
+// stays in each gateway's store.
 //
 // While etcd is unreachable (a probe every second, and every failed write)
 // Up reports false with the time since when, /readyz says "degraded", the
@@ -24,7 +26,12 @@
 //
 // Keys: PREFIX/cp/tokens/HASH -> {"gateway": ADDR, "token": store.Token};
 // PREFIX/cp/profiles/DEVICE (or _default) -> {"gateway": ADDR, "profile":
-// Profile}.
+// Profile}; PREFIX/cp/calibrations/NAME/VERSION (ten digits) ->
+// {"gateway": ADDR, "calibration": store.Calibration};
+// PREFIX/cp/calassign/TARGET ("model:M" or "device:ID") -> {"gateway":
+// ADDR, "assignment": Assignment} (an empty Ref removes it). A snapshot
+// (Start) is applied in the order the keys were written, so a calibration
+// comes before an assignment naming it.
 // Nothing is deleted: a revoked credential stays, with its revocation time.
 //
 // Ownership of goroutines: Start runs the watch and the probe; Close stops

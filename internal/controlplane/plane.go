@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"sort"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -25,6 +26,8 @@ var ErrUnreachable = errors.New("the fleet's control plane (etcd) is unreachable
 type Applier interface {
 	ApplyToken(t store.Token, from string) error
 	ApplyProfile(pr Profile, from string) error
+	ApplyCalibration(c store.Calibration, from string) error
+	ApplyAssignment(a Assignment, from string) error
 }
 
 // Profile is a shared alarm profile: the fleet's default (Device "") or
@@ -116,6 +119,9 @@ func (p *Plane) Start(ctx context.Context, a Applier) error {
 	if err != nil {
 		return fmt.Errorf("controlplane: reading the shared settings: %w", err)
 	}
+	// In the order they were written, so a calibration is applied before
+	// an assignment naming it (keys sort otherwise).
+	sort.SliceStable(resp.Kvs, func(i, j int) bool { return resp.Kvs[i].ModRevision < resp.Kvs[j].ModRevision })
 	for _, kv := range resp.Kvs {
 		p.apply(a, string(kv.Key), kv.Value)
 	}
@@ -148,6 +154,16 @@ func (p *Plane) apply(a Applier, key string, v []byte) {
 		var e profileEntry
 		if err = json.Unmarshal(v, &e); err == nil {
 			from, err = e.Gateway, a.ApplyProfile(e.Profile, e.Gateway)
+		}
+	case strings.HasPrefix(key, p.key("calibrations")+"/"):
+		var e calibrationEntry
+		if err = json.Unmarshal(v, &e); err == nil {
+			from, err = e.Gateway, a.ApplyCalibration(e.Calibration, e.Gateway)
+		}
+	case strings.HasPrefix(key, p.key("calassign")+"/"):
+		var e assignmentEntry
+		if err = json.Unmarshal(v, &e); err == nil {
+			from, err = e.Gateway, a.ApplyAssignment(e.Assignment, e.Gateway)
 		}
 	default:
 		return // a kind of setting this release does not know

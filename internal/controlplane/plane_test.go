@@ -17,6 +17,22 @@ type recorder struct {
 	got      map[string]store.Token
 	from     map[string]string
 	profiles []Profile
+	cals     []store.Calibration
+	assigns  []Assignment
+}
+
+func (r *recorder) ApplyCalibration(c store.Calibration, from string) error {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	r.cals = append(r.cals, c)
+	return nil
+}
+
+func (r *recorder) ApplyAssignment(a Assignment, from string) error {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	r.assigns = append(r.assigns, a)
+	return nil
 }
 
 func (r *recorder) ApplyToken(t store.Token, from string) error {

@@ -11,6 +11,7 @@ import (
 	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
 	"github.com/pulsefleet/pulsefleet/internal/calibration"
+	"github.com/pulsefleet/pulsefleet/internal/controlplane"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -58,8 +59,12 @@ func (g *Gateway) PutCalibration(ctx context.Context, req *pb.PutCalibrationRequ
 		return nil, status.Errorf(codes.InvalidArgument, "curve_yaml: %v", err)
 	}
 	who := auth.ActorFrom(ctx)
-	sc, err := g.db.PutCalibration(store.Calibration{Name: c.Name, CurveYAML: req.GetCurveYaml(), CreatedMS: g.nowMS(), CreatedBy: who},
-		&store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.put", Detail: "calibration " + c.Name + ": " + c.Equation(), Remote: auth.RemoteFrom(ctx)})
+	sc := store.Calibration{Name: c.Name, CurveYAML: req.GetCurveYaml(), CreatedMS: g.nowMS(), CreatedBy: who}
+	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.put", Detail: "calibration " + c.Name + ": " + c.Equation(), Remote: auth.RemoteFrom(ctx)}
+	if g.opt.ControlPlane != nil {
+		return g.putCalibrationShared(ctx, sc, audit) // shared.go
+	}
+	sc, err = g.db.PutCalibration(sc, audit)
 	if err != nil {
 		return nil, status.Errorf(codes.Unavailable, "%v", err)
 	}
@@ -91,7 +96,9 @@ func (g *Gateway) ListCalibrations(ctx context.Context, _ *pb.ListCalibrationsRe
 }
 
 // AssignCalibration implements AdminService. It applies from the device's
-// next stream.
+// next stream; in a fleet on etcd it is published to every gateway first,
+// and the open streams it concerns take it from their next estimate
+// (shared.go).
 func (g *Gateway) AssignCalibration(ctx context.Context, req *pb.AssignCalibrationRequest) (*pb.AssignCalibrationResponse, error) {
 	var target string
 	switch {
@@ -118,16 +125,16 @@ func (g *Gateway) AssignCalibration(ctx context.Context, req *pb.AssignCalibrati
 		}
 	}
 	who := auth.ActorFrom(ctx)
-	if err := g.db.AssignCalibration(target, ref, &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.assign",
-		Device: req.GetDeviceId(), Detail: target + " -> " + ref, Remote: auth.RemoteFrom(ctx)}); err != nil {
+	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: "calibration.assign",
+		Device: req.GetDeviceId(), Detail: target + " -> " + ref, Remote: auth.RemoteFrom(ctx)}
+	if cp := g.opt.ControlPlane; cp != nil {
+		if err := cp.PublishAssignment(ctx, controlplane.Assignment{Target: target, Ref: ref, Device: req.GetDeviceId(), Actor: who}); err != nil {
+			return nil, status.Errorf(codes.Unavailable, "%v", err)
+		}
+		audit.Detail += " (taken by gateway " + cp.Self() + ")"
+	}
+	if err := g.storeAssignment(ctx, target, ref, audit); err != nil {
 		return nil, status.Errorf(codes.Unavailable, "%v", err)
 	}
-	g.calMu.Lock()
-	if ref == "" {
-		delete(g.calAssign, target)
-	} else {
-		g.calAssign[target] = ref
-	}
-	g.calMu.Unlock()
 	return &pb.AssignCalibrationResponse{Assignment: &pb.CalibrationAssignment{Target: target, Calibration: ref}}, nil
 }

@@ -22,6 +22,8 @@ import (
 type ControlPlane interface {
 	PublishToken(ctx context.Context, t store.Token) error
 	PublishProfile(ctx context.Context, pr controlplane.Profile) error
+	PublishCalibration(ctx context.Context, c store.Calibration, atLeast uint32) (store.Calibration, error)
+	PublishAssignment(ctx context.Context, a controlplane.Assignment) error
 	Status() (up bool, detail string)
 	Self() string
 }
@@ -140,8 +142,8 @@ func (g *Gateway) profileChange(ctx context.Context, device string, text []byte,
 // ApplyProfile takes an alarm profile from the control plane (set through
 // any gateway of the fleet, from names which) and puts it in force here as
 // SetAlarmProfile does. A profile this store already holds as is changes
-// nothing. A device this gateway has never seen has its profile stored
-// only (it applies from this gateway's next start).
+// nothing. A device this gateway has never seen has its profile stored and
+// held: in force from the device's first connection here.
 func (g *Gateway) ApplyProfile(pr controlplane.Profile, from string) error {
 	have, err := g.db.Profiles()
 	if err != nil {
@@ -152,9 +154,5 @@ func (g *Gateway) ApplyProfile(pr controlplane.Profile, from string) error {
 	}
 	ctx := context.WithValue(context.Background(), applyingKey{}, applying{actor: pr.Actor, from: from})
 	_, err = g.SetAlarmProfile(ctx, &pb.SetAlarmProfileRequest{DeviceId: pr.Device, ProfileYaml: string(pr.YAML), Reason: pr.Reason})
-	if status.Code(err) == codes.NotFound && pr.Device != "" {
-		return g.db.SetProfile(pr.Device, pr.YAML, &store.AuditEntry{TimeMS: g.nowMS(), Actor: pr.Actor, Action: "profile.sync", Device: pr.Device,
-			Detail: "stored for a device not seen here (applies from the next start); from the fleet's control plane, taken by gateway " + from})
-	}
 	return err
 }

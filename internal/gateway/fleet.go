@@ -283,7 +283,13 @@ func (g *Gateway) SetAlarmProfile(ctx context.Context, req *pb.SetAlarmProfileRe
 	}
 	audit := &store.AuditEntry{TimeMS: g.nowMS(), Actor: who, Action: action, Device: req.GetDeviceId(),
 		Detail: fmt.Sprintf("profile %s; reason: %s", p.Name, req.GetReason()) + note, Remote: auth.RemoteFrom(ctx)}
-	if err := g.ingest.SetProfile(ctx, req.GetDeviceId(), text, p, audit); err != nil {
+	if g.opt.ControlPlane != nil {
+		// A fleet: the device may stream to another gateway, or come here later.
+		_, err = g.ingest.SetProfileAhead(ctx, req.GetDeviceId(), text, p, audit)
+	} else {
+		err = g.ingest.SetProfile(ctx, req.GetDeviceId(), text, p, audit)
+	}
+	if err != nil {
 		return nil, ingestStatus(err)
 	}
 	return &pb.SetAlarmProfileResponse{Name: p.Name}, nil

@@ -134,12 +134,7 @@ func (p *Pipeline) adoptState(d *device, st alarms.State) bool {
 		}
 		st.NextID = max(st.NextID, local.NextID)
 	}
-	prof := d.profile
-	if prof == nil {
-		p.defaultMu.RLock()
-		prof = p.defaultProfile
-		p.defaultMu.RUnlock()
-	}
+	prof := p.profileFor(d)
 	if prof == nil {
 		return false
 	}

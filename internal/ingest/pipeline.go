@@ -78,6 +78,7 @@ type Pipeline struct {
 
 	defaultMu      sync.RWMutex
 	defaultProfile *alarms.Profile
+	ahead          aheadProfiles // per-device profiles of devices not seen yet (shared.go)
 
 	failed atomic.Pointer[error] // the last batch failed to commit (nil = it committed)
 }
@@ -127,6 +128,19 @@ func (p *Pipeline) load() error {
 	states, err := p.db.AlarmStates()
 	if err != nil {
 		return fmt.Errorf("load alarm states: %w", err)
+	}
+	known := make(map[string]bool, len(descs))
+	for _, desc := range descs {
+		known[desc.ID] = true
+	}
+	for id, b := range profs {
+		if id != "" && !known[id] { // set for a device not seen yet: in force from its first connection
+			prof, err := alarms.ParseProfile(b)
+			if err != nil {
+				return fmt.Errorf("stored profile of %s: %w", id, err)
+			}
+			p.ahead.put(id, prof)
+		}
 	}
 	for _, desc := range descs {
 		d, _ := p.devices.getOrCreate(desc.ID)
@@ -184,12 +198,7 @@ func (p *Pipeline) ensureEngine(d *device) {
 	if d.engine != nil {
 		return
 	}
-	prof := d.profile
-	if prof == nil {
-		p.defaultMu.RLock()
-		prof = p.defaultProfile
-		p.defaultMu.RUnlock()
-	}
+	prof := p.profileFor(d)
 	if prof == nil {
 		return
 	}

@@ -74,8 +74,12 @@ type stream struct {
 	irNM         float64
 	calRef       string
 	cal          estimator.Calibration
-	bucket       tokenBucket // message-rate limit (ratelimit.go)
-	span         tokenBucket // device-time rate limit, in device seconds (ratelimit.go)
+	// live: the curve of a raw stream that did not ask for a calibration
+	// (the one assigned to the device or its model), swapped by
+	// Recalibrate; nil for other streams.
+	live   *liveCal
+	bucket tokenBucket // message-rate limit (ratelimit.go)
+	span   tokenBucket // device-time rate limit, in device seconds (ratelimit.go)
 
 	// raw pipeline (owned by the handler goroutine)
 	tl     *estimator.Timeline // nil until the first raw chunk
@@ -208,6 +212,10 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 			return errorf(Invalid, "introduction.calibration_id: %v", err)
 		}
 		s.cal, s.calRef = cal, ref
+		if in.GetCalibrationId() == "" {
+			s.live = newLiveCal(cal)
+			s.cal = s.live
+		}
 	}
 
 	if err := s.fence(ctx); err != nil {

@@ -145,6 +145,50 @@ func (db *DB) PutCalibration(c Calibration, audit *AuditEntry) (Calibration, err
 	return c, nil
 }
 
+// PutCalibrationVersion stores c at its own version (one a fleet's
+// control plane numbered), with an audit entry in the same transaction.
+// It reports false, storing nothing, when that version is already held with
+// the same curve; it fails, storing nothing, when it is held with another
+// curve (a version taken in this store alone before it joined the fleet).
+func (db *DB) PutCalibrationVersion(c Calibration, audit *AuditEntry) (bool, error) {
+	if c.Version == 0 {
+		return false, fmt.Errorf("store: put calibration %q: version 0, want 1 or more", c.Name)
+	}
+	stored := false
+	err := db.update(func(tx *bolt.Tx) error {
+		b, err := nested(tx, bCalibrations, []byte(c.Name))
+		if err != nil {
+			return err
+		}
+		if v := b.Get(u32(c.Version)); v != nil {
+			var have Calibration
+			if err := decJSON(v, &have); err != nil {
+				return err
+			}
+			if have.CurveYAML != c.CurveYAML {
+				return fmt.Errorf("version %d is already held here with another curve (created %d by %s)", c.Version, have.CreatedMS, have.CreatedBy)
+			}
+			return nil
+		}
+		v, err := encJSON(c)
+		if err != nil {
+			return err
+		}
+		if err := b.Put(u32(c.Version), v); err != nil {
+			return err
+		}
+		stored = true
+		if audit != nil {
+			return appendAudit(tx, []*AuditEntry{audit})
+		}
+		return nil
+	})
+	if err != nil {
+		return false, fmt.Errorf("store: put calibration %s@v%d: %w", c.Name, c.Version, err)
+	}
+	return stored, nil
+}
+
 // Calibrations lists every stored version, by name then version.
 func (db *DB) Calibrations() ([]Calibration, error) {
 	var out []Calibration
