@@ -94,16 +94,20 @@ func gatewayPhase(batchDelay time.Duration, logw io.Writer) bench.Phase {
 			os.RemoveAll(dir)
 			return nil, err
 		}
-		return &gatewayTarget{addr: rg.GRPCAddr, dir: dir, stop: stop}, nil
+		return &gatewayTarget{addr: rg.GRPCAddr, dir: dir, stop: stop, db: rg.DB}, nil
 	}}
 }
 
 type gatewayTarget struct {
 	addr, dir string
 	stop      func() error
+	db        *store.DB
 }
 
 func (g *gatewayTarget) Addr() string { return g.addr }
+
+// Commits counts the gateway's store commits (bench.Committer).
+func (g *gatewayTarget) Commits() uint64 { return g.db.Commits() }
 
 // Stop shuts the gateway down (flushing the store) and counts the raw
 // samples of the ingest ledger per device: what the store holds durably.

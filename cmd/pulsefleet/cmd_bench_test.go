@@ -57,6 +57,10 @@ func TestBenchInProcess(t *testing.T) {
 	if res["client_in_process"] != true {
 		t.Errorf("client_in_process %v", res["client_in_process"])
 	}
+	// 20 devices sent for 2 s, so the gateway's store committed.
+	if c, _ := res["commits_per_s"].(float64); c <= 0 {
+		t.Errorf("commits_per_s %v, want the gateway's commits counted", res["commits_per_s"])
+	}
 }
 
 func TestBenchClientProcess(t *testing.T) {

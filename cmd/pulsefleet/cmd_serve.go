@@ -87,7 +87,7 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.IntVar(&c.TrendDays, "trend-days", c.TrendDays, "days of trend history to keep (0 = forever)")
 	fs.IntVar(&c.RawDays, "raw-days", c.RawDays, "days of raw captures to keep (0 = forever)")
 	fs.IntVar(&c.LedgerDays, "ledger-days", c.LedgerDays, "days of the ingest ledger to keep (0 = forever; the default covers every resend the gateway can accept: device times up to a year old)")
-	fs.DurationVar(&c.BatchDelay, "batch-delay", c.BatchDelay, "longest a message waits before its store batch commits")
+	fs.DurationVar(&c.BatchDelay, "batch-delay", c.BatchDelay, "how long a store batch collects after its first message (under load, commits are also paced: at least 3x the previous commit's time apart, at most 100 ms)")
 	fs.BoolVar(&c.Insecure, "insecure", c.Insecure, "allow plaintext listeners on non-loopback addresses")
 	fs.StringVar(&c.TLSCert, "tls-cert", c.TLSCert, "TLS certificate file (PEM) for gRPC and HTTP")
 	fs.StringVar(&c.TLSKey, "tls-key", c.TLSKey, "TLS private key file (PEM)")
@@ -233,6 +233,7 @@ type runningGateway struct {
 	Mode                        string // "plaintext (loopback only)", "TLS", "mutual TLS"
 	Auth                        string // credential enforcement (gateway.AuthMode)
 	GW                          *gateway.Gateway
+	DB                          *store.DB
 }
 
 // defaultLedgerDays keeps the ingest ledger longer than any message can be
@@ -327,7 +328,7 @@ func startGateway(ctx context.Context, c serveConfig, logw io.Writer) (*runningG
 	sctx, cancel := context.WithCancel(context.WithoutCancel(ctx))
 	done := make(chan error, 1)
 	go func() { done <- gw.Serve(sctx, gl, hl) }()
-	rg := &runningGateway{GRPCAddr: gl.Addr().String(), HTTPAddr: hl.Addr().String(), DataDir: c.Data, Mode: sec.mode, Auth: gw.AuthMode(), GW: gw}
+	rg := &runningGateway{GRPCAddr: gl.Addr().String(), HTTPAddr: hl.Addr().String(), DataDir: c.Data, Mode: sec.mode, Auth: gw.AuthMode(), GW: gw, DB: db}
 	stop := func() error {
 		cancel()
 		err := <-done

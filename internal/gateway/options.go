@@ -32,7 +32,8 @@ type Options struct {
 	// Now is the gateway clock; nil means time.Now. Tests inject their own.
 	Now func() time.Time
 
-	// BatchDelay is the longest a record waits before its batch commits; 0 means 10 ms.
+	// BatchDelay is how long a batch collects after its first record (under
+	// load the writer also paces commits, internal/ingest/writer.go); 0 means 10 ms.
 	BatchDelay time.Duration
 	// BatchRecords commits early when this many data messages wait; 0 means 4096.
 	BatchRecords int

@@ -30,9 +30,11 @@
 // Ownership of goroutines:
 //   - The caller runs RunWriter in a goroutine it owns and stops it with
 //     CloseWriter after every stream has ended (internal/gateway's Serve).
-//     The writer commits batches: one bbolt transaction per batch, at most
-//     Config.BatchDelay after the first record or when Config.BatchRecords
-//     records are waiting, then acknowledges.
+//     The writer commits batches: one bbolt transaction per batch,
+//     Config.BatchDelay after the first record (and, under load, no sooner
+//     than 3x the previous commit's duration after it ended, at most
+//     100 ms: writer.go, pacing) or when Config.BatchRecords records are
+//     waiting, then acknowledges.
 //   - Each device stream runs in the goroutine that calls HandleStream
 //     (validate, estimate, evaluate alarms, queue for the writer), with a
 //     reader goroutine that owns Recv and a sender goroutine that owns

@@ -25,7 +25,7 @@ type Config struct {
 	Log        *slog.Logger
 	Now        func() time.Time // the gateway clock
 
-	BatchDelay      time.Duration // longest a record waits before its batch commits
+	BatchDelay      time.Duration // a batch collects this long after its first record (and is paced: writer.go)
 	BatchRecords    int           // a batch commits early when this many records wait
 	MaxMessageBytes int           // larger device messages are rejected (TOO_LARGE)
 	MaxChunkSamples int           // samples per raw chunk

@@ -43,6 +43,9 @@ type writer struct {
 	now     func() time.Time
 	onFail  func(err error, devs map[*device]bool) // a batch did not commit; devs had data in it
 	onOK    func()                                 // a batch committed
+	// paced, when set (tests), is told each commit's start and end as the
+	// pacing measures them.
+	paced func(start, end time.Time)
 
 	// carry holds the parts of failed records that are not a device's data
 	// (descriptions, sessions, alarm episodes and states, audit entries):
@@ -117,13 +120,38 @@ type pending struct {
 	devSeen map[*device]bool // scratch: devices with data in a failed batch
 }
 
+// Commit pacing. Under constant load the writer would otherwise commit back
+// to back: a batch starts with the record that waited during the previous
+// commit, so the number of commits per second is set by how fast a commit
+// finishes. Each commit costs about the same whatever its size (it rewrites
+// the cursor and ledger pages of every device that sent, which at a few
+// hundred devices per batch is nearly all of them, and syncs the file), so
+// the store's CPU grew to fill whatever CPU was spare. The writer therefore
+// lets a batch collect for at least paceFactor times the previous commit's
+// duration after that commit ended (at most maxPace): it is busy committing
+// at most 1/(1+paceFactor) of the time, and a message waits at most about
+// maxPace plus two commits. When commits are quick (little load, a fast
+// disk) the gap is shorter than BatchDelay and nothing changes.
+const (
+	paceFactor = 3
+	maxPace    = 100 * time.Millisecond
+)
+
+// paceGap is how long after a commit of duration d ended the next one may
+// start.
+func paceGap(d time.Duration) time.Duration {
+	return min(paceFactor*d, maxPace)
+}
+
 // run commits batches until the input is closed and drained: it takes the
-// first waiting record, then more until maxRecs or maxWait after the first,
-// and commits them in one transaction.
+// first waiting record, then more until maxRecs, or until maxWait after the
+// first and the pacing gap after the previous commit have both passed, and
+// commits them in one transaction.
 func (w *writer) run() {
 	bt := &pending{curIdx: map[*device]int{}, devSeen: map[*device]bool{}}
 	timer := time.NewTimer(time.Hour)
 	timer.Stop()
+	var nextAt time.Time // earliest start of the next commit (pacing)
 	for {
 		r, ok := <-w.in
 		if !ok {
@@ -134,7 +162,7 @@ func (w *writer) run() {
 		w.m.writerQueue.Dec()
 		w.takeCarry(bt)
 		w.add(bt, r)
-		timer.Reset(w.maxWait)
+		timer.Reset(max(w.maxWait, time.Until(nextAt)))
 	collect:
 		for len(bt.recs) < w.maxRecs {
 			select {
@@ -149,7 +177,13 @@ func (w *writer) run() {
 			}
 		}
 		timer.Stop()
+		start := time.Now()
 		w.commit(bt)
+		end := time.Now()
+		nextAt = end.Add(paceGap(end.Sub(start)))
+		if w.paced != nil {
+			w.paced(start, end)
+		}
 	}
 }
 

@@ -98,6 +98,8 @@ type DB struct {
 	fault atomic.Pointer[WriteFault] // tests: fails writes (fault.go)
 
 	outboxKick atomic.Pointer[func()] // set by EnableOutbox: Write queues notifications (outbox.go)
+
+	commits atomic.Uint64 // Write transactions committed (Commits)
 }
 
 // Open opens (creating when needed) the store in directory dir.

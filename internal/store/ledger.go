@@ -113,6 +113,10 @@ type ledgerWriter struct {
 	db      *DB
 	tx      *bolt.Tx
 	pending map[uint32]*openRange
+	// dayB is the day bucket of the last chunk added (a batch's chunks
+	// nearly all arrive the same day): looked up once, not per chunk.
+	dayB   *bolt.Bucket
+	dayKey uint32
 }
 
 // add records one accepted message of device idx.
@@ -127,10 +131,14 @@ func (w *ledgerWriter) add(c *Chunk, idx uint32) error {
 			o = w.lastRangeOf(idx, day)
 		}
 	}
-	b, err := nested(w.tx, bLedger, u32(day))
-	if err != nil {
-		return err
+	if w.dayB == nil || w.dayKey != day {
+		b, err := nested(w.tx, bLedger, u32(day))
+		if err != nil {
+			return err
+		}
+		w.dayB, w.dayKey = b, day
 	}
+	b := w.dayB
 	if o != nil && o.day == day && o.r.last != ^uint64(0) && c.Seq == o.r.last+1 {
 		o.r.last = c.Seq
 		o.r.samples += uint64(c.Samples)

@@ -44,6 +44,12 @@ type Target interface {
 	Stop(ctx context.Context) (held map[string]uint64, err error)
 }
 
+// Committer is a Target that counts its store commits (optional): the
+// phase then reports commits per second of sending time.
+type Committer interface {
+	Commits() uint64
+}
+
 // StartFunc starts a target on a loopback address of its choosing.
 type StartFunc func(ctx context.Context) (Target, error)
 
@@ -105,8 +111,11 @@ type PhaseResult struct {
 	// CPUNsPerSample is this process's CPU time during the phase per
 	// acknowledged sample (unrounded; CPURatio compares it).
 	CPUNsPerSample float64
-	Client         ClientUsage
-	ClientCores    float64 // a separate client's CPU time / wall time
+	// CommitsPerS is the target's store commits per second of sending
+	// time (0 when it does not count them: a Committer).
+	CommitsPerS float64
+	Client      ClientUsage
+	ClientCores float64 // a separate client's CPU time / wall time
 	// RSSAnonEnd and RSSFileEnd split this process's resident set when the
 	// load ended (before the target stopped): anonymous memory (heap,
 	// stacks) and file-backed pages (a memory-mapped store file).
@@ -144,6 +153,10 @@ type Result struct {
 	// gateway_samples_per_s) / (sink_cpu_cores / sink_samples_per_s); 0 when
 	// either phase acknowledged nothing or used no measurable CPU.
 	CPURatio float64 `json:"cpu_ratio"`
+	// CommitsPerS is the gateway's store commits per second while the
+	// load was sent: each commit costs about the same whatever it holds
+	// (internal/ingest/writer.go, pacing), so it explains much of the CPU.
+	CommitsPerS float64 `json:"commits_per_s"`
 	// SinkSaturated is true when the bare sink acknowledged less than 95 %
 	// of the offered samples/s: the machine (load client, other work), not
 	// the system under test, was the limit, and the run's latency and CPU
@@ -242,6 +255,7 @@ func Run(ctx context.Context, opts Options, phases ...Phase) (*Result, error) {
 	res.SinkCPUCores, res.GatewayCPUCores = first.CPUCores, last.CPUCores
 	res.ClientPeakRSSBytes, res.ClientCPUCores = last.Client.PeakRSSBytes, last.ClientCores
 	res.CPURatio = cpuRatio(first, last)
+	res.CommitsPerS = last.CommitsPerS
 	res.SinkSaturated = saturated(first.SamplesPerS, res.OfferedSamplesPerS)
 	res.Rejected, res.Reconnects, res.UnackedAtEnd = last.Report.Rejected, last.Report.Reconnects, last.Report.UnackedAtEnd
 	return res, nil
@@ -330,14 +344,18 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 	}
 	stopHeap := scheduleHeapProfile(opts, ph.Name)
 	defer stopHeap()
-	cpu0, wall0 := cpuTime(), time.Now()
+	commits := func() uint64 { return 0 }
+	if c, ok := tgt.(Committer); ok {
+		commits = c.Commits
+	}
+	cpu0, wall0, commits0 := cpuTime(), time.Now(), commits()
 	rep, usage, err := opts.Client(ctx, sim.Options{
 		Gateway: tgt.Addr(), Devices: opts.Devices, IDPrefix: "bench", Mode: sim.ModeRaw,
 		RateHz: opts.RateHz, Chunk: opts.Chunk, Duration: opts.Duration, Seed: opts.Seed,
 		Progress: opts.Progress, ProgressEvery: opts.ProgressEvery, DevicesPerConn: opts.DevicesPerConn,
 		Drain: max(10*time.Second, opts.Duration),
 	})
-	cpu1, wall1 := cpuTime(), time.Now()
+	cpu1, wall1, commits1 := cpuTime(), time.Now(), commits()
 	anon, file := procStatus("RssAnon"), procStatus("RssFile")
 	if prof != nil {
 		pprof.StopCPUProfile()
@@ -350,6 +368,7 @@ func runPhase(ctx context.Context, opts Options, ph Phase) (*PhaseResult, error)
 	if w := wall1.Sub(wall0).Seconds(); w > 0 {
 		pr.CPUCores = math.Round((cpu1-cpu0).Seconds()/w*100) / 100
 		pr.ClientCores = math.Round(usage.CPU.Seconds()/w*100) / 100
+		pr.CommitsPerS = math.Round(float64(commits1-commits0)/w*10) / 10
 	}
 	if n := rep.SamplesAcked; n > 0 {
 		pr.CPUNsPerSample = float64(cpu1-cpu0) / float64(n)
