@@ -57,6 +57,9 @@ func (c Config) Validate() error {
 	if c.AveragingS != 0 && (math.IsNaN(c.AveragingS) || c.AveragingS < MinAveragingS || c.AveragingS > MaxAveragingS) {
 		return fmt.Errorf("AveragingS: %v s, want 0 (default %v s) or %v..%v s", c.AveragingS, DefaultAveragingS, MinAveragingS, MaxAveragingS)
 	}
+	if a := anchorOf(c.Calibration); a.LengthS != 0 {
+		return fmt.Errorf("Calibration: %v has input: anchored_ratio (anchor_s: %d): it maps R/R0, and a stream gives the raw ratio R; it applies only through an Anchor (NewAnchor), never to R", c.Calibration, a.LengthS)
+	}
 	if c.Ratio != "" && c.Ratio != RatioBeatSlope && c.Ratio != RatioDerivativeSlope && c.Ratio != RatioSpectral {
 		//lint:ignore ST1005 errors here start with the Config field they name
 		return fmt.Errorf("Ratio: %q, want \"\" (default %s), %s, %s or %s", c.Ratio, RatioBeatSlope, RatioBeatSlope, RatioDerivativeSlope, RatioSpectral)

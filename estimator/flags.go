@@ -22,9 +22,13 @@ const (
 	// MinResolvedCodes ADC codes on one channel, too few for two significant
 	// digits of AC.
 	FlagLowResolution
+	// FlagAnchoring: SpO2 is withheld because the calibration maps the
+	// anchored ratio R/R0 and the device's room-air anchor R0 is not
+	// complete yet (Anchor).
+	FlagAnchoring
 )
 
-var flagNames = [...]string{"no_pulse", "sensor_off", "clipping", "motion", "low_resolution"}
+var flagNames = [...]string{"no_pulse", "sensor_off", "clipping", "motion", "low_resolution", "anchoring"}
 
 // String lists the set flags joined by "|", e.g. "no_pulse|motion"; "" when
 // none.

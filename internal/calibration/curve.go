@@ -3,9 +3,11 @@ package calibration
 import (
 	"errors"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"math"
 	"os"
+
+	"github.com/pulsefleet/pulsefleet/estimator"
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 
 	"go.yaml.in/yaml/v3"
 )
@@ -25,6 +27,17 @@ import (
 //	device_model: proto-b        # optional: the model it was fitted for
 //	fitted_at: 2026-11-30T10:00:00Z   # optional
 //	stats: {...}                 # optional: what calibrate measured (informational)
+//	input: anchored_ratio        # optional: ratio (the default) | anchored_ratio
+//	anchor_s: 60                 # anchored_ratio only: the room-air anchor's length, s
+//	anchor_min_sqi: 0.5          # anchored_ratio only: SQI a second needs to count in the anchor
+//	anchor_min_seconds: 10       # anchored_ratio only: usable seconds the anchor needs
+//
+// A curve with input anchored_ratio maps R/R0, where R0 is the median of the
+// device's usable ratios over anchor_s seconds from its first usable second
+// (the person at rest on room air, Anchor). It must never see a raw R: the
+// estimator refuses it as Config.Calibration (it satisfies
+// estimator.AnchoredInput), and only estimator.Anchor applies it. A file
+// without input keeps its meaning (raw R).
 type Curve struct {
 	Name         string         `yaml:"name" json:"name"`
 	Version      int            `yaml:"version" json:"version"`
@@ -35,6 +48,36 @@ type Curve struct {
 	DeviceModel  string         `yaml:"device_model,omitempty" json:"device_model,omitempty"`
 	FittedAt     string         `yaml:"fitted_at,omitempty" json:"fitted_at,omitempty"`
 	Stats        map[string]any `yaml:"stats,omitempty" json:"stats,omitempty"`
+	Input        string         `yaml:"input,omitempty" json:"input,omitempty"`
+	AnchorS      int            `yaml:"anchor_s,omitempty" json:"anchor_s,omitempty"`
+	AnchorMinSQI float64        `yaml:"anchor_min_sqi,omitempty" json:"anchor_min_sqi,omitempty"`
+	AnchorMinSec int            `yaml:"anchor_min_seconds,omitempty" json:"anchor_min_seconds,omitempty"`
+}
+
+// Inputs of a curve.
+const (
+	InputRatio         = "ratio"          // the raw ratio of ratios R (also when input is absent)
+	InputAnchoredRatio = "anchored_ratio" // R / R0, R0 the device's room-air anchor
+)
+
+// Anchored reports whether the curve's input is the anchored ratio.
+func (c *Curve) Anchored() bool { return c.Input == InputAnchoredRatio }
+
+// AnchorSpec says what anchor the curve's input needs (LengthS 0: none,
+// the input is raw R). It makes the curve an estimator.AnchoredInput.
+func (c *Curve) AnchorSpec() estimator.AnchorSpec {
+	if !c.Anchored() {
+		return estimator.AnchorSpec{}
+	}
+	return estimator.AnchorSpec{LengthS: c.AnchorS, MinSQI: c.AnchorMinSQI, MinSeconds: c.AnchorMinSec}
+}
+
+// String names the curve and its input, for error messages.
+func (c *Curve) String() string {
+	if c.Anchored() {
+		return fmt.Sprintf("curve %s (input: %s, anchor_s: %d)", c.CurveName(), c.Input, c.AnchorS)
+	}
+	return "curve " + c.CurveName()
 }
 
 // CurveName returns the identifier used in logs and in the store.
@@ -80,6 +123,19 @@ func (c *Curve) Validate() error {
 	}
 	if !(c.RatioMin >= 0 && c.RatioMax > c.RatioMin && c.RatioMax <= 10) {
 		return fmt.Errorf("ratio_min/ratio_max: [%v, %v], want 0 <= ratio_min < ratio_max <= 10", c.RatioMin, c.RatioMax)
+	}
+	switch c.Input {
+	case "", InputRatio:
+		if c.AnchorS != 0 || c.AnchorMinSQI != 0 || c.AnchorMinSec != 0 {
+			return fmt.Errorf("anchor_s/anchor_min_sqi/anchor_min_seconds: set (%d, %v, %d) but input is %q; want input: %s with them, or none of them",
+				c.AnchorS, c.AnchorMinSQI, c.AnchorMinSec, c.Input, InputAnchoredRatio)
+		}
+	case InputAnchoredRatio:
+		if err := c.AnchorSpec().Validate(); err != nil {
+			return err
+		}
+	default:
+		return fmt.Errorf("input: %q, want %s (the default) or %s", c.Input, InputRatio, InputAnchoredRatio)
 	}
 	return nil
 }
