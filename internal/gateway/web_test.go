@@ -568,6 +568,11 @@ func TestWebPageInChromium(t *testing.T) {
 	if q, e := text(`#quality`), text(`#episodes`); !strings.Contains(q, "100.0 %") || !strings.Contains(e, "SpO2 low") || !strings.Contains(e, "web@127.0.0.1") {
 		t.Errorf("device page: quality %q; episodes %q", q, e)
 	}
+	// The page lists its own gateway's episodes only and says so (merged
+	// history across gateways is the episodes command's).
+	if sc := text(`#episodes-scope`); !strings.Contains(sc, "this gateway only") || !strings.Contains(sc, "pulsefleet episodes --gateway") {
+		t.Errorf("device page: episode scope note %q", sc)
+	}
 	shoot("device-page.png")
 	do("raw device page", chromedp.Navigate(base+"/device/proto-raw-01"), chromedp.WaitVisible(`#raw h2`))
 	do("raw waveform", chromedp.WaitVisible(`#raw svg.chart path.line2`))

@@ -148,7 +148,8 @@ PF.devicePage = async function devicePage(id) {
       showValues());
     showAlarm();
     quality.replaceChildren(h('h2', null, 'Signal quality and uptime'), qualityTable(data.quality));
-    episodes.replaceChildren(h('h2', null, 'Recent alarm episodes'), episodesTable(data.episodes, id));
+    episodes.replaceChildren(h('h2', null, 'Recent alarm episodes'), episodesTable(data.episodes, id),
+      h('p', { class: 'muted', id: 'episodes-scope' }, 'Episodes stored by this gateway only. In a fleet of several gateways, a device that moved has its other episodes on the gateways it streamed to before: pulsefleet episodes --gateway A,B,... lists them all.'));
     loadTrend();
     loadRaw();
   };
