@@ -32,9 +32,9 @@
 //     CloseWriter after every stream has ended (internal/gateway's Serve).
 //     The writer commits batches: one bbolt transaction per batch,
 //     Config.BatchDelay after the first record (and, under load, no sooner
-//     than 3x the previous commit's duration after it ended, at most
-//     100 ms: writer.go, pacing) or when Config.BatchRecords records are
-//     waiting, then acknowledges.
+//     than 4x the previous commit's duration after that one started, but
+//     never paced more than 100 ms apart: writer.go, pacing) or when
+//     Config.BatchRecords records are waiting, then acknowledges.
 //   - Each device stream runs in the goroutine that calls HandleStream
 //     (validate, estimate, evaluate alarms, queue for the writer), with a
 //     reader goroutine that owns Recv and a sender goroutine that owns

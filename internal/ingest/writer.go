@@ -127,20 +127,23 @@ type pending struct {
 // the cursor and ledger pages of every device that sent, which at a few
 // hundred devices per batch is nearly all of them, and syncs the file), so
 // the store's CPU grew to fill whatever CPU was spare. The writer therefore
-// lets a batch collect for at least paceFactor times the previous commit's
-// duration after that commit ended (at most maxPace): it is busy committing
-// at most 1/(1+paceFactor) of the time, and a message waits at most about
-// maxPace plus two commits. When commits are quick (little load, a fast
-// disk) the gap is shorter than BatchDelay and nothing changes.
+// starts a commit no sooner than paceFactor times the previous commit's
+// duration after that one started: it is busy committing at most
+// 1/paceFactor of the time. Pacing never spaces commits more than maxPace
+// apart (a commit that itself takes maxPace or longer is followed at once,
+// as before: the writer never idles while it is the bottleneck), so a
+// message waits at most about maxPace plus a commit more than without it.
+// When commits are quick (little load, a fast disk) BatchDelay governs and
+// nothing changes.
 const (
-	paceFactor = 3
+	paceFactor = 4
 	maxPace    = 100 * time.Millisecond
 )
 
-// paceGap is how long after a commit of duration d ended the next one may
-// start.
-func paceGap(d time.Duration) time.Duration {
-	return min(paceFactor*d, maxPace)
+// paceInterval is the least time between the start of a commit that took d
+// and the start of the next.
+func paceInterval(d time.Duration) time.Duration {
+	return min(paceFactor*d, max(d, maxPace))
 }
 
 // run commits batches until the input is closed and drained: it takes the
@@ -180,7 +183,7 @@ func (w *writer) run() {
 		start := time.Now()
 		w.commit(bt)
 		end := time.Now()
-		nextAt = end.Add(paceGap(end.Sub(start)))
+		nextAt = start.Add(paceInterval(end.Sub(start)))
 		if w.paced != nil {
 			w.paced(start, end)
 		}

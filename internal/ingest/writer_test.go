@@ -12,24 +12,24 @@ import (
 	"github.com/pulsefleet/pulsefleet/internal/store"
 )
 
-func TestPaceGap(t *testing.T) {
+func TestPaceInterval(t *testing.T) {
 	for _, c := range []struct{ d, want time.Duration }{
 		{0, 0},
-		{2 * time.Millisecond, 6 * time.Millisecond},
-		{30 * time.Millisecond, 90 * time.Millisecond},
-		{40 * time.Millisecond, maxPace},
-		{time.Second, maxPace},
+		{2 * time.Millisecond, 8 * time.Millisecond},
+		{20 * time.Millisecond, 80 * time.Millisecond},
+		{30 * time.Millisecond, maxPace},
+		{maxPace, maxPace},
+		{time.Second, time.Second}, // no wait after a commit that slow
 	} {
-		if got := paceGap(c.d); got != c.want {
-			t.Errorf("paceGap(%v) = %v, want %v", c.d, got, c.want)
+		if got := paceInterval(c.d); got != c.want {
+			t.Errorf("paceInterval(%v) = %v, want %v", c.d, got, c.want)
 		}
 	}
 }
 
 // Under constant load the writer does not commit back to back: a commit
-// starts no sooner than paceGap(previous commit's duration) after the
-// previous one ended (nor sooner than the batch delay after its first
-// record). Timers never fire early, so the bound is exact whatever the
+// starts no sooner than paceInterval(previous commit's duration) after the
+// previous one started (nor sooner than the batch delay after it ended). Timers never fire early, so the bound is exact whatever the
 // machine's load; the records are written to a real store.
 func TestWriterPacesCommitsUnderConstantLoad(t *testing.T) {
 	db, err := store.Open(t.TempDir(), store.Options{})
@@ -80,9 +80,9 @@ func TestWriterPacesCommitsUnderConstantLoad(t *testing.T) {
 	// The last commit follows the close at once; the others are paced.
 	for i := 1; i < len(spans)-1; i++ {
 		prev, cur := spans[i-1], spans[i]
-		want := max(batchDelay, paceGap(prev.end.Sub(prev.start)))
-		if gap := cur.start.Sub(prev.end); gap < want {
-			t.Errorf("commit %d started %v after commit %d (which took %v) ended, want at least %v",
+		want := max(prev.end.Sub(prev.start)+batchDelay, paceInterval(prev.end.Sub(prev.start)))
+		if gap := cur.start.Sub(prev.start); gap < want {
+			t.Errorf("commit %d started %v after commit %d (which took %v) started, want at least %v",
 				i, gap, i-1, prev.end.Sub(prev.start), want)
 		}
 	}
