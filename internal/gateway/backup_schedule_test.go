@@ -22,43 +22,28 @@ func TestScheduledBackupsAndRetention(t *testing.T) {
 	leftover := filepath.Join(dir, ".pulsefleet-20261201T000000Z.db.123.partial")
 	os.WriteFile(leftover, []byte("cut"), 0o600)
 	h := newHarness(t, func(o *Options) { o.Backups = BackupSchedule{Dir: dir, Every: time.Second, Keep: 2} })
-	var bs []store.DirBackup
+	id := h.db.ID()
+	// The schedule keeps running while the test looks, so each step of one
+	// backup (commit, prune, gauge, audit entry) is awaited by polling for its
+	// own effect, and the files are checked only after the gateway stopped:
+	// until then the next backup may add a third file or prune one being read.
+	var first store.DirBackup
+	var done int
 	deadline := time.Now().Add(60 * time.Second)
-	for time.Now().Before(deadline) {
-		bs, _ = store.ListBackups(dir)
-		if len(bs) == 2 && bs[1].Taken.Sub(bs[0].Taken) >= time.Second {
-			if _, err := os.Stat(leftover); err != nil { // pruned after the second one at least
-				break
-			}
+	for ; ; time.Sleep(100 * time.Millisecond) {
+		bs, _ := store.ListBackups(dir)
+		if first.Path == "" && len(bs) > 0 {
+			first = bs[0]
 		}
-		time.Sleep(100 * time.Millisecond)
-	}
-	// Wait for one more, so retention has had to remove one.
-	first := bs[0].Path
-	for time.Now().Before(deadline) {
-		if _, err := os.Stat(first); os.IsNotExist(err) {
+		es, _ := h.db.Audit(0, "backup.done", 0)
+		done = len(es)
+		_, err := os.Stat(first.Path)
+		if first.Path != "" && os.IsNotExist(err) && done >= 3 {
 			break
 		}
-		time.Sleep(100 * time.Millisecond)
-	}
-	bs, _ = store.ListBackups(dir)
-	if len(bs) != 2 {
-		t.Fatalf("%d complete backups, want 2 (--backup-keep 2)", len(bs))
-	}
-	if _, err := os.Stat(first); !os.IsNotExist(err) {
-		t.Errorf("retention kept %s past 2 newer ones", first)
-	}
-	if _, err := os.Stat(leftover); !os.IsNotExist(err) {
-		t.Errorf("the cut backup's temporary file is still there")
-	}
-	for _, b := range bs {
-		rep, err := store.VerifyFile(b.Path, store.VerifyOptions{})
-		if err != nil || !rep.OK() || rep.StoreID != h.db.ID() {
-			t.Errorf("%s: %v %+v", b.Path, err, rep)
-		}
-		sum, _ := store.FileSHA256(b.Path)
-		if rec, err := store.ReadChecksumFile(b.Path); err != nil || rec != sum {
-			t.Errorf("%s: checksum file %q %v, file hashes to %s", b.Path, rec, err, sum)
+		if time.Now().After(deadline) {
+			t.Fatalf("after 60 s: backups %+v, first %q, %d backup.done audit entries; want the first pruned after 3 backups",
+				bs, first.Path, done)
 		}
 	}
 	m := h.metrics(t)
@@ -69,12 +54,33 @@ func TestScheduledBackupsAndRetention(t *testing.T) {
 	if g == nil {
 		t.Fatal("last-success gauge missing")
 	}
+	// Each backup sets the gauge before its audit entry, so the gauge has
+	// reached the third backup, taken two intervals (or more) after the first.
 	v, _ := strconv.ParseFloat(g[1], 64)
-	if v < float64(bs[0].Taken.Unix()) || v > float64(time.Now().Unix()) {
-		t.Errorf("last success %v, want at or after the older kept backup %v", v, bs[0].Taken.Unix())
+	if v < float64(first.Taken.Unix()+2) || v > float64(time.Now().Unix()) {
+		t.Errorf("last success %v, want the third backup's time, 2 s or more after the first %v", v, first.Taken.Unix())
 	}
-	if es, _ := h.db.Audit(0, "backup.done", 0); len(es) < 3 {
-		t.Errorf("%d backup.done audit entries, want one per scheduled backup (3 or more)", len(es))
+	h.stop()
+
+	bs, _ := store.ListBackups(dir)
+	if len(bs) != 2 {
+		t.Fatalf("%d complete backups, want 2 (--backup-keep 2)", len(bs))
+	}
+	if _, err := os.Stat(first.Path); !os.IsNotExist(err) {
+		t.Errorf("retention kept %s past 2 newer ones", first.Path)
+	}
+	if _, err := os.Stat(leftover); !os.IsNotExist(err) {
+		t.Errorf("the cut backup's temporary file is still there")
+	}
+	for _, b := range bs {
+		rep, err := store.VerifyFile(b.Path, store.VerifyOptions{})
+		if err != nil || !rep.OK() || rep.StoreID != id {
+			t.Errorf("%s: %v %+v", b.Path, err, rep)
+		}
+		sum, _ := store.FileSHA256(b.Path)
+		if rec, err := store.ReadChecksumFile(b.Path); err != nil || rec != sum {
+			t.Errorf("%s: checksum file %q %v, file hashes to %s", b.Path, rec, err, sum)
+		}
 	}
 }
 
