@@ -481,9 +481,15 @@ func TestWebPageInChromium(t *testing.T) {
 			t.Fatalf("%s: %v", what, err)
 		}
 	}
+	// text reads an element's text in one evaluation in the page. (The
+	// page rebuilds a row whenever what it shows changes, a stale row every
+	// second; chromedp.Text finds the node in one round trip and reads it in
+	// another, and under load the node read was often a detached one, whose
+	// text chromedp gives as "".)
 	text := func(sel string) string {
 		t.Helper()
-		v, err := chromedp.Run(bctx, chromedp.Text(sel))
+		q, _ := json.Marshal(sel)
+		v, err := chromedp.Run(bctx, chromedp.Evaluate[string](fmt.Sprintf(`(e => e ? e.innerText : '(no element)')(document.querySelector(%s))`, q)))
 		if err != nil {
 			t.Fatalf("text of %s: %v", sel, err)
 		}
