@@ -127,6 +127,20 @@ function buildRow(e, t) {
   return tr;
 }
 
+// patchRow brings a shown row up to date cell by cell: only cells whose
+// content changed are replaced. A stale row changes every second (its age);
+// replacing the whole row then would also replace its Acknowledge button, and
+// a click whose press and release fall on either side of that is lost.
+function patchRow(tr, fresh) {
+  tr.className = fresh.className;
+  const cells = [...fresh.children];
+  cells.forEach((td, i) => {
+    const cur = tr.children[i];
+    if (!cur) tr.append(td); else if (cur.outerHTML !== td.outerHTML) cur.replaceWith(td);
+  });
+  while (tr.children.length > cells.length) tr.lastElementChild.remove();
+}
+
 // ---------- the page ----------
 
 PF.fleetPage = async function fleetPage() {
@@ -207,11 +221,12 @@ PF.fleetPage = async function fleetPage() {
       const e = view[i];
       const sig = rowSig(e, t);
       let r = rows.get(e.id);
-      if (!r || r.sig !== sig) {
-        const tr = buildRow(e, t);
-        if (r) r.tr.replaceWith(tr);
-        r = { tr, sig };
+      if (!r) {
+        r = { tr: buildRow(e, t), sig };
         rows.set(e.id, r);
+      } else if (r.sig !== sig) {
+        patchRow(r.tr, buildRow(e, t));
+        r.sig = sig;
       }
       ids.push(e.id);
       trs.push(r.tr);
