@@ -137,7 +137,8 @@ func (a *Anchor) restart() {
 // Apply sets e's SpO2 from the anchored ratio, or withholds it with
 // FlagAnchoring while the anchor is in progress. Estimates must come in
 // device-time order; one earlier than the anchor's start (a device clock
-// reset) starts the anchor over.
+// reset) starts the anchor over; one at or before the latest applied (a
+// resend after a reconnect) is not counted in the anchor twice.
 func (a *Anchor) Apply(e *TimedEstimate) {
 	e.SpO2Pct = math.NaN()
 	if e.Flags.Has(FlagSensorOff) {
@@ -148,9 +149,10 @@ func (a *Anchor) Apply(e *TimedEstimate) {
 		a.offRun = 0
 	}
 	if a.startMS != 0 && e.TimeMS < a.startMS {
-		a.restart()
+		a.restart() // the device clock went back
 	}
-	a.lastMS = e.TimeMS
+	resent := a.lastMS != 0 && e.TimeMS <= a.lastMS && a.startMS != 0
+	a.lastMS = max(a.lastMS, e.TimeMS)
 	if r0, ok := a.R0(); ok {
 		if !math.IsNaN(e.Ratio) {
 			if v, ok := a.cal.SpO2(e.Ratio / r0); ok {
@@ -169,7 +171,8 @@ func (a *Anchor) Apply(e *TimedEstimate) {
 	}
 	end := a.startMS + int64(a.spec.LengthS)*1000
 	if e.TimeMS < end {
-		if a.usable(e) && len(a.rs) < cap(a.rs) {
+		// A second resent after a reconnect is in the anchor already.
+		if !resent && a.usable(e) && len(a.rs) < cap(a.rs) {
 			a.rs = append(a.rs, e.Ratio)
 		}
 		e.Flags |= FlagAnchoring

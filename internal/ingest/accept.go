@@ -234,6 +234,9 @@ func (s *stream) evaluate(rec *record, evs []alarms.Event) {
 	}
 	if n := len(rec.points); n > 0 {
 		d.latest = TrendPointProto(&rec.points[n-1])
+		if s.anchor != nil {
+			d.spo2Note = s.spo2Note
+		}
 	}
 	p.alarmEffects(d, evs, rec)
 	rec.cursor = d.cur
@@ -272,6 +275,7 @@ func (s *stream) estimate(c *pb.RawChunk, rec *record) {
 		p.log.Warn("estimator", "device", s.dev.id, "err", err)
 		return
 	}
+	s.applyAnchor()
 	for _, e := range s.estOut {
 		pt := store.Point{Device: s.dev.id, TimeMS: e.TimeMS, SpO2: e.SpO2Pct, Pulse: e.PulseBPM,
 			PI: e.PIPct, SQI: e.SQI, Ratio: e.Ratio, Flags: uint16(e.Flags), Source: uint8(pb.Source_SOURCE_GATEWAY)}
@@ -293,4 +297,4 @@ var flagNames = []struct {
 	flag estimator.Flags
 	name string
 }{{estimator.FlagNoPulse, "no_pulse"}, {estimator.FlagSensorOff, "sensor_off"}, {estimator.FlagClipping, "clipping"},
-	{estimator.FlagMotion, "motion"}, {estimator.FlagLowResolution, "low_resolution"}}
+	{estimator.FlagMotion, "motion"}, {estimator.FlagLowResolution, "low_resolution"}, {estimator.FlagAnchoring, "anchoring"}}

@@ -7,6 +7,7 @@ import (
 	"sync/atomic"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/estimator"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -35,6 +36,14 @@ type device struct {
 	q           quality               // signal-quality and uptime accumulators
 	clock       deviceClock           // device time policy (clock.go)
 	activeGauge map[[2]string]float64 // this device's share of pulsefleet_alarms_active
+	// Room-air anchor of a calibration on the anchored ratio (anchor.go):
+	// the anchor, the calibration it belongs to, when the device's last
+	// stream ended (gateway ms) and why SpO2 is withheld ("" = no reason
+	// beyond the flags).
+	anchor       *estimator.Anchor
+	anchorRef    string
+	anchorLeftMS int64
+	spo2Note     string
 }
 
 // streamNow returns the device's open stream (nil when none).
@@ -99,6 +108,7 @@ func (d *device) toProto() *pb.Device {
 		Calibration:        d.desc.Calibration,
 		BatteryPct:         d.desc.BatteryPct,
 		LastSequence:       d.durableSeq,
+		Spo2Note:           d.spo2Note,
 	}
 	switch d.desc.Mode {
 	case "raw":

@@ -89,6 +89,9 @@ func (l *liveCal) set(c estimator.Calibration) {
 	if c == nil {
 		c = estimator.Empirical()
 	}
+	if anchored(c) {
+		c = estimator.NoCalibration() // never a curve on R/R0 applied to R (callers keep it out)
+	}
 	l.c.Store(&c)
 }
 
@@ -118,6 +121,12 @@ func (p *Pipeline) Recalibrate(ctx context.Context, match func(device, model str
 		}
 		if ref == d.desc.Calibration {
 			d.mu.Unlock()
+			continue
+		}
+		if anchored(cal) {
+			d.mu.Unlock()
+			p.log.Warn("changed calibration assignment is a curve on the anchored ratio: in force from the device's next connection, which starts its room-air anchor; the open stream keeps its curve",
+				"device", d.id, "calibration", d.desc.Calibration, "assigned", ref)
 			continue
 		}
 		s.live.set(cal)

@@ -82,8 +82,10 @@ type stream struct {
 	span   tokenBucket // device-time rate limit, in device seconds (ratelimit.go)
 
 	// raw pipeline (owned by the handler goroutine)
-	tl     *estimator.Timeline // nil until the first raw chunk
-	estOut []estimator.TimedEstimate
+	tl       *estimator.Timeline // nil until the first raw chunk
+	estOut   []estimator.TimedEstimate
+	anchor   *estimator.Anchor // the device's, for a calibration on the anchored ratio (anchor.go)
+	spo2Note string            // why SpO2 is withheld, from the anchor
 }
 
 // Conn is a device's stream as the pipeline uses it: the gateway's
@@ -212,10 +214,17 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 			return errorf(Invalid, "introduction.calibration_id: %v", err)
 		}
 		s.cal, s.calRef = cal, ref
-		if in.GetCalibrationId() == "" {
+		// A curve on the anchored ratio is not swapped on an open stream: a
+		// changed assignment needs a new anchor, so it is in force from the
+		// device's next connection (Recalibrate).
+		if in.GetCalibrationId() == "" && !anchored(cal) {
 			s.live = newLiveCal(cal)
 			s.cal = s.live
 		}
+	}
+	if err := s.adoptAnchor(p.nowMS()); err != nil {
+		s.rejectMsg(invalid(0, "introduction.calibration_id", "%v", err))
+		return errorf(Invalid, "introduction.calibration_id: %v", err)
 	}
 
 	if err := s.fence(ctx); err != nil {
@@ -329,6 +338,7 @@ func (s *stream) finish(ctx context.Context) {
 	replaced := d.stream != s
 	if !replaced {
 		d.stream = nil
+		d.anchorLeftMS = nowMS // a reconnect within AnchorKeepS keeps the anchor (anchor.go)
 	}
 	var evs []alarms.Event
 	if !replaced && !moved && d.engine != nil {

@@ -110,6 +110,7 @@ PF.devicePage = async function devicePage(id) {
       h('div', null, h('span', { class: 'k' }, 'Connection'), connection(d, t)),
       v('SpO2', 'spo2', 0, ' %'), v('Pulse', 'pulse', 0, ' /min'), v('PI', 'pi', 2, ' %'), v('SQI', 'sqi', 2, ''),
       h('div', null, h('span', { class: 'k' }, 'Flags'), h('span', { id: 'v-flags' }, flagNames(n64(l.flags)).join(', ') || 'none')),
+      d.spo2_note ? h('div', null, h('span', { class: 'k' }, 'SpO2'), h('span', { id: 'v-spo2-note' }, `not available: ${d.spo2_note}`)) : null,
       h('div', null, h('span', { class: 'k' }, 'Last value'), h('span', { id: 'v-time' }, n64(l.time_unix_ms) ? `${clock(n64(l.time_unix_ms))}${va.stale ? ', not current' : ''}` : 'none yet')));
   }
 
@@ -164,5 +165,5 @@ PF.devicePage = async function devicePage(id) {
   startLive(`?device=${encodeURIComponent(id)}&points=1`);
 };
 
-const FLAG_NAMES = [[1, 'no pulse'], [2, 'sensor off'], [4, 'clipping'], [8, 'motion'], [16, 'insufficient resolution']];
+const FLAG_NAMES = [[1, 'no pulse'], [2, 'sensor off'], [4, 'clipping'], [8, 'motion'], [16, 'insufficient resolution'], [32, 'calibration anchor in progress']];
 function flagNames(f) { return FLAG_NAMES.filter(([b]) => f & b).map(([, n]) => n); }

@@ -148,7 +148,7 @@ type TrendPoint struct {
 	// Ratio of ratios (gateway estimates only).
 	Ratio *float64 `protobuf:"fixed64,7,opt,name=ratio,proto3,oneof" json:"ratio,omitempty"`
 	// Estimator flags, bit set: 1 no pulse, 2 sensor off, 4 clipping, 8 motion,
-	// 16 insufficient resolution.
+	// 16 insufficient resolution, 32 calibration anchor in progress (SpO2 withheld).
 	Flags uint32 `protobuf:"varint,8,opt,name=flags,proto3" json:"flags,omitempty"`
 	// Who computed it.
 	Source        Source `protobuf:"varint,9,opt,name=source,proto3,enum=pulsefleet.v1.Source" json:"source,omitempty"`
@@ -447,7 +447,10 @@ type Device struct {
 	// Battery charge in percent from the last status (negative when unknown).
 	BatteryPct float64 `protobuf:"fixed64,15,opt,name=battery_pct,json=batteryPct,proto3" json:"battery_pct,omitempty"`
 	// Highest durable sequence number.
-	LastSequence  uint64 `protobuf:"varint,16,opt,name=last_sequence,json=lastSequence,proto3" json:"last_sequence,omitempty"`
+	LastSequence uint64 `protobuf:"varint,16,opt,name=last_sequence,json=lastSequence,proto3" json:"last_sequence,omitempty"`
+	// Why SpO2 is not available when the gateway knows a reason beyond the
+	// flags, for example "calibration anchor in progress, 23 s of 60"; empty otherwise.
+	Spo2Note      string `protobuf:"bytes,17,opt,name=spo2_note,json=spo2Note,proto3" json:"spo2_note,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -592,6 +595,13 @@ func (x *Device) GetLastSequence() uint64 {
 		return x.LastSequence
 	}
 	return 0
+}
+
+func (x *Device) GetSpo2Note() string {
+	if x != nil {
+		return x.Spo2Note
+	}
+	return ""
 }
 
 // ListDevicesRequest asks for every device.
@@ -3217,7 +3227,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\bspo2_pct\x18\x03 \x01(\v2\x13.pulsefleet.v1.StatR\aspo2Pct\x120\n" +
 	"\tpulse_bpm\x18\x04 \x01(\v2\x13.pulsefleet.v1.StatR\bpulseBpm\x12*\n" +
 	"\x06pi_pct\x18\x05 \x01(\v2\x13.pulsefleet.v1.StatR\x05piPct\x12%\n" +
-	"\x03sqi\x18\x06 \x01(\v2\x13.pulsefleet.v1.StatR\x03sqi\"\xd2\x05\n" +
+	"\x03sqi\x18\x06 \x01(\v2\x13.pulsefleet.v1.StatR\x03sqi\"\xef\x05\n" +
 	"\x06Device\x12\x1b\n" +
 	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12\x14\n" +
 	"\x05model\x18\x02 \x01(\tR\x05model\x12\x1a\n" +
@@ -3236,7 +3246,8 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\aprofile\x18\x0e \x01(\tR\aprofile\x12\x1f\n" +
 	"\vbattery_pct\x18\x0f \x01(\x01R\n" +
 	"batteryPct\x12#\n" +
-	"\rlast_sequence\x18\x10 \x01(\x04R\flastSequence\x1a9\n" +
+	"\rlast_sequence\x18\x10 \x01(\x04R\flastSequence\x12\x1b\n" +
+	"\tspo2_note\x18\x11 \x01(\tR\bspo2Note\x1a9\n" +
 	"\vLabelsEntry\x12\x10\n" +
 	"\x03key\x18\x01 \x01(\tR\x03key\x12\x14\n" +
 	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01\"\x14\n" +
