@@ -116,48 +116,27 @@ var trendBlock = 4 << 20 // a variable for the tests
 // blocks reads the rows after the header (line is the header's) in blocks
 // of whole lines, parses up to GOMAXPROCS blocks at once, each into its own
 // trends, and appends those to tr's in input order, checking that times
-// still increase across blocks. Errors are those of a line-by-line read:
-// the first line at fault in the input. A block with a quote or a carriage
-// return goes, with everything after it, to seq.
+// still increase across blocks. While one round of blocks is parsed, the
+// next is read (into a second set of buffers). Errors are those of a
+// line-by-line read: the first line at fault in the input. A block with a
+// quote or a carriage return goes, with everything after it, to seq.
 func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 	workers := max(1, runtime.GOMAXPROCS(0))
-	bufs := make([][]byte, workers)
+	rd := &blockReader{br: br, size: min(trendBlock, 256<<10)}
+	var bufs [2][][]byte
+	for k := range bufs {
+		bufs[k] = make([][]byte, workers)
+	}
 	parts := make([]*trendReader, workers)
-	var carry []byte
-	// Blocks start small and double up to trendBlock, so a small input
-	// does not pay for large buffers.
-	size := min(trendBlock, 256<<10)
-	for {
-		var blocks [][]byte
-		eof := false
-		for len(blocks) < workers && !eof {
-			k := len(blocks)
-			if len(bufs[k]) < size || len(carry) >= size {
-				bufs[k] = make([]byte, max(size, 2*len(carry)))
-			}
-			buf := bufs[k]
-			c := copy(buf, carry)
-			n, err := io.ReadFull(br, buf[c:])
-			n += c
-			switch {
-			case errors.Is(err, io.EOF) || errors.Is(err, io.ErrUnexpectedEOF):
-				eof = true
-				carry = nil
-				if n > 0 {
-					blocks = append(blocks, buf[:n])
-				}
-				continue
-			case err != nil:
-				return fmt.Errorf("trend csv: %w", err)
-			}
-			nl := bytes.LastIndexByte(buf[:n], '\n')
-			if nl < 0 { // a line longer than a block
-				rest := io.MultiReader(bytes.NewReader(slicesConcat(blocks, buf[:n])), br)
-				return tr.seqRest(rest, line)
-			}
-			carry = append([]byte(nil), buf[nl+1:n]...)
-			blocks = append(blocks, buf[:nl+1])
+	cur := rd.round(bufs[0])
+	for set := 0; ; set ^= 1 {
+		if cur.err != nil {
+			return cur.err
 		}
+		if cur.long { // a line longer than a block
+			return tr.seqRest(io.MultiReader(bytes.NewReader(slicesConcat(cur.blocks, nil)), br), line)
+		}
+		blocks := cur.blocks
 		slow := len(blocks)
 		for k, b := range blocks {
 			if bytes.IndexByte(b, '"') >= 0 || bytes.IndexByte(b, '\r') >= 0 {
@@ -172,6 +151,10 @@ func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 			p.reset(tr)
 			wg.Go(func() { p.parseBlock(blocks[k]) })
 		}
+		var next blockRound
+		if slow == len(blocks) && !cur.eof {
+			next = rd.round(bufs[set^1]) // read ahead while the blocks parse
+		}
 		wg.Wait()
 		for k := range blocks[:slow] {
 			if err := tr.merge(parts[k], line); err != nil {
@@ -180,15 +163,70 @@ func (tr *trendReader) blocks(br *bufio.Reader, line int) error {
 			line += bytes.Count(blocks[k], []byte{'\n'})
 		}
 		if slow < len(blocks) {
-			rest := io.MultiReader(bytes.NewReader(slicesConcat(blocks[slow:], carry)), br)
+			rest := io.MultiReader(bytes.NewReader(slicesConcat(blocks[slow:], rd.carry)), br)
 			return tr.seqRest(rest, line)
 		}
-		size = min(trendBlock, 2*size)
-		if eof {
+		if cur.eof {
 			tr.assemble()
 			return nil
 		}
+		cur = next
 	}
+}
+
+// blockReader reads blocks of whole lines for blocks: each ends at a
+// line's end, the part line after it is carried into the next block.
+// Blocks start small and double up to trendBlock, so a small input does
+// not pay for large buffers.
+type blockReader struct {
+	br    *bufio.Reader
+	carry []byte
+	size  int
+}
+
+// blockRound is one read of blockReader: up to one block per worker.
+type blockRound struct {
+	blocks [][]byte
+	eof    bool  // the input ended with the last block
+	long   bool  // a line is longer than a block: blocks hold all that was read, carry included
+	err    error // a read error
+}
+
+// round reads up to len(bufs) blocks, each into its buffer of bufs
+// (replaced when too small).
+func (rd *blockReader) round(bufs [][]byte) blockRound {
+	var r blockRound
+	for len(r.blocks) < len(bufs) && !r.eof {
+		k := len(r.blocks)
+		if len(bufs[k]) < rd.size || len(rd.carry) >= rd.size {
+			bufs[k] = make([]byte, max(rd.size, 2*len(rd.carry)))
+		}
+		buf := bufs[k]
+		c := copy(buf, rd.carry)
+		n, err := io.ReadFull(rd.br, buf[c:])
+		n += c
+		switch {
+		case errors.Is(err, io.EOF) || errors.Is(err, io.ErrUnexpectedEOF):
+			r.eof = true
+			rd.carry = nil
+			if n > 0 {
+				r.blocks = append(r.blocks, buf[:n])
+			}
+			continue
+		case err != nil:
+			r.err = fmt.Errorf("trend csv: %w", err)
+			return r
+		}
+		nl := bytes.LastIndexByte(buf[:n], '\n')
+		if nl < 0 {
+			r.blocks, r.long, rd.carry = append(r.blocks, buf[:n]), true, nil
+			return r
+		}
+		rd.carry = append(rd.carry[:0], buf[nl+1:n]...)
+		r.blocks = append(r.blocks, buf[:nl+1])
+	}
+	rd.size = min(trendBlock, 2*rd.size)
+	return r
 }
 
 // seqRest reads the rest of the input line by line after line.
