@@ -305,13 +305,8 @@ func episodeCells(r episodeRow) []string {
 // writeEpisodesCSV writes the review export; notes (a merged answer's gaps)
 // become "# incomplete:" comment lines after the caution.
 func writeEpisodesCSV(w io.Writer, rows []episodeRow, notes []string) error {
-	if err := caution.WriteComment(w); err != nil {
+	if err := writeCSVHead(w, notes); err != nil {
 		return err
-	}
-	for _, n := range notes {
-		if _, err := fmt.Fprintf(w, "# incomplete: %s\n", oneLine(n)); err != nil {
-			return err
-		}
 	}
 	cw := csv.NewWriter(w)
 	if err := cw.Write(episodeColumns); err != nil {

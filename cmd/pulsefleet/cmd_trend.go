@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/csv"
 	"fmt"
-	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/participants"
 	"io"
 	"math"
@@ -25,7 +24,10 @@ func init() {
 		summary: "Print a device's trend from one or more running gateways as CSV (merged across shards).\n\n" +
 			"Raw points come in the replay/tune trend format (t_s,device,spo2_pct,pulse_bpm,pi_pct,sqi), so the\n" +
 			"output can be replayed; with --step, one row per step with min/mean/max. After a fleet is resharded a\n" +
-			"device's history may sit on several gateways: every gateway given is asked and the answers merged.",
+			"device's history may sit on several gateways: every gateway given is asked and the answers merged.\n" +
+			"A gateway that cannot be read leaves the others' points written, marked: \"# incomplete:\" comment\n" +
+			"lines after the caution (readers skip them) and INCOMPLETE on stderr name it and what the reachable\n" +
+			"gateways' ledgers show missing; the command exits 3.",
 		run: runTrend,
 	})
 }
@@ -75,39 +77,53 @@ func runTrend(ctx context.Context, args []string, s stdio) error {
 		return participantTrend(ctx, &cf, addrs, *pid, from, to, *step, s)
 	}
 	req := &pb.QueryTrendRequest{DeviceId: *device, FromUnixMs: from.UnixMilli(), ToUnixMs: to.UnixMilli(), StepMs: step.Milliseconds()}
-	points, buckets, err := queryTrend(ctx, &cf, addrs, req, s)
+	points, buckets, failed, err := queryTrend(ctx, &cf, addrs, req, s)
 	if err != nil {
 		return err
 	}
+	reachable := reachableOf(addrs, failed)
 	if len(points) == 0 && len(buckets) == 0 {
 		// An empty answer is either a known device without data in the
 		// range or a device no gateway knows: say which, and fail for the
 		// second.
-		if err := anyGatewayKnows(ctx, &cf, addrs, *device); err != nil {
+		if err := anyGatewayKnows(ctx, &cf, reachable, *device); err != nil {
 			return err
 		}
 	}
+	// A gateway that could not be read: the others' points, marked.
+	gaps := findGaps(ctx, &cf, reachable, failed, []string{*device})
+	notes := gaps.notes("trend points", 1000)
 	if *step > 0 {
-		return writeBuckets(s.out, *device, "", mergeBuckets(buckets), true)
+		err = writeBuckets(s.out, *device, "", mergeBuckets(buckets), true, notes...)
+	} else {
+		err = writeTrendPoints(s.out, *device, "", mergePoints(points), true, notes...)
 	}
-	return writeTrendPoints(s.out, *device, "", mergePoints(points), true)
+	if err != nil {
+		return err
+	}
+	printGaps(s.err, "trend", gaps, "trend points")
+	return incomplete("trend points", len(addrs), failed)
 }
 
-// queryTrend asks every gateway for req and returns the answers unmerged.
-func queryTrend(ctx context.Context, cf *clientFlags, addrs []string, req *pb.QueryTrendRequest, s stdio) ([]*pb.TrendPoint, []*pb.TrendBucket, error) {
+// queryTrend asks every gateway for req and returns the answers unmerged;
+// a gateway that cannot be read is returned in failed (the others' answers
+// are kept).
+func queryTrend(ctx context.Context, cf *clientFlags, addrs []string, req *pb.QueryTrendRequest, s stdio) ([]*pb.TrendPoint, []*pb.TrendBucket, []gatewayError, error) {
 	var points []*pb.TrendPoint
 	var buckets []*pb.TrendBucket
+	var failed []gatewayError
 	for _, a := range addrs {
 		conn, err := cf.dial(a)
 		if err != nil {
-			return nil, nil, err
+			return nil, nil, nil, err
 		}
 		cctx, cancel := context.WithTimeout(cf.ctx(ctx), time.Minute)
 		resp, err := pb.NewFleetServiceClient(conn).QueryTrend(cctx, req)
 		cancel()
 		conn.Close()
 		if err != nil {
-			return nil, nil, fmt.Errorf("gateway %s: %w", a, err)
+			failed = append(failed, gatewayError{a, err})
+			continue
 		}
 		if resp.GetTruncated() {
 			fmt.Fprintf(s.err, "pulsefleet trend: gateway %s cut its answer at its point limit; use --step or a shorter range\n", a)
@@ -115,7 +131,10 @@ func queryTrend(ctx context.Context, cf *clientFlags, addrs []string, req *pb.Qu
 		points = append(points, resp.GetPoints()...)
 		buckets = append(buckets, resp.GetBuckets()...)
 	}
-	return points, buckets, nil
+	if len(failed) == len(addrs) {
+		return nil, nil, nil, gatewayFailures("trend points", len(addrs), failed)
+	}
+	return points, buckets, failed, nil
 }
 
 // participantTrend writes pid's history: each enrolled device's trend
@@ -131,11 +150,15 @@ func participantTrend(ctx context.Context, cf *clientFlags, addrs []string, pid 
 		return fmt.Errorf("NotFound: participant %s has no enrolment between %s and %s on %s", pid,
 			from.UTC().Format(time.RFC3339), to.UTC().Format(time.RFC3339), strings.Join(addrs, ", "))
 	}
+	failedAt := map[string]gatewayError{}
 	for i, sg := range segs {
 		req := &pb.QueryTrendRequest{DeviceId: sg.Device, FromUnixMs: sg.FromMS, ToUnixMs: sg.ToMS, StepMs: step.Milliseconds()}
-		points, buckets, err := queryTrend(ctx, cf, addrs, req, s)
+		points, buckets, failed, err := queryTrend(ctx, cf, addrs, req, s)
 		if err != nil {
 			return err
+		}
+		for _, f := range failed {
+			failedAt[f.Addr] = f
 		}
 		if step > 0 {
 			err = writeBuckets(s.out, sg.Device, pid, mergeBuckets(buckets), i == 0)
@@ -146,7 +169,16 @@ func participantTrend(ctx context.Context, cf *clientFlags, addrs []string, pid 
 			return err
 		}
 	}
-	return nil
+	var failed []gatewayError
+	for _, a := range addrs {
+		if f, ok := failedAt[a]; ok {
+			failed = append(failed, f)
+		}
+	}
+	for _, f := range failed {
+		fmt.Fprintf(s.err, "pulsefleet trend: INCOMPLETE: gateway %s could not be read (%s): the trend points it holds are missing here\n", f.Addr, safeText(errorText(f.Err)))
+	}
+	return incomplete("trend points", len(addrs), failed)
 }
 
 // anyGatewayKnows returns nil when at least one gateway knows the device,
@@ -234,11 +266,12 @@ func optCell(v *float64, prec int) string {
 }
 
 // writeTrendPoints writes points as trend CSV; with pid, a participant
-// column too. head writes the caution line and the header first.
-func writeTrendPoints(w io.Writer, device, pid string, ps []*pb.TrendPoint, head bool) error {
+// column too. head writes the caution line, the notes as "# incomplete:"
+// comment lines (a merged answer without a gateway) and the header first.
+func writeTrendPoints(w io.Writer, device, pid string, ps []*pb.TrendPoint, head bool, notes ...string) error {
 	cw := csv.NewWriter(w)
 	if head {
-		if err := caution.WriteComment(w); err != nil {
+		if err := writeCSVHead(w, notes); err != nil {
 			return err
 		}
 		cw.Write(withParticipant(pid, "t_s", "device", "spo2_pct", "pulse_bpm", "pi_pct", "sqi", "ratio", "flags", "source"))
@@ -268,11 +301,11 @@ func withParticipant(pid string, cells ...string) []string {
 	return append(cells, pid)
 }
 
-// writeBuckets writes steps as CSV; pid and head as for writeTrendPoints.
-func writeBuckets(w io.Writer, device, pid string, bs []*pb.TrendBucket, head bool) error {
+// writeBuckets writes steps as CSV; pid, head and notes as for writeTrendPoints.
+func writeBuckets(w io.Writer, device, pid string, bs []*pb.TrendBucket, head bool, notes ...string) error {
 	cw := csv.NewWriter(w)
 	if head {
-		if err := caution.WriteComment(w); err != nil {
+		if err := writeCSVHead(w, notes); err != nil {
 			return err
 		}
 		cw.Write(withParticipant(pid, "start_s", "device", "points", "spo2_min", "spo2_mean", "spo2_max", "pulse_min", "pulse_mean", "pulse_max", "pi_mean", "sqi_mean"))

@@ -8,6 +8,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/store"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -220,3 +221,17 @@ func reachableOf(addrs []string, failed []gatewayError) []string {
 
 // oneLine is s with line breaks as spaces (a note in a comment line).
 func oneLine(s string) string { return strings.NewReplacer("\n", " ", "\r", " ").Replace(s) }
+
+// writeCSVHead writes the caution comment line, then each note as a
+// "# incomplete: NOTE" comment line.
+func writeCSVHead(w io.Writer, notes []string) error {
+	if err := caution.WriteComment(w); err != nil {
+		return err
+	}
+	for _, n := range notes {
+		if _, err := fmt.Fprintf(w, "# incomplete: %s\n", oneLine(n)); err != nil {
+			return err
+		}
+	}
+	return nil
+}

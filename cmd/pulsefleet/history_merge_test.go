@@ -153,7 +153,7 @@ func exportRows(t *testing.T, out string) (notes []string, rows [][]string) {
 // gateways' own answers. Then B is stopped: the merged queries still
 // answer with A's part, mark the gap (JSON "gaps", CSV "# incomplete:"
 // lines, a FHIR OperationOutcome, stderr), name the moved devices whose
-// first messages A lacks, and exit 3, from the binary too.
+// first messages A lacks, and exit 3, from the binary too; trend too.
 func TestMergedHistoryAcrossGatewaysMarksAGap(t *testing.T) {
 	if testing.Short() {
 		t.Skip("process test")
@@ -249,6 +249,11 @@ func TestMergedHistoryAcrossGatewaysMarksAGap(t *testing.T) {
 			t.Fatalf("export row %d of %s not after the one before: %q then %q", i, rows[i][1], rows[i-1][0], rows[i][0])
 		}
 	}
+	code, out, errOut = runCmd("trend", "--gateway", list, "--device", moving[0], "--from", "1h")
+	notes, rows = exportRows(t, out)
+	if code != 0 || len(notes) != 0 || len(rows) != 82 {
+		t.Errorf("merged trend of %s: exit %d, notes %q, %d points, want 0, none, 82 (both halves): %s", moving[0], code, notes, len(rows), errOut)
+	}
 	code, out, errOut = runCmd("audit", "--gateway", list, "--action", "episode.review", "--format", "json")
 	d = historyDoc{}
 	if err := json.Unmarshal([]byte(out), &d); err != nil || code != 0 || len(d.Entries) != 2 || d.Entries[0].Gateway == d.Entries[1].Gateway {
@@ -293,6 +298,12 @@ func TestMergedHistoryAcrossGatewaysMarksAGap(t *testing.T) {
 	notes, rows = exportRows(t, out)
 	if code != exitIncomplete || len(rows) != 2*41 || len(notes) < 2 || !strings.Contains(notes[0], pB) || !strings.Contains(notes[1], moving[1]) {
 		t.Errorf("export with B down: exit %d, %d rows (want A's %d), notes %q\n%s", code, len(rows), 2*41, notes, errOut)
+	}
+	code, out, errOut = runCmd("trend", "--gateway", list, "--device", moving[0], "--from", "1h")
+	notes, rows = exportRows(t, out)
+	if code != exitIncomplete || len(rows) != 41 || len(notes) < 2 || !strings.Contains(notes[1], moving[0]+" (messages 1-41") ||
+		!strings.Contains(errOut, "INCOMPLETE: gateway "+pB) {
+		t.Errorf("trend with B down: exit %d, %d points (want A's 41), notes %q\n%s", code, len(rows), notes, errOut)
 	}
 	code, out, _ = runCmd("export", "--gateway", list, "--format", "fhir")
 	var bundle struct {
