@@ -4,6 +4,7 @@ import (
 	"context"
 	"fmt"
 	"sync"
+	"syscall"
 	"testing"
 	"time"
 
@@ -89,4 +90,84 @@ func TestWriterPacesCommitsUnderConstantLoad(t *testing.T) {
 	if db.Commits() != uint64(len(spans)) {
 		t.Errorf("store counted %d commits, the writer %d", db.Commits(), len(spans))
 	}
+}
+
+// BenchmarkWriterPacing feeds the writer what 5,000 raw devices at 4
+// messages/s each produce (20,000 data records/s: a cursor and a ledger
+// chunk each, a trend point per device-second) into a real store, paced
+// and unpaced, and reports the process's CPU per record (cpu-ns/msg, which
+// the machine's other work disturbs far less than wall time) and commits/s.
+// Run it with a fixed count, e.g. -benchtime 200000x (10 s of load each).
+func BenchmarkWriterPacing(b *testing.B) {
+	for _, unpaced := range []bool{false, true} {
+		name := "paced"
+		if unpaced {
+			name = "unpaced"
+		}
+		b.Run(name, func(b *testing.B) { benchWriter(b, unpaced) })
+	}
+}
+
+func benchWriter(b *testing.B, unpaced bool) {
+	const devices, perTick, tick = 5000, 100, 5 * time.Millisecond // 20,000 records/s
+	db, err := store.Open(b.TempDir(), store.Options{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer db.Close()
+	devs := make([]*device, devices)
+	seed := &store.Batch{}
+	for i := range devs {
+		devs[i] = &device{id: fmt.Sprintf("bench-%05d", i)}
+		seed.Devices = append(seed.Devices, &store.Device{ID: devs[i].id, BatteryPct: -1})
+	}
+	if err := db.Write(seed); err != nil {
+		b.Fatal(err)
+	}
+	m, err := newMetrics(prometheus.NewRegistry(), func() float64 { return 0 })
+	if err != nil {
+		b.Fatal(err)
+	}
+	w := newWriter(db, 10*time.Millisecond, 4096, m, time.Now, func(error, map[*device]bool) {}, func() {})
+	w.unpaced = unpaced
+	done := make(chan struct{})
+	go func() { defer close(done); w.run() }()
+	ctx := context.Background()
+	t0 := time.Now().UnixMilli()
+	seq := make([]uint64, devices)
+	commits0, cpu0 := db.Commits(), processCPU(b)
+	b.ResetTimer()
+	ticker := time.NewTicker(tick)
+	defer ticker.Stop()
+	for n := 0; n < b.N; {
+		<-ticker.C
+		for j := 0; j < perTick && n < b.N; j, n = j+1, n+1 {
+			d := n % devices
+			seq[d]++
+			ms := t0 + int64(seq[d])*250
+			r := &record{dev: devs[d], seq: seq[d], received: time.Now(),
+				cursor: store.Cursor{Device: devs[d].id, LastSeq: seq[d], Chunks: seq[d], Samples: 25 * seq[d], LastSeenMS: ms, LastDeviceMS: ms},
+				chunk:  &store.Chunk{Device: devs[d].id, Seq: seq[d], DeviceTimeMS: ms, ArrivalMS: ms, Samples: 25}}
+			if seq[d]%4 == 0 {
+				r.points = []store.Point{{Device: devs[d].id, TimeMS: ms, SpO2: 97, Pulse: 70, PI: 2, SQI: 1}}
+			}
+			if err := w.submit(ctx, r); err != nil {
+				b.Fatal(err)
+			}
+		}
+	}
+	w.close()
+	<-done
+	b.StopTimer()
+	b.ReportMetric(float64(processCPU(b)-cpu0)/float64(b.N), "cpu-ns/msg")
+	b.ReportMetric(float64(db.Commits()-commits0)/b.Elapsed().Seconds(), "commits/s")
+}
+
+// processCPU is the process's CPU time (user + system) in nanoseconds.
+func processCPU(b *testing.B) int64 {
+	var ru syscall.Rusage
+	if err := syscall.Getrusage(syscall.RUSAGE_SELF, &ru); err != nil {
+		b.Fatal(err)
+	}
+	return ru.Utime.Nano() + ru.Stime.Nano()
 }
