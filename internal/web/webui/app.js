@@ -1,6 +1,7 @@
 // pulsefleet web page: shared helpers, alarm states, live updates and the
 // route. Vanilla JS, no framework, no network beyond this gateway. The
-// overview is fleet.js, the device page device.js, the charts charts.js.
+// overview is fleet.js, the device page device.js, the charts charts.js;
+// the element builder and the JSON call are kit.js's.
 // The JSON is the API's messages through protojson (.proto field names;
 // 64-bit integers as strings; a field at its zero value, or an unset
 // optional value, is absent).
@@ -13,20 +14,7 @@ const liveEl = document.getElementById('live');
 
 // ---------- small helpers ----------
 
-function h(tag, attrs, ...kids) {
-  const el = document.createElement(tag);
-  for (const [k, v] of Object.entries(attrs || {})) {
-    if (v === null || v === undefined || v === false) continue;
-    if (k.startsWith('on')) el.addEventListener(k.slice(2), v);
-    else if (k === 'text') el.textContent = v;
-    else el.setAttribute(k, v === true ? '' : v);
-  }
-  for (const k of kids.flat(Infinity)) {
-    if (k === null || k === undefined || k === false) continue;
-    el.append(k instanceof Node ? k : document.createTextNode(String(k)));
-  }
-  return el;
-}
+const h = window.pfKit.el; // kit.js
 
 function s(tag, attrs, ...kids) {
   const el = document.createElementNS(SVGNS, tag);
@@ -74,17 +62,7 @@ function toast(msg, isErr) {
   toastTimer = setTimeout(() => { t.hidden = true; }, 6000);
 }
 
-async function api(path, body) {
-  const csrf = document.querySelector('meta[name="csrf-token"]').content;
-  const opt = body === undefined ? {} : {
-    method: 'POST', headers: { 'Content-Type': 'application/json', 'X-CSRF-Token': csrf }, body: JSON.stringify(body),
-  };
-  const r = await fetch(path, opt);
-  if (r.status === 401) { location.href = '/login'; throw new Error('not logged in'); }
-  const data = await r.json().catch(() => ({}));
-  if (!r.ok) { const e = new Error(data.error || `${r.status} ${r.statusText}`); e.status = r.status; throw e; }
-  return data;
-}
+const api = window.pfKit.call; // kit.js: JSON with the CSRF token on writes
 
 // ---------- the gateway clock, condition labels, stale values ----------
 

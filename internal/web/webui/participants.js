@@ -18,34 +18,9 @@
   let list = [];
   let nowMS = 0;
 
-  function el(tag, attrs, ...kids) {
-    const e = document.createElement(tag);
-    for (const [k, v] of Object.entries(attrs || {})) {
-      if (v === null || v === undefined || v === false) continue;
-      if (k.startsWith('on')) e.addEventListener(k.slice(2), v);
-      else e.setAttribute(k, v === true ? '' : v);
-    }
-    for (const k of kids.flat()) {
-      if (k !== null && k !== undefined && k !== false) e.append(k instanceof Node ? k : document.createTextNode(String(k)));
-    }
-    return e;
-  }
+  const { el, call } = window.pfKit; // kit.js
 
   const when = ms => new Date(ms).toLocaleString();
-
-  async function call(path, body) {
-    const opt = body === undefined ? {} : {
-      method: 'POST', body: JSON.stringify(body),
-      headers: { 'Content-Type': 'application/json', 'X-CSRF-Token': document.querySelector('meta[name="csrf-token"]').content },
-    };
-    const r = await fetch(path, opt);
-    if (r.status === 401) { location.href = '/login'; throw new Error('not logged in'); }
-    const text = await r.text();
-    let data = {};
-    try { data = JSON.parse(text); } catch (e) { data = { error: text.trim() }; }
-    if (!r.ok) throw new Error(data.error || `${r.status} ${r.statusText}`);
-    return data;
-  }
 
   // current is the device's open enrolment (at most one: the gateway
   // refuses overlaps), else null.

@@ -15,34 +15,11 @@
   let reviews = {};
   let dialog = null;
 
-  function el(tag, attrs, ...kids) {
-    const e = document.createElement(tag);
-    for (const [k, v] of Object.entries(attrs || {})) {
-      if (v === null || v === undefined || v === false) continue;
-      if (k.startsWith('on')) e.addEventListener(k.slice(2), v);
-      else e.setAttribute(k, v === true ? '' : v);
-    }
-    for (const k of kids.flat()) {
-      if (k !== null && k !== undefined && k !== false) e.append(k instanceof Node ? k : document.createTextNode(String(k)));
-    }
-    return e;
-  }
+  const { el, call } = window.pfKit; // kit.js
 
   function when(ms) {
     const d = new Date(ms);
     return d.toDateString() === new Date().toDateString() ? d.toLocaleTimeString() : d.toLocaleString();
-  }
-
-  async function call(path, body) {
-    const opt = body === undefined ? {} : {
-      method: 'POST', body: JSON.stringify(body),
-      headers: { 'Content-Type': 'application/json', 'X-CSRF-Token': document.querySelector('meta[name="csrf-token"]').content },
-    };
-    const r = await fetch(path, opt);
-    if (r.status === 401) { location.href = '/login'; throw new Error('not logged in'); }
-    const data = await r.json().catch(() => ({}));
-    if (!r.ok) throw new Error(data.error || `${r.status} ${r.statusText}`);
-    return data;
   }
 
   async function load() {
