@@ -1,12 +1,10 @@
 package main
 
 import (
-	"context"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
-	"time"
 
 	"github.com/chromedp/chromedp"
 )
@@ -18,36 +16,8 @@ import (
 // Then the review is changed from the page: the CLI's reviews export keeps
 // both revisions.
 func TestReviewThroughThePageInChromium(t *testing.T) {
-	const chromium = "/usr/bin/chromium"
-	if _, err := os.Stat(chromium); err != nil {
-		if os.Getenv("PULSEFLEET_REQUIRE_TOOLS") != "" {
-			t.Fatalf("%s is required (PULSEFLEET_REQUIRE_TOOLS is set): %v; run .ci/deps.d/chromium.sh", chromium, err)
-		}
-		t.Skipf("%s not installed: %v", chromium, err)
-	}
 	rg := startEpisodeGatewayRG(t, "ward-r-01")
-
-	ctx, cancel := context.WithTimeout(context.Background(), 90*time.Second)
-	defer cancel()
-	actx, acancel := chromedp.NewExecAllocator(ctx, chromedp.ExecPath(chromium), chromedp.Flag("headless", true), chromedp.NoSandbox,
-		chromedp.Flag("disable-gpu", true), chromedp.NoFirstRun, chromedp.NoDefaultBrowserCheck,
-		chromedp.Flag("disable-background-networking", true), chromedp.Flag("disable-component-update", true),
-		chromedp.Flag("disable-sync", true), chromedp.Flag("disable-dev-shm-usage", true),
-		chromedp.UserDataDir(t.TempDir()), chromedp.WindowSize(1280, 900))
-	defer acancel()
-	bctx, bcancel := chromedp.NewContext(actx)
-	defer bcancel()
-	if err := chromedp.Do(bctx); err != nil {
-		t.Fatalf("start %s: %v", chromium, err)
-	}
-	do := func(what string, steps ...chromedp.Action[chromedp.Void]) {
-		t.Helper()
-		sctx, cancel := context.WithTimeout(bctx, 20*time.Second)
-		defer cancel()
-		if err := chromedp.Do(sctx, steps...); err != nil {
-			t.Fatalf("%s: %v", what, err)
-		}
-	}
+	bctx, do := pageBrowser(t, 1280, 900)
 	spo2Low := func(out string) map[string]string {
 		t.Helper()
 		for _, r := range readEpisodesCSV(t, out) {

@@ -2,16 +2,10 @@ package gateway
 
 import (
 	"encoding/json"
-	"io"
 	"net/http"
-	"net/http/cookiejar"
-	neturl "net/url"
-	"regexp"
 	"strings"
 	"testing"
 	"time"
-
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // The page's enrolment JSON with tokens issued: a viewer reads a device's
@@ -24,53 +18,18 @@ func TestWebEnrolmentRolesAndCSRF(t *testing.T) {
 	d, _ := h.connect(t, summaryIntro("ward-e-01"))
 	d.send(summary(1, time.Now().Add(-time.Minute).UnixMilli(), 97))
 	d.waitAck(1)
-	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-web", Role: pb.Role_ROLE_ADMIN})
-	viewer := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "viewer-web", Role: pb.Role_ROLE_VIEWER})
-	operator := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "nurse-web", Role: pb.Role_ROLE_OPERATOR})
+	_, viewer, operator := webRoles(t, h)
 	url := "http://" + h.httpAddr
-	noRedirect := func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
-	login := func(tok string) (*http.Client, string) {
-		t.Helper()
-		jar, _ := cookiejar.New(nil)
-		c := &http.Client{Jar: jar, CheckRedirect: noRedirect}
-		resp, err := c.PostForm(url+"/login", neturl.Values{"token": {tok}})
-		if err != nil {
-			t.Fatal(err)
-		}
-		resp.Body.Close()
-		resp, err = c.Get(url + "/")
-		if err != nil {
-			t.Fatal(err)
-		}
-		page, _ := io.ReadAll(resp.Body)
-		resp.Body.Close()
-		m := regexp.MustCompile(`<meta name="csrf-token" content="([^"]+)">`).FindSubmatch(page)
-		if m == nil {
-			t.Fatalf("no CSRF token on the page (%d)", resp.StatusCode)
-		}
-		return c, string(m[1])
-	}
 	post := func(c *http.Client, path, csrf, ctype, body string) (int, string) {
 		t.Helper()
-		req, _ := http.NewRequest(http.MethodPost, url+"/api/device/ward-e-01/"+path, strings.NewReader(body))
-		req.Header.Set("Content-Type", ctype)
-		if csrf != "" {
-			req.Header.Set("X-CSRF-Token", csrf)
-		}
-		resp, err := c.Do(req)
-		if err != nil {
-			t.Fatal(err)
-		}
-		defer resp.Body.Close()
-		b, _ := io.ReadAll(resp.Body)
-		return resp.StatusCode, string(b)
+		return sessionPost(t, c, url+"/api/device/ward-e-01/"+path, csrf, ctype, body)
 	}
 	const good = `{"participant":"P-0042","note":"bed 4"}`
-	vc, vcsrf := login(viewer)
+	vc, vcsrf := webLogin(t, url, viewer)
 	if c, _ := post(vc, "enrol", vcsrf, "application/json", good); c != http.StatusForbidden {
 		t.Errorf("viewer enrols: %d, want 403", c)
 	}
-	oc, ocsrf := login(operator)
+	oc, ocsrf := webLogin(t, url, operator)
 	if c, _ := post(oc, "enrol", "", "application/json", good); c != http.StatusForbidden {
 		t.Errorf("operator without the CSRF token: %d, want 403", c)
 	}

@@ -2,18 +2,13 @@ package gateway
 
 import (
 	"encoding/json"
-	"io"
 	"net/http"
-	"net/http/cookiejar"
-	neturl "net/url"
-	"regexp"
 	"strconv"
 	"strings"
 	"testing"
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/internal/store"
-	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // The page's review JSON with tokens issued: a viewer reads reviews but
@@ -37,53 +32,18 @@ func TestWebReviewRolesAndCSRF(t *testing.T) {
 		}
 		return false
 	}, "a stored episode")
-	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-web", Role: pb.Role_ROLE_ADMIN})
-	viewer := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "viewer-web", Role: pb.Role_ROLE_VIEWER})
-	operator := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "nurse-web", Role: pb.Role_ROLE_OPERATOR})
+	_, viewer, operator := webRoles(t, h)
 	url := "http://" + h.httpAddr
-	noRedirect := func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
-	login := func(tok string) (*http.Client, string) {
-		t.Helper()
-		jar, _ := cookiejar.New(nil)
-		c := &http.Client{Jar: jar, CheckRedirect: noRedirect}
-		resp, err := c.PostForm(url+"/login", neturl.Values{"token": {tok}})
-		if err != nil {
-			t.Fatal(err)
-		}
-		resp.Body.Close()
-		resp, err = c.Get(url + "/")
-		if err != nil {
-			t.Fatal(err)
-		}
-		page, _ := io.ReadAll(resp.Body)
-		resp.Body.Close()
-		m := regexp.MustCompile(`<meta name="csrf-token" content="([^"]+)">`).FindSubmatch(page)
-		if m == nil {
-			t.Fatalf("no CSRF token on the page (%d)", resp.StatusCode)
-		}
-		return c, string(m[1])
-	}
 	post := func(c *http.Client, csrf, ctype, body string) (int, string) {
 		t.Helper()
-		req, _ := http.NewRequest(http.MethodPost, url+"/api/episode/"+strconv.FormatUint(epID, 10)+"/review", strings.NewReader(body))
-		req.Header.Set("Content-Type", ctype)
-		if csrf != "" {
-			req.Header.Set("X-CSRF-Token", csrf)
-		}
-		resp, err := c.Do(req)
-		if err != nil {
-			t.Fatal(err)
-		}
-		defer resp.Body.Close()
-		b, _ := io.ReadAll(resp.Body)
-		return resp.StatusCode, string(b)
+		return sessionPost(t, c, url+"/api/episode/"+strconv.FormatUint(epID, 10)+"/review", csrf, ctype, body)
 	}
 	const good = `{"label":"not-actionable","note":"asleep, recovered at once"}`
-	vc, vcsrf := login(viewer)
+	vc, vcsrf := webLogin(t, url, viewer)
 	if c, _ := post(vc, vcsrf, "application/json", good); c != http.StatusForbidden {
 		t.Errorf("viewer reviews: %d, want 403", c)
 	}
-	oc, ocsrf := login(operator)
+	oc, ocsrf := webLogin(t, url, operator)
 	if c, _ := post(oc, "", "application/json", good); c != http.StatusForbidden {
 		t.Errorf("operator without the CSRF token: %d, want 403", c)
 	}

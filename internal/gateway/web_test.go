@@ -8,11 +8,8 @@ import (
 	"io"
 	"math"
 	"net/http"
-	"net/http/cookiejar"
-	neturl "net/url"
 	"os"
 	"path/filepath"
-	"regexp"
 	"strings"
 	"sync"
 	"testing"
@@ -607,9 +604,7 @@ func TestWebLoginRolesAndCSRF(t *testing.T) {
 		d.send(summary(s, base+int64(s)*1000, 86)) // below 90 % for 10 s: announced after 2 s
 	}
 	d.waitAck(10)
-	admin := issue(t, h, "", &pb.IssueTokenRequest{Operator: "admin-web", Role: pb.Role_ROLE_ADMIN})
-	viewer := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "viewer-web", Role: pb.Role_ROLE_VIEWER})
-	operator := issue(t, h, admin, &pb.IssueTokenRequest{Operator: "nurse-web", Role: pb.Role_ROLE_OPERATOR})
+	_, viewer, operator := webRoles(t, h)
 	url := "http://" + h.httpAddr
 
 	noRedirect := func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
@@ -628,44 +623,13 @@ func TestWebLoginRolesAndCSRF(t *testing.T) {
 		t.Errorf("JSON without login: %d, want 401", c)
 	}
 
-	// login returns a client holding the session cookie and the page's CSRF token.
-	login := func(tok string) (*http.Client, string) {
-		t.Helper()
-		jar, _ := cookiejar.New(nil)
-		c := &http.Client{Jar: jar, CheckRedirect: noRedirect}
-		resp, err := c.PostForm(url+"/login", neturl.Values{"token": {tok}})
-		if err != nil {
-			t.Fatal(err)
-		}
-		resp.Body.Close()
-		resp, err = c.Get(url + "/")
-		if err != nil {
-			t.Fatal(err)
-		}
-		page, _ := io.ReadAll(resp.Body)
-		resp.Body.Close()
-		m := regexp.MustCompile(`<meta name="csrf-token" content="([^"]+)">`).FindSubmatch(page)
-		if resp.StatusCode != 200 || m == nil {
-			t.Fatalf("page after login: %d, csrf meta found %v", resp.StatusCode, m != nil)
-		}
-		return c, string(m[1])
-	}
 	post := func(c *http.Client, csrf string) int {
 		t.Helper()
-		req, _ := http.NewRequest(http.MethodPost, url+"/api/device/ward-x-01/acknowledge", strings.NewReader(`{}`))
-		req.Header.Set("Content-Type", "application/json")
-		if csrf != "" {
-			req.Header.Set("X-CSRF-Token", csrf)
-		}
-		resp, err := c.Do(req)
-		if err != nil {
-			t.Fatal(err)
-		}
-		resp.Body.Close()
-		return resp.StatusCode
+		code, _ := sessionPost(t, c, url+"/api/device/ward-x-01/acknowledge", csrf, "application/json", `{}`)
+		return code
 	}
 
-	vc, vcsrf := login(viewer)
+	vc, vcsrf := webLogin(t, url, viewer)
 	if resp, err := vc.Get(url + "/api/fleet"); err != nil || resp.StatusCode != 200 {
 		t.Errorf("viewer reads the fleet: %v %v", resp, err)
 	} else {
@@ -674,7 +638,7 @@ func TestWebLoginRolesAndCSRF(t *testing.T) {
 	if c := post(vc, vcsrf); c != http.StatusForbidden {
 		t.Errorf("viewer acknowledges: %d, want 403", c)
 	}
-	oc, ocsrf := login(operator)
+	oc, ocsrf := webLogin(t, url, operator)
 	if c := post(oc, ""); c != http.StatusForbidden {
 		t.Errorf("operator without the CSRF token: %d, want 403", c)
 	}
