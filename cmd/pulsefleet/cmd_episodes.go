@@ -90,8 +90,9 @@ func runEpisodes(ctx context.Context, args []string, s stdio) error {
 	if *since > 0 {
 		fromMS = time.Now().Add(-*since).UnixMilli()
 	}
-	rows, failed := fetchEpisodes(ctx, &cf, addrs, *device, fromMS)
-	rows, dups := dropDuplicateEpisodes(rows)
+	all, failed := fetchEpisodes(ctx, &cf, addrs, *device, fromMS)
+	rows, dups := dropDuplicateEpisodes(all)
+	conflicts := activeElsewhere(all, rows)
 	reachable := reachableOf(addrs, failed)
 	if *pid != "" {
 		ivs, err := remoteEnrolments(ctx, &cf, reachable)
@@ -124,6 +125,9 @@ func runEpisodes(ctx context.Context, args []string, s stdio) error {
 	if dups > 0 {
 		fmt.Fprintf(s.err, "pulsefleet episodes: %d episodes stored on two gateways (a device moved during the episode) are listed once, from the gateway with the most of it\n", dups)
 	}
+	for _, c := range conflicts {
+		fmt.Fprintf(s.err, "pulsefleet episodes: warning: %s\n", safeText(c))
+	}
 	printGaps(s.err, "episodes", gaps, "episodes")
 	return incomplete("episodes", len(addrs), failed)
 }
@@ -155,6 +159,30 @@ func dropDuplicateEpisodes(rows []episodeRow) ([]episodeRow, int) {
 		}
 	}
 	return out, len(rows) - len(out)
+}
+
+// activeElsewhere lists the dropped copies that are still active where the
+// kept copy is not (a copy stored by a gateway the device left may be
+// stale, or the kept one may be): the listing never silently hides an
+// active copy, it says which.
+func activeElsewhere(all, kept []episodeRow) []string {
+	type key struct {
+		dev, cond string
+		onset     int64
+	}
+	keptBy := map[key]episodeRow{}
+	for _, r := range kept {
+		keptBy[key{r.Episode.GetDeviceId(), r.Episode.GetCondition(), r.Episode.GetOnsetUnixMs()}] = r
+	}
+	var out []string
+	for _, r := range all {
+		k := key{r.Episode.GetDeviceId(), r.Episode.GetCondition(), r.Episode.GetOnsetUnixMs()}
+		if kr := keptBy[k]; kr.Episode != r.Episode && r.Episode.GetActive() && !kr.Episode.GetActive() {
+			out = append(out, fmt.Sprintf("%s %s (onset %s): listed from %s (episode %d, not active), but %s holds it as active (episode %d)",
+				r.Episode.GetDeviceId(), r.Episode.GetCondition(), msTime(k.onset), kr.Gateway, kr.Episode.GetEpisodeId(), r.Gateway, r.Episode.GetEpisodeId()))
+		}
+	}
+	return out
 }
 
 // rank orders copies of one episode by how much of it they hold.

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"strings"
 	"testing"
 
 	"github.com/pulsefleet/pulsefleet/internal/store"
@@ -26,6 +27,11 @@ func TestDuplicateEpisodesAreDroppedAndCounted(t *testing.T) {
 	out, dups := dropDuplicateEpisodes(rows)
 	if dups != 2 || len(out) != 4 {
 		t.Fatalf("%d rows, %d dropped; want 4 and 2", len(out), dups)
+	}
+	// The old gateway's copy still says active: the listing says so.
+	rows[0].Episode.Active = true
+	if w := activeElsewhere(rows, out); len(w) != 1 || !strings.Contains(w[0], "listed from b (episode 2, not active), but a holds it as active (episode 7)") {
+		t.Errorf("warnings %q, want one naming a's active copy", w)
 	}
 	got := map[string]string{}
 	for _, r := range out {

@@ -95,6 +95,7 @@ func TestMergedEpisodesAcrossAFailoverOnEtcd(t *testing.T) {
 			t.Errorf("kept spo2_low copy: onset %s, ended %q; want onset %d and ended", it.Episode.Onset, it.Episode.Ended, t0)
 		}
 	}
+	t.Logf("both up, stderr:\n%s", errOut)
 	if !strings.Contains(errOut, "listed once") {
 		t.Errorf("stderr does not count the dropped copy: %q", errOut)
 	}
