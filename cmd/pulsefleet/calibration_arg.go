@@ -35,5 +35,9 @@ func resolveCalibration(arg string, redNM, irNM float64) (estimator.Calibration,
 	if err != nil {
 		return nil, fmt.Errorf("--calibration %q (not %s or %s, so a curve file): %w", arg, calibrationEmpirical, calibrationBeerLambert, err)
 	}
+	if c.Anchored() {
+		return nil, fmt.Errorf("--calibration %q: input: %s (anchor_s: %d): the curve maps R/R0, R0 a device's room-air anchor, and this command gives the raw ratio R; "+
+			"such a curve applies only in the gateway, which takes each device's anchor (README, \"Room-air anchor\")", arg, c.Input, c.AnchorS)
+	}
 	return c, nil
 }

@@ -67,7 +67,7 @@ func runCalibrate(ctx context.Context, args []string, s stdio) error {
 	if o.name == "" {
 		o.name = nameFromPath(o.pairs)
 	}
-	pairs, err := readPairsFile(o.pairs, s.in)
+	pairs, anchor, err := readPairsFile(o.pairs, s.in)
 	if err != nil {
 		return err
 	}
@@ -78,6 +78,7 @@ func runCalibrate(ctx context.Context, args []string, s stdio) error {
 	if err != nil {
 		return fmt.Errorf("%s: %w", o.pairs, err)
 	}
+	res.Curve.WithAnchor(anchor) // pairs of R/R0 give a curve on R/R0, and it says so
 	if o.out != "" {
 		data, err := res.Curve.Marshal()
 		if err != nil {
@@ -115,6 +116,11 @@ func (o *calibrateOptions) printText(w io.Writer, res *calibration.Result) error
 	if err := res.WriteText(w); err != nil {
 		return err
 	}
+	if c := res.Curve; c.Anchored() {
+		fmt.Fprintf(w, "\ninput: anchored ratio R/R0 (R above is R/R0): R0 is each device's room-air anchor, the median of its usable ratios (SQI >= %g)\n"+
+			"  over %d s from its first usable second, at least %d usable seconds; the person must be at rest on room air then.\n"+
+			"  The gateway shows SpO2 as not available until the anchor is complete; estimate, replay and tune refuse this curve.\n", c.AnchorMinSQI, c.AnchorS, c.AnchorMinSec)
+	}
 	if o.out != "" {
 		fmt.Fprintf(w, "\ncalibration file: %s\n", o.out)
 	} else {
@@ -126,24 +132,26 @@ func (o *calibrateOptions) printText(w io.Writer, res *calibration.Result) error
 	return nil
 }
 
-func readPairsFile(path string, stdin io.Reader) ([]calibration.Pair, error) {
+// readPairsFile reads pairs of R or of the anchored ratio R/R0 (then the
+// anchor they are divided by, which the fitted curve records).
+func readPairsFile(path string, stdin io.Reader) ([]calibration.Pair, estimator.AnchorSpec, error) {
 	if path == "-" {
-		p, err := calibration.ReadPairs(stdin)
+		p, spec, err := calibration.ReadPairsAnchored(stdin)
 		if err != nil {
-			return nil, fmt.Errorf("standard input: %w", err)
+			return nil, spec, fmt.Errorf("standard input: %w", err)
 		}
-		return p, nil
+		return p, spec, nil
 	}
 	f, err := os.Open(path)
 	if err != nil {
-		return nil, err
+		return nil, estimator.AnchorSpec{}, err
 	}
 	defer f.Close()
-	p, err := calibration.ReadPairs(f)
+	p, spec, err := calibration.ReadPairsAnchored(f)
 	if err != nil {
-		return nil, fmt.Errorf("%s: %w", path, err)
+		return nil, spec, fmt.Errorf("%s: %w", path, err)
 	}
-	return p, nil
+	return p, spec, nil
 }
 
 var notNameChar = regexp.MustCompile(`[^a-z0-9._-]+`)
@@ -200,7 +208,7 @@ type stringList []string
 func (l *stringList) String() string     { return strings.Join(*l, ",") }
 func (l *stringList) Set(v string) error { *l = append(*l, v); return nil }
 
-const calibratePairsSynopsis = "pairs --raw FILE --reference FILE --rate HZ [--red-col NAME --ir-col NAME] [--subject NAME] [--out pairs.csv]"
+const calibratePairsSynopsis = "pairs --raw FILE --reference FILE --rate HZ [--red-col NAME --ir-col NAME] [--subject NAME] [--anchor S] [--out pairs.csv]"
 
 // runCalibratePairs builds calibration pairs from raw recordings and
 // reference files.
@@ -226,8 +234,15 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 	fs.StringVar(&ratio, "ratio", string(estimator.RatioBeatSlope), "ratio method: slope (regression slope over each beat), derivative (of the differenced channels) or spectral (at the pulse frequency)")
 	fs.BoolVar(&o.Align.QualityWeights, "quality-weights", false, "SQI-weighted window ratio and a weight column for a weighted fit")
 	fs.StringVar(&out, "out", "", "write the pairs CSV here (default: standard output)")
+	fs.IntVar(&o.AnchorS, "anchor", 0, "divide each recording's ratios by its room-air anchor R0, the median of its usable ratios (SQI >= --min-sqi) over this many seconds from its first usable second; the pairs (column anchored_ratio) then fit a curve on R/R0 (0 = raw R)")
+	fs.IntVar(&o.AnchorMinSeconds, "anchor-min-seconds", pairing.MinAnchorSeconds, "usable seconds a recording's anchor needs (with --anchor)")
 	if err := parseFlags(fs, args); err != nil {
 		return err
+	}
+	if o.AnchorS != 0 {
+		if err := o.AnchorSpec().Validate(); err != nil {
+			return usagef("--anchor %d: %v", o.AnchorS, err)
+		}
 	}
 	if err := checkRecordingArgs(raws, refs, subs, o.RateHz); err != nil {
 		return err
@@ -266,10 +281,11 @@ func runCalibratePairs(ctx context.Context, args []string, s stdio) error {
 	if len(raws) > 1 {
 		fmt.Fprintf(summary, "total: %s\n", total)
 	}
+	spec := o.AnchorSpec()
 	if out == "" {
-		return calibration.WritePairs(s.out, all)
+		return calibration.WritePairsAnchored(s.out, all, spec)
 	}
-	if err := writeFileWith(out, func(w io.Writer) error { return calibration.WritePairs(w, all) }); err != nil {
+	if err := writeFileWith(out, func(w io.Writer) error { return calibration.WritePairsAnchored(w, all, spec) }); err != nil {
 		return fmt.Errorf("write pairs: %w", err)
 	}
 	fmt.Fprintf(summary, "%d pairs written to %s\n", len(all), out)

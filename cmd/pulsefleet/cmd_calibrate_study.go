@@ -142,7 +142,8 @@ func printStudyText(w io.Writer, ev *studyEvaluation, rule estimator.RatioMethod
 	fmt.Fprintf(w, "\non all subjects: nested picks %s; tracking picks %s; rule picks %s\n", ev.pick[0], ev.pick[1], ev.pick[2])
 	fmt.Fprintln(w, "fit a curve with: calibrate pairs (--red-col/--ir-col/--ratio/--lag of the pick, --quality-weights) then calibrate --pairs.")
 	fmt.Fprintln(w, "anchor A s: each recording's ratios divided by their median over A s from its first usable second (the person at rest on room air);")
-	fmt.Fprintln(w, "  an anchored pick is a study result only: calibrate pairs, the curve file and the gateway do not take a per-device anchor yet.")
+	fmt.Fprintln(w, "  to deploy an anchored pick: calibrate pairs --anchor A (its channels, ratio method and lag), then calibrate --pairs: the curve file")
+	fmt.Fprintln(w, "  says input: anchored_ratio, and the gateway shows SpO2 as not available until each device's anchor is complete.")
 	fmt.Fprintln(w, "bias = mean(predicted - reference); SD = population SD; Arms^2 = bias^2 + SD^2; the mean predictor predicts the training subjects' mean reference.")
 	fmt.Fprintf(w, "\n%s\n", caution.Line)
 	return nil

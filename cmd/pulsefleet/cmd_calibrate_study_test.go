@@ -160,7 +160,7 @@ func TestCalibrateStudyAnchors(t *testing.T) {
 	for _, want := range []string{
 		"8 recordings of 4 subjects, 3 variants",
 		"tracking: variant (anchor 60 s)", "subject-1: chose b/g slope lag 10 s anchor 60 s",
-		"  pooled", "do not take a per-device anchor yet", caution.Line,
+		"  pooled", "calibrate pairs --anchor A", caution.Line,
 	} {
 		if !strings.Contains(stdout, want) {
 			t.Errorf("anchored study output lacks %q:\n%s", want, stdout)

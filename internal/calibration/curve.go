@@ -72,13 +72,8 @@ func (c *Curve) AnchorSpec() estimator.AnchorSpec {
 	return estimator.AnchorSpec{LengthS: c.AnchorS, MinSQI: c.AnchorMinSQI, MinSeconds: c.AnchorMinSec}
 }
 
-// String names the curve and its input, for error messages.
-func (c *Curve) String() string {
-	if c.Anchored() {
-		return fmt.Sprintf("curve %s (input: %s, anchor_s: %d)", c.CurveName(), c.Input, c.AnchorS)
-	}
-	return "curve " + c.CurveName()
-}
+// String names the curve, for error messages.
+func (c *Curve) String() string { return "curve " + c.CurveName() }
 
 // CurveName returns the identifier used in logs and in the store.
 func (c *Curve) CurveName() string { return fmt.Sprintf("%s@v%d", c.Name, c.Version) }

@@ -60,26 +60,46 @@ func (p Pair) validate() error {
 // the columns ratio and reference_pct, optionally subject and weight (an
 // empty weight cell is unweighted); other columns are ignored. Every row must carry both numbers; an error names the line and the
 // field. An input with no rows is an error.
+//
+// A file of anchored pairs (column anchored_ratio, ReadPairsAnchored) is
+// refused: its ratios are R/R0, not R.
 func ReadPairs(r io.Reader) ([]Pair, error) {
+	p, col, err := readPairs(r)
+	if err == nil && col != "ratio" {
+		return nil, fmt.Errorf("pairs: column %s: these ratios are divided by a room-air anchor (R/R0), not R; read them as anchored pairs", col)
+	}
+	return p, err
+}
+
+// readPairs reads either kind of pairs file and says which ratio column it
+// had (ratio or anchored_ratio).
+func readPairs(r io.Reader) ([]Pair, string, error) {
 	cr := csv.NewReader(r)
 	cr.FieldsPerRecord = -1
 	cr.TrimLeadingSpace = true
 	cr.Comment = '#'
 	header, err := cr.Read()
 	if errors.Is(err, io.EOF) {
-		return nil, errors.New("pairs: empty input, want a header row with ratio,reference_pct[,subject]")
+		return nil, "", errors.New("pairs: empty input, want a header row with ratio,reference_pct[,subject]")
 	}
 	if err != nil {
-		return nil, fmt.Errorf("pairs: header: %w", err)
+		return nil, "", fmt.Errorf("pairs: header: %w", err)
 	}
 	col := map[string]int{}
 	for i, h := range header {
 		col[strings.TrimSpace(strings.ToLower(strings.TrimPrefix(h, "\ufeff")))] = i
 	}
 	ri, ok1 := col["ratio"]
+	ratioCol := "ratio"
+	if ai, ok := col["anchored_ratio"]; ok {
+		if ok1 {
+			return nil, "", fmt.Errorf("pairs: header %q: both ratio and anchored_ratio, want one", strings.Join(header, ","))
+		}
+		ri, ok1, ratioCol = ai, true, "anchored_ratio"
+	}
 	pi, ok2 := col["reference_pct"]
 	if !ok1 || !ok2 {
-		return nil, fmt.Errorf("pairs: header %q: want columns ratio and reference_pct (and optionally subject)", strings.Join(header, ","))
+		return nil, "", fmt.Errorf("pairs: header %q: want columns ratio and reference_pct (and optionally subject; anchored pairs name the ratio column anchored_ratio)", strings.Join(header, ","))
 	}
 	si, hasSubject := col["subject"]
 	wi, hasWeight := col["weight"]
@@ -90,7 +110,7 @@ func ReadPairs(r io.Reader) ([]Pair, error) {
 			break
 		}
 		if err != nil {
-			return nil, fmt.Errorf("pairs: %w", err)
+			return nil, "", fmt.Errorf("pairs: %w", err)
 		}
 		line, _ := cr.FieldPos(0)
 		cell := func(i int) string {
@@ -101,28 +121,28 @@ func ReadPairs(r io.Reader) ([]Pair, error) {
 		}
 		var p Pair
 		if p.Ratio, err = parseCell(cell(ri)); err != nil {
-			return nil, fmt.Errorf("pairs: line %d: ratio: %w", line, err)
+			return nil, "", fmt.Errorf("pairs: line %d: %s: %w", line, ratioCol, err)
 		}
 		if p.ReferencePct, err = parseCell(cell(pi)); err != nil {
-			return nil, fmt.Errorf("pairs: line %d: reference_pct: %w", line, err)
+			return nil, "", fmt.Errorf("pairs: line %d: reference_pct: %w", line, err)
 		}
 		if hasSubject {
 			p.Subject = cell(si)
 		}
 		if hasWeight && cell(wi) != "" {
 			if p.Weight, err = parseCell(cell(wi)); err != nil {
-				return nil, fmt.Errorf("pairs: line %d: weight: %w", line, err)
+				return nil, "", fmt.Errorf("pairs: line %d: weight: %w", line, err)
 			}
 		}
 		if err := p.validate(); err != nil {
-			return nil, fmt.Errorf("pairs: line %d: %w", line, err)
+			return nil, "", fmt.Errorf("pairs: line %d: %w", line, err)
 		}
 		pairs = append(pairs, p)
 	}
 	if len(pairs) == 0 {
-		return nil, errors.New("pairs: no rows after the header")
+		return nil, "", errors.New("pairs: no rows after the header")
 	}
-	return pairs, nil
+	return pairs, ratioCol, nil
 }
 
 func parseCell(s string) (float64, error) {
@@ -139,7 +159,9 @@ func parseCell(s string) (float64, error) {
 // WritePairs writes pairs in the format ReadPairs reads. The subject
 // column is written when any pair has a subject, the weight column when any
 // pair has a weight.
-func WritePairs(w io.Writer, pairs []Pair) error {
+func WritePairs(w io.Writer, pairs []Pair) error { return writePairs(w, pairs, "ratio") }
+
+func writePairs(w io.Writer, pairs []Pair, ratioCol string) error {
 	withSubject, withWeight := false, false
 	for _, p := range pairs {
 		withSubject = withSubject || p.Subject != ""
@@ -149,7 +171,7 @@ func WritePairs(w io.Writer, pairs []Pair) error {
 		return fmt.Errorf("write pairs: %w", err)
 	}
 	cw := csv.NewWriter(w)
-	header := []string{"ratio", "reference_pct"}
+	header := []string{ratioCol, "reference_pct"}
 	if withSubject {
 		header = append(header, "subject")
 	}

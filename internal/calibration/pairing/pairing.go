@@ -39,6 +39,11 @@ type Options struct {
 	// at the recording's first second (docs/calibration-protocol.md,
 	// version 1) rather than at its first usable second (version 2).
 	AnchorAtRecordingStart bool
+	// AnchorS > 0 divides the recording's ratios by its room-air anchor
+	// over AnchorS seconds (calibration.Anchor, SQI >= Align.MinSQI, at
+	// least AnchorMinSeconds usable seconds, 0 = MinAnchorSeconds), for a
+	// curve on the anchored ratio; 0 = raw ratio. FromRecording only.
+	AnchorS, AnchorMinSeconds int
 	// ReferenceSubject selects the reference file's rows by its subject (or
 	// device) column; "" = the file names at most one.
 	ReferenceSubject string
@@ -208,7 +213,34 @@ func FromRecording(raw, ref io.Reader, o Options) ([]calibration.Pair, calibrati
 	if err != nil {
 		return nil, calibration.AlignReport{}, err
 	}
+	if o.AnchorS > 0 {
+		a, err := alignDefaults(o.Align)
+		if err != nil {
+			return nil, calibration.AlignReport{}, err
+		}
+		return alignVariant(dev, Recording{Subject: o.Align.Subject, Reference: rs}, Variant{AnchorS: o.AnchorS, LagS: o.Align.ReferenceLagS}, o, a.MinSQI)
+	}
 	return calibration.Align(dev, rs, o.Align)
+}
+
+// AnchorSpec is the anchor FromRecording divides by under o (LengthS 0:
+// none), as a curve file records it.
+func (o Options) AnchorSpec() estimator.AnchorSpec {
+	if o.AnchorS == 0 {
+		return estimator.AnchorSpec{}
+	}
+	minSQI := o.Align.MinSQI
+	if minSQI == 0 {
+		minSQI = 0.5
+	}
+	return estimator.AnchorSpec{LengthS: o.AnchorS, MinSQI: minSQI, MinSeconds: o.minAnchorSeconds()}
+}
+
+func (o Options) minAnchorSeconds() int {
+	if o.AnchorMinSeconds == 0 {
+		return MinAnchorSeconds
+	}
+	return o.AnchorMinSeconds
 }
 
 func colIndex(header []string, name string) int {

@@ -237,7 +237,7 @@ func alignVariant(d []calibration.DeviceSecond, rec Recording, v Variant, o Opti
 	a := o.Align
 	a.ReferenceLagS, a.Subject = v.LagS, rec.Subject
 	if v.AnchorS > 0 {
-		r0, _, ok, err := calibration.Anchor(d, calibration.AnchorOptions{LengthS: v.AnchorS, MinSQI: minSQI, MinSeconds: MinAnchorSeconds, AtRecordingStart: o.AnchorAtRecordingStart})
+		r0, _, ok, err := calibration.Anchor(d, calibration.AnchorOptions{LengthS: v.AnchorS, MinSQI: minSQI, MinSeconds: o.minAnchorSeconds(), AtRecordingStart: o.AnchorAtRecordingStart})
 		if err != nil {
 			return nil, calibration.AlignReport{}, fmt.Errorf("subject %s: variant %s: %w", rec.Subject, v.Name(), err)
 		}
