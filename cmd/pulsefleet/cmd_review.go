@@ -10,7 +10,6 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
-	"github.com/pulsefleet/pulsefleet/internal/caution"
 	"github.com/pulsefleet/pulsefleet/internal/review"
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -31,7 +30,9 @@ The episode id is the one 'pulsefleet episodes' lists for that gateway.`,
 		summary: `Export every review revision of one or more running gateways as CSV, oldest first per episode.
 One row per revision with the episode it reviews; 'pulsefleet episodes
 --format csv' gives one row per episode with its newest review. A gateway
-that cannot be read is named on stderr and the command exits 1.`,
+that cannot be read leaves the others' reviews written, marked: "#
+incomplete:" comment lines after the caution and INCOMPLETE on stderr name
+it, and the command exits 3.`,
 		run: runReviews,
 	})
 }
@@ -109,9 +110,15 @@ func runReviews(ctx context.Context, args []string, s stdio) error {
 			all = append(all, gatewayReview{a, r})
 		}
 	}
-	if err := writeReviewsCSV(s.out, all); err != nil {
+	var only []string
+	if *device != "" {
+		only = []string{*device}
+	}
+	gaps := findGaps(ctx, &cf, reachableOf(addrs, failed), failed, only)
+	if err := writeReviewsCSV(s.out, all, gaps.notes("reviews", 1000)); err != nil {
 		return err
 	}
+	printGaps(s.err, "reviews", gaps, "reviews")
 	return incomplete("reviews", len(addrs), failed)
 }
 
@@ -135,8 +142,10 @@ func gatewayReviews(ctx context.Context, cf *clientFlags, addr string, req *pb.L
 	return resp.GetReviews(), nil
 }
 
-func writeReviewsCSV(w io.Writer, rs []gatewayReview) error {
-	if err := caution.WriteComment(w); err != nil {
+// writeReviewsCSV writes the reviews export; notes (a merged answer's
+// gaps) become "# incomplete:" comment lines after the caution.
+func writeReviewsCSV(w io.Writer, rs []gatewayReview, notes []string) error {
+	if err := writeCSVHead(w, notes); err != nil {
 		return err
 	}
 	cw := csv.NewWriter(w)

@@ -305,6 +305,11 @@ func TestMergedHistoryAcrossGatewaysMarksAGap(t *testing.T) {
 		!strings.Contains(errOut, "INCOMPLETE: gateway "+pB) {
 		t.Errorf("trend with B down: exit %d, %d points (want A's 41), notes %q\n%s", code, len(rows), notes, errOut)
 	}
+	code, out, errOut = runCmd("reviews", "--gateway", list)
+	notes, rows = exportRows(t, out)
+	if code != exitIncomplete || len(rows) != 1 || len(notes) < 1 || !strings.Contains(notes[0], pB) {
+		t.Errorf("reviews with B down: exit %d, %d rows (want A's 1), notes %q\n%s", code, len(rows), notes, errOut)
+	}
 	code, out, _ = runCmd("export", "--gateway", list, "--format", "fhir")
 	var bundle struct {
 		Entry []struct {
