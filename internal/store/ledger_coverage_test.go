@@ -1,6 +1,7 @@
 package store
 
 import (
+	"fmt"
 	"reflect"
 	"testing"
 )
@@ -40,5 +41,40 @@ func TestLedgerCoverageMergesSpansAndKeepsHoles(t *testing.T) {
 	only, err := db.LedgerCoverage("b", "nobody")
 	if err != nil || len(only) != 1 || len(only["b"]) != 1 {
 		t.Errorf("coverage of b and an unknown device: %+v, %v; want b only", only, err)
+	}
+}
+
+// BenchmarkLedgerCoverage is what a merged history query with a gateway
+// down costs each reachable gateway: the coverage of 3,000 devices with a
+// week of ledger (one range per device and day, every device with one hole).
+func BenchmarkLedgerCoverage(b *testing.B) {
+	db, _ := mustOpen(b)
+	const devices, days = 3000, 7
+	t0 := 30*day + 3_600_000
+	var devs []*Device
+	for i := 0; i < devices; i++ {
+		devs = append(devs, &Device{ID: fmt.Sprintf("bench-%04d", i), Mode: "summary"})
+	}
+	for d := 0; d < days; d++ {
+		batch := &Batch{Devices: devs}
+		for i := 0; i < devices; i++ {
+			seq := uint64(d*10 + 1)
+			if d == 3 {
+				seq += 5 // a hole
+			}
+			for k := uint64(0); k < 2; k++ {
+				batch.Chunks = append(batch.Chunks, Chunk{Device: devs[i].ID, Seq: seq + k, DeviceTimeMS: t0 + int64(d)*day, ArrivalMS: t0 + int64(d)*day, Samples: 1})
+			}
+		}
+		if err := db.Write(batch); err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		cov, err := db.LedgerCoverage()
+		if err != nil || len(cov) != devices {
+			b.Fatalf("%d devices, %v", len(cov), err)
+		}
 	}
 }
