@@ -52,8 +52,9 @@ func waitCurve(t *testing.T, fl pb.FleetServiceClient, device, ref string, a flo
 // other (its trend reads the new curve, from the open stream, without a
 // reconnection); a per-device profile set through one gateway for a device
 // neither has seen is in force from that device's first connection to the
-// other; etcd stopped: the device streams on under its curve and
-// calibration changes are refused naming etcd; etcd back: a new version
+// other, and so are operator labels set with `pulsefleet labels`; etcd
+// stopped: the device streams on under its curve and calibration and label
+// changes are refused naming etcd; etcd back: a new version
 // put and assigned through the other gateway is in force too, and the
 // audit names the gateway that took each change.
 func TestFleetOnEtcdSharedCalibrations(t *testing.T) {
@@ -97,6 +98,25 @@ func TestFleetOnEtcdSharedCalibrations(t *testing.T) {
 		other, holder, named.Round(time.Millisecond), value.Round(time.Millisecond))
 	if named > applyBound {
 		t.Errorf("calibration in force on gateway %d after %v, want within %v", holder, named, applyBound)
+	}
+
+	// Operator labels set through the other gateway (the CLI) are on the
+	// device's description at the holder within applyBound, beside the
+	// introduction's.
+	asked = time.Now()
+	if code, out, errOut := runCmd("labels", "--gateway", f.addrs[other], "--device", "cal-0001", "--label", "bed=4", "--label", "ward=east", "--reason", "moved"); code != 0 {
+		t.Fatalf("labels through gateway %d: exit %d: %s %s", other, code, out, errOut)
+	}
+	for {
+		r, err := flH.GetDevice(context.Background(), &pb.GetDeviceRequest{DeviceId: "cal-0001"})
+		if l := r.GetDevice().GetLabels(); err == nil && l["bed"] == "4" && l["ward"] == "east" {
+			t.Logf("labels set through gateway %d on the device at gateway %d after %v", other, holder, time.Since(asked).Round(time.Millisecond))
+			break
+		}
+		if time.Since(asked) > applyBound {
+			t.Fatalf("labels of cal-0001 at gateway %d %v after they were set: %v (%v), want bed=4 ward=east", holder, applyBound, r.GetDevice().GetLabels(), err)
+		}
+		time.Sleep(10 * time.Millisecond)
 	}
 
 	// A per-device profile for a device no gateway has seen, set through
@@ -143,6 +163,10 @@ func TestFleetOnEtcdSharedCalibrations(t *testing.T) {
 		_, err = ad.AssignCalibration(context.Background(), &pb.AssignCalibrationRequest{DeviceId: "cal-0001", Calibration: "empirical"})
 		if status.Code(err) != codes.Unavailable || !strings.Contains(err.Error(), "control plane (etcd) is unreachable") {
 			t.Fatalf("assign a calibration while etcd is down (client %d): %v, want UNAVAILABLE naming the unreachable control plane (etcd)", i, err)
+		}
+		_, err = ad.SetDeviceLabels(context.Background(), &pb.SetDeviceLabelsRequest{DeviceId: "cal-0001", Labels: map[string]string{"bed": "5"}})
+		if status.Code(err) != codes.Unavailable || !strings.Contains(err.Error(), "control plane (etcd) is unreachable") {
+			t.Fatalf("set labels while etcd is down (client %d): %v, want UNAVAILABLE naming the unreachable control plane (etcd)", i, err)
 		}
 	}
 	// Ingest goes on under the last known curve.
@@ -191,11 +215,14 @@ func TestFleetOnEtcdSharedCalibrations(t *testing.T) {
 	}
 	var synced []string
 	for _, e := range au.GetEntries() {
-		if strings.HasPrefix(e.GetAction(), "calibration.sync") && strings.Contains(e.GetDetail(), "taken by gateway "+f.addrs[other]) {
+		if (strings.HasPrefix(e.GetAction(), "calibration.sync") || e.GetAction() == "device.labels.sync") && strings.Contains(e.GetDetail(), "taken by gateway "+f.addrs[other]) {
 			synced = append(synced, e.GetDetail())
 		}
 	}
-	if len(synced) != 4 { // two versions, two assignments
-		t.Errorf("gateway %d's audit: calibration changes naming gateway %s: %q, want 4", holder, f.addrs[other], synced)
+	if len(synced) != 5 { // two versions, two assignments, one label change
+		t.Errorf("gateway %d's audit: calibration and label changes naming gateway %s: %q, want 5", holder, f.addrs[other], synced)
+	}
+	if r, err := flH.GetDevice(context.Background(), &pb.GetDeviceRequest{DeviceId: "cal-0001"}); err != nil || r.GetDevice().GetLabels()["bed"] != "4" {
+		t.Errorf("labels after the outage: %v (%v), want bed=4 kept (the change during it was refused)", r.GetDevice().GetLabels(), err)
 	}
 }

@@ -102,6 +102,7 @@ var methodRoles = map[string]Role{
 	pb.AdminService_PutCalibration_FullMethodName:    RoleAdmin,
 	pb.AdminService_AssignCalibration_FullMethodName: RoleAdmin,
 	pb.AdminService_Backup_FullMethodName:            RoleAdmin,
+	pb.AdminService_SetDeviceLabels_FullMethodName:   RoleOperator,
 
 	// Enrolment is a bedside task (operator); deletion destroys data (admin).
 	pb.ParticipantService_ListEnrolments_FullMethodName:    RoleViewer,

@@ -85,3 +85,23 @@ func (p *Plane) PublishCalibration(ctx context.Context, c store.Calibration, atL
 func (p *Plane) PublishAssignment(ctx context.Context, a Assignment) error {
 	return p.publish(ctx, p.key("calassign", a.Target), assignmentEntry{Gateway: p.cfg.Self, Assignment: a})
 }
+
+// Labels are a device's operator labels, shared by the fleet (an empty
+// Labels removes them).
+type Labels struct {
+	Device string            `json:"device"`
+	Labels map[string]string `json:"labels"`
+	Actor  string            `json:"actor"`
+	Reason string            `json:"reason"`
+}
+
+type labelsEntry struct {
+	Gateway string `json:"gateway"`
+	Labels  Labels `json:"labels"`
+}
+
+// PublishLabels writes a device's operator labels for the whole fleet,
+// failing like PublishToken.
+func (p *Plane) PublishLabels(ctx context.Context, l Labels) error {
+	return p.publish(ctx, p.key("labels", l.Device), labelsEntry{Gateway: p.cfg.Self, Labels: l})
+}

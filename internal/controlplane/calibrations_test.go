@@ -57,15 +57,18 @@ func TestCalibrationVersionsAndAssignments(t *testing.T) {
 	if err := a.PublishAssignment(context.Background(), Assignment{Target: "model:x", Ref: "ward@v9", Actor: "operator:ops"}); err != nil {
 		t.Fatal(err)
 	}
+	if err := a.PublishLabels(context.Background(), Labels{Device: "d1", Labels: map[string]string{"bed": "4"}}); err != nil {
+		t.Fatal(err)
+	}
 	for start := time.Now(); ; time.Sleep(5 * time.Millisecond) {
 		rb.mu.Lock()
-		n, m := len(rb.cals), len(rb.assigns)
+		n, m, l := len(rb.cals), len(rb.assigns), len(rb.labels)
 		rb.mu.Unlock()
-		if n == 7 && m == 1 {
+		if n == 7 && m == 1 && l == 1 {
 			break
 		}
 		if time.Since(start) > 2*time.Second {
-			t.Fatalf("b applied %d calibrations and %d assignments within 2 s, want 7 and 1", n, m)
+			t.Fatalf("b applied %d calibrations, %d assignments and %d labels within 2 s, want 7, 1 and 1", n, m, l)
 		}
 	}
 	_, rc := newPlane(t, s, "c:1")
@@ -88,5 +91,8 @@ func TestCalibrationVersionsAndAssignments(t *testing.T) {
 	}
 	if err := a.PublishAssignment(context.Background(), Assignment{Target: "model:x"}); !errors.Is(err, ErrUnreachable) {
 		t.Fatalf("assign while etcd is down: %v, want ErrUnreachable", err)
+	}
+	if err := a.PublishLabels(context.Background(), Labels{Device: "d1"}); !errors.Is(err, ErrUnreachable) {
+		t.Fatalf("labels while etcd is down: %v, want ErrUnreachable", err)
 	}
 }

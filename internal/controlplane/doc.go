@@ -12,8 +12,8 @@
 // for the device's first connection); calibration curves, every version,
 // numbered by the fleet (PublishCalibration: a create-only transaction per
 // version, so two gateways never give one number to two curves), and their
-// assignments to a model or a device. Device descriptions, labels included,
-// travel with the device (it sends them in each introduction); history
+// assignments to a model or a device; the operator's device labels (a
+// device's own labels, sent in each introduction, travel with it); history
 // stays in each gateway's store.
 //
 // While etcd is unreachable (a probe every second, and every failed write)
@@ -29,7 +29,8 @@
 // Profile}; PREFIX/cp/calibrations/NAME/VERSION (ten digits) ->
 // {"gateway": ADDR, "calibration": store.Calibration};
 // PREFIX/cp/calassign/TARGET ("model:M" or "device:ID") -> {"gateway":
-// ADDR, "assignment": Assignment} (an empty Ref removes it). A snapshot
+// ADDR, "assignment": Assignment} (an empty Ref removes it);
+// PREFIX/cp/labels/DEVICE -> {"gateway": ADDR, "labels": Labels}. A snapshot
 // (Start) is applied in the order the keys were written, so a calibration
 // comes before an assignment naming it.
 // Nothing is deleted: a revoked credential stays, with its revocation time.

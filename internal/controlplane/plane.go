@@ -28,6 +28,7 @@ type Applier interface {
 	ApplyProfile(pr Profile, from string) error
 	ApplyCalibration(c store.Calibration, from string) error
 	ApplyAssignment(a Assignment, from string) error
+	ApplyLabels(l Labels, from string) error
 }
 
 // Profile is a shared alarm profile: the fleet's default (Device "") or
@@ -164,6 +165,11 @@ func (p *Plane) apply(a Applier, key string, v []byte) {
 		var e assignmentEntry
 		if err = json.Unmarshal(v, &e); err == nil {
 			from, err = e.Gateway, a.ApplyAssignment(e.Assignment, e.Gateway)
+		}
+	case strings.HasPrefix(key, p.key("labels")+"/"):
+		var e labelsEntry
+		if err = json.Unmarshal(v, &e); err == nil {
+			from, err = e.Gateway, a.ApplyLabels(e.Labels, e.Gateway)
 		}
 	default:
 		return // a kind of setting this release does not know

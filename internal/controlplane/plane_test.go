@@ -19,12 +19,20 @@ type recorder struct {
 	profiles []Profile
 	cals     []store.Calibration
 	assigns  []Assignment
+	labels   []Labels
 }
 
 func (r *recorder) ApplyCalibration(c store.Calibration, from string) error {
 	r.mu.Lock()
 	defer r.mu.Unlock()
 	r.cals = append(r.cals, c)
+	return nil
+}
+
+func (r *recorder) ApplyLabels(l Labels, from string) error {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	r.labels = append(r.labels, l)
 	return nil
 }
 

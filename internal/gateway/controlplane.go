@@ -24,6 +24,7 @@ type ControlPlane interface {
 	PublishProfile(ctx context.Context, pr controlplane.Profile) error
 	PublishCalibration(ctx context.Context, c store.Calibration, atLeast uint32) (store.Calibration, error)
 	PublishAssignment(ctx context.Context, a controlplane.Assignment) error
+	PublishLabels(ctx context.Context, l controlplane.Labels) error
 	Status() (up bool, detail string)
 	Self() string
 }

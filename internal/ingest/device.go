@@ -31,6 +31,7 @@ type device struct {
 	engine      *alarms.Engine // nil when no profile applies
 	profile     *alarms.Profile
 	ownProfile  bool                  // the profile was set for this device
+	introLabels map[string]string     // the labels of its last introduction (desc.Labels adds the operator's: labels.go)
 	alarmRev    uint64                // engine revision last persisted
 	sessionMS   int64                 // start of the current or last session (gateway clock)
 	q           quality               // signal-quality and uptime accumulators

@@ -79,6 +79,7 @@ type Pipeline struct {
 	defaultMu      sync.RWMutex
 	defaultProfile *alarms.Profile
 	ahead          aheadProfiles // per-device profiles of devices not seen yet (shared.go)
+	labels         opLabels      // the operator's device labels (labels.go)
 
 	failed atomic.Pointer[error] // the last batch failed to commit (nil = it committed)
 }
@@ -129,6 +130,9 @@ func (p *Pipeline) load() error {
 	if err != nil {
 		return fmt.Errorf("load alarm states: %w", err)
 	}
+	if p.labels.m, err = p.db.DeviceLabels(); err != nil {
+		return fmt.Errorf("load device labels: %w", err)
+	}
 	known := make(map[string]bool, len(descs))
 	for _, desc := range descs {
 		known[desc.ID] = true
@@ -145,6 +149,7 @@ func (p *Pipeline) load() error {
 	for _, desc := range descs {
 		d, _ := p.devices.getOrCreate(desc.ID)
 		d.desc = desc
+		d.introLabels = p.labels.introduced(desc.ID, desc.Labels)
 		if c, ok := curs[desc.ID]; ok {
 			d.cur = c
 			d.durableSeq = c.LastSeq

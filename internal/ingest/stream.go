@@ -306,7 +306,8 @@ func (s *stream) attach(in *pb.Introduction, nowMS int64) *record {
 	d.stream = s
 	s.attached = true
 	s.epoch = d.epoch.Load()
-	d.desc.Model, d.desc.Firmware, d.desc.Labels = in.GetModel(), in.GetFirmware(), in.GetLabels()
+	d.desc.Model, d.desc.Firmware, d.introLabels = in.GetModel(), in.GetFirmware(), in.GetLabels()
+	d.desc.Labels = p.labels.merged(d.id, d.introLabels)
 	d.desc.Mode = map[pb.Mode]string{pb.Mode_MODE_RAW: "raw", pb.Mode_MODE_SUMMARY: "summary"}[s.mode]
 	d.desc.RedNM, d.desc.IRNM, d.desc.ADCBits, d.desc.Calibration = s.redNM, s.irNM, s.adc, s.calRef
 	if d.desc.FirstSeenMS == 0 {

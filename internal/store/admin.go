@@ -273,6 +273,51 @@ func (db *DB) CalibrationAssignments() (map[string]string, error) {
 	return out, err
 }
 
+// SetDeviceLabels stores the operator's labels of a device (replacing
+// earlier ones; empty removes them) with an audit entry in the same
+// transaction.
+func (db *DB) SetDeviceLabels(device string, labels map[string]string, audit *AuditEntry) error {
+	return db.update(func(tx *bolt.Tx) error {
+		b := tx.Bucket(bLabels)
+		var err error
+		if len(labels) == 0 {
+			err = b.Delete([]byte(device))
+		} else {
+			var v []byte
+			if v, err = encJSON(labels); err == nil {
+				err = b.Put([]byte(device), v)
+			}
+		}
+		if err != nil {
+			return err
+		}
+		if audit != nil {
+			return appendAudit(tx, []*AuditEntry{audit})
+		}
+		return nil
+	})
+}
+
+// DeviceLabels returns the operator's labels of every device that has some.
+func (db *DB) DeviceLabels() (map[string]map[string]string, error) {
+	out := map[string]map[string]string{}
+	err := db.view(func(tx *bolt.Tx) error {
+		b := tx.Bucket(bLabels)
+		if b == nil {
+			return nil // a store made before labels, opened read-only
+		}
+		return b.ForEach(func(k, v []byte) error {
+			m := map[string]string{}
+			if err := decJSON(v, &m); err != nil {
+				return err
+			}
+			out[string(k)] = m
+			return nil
+		})
+	})
+	return out, err
+}
+
 // Token is a stored credential; the secret itself is never stored.
 type Token struct {
 	Hash      string `json:"hash"`    // hex SHA-256 of the secret

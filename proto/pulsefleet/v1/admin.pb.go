@@ -1462,6 +1462,117 @@ func (x *GetStoreStatsResponse) GetPath() string {
 	return ""
 }
 
+// SetDeviceLabelsRequest names a device and its operator labels.
+type SetDeviceLabelsRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The device.
+	DeviceId string `protobuf:"bytes,1,opt,name=device_id,json=deviceId,proto3" json:"device_id,omitempty"`
+	// The operator's labels: at most 8, each key 1..32 and value 0..64
+	// characters; empty removes them.
+	Labels map[string]string `protobuf:"bytes,2,rep,name=labels,proto3" json:"labels,omitempty" protobuf_key:"bytes,1,opt,name=key" protobuf_val:"bytes,2,opt,name=value"`
+	// Why, for the audit log (at most 500 characters).
+	Reason        string `protobuf:"bytes,3,opt,name=reason,proto3" json:"reason,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SetDeviceLabelsRequest) Reset() {
+	*x = SetDeviceLabelsRequest{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[23]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SetDeviceLabelsRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SetDeviceLabelsRequest) ProtoMessage() {}
+
+func (x *SetDeviceLabelsRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[23]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SetDeviceLabelsRequest.ProtoReflect.Descriptor instead.
+func (*SetDeviceLabelsRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{23}
+}
+
+func (x *SetDeviceLabelsRequest) GetDeviceId() string {
+	if x != nil {
+		return x.DeviceId
+	}
+	return ""
+}
+
+func (x *SetDeviceLabelsRequest) GetLabels() map[string]string {
+	if x != nil {
+		return x.Labels
+	}
+	return nil
+}
+
+func (x *SetDeviceLabelsRequest) GetReason() string {
+	if x != nil {
+		return x.Reason
+	}
+	return ""
+}
+
+// SetDeviceLabelsResponse confirms the labels.
+type SetDeviceLabelsResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The operator's labels now in force.
+	Labels        map[string]string `protobuf:"bytes,1,rep,name=labels,proto3" json:"labels,omitempty" protobuf_key:"bytes,1,opt,name=key" protobuf_val:"bytes,2,opt,name=value"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *SetDeviceLabelsResponse) Reset() {
+	*x = SetDeviceLabelsResponse{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[24]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *SetDeviceLabelsResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*SetDeviceLabelsResponse) ProtoMessage() {}
+
+func (x *SetDeviceLabelsResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[24]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use SetDeviceLabelsResponse.ProtoReflect.Descriptor instead.
+func (*SetDeviceLabelsResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{24}
+}
+
+func (x *SetDeviceLabelsResponse) GetLabels() map[string]string {
+	if x != nil {
+		return x.Labels
+	}
+	return nil
+}
+
 var File_pulsefleet_v1_admin_proto protoreflect.FileDescriptor
 
 const file_pulsefleet_v1_admin_proto_rawDesc = "" +
@@ -1562,13 +1673,25 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"deviceDays\x12\x1f\n" +
 	"\vraw_seconds\x18\a \x01(\x01R\n" +
 	"rawSeconds\x12\x12\n" +
-	"\x04path\x18\b \x01(\tR\x04path*P\n" +
+	"\x04path\x18\b \x01(\tR\x04path\"\xd3\x01\n" +
+	"\x16SetDeviceLabelsRequest\x12\x1b\n" +
+	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12I\n" +
+	"\x06labels\x18\x02 \x03(\v21.pulsefleet.v1.SetDeviceLabelsRequest.LabelsEntryR\x06labels\x12\x16\n" +
+	"\x06reason\x18\x03 \x01(\tR\x06reason\x1a9\n" +
+	"\vLabelsEntry\x12\x10\n" +
+	"\x03key\x18\x01 \x01(\tR\x03key\x12\x14\n" +
+	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01\"\xa0\x01\n" +
+	"\x17SetDeviceLabelsResponse\x12J\n" +
+	"\x06labels\x18\x01 \x03(\v22.pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntryR\x06labels\x1a9\n" +
+	"\vLabelsEntry\x12\x10\n" +
+	"\x03key\x18\x01 \x01(\tR\x03key\x12\x14\n" +
+	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01*P\n" +
 	"\x04Role\x12\x14\n" +
 	"\x10ROLE_UNSPECIFIED\x10\x00\x12\x0f\n" +
 	"\vROLE_VIEWER\x10\x01\x12\x11\n" +
 	"\rROLE_OPERATOR\x10\x02\x12\x0e\n" +
 	"\n" +
-	"ROLE_ADMIN\x10\x032\xab\x06\n" +
+	"ROLE_ADMIN\x10\x032\x8d\a\n" +
 	"\fAdminService\x12Q\n" +
 	"\n" +
 	"IssueToken\x12 .pulsefleet.v1.IssueTokenRequest\x1a!.pulsefleet.v1.IssueTokenResponse\x12Q\n" +
@@ -1580,7 +1703,8 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"\x10ListCalibrations\x12&.pulsefleet.v1.ListCalibrationsRequest\x1a'.pulsefleet.v1.ListCalibrationsResponse\x12f\n" +
 	"\x11AssignCalibration\x12'.pulsefleet.v1.AssignCalibrationRequest\x1a(.pulsefleet.v1.AssignCalibrationResponse\x12G\n" +
 	"\x06Backup\x12\x1c.pulsefleet.v1.BackupRequest\x1a\x1d.pulsefleet.v1.BackupResponse0\x01\x12Z\n" +
-	"\rGetStoreStats\x12#.pulsefleet.v1.GetStoreStatsRequest\x1a$.pulsefleet.v1.GetStoreStatsResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
+	"\rGetStoreStats\x12#.pulsefleet.v1.GetStoreStatsRequest\x1a$.pulsefleet.v1.GetStoreStatsResponse\x12`\n" +
+	"\x0fSetDeviceLabels\x12%.pulsefleet.v1.SetDeviceLabelsRequest\x1a&.pulsefleet.v1.SetDeviceLabelsResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
 var (
 	file_pulsefleet_v1_admin_proto_rawDescOnce sync.Once
@@ -1595,7 +1719,7 @@ func file_pulsefleet_v1_admin_proto_rawDescGZIP() []byte {
 }
 
 var file_pulsefleet_v1_admin_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
-var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 23)
+var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 27)
 var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(Role)(0),                         // 0: pulsefleet.v1.Role
 	(*Token)(nil),                     // 1: pulsefleet.v1.Token
@@ -1621,6 +1745,10 @@ var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(*GetStoreStatsRequest)(nil),      // 21: pulsefleet.v1.GetStoreStatsRequest
 	(*StoreKindStats)(nil),            // 22: pulsefleet.v1.StoreKindStats
 	(*GetStoreStatsResponse)(nil),     // 23: pulsefleet.v1.GetStoreStatsResponse
+	(*SetDeviceLabelsRequest)(nil),    // 24: pulsefleet.v1.SetDeviceLabelsRequest
+	(*SetDeviceLabelsResponse)(nil),   // 25: pulsefleet.v1.SetDeviceLabelsResponse
+	nil,                               // 26: pulsefleet.v1.SetDeviceLabelsRequest.LabelsEntry
+	nil,                               // 27: pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntry
 }
 var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	0,  // 0: pulsefleet.v1.Token.role:type_name -> pulsefleet.v1.Role
@@ -1634,29 +1762,33 @@ var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	15, // 8: pulsefleet.v1.ListCalibrationsResponse.assignments:type_name -> pulsefleet.v1.CalibrationAssignment
 	15, // 9: pulsefleet.v1.AssignCalibrationResponse.assignment:type_name -> pulsefleet.v1.CalibrationAssignment
 	22, // 10: pulsefleet.v1.GetStoreStatsResponse.kinds:type_name -> pulsefleet.v1.StoreKindStats
-	2,  // 11: pulsefleet.v1.AdminService.IssueToken:input_type -> pulsefleet.v1.IssueTokenRequest
-	4,  // 12: pulsefleet.v1.AdminService.ListTokens:input_type -> pulsefleet.v1.ListTokensRequest
-	6,  // 13: pulsefleet.v1.AdminService.RevokeToken:input_type -> pulsefleet.v1.RevokeTokenRequest
-	9,  // 14: pulsefleet.v1.AdminService.ListAudit:input_type -> pulsefleet.v1.ListAuditRequest
-	12, // 15: pulsefleet.v1.AdminService.PutCalibration:input_type -> pulsefleet.v1.PutCalibrationRequest
-	14, // 16: pulsefleet.v1.AdminService.ListCalibrations:input_type -> pulsefleet.v1.ListCalibrationsRequest
-	17, // 17: pulsefleet.v1.AdminService.AssignCalibration:input_type -> pulsefleet.v1.AssignCalibrationRequest
-	19, // 18: pulsefleet.v1.AdminService.Backup:input_type -> pulsefleet.v1.BackupRequest
-	21, // 19: pulsefleet.v1.AdminService.GetStoreStats:input_type -> pulsefleet.v1.GetStoreStatsRequest
-	3,  // 20: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
-	5,  // 21: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
-	7,  // 22: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
-	10, // 23: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
-	13, // 24: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
-	16, // 25: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
-	18, // 26: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
-	20, // 27: pulsefleet.v1.AdminService.Backup:output_type -> pulsefleet.v1.BackupResponse
-	23, // 28: pulsefleet.v1.AdminService.GetStoreStats:output_type -> pulsefleet.v1.GetStoreStatsResponse
-	20, // [20:29] is the sub-list for method output_type
-	11, // [11:20] is the sub-list for method input_type
-	11, // [11:11] is the sub-list for extension type_name
-	11, // [11:11] is the sub-list for extension extendee
-	0,  // [0:11] is the sub-list for field type_name
+	26, // 11: pulsefleet.v1.SetDeviceLabelsRequest.labels:type_name -> pulsefleet.v1.SetDeviceLabelsRequest.LabelsEntry
+	27, // 12: pulsefleet.v1.SetDeviceLabelsResponse.labels:type_name -> pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntry
+	2,  // 13: pulsefleet.v1.AdminService.IssueToken:input_type -> pulsefleet.v1.IssueTokenRequest
+	4,  // 14: pulsefleet.v1.AdminService.ListTokens:input_type -> pulsefleet.v1.ListTokensRequest
+	6,  // 15: pulsefleet.v1.AdminService.RevokeToken:input_type -> pulsefleet.v1.RevokeTokenRequest
+	9,  // 16: pulsefleet.v1.AdminService.ListAudit:input_type -> pulsefleet.v1.ListAuditRequest
+	12, // 17: pulsefleet.v1.AdminService.PutCalibration:input_type -> pulsefleet.v1.PutCalibrationRequest
+	14, // 18: pulsefleet.v1.AdminService.ListCalibrations:input_type -> pulsefleet.v1.ListCalibrationsRequest
+	17, // 19: pulsefleet.v1.AdminService.AssignCalibration:input_type -> pulsefleet.v1.AssignCalibrationRequest
+	19, // 20: pulsefleet.v1.AdminService.Backup:input_type -> pulsefleet.v1.BackupRequest
+	21, // 21: pulsefleet.v1.AdminService.GetStoreStats:input_type -> pulsefleet.v1.GetStoreStatsRequest
+	24, // 22: pulsefleet.v1.AdminService.SetDeviceLabels:input_type -> pulsefleet.v1.SetDeviceLabelsRequest
+	3,  // 23: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
+	5,  // 24: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
+	7,  // 25: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
+	10, // 26: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
+	13, // 27: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
+	16, // 28: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
+	18, // 29: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
+	20, // 30: pulsefleet.v1.AdminService.Backup:output_type -> pulsefleet.v1.BackupResponse
+	23, // 31: pulsefleet.v1.AdminService.GetStoreStats:output_type -> pulsefleet.v1.GetStoreStatsResponse
+	25, // 32: pulsefleet.v1.AdminService.SetDeviceLabels:output_type -> pulsefleet.v1.SetDeviceLabelsResponse
+	23, // [23:33] is the sub-list for method output_type
+	13, // [13:23] is the sub-list for method input_type
+	13, // [13:13] is the sub-list for extension type_name
+	13, // [13:13] is the sub-list for extension extendee
+	0,  // [0:13] is the sub-list for field type_name
 }
 
 func init() { file_pulsefleet_v1_admin_proto_init() }
@@ -1670,7 +1802,7 @@ func file_pulsefleet_v1_admin_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_pulsefleet_v1_admin_proto_rawDesc), len(file_pulsefleet_v1_admin_proto_rawDesc)),
 			NumEnums:      1,
-			NumMessages:   23,
+			NumMessages:   27,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

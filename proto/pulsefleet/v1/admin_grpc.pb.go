@@ -28,16 +28,18 @@ const (
 	AdminService_AssignCalibration_FullMethodName = "/pulsefleet.v1.AdminService/AssignCalibration"
 	AdminService_Backup_FullMethodName            = "/pulsefleet.v1.AdminService/Backup"
 	AdminService_GetStoreStats_FullMethodName     = "/pulsefleet.v1.AdminService/GetStoreStats"
+	AdminService_SetDeviceLabels_FullMethodName   = "/pulsefleet.v1.AdminService/SetDeviceLabels"
 )
 
 // AdminServiceClient is the client API for AdminService service.
 //
 // For semantics around ctx use and closing/ending streaming RPCs, please refer to https://pkg.go.dev/google.golang.org/grpc/?tab=doc#ClientConn.NewStream.
 //
-// AdminService manages credentials, calibrations and reads the audit log
-// while the gateway runs (bbolt locks the store file, so the CLI goes through
-// the gateway). Every call needs the admin role, except ListAudit and
-// ListCalibrations (viewer).
+// AdminService manages credentials, calibrations and device labels and
+// reads the audit log while the gateway runs (bbolt locks the store file, so
+// the CLI goes through the gateway). Every call needs the admin role, except
+// ListAudit, ListCalibrations and GetStoreStats (viewer) and SetDeviceLabels
+// (operator).
 type AdminServiceClient interface {
 	// IssueToken creates a device or operator credential and returns it once.
 	IssueToken(ctx context.Context, in *IssueTokenRequest, opts ...grpc.CallOption) (*IssueTokenResponse, error)
@@ -64,6 +66,11 @@ type AdminServiceClient interface {
 	// reads every page of the store (in short read transactions, one per
 	// device or day bucket): its time grows with the store. Viewer role.
 	GetStoreStats(ctx context.Context, in *GetStoreStatsRequest, opts ...grpc.CallOption) (*GetStoreStatsResponse, error)
+	// SetDeviceLabels sets the operator's labels of one device (for example the
+	// bed or ward), replacing the ones set before; they add to the labels the
+	// device sends in its introduction and win over one of the same key. In a
+	// fleet on etcd they apply on every gateway. Operator role; audited.
+	SetDeviceLabels(ctx context.Context, in *SetDeviceLabelsRequest, opts ...grpc.CallOption) (*SetDeviceLabelsResponse, error)
 }
 
 type adminServiceClient struct {
@@ -173,14 +180,25 @@ func (c *adminServiceClient) GetStoreStats(ctx context.Context, in *GetStoreStat
 	return out, nil
 }
 
+func (c *adminServiceClient) SetDeviceLabels(ctx context.Context, in *SetDeviceLabelsRequest, opts ...grpc.CallOption) (*SetDeviceLabelsResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(SetDeviceLabelsResponse)
+	err := c.cc.Invoke(ctx, AdminService_SetDeviceLabels_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // AdminServiceServer is the server API for AdminService service.
 // All implementations must embed UnimplementedAdminServiceServer
 // for forward compatibility.
 //
-// AdminService manages credentials, calibrations and reads the audit log
-// while the gateway runs (bbolt locks the store file, so the CLI goes through
-// the gateway). Every call needs the admin role, except ListAudit and
-// ListCalibrations (viewer).
+// AdminService manages credentials, calibrations and device labels and
+// reads the audit log while the gateway runs (bbolt locks the store file, so
+// the CLI goes through the gateway). Every call needs the admin role, except
+// ListAudit, ListCalibrations and GetStoreStats (viewer) and SetDeviceLabels
+// (operator).
 type AdminServiceServer interface {
 	// IssueToken creates a device or operator credential and returns it once.
 	IssueToken(context.Context, *IssueTokenRequest) (*IssueTokenResponse, error)
@@ -207,6 +225,11 @@ type AdminServiceServer interface {
 	// reads every page of the store (in short read transactions, one per
 	// device or day bucket): its time grows with the store. Viewer role.
 	GetStoreStats(context.Context, *GetStoreStatsRequest) (*GetStoreStatsResponse, error)
+	// SetDeviceLabels sets the operator's labels of one device (for example the
+	// bed or ward), replacing the ones set before; they add to the labels the
+	// device sends in its introduction and win over one of the same key. In a
+	// fleet on etcd they apply on every gateway. Operator role; audited.
+	SetDeviceLabels(context.Context, *SetDeviceLabelsRequest) (*SetDeviceLabelsResponse, error)
 	mustEmbedUnimplementedAdminServiceServer()
 }
 
@@ -243,6 +266,9 @@ func (UnimplementedAdminServiceServer) Backup(*BackupRequest, grpc.ServerStreami
 }
 func (UnimplementedAdminServiceServer) GetStoreStats(context.Context, *GetStoreStatsRequest) (*GetStoreStatsResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method GetStoreStats not implemented")
+}
+func (UnimplementedAdminServiceServer) SetDeviceLabels(context.Context, *SetDeviceLabelsRequest) (*SetDeviceLabelsResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method SetDeviceLabels not implemented")
 }
 func (UnimplementedAdminServiceServer) mustEmbedUnimplementedAdminServiceServer() {}
 func (UnimplementedAdminServiceServer) testEmbeddedByValue()                      {}
@@ -420,6 +446,24 @@ func _AdminService_GetStoreStats_Handler(srv interface{}, ctx context.Context, d
 	return interceptor(ctx, in, info, handler)
 }
 
+func _AdminService_SetDeviceLabels_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(SetDeviceLabelsRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(AdminServiceServer).SetDeviceLabels(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: AdminService_SetDeviceLabels_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(AdminServiceServer).SetDeviceLabels(ctx, req.(*SetDeviceLabelsRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // AdminService_ServiceDesc is the grpc.ServiceDesc for AdminService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -458,6 +502,10 @@ var AdminService_ServiceDesc = grpc.ServiceDesc{
 		{
 			MethodName: "GetStoreStats",
 			Handler:    _AdminService_GetStoreStats_Handler,
+		},
+		{
+			MethodName: "SetDeviceLabels",
+			Handler:    _AdminService_SetDeviceLabels_Handler,
 		},
 	},
 	Streams: []grpc.StreamDesc{
