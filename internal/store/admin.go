@@ -278,8 +278,10 @@ func (db *DB) CalibrationAssignments() (map[string]string, error) {
 // transaction.
 func (db *DB) SetDeviceLabels(device string, labels map[string]string, audit *AuditEntry) error {
 	return db.update(func(tx *bolt.Tx) error {
-		b := tx.Bucket(bLabels)
-		var err error
+		b, err := tx.CreateBucketIfNotExists(bLabels)
+		if err != nil {
+			return err
+		}
 		if len(labels) == 0 {
 			err = b.Delete([]byte(device))
 		} else {

@@ -53,9 +53,11 @@ var (
 	bProfiles     = []byte("profiles")
 	bCalibrations = []byte("calibrations")
 	bCalAssign    = []byte("calassign")
-	bLabels       = []byte("devlabels") // operator labels by device (admin.go)
-	bTokens       = []byte("tokens")
-	bEnrolments   = []byte("enrolments")
+	// bLabels holds operator labels by device (admin.go); made by the first
+	// label set, so a store that never had one opens with older binaries.
+	bLabels     = []byte("devlabels")
+	bTokens     = []byte("tokens")
+	bEnrolments = []byte("enrolments")
 	// bOutbox is in outbox.go.
 	bReviews = []byte("reviews")
 
@@ -63,7 +65,7 @@ var (
 	keyStoreID = []byte("store_id")
 
 	allBuckets = [][]byte{bMeta, bDevices, bCursors, bRecent, bTrend, bLedger, bRaw, bSessions, bEpisodes,
-		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bLabels, bTokens, bEnrolments, bOutbox, bReviews}
+		bAlarmState, bAudit, bProfiles, bCalibrations, bCalAssign, bTokens, bEnrolments, bOutbox, bReviews}
 )
 
 // Options tunes Open. The zero value is usable.

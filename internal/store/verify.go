@@ -208,6 +208,12 @@ var specs = map[string]bucketSpec{
 		}
 		return nil
 	})},
+	"devlabels": {record: jsonRecord(func(_ *checker, k []byte, m *map[string]string) error {
+		if len(k) == 0 || len(*m) == 0 {
+			return fmt.Errorf("labels of device %q: empty key or no labels", k)
+		}
+		return nil
+	})},
 	"calassign": {record: func(_ *checker, _ [][]byte, _, v []byte) error {
 		if len(v) == 0 {
 			return errors.New("empty assignment")
