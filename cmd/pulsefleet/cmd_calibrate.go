@@ -119,7 +119,7 @@ func (o *calibrateOptions) printText(w io.Writer, res *calibration.Result) error
 	if c := res.Curve; c.Anchored() {
 		fmt.Fprintf(w, "\ninput: anchored ratio R/R0 (R above is R/R0): R0 is each device's room-air anchor, the median of its usable ratios (SQI >= %g)\n"+
 			"  over %d s from its first usable second, at least %d usable seconds; the person must be at rest on room air then.\n"+
-			"  The gateway shows SpO2 as not available until the anchor is complete; estimate, replay and tune refuse this curve.\n", c.AnchorMinSQI, c.AnchorS, c.AnchorMinSec)
+			"  The gateway shows SpO2 as not available until the anchor is complete; estimate and tune refuse this curve.\n", c.AnchorMinSQI, c.AnchorS, c.AnchorMinSec)
 	}
 	if o.out != "" {
 		fmt.Fprintf(w, "\ncalibration file: %s\n", o.out)

@@ -7,6 +7,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/alarms"
 	"github.com/pulsefleet/pulsefleet/internal/auth"
 	"github.com/pulsefleet/pulsefleet/internal/ppgmodel"
 	"github.com/pulsefleet/pulsefleet/internal/store"
@@ -68,7 +69,21 @@ func (f *rawFeeder) feed(d *testDevice, seconds int, spo2 float64) {
 // spo2_note says why) until the room-air anchor is complete, then it is
 // the curve at R/R0; a reconnect keeps the anchor.
 func TestAnchoredCalibrationThroughGateway(t *testing.T) {
-	h := newHarness(t, nil)
+	prof, err := alarms.ParseProfile([]byte(`name: anchor-test
+conditions:
+  - kind: spo2_low
+    limit: 90
+    hysteresis: 1
+    delay: 3s
+    priority: medium
+  - kind: signal_lost
+    delay: 5s
+    priority: low
+`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	h := newHarness(t, func(o *Options) { o.DefaultProfile = prof })
 	ctx := auth.WithActor(context.Background(), "eng-tove")
 	if _, err := h.g.PutCalibration(ctx, &pb.PutCalibrationRequest{CurveYaml: anchoredTestCurve}); err != nil {
 		t.Fatal(err)
@@ -93,8 +108,21 @@ func TestAnchoredCalibrationThroughGateway(t *testing.T) {
 		dev.GetDevice().GetLatest().GetFlags()&32 == 0 {
 		t.Fatalf("during the anchor: note %q, latest %v; want SpO2 absent, flag 32 and the note", note, dev.GetDevice().GetLatest())
 	}
+	// The alarm engine sees SpO2 as missing: its technical condition for that
+	// (signal_lost) is announced; SpO2 conditions do not evaluate.
+	if c := dev.GetDevice().GetActiveConditions(); len(c) != 1 || c[0] != "signal_lost" {
+		t.Errorf("active conditions during the anchor: %v, want [signal_lost]", c)
+	}
 	f.feed(d, 30, 96)
+	dev, _ = h.fleet().GetDevice(ctx, &pb.GetDeviceRequest{DeviceId: "cam-01"})
+	if c := dev.GetDevice().GetActiveConditions(); len(c) != 0 {
+		t.Errorf("active conditions at 96 %% after the anchor: %v, want none", c)
+	}
 	f.feed(d, 30, 88)
+	dev, _ = h.fleet().GetDevice(ctx, &pb.GetDeviceRequest{DeviceId: "cam-01"})
+	if c := dev.GetDevice().GetActiveConditions(); len(c) != 1 || c[0] != "spo2_low" {
+		t.Errorf("active conditions at 88 %% after the anchor: %v, want [spo2_low] (the curve's value is evaluated)", c)
+	}
 	type span struct{ from, to int64 }
 	points := func(s span) (valid, anchoring, withFlagAndValue int, mean float64) {
 		h.db.Trend("cam-01", s.from, s.to, func(p store.Point) bool {
