@@ -80,6 +80,7 @@ type Pipeline struct {
 	defaultProfile *alarms.Profile
 	ahead          aheadProfiles // per-device profiles of devices not seen yet (shared.go)
 	labels         opLabels      // the operator's device labels (labels.go)
+	calGen         atomic.Uint64 // counts Recalibrate calls (shared.go)
 
 	failed atomic.Pointer[error] // the last batch failed to commit (nil = it committed)
 }

@@ -105,6 +105,7 @@ func (l *liveCal) SpO2(r float64) (float64, bool) { return (*l.c.Load()).SpO2(r)
 // stream on its curve, logged as an error. It returns how many streams
 // changed curve.
 func (p *Pipeline) Recalibrate(ctx context.Context, match func(device, model string) bool) int {
+	p.calGen.Add(1) // after the caller changed the assignments: see catchUpCalibration
 	n := 0
 	for _, d := range p.devices.all() {
 		d.mu.Lock()
@@ -141,4 +142,25 @@ func (p *Pipeline) Recalibrate(ctx context.Context, match func(device, model str
 		}
 	}
 	return n
+}
+
+// catchUpCalibration closes the window between a stream resolving its
+// assigned calibration (stream.start) and becoming its device's (attach),
+// where Recalibrate cannot see it: when an assignment changed meanwhile,
+// the stream resolves it again. Caller holds d.mu (attach).
+func (s *stream) catchUpCalibration(model string) {
+	p := s.p
+	if s.live == nil || p.calGen.Load() == s.calGen {
+		return
+	}
+	cal, ref, err := p.cfg.Calibration(s.dev.id, model, "", s.redNM, s.irNM)
+	switch {
+	case err != nil:
+		p.log.Error("changed calibration assignment not applied to a starting stream; it keeps its curve", "device", s.dev.id, "calibration", s.calRef, "err", err)
+	case anchored(cal):
+		p.log.Warn("changed calibration assignment is a curve on the anchored ratio: in force from the device's next connection", "device", s.dev.id, "assigned", ref)
+	case ref != s.calRef:
+		s.live.set(cal)
+		s.calRef = ref
+	}
 }

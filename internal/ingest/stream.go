@@ -78,6 +78,7 @@ type stream struct {
 	// (the one assigned to the device or its model), swapped by
 	// Recalibrate; nil for other streams.
 	live   *liveCal
+	calGen uint64      // Pipeline.calGen when the stream's calibration was resolved
 	bucket tokenBucket // message-rate limit (ratelimit.go)
 	span   tokenBucket // device-time rate limit, in device seconds (ratelimit.go)
 
@@ -208,6 +209,7 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 		return err
 	}
 	if s.mode == pb.Mode_MODE_RAW {
+		s.calGen = p.calGen.Load() // before the assignments are read (catchUpCalibration)
 		cal, ref, err := p.cfg.Calibration(d.id, in.GetModel(), in.GetCalibrationId(), s.redNM, s.irNM)
 		if err != nil {
 			s.rejectMsg(invalid(0, "introduction.calibration_id", "%v", err))
@@ -309,6 +311,7 @@ func (s *stream) attach(in *pb.Introduction, nowMS int64) *record {
 	d.desc.Model, d.desc.Firmware, d.introLabels = in.GetModel(), in.GetFirmware(), in.GetLabels()
 	d.desc.Labels = p.labels.merged(d.id, d.introLabels)
 	d.desc.Mode = map[pb.Mode]string{pb.Mode_MODE_RAW: "raw", pb.Mode_MODE_SUMMARY: "summary"}[s.mode]
+	s.catchUpCalibration(in.GetModel())
 	d.desc.RedNM, d.desc.IRNM, d.desc.ADCBits, d.desc.Calibration = s.redNM, s.irNM, s.adc, s.calRef
 	if d.desc.FirstSeenMS == 0 {
 		d.desc.FirstSeenMS = nowMS

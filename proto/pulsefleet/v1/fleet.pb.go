@@ -424,7 +424,8 @@ type Device struct {
 	Firmware string `protobuf:"bytes,3,opt,name=firmware,proto3" json:"firmware,omitempty"`
 	// Mode of the current or last session.
 	Mode Mode `protobuf:"varint,4,opt,name=mode,proto3,enum=pulsefleet.v1.Mode" json:"mode,omitempty"`
-	// Operator labels from the introduction.
+	// Labels: the ones of the device's introduction, with the operator's
+	// (AdminService.SetDeviceLabels) added and winning over one of the same key.
 	Labels map[string]string `protobuf:"bytes,5,rep,name=labels,proto3" json:"labels,omitempty" protobuf_key:"bytes,1,opt,name=key" protobuf_val:"bytes,2,opt,name=value"`
 	// True while a stream is open.
 	Connected bool `protobuf:"varint,6,opt,name=connected,proto3" json:"connected,omitempty"`
