@@ -119,7 +119,7 @@ func listDevices(ctx context.Context, cf *clientFlags, addrs []string) ([]*pb.De
 		}
 		for _, d := range resp.GetDevices() {
 			old, ok := byID[d.GetDeviceId()]
-			if !ok || (d.GetConnected() && !old.GetConnected()) || (d.GetConnected() == old.GetConnected() && d.GetLastSeenUnixMs() > old.GetLastSeenUnixMs()) {
+			if !ok || fresher(d, old) {
 				byID[d.GetDeviceId()] = d
 			}
 		}
@@ -130,6 +130,19 @@ func listDevices(ctx context.Context, cf *clientFlags, addrs []string) ([]*pb.De
 	}
 	sort.Slice(out, func(i, j int) bool { return out[i].GetDeviceId() < out[j].GetDeviceId() })
 	return out, nil
+}
+
+// fresher reports whether gateway's view d of a device is to be shown
+// rather than old: the gateway it streams to, then one that did not see it
+// move away (a fleet on etcd), then the latest seen.
+func fresher(d, old *pb.Device) bool {
+	if d.GetConnected() != old.GetConnected() {
+		return d.GetConnected()
+	}
+	if dm, om := d.GetMovedToGateway() != "", old.GetMovedToGateway() != ""; dm != om {
+		return om
+	}
+	return d.GetLastSeenUnixMs() > old.GetLastSeenUnixMs()
 }
 
 func fmtOpt(v *float64, prec int) string {
@@ -145,8 +158,11 @@ func writeDevicesTable(w io.Writer, devs []*pb.Device, holders map[string]string
 	t := newTable(w, 0, "DEVICE", "PARTICIPANT", "STATE", "MODE", "LAST SEEN", "SpO2 %", "PULSE /min", "PI %", "SQI", "VALUES", "ALARM", "CONDITIONS", "LABELS")
 	for _, d := range devs {
 		state := "offline"
-		if d.GetConnected() {
+		switch {
+		case d.GetConnected():
 			state = "connected"
+		case d.GetMovedToGateway() != "":
+			state = "moved to " + d.GetMovedToGateway() // its alarms are evaluated there
 		}
 		seen := "never"
 		if ms := d.GetLastSeenUnixMs(); ms > 0 {

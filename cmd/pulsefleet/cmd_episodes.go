@@ -417,6 +417,8 @@ func writeEpisodesTable(w io.Writer, rows []episodeRow, withGateway bool) error 
 		ended := clock(e.GetEndedUnixMs())
 		if e.GetEndedUnixMs() == 0 && e.GetActive() {
 			ended = "active"
+		} else if e.GetEndedUnixMs() == 0 && e.GetMovedToGateway() != "" {
+			ended = "moved to " + e.GetMovedToGateway() // goes on there
 		}
 		label, who := "-", "-"
 		if r.Review != nil {

@@ -127,7 +127,11 @@ func (g *Gateway) ListEpisodes(ctx context.Context, req *pb.ListEpisodesRequest)
 	}
 	out := &pb.ListEpisodesResponse{}
 	for i := range eps {
-		out.Episodes = append(out.Episodes, ingest.EpisodeProto(&eps[i]))
+		e := ingest.EpisodeProto(&eps[i])
+		if g.ingest.MarkMoved(e) && req.GetActiveOnly() {
+			continue // active at the gateway its device moved to
+		}
+		out.Episodes = append(out.Episodes, e)
 	}
 	return out, nil
 }

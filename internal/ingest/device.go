@@ -110,6 +110,8 @@ func (d *device) toProto() *pb.Device {
 		BatteryPct:         d.desc.BatteryPct,
 		LastSequence:       d.durableSeq,
 		Spo2Note:           d.spo2Note,
+		MovedToGateway:     d.desc.MovedTo,
+		MovedUnixMs:        d.desc.MovedMS,
 	}
 	switch d.desc.Mode {
 	case "raw":
@@ -120,7 +122,7 @@ func (d *device) toProto() *pb.Device {
 	if d.profile != nil {
 		out.Profile = d.profile.Name
 	}
-	if d.engine != nil {
+	if d.engine != nil && d.desc.MovedTo == "" { // moved: its alarms are evaluated where it streams
 		out.AlarmPriority = priorityProto(d.engine.Priority())
 		var eps []alarms.Episode
 		for _, e := range d.engine.Episodes(eps) {

@@ -104,7 +104,7 @@ func (p *Pipeline) storeEpisode(d *device, e *alarms.Episode) *store.Episode {
 // gauge from its engine. Caller holds d.mu.
 func (p *Pipeline) refreshActive(d *device) {
 	now := map[[2]string]float64{}
-	if d.engine != nil {
+	if d.engine != nil && d.desc.MovedTo == "" { // moved: active at the gateway it streams to
 		for _, e := range d.engine.Episodes(nil) {
 			if e.Announced() && (e.Phase == alarms.Active || e.Phase == alarms.Latched) {
 				now[[2]string{e.Condition, e.Priority.String()}]++

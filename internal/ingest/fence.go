@@ -178,7 +178,8 @@ func (p *Pipeline) AdoptSilent(ctx context.Context, deviceID string, state []byt
 	p.adoptState(d, st)
 	p.ensureEngine(d)
 	rec := &record{dev: d}
-	if created {
+	moved := p.backHere(d) // owned here now
+	if created || moved {
 		desc := d.desc
 		rec.desc = &desc // listed after a restart too
 	}
@@ -188,11 +189,94 @@ func (p *Pipeline) AdoptSilent(ctx context.Context, deviceID string, state []byt
 	}
 	p.alarmEffects(d, evs, rec)
 	d.mu.Unlock()
-	if created || len(evs) > 0 || rec.alarm != nil {
+	if created || moved || len(evs) > 0 || rec.alarm != nil {
 		if err := p.w.submit(context.WithoutCancel(ctx), rec); err != nil {
 			return fmt.Errorf("adopting silent device %s: %w", deviceID, err)
 		}
 		p.publishDevice(d, "disconnected")
 	}
 	return nil
+}
+
+// movedTo returns the gateway a stream's device moved to, when the stream
+// ends because its fence was taken away ("" otherwise).
+func movedTo(ctx context.Context) string {
+	var m *MovedAway
+	if !errors.As(context.Cause(ctx), &m) {
+		return ""
+	}
+	var r redirector
+	if errors.As(m.Err, &r) && r.RedirectTo() != "" {
+		return r.RedirectTo()
+	}
+	return UnknownGateway
+}
+
+// UnknownGateway is MovedTo of a device whose fence this gateway lost
+// without learning where it went (its own membership lapsed).
+const UnknownGateway = "another gateway of the fleet (this gateway's membership lapsed)"
+
+// markMoved records that d moved to gateway to at nowMS (the description
+// names the gateway; finish stores it). Its episodes open here are then
+// neither active nor ended here: they go on there. They stay listed with
+// where they went (ListEpisodes through MarkMoved, the device through
+// toProto), the active-alarm gauge drops them, and watchers are told. An
+// alarm tool never hides an alarm: the episodes are findable here and
+// active where the device streams now. The stored episode records are not
+// rewritten: a stored change of an announced episode would be notified
+// (internal/notify) as if it had ended. Caller holds d.mu.
+func (p *Pipeline) markMoved(d *device, to string, nowMS int64) {
+	d.desc.MovedTo, d.desc.MovedMS = to, nowMS
+	p.openChanged(d, "moved")
+}
+
+// openChanged refreshes the gauge for d's open episodes and tells watchers
+// their new state. Caller holds d.mu.
+func (p *Pipeline) openChanged(d *device, transition string) {
+	p.refreshActive(d)
+	if d.engine == nil || !p.hub.hasWatchers() {
+		return
+	}
+	for _, e := range d.engine.Episodes(nil) {
+		if e.Phase != alarms.Active && e.Phase != alarms.Latched || !e.Announced() {
+			continue
+		}
+		ep := EpisodeProto(p.storeEpisode(d, &e))
+		markMoved(ep, d.desc.MovedTo)
+		p.hub.publish(d.id, &pb.WatchEventsResponse{Event: &pb.WatchEventsResponse_EpisodeEvent{EpisodeEvent: &pb.EpisodeEvent{Transition: transition, Episode: ep}}})
+	}
+}
+
+// backHere clears d's moved mark when the device streams here again (or
+// is adopted here): its open episodes are active here again. It reports
+// whether d was marked. Caller holds d.mu.
+func (p *Pipeline) backHere(d *device) bool {
+	if d.desc.MovedTo == "" {
+		return false
+	}
+	d.desc.MovedTo, d.desc.MovedMS = "", 0
+	p.openChanged(d, "active")
+	return true
+}
+
+// MarkMoved marks a stored episode that is still open as moved when its
+// device moved to another gateway of the fleet: not active here, with the
+// gateway it goes on at. It reports whether it did.
+func (p *Pipeline) MarkMoved(e *pb.Episode) bool {
+	d := p.devices.get(e.GetDeviceId())
+	if d == nil {
+		return false
+	}
+	d.mu.Lock()
+	to := d.desc.MovedTo
+	d.mu.Unlock()
+	return markMoved(e, to)
+}
+
+func markMoved(e *pb.Episode, to string) bool {
+	if to == "" || !e.GetActive() || e.GetEndedUnixMs() != 0 {
+		return false
+	}
+	e.Active, e.MovedToGateway = false, to
+	return true
 }

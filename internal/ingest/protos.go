@@ -16,6 +16,7 @@ func EpisodeProto(e *store.Episode) *pb.Episode {
 		EpisodeId: e.ID, DeviceId: e.Device, Condition: e.Condition, Priority: priorityFromString(e.Priority),
 		OnsetUnixMs: e.OnsetMS, AnnouncedUnixMs: e.AnnouncedMS, EscalatedUnixMs: e.EscalatedMS, EndedUnixMs: e.EndedMS,
 		AreaBelowLimitPctS: e.DeficitPctS, AcknowledgedBy: e.AckedBy, AcknowledgedUnixMs: e.AckedMS, Active: e.Active, Profile: e.Profile,
+		MovedToGateway: e.MovedTo,
 	}
 	if e.MinSpO2 >= 0 {
 		v := e.MinSpO2

@@ -320,8 +320,9 @@ func (s *stream) attach(in *pb.Introduction, nowMS int64) *record {
 	d.q.startSession() // quality accounting
 	d.desc.Sessions++
 	d.sessionMS = nowMS
-	desc := d.desc
 	p.ensureEngine(d)
+	p.backHere(d)
+	desc := d.desc
 	var evs []alarms.Event
 	if d.engine != nil && d.engine.Offline() {
 		d.engine.SetOffline(false, d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
@@ -347,6 +348,9 @@ func (s *stream) finish(ctx context.Context) {
 	var evs []alarms.Event
 	if !replaced && !moved && d.engine != nil {
 		d.engine.SetOffline(true, d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
+	}
+	if !replaced && moved {
+		p.markMoved(d, movedTo(ctx), nowMS)
 	}
 	reason := "closed"
 	if c := context.Cause(ctx); c != nil && !errors.Is(c, context.Canceled) {

@@ -65,7 +65,7 @@ func (p *Pipeline) AnnouncedEpisodes(devices []string) []*pb.Episode {
 		}
 		d.mu.Lock()
 		var open []alarms.Episode
-		if d.engine != nil {
+		if d.engine != nil && d.desc.MovedTo == "" { // moved: listed by ListEpisodes with where it went
 			open = d.engine.Episodes(nil)
 		}
 		for i := range open {

@@ -22,6 +22,11 @@ type Device struct {
 	Sessions    uint64            `json:"sessions"`    // streams opened
 	BatteryPct  float64           `json:"battery_pct"` // last reported; negative when unknown
 	DriftPPM    float64           `json:"drift_ppm"`   // last estimate of device clock drift
+	// MovedTo is the gateway of the fleet the device moved to when it left
+	// this one (its fence went to another member; empty while it is here
+	// or never left), MovedMS when (gateway clock).
+	MovedTo string `json:"moved_to,omitempty"`
+	MovedMS int64  `json:"moved_ms,omitempty"`
 }
 
 // Cursor is a device's delivery position and counters. It is written with
@@ -96,6 +101,9 @@ type Episode struct {
 	AckedMS     int64   `json:"acked_ms,omitempty"`
 	Active      bool    `json:"active"`
 	Profile     string  `json:"profile,omitempty"`
+	// MovedTo: the episode was open when its device moved to this gateway
+	// of the fleet, where it goes on (not active here, not ended).
+	MovedTo string `json:"moved_to,omitempty"`
 }
 
 // AuditEntry is one line of the audit log.

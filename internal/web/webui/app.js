@@ -170,7 +170,8 @@ function connection(d, t) {
     on ? s('circle', { cx: 5, cy: 5, r: 4.5, fill: 'currentColor' })
       : s('circle', { cx: 5, cy: 5, r: 3.8, fill: 'none', stroke: 'currentColor', 'stroke-width': 1.6 }));
   return h('span', { class: 'conn ' + (on ? 'online' : 'offline') }, icon,
-    on ? 'connected' : `offline, seen ${ago(n64(d.last_seen_unix_ms), t)}`);
+    on ? 'connected' : d.moved_to_gateway ? `moved to ${d.moved_to_gateway} (its alarms are evaluated there)`
+      : `offline, seen ${ago(n64(d.last_seen_unix_ms), t)}`);
 }
 
 // value shows one latest value: live, or (stale) muted with its age, never

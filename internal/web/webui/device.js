@@ -39,7 +39,7 @@ function episodesTable(eps, id) {
       h('td', null, badge(prio(e.priority), st)),
       h('td', null, new Date(onset).toDateString() === today ? clock(onset) : stamp(onset)),
       h('td', null, n64(e.announced_unix_ms) ? clock(n64(e.announced_unix_ms)) : 'not announced'),
-      h('td', null, n64(e.ended_unix_ms) ? clock(n64(e.ended_unix_ms)) : (e.active ? 'condition present' : '–')),
+      h('td', null, n64(e.ended_unix_ms) ? clock(n64(e.ended_unix_ms)) : (e.active ? 'condition present' : (e.moved_to_gateway ? `moved to ${e.moved_to_gateway}` : '–'))),
       h('td', { class: 'num' }, has(e.min_spo2_pct) ? num(e.min_spo2_pct, 0) + ' %' : '–'),
       h('td', { class: 'num' }, e.area_below_limit_pct_s ? num(e.area_below_limit_pct_s, 0) : '–'),
       h('td', null, e.acknowledged_by ? `${e.acknowledged_by} at ${clock(n64(e.acknowledged_unix_ms))}` :

@@ -451,7 +451,13 @@ type Device struct {
 	LastSequence uint64 `protobuf:"varint,16,opt,name=last_sequence,json=lastSequence,proto3" json:"last_sequence,omitempty"`
 	// Why SpO2 is not available when the gateway knows a reason beyond the
 	// flags, for example "calibration anchor in progress, 23 s of 60"; empty otherwise.
-	Spo2Note      string `protobuf:"bytes,17,opt,name=spo2_note,json=spo2Note,proto3" json:"spo2_note,omitempty"`
+	Spo2Note string `protobuf:"bytes,17,opt,name=spo2_note,json=spo2Note,proto3" json:"spo2_note,omitempty"`
+	// A fleet on etcd: the gateway the device moved to when it left this one (empty while it streams
+	// here or never left). Its episodes open then go on there; here they are listed with this address
+	// and are neither active nor ended.
+	MovedToGateway string `protobuf:"bytes,18,opt,name=moved_to_gateway,json=movedToGateway,proto3" json:"moved_to_gateway,omitempty"`
+	// When it moved (gateway clock), milliseconds since the Unix epoch; 0 when it did not.
+	MovedUnixMs   int64 `protobuf:"varint,19,opt,name=moved_unix_ms,json=movedUnixMs,proto3" json:"moved_unix_ms,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -603,6 +609,20 @@ func (x *Device) GetSpo2Note() string {
 		return x.Spo2Note
 	}
 	return ""
+}
+
+func (x *Device) GetMovedToGateway() string {
+	if x != nil {
+		return x.MovedToGateway
+	}
+	return ""
+}
+
+func (x *Device) GetMovedUnixMs() int64 {
+	if x != nil {
+		return x.MovedUnixMs
+	}
+	return 0
 }
 
 // ListDevicesRequest asks for every device.
@@ -1162,8 +1182,11 @@ type Episode struct {
 	// below the limit (spo2_low) or below the frozen baseline minus the drop (desaturation);
 	// 0 for other conditions. A plain integral of the "desaturation area" family of measures.
 	AreaBelowLimitPctS float64 `protobuf:"fixed64,15,opt,name=area_below_limit_pct_s,json=areaBelowLimitPctS,proto3" json:"area_below_limit_pct_s,omitempty"`
-	unknownFields      protoimpl.UnknownFields
-	sizeCache          protoimpl.SizeCache
+	// A fleet on etcd: the episode was open when its device moved to this gateway, where it goes on
+	// (active there; here not active and not ended). Empty otherwise.
+	MovedToGateway string `protobuf:"bytes,16,opt,name=moved_to_gateway,json=movedToGateway,proto3" json:"moved_to_gateway,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *Episode) Reset() {
@@ -1292,6 +1315,13 @@ func (x *Episode) GetAreaBelowLimitPctS() float64 {
 		return x.AreaBelowLimitPctS
 	}
 	return 0
+}
+
+func (x *Episode) GetMovedToGateway() string {
+	if x != nil {
+		return x.MovedToGateway
+	}
+	return ""
 }
 
 // EpisodeEvent is one transition of an episode.
@@ -3228,7 +3258,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\bspo2_pct\x18\x03 \x01(\v2\x13.pulsefleet.v1.StatR\aspo2Pct\x120\n" +
 	"\tpulse_bpm\x18\x04 \x01(\v2\x13.pulsefleet.v1.StatR\bpulseBpm\x12*\n" +
 	"\x06pi_pct\x18\x05 \x01(\v2\x13.pulsefleet.v1.StatR\x05piPct\x12%\n" +
-	"\x03sqi\x18\x06 \x01(\v2\x13.pulsefleet.v1.StatR\x03sqi\"\xef\x05\n" +
+	"\x03sqi\x18\x06 \x01(\v2\x13.pulsefleet.v1.StatR\x03sqi\"\xbd\x06\n" +
 	"\x06Device\x12\x1b\n" +
 	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12\x14\n" +
 	"\x05model\x18\x02 \x01(\tR\x05model\x12\x1a\n" +
@@ -3248,7 +3278,9 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\vbattery_pct\x18\x0f \x01(\x01R\n" +
 	"batteryPct\x12#\n" +
 	"\rlast_sequence\x18\x10 \x01(\x04R\flastSequence\x12\x1b\n" +
-	"\tspo2_note\x18\x11 \x01(\tR\bspo2Note\x1a9\n" +
+	"\tspo2_note\x18\x11 \x01(\tR\bspo2Note\x12(\n" +
+	"\x10moved_to_gateway\x18\x12 \x01(\tR\x0emovedToGateway\x12\"\n" +
+	"\rmoved_unix_ms\x18\x13 \x01(\x03R\vmovedUnixMs\x1a9\n" +
 	"\vLabelsEntry\x12\x10\n" +
 	"\x03key\x18\x01 \x01(\tR\x03key\x12\x14\n" +
 	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01\"\x14\n" +
@@ -3282,7 +3314,7 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"trendPoint\x12B\n" +
 	"\rdevice_change\x18\x02 \x01(\v2\x1b.pulsefleet.v1.DeviceChangeH\x00R\fdeviceChange\x12B\n" +
 	"\repisode_event\x18\x03 \x01(\v2\x1b.pulsefleet.v1.EpisodeEventH\x00R\fepisodeEventB\a\n" +
-	"\x05event\"\xc6\x04\n" +
+	"\x05event\"\xf0\x04\n" +
 	"\aEpisode\x12\x1d\n" +
 	"\n" +
 	"episode_id\x18\x01 \x01(\x04R\tepisodeId\x12\x1b\n" +
@@ -3299,7 +3331,8 @@ const file_pulsefleet_v1_fleet_proto_rawDesc = "" +
 	"\x14acknowledged_unix_ms\x18\f \x01(\x03R\x12acknowledgedUnixMs\x12\x16\n" +
 	"\x06active\x18\r \x01(\bR\x06active\x12\x18\n" +
 	"\aprofile\x18\x0e \x01(\tR\aprofile\x122\n" +
-	"\x16area_below_limit_pct_s\x18\x0f \x01(\x01R\x12areaBelowLimitPctSB\x0f\n" +
+	"\x16area_below_limit_pct_s\x18\x0f \x01(\x01R\x12areaBelowLimitPctS\x12(\n" +
+	"\x10moved_to_gateway\x18\x10 \x01(\tR\x0emovedToGatewayB\x0f\n" +
 	"\r_min_spo2_pctJ\x04\b\n" +
 	"\x10\vR\rdeficit_pct_s\"v\n" +
 	"\fEpisodeEvent\x12\x1e\n" +
