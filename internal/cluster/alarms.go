@@ -27,7 +27,9 @@ func (n *Node) alarmKey(deviceID string) string { return n.prefix + "alarm/" + d
 // PublishAlarm queues a device's newest alarm snapshot for etcd.
 func (n *Node) PublishAlarm(deviceID string, state []byte) {
 	n.alarmMu.Lock()
-	n.alarmPending[deviceID] = state
+	if !n.retired[deviceID] {
+		n.alarmPending[deviceID] = state
+	}
 	n.alarmMu.Unlock()
 	select {
 	case n.alarmKick <- struct{}{}:

@@ -71,14 +71,19 @@
 //     no fence (SilentDevices) and adopts them offline, so device_offline is
 //     raised there (internal/gateway silentScan, 2×TTL after the change).
 //     A device slower than that to reconnect is put offline and back online
-//     (its device_offline onset withdrawn before the delay). Alarm keys are
-//     never deleted: a retired device stays adopted, and shown offline.
+//     (its device_offline onset withdrawn before the delay). A device taken
+//     out of use is retired (Retire, `pulsefleet retire`): its alarm key is
+//     deleted, so nobody adopts it again, and PREFIX/retired/DEVICE tells a
+//     gateway that was down then to end what its own store holds of it;
+//     refused while its fence is held (it streams), and undone by its next
+//     fence (it streams again).
 //
 // Keys (PREFIX defaults to /pulsefleet/):
 //
 //	PREFIX/members/ADDR   value ADDR, member lease
 //	PREFIX/fence/DEVICE   value ADDR of the holder, the holder's member lease
 //	PREFIX/alarm/DEVICE   the device's last alarm snapshot (alarms.go), no lease
+//	PREFIX/retired/DEVICE the gateway that retired it (retire.go), no lease
 //	PREFIX/ask/ADDR       a returning gateway's question (resent.go), its lease
 //	PREFIX/answer/ADDR/M  member M's answer to it, M's lease
 package cluster

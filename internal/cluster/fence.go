@@ -77,7 +77,7 @@ func (n *Node) Acquire(ctx context.Context, deviceID string, lost func(error)) (
 			return nil, &MovedError{Device: deviceID, Owner: o}
 		}
 		resp, err := n.c.Txn(ctx).If(clientv3.Compare(clientv3.CreateRevision(key), "=", 0)).
-			Then(clientv3.OpPut(key, n.self, clientv3.WithLease(lease))).
+			Then(clientv3.OpPut(key, n.self, clientv3.WithLease(lease)), clientv3.OpDelete(n.retiredKey(deviceID))).
 			Else(clientv3.OpGet(key)).Commit()
 		if err != nil {
 			if holder != "" && ctx.Err() != nil {
@@ -138,6 +138,9 @@ func (n *Node) waitDeleted(ctx context.Context, key string, rev int64) bool {
 // keep records a fence and returns its release.
 func (n *Node) keep(deviceID string, rev int64, lost func(error)) func() {
 	h := &hold{n: n, device: deviceID, rev: rev, lost: lost}
+	n.alarmMu.Lock()
+	delete(n.retired, deviceID) // streams again: its alarm state is shared again
+	n.alarmMu.Unlock()
 	n.mu.Lock()
 	prev := n.held[deviceID]
 	n.held[deviceID] = h

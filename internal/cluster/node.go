@@ -59,6 +59,7 @@ type Node struct {
 
 	alarmMu      sync.Mutex
 	alarmPending map[string][]byte // device id -> newest alarm snapshot not yet in etcd (alarms.go)
+	retired      map[string]bool   // devices retired through this gateway, not fenced since (retire.go)
 	alarmKick    chan struct{}
 	changed      chan struct{} // member list changed (MembersChanged)
 
@@ -96,7 +97,7 @@ func Join(ctx context.Context, cfg Config) (*Node, error) {
 	}
 	n := &Node{c: cfg.Client, prefix: cfg.Prefix, self: cfg.Self, ttl: cfg.TTL, wait: cfg.AcquireWait,
 		log: cfg.Log, m: m, members: map[string]bool{}, held: map[string]*hold{},
-		alarmPending: map[string][]byte{}, alarmKick: make(chan struct{}, 1), changed: make(chan struct{}, 1)}
+		alarmPending: map[string][]byte{}, retired: map[string]bool{}, alarmKick: make(chan struct{}, 1), changed: make(chan struct{}, 1)}
 	if err := n.register(ctx); err != nil {
 		return nil, err
 	}

@@ -2,9 +2,18 @@ package gateway
 
 import (
 	"context"
+	"errors"
+	"fmt"
 	"time"
 
+	"google.golang.org/grpc/codes"
+	"google.golang.org/grpc/status"
+
+	"github.com/pulsefleet/pulsefleet/internal/auth"
+	"github.com/pulsefleet/pulsefleet/internal/cluster"
+	"github.com/pulsefleet/pulsefleet/internal/ids"
 	"github.com/pulsefleet/pulsefleet/internal/ingest"
+	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
 
 // Cluster is the fleet membership the gateway asks about devices (package
@@ -83,4 +92,80 @@ func (s *silentScan) step(ctx context.Context, g *Gateway) {
 	if len(silent) > 0 {
 		g.log.Info("adopted devices that stream to no gateway of the fleet", "devices", len(silent))
 	}
+	if rl, ok := g.opt.Cluster.(retiredLister); ok {
+		g.retireLocally(ctx, rl)
+	}
+}
+
+// retiredLister lists the devices retired from the fleet (package cluster).
+type retiredLister interface {
+	RetiredDevices(ctx context.Context) (map[string]string, error)
+}
+
+// retireLocally ends what this gateway still holds of devices retired
+// through another gateway while it was down (its store kept their alarm
+// state), audited as a fleet sync naming the gateway that took it.
+func (g *Gateway) retireLocally(ctx context.Context, rl retiredLister) {
+	retired, err := rl.RetiredDevices(ctx)
+	if err != nil {
+		g.log.Warn("retired devices not listed", "err", err)
+		return
+	}
+	for id, by := range retired {
+		if !g.ingest.HoldsAlarms(id) {
+			continue
+		}
+		_, ended, err := g.ingest.Retire(ctx, id)
+		if err != nil {
+			g.log.Warn("retired device not ended here", "device", id, "err", err)
+			continue
+		}
+		g.audit(ctx, "gateway", "device.retire", id, fmt.Sprintf("fleet sync: device retired through gateway %s; %d open episodes ended here", by, ended), "")
+	}
+}
+
+// retirer is the part of the cluster that retires a device fleet-wide
+// (package cluster, retire.go).
+type retirer interface {
+	Self() string
+	Retire(ctx context.Context, deviceID string) error
+}
+
+// RetireDevice implements AdminService: the device's shared alarm state
+// goes from etcd (no gateway adopts it again), then this gateway ends its
+// open episodes (ingest.Pipeline.Retire); refused while it streams
+// anywhere. Audited with the gateway that took it.
+func (g *Gateway) RetireDevice(ctx context.Context, req *pb.RetireDeviceRequest) (*pb.RetireDeviceResponse, error) {
+	id := req.GetDeviceId()
+	if err := ids.Check("device_id", id); err != nil {
+		return nil, status.Errorf(codes.InvalidArgument, "%v", err)
+	}
+	if n := len(req.GetReason()); n > 200 {
+		return nil, status.Errorf(codes.InvalidArgument, "reason: %d characters, want at most 200", n)
+	}
+	rt, ok := g.opt.Cluster.(retirer)
+	if !ok {
+		return nil, status.Errorf(codes.FailedPrecondition, "retire is for a fleet of gateways on etcd (serve --etcd); this gateway has no fleet: nothing of device %s was changed", id)
+	}
+	if s := g.ingest.StreamingHere(id); s {
+		return nil, status.Errorf(codes.FailedPrecondition, "device %s is streaming to this gateway (%s): not retired (stop the device first)", id, rt.Self())
+	}
+	if err := rt.Retire(ctx, id); err != nil {
+		var se *cluster.StreamingError
+		if errors.As(err, &se) {
+			return nil, status.Errorf(codes.FailedPrecondition, "%v", err)
+		}
+		return nil, status.Errorf(codes.Unavailable, "%v", err)
+	}
+	known, ended, err := g.ingest.Retire(ctx, id)
+	if err != nil {
+		return nil, ingestStatus(err)
+	}
+	detail := fmt.Sprintf("device retired from the fleet (shared alarm state deleted from etcd); %d open episodes ended here; taken by gateway %s", ended, rt.Self())
+	if r := req.GetReason(); r != "" {
+		detail += "; reason: " + r
+	}
+	g.audit(ctx, auth.ActorFrom(ctx), "device.retire", id, detail, auth.RemoteFrom(ctx))
+	g.log.Info("device retired", "device", id, "episodes_ended", ended, "known_here", known, "by", auth.ActorFrom(ctx))
+	return &pb.RetireDeviceResponse{Gateway: rt.Self(), EpisodesEnded: uint32(ended), KnownHere: known}, nil
 }

@@ -1573,6 +1573,125 @@ func (x *SetDeviceLabelsResponse) GetLabels() map[string]string {
 	return nil
 }
 
+// RetireDeviceRequest names the device to retire.
+type RetireDeviceRequest struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Device identifier.
+	DeviceId string `protobuf:"bytes,1,opt,name=device_id,json=deviceId,proto3" json:"device_id,omitempty"`
+	// Why (stored in the audit entry), for example "returned to stores".
+	Reason        string `protobuf:"bytes,2,opt,name=reason,proto3" json:"reason,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *RetireDeviceRequest) Reset() {
+	*x = RetireDeviceRequest{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[25]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *RetireDeviceRequest) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*RetireDeviceRequest) ProtoMessage() {}
+
+func (x *RetireDeviceRequest) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[25]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use RetireDeviceRequest.ProtoReflect.Descriptor instead.
+func (*RetireDeviceRequest) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{25}
+}
+
+func (x *RetireDeviceRequest) GetDeviceId() string {
+	if x != nil {
+		return x.DeviceId
+	}
+	return ""
+}
+
+func (x *RetireDeviceRequest) GetReason() string {
+	if x != nil {
+		return x.Reason
+	}
+	return ""
+}
+
+// RetireDeviceResponse says what the gateway did.
+type RetireDeviceResponse struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// The gateway that took the retirement (its advertised address).
+	Gateway string `protobuf:"bytes,1,opt,name=gateway,proto3" json:"gateway,omitempty"`
+	// Open episodes of the device this gateway ended.
+	EpisodesEnded uint32 `protobuf:"varint,2,opt,name=episodes_ended,json=episodesEnded,proto3" json:"episodes_ended,omitempty"`
+	// True when this gateway knew the device.
+	KnownHere     bool `protobuf:"varint,3,opt,name=known_here,json=knownHere,proto3" json:"known_here,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *RetireDeviceResponse) Reset() {
+	*x = RetireDeviceResponse{}
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[26]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *RetireDeviceResponse) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*RetireDeviceResponse) ProtoMessage() {}
+
+func (x *RetireDeviceResponse) ProtoReflect() protoreflect.Message {
+	mi := &file_pulsefleet_v1_admin_proto_msgTypes[26]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use RetireDeviceResponse.ProtoReflect.Descriptor instead.
+func (*RetireDeviceResponse) Descriptor() ([]byte, []int) {
+	return file_pulsefleet_v1_admin_proto_rawDescGZIP(), []int{26}
+}
+
+func (x *RetireDeviceResponse) GetGateway() string {
+	if x != nil {
+		return x.Gateway
+	}
+	return ""
+}
+
+func (x *RetireDeviceResponse) GetEpisodesEnded() uint32 {
+	if x != nil {
+		return x.EpisodesEnded
+	}
+	return 0
+}
+
+func (x *RetireDeviceResponse) GetKnownHere() bool {
+	if x != nil {
+		return x.KnownHere
+	}
+	return false
+}
+
 var File_pulsefleet_v1_admin_proto protoreflect.FileDescriptor
 
 const file_pulsefleet_v1_admin_proto_rawDesc = "" +
@@ -1685,13 +1804,21 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"\x06labels\x18\x01 \x03(\v22.pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntryR\x06labels\x1a9\n" +
 	"\vLabelsEntry\x12\x10\n" +
 	"\x03key\x18\x01 \x01(\tR\x03key\x12\x14\n" +
-	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01*P\n" +
+	"\x05value\x18\x02 \x01(\tR\x05value:\x028\x01\"J\n" +
+	"\x13RetireDeviceRequest\x12\x1b\n" +
+	"\tdevice_id\x18\x01 \x01(\tR\bdeviceId\x12\x16\n" +
+	"\x06reason\x18\x02 \x01(\tR\x06reason\"v\n" +
+	"\x14RetireDeviceResponse\x12\x18\n" +
+	"\agateway\x18\x01 \x01(\tR\agateway\x12%\n" +
+	"\x0eepisodes_ended\x18\x02 \x01(\rR\repisodesEnded\x12\x1d\n" +
+	"\n" +
+	"known_here\x18\x03 \x01(\bR\tknownHere*P\n" +
 	"\x04Role\x12\x14\n" +
 	"\x10ROLE_UNSPECIFIED\x10\x00\x12\x0f\n" +
 	"\vROLE_VIEWER\x10\x01\x12\x11\n" +
 	"\rROLE_OPERATOR\x10\x02\x12\x0e\n" +
 	"\n" +
-	"ROLE_ADMIN\x10\x032\x8d\a\n" +
+	"ROLE_ADMIN\x10\x032\xe6\a\n" +
 	"\fAdminService\x12Q\n" +
 	"\n" +
 	"IssueToken\x12 .pulsefleet.v1.IssueTokenRequest\x1a!.pulsefleet.v1.IssueTokenResponse\x12Q\n" +
@@ -1704,7 +1831,8 @@ const file_pulsefleet_v1_admin_proto_rawDesc = "" +
 	"\x11AssignCalibration\x12'.pulsefleet.v1.AssignCalibrationRequest\x1a(.pulsefleet.v1.AssignCalibrationResponse\x12G\n" +
 	"\x06Backup\x12\x1c.pulsefleet.v1.BackupRequest\x1a\x1d.pulsefleet.v1.BackupResponse0\x01\x12Z\n" +
 	"\rGetStoreStats\x12#.pulsefleet.v1.GetStoreStatsRequest\x1a$.pulsefleet.v1.GetStoreStatsResponse\x12`\n" +
-	"\x0fSetDeviceLabels\x12%.pulsefleet.v1.SetDeviceLabelsRequest\x1a&.pulsefleet.v1.SetDeviceLabelsResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
+	"\x0fSetDeviceLabels\x12%.pulsefleet.v1.SetDeviceLabelsRequest\x1a&.pulsefleet.v1.SetDeviceLabelsResponse\x12W\n" +
+	"\fRetireDevice\x12\".pulsefleet.v1.RetireDeviceRequest\x1a#.pulsefleet.v1.RetireDeviceResponseBCZAgithub.com/pulsefleet/pulsefleet/proto/pulsefleet/v1;pulsefleetv1b\x06proto3"
 
 var (
 	file_pulsefleet_v1_admin_proto_rawDescOnce sync.Once
@@ -1719,7 +1847,7 @@ func file_pulsefleet_v1_admin_proto_rawDescGZIP() []byte {
 }
 
 var file_pulsefleet_v1_admin_proto_enumTypes = make([]protoimpl.EnumInfo, 1)
-var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 27)
+var file_pulsefleet_v1_admin_proto_msgTypes = make([]protoimpl.MessageInfo, 29)
 var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(Role)(0),                         // 0: pulsefleet.v1.Role
 	(*Token)(nil),                     // 1: pulsefleet.v1.Token
@@ -1747,8 +1875,10 @@ var file_pulsefleet_v1_admin_proto_goTypes = []any{
 	(*GetStoreStatsResponse)(nil),     // 23: pulsefleet.v1.GetStoreStatsResponse
 	(*SetDeviceLabelsRequest)(nil),    // 24: pulsefleet.v1.SetDeviceLabelsRequest
 	(*SetDeviceLabelsResponse)(nil),   // 25: pulsefleet.v1.SetDeviceLabelsResponse
-	nil,                               // 26: pulsefleet.v1.SetDeviceLabelsRequest.LabelsEntry
-	nil,                               // 27: pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntry
+	(*RetireDeviceRequest)(nil),       // 26: pulsefleet.v1.RetireDeviceRequest
+	(*RetireDeviceResponse)(nil),      // 27: pulsefleet.v1.RetireDeviceResponse
+	nil,                               // 28: pulsefleet.v1.SetDeviceLabelsRequest.LabelsEntry
+	nil,                               // 29: pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntry
 }
 var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	0,  // 0: pulsefleet.v1.Token.role:type_name -> pulsefleet.v1.Role
@@ -1762,8 +1892,8 @@ var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	15, // 8: pulsefleet.v1.ListCalibrationsResponse.assignments:type_name -> pulsefleet.v1.CalibrationAssignment
 	15, // 9: pulsefleet.v1.AssignCalibrationResponse.assignment:type_name -> pulsefleet.v1.CalibrationAssignment
 	22, // 10: pulsefleet.v1.GetStoreStatsResponse.kinds:type_name -> pulsefleet.v1.StoreKindStats
-	26, // 11: pulsefleet.v1.SetDeviceLabelsRequest.labels:type_name -> pulsefleet.v1.SetDeviceLabelsRequest.LabelsEntry
-	27, // 12: pulsefleet.v1.SetDeviceLabelsResponse.labels:type_name -> pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntry
+	28, // 11: pulsefleet.v1.SetDeviceLabelsRequest.labels:type_name -> pulsefleet.v1.SetDeviceLabelsRequest.LabelsEntry
+	29, // 12: pulsefleet.v1.SetDeviceLabelsResponse.labels:type_name -> pulsefleet.v1.SetDeviceLabelsResponse.LabelsEntry
 	2,  // 13: pulsefleet.v1.AdminService.IssueToken:input_type -> pulsefleet.v1.IssueTokenRequest
 	4,  // 14: pulsefleet.v1.AdminService.ListTokens:input_type -> pulsefleet.v1.ListTokensRequest
 	6,  // 15: pulsefleet.v1.AdminService.RevokeToken:input_type -> pulsefleet.v1.RevokeTokenRequest
@@ -1774,18 +1904,20 @@ var file_pulsefleet_v1_admin_proto_depIdxs = []int32{
 	19, // 20: pulsefleet.v1.AdminService.Backup:input_type -> pulsefleet.v1.BackupRequest
 	21, // 21: pulsefleet.v1.AdminService.GetStoreStats:input_type -> pulsefleet.v1.GetStoreStatsRequest
 	24, // 22: pulsefleet.v1.AdminService.SetDeviceLabels:input_type -> pulsefleet.v1.SetDeviceLabelsRequest
-	3,  // 23: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
-	5,  // 24: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
-	7,  // 25: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
-	10, // 26: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
-	13, // 27: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
-	16, // 28: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
-	18, // 29: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
-	20, // 30: pulsefleet.v1.AdminService.Backup:output_type -> pulsefleet.v1.BackupResponse
-	23, // 31: pulsefleet.v1.AdminService.GetStoreStats:output_type -> pulsefleet.v1.GetStoreStatsResponse
-	25, // 32: pulsefleet.v1.AdminService.SetDeviceLabels:output_type -> pulsefleet.v1.SetDeviceLabelsResponse
-	23, // [23:33] is the sub-list for method output_type
-	13, // [13:23] is the sub-list for method input_type
+	26, // 23: pulsefleet.v1.AdminService.RetireDevice:input_type -> pulsefleet.v1.RetireDeviceRequest
+	3,  // 24: pulsefleet.v1.AdminService.IssueToken:output_type -> pulsefleet.v1.IssueTokenResponse
+	5,  // 25: pulsefleet.v1.AdminService.ListTokens:output_type -> pulsefleet.v1.ListTokensResponse
+	7,  // 26: pulsefleet.v1.AdminService.RevokeToken:output_type -> pulsefleet.v1.RevokeTokenResponse
+	10, // 27: pulsefleet.v1.AdminService.ListAudit:output_type -> pulsefleet.v1.ListAuditResponse
+	13, // 28: pulsefleet.v1.AdminService.PutCalibration:output_type -> pulsefleet.v1.PutCalibrationResponse
+	16, // 29: pulsefleet.v1.AdminService.ListCalibrations:output_type -> pulsefleet.v1.ListCalibrationsResponse
+	18, // 30: pulsefleet.v1.AdminService.AssignCalibration:output_type -> pulsefleet.v1.AssignCalibrationResponse
+	20, // 31: pulsefleet.v1.AdminService.Backup:output_type -> pulsefleet.v1.BackupResponse
+	23, // 32: pulsefleet.v1.AdminService.GetStoreStats:output_type -> pulsefleet.v1.GetStoreStatsResponse
+	25, // 33: pulsefleet.v1.AdminService.SetDeviceLabels:output_type -> pulsefleet.v1.SetDeviceLabelsResponse
+	27, // 34: pulsefleet.v1.AdminService.RetireDevice:output_type -> pulsefleet.v1.RetireDeviceResponse
+	24, // [24:35] is the sub-list for method output_type
+	13, // [13:24] is the sub-list for method input_type
 	13, // [13:13] is the sub-list for extension type_name
 	13, // [13:13] is the sub-list for extension extendee
 	0,  // [0:13] is the sub-list for field type_name
@@ -1802,7 +1934,7 @@ func file_pulsefleet_v1_admin_proto_init() {
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_pulsefleet_v1_admin_proto_rawDesc), len(file_pulsefleet_v1_admin_proto_rawDesc)),
 			NumEnums:      1,
-			NumMessages:   27,
+			NumMessages:   29,
 			NumExtensions: 0,
 			NumServices:   1,
 		},

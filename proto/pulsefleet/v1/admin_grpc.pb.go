@@ -29,6 +29,7 @@ const (
 	AdminService_Backup_FullMethodName            = "/pulsefleet.v1.AdminService/Backup"
 	AdminService_GetStoreStats_FullMethodName     = "/pulsefleet.v1.AdminService/GetStoreStats"
 	AdminService_SetDeviceLabels_FullMethodName   = "/pulsefleet.v1.AdminService/SetDeviceLabels"
+	AdminService_RetireDevice_FullMethodName      = "/pulsefleet.v1.AdminService/RetireDevice"
 )
 
 // AdminServiceClient is the client API for AdminService service.
@@ -71,6 +72,12 @@ type AdminServiceClient interface {
 	// device sends in its introduction and win over one of the same key. In a
 	// fleet on etcd they apply on every gateway. Operator role; audited.
 	SetDeviceLabels(ctx context.Context, in *SetDeviceLabelsRequest, opts ...grpc.CallOption) (*SetDeviceLabelsResponse, error)
+	// RetireDevice retires a device from a fleet on etcd: its shared alarm state is deleted
+	// from etcd (no gateway adopts it again when it is silent) and this gateway ends the
+	// device's open episodes (stored, notified as ended). Refused (FAILED_PRECONDITION) while
+	// the device streams to any gateway, and on a gateway without --etcd. Admin role; audited
+	// with the gateway that took it. Ask every gateway that shows the device.
+	RetireDevice(ctx context.Context, in *RetireDeviceRequest, opts ...grpc.CallOption) (*RetireDeviceResponse, error)
 }
 
 type adminServiceClient struct {
@@ -190,6 +197,16 @@ func (c *adminServiceClient) SetDeviceLabels(ctx context.Context, in *SetDeviceL
 	return out, nil
 }
 
+func (c *adminServiceClient) RetireDevice(ctx context.Context, in *RetireDeviceRequest, opts ...grpc.CallOption) (*RetireDeviceResponse, error) {
+	cOpts := append([]grpc.CallOption{grpc.StaticMethod()}, opts...)
+	out := new(RetireDeviceResponse)
+	err := c.cc.Invoke(ctx, AdminService_RetireDevice_FullMethodName, in, out, cOpts...)
+	if err != nil {
+		return nil, err
+	}
+	return out, nil
+}
+
 // AdminServiceServer is the server API for AdminService service.
 // All implementations must embed UnimplementedAdminServiceServer
 // for forward compatibility.
@@ -230,6 +247,12 @@ type AdminServiceServer interface {
 	// device sends in its introduction and win over one of the same key. In a
 	// fleet on etcd they apply on every gateway. Operator role; audited.
 	SetDeviceLabels(context.Context, *SetDeviceLabelsRequest) (*SetDeviceLabelsResponse, error)
+	// RetireDevice retires a device from a fleet on etcd: its shared alarm state is deleted
+	// from etcd (no gateway adopts it again when it is silent) and this gateway ends the
+	// device's open episodes (stored, notified as ended). Refused (FAILED_PRECONDITION) while
+	// the device streams to any gateway, and on a gateway without --etcd. Admin role; audited
+	// with the gateway that took it. Ask every gateway that shows the device.
+	RetireDevice(context.Context, *RetireDeviceRequest) (*RetireDeviceResponse, error)
 	mustEmbedUnimplementedAdminServiceServer()
 }
 
@@ -269,6 +292,9 @@ func (UnimplementedAdminServiceServer) GetStoreStats(context.Context, *GetStoreS
 }
 func (UnimplementedAdminServiceServer) SetDeviceLabels(context.Context, *SetDeviceLabelsRequest) (*SetDeviceLabelsResponse, error) {
 	return nil, status.Error(codes.Unimplemented, "method SetDeviceLabels not implemented")
+}
+func (UnimplementedAdminServiceServer) RetireDevice(context.Context, *RetireDeviceRequest) (*RetireDeviceResponse, error) {
+	return nil, status.Error(codes.Unimplemented, "method RetireDevice not implemented")
 }
 func (UnimplementedAdminServiceServer) mustEmbedUnimplementedAdminServiceServer() {}
 func (UnimplementedAdminServiceServer) testEmbeddedByValue()                      {}
@@ -464,6 +490,24 @@ func _AdminService_SetDeviceLabels_Handler(srv interface{}, ctx context.Context,
 	return interceptor(ctx, in, info, handler)
 }
 
+func _AdminService_RetireDevice_Handler(srv interface{}, ctx context.Context, dec func(interface{}) error, interceptor grpc.UnaryServerInterceptor) (interface{}, error) {
+	in := new(RetireDeviceRequest)
+	if err := dec(in); err != nil {
+		return nil, err
+	}
+	if interceptor == nil {
+		return srv.(AdminServiceServer).RetireDevice(ctx, in)
+	}
+	info := &grpc.UnaryServerInfo{
+		Server:     srv,
+		FullMethod: AdminService_RetireDevice_FullMethodName,
+	}
+	handler := func(ctx context.Context, req interface{}) (interface{}, error) {
+		return srv.(AdminServiceServer).RetireDevice(ctx, req.(*RetireDeviceRequest))
+	}
+	return interceptor(ctx, in, info, handler)
+}
+
 // AdminService_ServiceDesc is the grpc.ServiceDesc for AdminService service.
 // It's only intended for direct use with grpc.RegisterService,
 // and not to be introspected or modified (even as a copy)
@@ -506,6 +550,10 @@ var AdminService_ServiceDesc = grpc.ServiceDesc{
 		{
 			MethodName: "SetDeviceLabels",
 			Handler:    _AdminService_SetDeviceLabels_Handler,
+		},
+		{
+			MethodName: "RetireDevice",
+			Handler:    _AdminService_RetireDevice_Handler,
 		},
 	},
 	Streams: []grpc.StreamDesc{
