@@ -18,7 +18,9 @@ left out), web
 login (auth.login), alarm acknowledgement and pause (alarm.acknowledged,
 alarm.paused, alarm.resumed), profile change (profile.set), calibration change
 (calibration.put, calibration.assign), credential change (token.issue,
-token.revoke) and stream replacement (stream.replace): who, when, what, from
+token.revoke), stream replacement (stream.replace) and, in a fleet on etcd,
+device retirement (device.retire) and messages dropped after a restart because
+another gateway holds them (fleet.resent_dropped): who, when, what, from
 where.
 
 --since T: RFC 3339 (2026-11-30T22:00:00Z), Unix seconds, or a duration
