@@ -29,6 +29,9 @@ func TestAnchoredCurveFile(t *testing.T) {
 	if got := c.AnchorSpec(); got != (estimator.AnchorSpec{LengthS: 60, MinSQI: 0.5, MinSeconds: 10}) {
 		t.Fatalf("AnchorSpec = %+v", got)
 	}
+	if eq := c.Equation(); eq != "SpO2 = 190.9 - 95.3 (R/R0)" {
+		t.Errorf("Equation = %q", eq)
+	}
 	// Round trip keeps the marker.
 	b, err := c.Marshal()
 	if err != nil {

@@ -100,17 +100,22 @@ func (r *Result) Warnings() []string {
 	return w
 }
 
-// Equation renders the curve as "SpO2 = a - b R + c R^2".
+// Equation renders the curve as "SpO2 = a - b R + c R^2" ("(R/R0)" for a
+// curve on the anchored ratio).
 func (c *Curve) Equation() string {
 	s := fmt.Sprintf("SpO2 = %.4g", c.Coefficients[0])
+	x := "R"
+	if c.Anchored() {
+		x = "(R/R0)"
+	}
 	for i, v := range c.Coefficients[1:] {
 		sign := "+"
 		if v < 0 {
 			sign, v = "-", -v
 		}
-		term := "R"
+		term := x
 		if i == 1 {
-			term = "R^2"
+			term = x + "^2"
 		}
 		s += fmt.Sprintf(" %s %.4g %s", sign, v, term)
 	}

@@ -108,6 +108,15 @@ conditions:
 		dev.GetDevice().GetLatest().GetFlags()&32 == 0 {
 		t.Fatalf("during the anchor: note %q, latest %v; want SpO2 absent, flag 32 and the note", note, dev.GetDevice().GetLatest())
 	}
+	// The web page's JSON carries the reason (device.js shows it).
+	var page struct {
+		Device struct {
+			Spo2Note string `json:"spo2_note"`
+		} `json:"device"`
+	}
+	if webGet(t, "http://"+h.httpAddr+"/api/device/cam-01", &page); !strings.HasPrefix(page.Device.Spo2Note, "calibration anchor in progress, ") {
+		t.Errorf("web device JSON: spo2_note %q, want the anchor's progress", page.Device.Spo2Note)
+	}
 	// The alarm engine sees SpO2 as missing: its technical condition for that
 	// (signal_lost) is announced; SpO2 conditions do not evaluate.
 	if c := dev.GetDevice().GetActiveConditions(); len(c) != 1 || c[0] != "signal_lost" {
