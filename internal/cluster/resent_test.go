@@ -2,6 +2,8 @@ package cluster
 
 import (
 	"context"
+	"encoding/json"
+	"fmt"
 	"reflect"
 	"testing"
 	"time"
@@ -97,5 +99,67 @@ func TestAskWhichMessagesOthersHold(t *testing.T) {
 		if err != nil || r.Count != 0 {
 			t.Errorf("%s: %d keys left in etcd, %v", p, r.Count, err)
 		}
+	}
+}
+
+// BenchmarkAsk: the question a returning gateway asks, for n devices, to
+// two other members whose stores hold every one of them (one ledger record
+// each, all overlapping): one round through a real etcd, answers built from
+// real stores. Reported: the question's size and the largest answer's.
+func BenchmarkAsk(b *testing.B) {
+	for _, n := range []int{300, 3000} {
+		b.Run(fmt.Sprint(n), func(b *testing.B) {
+			s := etcdtest.Start(b)
+			c := s.Client(b)
+			ctx, cancel := context.WithCancel(context.Background())
+			defer cancel()
+			var nodes []*Node
+			for _, a := range []string{"a:1", "b:1", "c:1"} {
+				nd, err := Join(ctx, Config{Client: c, Self: a, Prefix: "/b/"})
+				if err != nil {
+					b.Fatal(err)
+				}
+				defer nd.Close()
+				nodes = append(nodes, nd)
+			}
+			ask := map[string][2]uint64{}
+			for i, nd := range nodes[1:] {
+				db, err := store.Open(b.TempDir(), store.Options{})
+				if err != nil {
+					b.Fatal(err)
+				}
+				defer db.Close()
+				batch := &store.Batch{}
+				for d := 0; d < n; d++ {
+					id := fmt.Sprintf("dev-%05d", d)
+					batch.Devices = append(batch.Devices, &store.Device{ID: id, Mode: "summary"})
+					for q := uint64(1); q <= 4; q++ {
+						batch.Chunks = append(batch.Chunks, store.Chunk{Device: id, Seq: 100*uint64(i) + q, DeviceTimeMS: 1_700_000_000_000, ArrivalMS: 1_700_000_000_000 + int64(q)})
+					}
+					ask[id] = [2]uint64{1, 500}
+				}
+				if err := db.Write(batch); err != nil {
+					b.Fatal(err)
+				}
+				go nd.ServeHeld(ctx, db.LedgerHeld)
+			}
+			for len(nodes[0].Members()) < 3 {
+				time.Sleep(10 * time.Millisecond)
+			}
+			var last map[string][]store.HeldRange
+			b.ResetTimer()
+			for i := 0; i < b.N; i++ {
+				got, missing, err := nodes[0].Ask(ctx, ask, 30*time.Second)
+				last = got["b:1"]
+				if err != nil || len(missing) != 0 || len(got["b:1"]) != n {
+					b.Fatalf("ask: %d devices answered by b, missing %v, %v", len(got["b:1"]), missing, err)
+				}
+			}
+			b.StopTimer()
+			q, _ := json.Marshal(askMsg{ID: 1, Devices: ask})
+			a, _ := json.Marshal(answerMsg{ID: 1, Held: last})
+			b.ReportMetric(float64(len(q)), "question-bytes")
+			b.ReportMetric(float64(len(a)), "answer-bytes")
+		})
 	}
 }
