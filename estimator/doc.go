@@ -75,7 +75,19 @@
 // 10 %, PI spread > 20 %); FlagLowResolution when the band-passed swing of
 // either channel in the second spans fewer than MinResolvedCodes (100) codes,
 // i.e. too few for two significant digits of AC (docs/references.md: AC about 2 %
-// of DC near mid-range needs >= 14 bits; common practice).
+// of DC near mid-range needs >= 14 bits; common practice). FlagAnchoring
+// is set by an Anchor, not by the Stream: SpO2 is withheld because the
+// calibration maps the anchored ratio R/R0 and the room-air anchor R0 is not
+// complete yet.
+//
+// # Room-air anchor
+//
+// A calibration may map R/R0 instead of R (AnchoredInput; a curve file with
+// input: anchored_ratio), R0 the median of a device's usable per-second
+// ratios over the first seconds of a wear, the person at rest on room air.
+// Config.Validate refuses such a calibration, so a Stream never applies it
+// to R; an Anchor applies it to the Timeline's estimates instead, keyed on
+// device time so that it carries across Timeline restarts.
 //
 // # Caveats
 //
