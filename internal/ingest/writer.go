@@ -125,10 +125,12 @@ type pending struct {
 // Commit pacing. Under constant load the writer would otherwise commit back
 // to back: a batch starts with the record that waited during the previous
 // commit, so the number of commits per second is set by how fast a commit
-// finishes. Each commit costs about the same whatever its size (it rewrites
-// the cursor and ledger pages of every device that sent, which at a few
-// hundred devices per batch is nearly all of them, and syncs the file), so
-// the store's CPU grew to fill whatever CPU was spare. The writer therefore
+// finishes. Much of a commit's cost does not depend on its size (it
+// rewrites the cursor and ledger pages of every device that sent, which at a
+// few hundred devices per batch is nearly all of them, and syncs the file),
+// so the store's CPU grew with whatever CPU was spare (store
+// BenchmarkIngestBatch: CPU per message against batch size;
+// BenchmarkWriterPacing here: paced against unpaced). The writer therefore
 // starts a commit no sooner than paceFactor times the previous commit's
 // duration after that one started: it is busy committing at most
 // 1/paceFactor of the time. Pacing never spaces commits more than maxPace
@@ -150,7 +152,8 @@ func paceInterval(d time.Duration) time.Duration {
 
 // run commits batches until the input is closed and drained: it takes the
 // first waiting record, then more until maxRecs, or until maxWait after the
-// first and the pacing gap after the previous commit have both passed, and
+// first and the pacing interval since the previous commit started have both
+// passed, and
 // commits them in one transaction.
 func (w *writer) run() {
 	bt := &pending{curIdx: map[*device]int{}, devSeen: map[*device]bool{}}
