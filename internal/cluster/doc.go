@@ -47,24 +47,26 @@
 //     reaches the device is resent to the new owner and stored there too.
 //     The dead gateway, when it returns, asks every other member which of
 //     its newest messages they hold (resent.go: Ask, answered by ServeHeld
-//     from each store's ledger) and drops its own copy of those held in a
-//     record that arrived there later (LaterCopies; internal/gateway
-//     reconcileResent), so each message is in one store. Why not publish
-//     durable cursors to etcd for the new owner to skip (batched, or per
-//     acknowledgement)? The messages committed after the last published
-//     batch would still be stored twice unless acknowledgements waited for
-//     etcd, and the data path must not depend on it; the reconciliation
-//     costs one question per restart. Failure modes: a gateway that never
-//     returns keeps its copies in a store nobody reads (exactly once then
-//     means: in exactly one of the readable stores); a member down at the
-//     moment of the question is asked again every 2 s until every live
-//     member answered, but a member that holds resent copies and is down
-//     for good leaves them where they are; when the holder of the resent
-//     copies is itself killed and returns later, its copies are the later
-//     ones and it keeps them (no copy is dropped on both sides); a copy not
-//     clearly later (arrival times of the records) is kept: at least once
-//     rather than lost. Only the ledger is trimmed: trend points derived
-//     from the dropped messages stay (per time, not per message).
+//     from each store's ledger) and drops its own copy of those (HeldElsewhere;
+//     internal/gateway reconcileResent), so each message is in one store.
+//     Why not publish durable cursors to etcd for the new owner to skip
+//     (batched, or per acknowledgement)? The messages committed after the
+//     last published batch would still be stored twice unless
+//     acknowledgements waited for etcd, and the data path must not depend
+//     on it; the reconciliation costs one question per restart. Failure
+//     modes: a gateway that never returns keeps its copies in a store
+//     nobody reads (exactly once then means: in exactly one of the readable
+//     stores); a member down at the moment of the question is not asked
+//     (only live members are): resent copies it holds stay twice until it
+//     returns and asks in turn (it drops them when they are among its own
+//     newest records, else they stay: held twice, never lost); two gateways
+//     that return together
+//     leave out of their answers what their own pending question may drop
+//     (Exclude), so both keep such a message rather than both dropping it;
+//     a member whose answer etcd refuses (over its 1.5 MiB request limit:
+//     about 15,000 devices held) is asked again and again, logged. Only the
+//     ledger is trimmed: trend points derived from the dropped messages stay
+//     (per time, not per message).
 //   - Gateway killed while one of its devices is silent (stopped before or
 //     with it) and never reconnects: after each membership change the new
 //     owner lists the devices it owns that have a shared alarm snapshot and

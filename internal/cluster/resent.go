@@ -18,8 +18,8 @@ import (
 // that the device resends to its next gateway (it resends everything not
 // acknowledged). When the killed gateway comes back it asks every other
 // member, through etcd, which of its newest messages they hold (Ask), and
-// drops its own copy of each one held elsewhere in a record that arrived
-// there after its own (internal/gateway reconcile). Every member answers
+// drops its own copy of each one held elsewhere (HeldElsewhere;
+// internal/gateway reconcileResent). Every member answers
 // the questions of the others from its store (ServeHeld). The messages
 // themselves never pass through etcd, and nothing on the data path waits
 // for it: this runs once per restart, off the streams.
@@ -183,18 +183,45 @@ func (n *Node) NoteResent(dropped uint64, done bool) {
 	}
 }
 
-// LaterCopies returns the parts of own (this gateway's record of a device's
-// messages) that held (another gateway's records of the same device) hold
-// in a record whose first message arrived there after own's last one: the
-// device resent them, so this gateway's acknowledgement of them never
-// reached it, and this gateway's copy is the one to drop. A copy that is
-// not clearly later is kept (at least once rather than lost).
-func LaterCopies(own store.HeldRange, held []store.HeldRange) [][2]uint64 {
+// HeldElsewhere returns the parts of own (this gateway's record of a
+// device's messages) that held (another gateway's records of the same
+// device, from its store: durable there) also hold. The returning gateway
+// drops its copy of those: the device resent them, so this gateway's
+// acknowledgement never reached it, and the other copy stays. Arrival
+// times do not matter: one copy is enough, whichever came first. Two
+// gateways that both returned and reconcile at once must not drop the same
+// message on both sides: a gateway leaves out of its answers the messages
+// of its own pending question (Exclude), so both keep theirs then (at least
+// once rather than lost).
+func HeldElsewhere(own store.HeldRange, held []store.HeldRange) [][2]uint64 {
 	var out [][2]uint64
 	for _, h := range held {
 		lo, hi := max(h.First, own.First), min(h.Last, own.Last)
-		if lo <= hi && h.FirstArrMS > own.LastArrMS {
+		if lo <= hi {
 			out = append(out, [2]uint64{lo, hi})
+		}
+	}
+	return out
+}
+
+// Exclude returns held without the sequence numbers lo..hi (an answer that
+// leaves out what the answering gateway may drop itself).
+func Exclude(held []store.HeldRange, lo, hi uint64) []store.HeldRange {
+	var out []store.HeldRange
+	for _, h := range held {
+		if h.Last < lo || h.First > hi {
+			out = append(out, h)
+			continue
+		}
+		if h.First < lo {
+			l := h
+			l.Last = lo - 1
+			out = append(out, l)
+		}
+		if h.Last > hi {
+			r := h
+			r.First = hi + 1
+			out = append(out, r)
 		}
 	}
 	return out

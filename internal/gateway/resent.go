@@ -49,18 +49,31 @@ func (g *Gateway) planResent() error {
 	return nil
 }
 
-// answerHeld answers the other gateways' questions until ctx ends.
-// Owned by Serve.
+// answerHeld answers the other gateways' questions until ctx ends. While
+// this gateway's own question is pending, its answers leave out the
+// messages it may drop itself (cluster.Exclude), so two gateways that
+// returned together never both drop a message. Owned by Serve.
 func (g *Gateway) answerHeld(ctx context.Context) {
-	if ra, ok := g.opt.Cluster.(resentAsker); ok {
-		ra.ServeHeld(ctx, g.db.LedgerHeld)
+	ra, ok := g.opt.Cluster.(resentAsker)
+	if !ok {
+		return
 	}
+	ra.ServeHeld(ctx, func(device string, lo, hi uint64) ([]store.HeldRange, error) {
+		hrs, err := g.db.LedgerHeld(device, lo, hi)
+		if err != nil || g.resentDone.Load() {
+			return hrs, err
+		}
+		if own, ok := g.resentPlan[device]; ok {
+			hrs = cluster.Exclude(hrs, own.First, own.Last)
+		}
+		return hrs, nil
+	})
 }
 
 // reconcileResent drops this gateway's copy of messages that another
-// gateway holds in a record that arrived there after this gateway's own:
-// the device resent them there because this gateway's acknowledgement
-// never reached it (it was killed after committing them). Each message is
+// gateway holds (durably, in its store): the device resent them there
+// because this gateway's acknowledgement never reached it (it was killed
+// after committing them). Each message is
 // then held once across the fleet. It asks until every live member has
 // answered. Owned by Serve.
 func (g *Gateway) reconcileResent(ctx context.Context) {
@@ -69,6 +82,7 @@ func (g *Gateway) reconcileResent(ctx context.Context) {
 		return
 	}
 	if len(g.resentPlan) == 0 {
+		g.resentDone.Store(true)
 		ra.NoteResent(0, true)
 		return
 	}
@@ -87,8 +101,9 @@ func (g *Gateway) reconcileResent(ctx context.Context) {
 				total += g.dropResent(ctx, from, id, hrs)
 			}
 		}
-		ra.NoteResent(0, err == nil && len(missing) == 0)
 		if err == nil && len(missing) == 0 {
+			g.resentDone.Store(true) // after the drops: answers may include the plan now
+			ra.NoteResent(0, true)
 			g.log.Info("checked with every other gateway which of this gateway's newest messages they hold",
 				"devices", len(ask), "dropped_held_elsewhere", total)
 			return
@@ -104,14 +119,14 @@ func (g *Gateway) reconcileResent(ctx context.Context) {
 }
 
 // dropResent drops the part of device id's planned record that gateway from
-// holds in records that arrived after it; it returns how many it dropped.
+// holds; it returns how many it dropped.
 func (g *Gateway) dropResent(ctx context.Context, from, id string, hrs []store.HeldRange) uint64 {
 	own, ok := g.resentPlan[id]
 	if !ok {
 		return 0
 	}
 	var total uint64
-	for _, r := range cluster.LaterCopies(own, hrs) {
+	for _, r := range cluster.HeldElsewhere(own, hrs) {
 		lo, hi := r[0], r[1]
 		n, err := g.db.DropMessages(id, lo, hi)
 		if err != nil {

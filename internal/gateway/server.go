@@ -45,6 +45,7 @@ type Gateway struct {
 	ring *shard.Ring // nil without sharding
 
 	resentPlan map[string]store.HeldRange // fleet on etcd: records to check with the other gateways (resent.go)
+	resentDone atomic.Bool                // the check is over (resent.go)
 
 	calMu     sync.RWMutex
 	calAssign map[string]string // calibration assignments: "device:ID"/"model:M" -> "name@vN"
