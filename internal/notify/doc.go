@@ -35,6 +35,12 @@
 // (OutboxEntry.Fired), and the resolution is sent only once the alert has
 // been firing there for Options.Hold (2 minutes by default), so
 // Alertmanager notifies it after its group_wait, also across a restart.
+// The same hold applies to an episode that ends soon after an Alertmanager
+// accepted it firing (the store keeps the firing times past the entry,
+// until the end is delivered everywhere), since an alert resolved within
+// its group's group_wait is never notified either. Until its resolution, a
+// held alert is resent to that Alertmanager as firing (Late), so one that
+// restarted meanwhile has it again.
 //
 // The client is a few lines of net/http and encoding/json over the
 // documented API rather than Alertmanager's generated Go client, which

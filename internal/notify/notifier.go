@@ -69,6 +69,11 @@ type Notifier struct {
 
 	mu     sync.Mutex
 	firing map[uint64][]Alert // episode -> its alerts as last built while active (resent every Resend)
+	// held[i]: ended episodes that target i has firing only until their
+	// hold is over (sent late, or ended within the hold of their firing):
+	// resent to that target alone, so an Alertmanager restarted meanwhile
+	// has them firing again before their resolution comes.
+	held []map[uint64]Alert
 }
 
 // New checks the options and builds a notifier.
@@ -129,6 +134,7 @@ func New(opt Options) (*Notifier, error) {
 		n.clients = append(n.clients, c)
 		n.targets = append(n.targets, u)
 		n.kicks = append(n.kicks, make(chan struct{}, 1))
+		n.held = append(n.held, map[uint64]Alert{})
 	}
 	return n, nil
 }
@@ -224,7 +230,7 @@ func (n *Notifier) device(cache map[string]*store.Device, id string) *store.Devi
 
 // work is target i's loop.
 func (n *Notifier) work(ctx context.Context, i int) {
-	c, target := n.clients[i], n.targets[i]
+	target := n.targets[i]
 	backoff := time.Duration(0)
 	retry := time.NewTimer(0) // first pass at once: the outbox may hold what a previous run left
 	resend := time.NewTicker(n.opt.Resend)
@@ -250,12 +256,12 @@ func (n *Notifier) work(ctx context.Context, i int) {
 			n.refreshQueue() // the gauges move while this target waits out its backoff
 			continue
 		}
-		due, err := n.pass(ctx, c, target)
+		due, err := n.pass(ctx, i)
 		if !due.IsZero() {
 			hold.Reset(max(due.Sub(n.opt.Now()), 0) + 10*time.Millisecond)
 		}
 		if err == nil && resending {
-			err = n.resend(ctx, c)
+			err = n.resend(ctx, i)
 		}
 		if ctx.Err() != nil {
 			return
@@ -280,10 +286,13 @@ const passBatch = 256
 // pass sends target every outbox entry it has not accepted yet, in
 // batches, and records what it accepted. It stops at the first failure.
 // An ended episode that target never had firing is sent as firing first
-// (Late) and its resolution only once it has been firing there for
-// Options.Hold; pass returns the earliest such time still to come (zero
+// (Late), and an ended episode's resolution only once it has been firing
+// there for Options.Hold (also one that ended soon after its firing was
+// delivered: Alertmanager, still in its group_wait, would drop it
+// unnotified); pass returns the earliest such time still to come (zero
 // when none), when it must run again.
-func (n *Notifier) pass(ctx context.Context, c *client, target string) (time.Time, error) {
+func (n *Notifier) pass(ctx context.Context, i int) (time.Time, error) {
+	c, target := n.clients[i], n.targets[i]
 	var due time.Time
 	ents, total, err := n.opt.Store.Outbox(0)
 	if err != nil {
@@ -327,6 +336,7 @@ func (n *Notifier) pass(ctx context.Context, c *client, target string) (time.Tim
 		}
 		as := Build(&ep, n.device(devs, ep.Device), n.opt.Gateway, n.opt.PageBase, now)
 		acc := store.OutboxAcceptance{Episode: ent.Episode, Gen: ent.Gen}
+		n.track(&ep, as)
 		if ep.Active {
 			acc.FiringMS = now.UnixMilli()
 		} else if firedMS, ok := ent.FiredAt(target); !ok {
@@ -334,11 +344,16 @@ func (n *Notifier) pass(ctx context.Context, c *client, target string) (time.Tim
 			as = []Alert{Late(as[0], now.Add(n.opt.Hold+n.opt.Resend))}
 			acc.FiringMS, acc.Partial = now.UnixMilli(), true
 			due = earliest(due, now.Add(n.opt.Hold))
+			n.hold(i, ep.ID, as[0])
 		} else if t := time.UnixMilli(firedMS).Add(n.opt.Hold); firedMS != 0 && now.Before(t) {
-			due = earliest(due, t) // firing there since firedMS: resolve when the hold is over
+			// Firing there since firedMS: resolve when the hold is over,
+			// and until then resend it as firing (marked ended).
+			due = earliest(due, t)
+			n.hold(i, ep.ID, Late(as[0], t.Add(n.opt.Resend)))
 			continue
+		} else {
+			n.hold(i, ep.ID, Alert{}) // its resolution goes now
 		}
-		n.track(&ep, as)
 		alerts = append(alerts, as...)
 		sent = append(sent, acc)
 		if len(sent) >= passBatch {
@@ -381,13 +396,30 @@ func (n *Notifier) track(e *store.Episode, as []Alert) {
 	}
 }
 
-// resend posts every active alert again (Alertmanager resolves a firing
-// alert that is not repeated within its resolve_timeout).
-func (n *Notifier) resend(ctx context.Context, c *client) error {
+// hold sets (or, with a zero Alert, removes) what target i is resent of an
+// ended episode until its resolution.
+func (n *Notifier) hold(i int, episode uint64, a Alert) {
+	n.mu.Lock()
+	defer n.mu.Unlock()
+	if a.Labels == nil {
+		delete(n.held[i], episode)
+	} else {
+		n.held[i][episode] = a
+	}
+}
+
+// resend posts every active alert again to target i (Alertmanager
+// resolves a firing alert that is not repeated within its
+// resolve_timeout), and the ended ones it holds firing.
+func (n *Notifier) resend(ctx context.Context, i int) error {
+	c := n.clients[i]
 	n.mu.Lock()
 	var alerts []Alert
 	for _, as := range n.firing {
 		alerts = append(alerts, as...)
+	}
+	for _, a := range n.held[i] {
+		alerts = append(alerts, a)
 	}
 	n.mu.Unlock()
 	for len(alerts) > 0 {

@@ -58,7 +58,7 @@ var (
 	bLabels     = []byte("devlabels")
 	bTokens     = []byte("tokens")
 	bEnrolments = []byte("enrolments")
-	// bOutbox is in outbox.go.
+	// bOutbox and bOutboxFired are in outbox.go.
 	bReviews = []byte("reviews")
 
 	keySchema  = []byte("schema")

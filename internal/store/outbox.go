@@ -27,21 +27,21 @@ type OutboxEntry struct {
 	// episode, was delivered everywhere and removed).
 	FiringDone bool `json:"firing_done,omitempty"`
 	// Fired maps a target to when it first accepted the episode as firing
-	// within this entry (Unix ms, the notifier's clock); kept across
-	// generations, so an ended episode's resolution can wait until the
-	// alert has been firing at that target for a minimum hold (package
-	// notify), also across a restart.
+	// (Unix ms, the notifier's clock); kept across generations and, for an
+	// episode not yet ended, across entries (a new entry starts with the
+	// times kept when the previous one was removed), so an ended episode's
+	// resolution can wait until the alert has been firing at that target
+	// for a minimum hold (package notify), also across a restart.
 	Fired map[string]int64 `json:"fired,omitempty"`
 }
 
-// FiredAt reports when target had the episode firing: FiringDone gives
-// (0, true); otherwise its Fired time, or false when it never had.
+// FiredAt reports when target had the episode firing: its Fired time;
+// else FiringDone gives (0, true) (fired, time not known); else false.
 func (e *OutboxEntry) FiredAt(target string) (int64, bool) {
-	if e.FiringDone {
-		return 0, true
+	if t, ok := e.Fired[target]; ok {
+		return t, true
 	}
-	t, ok := e.Fired[target]
-	return t, ok
+	return 0, e.FiringDone
 }
 
 // OutboxAcceptance is what one target accepted of one outbox entry.
@@ -60,6 +60,15 @@ type OutboxAcceptance struct {
 }
 
 var bOutbox = []byte("outbox")
+
+// bOutboxFired keeps, per episode (key as in bOutbox), the Fired times of
+// its entries (JSON target -> Unix ms) past the removal of an entry, so the
+// entry made for the episode's next change (its end) starts with them. It
+// is cleaned when an ended episode's entry is removed (delivered
+// everywhere) and when the episode is deleted. It is made by the first
+// firing time recorded, so a store that never had one opens with older
+// binaries.
+var bOutboxFired = []byte("outbox_fired")
 
 // EnableOutbox makes Write queue a notification, in the same transaction,
 // for every episode it writes that was announced (AnnouncedMS > 0): an
@@ -106,6 +115,10 @@ func queueOutbox(tx *bolt.Tx, eps []*Episode, wasAnnounced map[uint64]bool, nowM
 			ent = OutboxEntry{} // the entry's own FiringDone, not the new one's
 			if err := decJSON(v, &ent); err != nil {
 				return false, fmt.Errorf("outbox entry %d: %w", e.ID, err)
+			}
+		} else if fv := keptFiring(tx, k); fv != nil {
+			if err := decJSON(fv, &ent.Fired); err != nil {
+				return false, fmt.Errorf("outbox firing times %d: %w", e.ID, err)
 			}
 		}
 		ent.Gen++
@@ -184,6 +197,17 @@ func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxA
 				}
 				e.Fired[target] = a.FiringMS
 				changed = true
+				fb, err := tx.CreateBucketIfNotExists(bOutboxFired)
+				if err != nil {
+					return err
+				}
+				fv, err := encJSON(e.Fired)
+				if err != nil {
+					return err
+				}
+				if err := fb.Put(k, fv); err != nil {
+					return err
+				}
 			}
 			if e.Gen == a.Gen && !a.Partial && !slices.Contains(e.Delivered, target) {
 				e.Delivered = append(e.Delivered, target)
@@ -197,6 +221,11 @@ func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxA
 				removed++
 				if err := ob.Delete(k); err != nil {
 					return err
+				}
+				if fb := tx.Bucket(bOutboxFired); fb != nil && ended(tx, k) { // its last word delivered: the firing times are done with
+					if err := fb.Delete(k); err != nil {
+						return err
+					}
 				}
 				continue
 			}
@@ -219,6 +248,28 @@ func (db *DB) OutboxAccepted(target string, targets []string, accepted []OutboxA
 	return removed, nil
 }
 
+// keptFiring returns the firing times kept for the episode with key k (nil
+// when none).
+func keptFiring(tx *bolt.Tx, k []byte) []byte {
+	if fb := tx.Bucket(bOutboxFired); fb != nil {
+		return fb.Get(k)
+	}
+	return nil
+}
+
+// ended reports whether the stored episode with key k has ended (or is
+// gone).
+func ended(tx *bolt.Tx, k []byte) bool {
+	v := tx.Bucket(bEpisodes).Get(k)
+	if v == nil {
+		return true
+	}
+	var e struct {
+		Active bool `json:"active"`
+	}
+	return decJSON(v, &e) == nil && !e.Active
+}
+
 // OutboxDrop removes an entry that can never be delivered (its episode is
 // gone from the store); it returns whether there was one.
 func (db *DB) OutboxDrop(episode uint64) (bool, error) {
@@ -227,6 +278,11 @@ func (db *DB) OutboxDrop(episode uint64) (bool, error) {
 		ob := tx.Bucket(bOutbox)
 		k := u64(episode)
 		found = ob.Get(k) != nil
+		if fb := tx.Bucket(bOutboxFired); fb != nil {
+			if err := fb.Delete(k); err != nil {
+				return err
+			}
+		}
 		return ob.Delete(k)
 	})
 	if err != nil {

@@ -3,6 +3,8 @@ package store
 import (
 	"errors"
 	"testing"
+
+	bolt "go.etcd.io/bbolt"
 )
 
 // The outbox is written in the transaction that writes the episode, only
@@ -191,5 +193,67 @@ func TestOutboxFiringRecord(t *testing.T) {
 		if x.Episode == 21 && x.FiringDone {
 			t.Errorf("episode announced and ended in one batch marked FiringDone: %+v", x)
 		}
+	}
+}
+
+// The firing times outlive the entry that recorded them while the episode
+// is active: the entry made for its end starts with them (so notify can
+// hold a resolution that comes soon after the firing), and they are gone
+// once the ended episode's entry is delivered everywhere.
+func TestOutboxFiringTimesOutliveTheEntry(t *testing.T) {
+	db, err := Open(t.TempDir(), Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	db.EnableOutbox(nil)
+	targets := []string{"A", "B"}
+	ep := &Episode{ID: 30, Device: "d", Condition: "spo2_low", Priority: "high", OnsetMS: 1000, AnnouncedMS: 2000, Active: true}
+	write := func() {
+		t.Helper()
+		if err := db.Write(&Batch{Episodes: []*Episode{ep}}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	acceptAll := func(gen uint64, firingMS int64) {
+		t.Helper()
+		for i, tg := range targets {
+			a := OutboxAcceptance{Episode: 30, Gen: gen}
+			if firingMS != 0 {
+				a.FiringMS = firingMS + int64(i)
+			}
+			if _, err := db.OutboxAccepted(tg, targets, []OutboxAcceptance{a}); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	kept := func() []byte {
+		var v []byte
+		db.view(func(tx *bolt.Tx) error { v = append(v, keptFiring(tx, u64(30))...); return nil })
+		return v
+	}
+	write()
+	acceptAll(1, 5000)
+	if ents, _, _ := db.Outbox(0); len(ents) != 0 {
+		t.Fatalf("outbox %+v after both accepted the firing state", ents)
+	}
+	if kept() == nil {
+		t.Fatal("firing times not kept after the active episode's entry was removed")
+	}
+	ep.Active, ep.EndedMS = false, 6000
+	write()
+	ents, _, _ := db.Outbox(0)
+	if len(ents) != 1 || !ents[0].FiringDone || ents[0].Fired["A"] != 5000 || ents[0].Fired["B"] != 5001 {
+		t.Fatalf("entry for the end %+v, want FiringDone with A fired at 5000 and B at 5001", ents)
+	}
+	if at, ok := ents[0].FiredAt("B"); !ok || at != 5001 {
+		t.Errorf("FiredAt(B) = %d, %v; want 5001", at, ok)
+	}
+	acceptAll(1, 0)
+	if ents, _, _ := db.Outbox(0); len(ents) != 0 {
+		t.Fatalf("outbox %+v after both accepted the end", ents)
+	}
+	if v := kept(); v != nil {
+		t.Errorf("firing times %s still kept after the ended episode was delivered everywhere", v)
 	}
 }

@@ -232,6 +232,13 @@ var specs = map[string]bucketSpec{
 		}
 		return idKey(k, e.Episode)
 	})},
+	"outbox_fired": {record: func(_ *checker, _ [][]byte, k, v []byte) error {
+		var fired map[string]int64
+		if err := decJSON(v, &fired); err != nil {
+			return fmt.Errorf("firing times do not decode: %v", err)
+		}
+		return keyLen(8)(k)
+	}},
 	"reviews": {record: reviewRecord},
 	"tokens": {record: jsonRecord(func(_ *checker, k []byte, t *Token) error {
 		if t.Hash != string(k) {

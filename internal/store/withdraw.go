@@ -301,6 +301,11 @@ func deleteEpisodes(tx *bolt.Tx, device string, fromMS, toMS int64) (uint64, uin
 				return 0, 0, err
 			}
 		}
+		if fb := tx.Bucket(bOutboxFired); fb != nil { // outbox_fired/EPISODE_ID
+			if err := fb.Delete(k); err != nil {
+				return 0, 0, err
+			}
+		}
 	}
 	return uint64(len(del)), reviews, nil
 }
