@@ -81,7 +81,9 @@ func TestKill9BeforeDeliveryDeliversAfterRestart(t *testing.T) {
 	if err := os.WriteFile(prof, []byte("name: fast\nconditions:\n  - kind: spo2_low\n    limit: 90\n    hysteresis: 2\n    delay: 3s\n    priority: high\n"), 0o644); err != nil {
 		t.Fatal(err)
 	}
-	args := []string{"--profile", prof, "--alertmanager", am.URL, "--external-url", "https://ward.example/pulsefleet"}
+	// The end comes soon after the firing was delivered: its resolution
+	// waits for the hold (here the shortest, 5 s).
+	args := []string{"--profile", prof, "--alertmanager", am.URL, "--external-url", "https://ward.example/pulsefleet", "--alertmanager-hold", "5s"}
 	c := startServe(t, data, args...)
 	t0 := time.Now().Add(-time.Minute).Truncate(time.Second).UnixMilli()
 	d := dialLabelled(t, c.grpcAddr, "bed-11", "proto-ox2", map[string]string{"ward": "3-north"})

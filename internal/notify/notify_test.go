@@ -112,7 +112,9 @@ func TestAnnouncedAndEndedReachTheReceiverThroughBothAlertmanagers(t *testing.T)
 	recv := notifytest.NewReceiver(t)
 	amA := notifytest.Start(t, notifytest.Config(recv.URL("/am-a")))
 	amB := notifytest.Start(t, notifytest.Config(recv.URL("/am-b")))
-	r := newRig(t, Options{URLs: []string{amA.URL, amB.URL}, Gateway: "gw-test", PageBase: "http://gw.example:7401/"})
+	// The end follows the firing's delivery at once: its resolution waits
+	// for the (shortest) hold, so the firing notification goes out first.
+	r := newRig(t, Options{URLs: []string{amA.URL, amB.URL}, Gateway: "gw-test", PageBase: "http://gw.example:7401/", Hold: MinHold})
 	dev := &store.Device{ID: "bed 3", Model: "proto-ox2", Labels: map[string]string{"ward": "3 North", "bed.no": "7", "priority": "spoof"}}
 	if err := r.db.Write(&store.Batch{Devices: []*store.Device{dev}}); err != nil {
 		t.Fatal(err)
@@ -166,7 +168,7 @@ func TestAnnouncedAndEndedReachTheReceiverThroughBothAlertmanagers(t *testing.T)
 	ended := onset.Add(95 * time.Second)
 	ep.Active, ep.EndedMS = false, ended.UnixMilli()
 	r.write(t, ep)
-	all, ok = recv.Wait(20*time.Second, both("resolved"))
+	all, ok = recv.Wait(MinHold+30*time.Second, both("resolved"))
 	if !ok {
 		t.Fatalf("the end did not arrive as resolved through both; received %+v", all)
 	}
