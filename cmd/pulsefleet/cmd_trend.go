@@ -138,8 +138,9 @@ func queryTrend(ctx context.Context, cf *clientFlags, addrs []string, req *pb.Qu
 }
 
 // participantTrend writes pid's history: each enrolled device's trend
-// inside its enrolment, one enrolment after the other, with a participant
-// column.
+// inside its enrolment, with a participant column, in time order (then by
+// device): a participant wearing two devices at once (a prototype and a
+// reference oximeter) gets their rows interleaved by time.
 func participantTrend(ctx context.Context, cf *clientFlags, addrs []string, pid string, from, to time.Time, step time.Duration, s stdio) error {
 	ivs, err := remoteEnrolments(ctx, cf, addrs)
 	if err != nil {
@@ -151,23 +152,37 @@ func participantTrend(ctx context.Context, cf *clientFlags, addrs []string, pid 
 			from.UTC().Format(time.RFC3339), to.UTC().Format(time.RFC3339), strings.Join(addrs, ", "))
 	}
 	failedAt := map[string]gatewayError{}
-	for i, sg := range segs {
+	var (
+		points  []deviceRow[*pb.TrendPoint]
+		buckets []deviceRow[*pb.TrendBucket]
+	)
+	for _, sg := range segs {
 		req := &pb.QueryTrendRequest{DeviceId: sg.Device, FromUnixMs: sg.FromMS, ToUnixMs: sg.ToMS, StepMs: step.Milliseconds()}
-		points, buckets, failed, err := queryTrend(ctx, cf, addrs, req, s)
+		ps, bs, failed, err := queryTrend(ctx, cf, addrs, req, s)
 		if err != nil {
 			return err
 		}
 		for _, f := range failed {
 			failedAt[f.Addr] = f
 		}
-		if step > 0 {
-			err = writeBuckets(s.out, sg.Device, pid, mergeBuckets(buckets), i == 0)
-		} else {
-			err = writeTrendPoints(s.out, sg.Device, pid, mergePoints(points), i == 0)
+		for _, b := range mergeBuckets(bs) {
+			buckets = append(buckets, deviceRow[*pb.TrendBucket]{sg.Device, b.GetStartUnixMs(), b})
 		}
-		if err != nil {
-			return err
+		for _, p := range mergePoints(ps) {
+			points = append(points, deviceRow[*pb.TrendPoint]{sg.Device, p.GetTimeUnixMs(), p})
 		}
+	}
+	if step > 0 {
+		err = writeByTime(buckets, func(device string, run []*pb.TrendBucket, head bool) error {
+			return writeBuckets(s.out, device, pid, run, head)
+		})
+	} else {
+		err = writeByTime(points, func(device string, run []*pb.TrendPoint, head bool) error {
+			return writeTrendPoints(s.out, device, pid, run, head)
+		})
+	}
+	if err != nil {
+		return err
 	}
 	var failed []gatewayError
 	for _, a := range addrs {
@@ -179,6 +194,40 @@ func participantTrend(ctx context.Context, cf *clientFlags, addrs []string, pid 
 		fmt.Fprintf(s.err, "pulsefleet trend: INCOMPLETE: gateway %s could not be read (%s): the trend points it holds are missing here\n", f.Addr, safeText(errorText(f.Err)))
 	}
 	return incomplete("trend points", len(addrs), failed)
+}
+
+// deviceRow is one device's trend row (a point or a step) at a time.
+type deviceRow[T any] struct {
+	device string
+	ms     int64
+	v      T
+}
+
+// writeByTime orders rows by time, then device, and writes them as runs of
+// one device each; the first call (head true) also writes the head, even
+// when there are no rows.
+func writeByTime[T any](rows []deviceRow[T], write func(device string, run []T, head bool) error) error {
+	sort.SliceStable(rows, func(i, j int) bool {
+		if rows[i].ms != rows[j].ms {
+			return rows[i].ms < rows[j].ms
+		}
+		return rows[i].device < rows[j].device
+	})
+	if len(rows) == 0 {
+		return write("", nil, true)
+	}
+	for i := 0; i < len(rows); {
+		j := i
+		var run []T
+		for ; j < len(rows) && rows[j].device == rows[i].device; j++ {
+			run = append(run, rows[j].v)
+		}
+		if err := write(rows[i].device, run, i == 0); err != nil {
+			return err
+		}
+		i = j
+	}
+	return nil
 }
 
 // anyGatewayKnows returns nil when at least one gateway knows the device,

@@ -2,6 +2,8 @@ package main
 
 import (
 	"context"
+	"encoding/csv"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -89,4 +91,83 @@ func TestParticipantsCommandsRealGateway(t *testing.T) {
 	if out := must("audit", "--action", "participants.delete"); !strings.Contains(out, "participant P-0001 withdrawn") {
 		t.Errorf("audit:\n%s", out)
 	}
+}
+
+// A participant wearing two devices at once (a prototype and a reference
+// oximeter): trend --participant interleaves both devices' rows in time
+// order, raw and in steps, with every row of each device kept.
+func TestParticipantTrendOfTwoDevicesAtOnceIsInTimeOrder(t *testing.T) {
+	addr, _, stop := startTestGateway(t)
+	defer stop()
+	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
+	defer cancel()
+	if _, err := sim.Run(ctx, sim.Options{Gateway: addr, Devices: 2, Mode: sim.ModeSummary, Duration: 4 * time.Second, Seed: 5}); err != nil {
+		t.Fatal(err)
+	}
+	must := func(args ...string) string {
+		t.Helper()
+		code, out, errs := runCmd(append(args, "--gateway", addr)...)
+		if code != 0 {
+			t.Fatalf("%v: exit %d: %s", args, code, errs)
+		}
+		return out
+	}
+	must("participants", "enrol", "--participant", "P-0009", "--device", "sim-0001", "--from", "1h")
+	must("participants", "enrol", "--participant", "P-0009", "--device", "sim-0002", "--from", "1h")
+	for _, step := range []string{"", "1s"} {
+		args := []string{"trend", "--participant", "P-0009", "--from", "1h"}
+		if step != "" {
+			args = append(args, "--step", step)
+		}
+		out := must(args...)
+		rows := trendCSV(t, out)
+		perDevice := map[string]int{}
+		prev := -1.0
+		for i, r := range rows {
+			col := "t_s"
+			if step != "" {
+				col = "start_s"
+			}
+			ts, err := strconv.ParseFloat(r[col], 64)
+			if err != nil {
+				t.Fatalf("step %q row %d: %s %q: %v", step, i, col, r[col], err)
+			}
+			if ts < prev {
+				t.Fatalf("step %q row %d at %v after a row at %v: not in time order\n%s", step, i, ts, prev, out)
+			}
+			prev = ts
+			perDevice[r["device"]]++
+			if r["participant"] != "P-0009" {
+				t.Errorf("row %d participant %q", i, r["participant"])
+			}
+		}
+		for _, dev := range []string{"sim-0001", "sim-0002"} {
+			devArgs := []string{"trend", "--device", dev, "--from", "1h"}
+			if step != "" {
+				devArgs = append(devArgs, "--step", step)
+			}
+			want := len(trendCSV(t, must(devArgs...)))
+			if want == 0 || perDevice[dev] != want {
+				t.Errorf("step %q: %s has %d rows in the participant's trend, %d in its own", step, dev, perDevice[dev], want)
+			}
+		}
+	}
+}
+
+// trendCSV reads trend CSV (after its caution line) into rows by column.
+func trendCSV(t *testing.T, out string) []map[string]string {
+	t.Helper()
+	rows, err := csv.NewReader(strings.NewReader(afterCaution(t, "trend CSV", out))).ReadAll()
+	if err != nil || len(rows) == 0 {
+		t.Fatalf("trend CSV: %v\n%s", err, out)
+	}
+	var maps []map[string]string
+	for _, r := range rows[1:] {
+		m := map[string]string{}
+		for i, c := range rows[0] {
+			m[c] = r[i]
+		}
+		maps = append(maps, m)
+	}
+	return maps
 }
