@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -52,8 +53,19 @@ func TestEnrolThroughThePageInChromium(t *testing.T) {
 	if got := text(`#participant`); !strings.Contains(got, "CLI only") || !strings.Contains(got, "participants delete --participant PID --confirm") {
 		t.Errorf("the panel does not say that deletion is CLI-only:\n%s", got)
 	}
+	// Enrolled from 10 minutes ago (the from field takes the browser's local time).
+	fromMS, err := chromedp.Run(bctx, chromedp.Evaluate[float64](`(() => {
+		const d = new Date(Math.floor(Date.now() / 1000) * 1000 - 600000), p = n => String(n).padStart(2, '0');
+		document.getElementById('enrol-from').value = d.getFullYear() + '-' + p(d.getMonth() + 1) + '-' + p(d.getDate()) + 'T' + p(d.getHours()) + ':' + p(d.getMinutes()) + ':' + p(d.getSeconds());
+		return d.getTime(); })()`))
+	if err != nil {
+		t.Fatal(err)
+	}
 	do("enrol", chromedp.SendKeys(`#enrol-participant`, "P-0007"), chromedp.SendKeys(`#enrol-note`, "bed 7"), chromedp.Click(`#enrol-save`))
 	waitText("enrolled", `#enrol-current`, "Enrolled to P-0007")
+	if out := cli("participants", "list", "--format", "json"); !strings.Contains(out, strconv.FormatInt(int64(fromMS), 10)) {
+		t.Errorf("enrolment from the page's from field: want from %d ms in\n%s", int64(fromMS), out)
+	}
 	if got := text(`#enrolments tbody`); !strings.Contains(got, "P-0007") || !strings.Contains(got, "open") || !strings.Contains(got, "bed 7") || !strings.Contains(got, "web@127.0.0.1") {
 		t.Errorf("history after enrolment: %q", got)
 	}

@@ -2,7 +2,8 @@
 // kept apart from app.js and device.js: it needs only the device page's
 // #alarm panel (it places itself after it) and the page's CSRF meta tag.
 // It shows the device's current participant, its enrolment history, a form
-// to enrol the device to a participant id from now (with an optional note)
+// to enrol the device to a participant id from now or from an earlier time
+// (with an optional note)
 // and a button to end the current enrolment. Both post to the gateway's
 // ParticipantService through /api/device/ID/enrol and
 // /api/device/ID/enrolment/end (operator role, CSRF token like the page's
@@ -52,6 +53,7 @@
     const pid = el('input', { id: 'enrol-participant', type: 'text', maxlength: '32', autocomplete: 'off', spellcheck: 'false',
       placeholder: 'e.g. P-0001', 'aria-label': 'participant id (pseudonymous study code, never a name)' });
     const note = el('input', { id: 'enrol-note', type: 'text', maxlength: '200', 'aria-label': 'note (optional, at most 200 bytes)', placeholder: 'note (optional)' });
+    const from = el('input', { id: 'enrol-from', type: 'datetime-local', step: '1', 'aria-label': 'enrolled from (optional, this browser\'s local time; empty: now)' });
     const act = (btn, fn) => async () => {
       btn.disabled = true;
       try {
@@ -65,8 +67,16 @@
         btn.disabled = false;
       }
     };
-    const enrol = el('button', { type: 'button', class: 'primary', id: 'enrol-save' }, 'Enrol from now');
-    enrol.addEventListener('click', act(enrol, () => call(`${base}/enrol`, { participant: pid.value.trim(), note: note.value })));
+    const enrol = el('button', { type: 'button', class: 'primary', id: 'enrol-save' }, 'Enrol');
+    enrol.addEventListener('click', act(enrol, () => {
+      const body = { participant: pid.value.trim(), note: note.value };
+      if (from.value) { // an earlier start, for data already stored; the gateway refuses overlaps
+        const ms = new Date(from.value).getTime();
+        if (!Number.isFinite(ms)) throw new Error(`from: "${from.value}" is not a date and time`);
+        body.from_unix_ms = ms;
+      }
+      return call(`${base}/enrol`, body);
+    }));
     let end = null;
     if (cur) {
       end = el('button', { type: 'button', id: 'enrol-end' }, `End enrolment of ${cur.participant_id}`);
@@ -76,10 +86,10 @@
       el('h2', null, 'Study participant'),
       el('p', { id: 'enrol-current' }, cur ? ['Enrolled to ', el('strong', { class: 'pid' }, cur.participant_id), ` since ${when(Number(cur.from_unix_ms))}`, cur.note ? ` (${cur.note})` : '']
         : 'Not enrolled to a participant now.'),
-      el('div', { class: 'actions' }, pid, ' ', note, ' ', enrol, ' ', end),
+      el('div', { class: 'actions' }, pid, ' ', note, ' ', el('label', null, 'from ', from), ' ', enrol, ' ', end),
       status,
       el('p', { class: 'muted small' }, 'Participant ids are pseudonymous study codes (2 to 32 of A-Z 0-9 - _, with a digit), never names. ',
-        'Enrolling and ending need the operator role and are audited. An enrolment for an earlier interval: pulsefleet participants enrol --from. ',
+        'Enrolling and ending need the operator role and are audited. From: empty enrols from now; an earlier time (this browser\'s local time) covers data already stored. ',
         'Deleting a participant\'s data (withdrawal of consent) is not possible here: it is done with the CLI only, by an admin: pulsefleet participants delete --participant PID --confirm.'),
       el('h3', null, 'Enrolment history of this device'),
       history());
