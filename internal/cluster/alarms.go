@@ -75,7 +75,10 @@ func (n *Node) publishAlarms(ctx context.Context) {
 		n.alarmMu.Unlock()
 		for id, b := range batch {
 			pctx, cancel := context.WithTimeout(ctx, n.ttl/3)
-			_, err := n.c.Put(pctx, n.alarmKey(id), string(b))
+			// Not for a retired device (retire.go): a gateway that still
+			// evaluates what its store held of it must not bring it back.
+			_, err := n.c.Txn(pctx).If(clientv3.Compare(clientv3.CreateRevision(n.retiredKey(id)), "=", 0)).
+				Then(clientv3.OpPut(n.alarmKey(id), string(b))).Commit()
 			cancel()
 			if err != nil {
 				n.alarmMu.Lock()

@@ -76,7 +76,9 @@
 //     (its device_offline onset withdrawn before the delay). A device taken
 //     out of use is retired (Retire, `pulsefleet retire`): its alarm key is
 //     deleted, so nobody adopts it again, and PREFIX/retired/DEVICE tells a
-//     gateway that was down then to end what its own store holds of it;
+//     gateway that was down or not asked to end what its own store holds of
+//     it, and keeps every gateway from publishing its alarm state again (a
+//     publication is a transaction conditional on the mark's absence);
 //     refused while its fence is held (it streams), and undone by its next
 //     fence (it streams again).
 //

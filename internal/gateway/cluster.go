@@ -62,8 +62,13 @@ type silentFinder interface {
 // the moment of their move; a scan etcd did not answer is tried again at
 // the next watchdog tick. Owned by the watchdog goroutine.
 type silentScan struct {
-	due time.Time // zero = no scan pending
+	due     time.Time // zero = no scan pending
+	retired time.Time // last look at the devices retired from the fleet
 }
+
+// retiredEvery: how often a gateway looks for devices retired through
+// another gateway (one etcd read), besides after each membership change.
+const retiredEvery = 30 * time.Second
 
 func (s *silentScan) step(ctx context.Context, g *Gateway) {
 	sf, ok := g.opt.Cluster.(silentFinder)
@@ -74,6 +79,10 @@ func (s *silentScan) step(ctx context.Context, g *Gateway) {
 	case <-sf.MembersChanged():
 		s.due = time.Now().Add(2 * sf.TTL())
 	default:
+	}
+	if rl, ok := g.opt.Cluster.(retiredLister); ok && time.Since(s.retired) >= retiredEvery {
+		s.retired = time.Now()
+		g.retireLocally(ctx, rl)
 	}
 	if s.due.IsZero() || time.Now().Before(s.due) {
 		return
@@ -93,6 +102,7 @@ func (s *silentScan) step(ctx context.Context, g *Gateway) {
 		g.log.Info("adopted devices that stream to no gateway of the fleet", "devices", len(silent))
 	}
 	if rl, ok := g.opt.Cluster.(retiredLister); ok {
+		s.retired = time.Now()
 		g.retireLocally(ctx, rl)
 	}
 }
@@ -103,8 +113,9 @@ type retiredLister interface {
 }
 
 // retireLocally ends what this gateway still holds of devices retired
-// through another gateway while it was down (its store kept their alarm
-// state), audited as a fleet sync naming the gateway that took it.
+// through another gateway (it was down then, or not asked: its store kept
+// their alarm state), audited as a fleet sync naming the gateway that took
+// it. Runs after each membership change and every retiredEvery.
 func (g *Gateway) retireLocally(ctx context.Context, rl retiredLister) {
 	retired, err := rl.RetiredDevices(ctx)
 	if err != nil {
