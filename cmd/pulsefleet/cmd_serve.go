@@ -87,7 +87,7 @@ func (c *serveConfig) flags(fs *flag.FlagSet) {
 	fs.IntVar(&c.TrendDays, "trend-days", c.TrendDays, "days of trend history to keep (0 = forever)")
 	fs.IntVar(&c.RawDays, "raw-days", c.RawDays, "days of raw captures to keep (0 = forever)")
 	fs.IntVar(&c.LedgerDays, "ledger-days", c.LedgerDays, "days of the ingest ledger to keep (0 = forever; the default covers every resend the gateway can accept: device times up to a year old)")
-	fs.DurationVar(&c.BatchDelay, "batch-delay", c.BatchDelay, "how long a store batch collects after its first message (under load, commits are also paced: starting at least 4x the previous commit's duration apart, never paced more than 100 ms apart)")
+	fs.DurationVar(&c.BatchDelay, "batch-delay", c.BatchDelay, "how long a store batch collects after its first message (under load, commits are also paced: starting at least 4x the previous commit's duration apart, never paced more than 30 ms apart)")
 	fs.BoolVar(&c.Insecure, "insecure", c.Insecure, "allow plaintext listeners on non-loopback addresses")
 	fs.StringVar(&c.TLSCert, "tls-cert", c.TLSCert, "TLS certificate file (PEM) for gRPC and HTTP")
 	fs.StringVar(&c.TLSKey, "tls-key", c.TLSKey, "TLS private key file (PEM)")

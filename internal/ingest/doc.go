@@ -33,7 +33,7 @@
 //     The writer commits batches: one bbolt transaction per batch,
 //     Config.BatchDelay after the first record (and, under load, no sooner
 //     than 4x the previous commit's duration after that one started, but
-//     never paced more than 100 ms apart: writer.go, pacing) or when
+//     never paced more than 30 ms apart: writer.go, pacing) or when
 //     Config.BatchRecords records are waiting, then acknowledges.
 //   - Each device stream runs in the goroutine that calls HandleStream
 //     (validate, estimate, evaluate alarms, queue for the writer), with a

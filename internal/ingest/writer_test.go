@@ -17,10 +17,11 @@ func TestPaceInterval(t *testing.T) {
 	for _, c := range []struct{ d, want time.Duration }{
 		{0, 0},
 		{2 * time.Millisecond, 8 * time.Millisecond},
-		{20 * time.Millisecond, 80 * time.Millisecond},
-		{30 * time.Millisecond, maxPace},
+		{5 * time.Millisecond, 20 * time.Millisecond},
+		{10 * time.Millisecond, maxPace},
 		{maxPace, maxPace},
-		{time.Second, time.Second}, // no wait after a commit that slow
+		{100 * time.Millisecond, 100 * time.Millisecond}, // no wait after a commit that slow
+		{time.Second, time.Second},
 	} {
 		if got := paceInterval(c.d); got != c.want {
 			t.Errorf("paceInterval(%v) = %v, want %v", c.d, got, c.want)
