@@ -135,8 +135,10 @@ func runEpisodes(ctx context.Context, args []string, s stdio) error {
 // dropDuplicateEpisodes keeps one row per episode stored on several
 // gateways (the same device, condition and onset: after a failover the
 // survivor goes on with the episode its predecessor stored): the one that
-// has most of it (ended, then acknowledged, then reviewed, then announced,
-// then the later end). Order is kept; it returns how many were dropped.
+// has most of it (not moved away, then ended, then acknowledged, then
+// reviewed, then announced, then the later end). A copy on a gateway the
+// device left goes on elsewhere, so the copy where it went wins even when the
+// old one holds an acknowledgement. Order is kept; it returns how many were dropped.
 func dropDuplicateEpisodes(rows []episodeRow) ([]episodeRow, int) {
 	type key struct {
 		dev, cond string
@@ -186,7 +188,7 @@ func activeElsewhere(all, kept []episodeRow) []string {
 }
 
 // rank orders copies of one episode by how much of it they hold.
-type rank [5]int64
+type rank [6]int64
 
 func (a rank) after(b rank) bool {
 	for i := range a {
@@ -205,7 +207,7 @@ func episodeRank(r episodeRow) rank {
 		}
 		return 0
 	}
-	return rank{b(e.GetEndedUnixMs() > 0), b(e.GetAcknowledgedUnixMs() > 0), b(r.Review != nil), b(e.GetAnnouncedUnixMs() > 0), e.GetEndedUnixMs()}
+	return rank{b(e.GetMovedToGateway() == ""), b(e.GetEndedUnixMs() > 0), b(e.GetAcknowledgedUnixMs() > 0), b(r.Review != nil), b(e.GetAnnouncedUnixMs() > 0), e.GetEndedUnixMs()}
 }
 
 // participantEpisodes keeps the rows whose onset lies in one of pid's

@@ -45,6 +45,21 @@ func TestDuplicateEpisodesAreDroppedAndCounted(t *testing.T) {
 	}
 }
 
+// A copy on the gateway a device moved away from loses to the copy where
+// the episode goes on, even when only the old copy was acknowledged: the
+// merged list shows the episode active, as it is.
+func TestMovedAwayEpisodeCopyLosesToTheOngoingOne(t *testing.T) {
+	old := &pb.Episode{EpisodeId: 7, DeviceId: "d1", Condition: "spo2_low", OnsetUnixMs: 1000, AnnouncedUnixMs: 16_000,
+		AcknowledgedUnixMs: 20_000, MovedToGateway: "b"}
+	cur := &pb.Episode{EpisodeId: 2, DeviceId: "d1", Condition: "spo2_low", OnsetUnixMs: 1000, AnnouncedUnixMs: 16_000, Active: true}
+	for _, rows := range [][]episodeRow{{{Gateway: "a", Episode: old}, {Gateway: "b", Episode: cur}}, {{Gateway: "b", Episode: cur}, {Gateway: "a", Episode: old}}} {
+		out, dups := dropDuplicateEpisodes(rows)
+		if dups != 1 || len(out) != 1 || out[0].Gateway != "b" || !out[0].Episode.GetActive() {
+			t.Errorf("kept %+v (%d dropped); want b's active copy", out, dups)
+		}
+	}
+}
+
 // An audit entry in two logs alike in every field is listed once.
 func TestDuplicateAuditEntriesAreDroppedAndCounted(t *testing.T) {
 	e := func(tm int64, action string) *pb.AuditEntry {
