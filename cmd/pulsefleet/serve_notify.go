@@ -87,7 +87,7 @@ func startNotifier(c serveConfig, db *store.DB, reg prometheus.Registerer, log *
 	if c.ExternalURL != "" {
 		pageBase = c.ExternalURL
 	}
-	n, err := notify.New(notify.Options{URLs: c.Alertmanager, Auth: c.auth(), Store: db, Gateway: gw, PageBase: pageBase,
+	n, err := notify.New(notify.Options{URLs: c.Alertmanager, Auth: c.auth(), Store: db, Gateway: gw, PageBase: pageBase, Fleet: len(c.Etcd) > 0,
 		Hold: c.AlertmanagerHold, Metrics: m, Logger: log.With("component", "notify")})
 	if err != nil {
 		return nil, err

@@ -33,6 +33,7 @@ type device struct {
 	ownProfile  bool                  // the profile was set for this device
 	introLabels map[string]string     // the labels of its last introduction (desc.Labels adds the operator's: labels.go)
 	alarmRev    uint64                // engine revision last persisted
+	adopted     bool                  // the engine was adopted from the fleet; its open episodes are not stored here yet (fence.go)
 	sessionMS   int64                 // start of the current or last session (gateway clock)
 	q           quality               // signal-quality and uptime accumulators
 	clock       deviceClock           // device time policy (clock.go)

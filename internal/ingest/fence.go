@@ -8,6 +8,7 @@ import (
 	"time"
 
 	"github.com/pulsefleet/pulsefleet/alarms"
+	"github.com/pulsefleet/pulsefleet/internal/store"
 
 	pb "github.com/pulsefleet/pulsefleet/proto/pulsefleet/v1"
 )
@@ -145,6 +146,7 @@ func (p *Pipeline) adoptState(d *device, st alarms.State) bool {
 	}
 	d.engine, d.profile = e, prof
 	d.alarmRev = 0 // stored here with the next batch of the device
+	d.adopted = true
 	p.refreshActive(d)
 	p.log.Info("alarm state adopted from the fleet", "device", d.id, "episodes_next_id", st.NextID)
 	return true
@@ -178,6 +180,7 @@ func (p *Pipeline) AdoptSilent(ctx context.Context, deviceID string, state []byt
 	p.adoptState(d, st)
 	p.ensureEngine(d)
 	rec := &record{dev: d}
+	rec.episodes = p.adoptedEpisodes(d)
 	moved := p.backHere(d) // owned here now
 	if created || moved {
 		desc := d.desc
@@ -196,6 +199,28 @@ func (p *Pipeline) AdoptSilent(ctx context.Context, deviceID string, state []byt
 		p.publishDevice(d, "disconnected")
 	}
 	return nil
+}
+
+// adoptedEpisodes returns, once after the engine was adopted from the
+// fleet, the stored form of its active, announced episodes, so they are
+// stored here as they go on here: the store's outbox then has this
+// gateway's notifier send them firing and resend them (internal/notify,
+// under the same labels as the gateway that announced them, which stops
+// resending them once the device moved away), and their end here resolves
+// them. It returns nil before the device has its index in this store (a
+// device new here: then with its next stream). Caller holds d.mu.
+func (p *Pipeline) adoptedEpisodes(d *device) []*store.Episode {
+	if !d.adopted || d.engine == nil || d.desc.Index == 0 {
+		return nil
+	}
+	d.adopted = false
+	var out []*store.Episode
+	for _, e := range d.engine.Episodes(nil) {
+		if e.Announced() && (e.Phase == alarms.Active || e.Phase == alarms.Latched) {
+			out = append(out, p.storeEpisode(d, &e))
+		}
+	}
+	return out
 }
 
 // movedTo returns the gateway a stream's device moved to, when the stream

@@ -252,7 +252,13 @@ func (s *stream) start(ctx context.Context, in *pb.Introduction) error {
 	resume, mode := d.durableSeq, d.desc.Mode
 	d.rewindToDurable() // anything not durable is resent by the device
 	s.epoch = d.epoch.Load()
+	adopted := p.adoptedEpisodes(d) // needs the index
 	d.mu.Unlock()
+	if len(adopted) > 0 {
+		if err := p.w.submit(ctx, &record{episodes: adopted}); err != nil {
+			p.log.Warn("adopted episodes not stored here; they are with their end", "device", d.id, "err", err)
+		}
+	}
 	s.id = d.id + "-" + strconv.FormatInt(nowMS, 36)
 	s.send(&pb.ConnectResponse{Kind: &pb.ConnectResponse_Welcome{Welcome: &pb.Welcome{
 		ResumeAfterSequence: resume, GatewayTimeUnixMs: nowMS, SessionId: s.id, Calibration: s.calRef,

@@ -43,6 +43,27 @@ var priorities = []string{"low", "medium", "high"}
 // URL ("" leaves the link out); now resolves an inactive episode without
 // an end time.
 func Build(e *store.Episode, dev *store.Device, gateway, pageBase string, now time.Time) []Alert {
+	return build(e, dev, gateway, pageBase, now, false)
+}
+
+// BuildFleet is Build for a gateway of a fleet on etcd, where an episode
+// goes on at another gateway when its device moves there (that gateway
+// adopts the alarm state): the alert must be the same one whichever gateway
+// sends it, so that the new gateway's resends keep it firing and its
+// resolution resolves it. So the identifying labels hold nothing of one
+// gateway: episode is the device's own episode number (the alarm engine's,
+// which goes on across gateways), and the gateway and its stored episode id
+// are annotations (gateway, episode_id).
+func BuildFleet(e *store.Episode, dev *store.Device, gateway, pageBase string, now time.Time) []Alert {
+	return build(e, dev, gateway, pageBase, now, true)
+}
+
+// DeviceEpisode is the device's own number of a stored episode (the low 32
+// bits of its id; the high ones are the device's index in one gateway's
+// store).
+func DeviceEpisode(id uint64) uint64 { return id & 0xffffffff }
+
+func build(e *store.Episode, dev *store.Device, gateway, pageBase string, now time.Time, fleet bool) []Alert {
 	labels := map[string]string{}
 	if dev != nil {
 		for k, v := range dev.Labels {
@@ -58,15 +79,24 @@ func Build(e *store.Episode, dev *store.Device, gateway, pageBase string, now ti
 	labels["device"] = e.Device
 	labels["condition"] = e.Condition
 	labels["priority"] = e.Priority
-	labels["episode"] = strconv.FormatUint(e.ID, 10)
-	if gateway != "" {
-		labels["gateway"] = gateway
+	an := annotations(e, pageBase)
+	if fleet {
+		labels["episode"] = strconv.FormatUint(DeviceEpisode(e.ID), 10)
+		an["episode_id"] = strconv.FormatUint(e.ID, 10)
+		if gateway != "" {
+			an["gateway"] = gateway
+		}
+	} else {
+		labels["episode"] = strconv.FormatUint(e.ID, 10)
+		if gateway != "" {
+			labels["gateway"] = gateway
+		}
 	}
 	start := ms(e.AnnouncedMS)
 	if e.AnnouncedMS <= 0 {
 		start = ms(e.OnsetMS)
 	}
-	a := Alert{Labels: labels, Annotations: annotations(e, pageBase), StartsAt: rfc(start)}
+	a := Alert{Labels: labels, Annotations: an, StartsAt: rfc(start)}
 	if pageBase != "" {
 		a.GeneratorURL = a.Annotations["device_page"]
 	}

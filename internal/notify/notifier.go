@@ -31,8 +31,15 @@ type Options struct {
 	Auth Auth
 	// Store holds the outbox; required.
 	Store Store
-	// Gateway is the gateway label of every alert (this gateway's name).
+	// Gateway is the gateway label of every alert (this gateway's name);
+	// with Fleet, an annotation.
 	Gateway string
+	// Fleet is set on a gateway of a fleet on etcd: alerts are identified
+	// the same on every gateway (BuildFleet), and an active episode whose
+	// device moved to another gateway (store.Device.MovedTo) is no longer
+	// resent from here: it goes on there, and that gateway sends it (its
+	// end is not known here, so no resolution is sent either).
+	Fleet bool
 	// PageBase is the web page's external URL, for the device-page link.
 	PageBase string
 	// Resend is how often active alerts are sent again; 0 means 1 minute,
@@ -210,9 +217,17 @@ func (n *Notifier) loadFiring() error {
 		if e.AnnouncedMS <= 0 {
 			continue
 		}
-		n.firing[e.ID] = Build(e, n.device(devs, e.Device), n.opt.Gateway, n.opt.PageBase, now)[:1]
+		n.firing[e.ID] = n.build(e, n.device(devs, e.Device), now)[:1]
 	}
 	return nil
+}
+
+// build is Build, or BuildFleet with Options.Fleet.
+func (n *Notifier) build(e *store.Episode, dev *store.Device, now time.Time) []Alert {
+	if n.opt.Fleet {
+		return BuildFleet(e, dev, n.opt.Gateway, n.opt.PageBase, now)
+	}
+	return Build(e, dev, n.opt.Gateway, n.opt.PageBase, now)
 }
 
 // device reads a device record once per pass (nil when unknown).
@@ -334,7 +349,7 @@ func (n *Notifier) pass(ctx context.Context, i int) (time.Time, error) {
 		} else if err != nil {
 			return due, err
 		}
-		as := Build(&ep, n.device(devs, ep.Device), n.opt.Gateway, n.opt.PageBase, now)
+		as := n.build(&ep, n.device(devs, ep.Device), now)
 		acc := store.OutboxAcceptance{Episode: ent.Episode, Gen: ent.Gen}
 		n.track(&ep, as)
 		if ep.Active {
@@ -422,6 +437,9 @@ func (n *Notifier) resend(ctx context.Context, i int) error {
 		alerts = append(alerts, a)
 	}
 	n.mu.Unlock()
+	if n.opt.Fleet {
+		alerts = n.notMoved(alerts)
+	}
 	for len(alerts) > 0 {
 		k := min(len(alerts), passBatch)
 		if err := c.post(ctx, alerts[:k]); err != nil {
@@ -431,6 +449,28 @@ func (n *Notifier) resend(ctx context.Context, i int) error {
 		alerts = alerts[k:]
 	}
 	return nil
+}
+
+// notMoved leaves out the alerts of devices that moved to another gateway
+// of the fleet (their episodes go on there, and that gateway resends them
+// under the same labels). They stay in the resend set: a device that comes
+// back here has them resent again.
+func (n *Notifier) notMoved(alerts []Alert) []Alert {
+	moved := map[string]bool{}
+	out := alerts[:0]
+	for _, a := range alerts {
+		id := a.Labels["device"]
+		m, ok := moved[id]
+		if !ok {
+			d, err := n.opt.Store.Device(id)
+			m = err == nil && d.MovedTo != ""
+			moved[id] = m
+		}
+		if !m {
+			out = append(out, a)
+		}
+	}
+	return out
 }
 
 // refreshQueue reads the outbox for the gauges.
