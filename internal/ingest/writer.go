@@ -142,7 +142,8 @@ type pending struct {
 //
 // maxPace is small on purpose: bigger batches cost the ack tail. A commit
 // acknowledges its whole batch at once, so every stream in it wakes its
-// sender together, and the writer then waits for a core behind them; at
+// sender together, and (likely; not measured apart) the writer then waits
+// for a core behind them; at
 // 5,000 devices on a shared machine a 100 ms bound left the gateway in
 // commits of 150 ms and more that it did not leave (p99 of seconds; the
 // code before pacing got there too, under more load), and a 50 ms batch
