@@ -22,10 +22,11 @@ type etcdFleet struct {
 	addrs []string
 	dirs  []string
 	kids  []*child
+	extra []string // more serve flags for every gateway
 }
 
-func newEtcdFleet(t testing.TB, n int) *etcdFleet {
-	f := &etcdFleet{t: t, etcd: etcdtest.Start(t)}
+func newEtcdFleet(t testing.TB, n int, extra ...string) *etcdFleet {
+	f := &etcdFleet{t: t, etcd: etcdtest.Start(t), extra: extra}
 	for i := 0; i < n; i++ {
 		l, err := net.Listen("tcp", "127.0.0.1:0")
 		if err != nil {
@@ -46,7 +47,7 @@ func newEtcdFleet(t testing.TB, n int) *etcdFleet {
 // start runs gateway i (again, on the same address and store).
 func (f *etcdFleet) start(t testing.TB, i int) {
 	t.Helper()
-	f.kids[i] = startServe(t, f.dirs[i], "--grpc-listen", f.addrs[i], "--advertise", f.addrs[i], "--etcd", f.etcd.Endpoint(), "--log-level", "warn")
+	f.kids[i] = startServe(t, f.dirs[i], append([]string{"--grpc-listen", f.addrs[i], "--advertise", f.addrs[i], "--etcd", f.etcd.Endpoint(), "--log-level", "warn"}, f.extra...)...)
 }
 
 // kill ends gateway i with SIGKILL and waits for it.

@@ -81,6 +81,9 @@ func startNotifier(c serveConfig, db *store.DB, reg prometheus.Registerer, log *
 		return func() {}, nil
 	}
 	gw := c.Self
+	if gw == "" && len(c.Etcd) > 0 {
+		gw = c.Advertise // a fleet on etcd names its gateways so
+	}
 	if gw == "" {
 		gw, _ = os.Hostname()
 	}
