@@ -8,19 +8,26 @@ import (
 	"net/url"
 	"os"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
 	"time"
 
+	"github.com/pulsefleet/pulsefleet/internal/cluster"
 	"github.com/pulsefleet/pulsefleet/internal/notify/notifytest"
 	"github.com/pulsefleet/pulsefleet/internal/shard"
 )
 
-// amFiring returns the alerts of a device that Alertmanager holds firing.
+// amFiring returns the alerts of a device that Alertmanager holds firing
+// (of one condition when device is "ID/CONDITION").
 func amFiring(t *testing.T, base, device string) []map[string]any {
 	t.Helper()
-	resp, err := http.Get(base + "/api/v2/alerts?active=true&filter=" + url.QueryEscape(`device="`+device+`"`))
+	q := "&filter=" + url.QueryEscape(`device="`+device+`"`)
+	if dev, cond, ok := strings.Cut(device, "/"); ok {
+		q = "&filter=" + url.QueryEscape(`device="`+dev+`"`) + "&filter=" + url.QueryEscape(`condition="`+cond+`"`)
+	}
+	resp, err := http.Get(base + "/api/v2/alerts?active=true" + q)
 	if err != nil {
 		t.Fatalf("GET /api/v2/alerts: %v", err)
 	}
@@ -158,4 +165,64 @@ func stayingDevice(t *testing.T, addrs []string, from, joiner int) string {
 	}
 	t.Fatal("no device id stays as wanted")
 	return ""
+}
+
+// A device with an announced alarm stops streaming and then its gateway is
+// killed: the survivor that adopts the device without a stream, though its
+// store never had the device, stores the adopted episode and sends it
+// firing to the real Alertmanager (the dead gateway no longer resends it,
+// and Alertmanager would otherwise resolve it on its own while the alarm
+// goes on).
+func TestFleetOnEtcdNotificationFollowsASilentAdoption(t *testing.T) {
+	if testing.Short() {
+		t.Skip("process test")
+	}
+	recv := notifytest.NewReceiver(t)
+	am := notifytest.Start(t, notifytest.Config(recv.URL("/hook")))
+	prof := filepath.Join(t.TempDir(), "fast.yaml")
+	if err := os.WriteFile(prof, []byte("name: fast\nconditions:\n  - kind: spo2_low\n    limit: 90\n    hysteresis: 2\n    delay: 3s\n    priority: high\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	f := newEtcdFleet(t, 2, "--profile", prof, "--alertmanager", am.URL, "--alertmanager-hold", "5s")
+	defer f.stopAll()
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	const id = "silent-am-0001"
+	dctx, stopDevice := context.WithCancel(ctx)
+	d, addr := openOwned(t, dctx, f.addrs[0], id, 10*time.Second)
+	first := slices.Index(f.addrs, addr)
+	survivor := 1 - first
+	t0 := time.Now().Add(-20 * time.Second).Truncate(time.Second).UnixMilli()
+	for i := int64(0); i < 10; i++ {
+		d.send(uint64(i+1), t0+i*1000, 80)
+	}
+	for d.acked < 10 {
+		d.recv()
+	}
+	spo2 := id + "/spo2_low"
+	waitFiring(t, am.URL, spo2, 1, f.addrs[first], 30*time.Second)
+	stopDevice()
+	time.Sleep(time.Second) // the offline report's publication
+	f.kill(first)
+	// The survivor's store has no model for the device (it was never
+	// introduced there), so its alert lacks that label and is another
+	// alert beside the dead gateway's, which Alertmanager resolves after its
+	// resolve_timeout (README, notifications across a move).
+	deadline := time.Now().Add(3*cluster.DefaultTTL + 60*time.Second)
+	for {
+		as := amFiring(t, am.URL, spo2)
+		n := 0
+		for _, a := range as {
+			if an, _ := a["annotations"].(map[string]any); an["gateway"] == f.addrs[survivor] {
+				n++
+			}
+		}
+		if n == 1 {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("no firing spo2_low alert from the survivor %s: %v", f.addrs[survivor], as)
+		}
+		time.Sleep(200 * time.Millisecond)
+	}
 }

@@ -191,12 +191,32 @@ func (p *Pipeline) AdoptSilent(ctx context.Context, deviceID string, state []byt
 		d.engine.SetOffline(true, d.techNowS(nowMS), func(e alarms.Event) { evs = append(evs, e) })
 	}
 	p.alarmEffects(d, evs, rec)
+	// A device new to this store has no index yet, which its adopted
+	// episodes' stored ids need: wait for the description's write then.
+	needIndex := d.adopted && d.desc.Index == 0 && rec.desc != nil
 	d.mu.Unlock()
 	if created || moved || len(evs) > 0 || rec.alarm != nil {
-		if err := p.w.submit(context.WithoutCancel(ctx), rec); err != nil {
+		write := p.w.submit
+		if needIndex {
+			write = p.w.sync
+		}
+		if err := write(context.WithoutCancel(ctx), rec); err != nil {
 			return fmt.Errorf("adopting silent device %s: %w", deviceID, err)
 		}
 		p.publishDevice(d, "disconnected")
+	}
+	if needIndex {
+		d.mu.Lock()
+		if d.desc.Index == 0 {
+			d.desc.Index = rec.desc.Index // assigned by the store on the device's first write
+		}
+		eps := p.adoptedEpisodes(d)
+		d.mu.Unlock()
+		if len(eps) > 0 {
+			if err := p.w.submit(context.WithoutCancel(ctx), &record{episodes: eps}); err != nil {
+				return fmt.Errorf("adopting silent device %s: its open episodes: %w", deviceID, err)
+			}
+		}
 	}
 	return nil
 }
