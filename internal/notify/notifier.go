@@ -81,6 +81,8 @@ type Notifier struct {
 	// resent to that target alone, so an Alertmanager restarted meanwhile
 	// has them firing again before their resolution comes.
 	held []map[uint64]Alert
+
+	qmu sync.Mutex // one outbox read and gauge set at a time (readQueue)
 }
 
 // New checks the options and builds a notifier.
@@ -309,11 +311,10 @@ const passBatch = 256
 func (n *Notifier) pass(ctx context.Context, i int) (time.Time, error) {
 	c, target := n.clients[i], n.targets[i]
 	var due time.Time
-	ents, total, err := n.opt.Store.Outbox(0)
+	ents, _, err := n.readQueue()
 	if err != nil {
 		return due, err
 	}
-	n.setQueue(ents, total)
 	now := n.opt.Now()
 	devs := map[string]*store.Device{}
 	var (
@@ -475,12 +476,25 @@ func (n *Notifier) notMoved(alerts []Alert) []Alert {
 
 // refreshQueue reads the outbox for the gauges.
 func (n *Notifier) refreshQueue() {
+	if _, _, err := n.readQueue(); err != nil {
+		n.opt.Logger.Warn("outbox unreadable", "err", err)
+	}
+}
+
+// readQueue reads the outbox and sets the gauges from it, the read and the
+// set under one lock: targets deliver and refresh concurrently, and a
+// target that read the outbox before another removed an entry must not set
+// the gauges after that other's later read (the gauge stayed at 1 with the
+// outbox empty until the next pass).
+func (n *Notifier) readQueue() ([]store.OutboxEntry, int, error) {
+	n.qmu.Lock()
+	defer n.qmu.Unlock()
 	ents, total, err := n.opt.Store.Outbox(0)
 	if err != nil {
-		n.opt.Logger.Warn("outbox unreadable", "err", err)
-		return
+		return nil, 0, err
 	}
 	n.setQueue(ents, total)
+	return ents, total, nil
 }
 
 func (n *Notifier) setQueue(ents []store.OutboxEntry, total int) {
